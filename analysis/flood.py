@@ -1,0 +1,429 @@
+"""The spill engine: onset stage, flood tree, depressions and spill points.
+
+For every cell ``c`` of a DEM ``z`` and a set of outlet cells ``O``, the *onset
+stage* is the minimax (bottleneck) path elevation from the outlets,
+
+    s(c) = min over paths P from O to c of max over p on P of z(p),
+
+the outlet water level at which surface water first reaches ``c``. It equals the
+depression-filled surface. It is computed by a Priority-Flood (Barnes, Lehman &
+Mulla 2014), which is Dijkstra's algorithm with ``max`` in place of ``+``: cells
+are settled in the order Prim's algorithm adds them to a minimum spanning tree of
+the grid graph weighted by elevation. Recording the neighbour each cell was
+settled from gives that spanning tree, the *flood tree*; following it from any
+cell leads to an outlet along a path whose highest cell sits at ``s(c)``.
+
+Each connected region of ``s > z`` is a *depression*; its *spill point* is the
+rim cell its pit's route leaves it through, at the depression's *spill elevation*.
+
+References
+----------
+Barnes, R., Lehman, C., Mulla, D. (2014). Priority-flood: An optimal
+depression-filling and watershed-labeling algorithm for digital elevation
+models. Computers & Geosciences 62, 117-127. doi:10.1016/j.cageo.2013.04.024
+Zhou, G., Sun, Z., Fu, S. (2016). An efficient variant of the Priority-Flood
+algorithm for filling depressions in raster digital elevation models.
+Computers & Geosciences 90, 87-96. doi:10.1016/j.cageo.2016.02.021
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from analysis import _flood_kernels as _k
+from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
+
+if TYPE_CHECKING:  # pragma: no cover
+    from affine import Affine
+
+    from analysis.dem import DEM
+    from analysis.outlets import Outlets
+
+#: Flood-tree code of an outlet cell (the root of the tree).
+OUTLET_CODE = _k.OUTLET
+#: Flood-tree code of a nodata cell or of a cell no outlet reaches.
+NO_PARENT_CODE = 0
+#: Row and column steps of flood-tree codes 1..8 (NW, N, NE, W, E, SW, S, SE).
+DIRECTION_ROW = np.array([-1, -1, -1, 0, 0, 1, 1, 1], dtype=np.int64)
+DIRECTION_COL = np.array([-1, 0, 1, -1, 1, -1, 0, 1], dtype=np.int64)
+_FOUR = np.array([1, 3, 4, 6])  # N, W, E, S among the eight directions
+
+#: Largest padded grid the packed 32-bit heap index can address.
+MAX_PADDED_CELLS = 2**32 - 1
+
+
+@dataclasses.dataclass(frozen=True)
+class DepressionTable:
+    """One row per depression (ids 1..n); columns are numpy arrays.
+
+    Attributes
+    ----------
+    id : int32
+        Depression id, as in :attr:`SpillResult.depression_id`.
+    pit_row, pit_col : int64
+        Lowest cell (first in row-major order on ties).
+    pit_elevation : float32
+        Its elevation, in the site's vertical unit.
+    spill_row, spill_col : int64
+        Spill point: the rim cell the pit's route leaves the depression through.
+    spill_x, spill_y : float64
+        Spill point cell centre in the DEM's CRS (NaN without a transform).
+    spill_elevation : float32
+        Water level at which the depression starts to overflow.
+    spills_to : int32
+        Id of the depression the overflow reaches next along the route, or 0 for
+        an outlet.
+    max_depth : float32
+        ``spill_elevation - pit_elevation``.
+    cell_count : int64
+    area_m2 : float64
+        Plan area of the depression's cells.
+    volume_m2_vu : float64
+        Storage at the spill elevation, in m² times the vertical unit (sum over
+        cells of area times depth). Convert with the vertical unit to m³.
+    """
+
+    id: np.ndarray
+    pit_row: np.ndarray
+    pit_col: np.ndarray
+    pit_elevation: np.ndarray
+    spill_row: np.ndarray
+    spill_col: np.ndarray
+    spill_x: np.ndarray
+    spill_y: np.ndarray
+    spill_elevation: np.ndarray
+    spills_to: np.ndarray
+    max_depth: np.ndarray
+    cell_count: np.ndarray
+    area_m2: np.ndarray
+    volume_m2_vu: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.id.shape[0])
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        return tuple(f.name for f in dataclasses.fields(self))
+
+    def row(self, depression_id: int) -> dict:
+        """All columns of one depression as plain Python values."""
+        k = int(depression_id) - 1
+        if not 0 <= k < len(self):
+            raise InvalidParameter(
+                f"no depression with id {depression_id}; ids run from 1 to {len(self)}"
+            )
+        return {name: getattr(self, name)[k].item() for name in self.columns}
+
+
+@dataclasses.dataclass(frozen=True)
+class Route:
+    """The flood-tree path from a location back to an outlet.
+
+    ``rows``/``cols`` start at the location and end at an outlet cell. The
+    controlling sill is the highest cell on the route: for a location inside a
+    depression, the spill point through which the route finally leaves it; for
+    any other location, the location itself. Its elevation equals the onset
+    stage of the location.
+    """
+
+    rows: np.ndarray
+    cols: np.ndarray
+    sill_row: int
+    sill_col: int
+    sill_elevation: float
+    reaches_outlet: bool
+
+    def __len__(self) -> int:
+        return int(self.rows.shape[0])
+
+
+@dataclasses.dataclass(frozen=True)
+class SpillResult:
+    """Everything the spill engine computes for one DEM and outlet set.
+
+    Attributes
+    ----------
+    elevation : float32 array
+        The DEM (NaN on nodata), as given.
+    onset_stage : float32 array
+        Outlet water level at which each cell is first reached; equal to the
+        depression-filled surface. NaN on nodata and on cells no outlet reaches.
+    flood_tree : uint8 array
+        Direction to the neighbour each cell was reached from (codes 1..8, see
+        :data:`DIRECTION_ROW`), :data:`OUTLET_CODE` on outlets, 0 on nodata and
+        unreached cells.
+    depression_id : int32 array
+        Depression of each cell, 1..n, and 0 where ``onset_stage == elevation``.
+    depressions : DepressionTable
+    connectivity : int
+        4 or 8.
+    unreached_cells : int
+        Valid cells that no outlet reaches (walled in by nodata).
+    heap_pops : int
+        Priority-queue pops the flood needed (a measure of its work).
+    """
+
+    elevation: np.ndarray
+    onset_stage: np.ndarray
+    flood_tree: np.ndarray
+    depression_id: np.ndarray
+    depressions: DepressionTable
+    connectivity: int
+    unreached_cells: int
+    heap_pops: int
+
+    @property
+    def fill_depth(self) -> np.ndarray:
+        """``onset_stage - elevation`` (0 outside depressions, NaN on nodata)."""
+        return self.onset_stage - self.elevation
+
+    def route(self, row: int, col: int) -> Route:
+        """Route from cell ``(row, col)`` back to the outlets and its controlling sill.
+
+        Raises
+        ------
+        LocationOutsideDEM
+            If the cell is outside the grid, on nodata, or reached by no outlet.
+        """
+        rows, cols = self.onset_stage.shape
+        if not (0 <= row < rows and 0 <= col < cols):
+            raise LocationOutsideDEM(
+                f"cell ({row}, {col}) is outside the DEM; rows run 0..{rows - 1}, "
+                f"columns 0..{cols - 1}"
+            )
+        if self.flood_tree[row, col] == NO_PARENT_CODE:
+            what = "nodata" if np.isnan(self.elevation[row, col]) else "not reached by any outlet"
+            raise LocationOutsideDEM(f"cell ({row}, {col}) is {what}; pick a cell with data")
+        path_r, path_c = _k.walk_route(
+            self.flood_tree, np.int64(row), np.int64(col), DIRECTION_ROW, DIRECTION_COL,
+            np.int64(rows * cols + 1),
+        )
+        reaches = bool(self.flood_tree[path_r[-1], path_c[-1]] == OUTLET_CODE)
+        dep = int(self.depression_id[row, col])
+        if dep > 0:
+            inside = np.flatnonzero(self.depression_id[path_r, path_c] == dep)
+            k = int(inside[-1]) + 1
+        else:
+            k = 0
+        return Route(
+            rows=path_r,
+            cols=path_c,
+            sill_row=int(path_r[k]),
+            sill_col=int(path_c[k]),
+            sill_elevation=float(self.elevation[path_r[k], path_c[k]]),
+            reaches_outlet=reaches,
+        )
+
+
+def _neighbour_steps(connectivity: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """Flat offsets of the neighbours in a padded grid and the codes they receive."""
+    if connectivity == 8:
+        chosen = np.arange(8)
+    elif connectivity == 4:
+        chosen = _FOUR
+    else:
+        raise InvalidParameter(f"connectivity must be 4 or 8, not {connectivity!r}")
+    offsets = DIRECTION_ROW[chosen] * width + DIRECTION_COL[chosen]
+    # A neighbour reached through direction d points back along the opposite
+    # direction, 7 - d in the NW..SE order; codes are 1-based.
+    codes = (7 - chosen + 1).astype(np.uint8)
+    return offsets.astype(np.int64), codes
+
+
+def _validated_elevation(elevation) -> np.ndarray:
+    z = np.asarray(elevation)
+    if z.ndim != 2:
+        raise InvalidDEM(f"the elevation must be a 2-D grid, not {z.ndim}-D")
+    if z.shape[0] < 1 or z.shape[1] < 1:
+        raise InvalidDEM(f"the elevation grid is empty ({z.shape[0]} x {z.shape[1]} cells)")
+    if (z.shape[0] + 2) * (z.shape[1] + 2) > MAX_PADDED_CELLS:
+        raise InvalidDEM(
+            f"{z.shape[0]} x {z.shape[1]} cells is too large for the in-memory engine; "
+            "use the tiled engine"
+        )
+    if z.dtype != np.float32:
+        if np.issubdtype(z.dtype, np.integer):
+            z32 = z.astype(np.float32)
+            if not np.array_equal(z32.astype(np.float64), z.astype(np.float64)):
+                raise InvalidDEM(
+                    f"elevations of type {z.dtype} exceed what float32 holds exactly "
+                    f"(|z| > 2**24); rescale them (e.g. to metres) first"
+                )
+            z = z32
+        elif np.issubdtype(z.dtype, np.floating):
+            z = z.astype(np.float32)  # rounded to the nearest float32
+        else:
+            raise InvalidDEM(f"elevations must be numbers, not {z.dtype}")
+    if np.isinf(z).any():
+        z = np.where(np.isinf(z), np.float32(np.nan), z)
+    return np.ascontiguousarray(z)
+
+
+def priority_flood(
+    elevation,
+    outlet_mask,
+    *,
+    connectivity: int = 8,
+    row_areas=None,
+    transform: "Affine | None" = None,
+) -> SpillResult:
+    """Onset stage, flood tree and depression inventory of a DEM.
+
+    Parameters
+    ----------
+    elevation : (rows, cols) array
+        Elevations; NaN (and ±inf) is nodata, which water does not cross.
+        Computed in float32: integers must be exact in float32, wider floats are
+        rounded to the nearest float32. The array is never modified.
+    outlet_mask : (rows, cols) bool array
+        Cells where water enters or leaves the site. Outlets on nodata are ignored.
+    connectivity : {8, 4}, keyword-only
+        D8 neighbourhood (default) or 4-neighbour.
+    row_areas : (rows,) array, optional
+        True area of one cell in each row, in m². Default 1 m² (then areas count
+        cells).
+    transform : affine.Affine, optional
+        Grid-to-CRS transform, used for the spill points' x, y.
+
+    Returns
+    -------
+    SpillResult
+
+    Raises
+    ------
+    InvalidDEM, InvalidOutlets, InvalidParameter
+
+    Notes
+    -----
+    Memory: the result holds 9 bytes per cell (float32 onset stage, uint8 flood
+    tree, int32 depression id), allocated once on a grid padded by one cell; the
+    queues hold only the moving frontier (8 bytes per cell on it). Runs in
+    O(n log m) for n cells and a frontier of m cells.
+
+    Examples
+    --------
+    A 3 x 3 bowl whose centre (1) sits below a rim at 5, outlets on the edge:
+
+    >>> import numpy as np
+    >>> z = np.array([[5, 5, 5], [5, 1, 5], [5, 5, 5]], dtype=np.float32)
+    >>> edge = np.ones((3, 3), bool); edge[1, 1] = False
+    >>> r = priority_flood(z, edge)
+    >>> float(r.onset_stage[1, 1]), int(r.depression_id[1, 1])
+    (5.0, 1)
+    """
+    z = _validated_elevation(elevation)
+    rows, cols = z.shape
+    mask = np.asarray(outlet_mask)
+    if mask.shape != z.shape:
+        raise InvalidOutlets(
+            f"the outlet mask is {mask.shape[0]} x {mask.shape[1]} cells but the DEM is "
+            f"{rows} x {cols}; build it on the same grid"
+        )
+    if mask.dtype != np.bool_:
+        raise InvalidOutlets(f"the outlet mask must be boolean, not {mask.dtype}")
+    if row_areas is None:
+        areas = np.ones(rows, dtype=np.float64)
+    else:
+        areas = np.asarray(row_areas, dtype=np.float64)
+        if areas.shape != (rows,) or not np.all(np.isfinite(areas) & (areas > 0)):
+            raise InvalidParameter(
+                f"row_areas must hold {rows} positive finite cell areas (m²), one per row"
+            )
+
+    width = cols + 2
+    level_pad = np.full((rows + 2, width), np.nan, dtype=np.float32)
+    level_pad[1:-1, 1:-1] = z
+    level = level_pad.reshape(-1)
+    tree_pad = np.zeros((rows + 2, width), dtype=np.uint8)
+    tree = tree_pad.reshape(-1)
+    _k.mark_blocked(level, tree)
+
+    flat = np.flatnonzero(mask)
+    outlets = (flat // cols + 1) * width + (flat % cols + 1)
+    outlets = outlets[tree[outlets] != _k.BLOCKED].astype(np.int64)
+    if outlets.size == 0:
+        raise InvalidOutlets(
+            "no outlet cell lies on valid data; mark at least one cell with an "
+            "elevation as an outlet (the DEM edge, cells next to nodata, or a water body)"
+        )
+    tree[outlets] = _k.OUTLET
+    del flat
+
+    label_pad = np.zeros((rows + 2, width), dtype=np.int32)
+    label = label_pad.reshape(-1)
+    offsets, codes = _neighbour_steps(connectivity, width)
+
+    n_labels, entry, downstream, forest, heap_pops = _k.flood(
+        level, level.view(np.uint32), tree, label, outlets, offsets, codes
+    )
+    del outlets
+    (final_of, count, area, volume, pit_elevation, pit_cell, pit_label, unreached) = _k.finalise(
+        level, tree, label, z, areas, forest, np.int64(width)
+    )
+    spill_cell, spills_to = _k.spill_cells(pit_label, entry, downstream, forest, final_of)
+
+    table = _depression_table(
+        level, z.dtype, width, count, area, volume, pit_elevation, pit_cell, spill_cell,
+        spills_to, transform,
+    )
+    return SpillResult(
+        elevation=z,
+        onset_stage=level_pad[1:-1, 1:-1],
+        flood_tree=tree_pad[1:-1, 1:-1],
+        depression_id=label_pad[1:-1, 1:-1],
+        depressions=table,
+        connectivity=connectivity,
+        unreached_cells=int(unreached),
+        heap_pops=int(heap_pops),
+    )
+
+
+def _depression_table(
+    level, dtype, width, count, area, volume, pit_elevation, pit_cell, spill_cell, spills_to,
+    transform,
+) -> DepressionTable:
+    n = count.shape[0] - 1
+    pit_row = pit_cell[1:] // width - 1
+    pit_col = pit_cell[1:] % width - 1
+    spill = spill_cell[1:]
+    spill_row = spill // width - 1
+    spill_col = spill % width - 1
+    spill_elevation = level[spill].astype(np.float32)
+    if transform is not None:
+        xs, ys = transform * (spill_col + 0.5, spill_row + 0.5)
+        spill_x = np.asarray(xs, dtype=np.float64)
+        spill_y = np.asarray(ys, dtype=np.float64)
+    else:
+        spill_x = np.full(n, np.nan)
+        spill_y = np.full(n, np.nan)
+    pit_z = pit_elevation[1:].astype(np.float32)
+    return DepressionTable(
+        id=np.arange(1, n + 1, dtype=np.int32),
+        pit_row=pit_row,
+        pit_col=pit_col,
+        pit_elevation=pit_z,
+        spill_row=spill_row,
+        spill_col=spill_col,
+        spill_x=spill_x,
+        spill_y=spill_y,
+        spill_elevation=spill_elevation,
+        spills_to=spills_to[1:].astype(np.int32),
+        max_depth=(spill_elevation - pit_z).astype(np.float32),
+        cell_count=count[1:],
+        area_m2=area[1:],
+        volume_m2_vu=volume[1:],
+    )
+
+
+def analyse_site(dem: "DEM", outlets: "Outlets", *, connectivity: int = 8) -> SpillResult:
+    """Run the spill engine on a site DEM with its outlets (true cell areas, CRS)."""
+    return priority_flood(
+        dem.elevation,
+        outlets.mask,
+        connectivity=connectivity,
+        row_areas=dem.row_areas,
+        transform=dem.transform,
+    )
