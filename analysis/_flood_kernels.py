@@ -146,6 +146,7 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
     joins labels of the same depression, plus counters.
     """
     n_offsets = offsets.shape[0]
+    steps = offsets.astype(np.uint64)  # two's-complement wrap: cell + step
 
     heap = np.empty(max(1024, 2 * outlets.shape[0]), dtype=np.uint64)
     heap_size = 0
@@ -154,10 +155,11 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
         _heap_sift_up(heap, heap_size, _ordered_key(bits[o], o))
         heap_size += 1
 
-    ring = np.empty(4096, dtype=np.int64)
-    ring_mask = ring.shape[0] - 1
-    head = 0
-    queued = 0
+    ring = np.empty(4096, dtype=np.uint64)
+    ring_mask = np.uint64(ring.shape[0] - 1)
+    head = np.uint64(0)
+    queued = np.uint64(0)
+    one = np.uint64(1)
 
     entry = np.empty(1024, dtype=np.int64)
     downstream = np.empty(1024, dtype=np.int32)
@@ -171,7 +173,7 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
     while heap_size > 0:
         key, heap_size = _heap_pop(heap, heap_size)
         heap_pops += 1
-        cell = np.int64(key & _LOW32)
+        cell = key & _LOW32
         current = level[cell]
         while True:
             here = level[cell]
@@ -179,7 +181,7 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
             in_depression = mine > 0
             deferred = False
             for k in range(n_offsets):
-                nb = cell + offsets[k]
+                nb = cell + steps[k]
                 t = tree[nb]
                 if t != UNVISITED:
                     if in_depression and t != BLOCKED:
@@ -208,7 +210,7 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
                         entry = _grow_int64(entry, labels)
                         downstream = _grow_int32(downstream, labels)
                         forest = _grow_int32(forest, labels)
-                        entry[labels] = cell
+                        entry[labels] = np.int64(cell)
                         downstream[labels] = mine
                         forest[labels] = labels
                         label[nb] = labels
@@ -217,10 +219,10 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
                 tree[nb] = codes[k]
                 if queued > ring_mask:
                     ring = _ring_unrolled(ring, head, queued)
-                    ring_mask = ring.shape[0] - 1
-                    head = 0
+                    ring_mask = np.uint64(ring.shape[0] - 1)
+                    head = np.uint64(0)
                 ring[(head + queued) & ring_mask] = nb
-                queued += 1
+                queued += one
             if deferred:
                 if heap_size == heap.shape[0]:
                     heap = _grow_uint64(heap, heap_size)
@@ -229,8 +231,8 @@ def _flood(level, bits, tree, label, outlets, offsets, codes):
             if queued == 0:
                 break
             cell = ring[head]
-            head = (head + 1) & ring_mask
-            queued -= 1
+            head = (head + one) & ring_mask
+            queued -= one
 
     return labels, entry[: labels + 1], downstream[: labels + 1], forest[: labels + 1], heap_pops
 
