@@ -393,9 +393,10 @@ def _depression_table(
     spill_col = spill % width - 1
     spill_elevation = level[spill].astype(np.float32)
     if transform is not None:
-        xs, ys = transform * (spill_col + 0.5, spill_row + 0.5)
-        spill_x = np.asarray(xs, dtype=np.float64)
-        spill_y = np.asarray(ys, dtype=np.float64)
+        t = transform
+        cx, cy = spill_col + 0.5, spill_row + 0.5
+        spill_x = (t.a * cx + t.b * cy + t.c).astype(np.float64)
+        spill_y = (t.d * cx + t.e * cy + t.f).astype(np.float64)
     else:
         spill_x = np.full(n, np.nan)
         spill_y = np.full(n, np.nan)
