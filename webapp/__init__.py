@@ -1,0 +1,1 @@
+"""Sillmark web application (Flask); imports analysis, never the reverse."""
