@@ -67,8 +67,19 @@ __all__ = [
     "FLOOD_TREE_NODATA",
     "TILE_SIZE",
     "atomic_output",
+    "crs_label",
+    "horizontal_unit_suffix",
     "depression_columns",
     "depression_polygons",
+    "horizontal_crs",
+    "json_number",
+    "sillmark_version",
+    "unit_name",
+    "unit_suffix",
+    "wgs84_geometry",
+    "wgs84_transformer",
+    "write_feature_collection",
+    "write_geotiff",
     "write_depression_ids",
     "write_depressions_csv",
     "write_depressions_geojson",
@@ -78,6 +89,7 @@ __all__ = [
     "write_results",
     "write_spill_points_geojson",
     "write_summary",
+    "write_table_csv",
 ]
 
 #: Nodata of the float32 rasters (onset stage, fill depth).
@@ -864,3 +876,140 @@ def write_results(
         )
     )
     return paths
+
+
+# --------------------------------------------------------------------------- shared with other writers
+#
+# Small public entry points to the conventions above, for modules that write
+# further result files (water-level maps, stage tables): the same GeoTIFF
+# profile and tags, the same CSV number format, the same GeoJSON geometry.
+
+
+def sillmark_version() -> str:
+    """Version string written into every result file."""
+    return _version()
+
+
+def unit_suffix(unit: VerticalUnit | str) -> str:
+    """Column-name suffix of a vertical unit: ``m``, ``ft`` or ``us_ft``."""
+    return _UNIT_SUFFIX[VerticalUnit.parse(unit)]
+
+
+def unit_name(unit: VerticalUnit | str) -> str:
+    """Long name of a vertical unit as written in GeoTIFF band units and CSV comments."""
+    return _UNIT_NAME[VerticalUnit.parse(unit)]
+
+
+def horizontal_crs(dem: "DEM") -> pyproj.CRS:
+    """The DEM's horizontal CRS; :class:`~analysis.errors.InvalidDEM` if it has none."""
+    return _pyproj_crs(dem)
+
+
+def horizontal_unit_suffix(dem: "DEM") -> str:
+    """Column-name suffix of the DEM's horizontal CRS unit, e.g. ``m`` or ``ft``."""
+    return _crs_unit_suffix(dem.horizontal_crs)
+
+
+def crs_label(dem: "DEM") -> str:
+    """The DEM's whole CRS as written in CSV comments, e.g. ``EPSG:32633 (WGS 84 / UTM zone 33N)``."""
+    return _crs_label(_full_crs(dem))
+
+
+def write_geotiff(
+    path: str | os.PathLike,
+    dem: "DEM",
+    *,
+    dtype: str,
+    nodata: float,
+    block: Callable[[int, int], np.ndarray],
+    layer: str,
+    description: str,
+    band_unit: str,
+    extra_tags: dict[str, str] | None = None,
+    progress: Progress | None = None,
+) -> Path:
+    """Write one band on the DEM's grid with the conventions of this module, atomically.
+
+    ``block(r0, r1)`` returns rows ``r0:r1`` of the band; it is called once per
+    block of :data:`BLOCK_ROWS` rows. The file is tiled (:data:`TILE_SIZE`),
+    DEFLATE-compressed (predictor 3 for floats, 2 for integers), keeps the DEM's
+    CRS and transform and carries the tags ``SILLMARK_CAUTION``,
+    ``SILLMARK_LAYER`` (``layer``), ``SILLMARK_VERSION``, ``VERTICAL_UNIT`` and
+    ``VERTICAL_UNIT_NAME``, plus ``extra_tags``.
+    """
+    return _write_raster(
+        path, dem, dtype=dtype, nodata=nodata, block=block, layer=layer,
+        description=description, band_unit=band_unit, extra_tags=extra_tags, progress=progress,
+    )
+
+
+def json_number(value) -> float | int | None:
+    """A JSON-ready number: float32 as its shortest exact decimal, NaN/inf as None."""
+    if isinstance(value, (bool, np.bool_)):
+        raise InvalidParameter("a boolean is not a number")
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, np.float32):
+        return _short32(value)
+    return _short64(value)
+
+
+def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[str, np.ndarray]) -> Path:
+    """Write a CSV table atomically: ``# `` comment lines, a header, one row per entry.
+
+    ``comments`` are written after ``# ``, in order, before the header; put the
+    screening caution among them. ``columns`` maps each header to a numpy array
+    (all of one length); numbers are written as in ``depressions.csv`` (the
+    shortest text that reads back as the same float32 or float64, empty for
+    NaN), string columns as they are.
+    """
+    final = Path(path)
+    arrays = {name: np.asarray(values) for name, values in columns.items()}
+    lengths = {len(a) for a in arrays.values()}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns of {final.name} differ in length: {sorted(lengths)}")
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", newline="", encoding="utf-8") as f:
+            for line in comments:
+                f.write(f"# {line}\n")
+            writer = csv.writer(f, lineterminator="\n")
+            writer.writerow(arrays)
+            n = lengths.pop() if lengths else 0
+            for k in range(n):
+                writer.writerow(
+                    str(a[k]) if a.dtype.kind in "USO" else _text(_plain(a, k)) for a in arrays.values()
+                )
+    return final
+
+
+def wgs84_geometry(geom, dem: "DEM", *, transformer: pyproj.Transformer | None = None) -> dict:
+    """A shapely (Multi)Polygon in the DEM's CRS as an RFC 7946 GeoJSON geometry.
+
+    Reprojected vertex by vertex to WGS84 lon/lat, exterior rings counterclockwise
+    and holes clockwise, positions rounded to :data:`COORDINATE_DECIMALS` places,
+    as in ``depressions.geojson``. Pass ``transformer`` (from the DEM's CRS to
+    WGS84, ``always_xy=True``) to reuse one across many geometries.
+    """
+    if transformer is None:
+        transformer = _to_wgs84(_pyproj_crs(dem))
+
+    def to_lonlat(xy: np.ndarray) -> np.ndarray:
+        x, y = transformer.transform(xy[:, 0], xy[:, 1])
+        return np.column_stack([x, y])
+
+    return _geojson_geometry(_oriented(shapely.transform(geom, to_lonlat)))
+
+
+def wgs84_transformer(dem: "DEM") -> pyproj.Transformer:
+    """Transformer from the DEM's horizontal CRS to WGS84 lon/lat (``always_xy``)."""
+    return _to_wgs84(_pyproj_crs(dem))
+
+
+def write_feature_collection(path: str | os.PathLike, members: dict, features) -> Path:
+    """Write a GeoJSON FeatureCollection atomically, one feature per line.
+
+    ``members`` are extra top-level members (RFC 7946 section 6.1 foreign members,
+    e.g. ``name`` and ``caution``); ``features`` is an iterable of Feature dicts,
+    consumed once. NaN is refused (write None).
+    """
+    return _write_feature_collection(Path(path), members, iter(features))

@@ -73,7 +73,10 @@ class StageTable:
         return int(self.level.shape[0])
 
 
-def _level32(level) -> np.float32:
+def checked_level(level) -> np.float32:
+    """A water level as float32, or InvalidParameter for text, NaN, inf or huge values."""
+    if isinstance(level, bool):
+        raise InvalidParameter(f"the water level must be a number, not {level!r}")
     try:
         value = float(level)
     except (TypeError, ValueError):
@@ -127,7 +130,7 @@ def water_level_map(
     parallel pass over the onset stage and the DEM.
     """
     unit = VerticalUnit.parse(unit)
-    h = _level32(level)
+    h = checked_level(level)
     areas = _check_areas(result, row_areas)
     shape = result.onset_stage.shape
     if out is None:
@@ -156,7 +159,7 @@ def stage_levels(result: SpillResult, *, step, start=None, stop=None) -> np.ndar
     """Levels from ``start`` (default: the lowest onset stage, i.e. the lowest
     outlet) to ``stop`` (default: the highest spill elevation, or the highest
     onset stage when there is no depression) every ``step``."""
-    step = float(_level32(step))
+    step = float(checked_level(step))
     if step <= 0:
         raise InvalidParameter(f"the level step must be positive, not {step}")
     s = result.onset_stage
@@ -165,7 +168,7 @@ def stage_levels(result: SpillResult, *, step, start=None, stop=None) -> np.ndar
     if stop is None:
         spills = result.depressions.spill_elevation
         stop = float(spills.max()) if len(spills) else float(np.nanmax(s))
-    start, stop = float(_level32(start)), float(_level32(stop))
+    start, stop = float(checked_level(start)), float(checked_level(stop))
     if stop < start:
         raise InvalidParameter(f"the top level {stop} is below the bottom level {start}")
     count = int(math.floor((stop - start) / step + 1e-9)) + 1
@@ -194,7 +197,7 @@ def stage_table(
     """
     unit = VerticalUnit.parse(unit)
     areas = _check_areas(result, row_areas)
-    lv = np.asarray([_level32(v) for v in np.atleast_1d(np.asarray(levels, dtype=object))],
+    lv = np.asarray([checked_level(v) for v in np.atleast_1d(np.asarray(levels, dtype=object))],
                     dtype=np.float32)
     if lv.size == 0:
         raise InvalidParameter("give at least one water level")
@@ -231,7 +234,7 @@ def depression_states(result: SpillResult, level) -> tuple[np.ndarray, np.ndarra
     *overtopped* once the level reaches its spill elevation (filled from the
     outlets). Freeboard is ``spill_elevation - level`` (negative once overtopped).
     """
-    h = _level32(level)
+    h = checked_level(level)
     t = result.depressions
     states = np.where(
         t.spill_elevation <= h,
