@@ -1,4 +1,7 @@
-"""Compiled loops of the spill engine (private; see :mod:`analysis.flood`).
+"""Compiled loops shared by the spill engine (private; see :mod:`analysis.flood`).
+
+Priority-queue and FIFO helpers, depression labelling and spill points, and
+route walking. The flood itself is tiled: see :mod:`analysis._tile_kernels`.
 
 The kernels trust their inputs. :func:`analysis.flood.priority_flood` pads the
 grid, checks every precondition and hands flat arrays over. Each loop is a plain
@@ -9,15 +12,13 @@ Layout shared by all kernels
 ----------------------------
 The grid of ``rows x cols`` cells is stored padded by one cell on every side,
 ``width = cols + 2``, and addressed by flat index ``i = (r + 1) * width + c + 1``.
-Neighbour ``k`` of ``i`` is ``i + offsets[k]``; ``codes[k]`` is the flood-tree code
-that the neighbour receives when it is reached from ``i`` (the code names the
-direction from the neighbour back to ``i``).
+Flood-tree code ``d + 1`` means "the parent is the neighbour in direction
+``d``" of NW, N, NE, W, E, SW, S, SE.
 
-``level``  float32: elevation on entry, onset stage on exit (NaN on padding/nodata).
-``tree``   uint8: 0 unvisited, 1..8 parent direction, 9 outlet, 255 blocked.
-``label``  int32: > 0 provisional depression label of a depression cell; <= 0 on
-           other cells: minus the label of the nearest depression downstream on the
-           route (0 when the route reaches an outlet without crossing one).
+``level``  float32: onset stage (NaN on padding, nodata and unreached cells).
+``state``  uint8: the flood tree: 1..8 parent direction, 9 outlet, 0 unreached;
+           255 marks padding and nodata until the labelling pass sets it to 0.
+``label``  int32: depression id (0 outside depressions).
 """
 
 from __future__ import annotations
@@ -25,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-#: Flood-tree codes (public through analysis.flood).
+#: Cell states; 1..8 are flood-tree codes (public through analysis.flood).
 UNVISITED = 0
 OUTLET = 9
 BLOCKED = 255
@@ -121,180 +122,77 @@ def _find(parent, a):
     return a
 
 
-def _mark_blocked(level, tree):
-    """Block padding and nodata (NaN) cells so the flood never enters them."""
-    for i in range(level.shape[0]):
-        if np.isnan(level[i]):
-            tree[i] = BLOCKED
+def _label_depressions(level, state, label, elevation, row_areas, back, width):
+    """Depression ids and totals: connected components of ``s > z``.
 
-
-def _flood(level, bits, tree, label, outlets, offsets, codes):
-    """Priority-Flood from the outlets, recording the flood tree and labels.
-
-    A variant of the improved Priority-Flood of Barnes, Lehman & Mulla (2014):
-    cells are settled in non-decreasing order of onset stage through a priority
-    queue of packed integer keys. Cells reached below the current level (inside a
-    depression or on a flat at that level) are settled at once through a FIFO
-    queue. Cells reached above the current level are settled at their own
-    elevation, which is final, and their higher neighbours are settled by the same
-    FIFO queue; only cells that still have a lower unsettled neighbour are deferred
-    to the priority queue (the slope shortcut of Zhou, Sun & Fu 2016).
-
-    Returns the number of provisional labels and, per label (1-based), the entry
-    cell (rim cell the depression was entered from), the label value the entry
-    carried (nearest depression downstream, <= 0), and the union-find forest that
-    joins labels of the same depression, plus counters.
-    """
-    n_offsets = offsets.shape[0]
-    steps = offsets.astype(np.uint64)  # two's-complement wrap: cell + step
-
-    heap = np.empty(max(1024, 2 * outlets.shape[0]), dtype=np.uint64)
-    heap_size = 0
-    for k in range(outlets.shape[0]):
-        o = outlets[k]
-        _heap_sift_up(heap, heap_size, _ordered_key(bits[o], o))
-        heap_size += 1
-
-    ring = np.empty(4096, dtype=np.uint64)
-    ring_mask = np.uint64(ring.shape[0] - 1)
-    head = np.uint64(0)
-    queued = np.uint64(0)
-    one = np.uint64(1)
-
-    entry = np.empty(1024, dtype=np.int64)
-    downstream = np.empty(1024, dtype=np.int32)
-    forest = np.empty(1024, dtype=np.int32)
-    entry[0] = -1
-    downstream[0] = 0
-    forest[0] = 0
-    labels = 0
-
-    heap_pops = 0
-    while heap_size > 0:
-        key, heap_size = _heap_pop(heap, heap_size)
-        heap_pops += 1
-        cell = key & _LOW32
-        current = level[cell]
-        while True:
-            here = level[cell]
-            mine = label[cell]
-            in_depression = mine > 0
-            deferred = False
-            for k in range(n_offsets):
-                nb = cell + steps[k]
-                t = tree[nb]
-                if t != UNVISITED:
-                    if in_depression and t != BLOCKED:
-                        other = label[nb]
-                        if other > 0 and other != mine:
-                            ra = _find(forest, mine)
-                            rb = _find(forest, other)
-                            if ra != rb:
-                                if ra < rb:
-                                    forest[rb] = ra
-                                else:
-                                    forest[ra] = rb
-                    continue
-                if level[nb] < here:
-                    if here > current:
-                        deferred = True
-                        continue
-                    level[nb] = here
-                    if in_depression:
-                        label[nb] = mine
-                    else:
-                        # A new provisional label per cell entered from the rim:
-                        # two lower neighbours of one rim cell need not touch.
-                        # Labels that do touch are joined when expanded.
-                        labels += 1
-                        entry = _grow_int64(entry, labels)
-                        downstream = _grow_int32(downstream, labels)
-                        forest = _grow_int32(forest, labels)
-                        entry[labels] = np.int64(cell)
-                        downstream[labels] = mine
-                        forest[labels] = labels
-                        label[nb] = labels
-                else:
-                    label[nb] = -mine if in_depression else mine
-                tree[nb] = codes[k]
-                if queued > ring_mask:
-                    ring = _ring_unrolled(ring, head, queued)
-                    ring_mask = np.uint64(ring.shape[0] - 1)
-                    head = np.uint64(0)
-                ring[(head + queued) & ring_mask] = nb
-                queued += one
-            if deferred:
-                if heap_size == heap.shape[0]:
-                    heap = _grow_uint64(heap, heap_size)
-                _heap_sift_up(heap, heap_size, _ordered_key(bits[cell], cell))
-                heap_size += 1
-            if queued == 0:
-                break
-            cell = ring[head]
-            head = (head + one) & ring_mask
-            queued -= one
-
-    return labels, entry[: labels + 1], downstream[: labels + 1], forest[: labels + 1], heap_pops
-
-
-def _finalise(level, tree, label, elevation, row_areas, forest, width):
-    """Compact depression labels in raster order and total each depression.
-
-    One pass over the grid: unreached valid cells get a NaN onset stage, nodata
-    cells flood-tree code 0, depression cells their final id (1..n in order of
-    first appearance in row-major order) and every other cell 0. Per depression
-    it accumulates cell count, area, volume below the spill level (cell area
-    times depth, summed) and the pit (lowest cell; first in raster order on ties).
+    Two-pass connected-component labelling with union-find (Rosenfeld & Pfaltz
+    1966): the first raster pass gives provisional labels from the neighbours
+    already visited (``back`` offsets) and joins touching labels, always keeping
+    the smaller as root; the second pass numbers components 1..n in order of
+    their first cell in raster order and totals each: cell count, area, volume
+    below the spill level, and the pit (lowest cell, first in raster order on
+    ties). Nodata cells get flood-tree code 0; unreached cells are counted.
     """
     rows, cols = elevation.shape
-    n_prov = forest.shape[0]
-    final_of = np.zeros(n_prov, dtype=np.int32)
-    cap = 64
-    count = np.zeros(cap, dtype=np.int64)
-    area = np.zeros(cap, dtype=np.float64)
-    volume = np.zeros(cap, dtype=np.float64)
-    pit_elevation = np.zeros(cap, dtype=np.float32)
-    pit_cell = np.zeros(cap, dtype=np.int64)
-    pit_label = np.zeros(cap, dtype=np.int32)
-    n_final = 0
+    n_back = back.shape[0]
+    forest = np.empty(1024, dtype=np.int32)
+    forest[0] = 0
+    labels = 0
     unreached = 0
-    last_label = np.int32(0)
-    last_final = np.int32(0)
+    for r in range(rows):
+        base = (r + 1) * width + 1
+        for c in range(cols):
+            i = base + c
+            t = state[i]
+            if t == BLOCKED:
+                state[i] = 0
+                continue
+            if t == UNVISITED:
+                unreached += 1
+                continue
+            if not (level[i] > elevation[r, c]):
+                continue
+            mine = 0
+            for k in range(n_back):
+                other = label[i + back[k]]
+                if other > 0:
+                    other = _find(forest, other)
+                    if mine == 0:
+                        mine = other
+                    elif other != mine:
+                        if other < mine:
+                            forest[mine] = other
+                            mine = other
+                        else:
+                            forest[other] = mine
+            if mine == 0:
+                labels += 1
+                forest = _grow_int32(forest, labels)
+                forest[labels] = labels
+                mine = labels
+            label[i] = mine
+
+    final_of = np.zeros(labels + 1, dtype=np.int32)
+    count = np.zeros(labels + 1, dtype=np.int64)
+    area = np.zeros(labels + 1, dtype=np.float64)
+    volume = np.zeros(labels + 1, dtype=np.float64)
+    pit_elevation = np.full(labels + 1, np.inf, dtype=np.float32)
+    pit_cell = np.zeros(labels + 1, dtype=np.int64)
+    n_final = 0
     for r in range(rows):
         a = row_areas[r]
         base = (r + 1) * width + 1
         for c in range(cols):
             i = base + c
-            t = tree[i]
-            if t == UNVISITED:
-                level[i] = np.nan
-                unreached += 1
-            elif t == BLOCKED:
-                tree[i] = 0
             lab = label[i]
-            if lab <= 0:
-                label[i] = 0
+            if lab == 0:
                 continue
-            if lab == last_label:
-                f = last_final
-            else:
-                root = _find(forest, lab)
-                f = final_of[root]
-                if f == 0:
-                    n_final += 1
-                    f = n_final
-                    final_of[root] = f
-                    if f == cap:
-                        cap *= 2
-                        count = _resize_i64(count, cap)
-                        area = _resize_f64(area, cap)
-                        volume = _resize_f64(volume, cap)
-                        pit_elevation = _resize_f32(pit_elevation, cap)
-                        pit_cell = _resize_i64(pit_cell, cap)
-                        pit_label = _resize_i32(pit_label, cap)
-                    pit_elevation[f] = np.inf
-                last_label = lab
-                last_final = f
+            root = _find(forest, lab)
+            f = final_of[root]
+            if f == 0:
+                n_final += 1
+                f = n_final
+                final_of[root] = f
             z = elevation[r, c]
             count[f] += 1
             area[f] += a
@@ -302,70 +200,51 @@ def _finalise(level, tree, label, elevation, row_areas, forest, width):
             if z < pit_elevation[f]:
                 pit_elevation[f] = z
                 pit_cell[f] = i
-                pit_label[f] = lab
             label[i] = f
     m = n_final + 1
-    return (
-        final_of,
-        count[:m],
-        area[:m],
-        volume[:m],
-        pit_elevation[:m],
-        pit_cell[:m],
-        pit_label[:m],
-        unreached,
-    )
+    return count[:m], area[:m], volume[:m], pit_elevation[:m], pit_cell[:m], unreached
 
 
-def _resize_i64(values, size):
-    out = np.zeros(size, dtype=np.int64)
-    out[: values.shape[0]] = values
-    return out
+def _spill_cells(level, state, label, pit_cell, offsets_by_code):
+    """Spill cell and receiving depression of every depression.
 
-
-def _resize_i32(values, size):
-    out = np.zeros(size, dtype=np.int32)
-    out[: values.shape[0]] = values
-    return out
-
-
-def _resize_f64(values, size):
-    out = np.zeros(size, dtype=np.float64)
-    out[: values.shape[0]] = values
-    return out
-
-
-def _resize_f32(values, size):
-    out = np.zeros(size, dtype=np.float32)
-    out[: values.shape[0]] = values
-    return out
-
-
-def _spill_cells(pit_label, entry, downstream, forest, final_of):
-    """Spill cell and receiving depression of every final depression.
-
-    The route from a depression's pit leaves the depression through the entry
-    cell of the pit's provisional label, unless that entry's own route re-enters
-    the same depression (ties at the spill level): then the walk continues from
-    the entry of the label it re-enters, until the route leaves for good.
+    Walk the flood tree from the pit. The route stays at the depression's level
+    until it reaches the cell where it drops below it (or an outlet); the spill
+    cell is the first cell after the route's last cell in the depression. The
+    receiving depression is the first other depression further down the route
+    (0 when the route reaches an outlet first).
     """
-    n = pit_label.shape[0]
+    n = pit_cell.shape[0]
     spill_cell = np.full(n, -1, dtype=np.int64)
     spills_to = np.zeros(n, dtype=np.int32)
     for f in range(1, n):
-        p = pit_label[f]
+        cell = pit_cell[f]
+        spill_level = level[cell]
+        last_inside = cell
+        # Follow the stretch at the spill level, remembering the last cell of f.
         while True:
-            d = downstream[p]
-            if d < 0:
-                target = final_of[_find(forest, -d)]
-                if target == f:
-                    p = -d
-                    continue
-                spills_to[f] = target
-            else:
-                spills_to[f] = 0
-            spill_cell[f] = entry[p]
-            break
+            t = state[cell]
+            if t == OUTLET:
+                break
+            nxt = cell + offsets_by_code[t - 1]
+            if level[nxt] < spill_level:
+                break
+            cell = nxt
+            if label[cell] == f:
+                last_inside = cell
+        spill = last_inside + offsets_by_code[state[last_inside] - 1]
+        spill_cell[f] = spill
+        # Then on down the route to the next depression or an outlet.
+        cell = spill
+        while True:
+            g = label[cell]
+            if g != 0 and g != f:
+                spills_to[f] = g
+                break
+            t = state[cell]
+            if t == OUTLET:
+                break
+            cell = cell + offsets_by_code[t - 1]
     return spill_cell, spills_to
 
 
@@ -398,12 +277,6 @@ _grow_int64 = njit(cache=True)(_grow_int64)
 _grow_int32 = njit(cache=True)(_grow_int32)
 _ring_unrolled = njit(cache=True)(_ring_unrolled)
 _find = njit(cache=True)(_find)
-_resize_i64 = njit(cache=True)(_resize_i64)
-_resize_i32 = njit(cache=True)(_resize_i32)
-_resize_f64 = njit(cache=True)(_resize_f64)
-_resize_f32 = njit(cache=True)(_resize_f32)
-mark_blocked = njit(cache=True)(_mark_blocked)
-flood = njit(cache=True)(_flood)
-finalise = njit(cache=True)(_finalise)
+label_depressions = njit(cache=True)(_label_depressions)
 spill_cells = njit(cache=True)(_spill_cells)
 walk_route = njit(cache=True)(_walk_route)

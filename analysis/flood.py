@@ -28,12 +28,15 @@ Computers & Geosciences 90, 87-96. doi:10.1016/j.cageo.2016.02.021
 
 from __future__ import annotations
 
+import concurrent.futures
 import dataclasses
+import os
 from typing import TYPE_CHECKING
 
 import numpy as np
 
 from analysis import _flood_kernels as _k
+from analysis import _tile_kernels as _t
 from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -53,6 +56,10 @@ _FOUR = np.array([1, 3, 4, 6])  # N, W, E, S among the eight directions
 
 #: Largest padded grid the packed 32-bit heap index can address.
 MAX_PADDED_CELLS = 2**32 - 1
+#: Side of the square tiles the flood is cut into, in cells. Tiles of this size
+#: keep a tile's working arrays within the processor caches and give the
+#: threads enough tiles to share.
+DEFAULT_TILE_SIZE = 512
 
 
 @dataclasses.dataclass(frozen=True)
@@ -218,19 +225,66 @@ class SpillResult:
         )
 
 
-def _neighbour_steps(connectivity: int, width: int) -> tuple[np.ndarray, np.ndarray]:
-    """Flat offsets of the neighbours in a padded grid and the codes they receive."""
+def _directions(connectivity: int) -> np.ndarray:
+    """Indices (into NW, N, NE, W, E, SW, S, SE) of the neighbours used."""
     if connectivity == 8:
-        chosen = np.arange(8)
-    elif connectivity == 4:
-        chosen = _FOUR
-    else:
-        raise InvalidParameter(f"connectivity must be 4 or 8, not {connectivity!r}")
-    offsets = DIRECTION_ROW[chosen] * width + DIRECTION_COL[chosen]
-    # A neighbour reached through direction d points back along the opposite
-    # direction, 7 - d in the NW..SE order; codes are 1-based.
-    codes = (7 - chosen + 1).astype(np.uint8)
-    return offsets.astype(np.int64), codes
+        return np.arange(8, dtype=np.int64)
+    if connectivity == 4:
+        return _FOUR.astype(np.int64)
+    raise InvalidParameter(f"connectivity must be 4 or 8, not {connectivity!r}")
+
+
+def _tiled_flood(z, mask, dirs, tile, level, tree, label, width) -> int:
+    """Onset stage and flood tree by the tiled Priority-Flood (see _tile_kernels).
+
+    Tiles are flooded, and later finished, on a pool of threads (the kernels
+    release the GIL); the graph between tiles is solved in between.
+    """
+    rows, cols = z.shape
+    tile_rows = -(-rows // tile)
+    tile_cols = -(-cols // tile)
+    bounds = [
+        (ti * tile, min(rows, (ti + 1) * tile), tj * tile, min(cols, (tj + 1) * tile))
+        for ti in range(tile_rows)
+        for tj in range(tile_cols)
+    ]
+
+    def flood_one(b):
+        return _t.flood_tile(
+            z, mask, np.int64(b[0]), np.int64(b[1]), np.int64(b[2]), np.int64(b[3]),
+            DIRECTION_ROW, DIRECTION_COL, dirs, level, tree, label, np.int64(width),
+        )
+
+    workers = min(len(bounds), os.cpu_count() or 1)
+    with concurrent.futures.ThreadPoolExecutor(max_workers=workers) as pool:
+        floods = list(pool.map(flood_one, bounds))
+        seed_counts = np.array([len(f[0]) - 1 for f in floods], dtype=np.int64)
+        base = np.concatenate([[0], np.cumsum(seed_counts)[:-1]]).astype(np.int64)
+        n_nodes = int(seed_counts.sum()) + 1
+        parts = [_t.links(level, tree, label, base, np.int64(tile_rows), np.int64(tile_cols),
+                          np.int64(tile), np.int64(rows), np.int64(cols), np.int64(width),
+                          DIRECTION_ROW, DIRECTION_COL, dirs)]
+        for t, f in enumerate(floods):
+            _, ea, eb, elevel, ecell_a, ecell_b, _ = f
+            eu = np.where(ea == 0, 0, base[t] + ea)
+            ev = np.where(eb == 0, 0, base[t] + eb)
+            parts.append((eu, ev, elevel, ecell_a, ecell_b))
+        eu, ev, elevel, ecu, ecv = (np.concatenate([p[k] for p in parts]) for k in range(5))
+        lam, own_cell, other_cell = _t.solve_graph(
+            np.int64(n_nodes), eu.astype(np.int64), ev.astype(np.int64),
+            elevel.astype(np.float32), ecu.astype(np.int64), ecv.astype(np.int64),
+        )
+
+        def finish_one(k):
+            r0, r1, c0, c1 = bounds[k]
+            _t.finish_tile(
+                np.int64(r0), np.int64(r1), np.int64(c0), np.int64(c1), level, tree, label,
+                base[k], lam, floods[k][0], own_cell, other_cell,
+                DIRECTION_ROW, DIRECTION_COL, np.int64(width),
+            )
+
+        list(pool.map(finish_one, range(len(bounds))))
+    return int(sum(f[6] for f in floods))
 
 
 def _validated_elevation(elevation) -> np.ndarray:
@@ -269,6 +323,7 @@ def priority_flood(
     connectivity: int = 8,
     row_areas=None,
     transform: "Affine | None" = None,
+    tile_size: int | None = None,
 ) -> SpillResult:
     """Onset stage, flood tree and depression inventory of a DEM.
 
@@ -287,6 +342,10 @@ def priority_flood(
         cells).
     transform : affine.Affine, optional
         Grid-to-CRS transform, used for the spill points' x, y.
+    tile_size : int, optional
+        Side of the tiles the flood is cut into (default
+        :data:`DEFAULT_TILE_SIZE`). The onset stage, depression ids and table
+        do not depend on it; the flood tree may differ where routes tie.
 
     Returns
     -------
@@ -333,37 +392,33 @@ def priority_flood(
                 f"row_areas must hold {rows} positive finite cell areas (m²), one per row"
             )
 
-    width = cols + 2
-    level_pad = np.full((rows + 2, width), np.nan, dtype=np.float32)
-    level_pad[1:-1, 1:-1] = z
-    level = level_pad.reshape(-1)
-    tree_pad = np.zeros((rows + 2, width), dtype=np.uint8)
-    tree = tree_pad.reshape(-1)
-    _k.mark_blocked(level, tree)
-
-    flat = np.flatnonzero(mask)
-    outlets = (flat // cols + 1) * width + (flat % cols + 1)
-    outlets = outlets[tree[outlets] != _k.BLOCKED].astype(np.int64)
-    if outlets.size == 0:
+    tile = DEFAULT_TILE_SIZE if tile_size is None else int(tile_size)
+    if tile < 1:
+        raise InvalidParameter(f"tile_size must be a positive number of cells, not {tile_size!r}")
+    if not np.any(mask & ~np.isnan(z)):
         raise InvalidOutlets(
             "no outlet cell lies on valid data; mark at least one cell with an "
             "elevation as an outlet (the DEM edge, cells next to nodata, or a water body)"
         )
-    tree[outlets] = _k.OUTLET
-    del flat
+    dirs = _directions(connectivity)
+    width = cols + 2
+    level_pad = np.empty((rows + 2, width), dtype=np.float32)
+    tree_pad = np.empty((rows + 2, width), dtype=np.uint8)
+    label_pad = np.empty((rows + 2, width), dtype=np.int32)
+    for pad, value in ((level_pad, np.nan), (tree_pad, _k.BLOCKED), (label_pad, 0)):
+        pad[0, :] = pad[-1, :] = pad[:, 0] = pad[:, -1] = value
+    level, tree, label = level_pad.reshape(-1), tree_pad.reshape(-1), label_pad.reshape(-1)
 
-    label_pad = np.zeros((rows + 2, width), dtype=np.int32)
-    label = label_pad.reshape(-1)
-    offsets, codes = _neighbour_steps(connectivity, width)
+    heap_pops = _tiled_flood(z, mask, dirs, tile, level, tree, label, width)
 
-    n_labels, entry, downstream, forest, heap_pops = _k.flood(
-        level, level.view(np.uint32), tree, label, outlets, offsets, codes
+    label_pad[1:-1, 1:-1] = 0
+    steps = DIRECTION_ROW[dirs] * width + DIRECTION_COL[dirs]
+    back = steps[steps < 0].astype(np.int64)
+    count, area, volume, pit_elevation, pit_cell, unreached = _k.label_depressions(
+        level, tree, label, z, areas, back, np.int64(width)
     )
-    del outlets
-    (final_of, count, area, volume, pit_elevation, pit_cell, pit_label, unreached) = _k.finalise(
-        level, tree, label, z, areas, forest, np.int64(width)
-    )
-    spill_cell, spills_to = _k.spill_cells(pit_label, entry, downstream, forest, final_of)
+    by_code = (DIRECTION_ROW * width + DIRECTION_COL).astype(np.int64)
+    spill_cell, spills_to = _k.spill_cells(level, tree, label, pit_cell, by_code)
 
     table = _depression_table(
         level, z.dtype, width, count, area, volume, pit_elevation, pit_cell, spill_cell,
