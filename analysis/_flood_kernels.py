@@ -24,7 +24,7 @@ Flood-tree code ``d + 1`` means "the parent is the neighbour in direction
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
 #: Cell states; 1..8 are flood-tree codes (public through analysis.flood).
 UNVISITED = 0
@@ -120,6 +120,43 @@ def _find(parent, a):
         parent[a] = parent[parent[a]]
         a = parent[a]
     return a
+
+
+def _pad_grids(level, state, label):
+    """Write the padding of the three padded grids, rows in parallel.
+
+    Writing in parallel also spreads the first touch of the fresh pages (the
+    page faults) over the threads; the tile kernels touch the rest.
+    """
+    rows, width = level.shape
+    for r in prange(rows):
+        if r == 0 or r == rows - 1:
+            for c in range(width):
+                level[r, c] = np.nan
+                state[r, c] = BLOCKED
+                label[r, c] = 0
+        else:
+            level[r, 0] = np.nan
+            level[r, width - 1] = np.nan
+            state[r, 0] = BLOCKED
+            state[r, width - 1] = BLOCKED
+            label[r, 0] = 0
+            label[r, width - 1] = 0
+
+
+def _scan_inputs(elevation, outlet_mask):
+    """Count infinite elevations and outlet cells on valid data, rows in parallel."""
+    rows, cols = elevation.shape
+    infinite = 0
+    outlets = 0
+    for r in prange(rows):
+        for c in range(cols):
+            v = elevation[r, c]
+            if np.isinf(v):
+                infinite += 1
+            elif outlet_mask[r, c] and not np.isnan(v):
+                outlets += 1
+    return infinite, outlets
 
 
 def _label_depressions(level, state, label, elevation, row_areas, back, width):
@@ -277,6 +314,8 @@ _grow_int64 = njit(cache=True)(_grow_int64)
 _grow_int32 = njit(cache=True)(_grow_int32)
 _ring_unrolled = njit(cache=True)(_ring_unrolled)
 _find = njit(cache=True)(_find)
+pad_grids = njit(parallel=True, cache=True)(_pad_grids)
+scan_inputs = njit(parallel=True, cache=True)(_scan_inputs)
 label_depressions = njit(cache=True)(_label_depressions)
 spill_cells = njit(cache=True)(_spill_cells)
 walk_route = njit(cache=True)(_walk_route)

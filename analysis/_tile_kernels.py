@@ -75,11 +75,11 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
     lw = w + 2
     n_local = (h + 2) * lw
     n_dirs = dirs.shape[0]
-    offs = np.empty(n_dirs, dtype=np.int64)
+    offs = np.empty(n_dirs, dtype=np.uint64)  # two's-complement wrap: cell + step
     back = np.empty(n_dirs, dtype=np.uint8)
     for k in range(n_dirs):
         d = dirs[k]
-        offs[k] = drow[d] * lw + dcol[d]
+        offs[k] = np.uint64(drow[d] * lw + dcol[d])
         back[k] = 7 - d + 1
 
     lz = np.full(n_local, np.nan, dtype=np.float32)
@@ -127,7 +127,7 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
     hcell_b = np.empty(1 << table_bits, dtype=np.int64)
     n_pairs = 0
 
-    ring = np.empty(1024, dtype=np.int64)
+    ring = np.empty(1024, dtype=np.uint64)
     ring_mask = ring.shape[0] - 1
     head = 0
     queued = 0
@@ -135,7 +135,7 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
     while heap_size > 0:
         key, heap_size = _heap_pop(heap, heap_size)
         heap_pops += 1
-        cell = np.int64(key & _LOW32)
+        cell = key & _LOW32
         current = lz[cell]
         while True:
             here = lz[cell]
@@ -169,8 +169,8 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
                     if hkey[slot] == _EMPTY:
                         hkey[slot] = pair
                         hlevel[slot] = meet
-                        hcell_a[slot] = ca
-                        hcell_b[slot] = cb
+                        hcell_a[slot] = np.int64(ca)
+                        hcell_b[slot] = np.int64(cb)
                         n_pairs += 1
                         if 2 * n_pairs > (1 << table_bits):
                             table_bits += 1
@@ -179,8 +179,8 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
                             )
                     elif meet < hlevel[slot]:
                         hlevel[slot] = meet
-                        hcell_a[slot] = ca
-                        hcell_b[slot] = cb
+                        hcell_a[slot] = np.int64(ca)
+                        hcell_b[slot] = np.int64(cb)
                     continue
                 if lz[nb] < here:
                     if here > current:
@@ -198,7 +198,7 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
             if deferred:
                 if heap_size == heap.shape[0]:
                     heap = _grow_uint64(heap, heap_size)
-                _heap_sift_up(heap, heap_size, _ordered_key(bits[cell], np.uint64(cell)))
+                _heap_sift_up(heap, heap_size, _ordered_key(bits[cell], cell))
                 heap_size += 1
             if queued == 0:
                 break
@@ -401,17 +401,21 @@ def _solve_graph(n_nodes, eu, ev, elevel, ecu, ecv):
 
 def _finish_tile(r0, r1, c0, c1, level, state, label, base, lam, seeds, own_cell,
                  other_cell, drow, dcol, width):
-    """Step 3 for one tile: final onset stage and the seeds' way out."""
+    """Step 3 for one tile: final onset stage and the seeds' way out.
+
+    Also clears the tile's labels, so the label array can take depression ids.
+    """
     for r in range(r0, r1):
         gbase = (r + 1) * width + c0 + 1
         for i in range(gbase, gbase + (c1 - c0)):
             t = state[i]
+            lab = label[i]
+            label[i] = 0  # the array is reused for depression ids
             if t == BLOCKED:
                 continue
             if t == UNVISITED:
                 level[i] = np.nan
                 continue
-            lab = label[i]
             if lab == 0:
                 continue
             held = lam[base + lab]

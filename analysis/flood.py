@@ -28,9 +28,9 @@ Computers & Geosciences 90, 87-96. doi:10.1016/j.cageo.2016.02.021
 
 from __future__ import annotations
 
-import concurrent.futures
 import dataclasses
 import os
+import threading
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -234,10 +234,38 @@ def _directions(connectivity: int) -> np.ndarray:
     raise InvalidParameter(f"connectivity must be 4 or 8, not {connectivity!r}")
 
 
+def _on_threads(fn, items, workers: int) -> list:
+    """``[fn(x) for x in items]`` on ``workers`` threads (x taken in turn).
+
+    The compiled tile kernels release the GIL, so the threads run at once.
+    Plain threads rather than an executor: one hand-off per thread, not per tile.
+    """
+    items = list(items)
+    results = [None] * len(items)
+    errors = []
+
+    def run(start):
+        try:
+            for k in range(start, len(items), workers):
+                results[k] = fn(items[k])
+        except BaseException as exc:  # re-raised in the caller's thread
+            errors.append(exc)
+
+    threads = [threading.Thread(target=run, args=(w,)) for w in range(1, workers)]
+    for th in threads:
+        th.start()
+    run(0)
+    for th in threads:
+        th.join()
+    if errors:
+        raise errors[0]
+    return results
+
+
 def _tiled_flood(z, mask, dirs, tile, level, tree, label, width) -> int:
     """Onset stage and flood tree by the tiled Priority-Flood (see _tile_kernels).
 
-    Tiles are flooded, and later finished, on a pool of threads (the kernels
+    Tiles are flooded, and later finished, on several threads (the kernels
     release the GIL); the graph between tiles is solved in between.
     """
     rows, cols = z.shape
@@ -256,34 +284,33 @@ def _tiled_flood(z, mask, dirs, tile, level, tree, label, width) -> int:
         )
 
     workers = min(len(bounds), os.cpu_count() or 1)
-    with concurrent.futures.ThreadPoolExecutor(max_workers=workers) as pool:
-        floods = list(pool.map(flood_one, bounds))
-        seed_counts = np.array([len(f[0]) - 1 for f in floods], dtype=np.int64)
-        base = np.concatenate([[0], np.cumsum(seed_counts)[:-1]]).astype(np.int64)
-        n_nodes = int(seed_counts.sum()) + 1
-        parts = [_t.links(level, tree, label, base, np.int64(tile_rows), np.int64(tile_cols),
-                          np.int64(tile), np.int64(rows), np.int64(cols), np.int64(width),
-                          DIRECTION_ROW, DIRECTION_COL, dirs)]
-        for t, f in enumerate(floods):
-            _, ea, eb, elevel, ecell_a, ecell_b, _ = f
-            eu = np.where(ea == 0, 0, base[t] + ea)
-            ev = np.where(eb == 0, 0, base[t] + eb)
-            parts.append((eu, ev, elevel, ecell_a, ecell_b))
-        eu, ev, elevel, ecu, ecv = (np.concatenate([p[k] for p in parts]) for k in range(5))
-        lam, own_cell, other_cell = _t.solve_graph(
-            np.int64(n_nodes), eu.astype(np.int64), ev.astype(np.int64),
-            elevel.astype(np.float32), ecu.astype(np.int64), ecv.astype(np.int64),
+    floods = _on_threads(flood_one, bounds, workers)
+    seed_counts = np.array([len(f[0]) - 1 for f in floods], dtype=np.int64)
+    base = np.concatenate([[0], np.cumsum(seed_counts)[:-1]]).astype(np.int64)
+    n_nodes = int(seed_counts.sum()) + 1
+    parts = [_t.links(level, tree, label, base, np.int64(tile_rows), np.int64(tile_cols),
+                      np.int64(tile), np.int64(rows), np.int64(cols), np.int64(width),
+                      DIRECTION_ROW, DIRECTION_COL, dirs)]
+    for t, f in enumerate(floods):
+        _, ea, eb, elevel, ecell_a, ecell_b, _ = f
+        eu = np.where(ea == 0, 0, base[t] + ea)
+        ev = np.where(eb == 0, 0, base[t] + eb)
+        parts.append((eu, ev, elevel, ecell_a, ecell_b))
+    eu, ev, elevel, ecu, ecv = (np.concatenate([p[k] for p in parts]) for k in range(5))
+    lam, own_cell, other_cell = _t.solve_graph(
+        np.int64(n_nodes), eu.astype(np.int64), ev.astype(np.int64),
+        elevel.astype(np.float32), ecu.astype(np.int64), ecv.astype(np.int64),
+    )
+
+    def finish_one(k):
+        r0, r1, c0, c1 = bounds[k]
+        _t.finish_tile(
+            np.int64(r0), np.int64(r1), np.int64(c0), np.int64(c1), level, tree, label,
+            base[k], lam, floods[k][0], own_cell, other_cell,
+            DIRECTION_ROW, DIRECTION_COL, np.int64(width),
         )
 
-        def finish_one(k):
-            r0, r1, c0, c1 = bounds[k]
-            _t.finish_tile(
-                np.int64(r0), np.int64(r1), np.int64(c0), np.int64(c1), level, tree, label,
-                base[k], lam, floods[k][0], own_cell, other_cell,
-                DIRECTION_ROW, DIRECTION_COL, np.int64(width),
-            )
-
-        list(pool.map(finish_one, range(len(bounds))))
+    _on_threads(finish_one, range(len(bounds)), workers)
     return int(sum(f[6] for f in floods))
 
 
@@ -311,8 +338,6 @@ def _validated_elevation(elevation) -> np.ndarray:
             z = z.astype(np.float32)  # rounded to the nearest float32
         else:
             raise InvalidDEM(f"elevations must be numbers, not {z.dtype}")
-    if np.isinf(z).any():
-        z = np.where(np.isinf(z), np.float32(np.nan), z)
     return np.ascontiguousarray(z)
 
 
@@ -395,7 +420,10 @@ def priority_flood(
     tile = DEFAULT_TILE_SIZE if tile_size is None else int(tile_size)
     if tile < 1:
         raise InvalidParameter(f"tile_size must be a positive number of cells, not {tile_size!r}")
-    if not np.any(mask & ~np.isnan(z)):
+    infinite, valid_outlets = _k.scan_inputs(z, mask)
+    if infinite:
+        z = np.where(np.isinf(z), np.float32(np.nan), z)
+    if valid_outlets == 0:
         raise InvalidOutlets(
             "no outlet cell lies on valid data; mark at least one cell with an "
             "elevation as an outlet (the DEM edge, cells next to nodata, or a water body)"
@@ -405,13 +433,11 @@ def priority_flood(
     level_pad = np.empty((rows + 2, width), dtype=np.float32)
     tree_pad = np.empty((rows + 2, width), dtype=np.uint8)
     label_pad = np.empty((rows + 2, width), dtype=np.int32)
-    for pad, value in ((level_pad, np.nan), (tree_pad, _k.BLOCKED), (label_pad, 0)):
-        pad[0, :] = pad[-1, :] = pad[:, 0] = pad[:, -1] = value
+    _k.pad_grids(level_pad, tree_pad, label_pad)
     level, tree, label = level_pad.reshape(-1), tree_pad.reshape(-1), label_pad.reshape(-1)
 
     heap_pops = _tiled_flood(z, mask, dirs, tile, level, tree, label, width)
 
-    label_pad[1:-1, 1:-1] = 0
     steps = DIRECTION_ROW[dirs] * width + DIRECTION_COL[dirs]
     back = steps[steps < 0].astype(np.int64)
     count, area, volume, pit_elevation, pit_cell, unreached = _k.label_depressions(

@@ -69,7 +69,7 @@ def child(kind: str, path: str, repeat: int) -> dict:
     if kind == "sillmark":
         from analysis.flood import priority_flood
 
-        priority_flood(z[:64, :64].copy(), _edge((64, 64)))  # compile outside the timing
+        priority_flood(z[:600, :600].copy(), _edge((600, 600)), tile_size=256)  # compile outside the timing
 
         def run():
             return priority_flood(z, outlets)
