@@ -521,11 +521,14 @@ def depression_hierarchy(
     dep = result.depression_id
 
     # Depression cells in ascending (elevation, row-major index) order.
-    flat = np.flatnonzero(dep.reshape(-1) > 0)
+    # One contiguous copy: the engine's id raster is a view into a padded grid,
+    # and reshaping a view copies it each time.
+    dep_flat = np.ascontiguousarray(dep).reshape(-1)
+    flat = np.flatnonzero(dep_flat > 0)
     z_sel = z.reshape(-1)[flat]
     if not np.all(np.isfinite(z_sel)):
         raise InvalidParameter("the SpillResult marks nodata cells as depression cells")
-    dep_sel = dep.reshape(-1)[flat]
+    dep_sel = dep_flat[flat]
     if flat.size and int(dep_sel.max()) > n_dep:
         raise InvalidParameter("the SpillResult's depression ids do not match its table")
     # Depression by depression (they never touch, and each is compact, which
