@@ -6,9 +6,12 @@
 ``assets.geojson``           RFC 7946 (WGS 84 lon/lat): a Point per asset, and optionally
                              the route of each as a LineString and its controlling sill
                              as a Point; ``feature_kind`` tells them apart
+``what_if_raise_{H}.csv``    one row per asset behind a sill: its onset stage now and with
+                             the controlling sill raised by ``H``, the sill before and
+                             after, the gain and an explanation
 ===========================  =============================================================
 
-Both carry :data:`analysis.SCREENING_CAUTION` and are written atomically
+All carry :data:`analysis.SCREENING_CAUTION` and are written atomically
 (temporary file, then rename) with :func:`analysis.export.atomic_output`. Assets
 without figures (outside the DEM, on nodata, not reached) are kept, with empty
 fields (CSV) or null values (GeoJSON) and their status.
@@ -28,7 +31,7 @@ from typing import Any
 import numpy as np
 
 from analysis import SCREENING_CAUTION
-from analysis.assets import STATE_FLOODED, AssetTable
+from analysis.assets import STATE_FLOODED, AssetTable, WhatIf
 from analysis.errors import InvalidParameter
 from analysis.export import (
     COORDINATE_DECIMALS,
@@ -46,8 +49,12 @@ __all__ = [
     "FEATURE_ROUTE",
     "FEATURE_SILL",
     "asset_columns",
+    "asset_file_names",
+    "what_if_file_name",
+    "what_if_row",
     "write_assets_csv",
     "write_assets_geojson",
+    "write_what_if_csv",
 ]
 
 #: Values of the ``feature_kind`` property in ``assets.geojson``.
@@ -360,3 +367,141 @@ def _corner_index(cells: np.ndarray) -> np.ndarray:
 def _check(table: AssetTable) -> None:
     if not isinstance(table, AssetTable):
         raise InvalidParameter(f"expected an AssetTable from assess_assets(), not {type(table).__name__}")
+
+
+# --------------------------------------------------------------------------- file names
+
+
+def asset_file_names(level: Any, unit: Any) -> tuple[str, str]:
+    """``assets_{h}.csv`` and ``assets_{h}.geojson`` for one water level.
+
+    ``{h}`` is :func:`analysis.stage_export.level_label`, as in the other files
+    of the level.
+
+    >>> asset_file_names(47.6, "m")
+    ('assets_47.60m.csv', 'assets_47.60m.geojson')
+    """
+    from analysis.stage_export import level_label
+
+    h = level_label(level, unit)
+    return f"assets_{h}.csv", f"assets_{h}.geojson"
+
+
+def what_if_file_name(height: Any, unit: Any) -> str:
+    """``what_if_raise_{H}.csv``, with ``H`` the height written like a level.
+
+    >>> what_if_file_name(0.5, "m"), what_if_file_name(2, "ft")
+    ('what_if_raise_0.50m.csv', 'what_if_raise_2.00ft.csv')
+    """
+    from analysis.stage_export import level_label
+
+    return f"what_if_raise_{level_label(height, unit)}.csv"
+
+
+# --------------------------------------------------------------------------- what-if
+
+
+def what_if_row(what_if: WhatIf, dem: Any, *, kind: str = "", assets_behind_sill: int = 1) -> dict[str, Any]:
+    """One row of ``what_if_raise_{H}.csv`` as plain values, units in the keys.
+
+    Elevations and onset stages are the shortest decimals of their float32
+    values; ``gain_{u}`` is the decimal difference of the onset stages (as the
+    depths of :func:`asset_columns`). ``assets_behind_sill`` is how many assets
+    share the raised sill (one flood serves them all). The row holds no arrays,
+    so keeping it does not keep the what-if's flood alive.
+    """
+    if not isinstance(what_if, WhatIf):
+        raise InvalidParameter(f"expected a WhatIf from raise_sill(), not {type(what_if).__name__}")
+    v = unit_suffix(what_if.unit)
+    h = horizontal_unit_suffix(dem)
+    before, after = what_if.sill_before, what_if.sill_after
+
+    def f32(value: Any) -> float:
+        return float(_short(value))
+
+    return {
+        "name": what_if.name if what_if.name is not None else "",
+        "kind": kind,
+        "row": int(what_if.row),
+        "col": int(what_if.col),
+        f"height_{v}": f32(what_if.height),
+        f"onset_before_{v}": f32(what_if.onset_before),
+        f"onset_after_{v}": f32(what_if.onset_after),
+        f"gain_{v}": _difference(what_if.onset_after, what_if.onset_before),
+        "sill_before_row": int(before.row),
+        "sill_before_col": int(before.col),
+        f"sill_before_x_{h}": float(before.x),
+        f"sill_before_y_{h}": float(before.y),
+        f"sill_before_elevation_{v}": f32(before.elevation),
+        f"raised_elevation_{v}": f32(what_if.raised_elevation),
+        "sill_after_row": int(after.row),
+        "sill_after_col": int(after.col),
+        f"sill_after_x_{h}": float(after.x),
+        f"sill_after_y_{h}": float(after.y),
+        f"sill_after_elevation_{v}": f32(after.elevation),
+        "raised_cell_controls": bool(what_if.raised_cell_controls),
+        "assets_behind_sill": int(assets_behind_sill),
+        "explanation": what_if.explanation,
+    }
+
+
+def write_what_if_csv(
+    rows: list[dict[str, Any]],
+    dem: Any,
+    path: str | os.PathLike,
+    *,
+    height: Any,
+    notes: tuple[str, ...] | list[str] = (),
+) -> Path:
+    """Write ``what_if_raise_{H}.csv`` from rows of :func:`what_if_row`, in the order given.
+
+    ``# `` comment lines hold the caution, the height, the unit, the CRS, what
+    the columns mean and ``notes`` (e.g. which assets were passed over and
+    why); then a header and the rows. With no rows the header is still written.
+    """
+    from analysis.units import VerticalUnit
+
+    unit = VerticalUnit.parse(dem.vertical_unit)
+    v = unit_suffix(unit)
+    h = horizontal_unit_suffix(dem)
+    header = list(rows[0]) if rows else list(_what_if_header(v, h))
+    for row in rows:
+        if list(row) != header:
+            raise InvalidParameter("the what-if rows differ in their columns; build them all with what_if_row()")
+    final = Path(path)
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", newline="", encoding="utf-8") as f:
+            f.write(f"# Sillmark {sillmark_version()} what-if: controlling sills raised\n")
+            f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
+            f.write(f"# height: each controlling sill raised by {_short(height)} {unit.symbol} "
+                    f"({unit_name(unit)}), one sill at a time, the site flooded again for each\n")
+            f.write(f"# vertical unit: {unit.value} ({unit_name(unit)})\n")
+            f.write(f"# CRS: {crs_label(dem)}\n")
+            f.write(
+                f"# onset_before_{v}, onset_after_{v}: outlet water level at which surface water first "
+                f"reaches the asset now and with the raised sill; gain_{v} = after - before "
+                f"(between 0 and the height)\n"
+            )
+            f.write(
+                "# sill_before_*: the controlling sill now (the cell raised); sill_after_*: the "
+                "controlling sill with it raised (raised_cell_controls = it is still the raised cell)\n"
+            )
+            f.write("# assets_behind_sill: assets sharing the raised sill (one recompute serves them all)\n")
+            f.write("# row, col, sill_*_row, sill_*_col: 0-based cell indices, rows from the top\n")
+            for note in notes:
+                f.write(f"# {note}\n")
+            writer = csv.writer(f, lineterminator="\n")
+            writer.writerow(header)
+            for row in rows:
+                writer.writerow(_csv_text(value) for value in row.values())
+    return final
+
+
+def _what_if_header(v: str, h: str) -> tuple[str, ...]:
+    return (
+        "name", "kind", "row", "col", f"height_{v}", f"onset_before_{v}", f"onset_after_{v}",
+        f"gain_{v}", "sill_before_row", "sill_before_col", f"sill_before_x_{h}", f"sill_before_y_{h}",
+        f"sill_before_elevation_{v}", f"raised_elevation_{v}", "sill_after_row", "sill_after_col",
+        f"sill_after_x_{h}", f"sill_after_y_{h}", f"sill_after_elevation_{v}",
+        "raised_cell_controls", "assets_behind_sill", "explanation",
+    )

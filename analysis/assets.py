@@ -53,7 +53,9 @@ __all__ = [
     "assess_assets",
     "assets_from_points",
     "raise_sill",
+    "raise_sills",
     "read_assets",
+    "what_if_at",
 ]
 
 #: Most assets one file may hold unless the caller allows more (``max_assets``).
@@ -1172,6 +1174,15 @@ def raise_sill(
     # specialisation analyse_site() already used (no second compilation).
     z.flags.writeable = False
     after = priority_flood(z, mask, connectivity=conn, row_areas=dem.row_areas, transform=dem.transform)
+    return _read_what_if(dem, result, after, name, r, c, before, float(old), float(new), h)
+
+
+def _read_what_if(
+    dem: "DEM", result: SpillResult, after: SpillResult, name: str | None, r: int, c: int,
+    before: Any, old: float, new: float, h: float,
+) -> WhatIf:
+    """The :class:`WhatIf` of place ``(r, c)`` from the flood ``after`` with its sill raised."""
+    sr, sc = before.sill_row, before.sill_col
     route = after.route(r, c)
     unit = VerticalUnit.parse(dem.vertical_unit)
 
@@ -1179,7 +1190,7 @@ def raise_sill(
         x, y = dem.xy(row, col)
         return Sill(int(row), int(col), x, y, float(elevation))
 
-    raised = sill(sr, sc, float(old))
+    raised = sill(sr, sc, old)
     sill_after = sill(route.sill_row, route.sill_col, route.sill_elevation)
     onset_before = float(result.onset_stage[r, c])
     onset_after = float(after.onset_stage[r, c])
@@ -1192,7 +1203,7 @@ def raise_sill(
         col=c,
         height=h,
         raised=raised,
-        raised_elevation=float(new),
+        raised_elevation=new,
         own_sill=own,
         onset_before=onset_before,
         onset_after=onset_after,
@@ -1202,9 +1213,102 @@ def raise_sill(
         route_after=cells_after,
         route_after_xy=np.column_stack([xa, ya]),
         unit=unit,
-        explanation=_explain(raised, float(new), h, own, onset_before, onset_after, sill_after, unit),
+        explanation=_explain(raised, new, h, own, onset_before, onset_after, sill_after, unit),
         result=after,
     )
+
+
+def what_if_at(what_if: WhatIf, dem: "DEM", result: SpillResult, asset_or_cell: Any) -> WhatIf:
+    """The raised sill of ``what_if`` read at another place it controls: no second flood.
+
+    Places behind one sill share its what-if: the raised DEM is the same, so
+    its flood (``what_if.result``) answers for all of them. The returned
+    :class:`WhatIf` shares that result.
+
+    Parameters
+    ----------
+    what_if : WhatIf
+        From :func:`raise_sill` on ``dem`` and ``result``.
+    dem : DEM
+    result : SpillResult
+        The flood ``what_if`` was computed from (before raising).
+    asset_or_cell : Asset or (row, col)
+        A place whose controlling sill in ``result`` is the cell ``what_if`` raised.
+
+    Raises
+    ------
+    InvalidParameter
+        ``what_if`` is not a WhatIf of this DEM, or the place's controlling
+        sill is another cell (run :func:`raise_sill` for it).
+    LocationOutsideDEM
+        The place is outside the grid, on nodata, or reached by no outlet.
+    """
+    if not isinstance(what_if, WhatIf):
+        raise InvalidParameter(f"expected a WhatIf from raise_sill(), not {type(what_if).__name__}")
+    _check_result(dem, result)
+    if what_if.result.elevation.shape != dem.shape:
+        raise InvalidParameter("the what-if was computed on another grid; run raise_sill() on this DEM")
+    name, r, c = _target(asset_or_cell)
+    before = result.route(r, c)
+    cell = (before.sill_row, before.sill_col)
+    if cell != (what_if.raised.row, what_if.raised.col):
+        raise InvalidParameter(
+            f"the controlling sill of the place at row {r}, col {c} is the cell at row {cell[0]}, "
+            f"col {cell[1]}, not the raised cell at row {what_if.raised.row}, col "
+            f"{what_if.raised.col}; run raise_sill() for it"
+        )
+    return _read_what_if(
+        dem, result, what_if.result, name, r, c, before, what_if.raised.elevation,
+        what_if.raised_elevation, what_if.height,
+    )
+
+
+def raise_sills(
+    dem: "DEM",
+    outlets_mask: "Outlets | np.ndarray",
+    result: SpillResult,
+    assets: Assets,
+    height: Any,
+) -> Iterator[tuple[int, WhatIf]]:
+    """:func:`raise_sill` for every asset behind a sill, one flood per distinct sill cell.
+
+    Assets whose controlling sill is their own cell (no sill between them and
+    the water), and assets without figures (outside the DEM, on nodata, not
+    reached), are passed over. The others are grouped by their controlling
+    sill cell, in the order each sill is first met; for each group the sill is
+    raised and the site flooded once (:func:`raise_sill`), and every asset of
+    the group read from that flood (:func:`what_if_at`).
+
+    Yields
+    ------
+    (int, WhatIf)
+        The asset's 0-based index in ``assets`` and its what-if, group by group.
+
+    Notes
+    -----
+    Each group's flood is held only while its what-ifs are (about 9 bytes per
+    cell): consume them one group at a time and keep what you need, not the
+    WhatIf objects, to free it. ``height`` is checked before any flood is run.
+    """
+    if not isinstance(assets, Assets):
+        raise InvalidParameter(f"assets must come from read_assets(), not {type(assets).__name__}")
+    _check_result(dem, result)
+    _height(height)
+    groups: dict[tuple[int, int], list[int]] = {}
+    for k, a in enumerate(assets):
+        if a.status != STATUS_OK or result.flood_tree[a.row, a.col] == 0:
+            continue
+        route = result.route(a.row, a.col)
+        cell = (int(route.sill_row), int(route.sill_col))
+        if cell == (a.row, a.col):
+            continue
+        groups.setdefault(cell, []).append(k)
+    for members in groups.values():
+        first = raise_sill(dem, outlets_mask, result, assets[members[0]], height)
+        yield members[0], first
+        for k in members[1:]:
+            yield k, what_if_at(first, dem, result, assets[k])
+        del first
 
 
 def _target(asset_or_cell: Any) -> tuple[str | None, int, int]:

@@ -10,6 +10,9 @@
 ``depressions.csv``         one row per depression, units in the column names
 ``depressions.geojson``     one (Multi)Polygon per depression, WGS84 lon/lat
 ``spill_points.geojson``    one Point per depression at its spill cell centre, WGS84
+``depression_hierarchy.*``  the nested depressions, ``.csv`` and ``.json`` (see
+                            :mod:`analysis.hierarchy_export`)
+``depression_curves.csv``   stage–area and stage–storage of every hierarchy node
 ``summary.json``            grid, outlets, totals, version, time and the list of files
 ==========================  ==========================================================
 
@@ -115,6 +118,9 @@ FILE_NAMES = (
     "depressions.csv",
     "depressions.geojson",
     "spill_points.geojson",
+    "depression_hierarchy.csv",
+    "depression_hierarchy.json",
+    "depression_curves.csv",
     "summary.json",
 )
 
@@ -808,6 +814,7 @@ def write_results(
     outlets: "Outlets",
     out_dir: str | os.PathLike,
     *,
+    hierarchy=None,
     progress: Progress | None = None,
 ) -> list[Path]:
     """Write every result file of one site run into ``out_dir``; return their paths.
@@ -823,6 +830,10 @@ def write_results(
     dem : DEM
     outlets : Outlets
     out_dir : path
+    hierarchy : DepressionHierarchy, optional, keyword-only
+        :func:`analysis.hierarchy.site_hierarchy` of ``dem`` and ``result``, if the
+        caller has it already; computed here otherwise (a fraction of a second
+        for a few million cells).
     progress : callable, optional, keyword-only
         ``progress(file_name, done, total)``, see :data:`Progress`.
 
@@ -843,8 +854,12 @@ def write_results(
     Notes
     -----
     Memory: one block of :data:`BLOCK_ROWS` rows per raster, a boolean mask of
-    the grid while outlining depressions, and the outlines themselves.
+    the grid while outlining depressions, and the outlines themselves; the
+    depression hierarchy when it is computed here (see
+    :func:`analysis.hierarchy.depression_hierarchy`).
     """
+    from analysis import hierarchy_export  # imports this module: not at the top
+
     _check_shapes(result, dem)
     _pyproj_crs(dem)  # fail before writing anything if there is no CRS
     out = Path(out_dir)
@@ -869,10 +884,22 @@ def write_results(
         step(FILE_NAMES[5], lambda: write_depressions_geojson(result, dem, out / FILE_NAMES[5])),
         step(FILE_NAMES[6], lambda: write_spill_points_geojson(result, dem, out / FILE_NAMES[6])),
     ]
+    if hierarchy is None:
+        from analysis.hierarchy import site_hierarchy
+
+        hierarchy = site_hierarchy(dem, result)
+    writers = (
+        hierarchy_export.write_hierarchy_csv,
+        hierarchy_export.write_hierarchy_json,
+        hierarchy_export.write_curves_csv,
+    )
+    for name, writer in zip(hierarchy_export.HIERARCHY_FILE_NAMES, writers):
+        paths.append(step(name, lambda w=writer, n=name: w(hierarchy, dem, out / n)))
+    summary_name = FILE_NAMES[-1]
     paths.append(
         step(
-            FILE_NAMES[7],
-            lambda: write_summary(result, dem, outlets, out / FILE_NAMES[7], files=[p.name for p in paths]),
+            summary_name,
+            lambda: write_summary(result, dem, outlets, out / summary_name, files=[p.name for p in paths]),
         )
     )
     return paths

@@ -4,7 +4,10 @@
 engine and writes the result files (see :mod:`analysis.export`), then prints a
 short summary. ``sillmark stage SOURCE --level H --out DIR`` writes the
 water-level maps at outlet water levels and the stage table (see
-:mod:`analysis.stage_export`), from a DEM or from the folder ``analyse`` wrote.
+:mod:`analysis.stage_export`), from a DEM or from the folder ``analyse`` wrote;
+with ``--assets FILE`` also each asset's state, depth and controlling sill at
+every level, and with ``--raise-sill HEIGHT`` what raising each controlling
+sill would gain (see :mod:`analysis.assets`, :mod:`analysis.asset_export`).
 Errors Sillmark expects (bad input, unwritable output) end the run with one line
 ``sillmark: error: ...`` on stderr and exit status 2.
 
@@ -45,7 +48,9 @@ _ANALYSE_DESCRIPTION = (
     "Read a DEM, mark its outlets, compute the onset stage, flood tree, depressions "
     "and spill points, and write them to a folder: GeoTIFF rasters (onset_stage, "
     "fill_depth, depression_id, flood_tree), depressions.csv, depressions.geojson, "
-    "spill_points.geojson and summary.json."
+    "spill_points.geojson, the nested depressions (depression_hierarchy.csv and "
+    ".json), every depression's stage-area and stage-storage curve "
+    "(depression_curves.csv) and summary.json."
 )
 _ANALYSE_EPILOG = (
     _wrap(
@@ -81,7 +86,11 @@ _STAGE_DESCRIPTION = (
     "cell (water_state_H.tif: dry, flooded or shielded low ground), the flooded and "
     "the shielded outlines (flood_extent_H.geojson, shielded_H.geojson) and every "
     "depression's state and freeboard (depressions_at_H.csv); with --table-step, "
-    "flooded and shielded area and volume against level (stage_table.csv)."
+    "flooded and shielded area and volume against level (stage_table.csv). With "
+    "--assets, every asset's state, depth, onset stage, route and controlling sill at "
+    "each level (assets_H.csv, assets_H.geojson); with --raise-sill, how much later "
+    "each asset behind a sill would get wet if that sill were higher "
+    "(what_if_raise_HEIGHT.csv)."
 )
 _STAGE_EPILOG = (
     _wrap(
@@ -107,9 +116,20 @@ _STAGE_EPILOG = (
         f"more than {WRONG_UNIT_FACTOR:g} times the site's elevation range above its "
         "highest ground is refused as probably in the wrong unit, unless --force."
     )
+    + "\n\n"
+    + _wrap(
+        "--assets FILE is a CSV with a name column and x, y in the DEM's CRS (or lon, lat "
+        "in WGS 84 degrees), optionally kind, or a GeoJSON of Point features; it needs at "
+        "least one --level. Assets outside the DEM or on nodata are listed without "
+        "figures. --raise-sill HEIGHT (with --assets) raises, one at a time, the "
+        "controlling sill of every asset that has one (not its own ground) by HEIGHT in "
+        "the site's vertical unit and floods the site again, once per distinct sill; "
+        "water may then come another way, over a sill that was higher."
+    )
     + "\n\nexamples:\n"
     + "  sillmark stage site.tif --outlet nodata --level 47.6 --level 48.2 --out results/stage\n"
-    + "  sillmark stage results/site --level 47.6 --table-step 0.1 --out results/stage\n\n"
+    + "  sillmark stage results/site --level 47.6 --table-step 0.1 --out results/stage\n"
+    + "  sillmark stage results/site --level 47.6 --assets assets.csv --raise-sill 0.5 --out results/stage\n\n"
     + _wrap(
         "Exit status: 0 on success, 2 on a usage or input error (one line on stderr), "
         "130 when interrupted."
@@ -186,6 +206,19 @@ def _level_step(text: str) -> float:
     return value
 
 
+def _sill_height(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not (math.isfinite(value) and value > 0):
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a height to raise a sill by; give a positive number in the "
+            "site's vertical unit, e.g. 0.5"
+        )
+    return value
+
+
 def _crs(text: str) -> str:
     value = text.strip()
     if re.fullmatch(r"\d+(\+\d+)?", value):  # 32633, or 32633+5773 with a vertical CRS
@@ -248,6 +281,16 @@ def build_parser() -> argparse.ArgumentParser:
         help="highest level of the stage table (default: the highest spill elevation)",
     )
     stage.add_argument(
+        "--assets", default=None, metavar="FILE",
+        help="assets (CSV with name and x/y or lon/lat columns, or GeoJSON points): "
+        "write assets_H.csv and assets_H.geojson for each level",
+    )
+    stage.add_argument(
+        "--raise-sill", type=_sill_height, default=None, metavar="HEIGHT",
+        help="with --assets: raise each asset's controlling sill by HEIGHT (site's vertical "
+        "unit), flood again, and write what_if_raise_HEIGHT.csv",
+    )
+    stage.add_argument(
         "--out", required=True, metavar="DIR",
         help="folder for the result files; created if missing, Sillmark's own file names replaced",
     )
@@ -257,7 +300,54 @@ def build_parser() -> argparse.ArgumentParser:
         help="use levels that look like they are in the wrong unit",
     )
     stage.set_defaults(run=_run_stage)
+
+    serve = commands.add_parser(
+        "serve",
+        help="run the browser app (registers and analyses the demo site on first start)",
+        description=_wrap(_SERVE_DESCRIPTION),
+        epilog=_SERVE_EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    serve.add_argument("--host", default="127.0.0.1",
+                       help="address to listen on (default 127.0.0.1: this machine only)")
+    serve.add_argument("--port", type=_port, default=8150, help="port to listen on (default 8150)")
+    serve.add_argument(
+        "--data", default=None, metavar="DIR",
+        help="data folder for sites, results and settings (default: $SILLMARK_DATA, else ~/.sillmark)",
+    )
+    serve.add_argument("--threads", type=_positive_int, default=8, help="request threads (default 8)")
+    serve.set_defaults(run=_run_serve)
     return parser
+
+
+_SERVE_DESCRIPTION = (
+    "Serve Sillmark's browser app with waitress: upload DEMs, set outlets, follow the "
+    "analysis, move the outlet water level and read depths, routes and controlling "
+    "sills off the map. On first start the demo site (Caddlewick on the River Torvey, "
+    "invented) is registered and analysed in the background."
+)
+_SERVE_EPILOG = (
+    _wrap(
+        "The app has no login: keep --host at 127.0.0.1 unless the network it listens on "
+        "is trusted. Every page and script is served by this server; nothing is fetched "
+        "from elsewhere."
+    )
+    + "\n\nexample:\n  sillmark serve --port 8150 --data ~/sillmark-data\n\n"
+    + _wrap(
+        "Screening analysis only, not a hydraulic model; decisions rest with a licensed "
+        "engineer or hydrologist and the local codes."
+    )
+)
+
+
+def _port(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a port number") from None
+    if not 1 <= value <= 65535:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a port number (1 to 65535)")
+    return value
 
 
 def _add_site_options(parser: argparse.ArgumentParser, *, connectivity_default: int | None) -> None:
@@ -343,7 +433,8 @@ def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
     ]
 
 
-def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], stream: TextIO) -> list[str]:
+def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], stream: TextIO,
+                   hierarchy=None) -> list[str]:
     from analysis import SCREENING_CAUTION
     from analysis.units import ACRE_FOOT_M3, VerticalUnit
 
@@ -368,11 +459,27 @@ def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], strea
         )
     else:
         lines.append(f"Depressions: 0 (no ground holds water below a spill point), 0.00 ha, 0 {m3}")
+    if hierarchy is not None and len(hierarchy):
+        lines.append(_hierarchy_line(hierarchy))
     if result.unreached_cells:
         lines.append(f"Cells no outlet reaches (walled in by nodata): {result.unreached_cells:,} cells")
     lines.append(f"Results: {len(files)} files in {out_dir}")
     lines.append(f"Caution: {SCREENING_CAUTION}")
     return lines
+
+
+def _hierarchy_line(hierarchy) -> str:
+    """Nodes, pits and nesting depth of the depression hierarchy."""
+    t = hierarchy.nodes
+    depth = [0] * (len(t) + 1)
+    for v in range(len(t), 0, -1):  # parents have higher ids than their children
+        p = int(t.parent[v - 1])
+        depth[v] = depth[p] + 1 if p else 1
+    levels = max(depth)
+    return (
+        f"Depression hierarchy: {len(t):,} nodes ({len(hierarchy.leaves):,} pits), nested up "
+        f"to {levels:,} level{'s' if levels != 1 else ''} deep; curves in depression_curves.csv"
+    )
 
 
 def _volume_text(volume_m3: float, unit, m3: str) -> str:
@@ -385,7 +492,8 @@ def _volume_text(volume_m3: float, unit, m3: str) -> str:
 
 
 def _stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, origin: str | None,
-                 stream: TextIO) -> list[str]:
+                 stream: TextIO, *, assets=None, asset_levels=(), what_if=None,
+                 what_if_path: Path | None = None) -> list[str]:
     from analysis import SCREENING_CAUTION
     from analysis.stage_export import level_text
     from analysis.units import VerticalUnit
@@ -396,8 +504,11 @@ def _stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, orig
     lines = _site_lines(result, dem, outlets, stream)
     if origin:
         lines.append(origin)
+    if assets is not None:
+        lines.append(_assets_line(assets, asset_levels))
     n_dep = len(result.depressions)
-    for level in written.levels:
+    extra_files = 0
+    for index, level in enumerate(written.levels):
         lines.append(f"Water level {level_text(level.level)} {sym}:")
         lines.extend(f"  Note: {note}" for note in notes.get(float(level.level), ()))
         lines.append(
@@ -415,15 +526,162 @@ def _stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, orig
             f"{level.depressions_cut_off:,} cut off below the level, "
             f"{level.depressions_dry:,} dry (of {n_dep:,})"
         )
-        lines.append(f"  Files: {', '.join(p.name for p in level.paths)}")
+        paths = list(level.paths)
+        if index < len(asset_levels):
+            table, asset_paths = asset_levels[index]
+            lines.extend(_asset_level_lines(table, dem, stream))
+            paths.extend(asset_paths)
+            extra_files += len(asset_paths)
+        lines.append(f"  Files: {', '.join(p.name for p in paths)}")
     if written.table is not None:
         t = written.table
         lines.append(
             f"Stage table: {len(t):,} levels from {level_text(t.level[0])} {sym} to "
             f"{level_text(t.level[-1])} {sym} in {written.table_path.name}"
         )
-    lines.append(f"Results: {len(written.paths)} files in {out_dir}")
+    if what_if is not None:
+        lines.extend(_what_if_lines(what_if, what_if_path, dem, stream))
+        extra_files += 1
+    lines.append(f"Results: {len(written.paths) + extra_files} files in {out_dir}")
     lines.append(f"Caution: {SCREENING_CAUTION}")
+    return lines
+
+
+def _xy_text(dem, x: float, y: float, stream: TextIO) -> str:
+    if dem.is_geographic:
+        deg = _horizontal_unit(dem, stream)
+        return f"lon {x:.6f}{deg}, lat {y:.6f}{deg}"
+    size_unit = _horizontal_unit(dem, stream)
+    return f"x {x:.1f}{size_unit}, y {y:.1f}{size_unit}"
+
+
+def _assets_line(assets, asset_levels) -> str:
+    """How many assets were read and how many have no figures, once for all levels."""
+    from analysis.assets import STATUS_OK
+
+    source = assets.source
+    if not asset_levels:
+        return f"Assets: {len(assets):,} from {source}"
+    table = asset_levels[0][0]
+    missing: dict[str, int] = {}
+    for status in table.status:
+        if status != STATUS_OK:
+            missing[status] = missing.get(status, 0) + 1
+    text = f"Assets: {len(assets):,} from {source}"
+    if missing:
+        parts = ", ".join(f"{count:,} {status}" for status, count in missing.items())
+        text += f" ({parts}: no figures)"
+    return text
+
+
+def _asset_level_lines(table, dem, stream: TextIO) -> list[str]:
+    """Counts of flooded, shielded and dry assets at one level, the flooded ones
+    with their depth, and the next to flood with their onset stage and sill."""
+    import numpy as np
+
+    from analysis.assets import STATE_DRY, STATE_FLOODED, STATE_SHIELDED
+    from analysis.stage_export import level_text
+
+    sym = table.unit.symbol
+    state = table.state
+    flooded = [k for k in range(len(table)) if state[k] == STATE_FLOODED]
+    shielded = sum(1 for v in state if v == STATE_SHIELDED)
+    dry = sum(1 for v in state if v == STATE_DRY)
+    none = len(table) - len(flooded) - shielded - dry
+    text = f"  Assets: {len(flooded):,} flooded, {shielded:,} shielded, {dry:,} dry"
+    if none:
+        text += f", {none:,} without figures"
+    lines = [text + f" (of {len(table):,})"]
+    for k in flooded[:LIST_FLOODED]:
+        lines.append(f"    flooded: {_asset_name(table, k)}: depth {float(table.depth[k]):.2f} {sym} "
+                     f"(ground {level_text(table.ground_elevation[k])} {sym})")
+    if len(flooded) > LIST_FLOODED:
+        lines.append(f"    ... and {len(flooded) - LIST_FLOODED:,} more flooded (see the assets file)")
+    waiting = [k for k in range(len(table)) if state[k] in (STATE_SHIELDED, STATE_DRY)]
+    waiting.sort(key=lambda k: (float(table.onset_stage[k]), k))
+    for k in waiting[:LIST_NEXT]:
+        sill = table.sill(k)
+        if bool(table.sill_is_own_cell[k]):
+            where = "no sill, its own ground controls"
+        else:
+            where = (f"controlling sill {level_text(sill.elevation)} {sym} at row {sill.row}, "
+                     f"col {sill.col} ({_xy_text(dem, sill.x, sill.y, stream)})")
+        freeboard = float(np.float32(table.onset_stage[k]) - np.float32(table.level))
+        lines.append(
+            f"    next to flood: {_asset_name(table, k, state[k])}: onset stage "
+            f"{level_text(table.onset_stage[k])} {sym}, freeboard {freeboard:.2f} {sym}; {where}"
+        )
+    return lines
+
+
+def _asset_name(table, k: int, state: str = "") -> str:
+    notes = ", ".join(text for text in (table.kind[k], state) if text)
+    return f"{table.name[k]} ({notes})" if notes else table.name[k]
+
+
+def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
+    from analysis.export import horizontal_unit_suffix, unit_suffix
+    from analysis.stage_export import level_text
+    from analysis.units import VerticalUnit
+
+    unit = VerticalUnit.parse(dem.vertical_unit)
+    sym = unit.symbol
+    v = unit_suffix(unit)
+    h = horizontal_unit_suffix(dem)
+    name = path.name if path is not None else "the what-if file"
+    height = run.rows[0][f"height_{v}"] if run.rows else None
+    head = "What if each controlling sill were higher" if height is None else (
+        f"What if each controlling sill were {level_text(height)} {sym} higher")
+    lines = [f"{head} ({name}):"]
+    passed = []
+    if run.own:
+        passed.append(f"{run.own:,} whose own ground controls")
+    if run.no_figures:
+        passed.append(f"{run.no_figures:,} without figures")
+    tail = f"; passed over: {', '.join(passed)}" if passed else ""
+    if not run.rows:
+        lines.append(f"  No asset stands behind a sill: nothing to raise{tail}")
+        return lines
+    n_rows, n_sills = len(run.rows), len(run.sills)
+    lines.append(f"  {n_rows:,} asset{'s' if n_rows != 1 else ''} behind {n_sills:,} distinct "
+                 f"sill{'s' if n_sills != 1 else ''} ({n_sills:,} recompute{'s' if n_sills != 1 else ''})"
+                 f"{tail}")
+    for members in run.sills[:LIST_SILLS]:
+        first = members[0]
+        before = first[f"onset_before_{v}"]
+        after = [m[f"onset_after_{v}"] for m in members]
+        gains = [m[f"gain_{v}"] for m in members]
+        lo, hi = min(after), max(after)
+        after_text = f"{level_text(lo)} {sym}" if lo == hi else f"{level_text(lo)} to {level_text(hi)} {sym}"
+        gain_text = (f"{min(gains):.2f} {sym}" if min(gains) == max(gains)
+                     else f"{min(gains):.2f} to {max(gains):.2f} {sym}")
+        xy = _xy_text(dem, first[f"sill_before_x_{h}"], first[f"sill_before_y_{h}"], stream)
+        lines.append(
+            f"  sill at row {first['sill_before_row']}, col {first['sill_before_col']} ({xy}) "
+            f"raised from {level_text(first[f'sill_before_elevation_{v}'])} to "
+            f"{level_text(first[f'raised_elevation_{v}'])} {sym}: {len(members):,} "
+            f"asset{'s' if len(members) != 1 else ''}, onset stage {level_text(before)} -> "
+            f"{after_text} (gain {gain_text})"
+        )
+        if all(m["raised_cell_controls"] for m in members):
+            lines.append("    the raised cell still controls")
+        else:
+            moved = next(m for m in members if not m["raised_cell_controls"])
+            there = (f"row {moved['sill_after_row']}, col {moved['sill_after_col']} "
+                     f"({_xy_text(dem, moved[f'sill_after_x_{h}'], moved[f'sill_after_y_{h}'], stream)})")
+            if max(gains) == 0:
+                lines.append(
+                    f"    no gain: the sill is part of a stretch at the same elevation; water goes "
+                    f"round the raised cell over {there} at {level_text(moved[f'sill_after_elevation_{v}'])} "
+                    f"{sym} (raise the whole stretch to gain)"
+                )
+            else:
+                lines.append(
+                    f"    then water comes over the sill at {there} at "
+                    f"{level_text(moved[f'sill_after_elevation_{v}'])} {sym}"
+                )
+    if len(run.sills) > LIST_SILLS:
+        lines.append(f"  ... and {len(run.sills) - LIST_SILLS:,} more sills (see {name})")
     return lines
 
 
@@ -605,6 +863,7 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
 
 def _run_analyse(args: argparse.Namespace) -> int:
     from analysis.export import write_results
+    from analysis.hierarchy import site_hierarchy
 
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show)
@@ -612,11 +871,12 @@ def _run_analyse(args: argparse.Namespace) -> int:
         dem, outlets, result = _site_from_dem(args.dem, args, progress)
         progress.start("export")
         out_dir = Path(args.out)
-        files = write_results(result, dem, outlets, out_dir, progress=progress.file)
+        hierarchy = site_hierarchy(dem, result)
+        files = write_results(result, dem, outlets, out_dir, hierarchy=hierarchy, progress=progress.file)
         progress.done()
     finally:
         progress.close()
-    for line in _summary_lines(result, dem, outlets, out_dir, files, sys.stdout):
+    for line in _summary_lines(result, dem, outlets, out_dir, files, sys.stdout, hierarchy):
         print(line)
     return EXIT_OK
 
@@ -636,6 +896,12 @@ def _stage_request(args: argparse.Namespace) -> None:
                                "give --table-step STEP with them")
     if not levels and args.table_step is None:
         raise InvalidParameter("give at least one --level H, or --table-step STEP for a stage table")
+    if args.raise_sill is not None and args.assets is None:
+        raise InvalidParameter("--raise-sill raises the controlling sills of assets; give "
+                               "--assets FILE with it")
+    if args.assets is not None and not levels:
+        raise InvalidParameter("--assets reports each asset at a water level; give at least "
+                               "one --level H with it")
 
 
 def _level_checks(result, dem, args: argparse.Namespace) -> dict[float, list[str]]:
@@ -704,15 +970,138 @@ def _run_stage(args: argparse.Namespace) -> int:
         if args.table_step is not None:
             table_levels = stage_levels(result, step=args.table_step, start=args.table_from,
                                         stop=args.table_to)
+        assets = what_if = None
+        if args.assets is not None:
+            from analysis.assets import read_assets
+
+            assets = read_assets(args.assets, dem)
+            if args.raise_sill is not None:
+                # Every flood of the what-if runs before anything is written, so a
+                # failure leaves the output folder as it was.
+                progress.start("raise sills")
+                what_if = _what_if_rows(result, dem, outlets, assets, args.raise_sill)
         progress.start("export")
         out_dir = Path(args.out)
         written = write_stage_results(result, dem, out_dir, levels=args.levels or [],
                                       table_levels=table_levels, progress=progress.file)
+        asset_levels = []
+        if assets is not None:
+            asset_levels = _write_asset_levels(result, dem, assets, written, out_dir, progress.file)
+        what_if_path = None
+        if what_if is not None:
+            what_if_path = _write_what_if(dem, what_if, args.raise_sill, out_dir, progress.file)
         progress.done()
     finally:
         progress.close()
-    for line in _stage_lines(result, dem, outlets, out_dir, written, notes, origin, sys.stdout):
+    lines = _stage_lines(result, dem, outlets, out_dir, written, notes, origin, sys.stdout,
+                         assets=assets, asset_levels=asset_levels, what_if=what_if,
+                         what_if_path=what_if_path)
+    for line in lines:
         print(line)
+    return EXIT_OK
+
+
+#: Flooded assets listed by name per level, and assets listed as next to flood.
+LIST_FLOODED = 5
+LIST_NEXT = 3
+#: Distinct raised sills listed in the what-if summary.
+LIST_SILLS = 10
+
+
+def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -> list:
+    """Assess the assets at every written level and write their two files; return the tables."""
+    from analysis.asset_export import asset_file_names, write_assets_csv, write_assets_geojson
+    from analysis.assets import assess_assets
+
+    tables = []
+    for level in written.levels:
+        table = assess_assets(assets, dem, result, level.level)
+        csv_name, geojson_name = asset_file_names(level.level, dem.vertical_unit)
+        for name, write in ((csv_name, write_assets_csv), (geojson_name, write_assets_geojson)):
+            progress(name, 0, 1)
+            write(table, out_dir / name)
+            progress(name, 1, 1)
+        tables.append((table, (out_dir / csv_name, out_dir / geojson_name)))
+    return tables
+
+
+class _WhatIfRun:
+    """What the --raise-sill run found: CSV rows (asset order) and the sills raised."""
+
+    def __init__(self, rows: list, sills: list, own: int, no_figures: int) -> None:
+        self.rows = rows          # what_if_row dicts, in asset order
+        self.sills = sills        # per distinct sill, in the order met: its assets' rows
+        self.own = own            # assets whose own ground controls
+        self.no_figures = no_figures
+
+
+def _what_if_rows(result, dem, outlets, assets, height: float) -> _WhatIfRun:
+    """Raise every distinct controlling sill of the assets once; keep light rows only."""
+    from analysis.asset_export import what_if_row
+    from analysis.assets import STATUS_OK, raise_sills
+
+    behind: dict[tuple[int, int], int] = {}
+    own = no_figures = 0
+    for a in assets:
+        if a.status != STATUS_OK or result.flood_tree[a.row, a.col] == 0:
+            no_figures += 1
+            continue
+        route = result.route(a.row, a.col)
+        cell = (int(route.sill_row), int(route.sill_col))
+        if cell == (a.row, a.col):
+            own += 1
+        else:
+            behind[cell] = behind.get(cell, 0) + 1
+    indexed = []
+    sills: dict[tuple[int, int], list] = {}
+    for k, w in raise_sills(dem, outlets, result, assets, height):
+        cell = (w.raised.row, w.raised.col)
+        row = what_if_row(w, dem, kind=assets[k].kind, assets_behind_sill=behind[cell])
+        indexed.append((k, row))
+        sills.setdefault(cell, []).append(row)
+    return _WhatIfRun(rows=[row for _, row in sorted(indexed, key=lambda item: item[0])],
+                      sills=list(sills.values()), own=own, no_figures=no_figures)
+
+
+def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress) -> Path:
+    from analysis.asset_export import what_if_file_name, write_what_if_csv
+
+    name = what_if_file_name(height, dem.vertical_unit)
+    notes = []
+    if run.own:
+        notes.append(f"not listed: {run.own} asset(s) whose own ground is the controlling point "
+                     "(no sill between them and the water; see sill_is_own_cell in assets_*.csv)")
+    if run.no_figures:
+        notes.append(f"not listed: {run.no_figures} asset(s) without figures (outside the DEM, "
+                     "on nodata, or not reached by any outlet)")
+    progress(name, 0, 1)
+    path = write_what_if_csv(run.rows, dem, out_dir / name, height=height, notes=notes)
+    progress(name, 1, 1)
+    return path
+
+
+def _run_serve(args: argparse.Namespace) -> int:
+    import waitress
+
+    from webapp import create_app
+
+    options = {}
+    if args.data is not None:
+        options["DATA_DIR"] = args.data
+    app = create_app(options or None)
+    services = app.extensions["sillmark"]
+    where = f"http://{'[' + args.host + ']' if ':' in args.host else args.host}:{args.port}/"
+    print(f"Sillmark {__version__} serving at {where}", flush=True)
+    print(f"Data folder: {services.data_dir}", flush=True)
+    if args.host not in ("127.0.0.1", "localhost", "::1"):
+        print(f"{PROG}: warning: listening on {args.host}; the app has no login, so anyone who "
+              "can reach this address can use it", file=sys.stderr, flush=True)
+    print("Press Ctrl-C to stop.", flush=True)
+    try:
+        waitress.serve(app, host=args.host, port=args.port, threads=args.threads,
+                       ident="Sillmark", _quiet=True)
+    finally:
+        services.runner.stop()
     return EXIT_OK
 
 

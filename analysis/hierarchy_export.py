@@ -1,0 +1,418 @@
+"""Files of the depression hierarchy: the node table, its JSON, and every node's curves.
+
+=============================  ==========================================================
+``depression_hierarchy.csv``   one row per node of :class:`analysis.hierarchy.HierarchyTable`,
+                               units in the column names, children as ``;``-separated ids
+``depression_hierarchy.json``  :meth:`analysis.hierarchy.DepressionHierarchy.to_json` (flat
+                               node list) with the caution, the units of every field and the CRS
+``depression_curves.csv``      stage–area and stage–storage of every node, long format:
+                               one row per node and elevation
+=============================  ==========================================================
+
+The files follow the conventions of :mod:`analysis.export` (``# `` comment lines
+before a CSV header, the screening caution in every file, atomic writes) and are
+written by :func:`analysis.export.write_results` next to ``depressions.csv``;
+the ``depression`` column of the node table is the ``id`` of that file.
+
+Curves
+------
+A node's curves are exact and piecewise linear between its *breakpoints* (its
+pit, every distinct cell elevation of its region above the pit, its spill
+elevation; see :class:`analysis.hierarchy.StageCurve`). A node with at most
+:data:`MAX_CURVE_POINTS` breakpoints gets a row at each of them, so linear
+interpolation of storage between rows is exact. A node with more (a large
+region of a DEM with unrounded elevations) gets rows at a fixed step of its own
+instead, chosen among 1, 2 and 5 times a power of ten so that it spans the
+node's depth in at most :data:`STEP_ROWS` steps, plus exact rows at its pit,
+merge elevation and spill elevation; the values on those rows are still exact,
+only the points between them are left out. On a site DEM with elevations in
+centimetres the breakpoints are few (one per centimetre of depth at most), so
+every node is written in full.
+
+Every node has its whole curve, pit to spill, so a node's rows repeat the
+levels of the nodes nested in it; the caps keep the file at most a few hundred
+rows per node (the node table's size times a few hundred) whatever the DEM's
+precision or the nesting depth. On the demo site: 77 nodes, about 2 300 rows,
+100 kB.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from analysis import SCREENING_CAUTION
+from analysis.errors import InvalidParameter
+from analysis.export import (
+    atomic_output,
+    crs_label,
+    horizontal_crs,
+    horizontal_unit_suffix,
+    json_number,
+    sillmark_version,
+    unit_name,
+    unit_suffix,
+    wgs84_transformer,
+    write_table_csv,
+)
+from analysis.hierarchy import DepressionHierarchy
+from analysis.units import ACRE_FOOT_M3, VerticalUnit
+
+if TYPE_CHECKING:  # pragma: no cover
+    from analysis.dem import DEM
+
+__all__ = [
+    "CURVES_CSV",
+    "HIERARCHY_CSV",
+    "HIERARCHY_FILE_NAMES",
+    "HIERARCHY_JSON",
+    "MAX_CURVE_POINTS",
+    "STEP_ROWS",
+    "curve_columns",
+    "hierarchy_columns",
+    "write_curves_csv",
+    "write_hierarchy_csv",
+    "write_hierarchy_json",
+]
+
+HIERARCHY_CSV = "depression_hierarchy.csv"
+HIERARCHY_JSON = "depression_hierarchy.json"
+CURVES_CSV = "depression_curves.csv"
+#: The three file names, in the order :func:`analysis.export.write_results` writes them.
+HIERARCHY_FILE_NAMES = (HIERARCHY_CSV, HIERARCHY_JSON, CURVES_CSV)
+
+#: A node with at most this many breakpoints has every one of them in the curves file.
+#: (The demo's deepest node, 2.08 m of ground in centimetres, has 209.)
+MAX_CURVE_POINTS = 250
+#: Most steps a node with more breakpoints is sampled at (pit, merge and spill come on top).
+STEP_ROWS = 100
+
+#: Values of the ``point`` column of the curves file.
+POINT_PIT = "pit"
+POINT_BREAKPOINT = "breakpoint"
+POINT_STEP = "step"
+POINT_MERGE = "merge"
+POINT_SPILL = "spill"
+
+_CHILD_SEPARATOR = ";"
+#: Node fields held as float32, in the vertical unit.
+_FLOAT32_FIELDS = ("pit_elevation", "merge_elevation", "spill_elevation", "max_depth")
+
+
+# --------------------------------------------------------------------------- checks
+
+
+def _check(hierarchy: DepressionHierarchy, dem: "DEM") -> VerticalUnit:
+    if not isinstance(hierarchy, DepressionHierarchy):
+        raise InvalidParameter(
+            f"expected a DepressionHierarchy from analysis.hierarchy.site_hierarchy(), not "
+            f"{type(hierarchy).__name__}"
+        )
+    if tuple(hierarchy.shape) != tuple(dem.shape):
+        raise InvalidParameter(
+            f"the hierarchy is for a {hierarchy.shape[0]} x {hierarchy.shape[1]} grid but the "
+            f"DEM is {dem.rows} x {dem.cols}; compute it from a result on this DEM"
+        )
+    unit = VerticalUnit.parse(dem.vertical_unit)
+    if hierarchy.unit is not unit:
+        raise InvalidParameter(
+            f"the hierarchy is in {hierarchy.unit.value} but the DEM in {unit.value}; compute "
+            "it with the DEM's vertical unit (site_hierarchy does)"
+        )
+    horizontal_crs(dem)  # InvalidDEM before anything is written if there is no CRS
+    return unit
+
+
+def _comment_head(title: str, hierarchy: DepressionHierarchy, dem: "DEM") -> list[str]:
+    unit = hierarchy.unit
+    return [
+        f"Sillmark {sillmark_version()} {title}",
+        f"CAUTION: {SCREENING_CAUTION}",
+        f"vertical unit: {unit.value} ({unit_name(unit)}); areas in m2, volumes in m3",
+        f"CRS: {crs_label(dem)}",
+        f"connectivity: {hierarchy.connectivity}",
+    ]
+
+
+# --------------------------------------------------------------------------- node table
+
+
+def hierarchy_columns(hierarchy: DepressionHierarchy, dem: "DEM") -> dict[str, np.ndarray]:
+    """The node table with units in the column names, in file order.
+
+    Every :class:`~analysis.hierarchy.HierarchyTable` column appears under its
+    own name, elevations and depths with the vertical-unit suffix (``_m``,
+    ``_ft``, ``_us_ft``) and the spill point's CRS coordinates with the CRS's
+    unit (``spill_x_m`` ...). ``is_leaf`` is ``true`` or ``false``;
+    ``children`` lists the children ids separated by ``;``, lowest pit first
+    (empty for a pit). Added: the spill point in WGS84 (``spill_lon_deg``,
+    ``spill_lat_deg``), ``area_ha`` and, for sites in feet, ``volume_acre_ft``.
+    """
+    unit = _check(hierarchy, dem)
+    t = hierarchy.nodes
+    v = unit_suffix(unit)
+    h = horizontal_unit_suffix(dem)
+    n = len(t)
+    lon = np.full(n, np.nan)
+    lat = np.full(n, np.nan)
+    ok = np.isfinite(t.spill_x) & np.isfinite(t.spill_y)
+    if ok.any():
+        lon[ok], lat[ok] = wgs84_transformer(dem).transform(t.spill_x[ok], t.spill_y[ok])
+    children = [
+        _CHILD_SEPARATOR.join(str(int(c)) for c in t.children_ids[t.children_start[k] : t.children_start[k + 1]])
+        for k in range(n)
+    ]
+    area = np.asarray(t.area_m2, dtype=np.float64)
+    volume = np.asarray(t.volume_m3, dtype=np.float64)
+    cols: dict[str, np.ndarray] = {
+        "id": t.id,
+        "parent": t.parent,
+        "depression": t.depression,
+        "is_leaf": np.array(["true" if leaf else "false" for leaf in t.is_leaf], dtype=str),
+        "subtree_size": t.subtree_size,
+        "children": np.array(children, dtype=object),
+        "pit_row": t.pit_row,
+        "pit_col": t.pit_col,
+        f"pit_elevation_{v}": t.pit_elevation,
+        f"merge_elevation_{v}": t.merge_elevation,
+        f"spill_elevation_{v}": t.spill_elevation,
+        "spill_row": t.spill_row,
+        "spill_col": t.spill_col,
+        f"spill_x_{h}": t.spill_x,
+        f"spill_y_{h}": t.spill_y,
+        "spill_lon_deg": np.round(lon, 8),
+        "spill_lat_deg": np.round(lat, 8),
+        f"max_depth_{v}": t.max_depth,
+        "cell_count": t.cell_count,
+        "area_m2": area,
+        "area_ha": area / 1e4,
+        "volume_m3": volume,
+    }
+    if unit.is_feet:
+        cols["volume_acre_ft"] = volume / ACRE_FOOT_M3
+    return cols
+
+
+def write_hierarchy_csv(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
+    """Write ``depression_hierarchy.csv``: ``# `` comment lines, a header, one row per node.
+
+    Columns are those of :func:`hierarchy_columns`. Empty fields are values that
+    do not exist (a pit's merge elevation, a pit's children).
+    """
+    cols = hierarchy_columns(hierarchy, dem)
+    v = unit_suffix(hierarchy.unit)
+    comments = _comment_head("depression hierarchy", hierarchy, dem) + [
+        "one row per node: the pits (is_leaf = true) and the pools formed where pools meet; "
+        "ids in post-order (children before their parent)",
+        "parent: id of the node this one merges into, 0 = a top (a whole depression of "
+        "depressions.csv, whose id is in the column 'depression')",
+        f"children: ids of the nodes that meet at merge_elevation_{v}, ';'-separated, lowest "
+        "pit first; empty for a pit",
+        f"spill_elevation_{v}: level at which the node meets a sibling (for a top: the "
+        "depression's spill elevation); spill_row, spill_col: a cell where it does",
+        "area_m2, volume_m3: plan area and storage of the node's region full to its spill "
+        "elevation; stage curves in depression_curves.csv",
+        "pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top; "
+        "spill_lon_deg, spill_lat_deg: the spill cell in WGS84 degrees",
+    ]
+    return write_table_csv(path, comments, cols)
+
+
+def write_hierarchy_json(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
+    """Write ``depression_hierarchy.json``: the flat :meth:`~analysis.hierarchy.DepressionHierarchy.to_json`
+    document, with a ``name``, the Sillmark version, the CRS and a ``units``
+    member giving the unit of every node field that has one.
+
+    The float32 fields (elevations, depth) are written as the shortest decimals
+    that read back as the same float32 values; NaN (a pit's merge elevation) is null.
+    """
+    unit = _check(hierarchy, dem)
+    doc = json.loads(hierarchy.to_json())
+    t = hierarchy.nodes
+    for k, node in enumerate(doc.get("nodes", ())):
+        # float32 columns as their shortest decimals (59.2, not 59.20000076293945),
+        # as in the CSV; each reads back as the same float32.
+        for name in _FLOAT32_FIELDS:
+            node[name] = json_number(getattr(t, name)[k])
+    h = horizontal_unit_suffix(dem)
+    units = {name: unit.value for name in _FLOAT32_FIELDS}
+    units.update({"spill_x": h, "spill_y": h, "area_m2": "m2", "volume_m3": "m3"})
+    out = {
+        "name": "depression_hierarchy",
+        "sillmark_version": sillmark_version(),
+        "caution": doc.pop("caution", SCREENING_CAUTION),
+        "crs": crs_label(dem),
+        "units": units,
+        **doc,
+    }
+    final = Path(path)
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", encoding="utf-8") as f:
+            f.write(json.dumps(out, ensure_ascii=False, allow_nan=False, separators=(",", ":")))
+            f.write("\n")
+    return final
+
+
+# --------------------------------------------------------------------------- curves
+
+
+def _breakpoint_sets(hierarchy: DepressionHierarchy, limit: int) -> list[np.ndarray | None]:
+    """Per node (index ``v - 1``), the elevations of its full curve's breakpoints,
+    or None when there are more than ``limit``.
+
+    The breakpoints of a node are the union of the own segments of its subtree
+    (each node's segment runs from its merge elevation, or pit, to its spill
+    elevation through its own cells' elevations). Built children first and
+    dropped as soon as a set passes ``limit``, so the work is at most about
+    ``limit`` per node whatever the nesting depth.
+    """
+    t = hierarchy.nodes
+    s = hierarchy.segments
+    out: list[np.ndarray | None] = [None] * len(t)
+    for v in range(1, len(t) + 1):  # post-order: children first
+        own = s.elevation[s.start[v] : s.start[v + 1]]
+        if own.shape[0] > limit:
+            continue
+        parts = [own]
+        complete = True
+        for c in t.children_ids[t.children_start[v - 1] : t.children_start[v]]:
+            child = out[int(c) - 1]
+            if child is None:
+                complete = False
+                break
+            parts.append(child)
+        if not complete:
+            continue
+        points = np.unique(np.concatenate(parts)) if len(parts) > 1 else own
+        if points.shape[0] <= limit:
+            out[v - 1] = points
+    return out
+
+
+def _nice_step(depth: float, steps: int) -> float:
+    """Smallest of 1, 2, 5 times a power of ten that covers ``depth`` in at most ``steps``."""
+    raw = depth / steps
+    power = 10.0 ** math.floor(math.log10(raw))
+    for factor in (1.0, 2.0, 5.0, 10.0):
+        if factor * power >= raw:
+            return factor * power
+    return 10.0 * power  # pragma: no cover - the loop always returns
+
+
+def _stepped_levels(pit: float, merge: float, spill: float, steps: int) -> np.ndarray:
+    """Pit, spill, merge (if any) and the multiples of a nice step between pit and spill."""
+    step = _nice_step(spill - pit, steps)
+    decimals = max(0, -math.floor(math.log10(step)) + 1)
+    k = np.arange(math.ceil(pit / step), math.floor(spill / step) + 1, dtype=np.float64)
+    grid = np.float32(np.round(k * step, decimals)).astype(np.float64)
+    grid = grid[(grid > pit) & (grid < spill)]
+    levels = [grid, np.array([pit, spill])]
+    if math.isfinite(merge):
+        levels.append(np.array([merge]))
+    return np.unique(np.concatenate(levels))
+
+
+def curve_columns(
+    hierarchy: DepressionHierarchy,
+    dem: "DEM",
+    *,
+    max_points: int = MAX_CURVE_POINTS,
+    step_rows: int = STEP_ROWS,
+) -> dict[str, np.ndarray]:
+    """Every node's stage–area and stage–storage curve, long format, in file order.
+
+    Columns: ``node_id``, ``depression``, ``point`` (``pit``, ``breakpoint``,
+    ``step``, ``merge`` or ``spill``), ``elevation_{u}`` (float32, the vertical
+    unit's suffix), ``area_m2`` (area of the region's cells strictly below the
+    elevation), ``storage_m3`` and, for sites in feet, ``storage_acre_ft``.
+    Rows run node by node (ascending id), each from pit to spill elevation; see
+    the module docstring for which elevations a node gets.
+
+    Notes
+    -----
+    Values come from :meth:`~analysis.hierarchy.DepressionHierarchy.curve_at`,
+    exact at every row. Memory: the rows themselves (about 30 bytes each).
+    """
+    unit = _check(hierarchy, dem)
+    if isinstance(max_points, bool) or not isinstance(max_points, int) or max_points < 2:
+        raise InvalidParameter(f"max_points must be a whole number of at least 2, not {max_points!r}")
+    if isinstance(step_rows, bool) or not isinstance(step_rows, int) or step_rows < 1:
+        raise InvalidParameter(f"step_rows must be a positive whole number, not {step_rows!r}")
+    t = hierarchy.nodes
+    exact = _breakpoint_sets(hierarchy, max_points)
+    ids: list[np.ndarray] = []
+    deps: list[np.ndarray] = []
+    points: list[np.ndarray] = []
+    elevations: list[np.ndarray] = []
+    areas: list[np.ndarray] = []
+    storages: list[np.ndarray] = []
+    for v in range(1, len(t) + 1):
+        k = v - 1
+        pit = float(t.pit_elevation[k])
+        spill = float(t.spill_elevation[k])
+        merge = float(t.merge_elevation[k])
+        levels = exact[k]
+        if levels is None:
+            levels = _stepped_levels(pit, merge, spill, step_rows)
+            between = POINT_STEP
+        else:
+            between = POINT_BREAKPOINT
+        curve = hierarchy.curve_at(v, levels)
+        kind = np.full(levels.shape[0], between, dtype=object)
+        if math.isfinite(merge):
+            kind[levels == merge] = POINT_MERGE
+        kind[0] = POINT_PIT
+        kind[-1] = POINT_SPILL
+        ids.append(np.full(levels.shape[0], v, dtype=np.int32))
+        deps.append(np.full(levels.shape[0], int(t.depression[k]), dtype=np.int32))
+        points.append(kind)
+        elevations.append(levels.astype(np.float32))
+        areas.append(curve.area_m2)
+        storages.append(curve.storage_m3)
+
+    def joined(parts: list[np.ndarray], dtype) -> np.ndarray:
+        return np.concatenate(parts).astype(dtype) if parts else np.empty(0, dtype=dtype)
+
+    storage = joined(storages, np.float64)
+    cols: dict[str, np.ndarray] = {
+        "node_id": joined(ids, np.int32),
+        "depression": joined(deps, np.int32),
+        "point": joined(points, object),
+        f"elevation_{unit_suffix(unit)}": joined(elevations, np.float32),
+        "area_m2": joined(areas, np.float64),
+        "storage_m3": storage,
+    }
+    if unit.is_feet:
+        cols["storage_acre_ft"] = storage / ACRE_FOOT_M3
+    return cols
+
+
+def write_curves_csv(
+    hierarchy: DepressionHierarchy,
+    dem: "DEM",
+    path: str | os.PathLike,
+    *,
+    max_points: int = MAX_CURVE_POINTS,
+    step_rows: int = STEP_ROWS,
+) -> Path:
+    """Write ``depression_curves.csv``: the columns of :func:`curve_columns`, after
+    ``# `` comment lines that say how to read between rows."""
+    cols = curve_columns(hierarchy, dem, max_points=max_points, step_rows=step_rows)
+    v = unit_suffix(hierarchy.unit)
+    comments = _comment_head("stage-area and stage-storage curves of the depression hierarchy",
+                             hierarchy, dem) + [
+        "one row per node and elevation, node by node (node_id = id in depression_hierarchy.csv, "
+        "depression = id in depressions.csv), from the node's pit to its spill elevation",
+        f"area_m2: area of the node's region below elevation_{v}; storage_m3: water it holds "
+        f"with its surface at elevation_{v}",
+        f"point: pit, merge (where its children meet), spill, breakpoint (a cell elevation: "
+        f"nodes with at most {max_points} of them get every one, and storage is linear between rows), "
+        f"step (nodes with more get rows at a fixed step spanning their depth in at most "
+        f"{step_rows} steps; values are exact on every row, storage is convex between them)",
+    ]
+    return write_table_csv(path, comments, cols)
