@@ -434,6 +434,7 @@ def what_if_row(what_if: WhatIf, dem: Any, *, kind: str = "", assets_behind_sill
         f"sill_before_y_{h}": float(before.y),
         f"sill_before_elevation_{v}": f32(before.elevation),
         f"raised_elevation_{v}": f32(what_if.raised_elevation),
+        "raised_cells": int(what_if.raised_cells),
         "sill_after_row": int(after.row),
         "sill_after_col": int(after.col),
         f"sill_after_x_{h}": float(after.x),

@@ -19,6 +19,7 @@ estimated. Units are those of the DEM (:attr:`analysis.dem.DEM.vertical_unit`).
 
 from __future__ import annotations
 
+import collections
 import csv
 import dataclasses
 import functools
@@ -388,6 +389,9 @@ class WhatIf:
     result : SpillResult
         The whole recomputed flood (onset stage of every cell with the raised
         sill): about 9 bytes per cell; drop the WhatIf to free it.
+    raised_cells : int
+        How many cells were raised to ``raised_elevation``: the crest under the
+        barrier (see :func:`sill_crest`), or 1.
     """
 
     name: str | None
@@ -407,6 +411,7 @@ class WhatIf:
     unit: VerticalUnit
     explanation: str
     result: SpillResult
+    raised_cells: int = 1
 
     @property
     def gain(self) -> float:
@@ -1088,6 +1093,7 @@ def raise_sill(
     height: Any,
     *,
     connectivity: int | None = None,
+    across_crest: bool = True,
 ) -> WhatIf:
     """The onset stage a place would have if its controlling sill were raised by ``height``.
 
@@ -1108,6 +1114,13 @@ def raise_sill(
         How much to raise the sill, in the DEM's vertical unit; > 0.
     connectivity : {8, 4}, optional, keyword-only
         Must match ``result.connectivity`` (the default).
+    across_crest : bool, keyword-only
+        Raise the whole crest (default), as a barrier across a notch would:
+        the sill cell and the connected ground at most
+        :data:`CREST_TOLERANCE` above it (:func:`sill_crest`) are all raised to
+        the sill's elevation plus ``height``. With False only the sill cell is
+        raised, and on a flat notch the water then goes round it. A place that
+        is its own controlling point has only its cell raised.
 
     Returns
     -------
@@ -1169,17 +1182,57 @@ def raise_sill(
             "(float32); give a larger height"
         )
     z = np.array(dem.elevation, dtype=np.float32, copy=True)
-    z[sr, sc] = new
+    own = (sr, sc) == (r, c)
+    crest_r, crest_c = (
+        sill_crest(result, sr, sc, new) if across_crest and not own
+        else (np.array([sr]), np.array([sc]))
+    )
+    z[crest_r, crest_c] = new  # a barrier with its top at the raised sill's level
     # Read-only like DEM.elevation, so the compiled kernels take the same
     # specialisation analyse_site() already used (no second compilation).
     z.flags.writeable = False
     after = priority_flood(z, mask, connectivity=conn, row_areas=dem.row_areas, transform=dem.transform)
-    return _read_what_if(dem, result, after, name, r, c, before, float(old), float(new), h)
+    return _read_what_if(
+        dem, result, after, name, r, c, before, float(old), float(new), h, len(crest_r)
+    )
+
+
+#: How far above the sill's own elevation ground still counts as the same crest,
+#: in the site's vertical unit: lidar DEMs carry noise of about a decimetre
+#: (common practice), so a notch floor is seldom exactly level.
+CREST_TOLERANCE = 0.10
+
+
+def sill_crest(
+    result: SpillResult, row: int, col: int, top: float, *, tolerance: float = CREST_TOLERANCE
+) -> tuple[np.ndarray, np.ndarray]:
+    """Cells a barrier must cover to raise sill ``(row, col)`` to ``top``.
+
+    The crest is the sill cell and every cell connected to it (under the
+    result's connectivity), outside any depression, whose ground lies at the
+    sill's elevation or at most ``tolerance`` above it (and below ``top``): the
+    floor of a notch or a road low spot. Ground below the sill (either side of
+    it) and higher parts of the rim are not part of it, so raising a notch
+    above the rest of the rim shows which sill controls next.
+    """
+    from scipy import ndimage
+
+    z = result.elevation
+    floor = z[row, col]
+    ceiling = min(float(top), float(floor) + float(tolerance))
+    with np.errstate(invalid="ignore"):
+        band = (z >= floor) & (z <= np.float32(ceiling)) & (z < np.float32(top))
+    band &= result.depression_id == 0
+    band[row, col] = True
+    structure = np.ones((3, 3), bool) if result.connectivity == 8 else None
+    parts, _ = ndimage.label(band, structure=structure)
+    rows, cols = np.nonzero(parts == parts[row, col])
+    return rows.astype(np.int64), cols.astype(np.int64)
 
 
 def _read_what_if(
     dem: "DEM", result: SpillResult, after: SpillResult, name: str | None, r: int, c: int,
-    before: Any, old: float, new: float, h: float,
+    before: Any, old: float, new: float, h: float, raised_cells: int = 1,
 ) -> WhatIf:
     """The :class:`WhatIf` of place ``(r, c)`` from the flood ``after`` with its sill raised."""
     sr, sc = before.sill_row, before.sill_col
@@ -1213,8 +1266,11 @@ def _read_what_if(
         route_after=cells_after,
         route_after_xy=np.column_stack([xa, ya]),
         unit=unit,
-        explanation=_explain(raised, new, h, own, onset_before, onset_after, sill_after, unit),
+        explanation=_explain(
+            raised, new, h, own, onset_before, onset_after, sill_after, unit, raised_cells
+        ),
         result=after,
+        raised_cells=raised_cells,
     )
 
 
@@ -1259,7 +1315,7 @@ def what_if_at(what_if: WhatIf, dem: "DEM", result: SpillResult, asset_or_cell: 
         )
     return _read_what_if(
         dem, result, what_if.result, name, r, c, before, what_if.raised.elevation,
-        what_if.raised_elevation, what_if.height,
+        what_if.raised_elevation, what_if.height, what_if.raised_cells,
     )
 
 
@@ -1348,7 +1404,7 @@ def _height(height: Any) -> float:
 
 def _explain(
     raised: Sill, new: float, height: float, own: bool, before: float, after: float,
-    sill_after: Sill, unit: VerticalUnit,
+    sill_after: Sill, unit: VerticalUnit, raised_cells: int = 1,
 ) -> str:
     u = unit.symbol
     at = f"row {raised.row}, col {raised.col}"
@@ -1359,7 +1415,10 @@ def _explain(
             f"its own cell by {height:.2f} {u} (a pad or a wall round it) makes its onset "
             f"stage {after:.2f} {u}."
         )
-    head = f"Raising the controlling sill at {at} from {raised.elevation:.2f} to {new:.2f} {u}"
+    what = "the controlling sill" if raised_cells == 1 else (
+        f"the crest of the controlling sill ({raised_cells} cells)"
+    )
+    head = f"Raising {what} at {at} from {raised.elevation:.2f} to {new:.2f} {u}"
     there = f"row {sill_after.row}, col {sill_after.col}"
     if after == before:
         return (

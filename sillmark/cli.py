@@ -658,6 +658,7 @@ def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
         xy = _xy_text(dem, first[f"sill_before_x_{h}"], first[f"sill_before_y_{h}"], stream)
         lines.append(
             f"  sill at row {first['sill_before_row']}, col {first['sill_before_col']} ({xy}) "
+            f"({first['raised_cells']:,} crest cell{'s' if first['raised_cells'] != 1 else ''}) "
             f"raised from {level_text(first[f'sill_before_elevation_{v}'])} to "
             f"{level_text(first[f'raised_elevation_{v}'])} {sym}: {len(members):,} "
             f"asset{'s' if len(members) != 1 else ''}, onset stage {level_text(before)} -> "
@@ -671,9 +672,8 @@ def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
                      f"({_xy_text(dem, moved[f'sill_after_x_{h}'], moved[f'sill_after_y_{h}'], stream)})")
             if max(gains) == 0:
                 lines.append(
-                    f"    no gain: the sill is part of a stretch at the same elevation; water goes "
-                    f"round the raised cell over {there} at {level_text(moved[f'sill_after_elevation_{v}'])} "
-                    f"{sym} (raise the whole stretch to gain)"
+                    f"    no gain: another way in at the same elevation remains, over {there} at "
+                    f"{level_text(moved[f'sill_after_elevation_{v}'])} {sym}"
                 )
             else:
                 lines.append(

@@ -160,18 +160,33 @@ def test_raising_the_lower_gap_by_less_than_the_difference_gives_the_raised_elev
 
 def test_raising_one_cell_of_a_flat_sill_changes_nothing():
     # As RIDGE but gap A is two cells wide, (2, 1) and (2, 2), both at 4 m.
-    # Raising the one the route crosses leaves the other: the water goes round
-    # it at the same 4 m, and that neighbour is named as the new sill.
+    # Raising only the one the route crosses leaves the other: the water goes
+    # round it at the same 4 m, and that neighbour is named as the new sill.
     z = [row[:] for row in RIDGE]
     z[2][2] = 4
     dem, outlets, result = site(z, north_edge)
-    w = raise_sill(dem, outlets, result, BEHIND, 3.0)
+    w = raise_sill(dem, outlets, result, BEHIND, 3.0, across_crest=False)
+    assert w.raised_cells == 1
     first = (w.raised.row, w.raised.col)
     assert first in {(2, 1), (2, 2)}
     assert w.onset_after == w.onset_before == 4.0 and not w.changed
     other = ({(2, 1), (2, 2)} - {first}).pop()
     assert (w.sill_after.row, w.sill_after.col, w.sill_after.elevation) == (*other, 4.0)
     assert "changes nothing" in w.explanation
+
+
+def test_raising_the_whole_crest_of_a_flat_sill_hands_control_on():
+    # Same two-cell gap at 4 m. Raising its whole crest (both cells, the
+    # default) by 3 m to 7 m leaves gap B at 6 m as the lowest way in, so the
+    # onset stage goes from 4 m to 6 m and gap B controls.
+    z = [row[:] for row in RIDGE]
+    z[2][2] = 4
+    dem, outlets, result = site(z, north_edge)
+    w = raise_sill(dem, outlets, result, BEHIND, 3.0)
+    assert w.raised_cells == 2
+    assert (w.onset_before, w.onset_after) == (4.0, 6.0)
+    assert w.sill_after.elevation == 6.0
+    assert "crest" in w.explanation
 
 
 # A bowl with a single notch: rim ring at 5 m (rows/cols 1-5), notch at (1, 3)
@@ -540,10 +555,18 @@ def test_demo_assets_behind_the_bank_wait_for_the_levee_notch(demo):
         assert table.state[k] == "shielded"
     # The notch is a flat stretch of crest: raising the one cell the school's
     # route crosses lets the water round it, over the next notch cell at 47.60.
-    w = raise_sill(dem, outlets, result, table.assets[table.name.index(BEHIND_THE_BANK[0])], 1.0)
+    school = table.assets[table.name.index(BEHIND_THE_BANK[0])]
+    w = raise_sill(dem, outlets, result, school, 1.0, across_crest=False)
     assert w.onset_after == w.onset_before == np.float32(47.60)
     assert (w.sill_after.row, w.sill_after.col) != (w.raised.row, w.raised.col)
     assert w.sill_after.elevation == np.float32(47.60)
+    # A barrier along the whole flat crest of the notch lifts the onset stage
+    # to the next lowest way in, which then controls: above 47.60 m, below the
+    # bank's crest (48.20-48.40 m, demo_dem/README.md).
+    w = raise_sill(dem, outlets, result, school, 1.0)
+    assert w.raised_cells > 1
+    assert np.float32(47.60) < w.onset_after < 48.20
+    assert w.sill_after.elevation == w.onset_after
 
 
 # --------------------------------------------------------------------------
