@@ -24,7 +24,7 @@ Node arrays before renumbering are indexed 0..n-1 in order of creation.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
 
 def _find(parent, a):
@@ -267,6 +267,36 @@ def _group_stable(group, n_groups):
     return order
 
 
+def _sort_within_groups(zbits, group_order, group_start):
+    """Within each group of ``group_order``, sort positions by (elevation, position).
+
+    ``zbits`` are the float32 elevations' bits (with -0.0 made +0.0). Each
+    group is sorted on its own, groups in parallel: one 64-bit key per cell,
+    the order-preserving integer image of the elevation above the position.
+    """
+    n = group_order.shape[0]
+    out = np.empty(n, dtype=np.int64)
+    n_groups = group_start.shape[0] - 1
+    for g in prange(n_groups):
+        a = group_start[g]
+        b = group_start[g + 1]
+        if b <= a:
+            continue
+        keys = np.empty(b - a, dtype=np.uint64)
+        for k in range(a, b):
+            p = group_order[k]
+            bits = zbits[p]
+            if bits & np.uint32(0x80000000):
+                ordered = bits ^ np.uint32(0xFFFFFFFF)
+            else:
+                ordered = bits | np.uint32(0x80000000)
+            keys[k - a] = (np.uint64(ordered) << np.uint64(32)) | np.uint64(p)
+        keys.sort()
+        for k in range(a, b):
+            out[k] = np.int64(keys[k - a] & np.uint64(0xFFFFFFFF))
+    return out
+
+
 def _bucket(owner, n_nodes):
     """Stable counting sort of positions by owner (ids 1..n_nodes).
 
@@ -455,6 +485,7 @@ sweep = njit(cache=True)(_sweep)
 postorder = njit(cache=True)(_postorder)
 bucket = njit(cache=True)(_bucket)
 group_stable = njit(cache=True)(_group_stable)
+sort_within_groups = njit(parallel=True, cache=True)(_sort_within_groups)
 segments = njit(cache=True)(_segments)
 curve_at = njit(cache=True)(_curve_at)
 full_curve = njit(cache=True)(_full_curve)
