@@ -5,7 +5,7 @@ VENV ?= .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.sillmark-installed
 
-.PHONY: serve test bench demo clean
+.PHONY: serve test browser bench demo clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -14,9 +14,23 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 serve: $(STAMP)
-	$(BIN)/sillmark analyse demo_dem/riverbend.tif --outlet nodata --outlet edge --out out/riverbend
+	$(BIN)/sillmark serve
 
-test: $(STAMP)
+# Headless Chromium for the browser tests, from Debian's packages (the tests
+# drive it through Playwright; no browser is downloaded). Skipped, loudly, where
+# it cannot be installed; the browser tests then skip with the reason.
+browser:
+	@command -v chromium >/dev/null 2>&1 || { \
+	  if [ "$$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then \
+	    echo "make: installing chromium for the browser tests"; \
+	    DEBIAN_FRONTEND=noninteractive apt-get update -qq && \
+	    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null || \
+	    echo "make: COULD NOT INSTALL CHROMIUM: browser tests will be skipped" >&2; \
+	  else \
+	    echo "make: NO CHROMIUM and no root apt-get: browser tests will be skipped" >&2; \
+	  fi; }
+
+test: $(STAMP) browser
 	@rc=0; $(BIN)/python -m pytest || rc=$$?; \
 	if [ $$rc -eq 5 ]; then echo "make test: pytest collected no tests" >&2; fi; \
 	exit $$rc

@@ -9,6 +9,7 @@ import pytest
 
 from analysis.dem import DEM, dem_from_array
 from tests.rasters import write_raster
+from tests.web_support import fresh, lowbank_tif, ready, reference  # noqa: F401  (web test fixtures)
 
 
 @pytest.fixture

@@ -44,6 +44,7 @@ from analysis.assets import (
     assets_from_points,
     raise_sill,
     read_assets,
+    sill_crest,
 )
 from analysis.dem import dem_from_array, read_dem
 from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
@@ -255,15 +256,21 @@ def test_asset_on_open_slope_is_its_own_controlling_point():
         )
     ),
     st.sampled_from([0.5, 1.0, 2.0, 5.0]),
+    st.booleans(),
 )
-def test_what_if_matches_a_textbook_flood_of_the_raised_dem(case, height):
+def test_what_if_matches_a_textbook_flood_of_the_raised_dem(case, height, across_crest):
     z, r, c = case
     dem = dem_from_array(z)
     outlets = build_outlets(dem, ["edge"])
     result = analyse_site(dem, outlets)
-    w = raise_sill(dem, outlets, result, (r, c), height)
+    w = raise_sill(dem, outlets, result, (r, c), height, across_crest=across_crest)
     raised = z.copy()
-    raised[w.raised.row, w.raised.col] += np.float32(height)
+    top = z[w.raised.row, w.raised.col] + np.float32(height)
+    if across_crest and not w.own_sill:
+        raised[sill_crest(result, w.raised.row, w.raised.col, top)] = top
+    else:
+        raised[w.raised.row, w.raised.col] = top
+    assert w.raised_cells == np.count_nonzero(raised != z)
     expected = minimax_stage(raised, outlets.mask)[r, c]
     assert w.onset_after == expected
     assert w.onset_before <= w.onset_after <= w.onset_before + height

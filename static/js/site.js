@@ -1,0 +1,547 @@
+/* Sillmark: the site page — stage control, water-level tiles, figures, chart,
+ * depressions, assets, routes and downloads. Talks only to this server. */
+(function () {
+  "use strict";
+  var S = window.Sillmark;
+  var config = JSON.parse(document.getElementById("site-config").textContent);
+  var N = config.names;
+  var map = window[N.map];
+  var groups = {
+    water: window[N.water], depressions: window[N.depressions], spills: window[N.spills],
+    assets: window[N.assets], route: window[N.route],
+  };
+  var unit = config.unit_symbol;
+  var base = "/api/sites/" + config.site_id;
+  var level = config.level;
+  var range = config.range;
+  var $ = function (id) { return document.getElementById(id); };
+
+  // ------------------------------------------------------------------ level control
+
+  var slider = $("level-slider"), number = $("level-number");
+
+  function levelText(v) { return (Math.round(v * 1000) / 1000).toFixed(range.step < 0.01 ? 3 : 2); }
+
+  function fromHash() {
+    var m = /(?:^|[#&])level=([-+0-9.eE]+)/.exec(window.location.hash);
+    if (m) { var v = parseFloat(m[1]); if (isFinite(v)) { return v; } }
+    return null;
+  }
+
+  var timers = {};
+  function later(name, ms, fn) {
+    clearTimeout(timers[name]);
+    timers[name] = setTimeout(fn, ms);
+  }
+
+  function setLevel(v, source) {
+    if (typeof v !== "number" || !isFinite(v)) {
+      S.show($("level-error"), "Give the level as a number in " + unit + ".");
+      return;
+    }
+    S.show($("level-error"), "");
+    level = v;
+    if (source !== "number") { number.value = levelText(v); }
+    if (source !== "slider") { slider.value = String(Math.min(Math.max(v, range.min), range.max)); }
+    history.replaceState(null, "", "#level=" + levelText(v));
+    $("print-link").href = "/sites/" + config.site_id + "/print?level=" + encodeURIComponent(levelText(v));
+    document.querySelectorAll(".level-echo").forEach(function (n) { n.textContent = S.level(v, unit); });
+    if (chart) { chart.setMarker(v); }
+    later("water", source === "slider" ? 60 : 0, function () { showWater(v); });
+    later("figures", source === "slider" ? 90 : 0, function () { loadFigures(v); });
+    later("assets", source === "slider" ? 250 : 0, function () { loadAssets(v); });
+    restyleDepressions();
+    renderDepressionTable();
+    renderFiles();
+  }
+
+  slider.addEventListener("input", function () { setLevel(parseFloat(slider.value), "slider"); });
+  number.addEventListener("change", function () {
+    var text = number.value.trim();
+    setLevel(text === "" ? NaN : Number(text), "number");
+  });
+  number.addEventListener("keydown", function (ev) {
+    if (ev.key === "Enter") { ev.preventDefault(); number.dispatchEvent(new Event("change")); }
+  });
+  $("level-down").addEventListener("click", function () { setLevel(+(level - range.step).toFixed(6), "button"); });
+  $("level-up").addEventListener("click", function () { setLevel(+(level + range.step).toFixed(6), "button"); });
+
+  // ------------------------------------------------------------------ water tiles (double-buffered)
+
+  var waterSeq = 0, waterFront = 0;
+  function showWater(v) {
+    var seq = ++waterSeq;
+    var url = "/tiles/" + config.site_id + "/" + encodeURIComponent(levelText(v)) +
+      "/{z}/{x}/{y}.png?run=" + config.run_id;
+    var layer = L.tileLayer(url, { maxZoom: 21, className: "water-tiles", keepBuffer: 2 });
+    layer._sillmarkSeq = seq;
+    // Pending layers for older levels are no longer wanted.
+    groups.water.eachLayer(function (l) {
+      if (l._sillmarkSeq !== waterFront) { groups.water.removeLayer(l); }
+    });
+    layer.on("load", function () {
+      if (seq < waterFront) { groups.water.removeLayer(layer); return; }
+      waterFront = seq;
+      groups.water.eachLayer(function (l) { if (l._sillmarkSeq < seq) { groups.water.removeLayer(l); } });
+      document.body.dataset.waterLevel = levelText(v);
+    });
+    groups.water.addLayer(layer);
+  }
+
+  // ------------------------------------------------------------------ figures
+
+  var figureSeq = 0;
+  function loadFigures(v) {
+    var seq = ++figureSeq;
+    S.getJSON(base + "/stage?level=" + encodeURIComponent(levelText(v))).then(function (f) {
+      if (seq !== figureSeq) { return; }
+      $("fig-flooded-area").textContent = S.fixed(f.flooded_area_ha, 2) + "\u202fha";
+      $("fig-flooded-area").dataset.m2 = String(f.flooded_area_m2);
+      $("fig-flooded-area-m2").textContent = S.fixed(f.flooded_area_m2, 0) + "\u202fm²";
+      $("fig-flooded-volume").textContent = S.volume(f.flooded_volume_m3);
+      $("fig-flooded-volume-alt").textContent = f.flooded_volume_acre_ft !== undefined
+        ? S.fixed(f.flooded_volume_acre_ft, 1) + "\u202facre-ft" : "above the ground, reached from the outlets";
+      $("fig-shielded-area").textContent = S.fixed(f.shielded_area_ha, 2) + "\u202fha";
+      $("fig-shielded-volume").textContent = "would hold " + S.volume(f.shielded_volume_m3);
+      if (f.assets) {
+        $("fig-assets").textContent = f.assets.flooded + " of " + f.assets.total;
+        $("fig-assets-sub").textContent = f.assets.shielded + " shielded · " + f.assets.dry + " dry" +
+          (f.assets.without_figures ? " · " + f.assets.without_figures + " off the data" : "");
+      } else {
+        $("fig-assets").textContent = "–";
+        $("fig-assets-sub").textContent = "no asset table";
+      }
+      var d = f.depressions;
+      $("fig-depressions").textContent = "Depressions: " + d.overtopped + " of " + d.total +
+        " overtopped, " + d.cut_off + " below the level but cut off.";
+      document.body.dataset.figuresLevel = levelText(v);
+    }).catch(function (err) {
+      if (seq === figureSeq) { S.show($("level-error"), err.message); }
+    });
+  }
+
+  // ------------------------------------------------------------------ stage chart
+
+  var chart = null;
+  S.getJSON(base + "/stage_table").then(function (t) {
+    var ha = function (a) { return a.map(function (v) { return v / 1e4; }); };
+    chart = new window.SillmarkChart.LineChart($("stage-chart"), {
+      xLabel: "outlet water level (" + unit + ")",
+      left: { label: "area (ha)" },
+      right: { label: "volume (m³)" },
+      series: [
+        { x: t.level, y: ha(t.shielded_area_m2), axis: "left", colour: "#c97614", dash: [5, 3], width: 1.6 },
+        { x: t.level, y: ha(t.flooded_area_m2), axis: "left", colour: "#2f6fa3", width: 2.2 },
+        { x: t.level, y: t.flooded_volume_m3, axis: "right", colour: "#4a3a8c", width: 1.6, dash: [1, 0] },
+      ],
+      marker: level,
+      onPick: function (x) { setLevel(Math.round(x / range.step) * range.step, "chart"); },
+    });
+  }).catch(function (err) { $("chart-heading").textContent = "Site stage chart (" + err.message + ")"; });
+
+  // ------------------------------------------------------------------ sortable tables
+
+  function sortable(table, rows, render) {
+    var state = { key: null, dir: 1 };
+    var initial = table.querySelector("th.sorted-asc");
+    if (initial) { state.key = initial.dataset.key; }
+    table.querySelectorAll("th[data-key]").forEach(function (th) {
+      th.tabIndex = 0;
+      var go = function () {
+        if (state.key === th.dataset.key) { state.dir = -state.dir; } else { state.key = th.dataset.key; state.dir = 1; }
+        table.querySelectorAll("th").forEach(function (o) { o.classList.remove("sorted-asc", "sorted-desc"); });
+        th.classList.add(state.dir > 0 ? "sorted-asc" : "sorted-desc");
+        render();
+      };
+      th.addEventListener("click", go);
+      th.addEventListener("keydown", function (ev) { if (ev.key === "Enter" || ev.key === " ") { ev.preventDefault(); go(); } });
+    });
+    return function sorted() {
+      var key = state.key, dir = state.dir;
+      var list = rows().slice();
+      if (!key) { return list; }
+      var th = table.querySelector('th[data-key="' + key + '"]');
+      var numeric = th && th.dataset.type === "num";
+      list.sort(function (a, b) {
+        var x = a[key], y = b[key];
+        if (x === null || x === undefined) { return 1; }
+        if (y === null || y === undefined) { return -1; }
+        if (numeric) { return (x - y) * dir; }
+        return String(x).localeCompare(String(y)) * dir;
+      });
+      return list;
+    };
+  }
+
+  // ------------------------------------------------------------------ depressions
+
+  var depressions = [], depressionById = {}, outlines = {}, selectedDepression = null;
+
+  function depressionState(d) {
+    if (d.spill_elevation <= level) { return "overtopped"; }
+    if (d.pit_elevation < level) { return "cut off"; }
+    return "dry";
+  }
+
+  var depressionRows = sortable($("depressions-table"), function () {
+    return depressions.map(function (d) { return Object.assign({ state: depressionState(d) }, d); });
+  }, renderDepressionTable);
+
+  function renderDepressionTable() {
+    var body = $("depressions-table").tBodies[0];
+    if (!body) { return; }
+    body.innerHTML = "";
+    depressionRows().forEach(function (d) {
+      var tr = S.el("tr", { tabindex: "0", "data-id": String(d.id) }, [
+        S.el("td", { text: String(d.id) }),
+        S.el("td", { text: S.fixed(d.spill_elevation, 2) }),
+        S.el("td", { text: S.fixed(d.max_depth, 2) }),
+        S.el("td", { text: S.fixed(d.area_ha, 2) }),
+        S.el("td", { text: S.fixed(d.volume_m3, 0) }),
+        S.el("td", {}, [S.el("span", { class: "state state-" + d.state.replace(" ", "-"), text: d.state })]),
+      ]);
+      if (selectedDepression === d.id) { tr.classList.add("selected"); }
+      tr.addEventListener("click", function () { selectDepression(d.id, true); });
+      tr.addEventListener("keydown", function (ev) { if (ev.key === "Enter") { selectDepression(d.id, true); } });
+      body.appendChild(tr);
+    });
+  }
+
+  function outlineStyle(d) {
+    var st = depressionState(d);
+    var selected = selectedDepression === d.id;
+    if (st === "overtopped") { return { color: "#1f4e79", weight: selected ? 3.5 : 1.6, fill: false, dashArray: null }; }
+    if (st === "cut off") { return { color: "#a85d0c", weight: selected ? 3.5 : 1.8, fill: false, dashArray: "6 4" }; }
+    return { color: "#56636b", weight: selected ? 3.5 : 1.2, fill: false, dashArray: "2 4" };
+  }
+
+  function restyleDepressions() {
+    Object.keys(outlines).forEach(function (id) {
+      var d = depressionById[id];
+      if (d) { outlines[id].setStyle(outlineStyle(d)); }
+    });
+  }
+
+  function depressionPopup(d) {
+    var st = depressionState(d);
+    var rows = [
+      ["Lowest ground", S.level(d.pit_elevation, unit)],
+      ["Spill elevation", S.level(d.spill_elevation, unit)],
+      ["Deepest water when full", S.level(d.max_depth, unit).replace(/^/, "")],
+      ["Area when full", S.area(d.area_m2)],
+      ["Storage when full", S.volume(d.volume_m3) + (d.volume_acre_ft !== undefined ? " (" + S.fixed(d.volume_acre_ft, 1) + " acre-ft)" : "")],
+      ["Spills into", d.spills_to ? "depression " + d.spills_to : "an outlet"],
+      ["At " + S.level(level, unit), st + (st !== "overtopped" ? ", " + S.level(d.spill_elevation - level, unit) + " to spare" : "")],
+    ];
+    return popupTable("Depression " + d.id, rows);
+  }
+
+  function popupTable(title, rows, extra) {
+    var html = '<div class="popup"><h4>' + escapeHtml(title) + "</h4><table>";
+    rows.forEach(function (r) { html += "<tr><th>" + escapeHtml(r[0]) + "</th><td>" + escapeHtml(r[1]) + "</td></tr>"; });
+    return html + "</table>" + (extra || "") + "</div>";
+  }
+
+  function escapeHtml(s) {
+    return String(s).replace(/[&<>"']/g, function (c) {
+      return { "&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;" }[c];
+    });
+  }
+
+  function selectDepression(id, zoom) {
+    var d = depressionById[id];
+    if (!d) { return; }
+    selectedDepression = id;
+    restyleDepressions();
+    renderDepressionTable();
+    if (zoom && d.bounds) {
+      map.fitBounds([[d.bounds[1], d.bounds[0]], [d.bounds[3], d.bounds[2]]], { padding: [40, 40], maxZoom: 19 });
+    }
+    if (outlines[id]) { outlines[id].bringToFront(); }
+    var detail = $("depression-detail");
+    detail.hidden = false;
+    $("depression-detail-title").textContent = "Depression " + id;
+    $("depression-detail-text").textContent = "Pit " + S.level(d.pit_elevation, unit) + ", spills at " +
+      S.level(d.spill_elevation, unit) + " into " + (d.spills_to ? "depression " + d.spills_to : "an outlet") +
+      "; holds " + S.volume(d.volume_m3) + " over " + S.area(d.area_m2) + " when full.";
+    $("depression-curve-note").textContent = "Loading its stage–storage curve…";
+    S.getJSON(base + "/depressions/" + id + "/curve").then(function (c) {
+      if (selectedDepression !== id) { return; }
+      new window.SillmarkChart.LineChart($("depression-chart"), {
+        xLabel: "water level in the depression (" + unit + ")",
+        left: { label: "storage (m³)" }, right: { label: "area (m²)" },
+        series: [
+          { x: c.level, y: c.storage_m3, axis: "left", colour: "#4a3a8c", width: 2 },
+          { x: c.level, y: c.area_m2, axis: "right", colour: "#2f6fa3", width: 1.4, dash: [4, 3] },
+        ],
+        marker: level,
+      });
+      $("depression-curve-note").textContent = "Stage–storage (solid) and stage–area (dashed), exact for the DEM" +
+        (c.nested_pools ? "; " + c.nested_pools + " smaller pool" + (c.nested_pools > 1 ? "s" : "") +
+          " (pits and the pools they merge into) nest inside it." : ".");
+    }).catch(function (err) {
+      $("depression-curve-note").textContent = "Stage–storage curve not available: " + err.message;
+    });
+  }
+
+  Promise.all([S.getJSON(base + "/depressions"), S.getJSON(base + "/depressions.geojson")]).then(function (res) {
+    depressions = res[0].depressions;
+    depressions.forEach(function (d) { depressionById[d.id] = d; });
+    L.geoJSON(res[1], {
+      style: function (f) { return outlineStyle(depressionById[f.properties.id] || {}); },
+      onEachFeature: function (f, layer) {
+        var id = f.properties.id;
+        outlines[id] = layer;
+        layer.bindPopup(function () { return depressionPopup(depressionById[id]); }, { maxWidth: 320 });
+        layer.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectDepression(id, false); layer.openPopup(ev.latlng); });
+      },
+    }).addTo(groups.depressions);
+    depressions.forEach(function (d) {
+      if (d.spill_lat === null) { return; }
+      var m = L.circleMarker([d.spill_lat, d.spill_lon], {
+        radius: 5, color: "#2b2118", weight: 1.5, fillColor: "#e0b043", fillOpacity: 1, className: "spill-point",
+      });
+      m.bindTooltip("spill " + S.level(d.spill_elevation, unit), { direction: "top", offset: [0, -4] });
+      m.bindPopup(function () { return depressionPopup(d); }, { maxWidth: 320 });
+      m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectDepression(d.id, false); m.openPopup(); });
+      groups.spills.addLayer(m);
+    });
+    renderDepressionTable();
+  }).catch(function (err) {
+    $("tab-depressions").insertBefore(S.el("p", { class: "message error-box small", text: err.message }),
+      $("tab-depressions").firstChild);
+  });
+
+  // ------------------------------------------------------------------ assets
+
+  var assets = [], assetMarkers = {}, selectedAsset = null, assetSeq = 0;
+
+  var assetRows = sortable($("assets-table"), function () { return assets; }, renderAssetTable);
+
+  function assetPopup(a) {
+    var rows = [["Kind", a.kind || "–"], ["Ground", S.level(a.ground_elevation, unit)],
+      ["Onset stage", S.level(a.onset_stage, unit)]];
+    if (a.state === "flooded") { rows.push(["Depth at " + S.level(level, unit), S.level(a.depth, unit)]); }
+    else if (a.state === "shielded") { rows.push(["Below the level by", S.level(a.depth_if_reached, unit) + " (shielded)"]); }
+    else if (a.status === "ok") { rows.push(["Freeboard", S.level(a.freeboard, unit)]); }
+    if (a.status !== "ok") { rows.push(["Placement", a.status]); }
+    else {
+      rows.push(["Controlling sill", a.sill_is_own_cell ? "its own ground" : S.level(a.sill_elevation, unit)]);
+    }
+    var extra = a.status === "ok" ? '<p><a href="#" class="whatif-link" data-index="' + a.index + '">What if the sill were higher…</a></p>' : "";
+    return popupTable(a.name, rows, extra);
+  }
+
+  function renderAssetTable() {
+    var body = $("assets-table").tBodies[0];
+    body.innerHTML = "";
+    assetRows().forEach(function (a) {
+      var tr = S.el("tr", { tabindex: "0" }, [
+        S.el("td", {}, [a.name, S.el("div", { class: "muted small", text: a.kind || "" })]),
+        S.el("td", { text: S.fixed(a.ground_elevation, 2) }),
+        S.el("td", { text: S.fixed(a.onset_stage, 2) }),
+        S.el("td", { text: S.fixed(a.freeboard, 2) }),
+        S.el("td", {}, [S.el("span", { class: "state state-" + (a.state || "none"), text: a.state || a.status })]),
+      ]);
+      if (selectedAsset === a.index) { tr.classList.add("selected"); }
+      tr.addEventListener("click", function () { selectAsset(a.index, true); });
+      tr.addEventListener("keydown", function (ev) { if (ev.key === "Enter") { selectAsset(a.index, true); } });
+      body.appendChild(tr);
+    });
+  }
+
+  var STATE_FILL = { flooded: "#2f6fa3", shielded: "#d98a1c", dry: "#6f8f5a" };
+
+  function loadAssets(v) {
+    var seq = ++assetSeq;
+    return S.getJSON(base + "/assets?level=" + encodeURIComponent(levelText(v))).then(function (res) {
+      if (seq !== assetSeq) { return; }
+      assets = res.assets;
+      $("assets-source").textContent = res.source
+        ? res.source.count + " assets from " + res.source.name + ", at " + S.level(res.level, unit) + "."
+        : "No asset table yet. Upload one to see when each place gets wet.";
+      groups.assets.clearLayers();
+      assetMarkers = {};
+      assets.forEach(function (a) {
+        if (a.lat === null || a.lon === null) { return; }
+        var m = L.circleMarker([a.lat, a.lon], {
+          radius: 7, color: "#ffffff", weight: 2, fillColor: STATE_FILL[a.state] || "#8a8f93", fillOpacity: 1,
+          className: "asset-marker",
+        });
+        m.bindTooltip(a.name, { direction: "top", offset: [0, -6] });
+        m.bindPopup(function () { return assetPopup(a); }, { maxWidth: 320 });
+        m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectAsset(a.index, false); m.openPopup(); });
+        assetMarkers[a.index] = m;
+        groups.assets.addLayer(m);
+      });
+      renderAssetTable();
+      renderFiles();
+    }).catch(function (err) { S.show($("assets-error"), err.message); });
+  }
+
+  function selectAsset(index, zoom) {
+    var a = assets.find(function (x) { return x.index === index; });
+    if (!a) { return; }
+    selectedAsset = index;
+    renderAssetTable();
+    if (zoom && a.lat !== null) { map.setView([a.lat, a.lon], Math.max(map.getZoom(), 17)); }
+    if (assetMarkers[index]) { assetMarkers[index].openPopup(); }
+    var box = $("whatif");
+    box.hidden = a.status !== "ok";
+    $("whatif-asset").textContent = a.name + ": onset stage " + S.level(a.onset_stage, unit) +
+      (a.sill_is_own_cell ? " (its own ground controls: raising it means a pad or a wall round it)."
+        : ", controlled by a sill at " + S.level(a.sill_elevation, unit) + ".");
+    S.show($("whatif-error"), "");
+    $("whatif-result").hidden = true;
+  }
+
+  document.addEventListener("click", function (ev) {
+    var link = ev.target.closest && ev.target.closest(".whatif-link");
+    if (!link) { return; }
+    ev.preventDefault();
+    openTab("tab-assets");
+    selectAsset(parseInt(link.dataset.index, 10), false);
+  });
+
+  $("whatif-form").addEventListener("submit", function (ev) {
+    ev.preventDefault();
+    if (selectedAsset === null) { return; }
+    var height = $("whatif-height").value;
+    S.show($("whatif-error"), "");
+    var out = $("whatif-result");
+    out.hidden = false;
+    out.textContent = "Flooding the site again with the raised sill…";
+    S.getJSON(base + "/whatif", {
+      method: "POST", headers: { "Content-Type": "application/json" },
+      body: JSON.stringify({ asset: selectedAsset, height: height }),
+    }).then(function (w) {
+      out.innerHTML = "";
+      out.appendChild(S.el("p", { class: "whatif-numbers" }, [
+        "Onset stage ", S.el("strong", { text: S.level(w.onset_before, unit) }), " → ",
+        S.el("strong", { text: S.level(w.onset_after, unit) }), " (+" + S.fixed(w.gain, 2) + "\u202f" + unit + ")",
+      ]));
+      out.appendChild(S.el("p", { class: "small", text: w.explanation }));
+      groups.route.clearLayers();
+      L.geoJSON(w.route_after, { style: { color: "#6a3d9a", weight: 3, dashArray: "6 5" } }).addTo(groups.route);
+      addSill(w.sill_after, "controlling sill after raising: " + S.level(w.sill_after.elevation, unit));
+      L.circleMarker([w.raised.lat, w.raised.lon], { radius: 6, color: "#6a3d9a", weight: 2, fillColor: "#fff", fillOpacity: 1 })
+        .bindTooltip("raised cell (was " + S.level(w.raised.elevation, unit) + ")").addTo(groups.route);
+    }).catch(function (err) { out.hidden = true; S.show($("whatif-error"), err.message); });
+  });
+
+  $("assets-form").addEventListener("submit", function (ev) {
+    ev.preventDefault();
+    var file = $("assets-file").files[0];
+    if (!file) { S.show($("assets-error"), "Choose a CSV or GeoJSON file of assets first."); return; }
+    var form = new FormData();
+    form.append("assets", file, file.name);
+    S.show($("assets-error"), "");
+    S.getJSON(this.action, { method: "POST", body: form }).then(function (res) {
+      $("assets-file").value = "";
+      loadAssets(level);
+      loadFigures(level);
+      renderFiles();
+      var counts = Object.keys(res.status_counts).map(function (k) { return res.status_counts[k] + " " + k; }).join(", ");
+      $("assets-source").textContent = res.count + " assets read from " + res.original_name + " (" + counts + ").";
+    }).catch(function (err) { S.show($("assets-error"), err.message); });
+  });
+
+  // ------------------------------------------------------------------ click: the route to a point
+
+  function addSill(s, text) {
+    L.circleMarker([s.lat, s.lon], {
+      radius: 8, color: "#3b1f00", weight: 2, fillColor: "#ff8c1a", fillOpacity: 1, className: "sill-marker",
+    }).bindTooltip(text, { permanent: true, direction: "right", offset: [8, 0], className: "sill-label" })
+      .addTo(groups.route);
+  }
+
+  map.on("click", function (ev) {
+    var ll = ev.latlng.wrap();
+    var url = base + "/cell?lon=" + ll.lng.toFixed(8) + "&lat=" + ll.lat.toFixed(8) +
+      "&level=" + encodeURIComponent(levelText(level));
+    var popup = L.popup({ maxWidth: 340 }).setLatLng(ev.latlng).setContent("Tracing the route…").openOn(map);
+    S.getJSON(url).then(function (c) {
+      groups.route.clearLayers();
+      if (c.route.coordinates.length > 1) {
+        L.geoJSON(c.route, { style: { color: "#14232c", weight: 3.5, opacity: 0.9, className: "route-line" } }).addTo(groups.route);
+        L.geoJSON(c.route, { style: { color: "#ffffff", weight: 1.2, opacity: 0.9, dashArray: "2 6" } }).addTo(groups.route);
+      }
+      L.circleMarker([c.lat, c.lon], { radius: 4, color: "#14232c", weight: 2, fillColor: "#fff", fillOpacity: 1 }).addTo(groups.route);
+      addSill(c.sill, c.sill.is_own_cell ? "its own ground controls (" + S.level(c.sill.elevation, unit) + ")"
+        : "controlling sill " + S.level(c.sill.elevation, unit));
+      var rows = [
+        ["Elevation", S.level(c.elevation, unit)],
+        ["Onset stage", S.level(c.onset_stage, unit)],
+        ["At " + S.level(c.level, unit), c.state === "flooded" ? "flooded, " + S.level(c.depth, unit) + " deep"
+          : c.state === "shielded" ? "shielded: " + S.level(c.depth_if_reached, unit) + " below the level, no path yet"
+            : "dry, " + S.level(c.freeboard, unit) + " to spare"],
+        ["Controlling sill", c.sill.is_own_cell ? "the point itself" : S.level(c.sill.elevation, unit)],
+        ["Route", c.route_cells + " cells from " + (c.reaches_outlet ? "an outlet" : "the edge of the data")],
+        ["In depression", c.depression_id ? String(c.depression_id) : "none"],
+      ];
+      popup.setContent(popupTable("This point", rows));
+      document.body.dataset.routeCells = String(c.route_cells);
+    }).catch(function (err) {
+      popup.setContent('<div class="popup"><p>' + escapeHtml(err.message) + "</p></div>");
+    });
+  });
+
+  // ------------------------------------------------------------------ files
+
+  function renderFiles() {
+    var list = $("level-files");
+    if (!list) { return; }
+    var t = encodeURIComponent(levelText(level));
+    var at = base + "/files/level/" + t;
+    var items = [
+      ["depth", "depth of water (GeoTIFF)"], ["water_state", "dry / flooded / shielded per cell (GeoTIFF)"],
+      ["flood_extent", "flooded outline (GeoJSON)"], ["shielded", "shielded low ground outline (GeoJSON)"],
+      ["depressions", "each depression's state and freeboard (CSV)"],
+    ];
+    if (assets.length) { items.push(["assets_csv", "assets at this level (CSV)"], ["assets_geojson", "assets, routes and sills (GeoJSON)"]); }
+    list.innerHTML = "";
+    items.forEach(function (it) {
+      list.appendChild(S.el("li", {}, [S.el("a", { href: at + "/" + it[0], download: "" , text: it[0].replace("_", " ") }), " ",
+        S.el("span", { class: "muted", text: it[1] })]));
+    });
+    list.appendChild(S.el("li", {}, [S.el("a", { href: at + ".zip", download: "", text: "all of these (ZIP)" })]));
+  }
+
+  // ------------------------------------------------------------------ tabs, legend, run strip
+
+  function openTab(id) {
+    document.querySelectorAll(".tab").forEach(function (t) {
+      var on = t.dataset.tab === id;
+      t.classList.toggle("active", on);
+      t.setAttribute("aria-selected", on ? "true" : "false");
+    });
+    document.querySelectorAll(".tab-panel").forEach(function (p) { p.hidden = p.id !== id; });
+  }
+  document.querySelectorAll(".tab").forEach(function (t) {
+    t.addEventListener("click", function () { openTab(t.dataset.tab); });
+  });
+
+  S.legend($("legend"), config.legend);
+
+  var strip = $("run-strip");
+  if (strip && !strip.hidden) {
+    var poll = function () {
+      S.getJSON(strip.dataset.statusUrl).then(function (st) {
+        if (st.current_run !== config.run_id) { window.location.reload(); return; }
+        var r = st.run;
+        if (r && (r.status === "queued" || r.status === "running")) {
+          strip.textContent = "A new analysis is " + r.status + ": " + r.phase + " (" + Math.round(r.percent) + " %).";
+          setTimeout(poll, 2000);
+        } else if (r && r.status === "failed") {
+          strip.textContent = "The latest analysis failed: " + r.message + " Showing the results of the earlier run.";
+        }
+      }).catch(function () { setTimeout(poll, 5000); });
+    };
+    setTimeout(poll, 1500);
+  }
+
+  map.on("click", function () { var hint = $("map-hint"); if (hint) { hint.hidden = true; } });
+
+  var start = fromHash();
+  setLevel(start !== null ? start : level, "init");
+})();
