@@ -17,9 +17,15 @@ through a small graph over their perimeter cells, after Barnes (2016):
    whose level came through its own tile has the tree path from the meeting
    cell back to it reversed, so that it leads out through the meeting.
 
-The kernels take the shared padded arrays of :mod:`analysis._flood_kernels`
-(``level``, ``state``, ``label``; width ``width``) and tile bounds; they trust
-their inputs. Per-tile kernels release the GIL so tiles run on several threads.
+Step 1 works on tile-local arrays (:func:`_flood_tile_arrays` returns the
+tile's own padded level, state and label arrays); :func:`_flood_tile` copies
+them into the shared padded arrays of :mod:`analysis._flood_kernels`
+(``level``, ``state``, ``label``; width ``width``) for the in-memory engine,
+while the out-of-core engine (:mod:`analysis.tiled`) keeps them per tile. Step
+3 (:func:`_finish_tile`) takes either: the shared arrays with the tile's bounds,
+or a tile's own arrays with bounds ``0:h, 0:w`` and width ``w + 2``. The kernels
+trust their inputs. Per-tile kernels release the GIL so tiles run on several
+threads.
 
 References
 ----------
@@ -59,16 +65,19 @@ def _is_perimeter(lr, lc, h, w):
     return lr == 0 or lr == h - 1 or lc == 0 or lc == w - 1
 
 
-def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
-                level, state, label, width):
-    """Step 1 for one tile: local flood with seed labels and label meetings.
+def _flood_tile_arrays(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs):
+    """Step 1 for one tile, on tile-local arrays: local flood with seed labels.
 
-    Writes the tile's cells of ``level`` (local level), ``state`` (flood-tree
-    code inside the tile, :data:`SEED` on seeds, :data:`OUTLET` on outlets) and
-    ``label`` (seed label; 0 for cells flooded from an outlet). Returns the
-    global padded index of every seed (index = label, entry 0 unused), the
-    meetings (label a < label b, level, cell on a's side, cell on b's side, as
-    global padded indices) and the number of priority-queue pops.
+    Floods the cells ``[r0:r1, c0:c1]`` of ``elevation`` and ``outlet_mask``
+    (which may be the whole grid or just the tile) and returns the tile's own
+    arrays, padded by one cell (width ``c1 - c0 + 2``): the local level
+    (float32, NaN on padding and nodata), the state (flood-tree code inside the
+    tile, :data:`SEED` on seeds, :data:`OUTLET` on outlets, ``BLOCKED`` on
+    padding and nodata) and the seed label (int32; 0 for cells flooded from an
+    outlet, -1 on padding and nodata). Also returns the local padded index of
+    every seed (index = label, entry 0 unused), the meetings (label a < label
+    b, level, cell on a's side, cell on b's side, as local padded indices) and
+    the number of priority-queue pops.
     """
     h = r1 - r0
     w = c1 - c0
@@ -113,7 +122,7 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
             t = lstate[li]
             if t == OUTLET or t == SEED:
                 if t == SEED:
-                    seeds[llab[li]] = (r0 + lr + 1) * width + c0 + lc + 1
+                    seeds[llab[li]] = li
                 if heap_size == heap.shape[0]:
                     heap = _grow_uint64(heap, heap_size)
                 _heap_sift_up(heap, heap_size, _ordered_key(bits[li], np.uint64(li)))
@@ -206,14 +215,6 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
             head = (head + 1) & ring_mask
             queued -= 1
 
-    for lr in range(h):
-        gbase = (r0 + lr + 1) * width + c0 + 1
-        lbase = (lr + 1) * lw + 1
-        for lc in range(w):
-            level[gbase + lc] = lz[lbase + lc]
-            state[gbase + lc] = lstate[lbase + lc]
-            label[gbase + lc] = llab[lbase + lc]
-
     ea = np.empty(n_pairs, dtype=np.int32)
     eb = np.empty(n_pairs, dtype=np.int32)
     elevel = np.empty(n_pairs, dtype=np.float32)
@@ -226,9 +227,43 @@ def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
         ea[m] = np.int32(hkey[slot] >> np.uint64(32))
         eb[m] = np.int32(hkey[slot] & _LOW32)
         elevel[m] = hlevel[slot]
-        ecell_a[m] = _local_to_global(hcell_a[slot], lw, r0, c0, width)
-        ecell_b[m] = _local_to_global(hcell_b[slot], lw, r0, c0, width)
+        ecell_a[m] = hcell_a[slot]
+        ecell_b[m] = hcell_b[slot]
         m += 1
+    return lz, lstate, llab, seeds, ea, eb, elevel, ecell_a, ecell_b, heap_pops
+
+
+def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
+                level, state, label, width):
+    """Step 1 for one tile of the shared padded grids (the in-memory engine).
+
+    Runs :func:`_flood_tile_arrays` and copies the tile's cells into ``level``
+    (local level), ``state`` and ``label``. Returns the global padded index of
+    every seed (index = label, entry 0 unused), the meetings (label a < label
+    b, level, cell on a's side, cell on b's side, as global padded indices) and
+    the number of priority-queue pops.
+    """
+    lz, lstate, llab, lseeds, ea, eb, elevel, la, lb, heap_pops = _flood_tile_arrays(
+        elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs
+    )
+    h = r1 - r0
+    w = c1 - c0
+    lw = w + 2
+    for lr in range(h):
+        gbase = (r0 + lr + 1) * width + c0 + 1
+        lbase = (lr + 1) * lw + 1
+        for lc in range(w):
+            level[gbase + lc] = lz[lbase + lc]
+            state[gbase + lc] = lstate[lbase + lc]
+            label[gbase + lc] = llab[lbase + lc]
+    seeds = np.zeros(lseeds.shape[0], dtype=np.int64)
+    for k in range(1, lseeds.shape[0]):
+        seeds[k] = _local_to_global(lseeds[k], lw, r0, c0, width)
+    ecell_a = np.empty(la.shape[0], dtype=np.int64)
+    ecell_b = np.empty(lb.shape[0], dtype=np.int64)
+    for m in range(la.shape[0]):
+        ecell_a[m] = _local_to_global(la[m], lw, r0, c0, width)
+        ecell_b[m] = _local_to_global(lb[m], lw, r0, c0, width)
     return seeds, ea, eb, elevel, ecell_a, ecell_b, heap_pops
 
 
@@ -451,6 +486,8 @@ _local_to_global = njit(inline="always", cache=True)(_local_to_global)
 _rehash = njit(cache=True)(_rehash)
 _resize_i64 = njit(cache=True)(_resize_i64)
 _resize_f32 = njit(cache=True)(_resize_f32)
+flood_tile_arrays = njit(nogil=True, cache=True)(_flood_tile_arrays)
+_flood_tile_arrays = flood_tile_arrays
 flood_tile = njit(nogil=True, cache=True)(_flood_tile)
 links = njit(cache=True)(_links)
 solve_graph = njit(cache=True)(_solve_graph)

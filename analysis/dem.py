@@ -27,6 +27,7 @@ from typing import Any
 import numpy as np
 import pyproj
 import rasterio
+import rasterio.windows
 from affine import Affine
 from rasterio._err import CPLE_BaseError
 from rasterio.crs import CRS
@@ -37,7 +38,7 @@ from rasterio.io import DatasetReader
 from analysis.errors import InvalidDEM, InvalidParameter, LocationOutsideDEM, SillmarkError
 from analysis.units import VerticalUnit
 
-__all__ = ["DEFAULT_MAX_CELLS", "DEM", "dem_from_array", "read_dem"]
+__all__ = ["DEFAULT_MAX_CELLS", "DEM", "DEMGrid", "dem_from_array", "read_dem", "read_dem_grid"]
 
 #: Largest grid :func:`read_dem` accepts unless told otherwise (20 000 × 20 000).
 DEFAULT_MAX_CELLS = 400_000_000
@@ -84,79 +85,20 @@ _PARALLEL_STEP_DEG = 0.001
 _MAX_PARALLEL_PIECES = 2000
 
 
-@dataclasses.dataclass(frozen=True, eq=False)
-class DEM:
-    """A site DEM: float32 elevations on a north-up grid, with CRS and vertical unit.
+class _Georeferenced:
+    """Georeferencing shared by :class:`DEM` and :class:`DEMGrid`.
 
-    Build one with :func:`read_dem` or :func:`dem_from_array`, which check and
-    convert their input; the constructor itself only checks the structure.
-
-    Attributes
-    ----------
-    elevation : numpy.ndarray
-        float32, shape ``(rows, cols)``, C-contiguous, read-only; NaN where nodata.
-    transform : affine.Affine
-        Maps (col, row) of a cell's north-west corner to map (x, y). North-up:
-        no rotation or shear, ``a > 0`` and ``e < 0``.
-    crs : rasterio.crs.CRS
-        Coordinate reference system (may be compound, with a vertical part).
-    vertical_unit : VerticalUnit
-        Unit of the elevations.
-    nodata : float or None
-        The nodata value the source declared, if any (the array holds NaN there).
-    source_dtype : str
-        Data type of the band in the source, e.g. ``"int16"``.
-    path : str or None
-        The file the DEM was read from.
-    vertical_unit_source : str
-        How the vertical unit was decided: ``"crs"``, ``"argument"``,
-        ``"band-unit"``, ``"horizontal-unit"`` or ``"geographic-default"``
-        (see :func:`read_dem`). Lets a user interface say when it was assumed.
-
-    Notes
-    -----
-    ``valid``, ``row_areas`` and ``is_geographic`` are computed once and cached on
-    the instance (the dataclass is frozen but keeps a ``__dict__``, which is where
-    :func:`functools.cached_property` stores them). The cached arrays are read-only.
-    Instances compare by identity.
+    Needs ``shape``, ``transform`` and ``crs`` on the instance. The cached values
+    live in the instance ``__dict__`` (see :class:`DEM`).
     """
 
-    elevation: np.ndarray
-    transform: Affine
-    crs: CRS
-    vertical_unit: VerticalUnit
-    nodata: float | None = None
-    source_dtype: str = "float32"
-    path: str | None = None
-    vertical_unit_source: str = UNIT_FROM_ARGUMENT
+    @property
+    def rows(self) -> int:
+        return self.shape[0]
 
-    def __post_init__(self) -> None:
-        z = self.elevation
-        if not isinstance(z, np.ndarray) or z.dtype != np.float32 or z.ndim != 2:
-            raise InvalidDEM(
-                "DEM.elevation must be a 2-D float32 numpy array; build DEMs with "
-                "read_dem() or dem_from_array(), which convert the input"
-            )
-        if z.shape[0] == 0 or z.shape[1] == 0:
-            raise InvalidDEM(
-                f"the DEM has no cells (shape {z.shape}); give a grid at least 1 × 1"
-            )
-        if not z.flags.c_contiguous:
-            raise InvalidDEM("DEM.elevation must be C-contiguous; pass np.ascontiguousarray(z)")
-        if z.flags.writeable:
-            # A read-only view: the caller's own array stays writeable.
-            z = z.view()
-            z.flags.writeable = False
-            object.__setattr__(self, "elevation", z)
-        if not isinstance(self.transform, Affine):
-            raise InvalidDEM("DEM.transform must be an affine.Affine")
-        _check_north_up(self.transform, "the DEM")
-        if not isinstance(self.crs, CRS):
-            raise InvalidDEM("DEM.crs must be a rasterio.crs.CRS")
-        if not isinstance(self.vertical_unit, VerticalUnit):
-            raise InvalidDEM("DEM.vertical_unit must be a VerticalUnit")
-        if self._horizontal.is_geographic:
-            _check_geographic_extent(self.transform, z.shape, self._degrees_per_unit)
+    @property
+    def cols(self) -> int:
+        return self.shape[1]
 
     def __setstate__(self, state: dict) -> None:
         # Unpickling bypasses __post_init__: keep the arrays read-only.
@@ -165,28 +107,6 @@ class DEM:
             arr = state.get(key)
             if isinstance(arr, np.ndarray):
                 arr.flags.writeable = False
-
-    # -- shape and masks -------------------------------------------------
-
-    @property
-    def shape(self) -> tuple[int, int]:
-        """``(rows, cols)``."""
-        return self.elevation.shape  # type: ignore[return-value]
-
-    @property
-    def rows(self) -> int:
-        return self.elevation.shape[0]
-
-    @property
-    def cols(self) -> int:
-        return self.elevation.shape[1]
-
-    @functools.cached_property
-    def valid(self) -> np.ndarray:
-        """bool array of the DEM's shape, True where the elevation is known (read-only)."""
-        mask = ~np.isnan(self.elevation)
-        mask.flags.writeable = False
-        return mask
 
     # -- georeferencing --------------------------------------------------
 
@@ -351,6 +271,94 @@ class DEM:
         return rows.copy(), cols.copy()
 
 
+@dataclasses.dataclass(frozen=True, eq=False)
+class DEM(_Georeferenced):
+    """A site DEM: float32 elevations on a north-up grid, with CRS and vertical unit.
+
+    Build one with :func:`read_dem` or :func:`dem_from_array`, which check and
+    convert their input; the constructor itself only checks the structure.
+
+    Attributes
+    ----------
+    elevation : numpy.ndarray
+        float32, shape ``(rows, cols)``, C-contiguous, read-only; NaN where nodata.
+    transform : affine.Affine
+        Maps (col, row) of a cell's north-west corner to map (x, y). North-up:
+        no rotation or shear, ``a > 0`` and ``e < 0``.
+    crs : rasterio.crs.CRS
+        Coordinate reference system (may be compound, with a vertical part).
+    vertical_unit : VerticalUnit
+        Unit of the elevations.
+    nodata : float or None
+        The nodata value the source declared, if any (the array holds NaN there).
+    source_dtype : str
+        Data type of the band in the source, e.g. ``"int16"``.
+    path : str or None
+        The file the DEM was read from.
+    vertical_unit_source : str
+        How the vertical unit was decided: ``"crs"``, ``"argument"``,
+        ``"band-unit"``, ``"horizontal-unit"`` or ``"geographic-default"``
+        (see :func:`read_dem`). Lets a user interface say when it was assumed.
+
+    Notes
+    -----
+    ``valid``, ``row_areas`` and ``is_geographic`` are computed once and cached on
+    the instance (the dataclass is frozen but keeps a ``__dict__``, which is where
+    :func:`functools.cached_property` stores them). The cached arrays are read-only.
+    Instances compare by identity.
+    """
+
+    elevation: np.ndarray
+    transform: Affine
+    crs: CRS
+    vertical_unit: VerticalUnit
+    nodata: float | None = None
+    source_dtype: str = "float32"
+    path: str | None = None
+    vertical_unit_source: str = UNIT_FROM_ARGUMENT
+
+    def __post_init__(self) -> None:
+        z = self.elevation
+        if not isinstance(z, np.ndarray) or z.dtype != np.float32 or z.ndim != 2:
+            raise InvalidDEM(
+                "DEM.elevation must be a 2-D float32 numpy array; build DEMs with "
+                "read_dem() or dem_from_array(), which convert the input"
+            )
+        if z.shape[0] == 0 or z.shape[1] == 0:
+            raise InvalidDEM(
+                f"the DEM has no cells (shape {z.shape}); give a grid at least 1 × 1"
+            )
+        if not z.flags.c_contiguous:
+            raise InvalidDEM("DEM.elevation must be C-contiguous; pass np.ascontiguousarray(z)")
+        if z.flags.writeable:
+            # A read-only view: the caller's own array stays writeable.
+            z = z.view()
+            z.flags.writeable = False
+            object.__setattr__(self, "elevation", z)
+        if not isinstance(self.transform, Affine):
+            raise InvalidDEM("DEM.transform must be an affine.Affine")
+        _check_north_up(self.transform, "the DEM")
+        if not isinstance(self.crs, CRS):
+            raise InvalidDEM("DEM.crs must be a rasterio.crs.CRS")
+        if not isinstance(self.vertical_unit, VerticalUnit):
+            raise InvalidDEM("DEM.vertical_unit must be a VerticalUnit")
+        if self._horizontal.is_geographic:
+            _check_geographic_extent(self.transform, z.shape, self._degrees_per_unit)
+
+    # -- shape and masks -------------------------------------------------
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """``(rows, cols)``."""
+        return self.elevation.shape  # type: ignore[return-value]
+
+    @functools.cached_property
+    def valid(self) -> np.ndarray:
+        """bool array of the DEM's shape, True where the elevation is known (read-only)."""
+        mask = ~np.isnan(self.elevation)
+        mask.flags.writeable = False
+        return mask
+
 # ---------------------------------------------------------------------------
 # public constructors
 
@@ -456,50 +464,64 @@ def read_dem(
                 f"the limit of {int(max_cells):,}; crop it to the site or resample it to "
                 "coarser cells (or raise max_cells if the machine has the memory)"
             )
-        if band is None:
-            if src.count != 1:
-                raise InvalidDEM(
-                    f"'{name}' has {src.count} bands and Sillmark needs one band of "
-                    f"elevations; pass band=N (1 to {src.count}) to pick one"
-                )
-            band = 1
-        elif band > src.count:
-            raise InvalidParameter(
-                f"band={band} but '{name}' has {src.count} band"
-                f"{'s' if src.count != 1 else ''}; use 1 to {src.count}"
-            )
-        band = int(band)
-        dtype = np.dtype(src.dtypes[band - 1])
-        if dtype.kind not in "iuf":
-            raise InvalidDEM(
-                f"band {band} of '{name}' holds {dtype.name} values, not elevations; "
-                "give a band of integer or floating-point heights"
-            )
-        transform = _file_transform(src, name)
-        file_crs = src.crs if src.crs else None
-        dem_crs = _choose_crs(file_crs, crs_arg, name)
-        band_unit = (src.units[band - 1] or "") if src.units else ""
-        nodata = src.nodatavals[band - 1]
-        scale = float(src.scales[band - 1]) if src.scales else 1.0
-        offset = float(src.offsets[band - 1]) if src.offsets else 0.0
-        flags = src.mask_flag_enums[band - 1]
+        head = _band_header(src, path, band, crs_arg, unit_arg)
         try:
-            raw = src.read(band)
-            hidden = None
-            if MaskFlags.per_dataset in flags or MaskFlags.alpha in flags:
-                hidden = src.read_masks(band) == 0
+            raw = src.read(head.band)
+            hidden = src.read_masks(head.band) == 0 if head.masked else None
         except (RasterioError, CPLE_BaseError, OSError) as exc:
             raise InvalidDEM(
                 f"'{name}' opens but its pixels cannot be read ({_gdal_reason(exc, path)}); "
                 "the file may be truncated or damaged: copy or export it again"
             ) from None
 
-    unit, unit_source = _resolve_vertical_unit(dem_crs, unit_arg, band_unit)
     elevation = _to_float32_elevation(
-        raw, nodata, scale=scale, offset=offset, hidden=hidden, owned=True, label=f"'{name}'"
+        raw, head.nodata, scale=head.scale, offset=head.offset, hidden=hidden, owned=True,
+        label=f"'{name}'",
     )
     return DEM(
         elevation=elevation,
+        transform=head.transform,
+        crs=head.crs,
+        vertical_unit=head.vertical_unit,
+        nodata=head.nodata,
+        source_dtype=head.source_dtype,
+        path=path,
+        vertical_unit_source=head.vertical_unit_source,
+    )
+
+
+def _band_header(src: DatasetReader, path: str, band: int | None, crs_arg: CRS | None,
+                 unit_arg: VerticalUnit | None) -> "DEMGrid":
+    """Checks of an open raster that need no pixels; the band's grid and value rules."""
+    name = os.path.basename(path)
+    if band is None:
+        if src.count != 1:
+            raise InvalidDEM(
+                f"'{name}' has {src.count} bands and Sillmark needs one band of "
+                f"elevations; pass band=N (1 to {src.count}) to pick one"
+            )
+        band = 1
+    elif band > src.count:
+        raise InvalidParameter(
+            f"band={band} but '{name}' has {src.count} band"
+            f"{'s' if src.count != 1 else ''}; use 1 to {src.count}"
+        )
+    band = int(band)
+    dtype = np.dtype(src.dtypes[band - 1])
+    if dtype.kind not in "iuf":
+        raise InvalidDEM(
+            f"band {band} of '{name}' holds {dtype.name} values, not elevations; "
+            "give a band of integer or floating-point heights"
+        )
+    transform = _file_transform(src, name)
+    file_crs = src.crs if src.crs else None
+    dem_crs = _choose_crs(file_crs, crs_arg, name)
+    band_unit = (src.units[band - 1] or "") if src.units else ""
+    nodata = src.nodatavals[band - 1]
+    flags = src.mask_flag_enums[band - 1]
+    unit, unit_source = _resolve_vertical_unit(dem_crs, unit_arg, band_unit)
+    return DEMGrid(
+        shape=(int(src.height), int(src.width)),
         transform=transform,
         crs=dem_crs,
         vertical_unit=unit,
@@ -507,7 +529,127 @@ def read_dem(
         source_dtype=dtype.name,
         path=path,
         vertical_unit_source=unit_source,
+        band=band,
+        scale=float(src.scales[band - 1]) if src.scales else 1.0,
+        offset=float(src.offsets[band - 1]) if src.offsets else 0.0,
+        masked=MaskFlags.per_dataset in flags or MaskFlags.alpha in flags,
     )
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class DEMGrid(_Georeferenced):
+    """The grid of a DEM file, without its cells: for reading it window by window.
+
+    Made by :func:`read_dem_grid`, with the checks of :func:`read_dem` that need
+    no pixels. It has the georeferencing of :class:`DEM` (``shape``, ``rows``,
+    ``cols``, ``transform``, ``crs``, ``vertical_unit``, ``row_areas``, ``xy``,
+    ``rowcol``, ...) and reads any window with :meth:`read_window`, converting
+    the values exactly as :func:`read_dem` does, so that a window equals the same
+    cells of ``read_dem(path).elevation``. It pickles small (no pixels), so a
+    task on another machine can read its own windows of a shared file.
+
+    Attributes
+    ----------
+    shape : (int, int)
+    transform, crs, vertical_unit, nodata, source_dtype, path, vertical_unit_source
+        As in :class:`DEM`.
+    band : int
+        1-based band of the elevations.
+    scale, offset : float
+        The band's declared scale and offset (1 and 0 when none).
+    masked : bool
+        Whether the file's own mask (internal mask or alpha band) hides cells.
+    """
+
+    shape: tuple[int, int]
+    transform: Affine
+    crs: CRS
+    vertical_unit: VerticalUnit
+    nodata: float | None
+    source_dtype: str
+    path: str
+    vertical_unit_source: str
+    band: int
+    scale: float = 1.0
+    offset: float = 0.0
+    masked: bool = False
+
+    def __post_init__(self) -> None:
+        if self._horizontal.is_geographic:
+            _check_geographic_extent(self.transform, self.shape, self._degrees_per_unit)
+
+    def read_window(self, row0: int, row1: int, col0: int, col1: int) -> np.ndarray:
+        """Elevations of rows ``row0:row1`` and columns ``col0:col1`` (float32, NaN nodata).
+
+        Parts of the window outside the grid are NaN. The file is opened for each
+        call, so windows may be read from several processes at once.
+
+        Raises
+        ------
+        InvalidDEM
+            The pixels cannot be read, or the window holds values :func:`read_dem`
+            refuses (integers float32 cannot store exactly, floats beyond float32).
+        """
+        rows, cols = self.shape
+        out = np.full((row1 - row0, col1 - col0), np.nan, dtype=np.float32)
+        r0, r1 = max(row0, 0), min(row1, rows)
+        c0, c1 = max(col0, 0), min(col1, cols)
+        if r0 >= r1 or c0 >= c1:
+            return out
+        name = os.path.basename(self.path)
+        window = rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0)
+        with open_local_raster(self.path, InvalidDEM, "the DEM") as src:
+            try:
+                raw = src.read(self.band, window=window)
+                hidden = src.read_masks(self.band, window=window) == 0 if self.masked else None
+            except (RasterioError, CPLE_BaseError, OSError) as exc:
+                raise InvalidDEM(
+                    f"'{name}' opens but its pixels cannot be read "
+                    f"({_gdal_reason(exc, self.path)}); the file may be truncated or damaged: "
+                    "copy or export it again"
+                ) from None
+        out[r0 - row0 : r1 - row0, c0 - col0 : c1 - col0] = _to_float32_elevation(
+            raw, self.nodata, scale=self.scale, offset=self.offset, hidden=hidden, owned=True,
+            label=f"'{name}'", allow_empty=True,
+        )
+        return out
+
+
+def read_dem_grid(
+    path: str | os.PathLike[str],
+    *,
+    band: int | None = None,
+    vertical_unit: str | VerticalUnit | None = None,
+    crs: Any = None,
+) -> DEMGrid:
+    """Open a DEM file for reading window by window: :class:`DEMGrid`.
+
+    The same checks as :func:`read_dem` that need no pixels (a local single-band
+    raster or a chosen band, north-up, a CRS, a vertical unit), and no limit on
+    the number of cells: nothing of the grid is read here. The checks on values
+    (nodata everywhere, integers beyond float32) are made window by window, by
+    :meth:`DEMGrid.read_window`, and by the caller for "all nodata".
+
+    Raises
+    ------
+    InvalidDEM, InvalidParameter
+        As :func:`read_dem`.
+    """
+    path = _local_file(path, InvalidDEM, "the DEM")
+    name = os.path.basename(path)
+    if band is not None and (
+        isinstance(band, bool) or not isinstance(band, (int, np.integer)) or band < 1
+    ):
+        raise InvalidParameter(f"band must be a band number 1, 2, ..., got {band!r}")
+    unit_arg = None if vertical_unit is None else VerticalUnit.parse(vertical_unit)
+    crs_arg = None if crs is None else _parse_crs(crs, InvalidParameter, "crs")
+    with open_local_raster(path, InvalidDEM, "the DEM") as src:
+        if src.width == 0 or src.height == 0:
+            raise InvalidDEM(
+                f"'{name}' has zero width or height ({src.width} × {src.height} cells); "
+                "give a raster with at least one cell"
+            )
+        return _band_header(src, path, band, crs_arg, unit_arg)
 
 
 def dem_from_array(
@@ -902,15 +1044,17 @@ def _to_float32_elevation(
     hidden: np.ndarray | None = None,
     owned: bool,
     label: str,
+    allow_empty: bool = False,
 ) -> np.ndarray:
     """Missing values to NaN, integers to float32 exactly, -0.0 to +0.0.
 
-    ``owned`` says the caller's array may be modified in place.
+    ``owned`` says the caller's array may be modified in place; ``allow_empty``
+    accepts an array that is all nodata (a window of a larger grid).
     """
     invalid = _nodata_mask(raw, nodata)
     if hidden is not None:
         invalid |= hidden
-    if invalid.all():
+    if invalid.all() and not allow_empty:
         raise InvalidDEM(
             f"every cell of {label} is nodata; give a DEM with at least one elevation "
             "(check the declared nodata value)"

@@ -466,13 +466,39 @@ def _depression_table(
     level, dtype, width, count, area, volume, pit_elevation, pit_cell, spill_cell, spills_to,
     transform,
 ) -> DepressionTable:
-    n = count.shape[0] - 1
-    pit_row = pit_cell[1:] // width - 1
-    pit_col = pit_cell[1:] % width - 1
     spill = spill_cell[1:]
-    spill_row = spill // width - 1
-    spill_col = spill % width - 1
-    spill_elevation = level[spill].astype(np.float32)
+    return depression_table(
+        pit_row=pit_cell[1:] // width - 1,
+        pit_col=pit_cell[1:] % width - 1,
+        pit_elevation=pit_elevation[1:],
+        spill_row=spill // width - 1,
+        spill_col=spill % width - 1,
+        spill_elevation=level[spill],
+        spills_to=spills_to[1:],
+        cell_count=count[1:],
+        area_m2=area[1:],
+        volume_m2_vu=volume[1:],
+        transform=transform,
+    )
+
+
+def depression_table(
+    *, pit_row, pit_col, pit_elevation, spill_row, spill_col, spill_elevation, spills_to,
+    cell_count, area_m2, volume_m2_vu, transform=None,
+) -> DepressionTable:
+    """A :class:`DepressionTable` from its cell-level columns (ids 1..n in the given order).
+
+    Fills in ``id``, ``spill_x``/``spill_y`` (cell centres through ``transform``,
+    NaN without one) and ``max_depth`` (``spill_elevation - pit_elevation`` in
+    float32), as :func:`priority_flood` does; for engines that compute the
+    depressions elsewhere (:mod:`analysis.tiled`).
+    """
+    pit_row = np.asarray(pit_row, dtype=np.int64)
+    pit_col = np.asarray(pit_col, dtype=np.int64)
+    spill_row = np.asarray(spill_row, dtype=np.int64)
+    spill_col = np.asarray(spill_col, dtype=np.int64)
+    spill_elevation = np.asarray(spill_elevation).astype(np.float32)
+    n = pit_row.shape[0]
     if transform is not None:
         t = transform
         cx, cy = spill_col + 0.5, spill_row + 0.5
@@ -481,7 +507,7 @@ def _depression_table(
     else:
         spill_x = np.full(n, np.nan)
         spill_y = np.full(n, np.nan)
-    pit_z = pit_elevation[1:].astype(np.float32)
+    pit_z = np.asarray(pit_elevation).astype(np.float32)
     return DepressionTable(
         id=np.arange(1, n + 1, dtype=np.int32),
         pit_row=pit_row,
@@ -492,11 +518,11 @@ def _depression_table(
         spill_x=spill_x,
         spill_y=spill_y,
         spill_elevation=spill_elevation,
-        spills_to=spills_to[1:].astype(np.int32),
+        spills_to=np.asarray(spills_to).astype(np.int32),
         max_depth=(spill_elevation - pit_z).astype(np.float32),
-        cell_count=count[1:],
-        area_m2=area[1:],
-        volume_m2_vu=volume[1:],
+        cell_count=np.asarray(cell_count, dtype=np.int64),
+        area_m2=np.asarray(area_m2, dtype=np.float64),
+        volume_m2_vu=np.asarray(volume_m2_vu, dtype=np.float64),
     )
 
 

@@ -19,7 +19,9 @@ from typing import Any
 
 import numpy as np
 import pyproj
+import rasterio.windows
 import shapely
+from affine import Affine
 from rasterio._err import CPLE_BaseError
 from rasterio.errors import RasterioError
 from rasterio.features import rasterize
@@ -29,12 +31,14 @@ from analysis.dem import DEM, _local_file, _gdal_reason, _horizontal_part, _to_p
 from analysis.errors import InvalidOutlets, InvalidParameter
 
 __all__ = [
+    "OutletPlan",
     "Outlets",
     "build_outlets",
     "edge_outlets",
     "nodata_outlets",
     "outlets_from_geojson",
     "outlets_from_raster",
+    "plan_outlets",
 ]
 
 GEOJSON_EXTENSIONS = (".geojson", ".json")
@@ -196,23 +200,36 @@ def outlets_from_geojson(dem: DEM, source: Any) -> np.ndarray:
     A source that marks no valid cell is an error on its own, even when other
     outlets are combined with it: it nearly always means a wrong CRS.
     """
+    label, geometries = _geojson_geometries(dem, source)
+    burned = _burn(geometries, dem)
+    if not burned.any():
+        raise InvalidOutlets(_geojson_misses_message(label, geometries, dem))
+    mask = burned & dem.valid
+    if not mask.any():
+        raise InvalidOutlets(_geojson_nodata_message(label))
+    return mask
+
+
+def _geojson_geometries(dem: Any, source: Any) -> tuple[str, list[Any]]:
+    """The label and the geometries of a GeoJSON source, in the DEM's CRS."""
     obj, label = _load_geojson(source)
     geometries = _collect_geometries(obj, label)
     src_crs = _geojson_crs(obj, label)
-    geometries = _reproject(geometries, src_crs, dem, label)
-    burned = _burn(geometries, dem)
-    if not burned.any():
-        raise InvalidOutlets(
-            f"no outlet cells: {label} misses the grid ({_extent_text(geometries, dem)}); "
-            "check its CRS, use --outlet edge, or draw the water body inside the DEM"
-        )
-    mask = burned & dem.valid
-    if not mask.any():
-        raise InvalidOutlets(
-            f"no outlet cells: {label} covers only nodata cells of the DEM; draw the water "
-            "body over cells with elevations, or use --outlet nodata"
-        )
-    return mask
+    return label, _reproject(geometries, src_crs, dem, label)
+
+
+def _geojson_misses_message(label: str, geometries: list[Any], dem: Any) -> str:
+    return (
+        f"no outlet cells: {label} misses the grid ({_extent_text(geometries, dem)}); "
+        "check its CRS, use --outlet edge, or draw the water body inside the DEM"
+    )
+
+
+def _geojson_nodata_message(label: str) -> str:
+    return (
+        f"no outlet cells: {label} covers only nodata cells of the DEM; draw the water "
+        "body over cells with elevations, or use --outlet nodata"
+    )
 
 
 def outlets_from_raster(dem: DEM, path: str | os.PathLike[str]) -> np.ndarray:
@@ -236,38 +253,9 @@ def outlets_from_raster(dem: DEM, path: str | os.PathLike[str]) -> np.ndarray:
         Unreadable file, several bands, a different grid or CRS, or no marked
         valid cell.
     """
-    path = _local_file(path, InvalidOutlets, "the outlet mask")
-    name = os.path.basename(path)
+    path, name = _mask_path(path)
     with open_local_raster(path, InvalidOutlets, "the outlet mask") as src:
-        if src.count != 1:
-            raise InvalidOutlets(
-                f"the outlet mask '{name}' has {src.count} bands; give a single-band mask "
-                "(non-zero = outlet)"
-            )
-        if (src.height, src.width) != dem.shape:
-            raise InvalidOutlets(
-                f"the outlet mask '{name}' is {src.height} × {src.width} cells but the DEM is "
-                f"{dem.rows} × {dem.cols}; give a mask on the DEM's own grid"
-            )
-        difference = _grid_difference(src.transform, dem)
-        if difference:
-            raise InvalidOutlets(
-                f"the outlet mask '{name}' is not on the DEM's grid ({difference}); "
-                "give a mask with the DEM's cell size and origin"
-            )
-        if src.crs:
-            mask_h = _horizontal_part(_to_pyproj(src.crs), f"the outlet mask '{name}'")
-            if not mask_h.equals(dem.horizontal_crs, ignore_axis_order=True):
-                raise InvalidOutlets(
-                    f"the outlet mask '{name}' is in {mask_h.name!r} but the DEM is in "
-                    f"{dem.horizontal_crs.name!r}; give a mask in the DEM's CRS"
-                )
-        dtype = np.dtype(src.dtypes[0])
-        if dtype.kind not in "biuf":
-            raise InvalidOutlets(
-                f"the outlet mask '{name}' holds {dtype.name} values; give integers (non-zero = outlet)"
-            )
-        nodata = src.nodatavals[0]
+        nodata = _check_mask_raster(src, dem, name)
         try:
             data = src.read(1)
             hidden = src.read_masks(1) == 0
@@ -276,24 +264,76 @@ def outlets_from_raster(dem: DEM, path: str | os.PathLike[str]) -> np.ndarray:
                 f"the outlet mask '{name}' opens but its pixels cannot be read "
                 f"({_gdal_reason(exc, path)}); export it again"
             ) from None
+    marked = _marked(data, hidden, nodata)
+    if not marked.any():
+        raise InvalidOutlets(_mask_empty_message(name))
+    mask = marked & dem.valid
+    if not mask.any():
+        raise InvalidOutlets(_mask_nodata_message(name))
+    return mask
+
+
+def _mask_path(path: str | os.PathLike[str]) -> tuple[str, str]:
+    path = _local_file(path, InvalidOutlets, "the outlet mask")
+    return path, os.path.basename(path)
+
+
+def _mask_empty_message(name: str) -> str:
+    return (
+        f"no outlet cells: the outlet mask '{name}' marks no cell (all zero or nodata); "
+        "mark the water body with non-zero values, or use --outlet edge"
+    )
+
+
+def _mask_nodata_message(name: str) -> str:
+    return (
+        f"no outlet cells: the outlet mask '{name}' marks only nodata cells of the DEM; "
+        "mark cells with elevations, or use --outlet nodata"
+    )
+
+
+def _marked(data: np.ndarray, hidden: np.ndarray, nodata: float | None) -> np.ndarray:
+    """Cells a mask raster marks: non-zero, finite, not its nodata, not hidden."""
     marked = data != 0
     if data.dtype.kind == "f":
         marked &= np.isfinite(data)
     if nodata is not None and not math.isnan(nodata):
         marked &= data != nodata
     marked &= ~hidden
-    if not marked.any():
+    return marked
+
+
+def _check_mask_raster(src: Any, dem: Any, name: str) -> float | None:
+    """Checks of an open mask raster against the DEM's grid; returns its nodata."""
+    if src.count != 1:
         raise InvalidOutlets(
-            f"no outlet cells: the outlet mask '{name}' marks no cell (all zero or nodata); "
-            "mark the water body with non-zero values, or use --outlet edge"
+            f"the outlet mask '{name}' has {src.count} bands; give a single-band mask "
+            "(non-zero = outlet)"
         )
-    mask = marked & dem.valid
-    if not mask.any():
+    if (src.height, src.width) != dem.shape:
         raise InvalidOutlets(
-            f"no outlet cells: the outlet mask '{name}' marks only nodata cells of the DEM; "
-            "mark cells with elevations, or use --outlet nodata"
+            f"the outlet mask '{name}' is {src.height} × {src.width} cells but the DEM is "
+            f"{dem.rows} × {dem.cols}; give a mask on the DEM's own grid"
         )
-    return mask
+    difference = _grid_difference(src.transform, dem)
+    if difference:
+        raise InvalidOutlets(
+            f"the outlet mask '{name}' is not on the DEM's grid ({difference}); "
+            "give a mask with the DEM's cell size and origin"
+        )
+    if src.crs:
+        mask_h = _horizontal_part(_to_pyproj(src.crs), f"the outlet mask '{name}'")
+        if not mask_h.equals(dem.horizontal_crs, ignore_axis_order=True):
+            raise InvalidOutlets(
+                f"the outlet mask '{name}' is in {mask_h.name!r} but the DEM is in "
+                f"{dem.horizontal_crs.name!r}; give a mask in the DEM's CRS"
+            )
+    dtype = np.dtype(src.dtypes[0])
+    if dtype.kind not in "biuf":
+        raise InvalidOutlets(
+            f"the outlet mask '{name}' holds {dtype.name} values; give integers (non-zero = outlet)"
+        )
+    return src.nodatavals[0]
 
 
 # ---------------------------------------------------------------------------
@@ -385,28 +425,24 @@ def _one_source(dem: DEM, spec: Any, connectivity: int) -> tuple[str, np.ndarray
         return name, outlets_from_geojson(dem, spec)
     if ext in RASTER_EXTENSIONS:
         return name, outlets_from_raster(dem, spec)
-    if ext == ".vrt":
-        raise InvalidOutlets(
-            f"the outlet mask '{name}' is a GDAL virtual raster (VRT), which can point to "
-            "other or remote files; give a GeoTIFF mask"
-        )
-    raise InvalidOutlets(
-        f"unknown outlet source {spec!r}; use 'edge', 'nodata', a GeoJSON file (.geojson, "
-        ".json) or a mask raster (.tif, .tiff, .img)"
-    )
+    return _one_source_refusal(spec, ext, name)
 
 
 def _empty_message(dem: DEM, sources: Sequence[str]) -> str:
+    return _empty_text(sources, bool(dem.valid.all()))
+
+
+def _empty_text(sources: Sequence[str], all_valid: bool) -> str:
     used = ", ".join(f"'{s}'" for s in sources)
     reasons = []
     if "edge" in sources:
         reasons.append("every cell on the DEM edge is nodata")
     if "nodata" in sources:
-        reasons.append("the DEM has no nodata" if dem.valid.all() else "no valid cell touches nodata")
+        reasons.append("the DEM has no nodata" if all_valid else "no valid cell touches nodata")
     tries = []
     if "edge" not in sources:
         tries.append("use --outlet edge")
-    if "nodata" not in sources and not dem.valid.all():
+    if "nodata" not in sources and not all_valid:
         tries.append("use --outlet nodata")
     tries.append("draw the water body inside the DEM")
     because = f" ({'; '.join(reasons)})" if reasons else ""
@@ -419,6 +455,240 @@ def _offsets(connectivity: Any) -> tuple[tuple[int, int], ...]:
             f"connectivity must be 8 (edges and corners) or 4 (edges only), got {connectivity!r}"
         )
     return _OFFSETS_8 if connectivity == 8 else _OFFSETS_4
+
+
+# ---------------------------------------------------------------------------
+# window by window (the tiled engine)
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class OutletPlan:
+    """Outlet sources made ready to mark window by window, for grids too large to hold.
+
+    Made by :func:`plan_outlets`; it pickles small (geometries, file names, no
+    cells), so a task on another machine can mark the outlets of its own window
+    with :meth:`window`. The union of the windows equals
+    ``build_outlets(read_dem(path), specs, connectivity=...).mask``.
+
+    Attributes
+    ----------
+    sources : tuple of str
+        Labels of the sources, as :attr:`Outlets.sources`.
+    kinds : tuple
+        Per source: ``("edge",)``, ``("nodata",)``, ``("shapes", centred,
+        touched)`` (GeoJSON, reprojected, split into parts burned by cell centre
+        and by touch) or ``("mask", path, nodata)`` (a mask raster on the grid).
+    connectivity : int
+    """
+
+    sources: tuple[str, ...]
+    kinds: tuple
+    connectivity: int
+    _messages: tuple = ()
+
+    def window(self, grid: Any, halo: np.ndarray, row0: int, row1: int, col0: int,
+               col1: int) -> tuple[np.ndarray, np.ndarray]:
+        """Outlet cells of rows ``row0:row1``, columns ``col0:col1`` of ``grid``.
+
+        Parameters
+        ----------
+        grid : DEMGrid or DEM
+            The grid (its shape and transform).
+        halo : float32 array
+            Elevations of the window grown by one cell on every side, NaN on
+            nodata and outside the grid (``grid.read_window(row0 - 1, row1 + 1,
+            col0 - 1, col1 + 1)``).
+
+        Returns
+        -------
+        mask : bool array, the window's shape
+            True on valid outlet cells.
+        counts : int64 array, shape (n_sources, 2)
+            Per source, the cells it marks in the window and those of them on
+            valid data (for the checks of :meth:`check`).
+        """
+        rows, cols = grid.shape
+        h, w = row1 - row0, col1 - col0
+        inner = halo[1:-1, 1:-1]
+        valid = ~np.isnan(inner)
+        mask = np.zeros((h, w), dtype=bool)
+        counts = np.zeros((len(self.kinds), 2), dtype=np.int64)
+        for k, kind in enumerate(self.kinds):
+            if kind[0] == "edge":
+                part = np.zeros((h, w), dtype=bool)
+                if row0 == 0:
+                    part[0, :] = True
+                if row1 == rows:
+                    part[-1, :] = True
+                if col0 == 0:
+                    part[:, 0] = True
+                if col1 == cols:
+                    part[:, -1] = True
+            elif kind[0] == "nodata":
+                gap = np.isnan(halo)
+                # Cells beyond the grid's edge are not nodata.
+                if row0 == 0:
+                    gap[0, :] = False
+                if row1 == rows:
+                    gap[-1, :] = False
+                if col0 == 0:
+                    gap[:, 0] = False
+                if col1 == cols:
+                    gap[:, -1] = False
+                part = np.zeros((h, w), dtype=bool)
+                for dr, dc in _offsets(self.connectivity):
+                    part |= gap[1 + dr : 1 + dr + h, 1 + dc : 1 + dc + w]
+            elif kind[0] == "shapes":
+                t = grid.transform
+                transform = Affine(t.a, t.b, t.c + t.a * col0 + t.b * row0,
+                                   t.d, t.e, t.f + t.d * col0 + t.e * row0)
+                part = _rasterize_parts(kind[1], kind[2], (h, w), transform).astype(bool)
+            else:
+                path, nodata = kind[1], kind[2]
+                part = _mask_window(path, nodata, row0, row1, col0, col1)
+            counts[k, 0] = np.count_nonzero(part)
+            part &= valid
+            counts[k, 1] = np.count_nonzero(part)
+            mask |= part
+        return mask, counts
+
+    def check(self, counts: np.ndarray, *, all_valid: bool) -> None:
+        """Raise as :func:`build_outlets` would from the summed window ``counts``.
+
+        Raises
+        ------
+        InvalidOutlets
+            A GeoJSON or mask source marks no cell, or only nodata cells; or the
+            sources together mark no valid cell.
+        """
+        for k, kind in enumerate(self.kinds):
+            if kind[0] in ("shapes", "mask"):
+                if counts[k, 0] == 0:
+                    raise InvalidOutlets(self._messages[k][0])
+                if counts[k, 1] == 0:
+                    raise InvalidOutlets(self._messages[k][1])
+        if not counts[:, 1].any():
+            raise InvalidOutlets(_empty_text(self.sources, all_valid))
+
+
+def plan_outlets(grid: Any, specs: Any = ("edge",), *, connectivity: int = 8) -> OutletPlan:
+    """Check outlet sources against a grid and prepare them for :meth:`OutletPlan.window`.
+
+    Accepts what :func:`build_outlets` accepts and makes the checks that need no
+    cells up front: GeoJSON is read, reprojected and split into parts; a mask
+    raster's bands, grid and CRS are checked. The checks that need cells (a
+    source that marks nothing) are :meth:`OutletPlan.check`, on the counts the
+    windows return.
+
+    Parameters
+    ----------
+    grid : DEMGrid or DEM
+    specs : sequence
+        As for :func:`build_outlets`.
+    connectivity : {8, 4}
+
+    Raises
+    ------
+    InvalidOutlets, InvalidParameter
+        As :func:`build_outlets`, for what can be told without the cells.
+    """
+    _offsets(connectivity)
+    if isinstance(specs, (str, bytes, os.PathLike, dict)):
+        specs = (specs,)
+    try:
+        items = list(specs)
+    except TypeError:
+        raise InvalidOutlets(
+            f"outlets must be a list of sources, got {type(specs).__name__}; "
+            "e.g. ['edge'] or ['nodata', 'river.geojson']"
+        ) from None
+    if not items:
+        raise InvalidOutlets(
+            "no outlet sources given; use 'edge', 'nodata', a GeoJSON file or a mask raster"
+        )
+    sources, kinds, messages = [], [], []
+    half = 0.5 * max(grid.cell_size)
+    for spec in items:
+        label, kind = _plan_source(grid, spec)
+        sources.append(label)
+        if kind[0] == "geojson":
+            text, geometries = kind[1], kind[2]
+            centred, touched = _burn_parts(geometries, half)
+            kinds.append(("shapes", tuple(centred), tuple(touched)))
+            messages.append((_geojson_misses_message(text, geometries, grid),
+                             _geojson_nodata_message(text)))
+        elif kind[0] == "mask":
+            kinds.append(kind)
+            name = os.path.basename(kind[1])
+            messages.append((_mask_empty_message(name), _mask_nodata_message(name)))
+        else:
+            kinds.append(kind)
+            messages.append(())
+    return OutletPlan(sources=tuple(sources), kinds=tuple(kinds), connectivity=int(connectivity),
+                      _messages=tuple(messages))
+
+
+def _plan_source(grid: Any, spec: Any) -> tuple[str, tuple]:
+    """Like :func:`_one_source`, without marking cells."""
+    if isinstance(spec, dict):
+        label, geometries = _geojson_geometries(grid, spec)
+        return "GeoJSON object", ("geojson", label, geometries)
+    if isinstance(spec, bytes):
+        spec = os.fsdecode(spec)
+    if isinstance(spec, os.PathLike):
+        spec = os.fspath(spec)
+    if not isinstance(spec, str):
+        raise InvalidOutlets(
+            f"unknown outlet source {spec!r}; use 'edge', 'nodata', a GeoJSON file or a mask raster"
+        )
+    key = spec.strip().lower()
+    if key == "edge":
+        return "edge", ("edge",)
+    if key == "nodata":
+        return "nodata", ("nodata",)
+    if spec.lstrip().startswith("{"):
+        label, geometries = _geojson_geometries(grid, spec)
+        return "GeoJSON text", ("geojson", label, geometries)
+    ext = os.path.splitext(key)[1]
+    name = os.path.basename(spec)
+    if ext in GEOJSON_EXTENSIONS:
+        label, geometries = _geojson_geometries(grid, spec)
+        return name, ("geojson", label, geometries)
+    if ext in RASTER_EXTENSIONS:
+        path, name = _mask_path(spec)
+        with open_local_raster(path, InvalidOutlets, "the outlet mask") as src:
+            nodata = _check_mask_raster(src, grid, name)
+        return name, ("mask", path, nodata)
+    # Same refusals and message as build_outlets.
+    return _one_source_refusal(spec, ext, name)
+
+
+def _one_source_refusal(spec: str, ext: str, name: str):
+    if ext == ".vrt":
+        raise InvalidOutlets(
+            f"the outlet mask '{name}' is a GDAL virtual raster (VRT), which can point to "
+            "other or remote files; give a GeoTIFF mask"
+        )
+    raise InvalidOutlets(
+        f"unknown outlet source {spec!r}; use 'edge', 'nodata', a GeoJSON file (.geojson, "
+        ".json) or a mask raster (.tif, .tiff, .img)"
+    )
+
+
+def _mask_window(path: str, nodata: float | None, row0: int, row1: int, col0: int,
+                 col1: int) -> np.ndarray:
+    """Cells a mask raster (already checked against the grid) marks in one window."""
+    window = rasterio.windows.Window(col0, row0, col1 - col0, row1 - row0)
+    with open_local_raster(path, InvalidOutlets, "the outlet mask") as src:
+        try:
+            data = src.read(1, window=window)
+            hidden = src.read_masks(1, window=window) == 0
+        except (RasterioError, CPLE_BaseError, OSError) as exc:
+            raise InvalidOutlets(
+                f"the outlet mask '{os.path.basename(path)}' opens but its pixels cannot be "
+                f"read ({_gdal_reason(exc, path)}); export it again"
+            ) from None
+    return _marked(data, hidden, nodata)
 
 
 # ---------------------------------------------------------------------------
@@ -607,9 +877,14 @@ def _densify_step(backward: pyproj.Transformer, dem: DEM) -> float | None:
 
 def _burn(geoms: Iterable[Any], dem: DEM) -> np.ndarray:
     """Rasterise: points, lines and thin polygon parts by touch, polygons by centre."""
+    centred, touched = _burn_parts(geoms, 0.5 * max(dem.cell_size))
+    return _rasterize_parts(centred, touched, dem.shape, dem.transform)
+
+
+def _burn_parts(geoms: Iterable[Any], half: float) -> tuple[list[Any], list[Any]]:
+    """The geometries burned by cell centre and those burned by touch (see :func:`_burn`)."""
     touched: list[Any] = []
     centred: list[Any] = []
-    half = 0.5 * max(dem.cell_size)
     for g in geoms:
         if g.geom_type != "Polygon":
             touched.append(g)
@@ -622,8 +897,14 @@ def _burn(geoms: Iterable[Any], dem: DEM) -> np.ndarray:
             thin = _thin_parts(part, half)
             if thin is not None:
                 touched.append(thin)
-    out = np.zeros(dem.shape, dtype=np.uint8)
-    common = dict(out_shape=dem.shape, transform=dem.transform, out=out, fill=0, dtype="uint8")
+    return centred, touched
+
+
+def _rasterize_parts(centred: list[Any], touched: list[Any], shape: tuple[int, int],
+                     transform: Any) -> np.ndarray:
+    """Burn the parts of :func:`_burn_parts` on a grid (or a window of one)."""
+    out = np.zeros(shape, dtype=np.uint8)
+    common = dict(out_shape=shape, transform=transform, out=out, fill=0, dtype="uint8")
     if centred:
         rasterize(((g, 1) for g in centred), all_touched=False, **common)
     if touched:

@@ -60,8 +60,16 @@ _ANALYSE_EPILOG = (
         ".json; e.g. a river channel) or a mask raster on the DEM's grid (.tif, "
         "non-zero = outlet). Give --outlet several times to combine them."
     )
-    + "\n\nexample:\n"
-    + "  sillmark analyse site.tif --outlet nodata --outlet edge --out results/site\n\n"
+    + "\n\n"
+    + _wrap(
+        "--tiles N runs the same analysis tile by tile on Dask for DEMs larger than memory "
+        "(same onset stage, flood tree, depression ids and depression table as the "
+        "in-memory engine with N-cell tiles); without --scheduler it starts a local cluster. "
+        "It writes the four rasters, depressions.csv, spill_points.geojson and summary.json."
+    )
+    + "\n\nexamples:\n"
+    + "  sillmark analyse site.tif --outlet nodata --outlet edge --out results/site\n"
+    + "  sillmark analyse big.tif --tiles 4096 --scheduler tcp://10.0.0.5:8786 --out /shared/big\n\n"
     + _wrap(
         "Exit status: 0 on success, 2 on a usage or input error (one line on stderr), "
         "130 when interrupted."
@@ -176,6 +184,15 @@ def _positive_int(text: str) -> int:
     return value
 
 
+def _tile_cells(text: str) -> int:
+    from analysis.tiled import MAX_TILE_SIZE
+
+    value = _positive_int(text)
+    if value > MAX_TILE_SIZE:
+        raise argparse.ArgumentTypeError(f"{text!r} is more than {MAX_TILE_SIZE} cells a side")
+    return value
+
+
 def _connectivity(text: str) -> int:
     if text.strip() in ("4", "8"):
         return int(text)
@@ -251,6 +268,25 @@ def build_parser() -> argparse.ArgumentParser:
         help="folder for the result files; created if missing, Sillmark's own file names replaced",
     )
     _add_site_options(analyse, connectivity_default=8)
+    tiled = analyse.add_argument_group(
+        "out of core",
+        "run the analysis tile by tile on Dask, for DEMs larger than memory; the DEM and "
+        "--out must be paths every worker can read and write",
+    )
+    tiled.add_argument(
+        "--tiles", type=_tile_cells, default=None, metavar="N",
+        help="analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; the files are "
+        "the rasters, depressions.csv, spill_points.geojson and summary.json",
+    )
+    where = tiled.add_mutually_exclusive_group()
+    where.add_argument(
+        "--scheduler", default=None, metavar="ADDR",
+        help="with --tiles: use the running Dask scheduler at ADDR (tcp://HOST:PORT)",
+    )
+    where.add_argument(
+        "--workers", type=_positive_int, default=None, metavar="N",
+        help="with --tiles: start a local cluster of N worker processes (default: one per CPU)",
+    )
     analyse.set_defaults(run=_run_analyse)
 
     stage = commands.add_parser(
@@ -420,7 +456,7 @@ def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
     from analysis.units import VerticalUnit
 
     unit = VerticalUnit.parse(dem.vertical_unit)
-    rows, cols = dem.elevation.shape
+    rows, cols = dem.shape
     dx, dy = dem.cell_size
     size_unit = _horizontal_unit(dem, stream)
     epsg = dem.crs.to_epsg()
@@ -690,7 +726,7 @@ class _Progress:
 
     PHASES = ("read", "outlets", "flood", "export")
 
-    def __init__(self, enabled: bool) -> None:
+    def __init__(self, enabled: bool, phases: tuple[str, ...] | None = None) -> None:
         self.enabled = enabled
         self._phase = None
         self._file = None
@@ -698,7 +734,8 @@ class _Progress:
             from tqdm import tqdm
 
             self._tqdm = tqdm
-            self._phase = tqdm(total=len(self.PHASES), desc="sillmark", unit="phase", file=sys.stderr,
+            total = len(self.PHASES if phases is None else phases)
+            self._phase = tqdm(total=total, desc="sillmark", unit="phase", file=sys.stderr,
                                leave=False, bar_format="{desc}: {n_fmt}/{total_fmt} {bar} {elapsed}")
 
     def start(self, phase: str) -> None:
@@ -865,6 +902,13 @@ def _run_analyse(args: argparse.Namespace) -> int:
     from analysis.export import write_results
     from analysis.hierarchy import site_hierarchy
 
+    if args.tiles is not None:
+        return _run_analyse_tiled(args)
+    if args.scheduler is not None or args.workers is not None:
+        from analysis.errors import InvalidParameter
+
+        option = "--scheduler" if args.scheduler is not None else "--workers"
+        raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show)
     try:
@@ -877,6 +921,57 @@ def _run_analyse(args: argparse.Namespace) -> int:
     finally:
         progress.close()
     for line in _summary_lines(result, dem, outlets, out_dir, files, sys.stdout, hierarchy):
+        print(line)
+    return EXIT_OK
+
+
+_TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
+                 "join": "join depressions", "write": "write"}
+
+
+def _run_analyse_tiled(args: argparse.Namespace) -> int:
+    """``analyse --tiles N``: the out-of-core engine on a Dask cluster (local or given)."""
+    import types
+
+    from analysis.errors import InvalidParameter
+    from analysis.tiled import analyse_tiled, dask_map
+
+    if args.max_cells is not None:
+        raise InvalidParameter("--max-cells guards the memory of the in-memory engine; the tiled "
+                               "engine (--tiles) holds one tile at a time: drop --max-cells")
+    show = not args.quiet and sys.stderr.isatty()
+    progress = _Progress(show, phases=tuple(_TILED_STEPS))
+    connectivity = 8 if args.connectivity is None else args.connectivity
+
+    def step(name: str, done: int, total: int) -> None:
+        if done == 0:
+            progress.start(_TILED_STEPS[name])
+        elif done == total:
+            progress.done()
+
+    out_dir = Path(args.out)
+    workers = args.workers if args.workers is not None else (os.cpu_count() or 1)
+    try:
+        with dask_map(scheduler=args.scheduler, workers=None if args.scheduler else workers) as run_map:
+            n_workers = len(run_map.client.scheduler_info().get("workers", {}))
+            run = analyse_tiled(
+                os.path.abspath(args.dem), out_dir, outlets=tuple(args.outlets or ("edge",)),
+                connectivity=connectivity, tile_size=args.tiles, map=run_map, band=args.band,
+                vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
+            )
+    finally:
+        progress.close()
+    from analysis.dem import read_dem_grid
+
+    grid = read_dem_grid(os.path.abspath(args.dem), band=args.band,
+                         vertical_unit=args.vertical_unit, crs=args.crs)
+    outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
+    lines = _summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout)
+    where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
+    lines.insert(2, f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
+                    f"{run.tile_size:,} cells on {where} ({n_workers} workers); "
+                    "no outlines or hierarchy files")
+    for line in lines:
         print(line)
     return EXIT_OK
 

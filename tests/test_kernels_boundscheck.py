@@ -4,7 +4,7 @@ The kernels trust their inputs and index flat padded arrays with computed
 offsets; with bounds checks off (numba's default) a stray index would corrupt
 memory silently. A fresh interpreter with NUMBA_BOUNDSCHECK=1 and an empty
 cache compiles every kernel with checks and runs the engine, the stage
-analysis and the hierarchy on DEMs that exercise tiles, nodata, ties and both
+analysis, the hierarchy and the tiled engine on DEMs that exercise tiles, nodata, ties and both
 connectivities; an out-of-range index raises IndexError there.
 """
 
@@ -20,6 +20,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 SCRIPT = textwrap.dedent(
     """
+    from pathlib import Path
     import numpy as np
     from analysis.flood import priority_flood
     from analysis.stage import stage_table, water_level_map
@@ -41,6 +42,19 @@ SCRIPT = textwrap.dedent(
         water_level_map(r, 2.5)
         stage_table(r, np.arange(0, 6, 0.5))
         depression_hierarchy(r)
+
+    # The out-of-core engine's own kernels, tiles of a few cells, in this process.
+    import tempfile
+    from analysis.tiled import analyse_tiled
+    from tests.rasters import write_raster
+    with tempfile.TemporaryDirectory() as tmp:
+        z = rng.integers(0, 6, (13, 11)).astype(np.float32)
+        z[rng.random(z.shape) < 0.1] = -9999.0
+        z[0, 0] = 1.0
+        path = write_raster(Path(tmp) / "z.tif", z, nodata=-9999.0)
+        for conn, tile in ((8, 3), (4, 4)):
+            analyse_tiled(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
+                          connectivity=conn, tile_size=tile)
     print("bounds ok")
     """
 )
