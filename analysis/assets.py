@@ -33,6 +33,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pyproj
 
+from analysis.geojson import CRS84, geojson_crs
 from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from analysis.flood import OUTLET_CODE, SpillResult, priority_flood
 from analysis.outlets import Outlets
@@ -94,7 +95,7 @@ _ACCEPTED_SOURCE = (
     "a CSV table (.csv) with a name column and x/y or lon/lat columns, or a GeoJSON "
     "FeatureCollection of Point features (.geojson)"
 )
-_CRS84 = pyproj.CRS("OGC:CRS84")  # RFC 7946, section 4: WGS 84 longitude, latitude
+_CRS84 = CRS84  # RFC 7946, section 4: WGS 84 longitude, latitude
 
 
 class InvalidAssets(SillmarkError, ValueError):
@@ -865,27 +866,7 @@ def _key(props: dict, wanted: str) -> str | None:
 
 
 def _geojson_crs(obj: dict, label: str) -> pyproj.CRS:
-    member = obj.get("crs")
-    if member is None:
-        return _CRS84
-    name = None
-    if isinstance(member, dict) and member.get("type") == "name":
-        props = member.get("properties")
-        if isinstance(props, dict) and isinstance(props.get("name"), str):
-            name = props["name"]
-    if name is None:
-        raise InvalidAssets(
-            f"{label} has a 'crs' member Sillmark cannot use; remove it (coordinates are then "
-            'WGS 84 lon/lat) or give {"type": "name", "properties": {"name": "EPSG:32633"}}'
-        )
-    try:
-        crs = pyproj.CRS.from_user_input(name)
-    except pyproj.exceptions.CRSError:
-        raise InvalidAssets(
-            f"{label} names an unknown CRS {name!r}; use a name such as 'EPSG:32633' or "
-            "'urn:ogc:def:crs:EPSG::32633'"
-        ) from None
-    return crs.to_2d() if (crs.is_compound or len(crs.axis_info) > 2) else crs
+    return geojson_crs(obj, label, InvalidAssets)
 
 
 # --------------------------------------------------------------------------- placing

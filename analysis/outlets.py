@@ -28,6 +28,7 @@ from rasterio.features import rasterize
 from shapely.geometry import shape as shapely_shape
 
 from analysis.dem import DEM, _local_file, _gdal_reason, _horizontal_part, _to_pyproj, open_local_raster
+from analysis.geojson import geojson_crs
 from analysis.errors import InvalidOutlets, InvalidParameter
 
 __all__ = [
@@ -802,29 +803,7 @@ def _single_parts(geom: Any) -> list[Any]:
 
 
 def _geojson_crs(obj: dict, label: str) -> pyproj.CRS:
-    member = obj.get("crs")
-    if member is None:
-        return pyproj.CRS("OGC:CRS84")  # RFC 7946 §4: WGS 84 longitude, latitude
-    name = None
-    if isinstance(member, dict) and member.get("type") == "name":
-        props = member.get("properties")
-        if isinstance(props, dict) and isinstance(props.get("name"), str):
-            name = props["name"]
-    if name is None:
-        raise InvalidOutlets(
-            f"{label} has a 'crs' member Sillmark cannot use; remove it (coordinates are then "
-            'WGS 84 lon/lat) or give {"type": "name", "properties": {"name": "EPSG:32633"}}'
-        )
-    try:
-        crs = pyproj.CRS.from_user_input(name)
-    except pyproj.exceptions.CRSError:
-        raise InvalidOutlets(
-            f"{label} names an unknown CRS {name!r}; use a name such as 'EPSG:32633' or "
-            "'urn:ogc:def:crs:EPSG::32633'"
-        ) from None
-    if crs.is_compound or len(crs.axis_info) > 2:
-        crs = crs.to_2d()
-    return crs
+    return geojson_crs(obj, label, InvalidOutlets)
 
 
 def _reproject(geoms: list[Any], src: pyproj.CRS, dem: DEM, label: str) -> list[Any]:
