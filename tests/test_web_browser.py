@@ -219,3 +219,65 @@ def test_uploading_a_dem_through_the_page(page, server, tmp_path):
     page.click("#settings-form button[type=submit]")
     page.wait_for_selector('body[data-figures-level]', timeout=30000)
     assert "lowbank" in page.locator(".site-title").inner_text()
+
+
+def test_tracing_a_water_body_makes_it_an_outlet(page, server, tmp_path):
+    """Trace an area over Lowbank's walled basin; the re-run floods it from there.
+
+    Lowbank (tests/web_support.py): the basin (rows 10-25, cols 15-35, 9.00 m)
+    lies behind a 12.00 m bank with an 11.00 m notch, so with the DEM edge as the
+    only outlet it is shielded at 10.50 m. A water body traced inside it makes
+    the basin's cells outlets: at 10.50 m the basin floods. The page's flooded
+    area must equal analysis.stage.water_level_map on the engine run with the
+    edge and the traced file (as stored by the server) as outlets.
+    """
+    from analysis.dem import read_dem
+    from analysis.flood import analyse_site
+    from analysis.outlets import build_outlets
+    from analysis.stage import water_level_map
+    from tests.web_support import Client, analysed_site, cell_centre, lonlat, write_lowbank
+    from webapp import db, layout
+
+    origin, app = server
+    dem_path = write_lowbank(tmp_path / "lowbank.tif")
+    site_id = analysed_site(Client(app), dem_path, assets=False)
+    page.goto(origin + f"/sites/{site_id}#level=10.50")
+    page.wait_for_selector('body[data-figures-level="10.50"]')
+    before = float(page.locator("#fig-flooded-area").get_attribute("data-m2"))
+    page.click("button[data-tab=tab-outlets]")
+    page.click("#draw-start")
+    names = json.loads(page.locator("#site-config").text_content())["names"]
+    box = page.locator(".folium-map").bounding_box()
+    for row, col in [(14, 20), (14, 30), (21, 30), (21, 20)]:  # inside the basin
+        lon, lat = lonlat(*cell_centre(row, col))
+        x, y = page.evaluate(
+            "([n, lat, lon]) => { const p = window[n].latLngToContainerPoint([lat, lon]); return [p.x, p.y]; }",
+            [names["map"], lat, lon])
+        page.mouse.click(box["x"] + x, box["y"] + y)
+    assert page.evaluate("document.body.dataset.tracedPoints") == "4"
+    assert page.locator("path.traced-water").count() == 1
+    page.fill("#draw-name", "Basin pond")
+    page.click("#draw-submit")
+    # The page follows the new run and reloads on its results.
+    page.wait_for_selector(".site-meta:has-text('Basin pond')", timeout=60000)
+    page.wait_for_selector('body[data-figures-level="10.50"]')
+    shown = float(page.locator("#fig-flooded-area").get_attribute("data-m2"))
+
+    svc = app.extensions["sillmark"]
+    conn = db.connect(svc.db_path)
+    try:
+        outlets = db.loads(db.get_site(conn, site_id)["outlets"])
+    finally:
+        conn.close()
+    traced = next(o for o in outlets if o["kind"] == "file")
+    stored = layout.site_dir(svc.data_dir, site_id) / traced["file"]
+    geo = json.loads(stored.read_text())
+    assert geo["features"][0]["geometry"]["type"] == "Polygon"
+    dem = read_dem(dem_path)
+    marked = build_outlets(dem, ("edge", str(stored)))
+    assert marked.mask[10:26, 15:36].sum() >= 40  # about 8 x 11 basin cells traced
+    expected = water_level_map(analyse_site(dem, marked), 10.5, row_areas=dem.row_areas)
+    assert shown == pytest.approx(expected.flooded_area_m2, rel=1e-12)
+    # The basin (16 x 21 cells of 4 m2) now floods at 10.50 m instead of lying shielded.
+    assert shown - before == pytest.approx(16 * 21 * 4.0, rel=1e-9)
+    _shot(page, "browser_traced_water_body.png")

@@ -6,7 +6,7 @@ from __future__ import annotations
 import datetime as _dt
 import threading
 
-from flask import Blueprint, current_app, render_template, request
+from flask import Blueprint, current_app, render_template, request, url_for
 
 from analysis.errors import InvalidParameter
 from webapp import get_db, render, services
@@ -67,6 +67,14 @@ def site(site_id: int):
         "names": parts.names,
         "legend": render.legend(data.unit.value, data.unit.symbol),
         "bounds": data.summary.get("lonlat_bounds"),
+        # What a traced water body is submitted with (the site's other settings, unchanged).
+        "settings": {
+            "url": url_for("uploads.settings", site_id=site_id),
+            "name": described["name"],
+            "vertical_unit": described["vertical_unit"],
+            "outlets": sorted({o["kind"] for o in described["outlets"]} - {"file"}),
+            "connectivity": described["connectivity"],
+        },
     }
     return render_template("site.html", site=described, data=data, parts=parts, config=config,
                            summary=data.summary, leaflet_version=LEAFLET_VERSION)

@@ -456,6 +456,7 @@
   }
 
   map.on("click", function (ev) {
+    if (S.tracing) { return; }  // clicks place a water body's corners (waterbody.js)
     var ll = ev.latlng.wrap();
     var url = base + "/cell?lon=" + ll.lng.toFixed(8) + "&lat=" + ll.lat.toFixed(8) +
       "&level=" + encodeURIComponent(levelText(level));
@@ -524,7 +525,7 @@
   S.legend($("legend"), config.legend);
 
   var strip = $("run-strip");
-  if (strip && !strip.hidden) {
+  function followRun() {
     var poll = function () {
       S.getJSON(strip.dataset.statusUrl).then(function (st) {
         if (st.current_run !== config.run_id) { window.location.reload(); return; }
@@ -537,8 +538,11 @@
         }
       }).catch(function () { setTimeout(poll, 5000); });
     };
+    strip.hidden = false;
     setTimeout(poll, 1500);
   }
+  if (strip && !strip.hidden) { followRun(); }
+  S.followRun = function (message) { strip.textContent = message; followRun(); };
 
   map.on("click", function () { var hint = $("map-hint"); if (hint) { hint.hidden = true; } });
 
