@@ -164,3 +164,37 @@ def test_analysis_never_imports_flask_or_webapp():
     )
     done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
     assert done.returncode == 0, done.stderr
+
+
+def test_an_operator_configured_online_base_layer_is_offered_and_allowed(tmp_path, lowbank_tif):
+    """Off by default; when set, the map offers it beside the hillshade (which stays
+    the default) and the page policy allows images from that origin only."""
+    from tests.web_support import Client, analysed_site
+
+    url = "https://{s}.tiles.example.org:8443/base/{z}/{x}/{y}.png"
+    app = make_app(tmp_path / "data", BASE_LAYER_URL=url,
+                   BASE_LAYER_ATTRIBUTION="Example tiles, invented for this test")
+    client = Client(app)
+    site_id = analysed_site(client, lowbank_tif, assets=False)
+    r = client.get(f"/sites/{site_id}")
+    html = r.get_data(as_text=True)
+    assert url in html and "Example tiles, invented for this test" in html
+    csp = r.headers["Content-Security-Policy"]
+    assert "img-src 'self' data: blob: https://*.tiles.example.org:8443;" in csp
+    assert "connect-src 'self'" in csp and "script-src 'self' 'unsafe-inline'" in csp
+    # The hillshade is added first, so Leaflet opens on it; the online layer waits in the control.
+    assert html.index("/tiles/" + str(site_id) + "/hillshade/") < html.index(url)
+
+
+@pytest.mark.parametrize("url, attribution, words", [
+    ("ftp://tiles.example.org/{z}/{x}/{y}.png", "x", "not a tile URL"),
+    ("https://tiles.example.org/{z}/{x}.png", "x", "not a tile URL"),
+    ("https:///{z}/{x}/{y}.png", "x", "not a tile URL"),
+    ("https://tiles.example.org/{z}/{x}/{y}.png\"><script>", "x", "not a tile URL"),
+    ("https://tiles.example.org/{z}/{x}/{y}.png", "", "attribution"),
+])
+def test_a_malformed_base_layer_setting_stops_the_start_with_a_reason(tmp_path, url, attribution, words):
+    from analysis.errors import InvalidParameter
+
+    with pytest.raises(InvalidParameter, match=words):
+        make_app(tmp_path / "data", BASE_LAYER_URL=url, BASE_LAYER_ATTRIBUTION=attribution)

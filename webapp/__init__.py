@@ -34,6 +34,16 @@ CONTENT_SECURITY_POLICY = (
     "img-src 'self' data: blob:; font-src 'self'; connect-src 'self'; object-src 'none'; "
     "frame-ancestors 'self'; base-uri 'self'; form-action 'self'"
 )
+
+
+def content_security_policy(extra_image_origin: str | None = None) -> str:
+    """The policy, with the origin of an operator-configured online base layer allowed for images."""
+    if not extra_image_origin:
+        return CONTENT_SECURITY_POLICY
+    return CONTENT_SECURITY_POLICY.replace("img-src 'self' data: blob:",
+                                           f"img-src 'self' data: blob: {extra_image_origin}")
+
+
 CSRF_HEADER = "X-Sillmark-Token"
 CSRF_FIELD = "csrf_token"
 
@@ -102,6 +112,10 @@ def create_app(test_config: dict | None = None) -> Flask:
     if test_config:
         app.config.update(test_config)
     app.config["DATA_DIR"] = str(data_dir)
+    from webapp.mapview import online_base_layer
+
+    base_layer = online_base_layer(app.config)  # refuses a malformed URL before serving
+    app.config["CONTENT_SECURITY_POLICY"] = content_security_policy(base_layer.origin if base_layer else None)
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = _config.installation_secret(data_dir)
     # Werkzeug refuses bodies beyond this before a view reads them (multipart forms);
@@ -170,7 +184,7 @@ def _install_handlers(app: Flask) -> None:
 
     @app.after_request
     def security_headers(response):
-        response.headers.setdefault("Content-Security-Policy", CONTENT_SECURITY_POLICY)
+        response.headers.setdefault("Content-Security-Policy", app.config["CONTENT_SECURITY_POLICY"])
         response.headers.setdefault("X-Content-Type-Options", "nosniff")
         response.headers.setdefault("Referrer-Policy", "same-origin")
         response.headers.setdefault("X-Frame-Options", "SAMEORIGIN")

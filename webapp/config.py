@@ -55,6 +55,13 @@ DEFAULTS: dict = {
     # (the site's fitting zoom and this many above it).
     "WARM_ZOOMS": 2,
     "SECRET_KEY": None,
+    # An optional online base layer the operator chooses (an XYZ tile URL with
+    # {z}, {x}, {y}, http or https), offered beside the hillshade; None: none,
+    # and the app makes no request beyond this server. Also $SILLMARK_BASE_LAYER_URL.
+    "BASE_LAYER_URL": None,
+    # Its attribution as its provider asks for it (required with a URL).
+    "BASE_LAYER_ATTRIBUTION": None,
+    "BASE_LAYER_NAME": "Online base map",
 }
 
 
