@@ -281,3 +281,34 @@ def test_tracing_a_water_body_makes_it_an_outlet(page, server, tmp_path):
     # The basin (16 x 21 cells of 4 m2) now floods at 10.50 m instead of lying shielded.
     assert shown - before == pytest.approx(16 * 21 * 4.0, rel=1e-9)
     _shot(page, "browser_traced_water_body.png")
+
+
+def test_downloading_the_depth_at_the_level_gives_the_engines_depths(page, server, tmp_path):
+    """Files tab → depth at 47.75 m: the GeoTIFF the browser saves opens with
+    rasterio and holds analysis.stage.water_level_map's depths, in the DEM's grid."""
+    import numpy as np
+    import rasterio
+
+    from analysis import SCREENING_CAUTION
+    from analysis.stage import water_level_map
+
+    origin, app = server
+    page.goto(origin + "/sites/1#level=47.75")
+    page.wait_for_selector('body[data-figures-level="47.75"]')
+    page.click("button[data-tab=tab-files]")
+    link = page.locator("#level-files a", has_text="depth").first
+    with page.expect_download() as info:
+        link.click()
+    saved = tmp_path / info.value.suggested_filename
+    info.value.save_as(saved)
+    assert saved.suffix == ".tif" and "47.75" in saved.name
+    data = _site_data(app)
+    expected = water_level_map(data.result, 47.75, row_areas=data.dem.row_areas, unit=data.unit)
+    with rasterio.open(saved) as src:
+        assert src.shape == data.dem.shape
+        assert src.crs == data.dem.crs and src.transform == data.dem.transform
+        assert SCREENING_CAUTION in src.tags()["SILLMARK_CAUTION"]
+        depth = src.read(1)
+    np.testing.assert_array_equal(np.isnan(depth), np.isnan(expected.depth))
+    np.testing.assert_array_equal(depth[~np.isnan(depth)], expected.depth[~np.isnan(expected.depth)])
+    assert np.count_nonzero(~np.isnan(depth)) > 1000  # the river and the notch's side of the bank are wet
