@@ -409,3 +409,26 @@ def test_print_page_needs_a_good_level(ready):
     assert get(ready, "/sites/{site}/print").status_code == 400
     r = get(ready, "/sites/{site}/print?level=NaN")
     assert r.status_code == 400 and "finite number" in r.get_data(as_text=True)
+
+
+def test_outlet_cells_outline_is_the_dem_edge_ring(ready):
+    """Lowbank with the DEM edge as its only outlet: the outlet cells are the
+    2·(40 + 50) − 4 = 176 border cells; their outline (in WGS84) is a ring whose
+    outer edge is the grid's bounds and whose hole is the interior."""
+    import shapely.geometry
+
+    r = get(ready, "/api/sites/{site}/outlets.geojson")
+    assert r.status_code == 200
+    fc = r.get_json()
+    assert fc["caution"] == SCREENING_CAUTION
+    (feature,) = fc["features"]
+    assert feature["properties"]["cells"] == 176
+    assert feature["properties"]["sources"] == ["edge"]
+    ring = shapely.geometry.shape(feature["geometry"])
+    assert ring.geom_type == "Polygon" and len(ring.interiors) == 1
+    # Corners of the grid and of the interior, from the grid's own geometry.
+    outer_nw = lonlat(*cell_centre(0, 0))  # a border cell's centre lies inside the ring
+    inner = lonlat(*cell_centre(20, 25))  # an interior cell's centre lies in the hole
+    assert ring.contains(shapely.geometry.Point(outer_nw))
+    assert not ring.contains(shapely.geometry.Point(inner))
+    assert shapely.geometry.Polygon(ring.interiors[0]).contains(shapely.geometry.Point(inner))

@@ -262,6 +262,9 @@ def test_tracing_a_water_body_makes_it_an_outlet(page, server, tmp_path):
     page.wait_for_selector(".site-meta:has-text('Basin pond')", timeout=60000)
     page.wait_for_selector('body[data-figures-level="10.50"]')
     shown = float(page.locator("#fig-flooded-area").get_attribute("data-m2"))
+    page.wait_for_selector("body[data-outlet-cells]")  # the map's outlet layer: edge + traced cells
+    assert int(page.evaluate("document.body.dataset.outletCells")) > 176
+    assert page.locator("path.outlet-cells").count() >= 1
 
     svc = app.extensions["sillmark"]
     conn = db.connect(svc.db_path)
@@ -277,6 +280,7 @@ def test_tracing_a_water_body_makes_it_an_outlet(page, server, tmp_path):
     marked = build_outlets(dem, ("edge", str(stored)))
     assert marked.mask[10:26, 15:36].sum() >= 40  # about 8 x 11 basin cells traced
     expected = water_level_map(analyse_site(dem, marked), 10.5, row_areas=dem.row_areas)
+    assert int(page.evaluate("document.body.dataset.outletCells")) == marked.count
     assert shown == pytest.approx(expected.flooded_area_m2, rel=1e-12)
     # The basin (16 x 21 cells of 4 m2) now floods at 10.50 m instead of lying shielded.
     assert shown - before == pytest.approx(16 * 21 * 4.0, rel=1e-9)

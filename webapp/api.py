@@ -132,6 +132,13 @@ def spill_points_geojson(site_id: int):
     return _result_file(site_id, "spill_points.geojson", attachment=False)
 
 
+@bp.get("/sites/<int:site_id>/outlets.geojson")
+def outlets_geojson(site_id: int):
+    """The cells the run's flood started from, as WGS84 GeoJSON (for the map)."""
+    _, data = open_site(site_id)
+    return jsonify(data.outlet_outline)
+
+
 @bp.get("/sites/<int:site_id>/cell")
 def cell(site_id: int):
     """Elevation, onset stage, depth at ``?level=`` and the route of the cell at ``?lon=&lat=``."""

@@ -118,6 +118,8 @@ def site_map(data, *, site_id: int, level: float, for_print: bool = False) -> Ma
         ).add_to(m)
     water = folium.FeatureGroup(name="Water level map", overlay=True, control=True)
     water.add_to(m)
+    outlets = folium.FeatureGroup(name="Outlets", overlay=True, control=True)
+    outlets.add_to(m)
     depressions = folium.FeatureGroup(name="Depressions", overlay=True, control=True)
     depressions.add_to(m)
     spills = folium.FeatureGroup(name="Spill points", overlay=True, control=True)
@@ -135,6 +137,7 @@ def site_map(data, *, site_id: int, level: float, for_print: bool = False) -> Ma
         "map": m.get_name(),
         "hillshade": hill.get_name(),
         "water": water.get_name(),
+        "outlets": outlets.get_name(),
         "depressions": depressions.get_name(),
         "spills": spills.get_name(),
         "assets": assets.get_name(),

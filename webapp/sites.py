@@ -642,6 +642,36 @@ class SiteData:
             "caution": SCREENING_CAUTION,
         }
 
+    # -- outlets ----------------------------------------------------------------------
+
+    @functools.cached_property
+    def outlet_outline(self) -> dict:
+        """The run's outlet cells (flood-tree code 9) as a GeoJSON FeatureCollection in WGS84.
+
+        One feature: the cells vectorised along their edges (rasterio.features.shapes),
+        so the map shows exactly the cells the flood started from, whatever marked
+        them (the DEM edge, nodata, a water-body file or a traced shape).
+        """
+        import rasterio.features
+        import shapely.geometry
+
+        from analysis import export
+        from analysis.flood import OUTLET_CODE
+
+        mask = np.ascontiguousarray(self.result.flood_tree == OUTLET_CODE, dtype=np.uint8)
+        features = []
+        if mask.any():
+            parts = [shapely.geometry.shape(g) for g, _ in rasterio.features.shapes(
+                mask, mask=mask.astype(bool), connectivity=4, transform=self.dem.transform)]
+            geom = parts[0] if len(parts) == 1 else shapely.geometry.MultiPolygon(parts)
+            features.append({
+                "type": "Feature",
+                "properties": {"cells": int(mask.sum()),
+                               "sources": list(self.summary.get("outlet_sources") or [])},
+                "geometry": export.wgs84_geometry(geom, self.dem),
+            })
+        return {"type": "FeatureCollection", "caution": SCREENING_CAUTION, "features": features}
+
     # -- depressions ------------------------------------------------------------------
 
     @functools.cached_property

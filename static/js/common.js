@@ -75,6 +75,18 @@
     if (text) { node.textContent = text; node.hidden = false; } else { node.textContent = ""; node.hidden = true; }
   }
 
+  /* The outlet cells of the run, drawn into a map group (the same style everywhere). */
+  function outlets(group, url) {
+    if (!group) { return; }
+    getJSON(url).then(function (fc) {
+      L.geoJSON(fc, {
+        style: { color: "#0b5d8a", weight: 1.5, fillColor: "#0b5d8a", fillOpacity: 0.35, className: "outlet-cells" },
+        interactive: false,
+      }).addTo(group);
+      document.body.dataset.outletCells = String(fc.features.length ? fc.features[0].properties.cells : 0);
+    }).catch(function () { /* the outlets layer is a help, not a must */ });
+  }
+
   /* The legend: depth classes, shielded low ground, route, sill and asset symbols. */
   function legend(container, spec, options) {
     options = options || {};
@@ -100,6 +112,7 @@
       spec.shielded.wash + "66 2px 5px)";
     var items = [
       el("li", {}, [hatch, "Shielded low ground (below the level, no surface path yet)"]),
+      el("li", {}, [el("span", { class: "swatch outlet" }), "Outlets (cells where the water level is set)"]),
       el("li", {}, [el("span", { class: "swatch line-route" }), "Route from the outlets"]),
       el("li", {}, [el("span", { class: "swatch dot-sill" }), "Controlling sill"]),
       el("li", {}, [el("span", { class: "swatch dot-spill" }), "Spill point"]),
@@ -115,6 +128,6 @@
 
   window.Sillmark = {
     token: token, getJSON: getJSON, fixed: fixed, level: level, area: area, volume: volume,
-    el: el, show: show, legend: legend,
+    el: el, show: show, legend: legend, outlets: outlets,
   };
 })();

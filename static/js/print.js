@@ -11,6 +11,7 @@
   L.tileLayer("/tiles/" + config.site_id + "/" + encodeURIComponent(text) + "/{z}/{x}/{y}.png?run=" + config.run_id,
     { maxZoom: 21 }).addTo(water);
   S.legend(document.getElementById("legend"), config.legend);
+  S.outlets(window[config.names.outlets], base + "/outlets.geojson");
   S.getJSON(base + "/stage?level=" + encodeURIComponent(text)).then(function (f) {
     document.getElementById("pf-flooded-area").textContent = S.area(f.flooded_area_m2);
     document.getElementById("pf-flooded-volume").textContent = S.volume(f.flooded_volume_m3) +

@@ -446,6 +446,10 @@
     }).catch(function (err) { S.show($("assets-error"), err.message); });
   });
 
+  // ------------------------------------------------------------------ outlets
+
+  S.outlets(window[N.outlets], base + "/outlets.geojson");
+
   // ------------------------------------------------------------------ click: the route to a point
 
   function addSill(s, text) {
