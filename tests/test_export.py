@@ -522,3 +522,35 @@ def test_compound_crs_keeps_its_vertical_part_and_maps_in_lon_lat(tmp_path):
         assert 14.9 < lon < 15.1 and 45.0 < lat < 45.2
     comments, _, _ = read_csv(tmp_path / "depressions.csv")
     assert any("EGM96" in line for line in comments if line.startswith("# CRS:"))
+
+
+def _positional_reference(value) -> str:
+    """numpy's per-value shortest positional text (Dragon4, unique mode), trimmed; '' for inf/NaN."""
+    if not np.isfinite(value):
+        return ""
+    return np.format_float_positional(value, unique=True, trim="-")
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_table_number_texts_equal_the_per_value_shortest_positional_text(dtype):
+    """The fast column formatter of the CSV writers against numpy's per-value
+    formatter: random bit patterns (subnormals, NaN payloads, extremes), powers of
+    two and their neighbours (where the round-trip interval is lopsided), decimal
+    grids as DEMs store them, and the special values."""
+    rng = np.random.default_rng(20261202)
+    ints = np.uint32 if dtype == np.float32 else np.uint64
+    bits = rng.integers(0, np.iinfo(ints).max, 50_000, dtype=np.uint64, endpoint=True).astype(ints)
+    powers = (2.0 ** np.arange(-149 if dtype == np.float32 else -1074, 128 if dtype == np.float32 else 1024)).astype(dtype)
+    values = np.concatenate([
+        bits.view(dtype),
+        powers, np.nextafter(powers, dtype(0)), np.nextafter(powers, dtype(np.inf)),
+        (np.round(rng.uniform(-50, 3000, 20_000), 2)).astype(dtype),
+        np.array([0.0, -0.0, np.inf, -np.inf, np.nan, 1e30, 47.6, 1.0, 100.0, 0.1, 123456789.0], dtype=dtype),
+    ])
+    with np.errstate(over="ignore", invalid="ignore"):
+        fast = export._float_texts(values)
+    expected = [_positional_reference(v) for v in values]
+    wrong = [(repr(v), f, e) for v, f, e in zip(values, fast, expected) if f != e]
+    assert wrong == []
+    assert export._float_texts(np.array([47.6, 3e-7, 2.5e20], dtype=np.float32)) == \
+        ["47.6", "0.0000003", "250000000000000000000"]
