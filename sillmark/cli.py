@@ -65,7 +65,8 @@ _ANALYSE_EPILOG = (
         "--tiles N runs the same analysis tile by tile on Dask for DEMs larger than memory "
         "(same onset stage, flood tree, depression ids and depression table as the "
         "in-memory engine with N-cell tiles); without --scheduler it starts a local cluster. "
-        "It writes the four rasters, depressions.csv, spill_points.geojson and summary.json."
+        "It writes the four rasters, depressions.csv, depressions.geojson, "
+        "spill_points.geojson and summary.json (no hierarchy files)."
     )
     + "\n\nexamples:\n"
     + "  sillmark analyse site.tif --outlet nodata --outlet edge --out results/site\n"
@@ -107,7 +108,11 @@ _STAGE_EPILOG = (
         "folder written by 'sillmark analyse'. From a folder, the DEM recorded in its "
         "summary.json is read again and the engine re-run with the folder's outlets "
         "(the outlet cells of its flood_tree.tif) and connectivity; the run is checked "
-        "against the folder's onset_stage.tif, so the files are the same as from the DEM."
+        "against the folder's onset_stage.tif, so the files are the same as from the DEM. "
+        "A folder of the tiled engine ('analyse --tiles') is not re-run: its onset_stage.tif "
+        "and depressions.csv are read block by block with the DEM (checked against its "
+        "fill_depth.tif), as is a DEM given with --tiles N; the files are the same. "
+        "--assets needs the in-memory engine."
     )
     + "\n\n"
     + _wrap(
@@ -268,25 +273,9 @@ def build_parser() -> argparse.ArgumentParser:
         help="folder for the result files; created if missing, Sillmark's own file names replaced",
     )
     _add_site_options(analyse, connectivity_default=8)
-    tiled = analyse.add_argument_group(
-        "out of core",
-        "run the analysis tile by tile on Dask, for DEMs larger than memory; the DEM and "
-        "--out must be paths every worker can read and write",
-    )
-    tiled.add_argument(
-        "--tiles", type=_tile_cells, default=None, metavar="N",
-        help="analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; the files are "
-        "the rasters, depressions.csv, spill_points.geojson and summary.json",
-    )
-    where = tiled.add_mutually_exclusive_group()
-    where.add_argument(
-        "--scheduler", default=None, metavar="ADDR",
-        help="with --tiles: use the running Dask scheduler at ADDR (tcp://HOST:PORT)",
-    )
-    where.add_argument(
-        "--workers", type=_positive_int, default=None, metavar="N",
-        help="with --tiles: start a local cluster of N worker processes (default: one per CPU)",
-    )
+    _add_tiled_options(analyse, "analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; "
+                       "the files are the rasters, depressions.csv, depressions.geojson, "
+                       "spill_points.geojson and summary.json")
     analyse.set_defaults(run=_run_analyse)
 
     stage = commands.add_parser(
@@ -331,6 +320,9 @@ def build_parser() -> argparse.ArgumentParser:
         help="folder for the result files; created if missing, Sillmark's own file names replaced",
     )
     _add_site_options(stage, connectivity_default=None)
+    _add_tiled_options(stage, "run the tiled engine on the DEM (as 'analyse --tiles N') and "
+                       "write the exports block by block; a folder the tiled engine wrote is "
+                       "always read block by block")
     stage.add_argument(
         "--force", action="store_true",
         help="use levels that look like they are in the wrong unit",
@@ -384,6 +376,25 @@ def _port(text: str) -> int:
     if not 1 <= value <= 65535:
         raise argparse.ArgumentTypeError(f"{text!r} is not a port number (1 to 65535)")
     return value
+
+
+def _add_tiled_options(parser: argparse.ArgumentParser, tiles_help: str) -> None:
+    """--tiles, --scheduler and --workers: the out-of-core engine (analyse, stage)."""
+    tiled = parser.add_argument_group(
+        "out of core",
+        "run the analysis tile by tile on Dask, for DEMs larger than memory; the DEM and "
+        "--out must be paths every worker can read and write",
+    )
+    tiled.add_argument("--tiles", type=_tile_cells, default=None, metavar="N", help=tiles_help)
+    where = tiled.add_mutually_exclusive_group()
+    where.add_argument(
+        "--scheduler", default=None, metavar="ADDR",
+        help="with --tiles: use the running Dask scheduler at ADDR (tcp://HOST:PORT)",
+    )
+    where.add_argument(
+        "--workers", type=_positive_int, default=None, metavar="N",
+        help="with --tiles: start a local cluster of N worker processes (default: one per CPU)",
+    )
 
 
 def _add_site_options(parser: argparse.ArgumentParser, *, connectivity_default: int | None) -> None:
@@ -929,18 +940,16 @@ _TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish
                  "join": "join depressions", "write": "write"}
 
 
-def _run_analyse_tiled(args: argparse.Namespace) -> int:
-    """``analyse --tiles N``: the out-of-core engine on a Dask cluster (local or given)."""
-    import types
-
+def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progress: _Progress):
+    """Run :func:`analysis.tiled.analyse_tiled` on the cluster the options name; return
+    the run, the DEM's grid and a line naming the engine."""
+    from analysis.dem import read_dem_grid
     from analysis.errors import InvalidParameter
     from analysis.tiled import analyse_tiled, dask_map
 
     if args.max_cells is not None:
         raise InvalidParameter("--max-cells guards the memory of the in-memory engine; the tiled "
                                "engine (--tiles) holds one tile at a time: drop --max-cells")
-    show = not args.quiet and sys.stderr.isatty()
-    progress = _Progress(show, phases=tuple(_TILED_STEPS))
     connectivity = 8 if args.connectivity is None else args.connectivity
 
     def step(name: str, done: int, total: int) -> None:
@@ -949,28 +958,42 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
         elif done == total:
             progress.done()
 
-    out_dir = Path(args.out)
     workers = args.workers if args.workers is not None else (os.cpu_count() or 1)
+    with dask_map(scheduler=args.scheduler, workers=None if args.scheduler else workers) as run_map:
+        n_workers = len(run_map.client.scheduler_info().get("workers", {}))
+        run = analyse_tiled(
+            os.path.abspath(dem_path), out_dir, outlets=tuple(args.outlets or ("edge",)),
+            connectivity=connectivity, tile_size=args.tiles, map=run_map, band=args.band,
+            vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
+        )
+    grid = read_dem_grid(os.path.abspath(dem_path), band=args.band,
+                         vertical_unit=args.vertical_unit, crs=args.crs)
+    where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
+    engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
+              f"{run.tile_size:,} cells on {where} ({n_workers} workers)")
+    return run, grid, engine
+
+
+def _run_analyse_tiled(args: argparse.Namespace) -> int:
+    """``analyse --tiles N``: the out-of-core engine on a Dask cluster (local or given),
+    then the depression outlines from depression_id.tif window by window."""
+    import types
+
+    from analysis.tiled_outlines import add_depression_outlines
+
+    show = not args.quiet and sys.stderr.isatty()
+    progress = _Progress(show, phases=(*_TILED_STEPS, "outlines"))
+    out_dir = Path(args.out)
     try:
-        with dask_map(scheduler=args.scheduler, workers=None if args.scheduler else workers) as run_map:
-            n_workers = len(run_map.client.scheduler_info().get("workers", {}))
-            run = analyse_tiled(
-                os.path.abspath(args.dem), out_dir, outlets=tuple(args.outlets or ("edge",)),
-                connectivity=connectivity, tile_size=args.tiles, map=run_map, band=args.band,
-                vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
-            )
+        run, grid, engine = _tiled_engine(args, args.dem, out_dir, progress)
+        progress.start("outline depressions")
+        files = add_depression_outlines(run, grid, out_dir)
+        progress.done()
     finally:
         progress.close()
-    from analysis.dem import read_dem_grid
-
-    grid = read_dem_grid(os.path.abspath(args.dem), band=args.band,
-                         vertical_unit=args.vertical_unit, crs=args.crs)
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
-    lines = _summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout)
-    where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
-    lines.insert(2, f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
-                    f"{run.tile_size:,} cells on {where} ({n_workers} workers); "
-                    "no outlines or hierarchy files")
+    lines = _summary_lines(run, grid, outlets, out_dir, files, sys.stdout)
+    lines.insert(2, f"{engine}; no hierarchy files")
     for line in lines:
         print(line)
     return EXIT_OK
@@ -1003,14 +1026,19 @@ def _level_checks(result, dem, args: argparse.Namespace) -> dict[float, list[str
     """Refuse levels that look like the wrong unit; return notes per level (float32 value)."""
     import numpy as np
 
+    return _level_notes(dem.vertical_unit, float(np.nanmin(dem.elevation)),
+                        float(np.nanmax(dem.elevation)), float(np.nanmin(result.onset_stage)), args)
+
+
+def _level_notes(vertical_unit, z_low: float, z_high: float, lowest: float,
+                 args: argparse.Namespace) -> dict[float, list[str]]:
+    """:func:`_level_checks` from the lowest and highest ground and the lowest onset stage."""
     from analysis.errors import InvalidParameter
     from analysis.stage_export import level_text, unique_levels
     from analysis.units import VerticalUnit
 
-    unit = VerticalUnit.parse(dem.vertical_unit)
+    unit = VerticalUnit.parse(vertical_unit)
     sym = unit.symbol
-    z_low = float(np.nanmin(dem.elevation))
-    z_high = float(np.nanmax(dem.elevation))
     # A flat site still allows levels a few units above its ground.
     margin = WRONG_UNIT_FACTOR * max(z_high - z_low, 1.0)
     unit_words = {"m": "metres", "ft": "international feet", "us-ft": "US survey feet"}[unit.value]
@@ -1026,7 +1054,6 @@ def _level_checks(result, dem, args: argparse.Namespace) -> dict[float, list[str
                     f"above its highest ground; it may be in the wrong unit (this site's "
                     f"elevations are in {unit_words}); pass --force to use it anyway"
                 )
-    lowest = float(np.nanmin(result.onset_stage))
     notes: dict[float, list[str]] = {}
     for h in unique_levels(args.levels or []):
         h = float(h)
@@ -1051,6 +1078,13 @@ def _run_stage(args: argparse.Namespace) -> int:
 
     _stage_request(args)
     source = Path(args.source)
+    if args.tiles is not None or _tiled_folder(source):
+        return _run_stage_tiled(args)
+    if args.scheduler is not None or args.workers is not None:
+        from analysis.errors import InvalidParameter
+
+        option = "--scheduler" if args.scheduler is not None else "--workers"
+        raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show)
     try:
@@ -1092,6 +1126,78 @@ def _run_stage(args: argparse.Namespace) -> int:
                          assets=assets, asset_levels=asset_levels, what_if=what_if,
                          what_if_path=what_if_path)
     for line in lines:
+        print(line)
+    return EXIT_OK
+
+
+def _tiled_folder(source: Path) -> bool:
+    """Whether ``source`` is a folder the tiled engine wrote (its summary says so)."""
+    try:
+        summary = json.loads((source / "summary.json").read_text(encoding="utf-8"))
+        return summary.get("engine", {}).get("kind") == "tiled"
+    except (OSError, ValueError, AttributeError):
+        return False
+
+
+def _run_stage_tiled(args: argparse.Namespace) -> int:
+    """``stage`` out of core: on a folder of the tiled engine, or on a DEM with --tiles N
+    (the tiled engine first, into a scratch folder in --out removed at the end)."""
+    import shutil
+    import types
+    import uuid
+
+    from analysis.errors import InvalidParameter
+    from analysis.tiled_stage import open_result_folder, tiled_stage_levels, write_tiled_stage_results
+
+    source = Path(args.source)
+    if args.assets is not None:
+        raise InvalidParameter("--assets follows each asset's route through the whole flood tree, "
+                               "which the out-of-core exports do not hold; run 'sillmark stage' "
+                               "on the DEM without --tiles for the assets")
+    out_dir = Path(args.out)
+    show = not args.quiet and sys.stderr.isatty()
+    progress = _Progress(show, phases=(*_TILED_STEPS, "read", "export") if args.tiles else ("read", "export"))
+    scratch = None
+    try:
+        if source.is_dir():
+            if args.tiles is not None:
+                raise InvalidParameter(f"the folder {source} holds an analysis already; --tiles N "
+                                       "runs the tiled engine on a DEM: drop --tiles")
+            given = [option for option, value in (
+                ("--outlet", args.outlets), ("--connectivity", args.connectivity),
+                ("--vertical-unit", args.vertical_unit), ("--crs", args.crs),
+                ("--scheduler", args.scheduler), ("--workers", args.workers),
+            ) if value is not None]
+            if given:
+                raise InvalidParameter(f"{', '.join(given)} cannot change the analysis in {source}; "
+                                       "drop them, or give the DEM file as SOURCE")
+            folder = source
+            origin = f"Analysis: {source} (tiled results, read block by block)"
+        else:
+            out_dir.mkdir(parents=True, exist_ok=True)
+            scratch = folder = out_dir / f".sillmark-analysis-{uuid.uuid4().hex[:12]}"
+            _run, _grid, engine = _tiled_engine(args, args.source, folder, progress)
+            origin = f"{engine}; the exports read block by block"
+        progress.start("read")
+        site = open_result_folder(folder, band=args.band)
+        progress.done()
+        notes = _level_notes(site.grid.vertical_unit, site.elevation_min, site.elevation_max,
+                             site.onset_min, args)
+        table_levels = None
+        if args.table_step is not None:
+            table_levels = tiled_stage_levels(site, step=args.table_step, start=args.table_from,
+                                              stop=args.table_to)
+        progress.start("export")
+        written = write_tiled_stage_results(site, out_dir, levels=args.levels or [],
+                                            table_levels=table_levels, progress=progress.file)
+        progress.done()
+    finally:
+        progress.close()
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
+    result = types.SimpleNamespace(connectivity=site.connectivity, depressions=site.depressions["id"])
+    outlets = types.SimpleNamespace(sources=site.outlet_sources, count=site.outlet_count)
+    for line in _stage_lines(result, site.grid, outlets, out_dir, written, notes, origin, sys.stdout):
         print(line)
     return EXIT_OK
 

@@ -33,6 +33,11 @@ DEFAULTS: dict = {
     "MAX_SIDE_FILE_BYTES": 64 * 2**20,
     # Largest DEM read, in cells (analysis.dem.read_dem's max_cells).
     "MAX_DEM_CELLS": 60_000_000,
+    # DEMs of more cells than this are analysed by the tiled engine
+    # (analysis.tiled, tile by tile in the worker process; see webapp.tiled_run),
+    # in tiles of TILED_TILE_SIZE x TILED_TILE_SIZE cells.
+    "TILED_ABOVE_CELLS": 40_000_000,
+    "TILED_TILE_SIZE": 2048,
     # How analyses run: "process" (a separate worker process per analysis,
     # supervised by a thread), "thread" (a thread in the server process) or
     # "inline" (inside the request; for tests).

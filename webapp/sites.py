@@ -32,6 +32,7 @@ from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from analysis.stage import checked_level
 from analysis.units import ACRE_FOOT_M3, VerticalUnit
 from webapp import arrays, db, layout, render
+from webapp.tiled_run import engine_settings
 
 CRS84 = pyproj.CRS("OGC:CRS84")
 OUTLET_KINDS = ("edge", "nodata", "file")
@@ -223,6 +224,7 @@ class Registry:
             "outlets": spec_files,
             "connectivity": conn_value,
             "max_cells": int(self.config["MAX_DEM_CELLS"]),
+            **engine_settings(self.config),
         }
         info = db.loads(row["dem_info"], {})
         new_name = _site_name(name) if name and name.strip() else row["name"]
@@ -271,7 +273,7 @@ class Registry:
         outlets = [{"kind": "edge"}, {"kind": "file", "file": river_rel, "name": "river.geojson"}]
         settings = {"dem_file": dem_rel, "vertical_unit": dem.vertical_unit.value,
                     "outlets": outlets, "connectivity": 8,
-                    "max_cells": int(self.config["MAX_DEM_CELLS"])}
+                    "max_cells": int(self.config["MAX_DEM_CELLS"]), **engine_settings(self.config)}
         with db.transaction(conn):
             cur = conn.execute(
                 "INSERT INTO sites(name, created_utc, dem_file, original_name, dem_info, vertical_unit, "
@@ -308,7 +310,7 @@ class Registry:
             raise SiteNotReady("confirm the site's settings first")
         settings = {"dem_file": row["dem_file"], "vertical_unit": row["vertical_unit"],
                     "outlets": db.loads(row["outlets"], []), "connectivity": row["connectivity"],
-                    "max_cells": int(self.config["MAX_DEM_CELLS"])}
+                    "max_cells": int(self.config["MAX_DEM_CELLS"]), **engine_settings(self.config)}
         latest = db.latest_run(conn, site_id)
         if latest is not None and latest["status"] in (db.QUEUED, db.RUNNING):
             return int(latest["id"])

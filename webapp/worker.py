@@ -181,10 +181,10 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     import numpy as np
 
     from analysis.dem import read_dem
-    from analysis.export import write_results
+    from analysis.export import FILE_NAMES, write_results
     from analysis.flood import analyse_site
     from analysis.outlets import build_outlets
-    from webapp import arrays, render
+    from webapp import arrays, render, tiled_run
 
     run_id = run["id"]
     settings = db.loads(run["settings"])
@@ -197,11 +197,16 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     progress.start("reading the DEM")
     dem = read_dem(site_folder / settings["dem_file"], vertical_unit=settings["vertical_unit"],
                    max_cells=int(settings.get("max_cells") or 400_000_000))
-    progress.start("marking outlets")
     connectivity = int(settings["connectivity"])
-    outlets = build_outlets(dem, _specs(site_folder, settings["outlets"]), connectivity=connectivity)
-    progress.start("flooding from the outlets")
-    result = analyse_site(dem, outlets, connectivity=connectivity)
+    tiled = tiled_run.analyse_if_large(dem, site_folder / settings["dem_file"], _specs(
+        site_folder, settings["outlets"]), settings, folder / "results", progress)
+    if tiled is None:
+        progress.start("marking outlets")
+        outlets = build_outlets(dem, _specs(site_folder, settings["outlets"]), connectivity=connectivity)
+        progress.start("flooding from the outlets")
+        result = analyse_site(dem, outlets, connectivity=connectivity)
+    else:
+        outlets, result = tiled
     log.info("flood done in %.2f s", time.perf_counter() - t0)
 
     progress.start("drawing the hillshade")
@@ -217,10 +222,11 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     def file_progress(name: str, done: int, total: int) -> None:
         if name not in names:
             names.append(name)
-        progress.within((len(names) - 1 + (done / total if total else 1.0)) / 8.0)
+        progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
 
     results = folder / "results"
-    write_results(result, dem, outlets, results, progress=file_progress)
+    if tiled is None:  # the tiled engine wrote its files as it went
+        write_results(result, dem, outlets, results, progress=file_progress)
 
     progress.start("storing arrays for the map")
     z = dem.elevation
