@@ -203,7 +203,18 @@ def stage_table(
         raise InvalidParameter("give at least one water level")
     if np.any(np.diff(lv) <= 0):
         raise InvalidParameter("water levels must be strictly ascending")
-    fa, fz, sa, sz = _k.stage_bins(result.onset_stage, result.elevation, areas, lv, 2)
+    return stage_table_from_bins(lv, unit, *_k.stage_bins(result.onset_stage, result.elevation,
+                                                          areas, lv, 2))
+
+
+def stage_table_from_bins(lv: np.ndarray, unit: VerticalUnit, fa, fz, sa, sz) -> StageTable:
+    """The stage table from the binning pass's per-level sums (see :func:`stage_table`).
+
+    ``fa``/``sa``: area (m²) whose flooded / shielded range starts (+) or ends (-)
+    at each level bin; ``fz``/``sz``: the same weighted by elevation. Their
+    running sums give the area at each level, and ``h * area - sum(area * z)`` the
+    volume. Shared by the in-memory and the out-of-core stage tables.
+    """
     h = lv.astype(np.float64)
     flooded_area = np.cumsum(fa)[:-1]
     flooded_volume = (h * flooded_area - np.cumsum(fz)[:-1]) * unit.metres

@@ -299,14 +299,31 @@ def _write_class_geojson(
 ) -> Path:
     _check_result(result, dem)
     _check_map(water_map, dem)
-    unit = _unit(dem)
-    transformer = export.wgs84_transformer(dem)  # fails before writing if there is no CRS
     if state == FLOODED:
-        area, volume = water_map.flooded_area_m2, water_map.flooded_volume_m3
+        totals = water_map.flooded_area_m2, water_map.flooded_volume_m3
     else:
-        area, volume = water_map.shielded_area_m2, water_map.shielded_volume_m3
+        totals = water_map.shielded_area_m2, water_map.shielded_volume_m3
+    return write_class_collection(
+        path, dem, level=water_map.level, state=state, name=name, totals=totals,
+        connectivity=result.connectivity, outline=lambda: class_polygon(water_map, dem, state),
+    )
+
+
+def write_class_collection(path, grid, *, level, state: int, name: str, totals: tuple[float, float],
+                           connectivity: int, outline) -> Path:
+    """Write one water class at a level (flooded or shielded) as a GeoJSON FeatureCollection.
+
+    ``grid`` is the DEM or a :class:`~analysis.dem.DEMGrid` (CRS, vertical unit);
+    ``totals`` the class's area (m²) and volume (m³); ``outline()`` gives its
+    (Multi)Polygon in the DEM's CRS or None when no cell has the class (it is
+    called after the CRS is checked, so a grid without one fails before any work).
+    The in-memory and the out-of-core exports both write through here.
+    """
+    unit = _unit(grid)
+    transformer = export.wgs84_transformer(grid)  # fails before writing if there is no CRS
+    area, volume = totals
     properties = {
-        "level": export.json_number(np.float32(water_map.level)),
+        "level": export.json_number(np.float32(level)),
         "unit": unit.value,
         "class": CLASS_NAMES[state],
         "area_m2": export.json_number(area),
@@ -315,9 +332,9 @@ def _write_class_geojson(
     }
     if unit.is_feet:
         properties["volume_acre_ft"] = export.json_number(volume / ACRE_FOOT_M3)
-    properties["connectivity"] = int(result.connectivity)
+    properties["connectivity"] = int(connectivity)
     properties["caution"] = SCREENING_CAUTION
-    polygon = class_polygon(water_map, dem, state)
+    polygon = outline()
 
     def features() -> Iterator[dict]:
         if polygon is None:
@@ -325,7 +342,7 @@ def _write_class_geojson(
         yield {
             "type": "Feature",
             "id": CLASS_NAMES[state],
-            "geometry": export.wgs84_geometry(polygon, dem, transformer=transformer),
+            "geometry": export.wgs84_geometry(polygon, grid, transformer=transformer),
             "properties": properties,
         }
 

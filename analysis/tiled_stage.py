@@ -69,7 +69,9 @@ from analysis.stage import (
     checked_level,
     depression_states,
     stage_levels,
+    stage_table_from_bins,
 )
+from analysis import stage_export
 from analysis.stage_export import (
     _DEPRESSION_STATE_NOTE,
     _STATE_CODES,
@@ -374,40 +376,15 @@ def _write_class_geojson(site: ResultFolder, level: float, totals: tuple[float, 
                          window: int) -> Path:
     """The file of :func:`analysis.stage_export.write_flood_extent_geojson` (or the
     shielded one), its outline from ``water_state_{h}.tif`` window by window."""
-    grid = site.grid
-    unit = site.unit
-    transformer = export.wgs84_transformer(grid)
-    area, volume = totals
-    properties = {
-        "level": export.json_number(np.float32(level)),
-        "unit": unit.value,
-        "class": CLASS_NAMES[state],
-        "area_m2": export.json_number(area),
-        "area_ha": export.json_number(area / 1e4),
-        "volume_m3": export.json_number(volume),
-    }
-    if unit.is_feet:
-        properties["volume_acre_ft"] = export.json_number(volume / ACRE_FOOT_M3)
-    properties["connectivity"] = int(site.connectivity)
-    properties["caution"] = SCREENING_CAUTION
 
     def select(block: np.ndarray):
         return block == np.uint8(state), block.astype(np.int32)
 
-    outline = label_outlines(state_path, select, window=window).get(state)
-
-    def features():
-        if outline is None:
-            return
-        yield {
-            "type": "Feature",
-            "id": CLASS_NAMES[state],
-            "geometry": export.wgs84_geometry(outline, grid, transformer=transformer),
-            "properties": properties,
-        }
-
-    members = {"name": name, **{k: v for k, v in properties.items() if k != "connectivity"}}
-    return export.write_feature_collection(path, members, features())
+    return stage_export.write_class_collection(
+        path, site.grid, level=level, state=state, name=name, totals=totals,
+        connectivity=site.connectivity,
+        outline=lambda: label_outlines(state_path, select, window=window).get(state),
+    )
 
 
 def _write_depressions_at(site: ResultFolder, level: float, path: Path) -> Path:
@@ -543,20 +520,7 @@ def tiled_stage_table(site: ResultFolder, levels) -> StageTable:
             s = np.ascontiguousarray(_read_rows(s_ds, r0, r1), dtype=np.float32)
             z = grid.read_window(r0, r1, 0, cols)
             _k.add_stage_bins(s, z, areas[r0:r1], lv, np.int64(r0), np.int64(per), *acc)
-    fa, fz, sa, sz = (a.sum(axis=0) for a in acc)
-    h = lv.astype(np.float64)
-    flooded_area = np.cumsum(fa)[:-1]
-    flooded_volume = (h * flooded_area - np.cumsum(fz)[:-1]) * unit.metres
-    shielded_area = np.cumsum(sa)[:-1]
-    shielded_volume = (h * shielded_area - np.cumsum(sz)[:-1]) * unit.metres
-    return StageTable(
-        level=lv,
-        unit=unit,
-        flooded_area_m2=flooded_area,
-        flooded_volume_m3=np.maximum(flooded_volume, 0.0),
-        shielded_area_m2=np.maximum(shielded_area, 0.0),
-        shielded_volume_m3=np.maximum(shielded_volume, 0.0),
-    )
+    return stage_table_from_bins(lv, unit, *(a.sum(axis=0) for a in acc))
 
 
 def _write_stage_table_csv(site: ResultFolder, table: StageTable, path: Path) -> Path:
