@@ -1,7 +1,8 @@
 """Compiled loops shared by the spill engine (private; see :mod:`analysis.flood`).
 
-Priority-queue and FIFO helpers, depression labelling and spill points, and
-route walking. The flood itself is tiled: see :mod:`analysis._tile_kernels`.
+Priority-queue and FIFO helpers, depression labelling, and route walking.
+The flood itself is tiled: see :mod:`analysis._tile_kernels`; spill points:
+:mod:`analysis._spill_kernels`.
 
 The kernels trust their inputs. :func:`analysis.flood.priority_flood` pads the
 grid, checks every precondition and hands flat arrays over. Each loop is a plain
@@ -242,49 +243,6 @@ def _label_depressions(level, state, label, elevation, row_areas, back, width):
     return count[:m], area[:m], volume[:m], pit_elevation[:m], pit_cell[:m], unreached
 
 
-def _spill_cells(level, state, label, pit_cell, offsets_by_code):
-    """Spill cell and receiving depression of every depression.
-
-    Walk the flood tree from the pit. The route stays at the depression's level
-    until it reaches the cell where it drops below it (or an outlet); the spill
-    cell is the first cell after the route's last cell in the depression. The
-    receiving depression is the first other depression further down the route
-    (0 when the route reaches an outlet first).
-    """
-    n = pit_cell.shape[0]
-    spill_cell = np.full(n, -1, dtype=np.int64)
-    spills_to = np.zeros(n, dtype=np.int32)
-    for f in range(1, n):
-        cell = pit_cell[f]
-        spill_level = level[cell]
-        last_inside = cell
-        # Follow the stretch at the spill level, remembering the last cell of f.
-        while True:
-            t = state[cell]
-            if t == OUTLET:
-                break
-            nxt = cell + offsets_by_code[t - 1]
-            if level[nxt] < spill_level:
-                break
-            cell = nxt
-            if label[cell] == f:
-                last_inside = cell
-        spill = last_inside + offsets_by_code[state[last_inside] - 1]
-        spill_cell[f] = spill
-        # Then on down the route to the next depression or an outlet.
-        cell = spill
-        while True:
-            g = label[cell]
-            if g != 0 and g != f:
-                spills_to[f] = g
-                break
-            t = state[cell]
-            if t == OUTLET:
-                break
-            cell = cell + offsets_by_code[t - 1]
-    return spill_cell, spills_to
-
-
 def _walk_route(tree, row, col, drow, dcol, limit):
     """Follow flood-tree codes from (row, col) to an outlet; return the cells."""
     rows = np.empty(64, dtype=np.int64)
@@ -317,5 +275,4 @@ _find = njit(cache=True)(_find)
 pad_grids = njit(parallel=True, cache=True)(_pad_grids)
 scan_inputs = njit(parallel=True, cache=True)(_scan_inputs)
 label_depressions = njit(cache=True)(_label_depressions)
-spill_cells = njit(cache=True)(_spill_cells)
 walk_route = njit(cache=True)(_walk_route)

@@ -12,11 +12,12 @@ tile's own padded arrays (width ``lw = w + 2``, local index
   order the in-memory engine lists them (so both solve the same graph the same
   way);
 - per tile, after finishing: the pieces of depressions inside the tile
-  (connected components of ``s > z``, numbered in the tile's raster order), and
-  the summaries of the flood-tree walks that find spill points (see
-  :func:`_walk_tile`);
-- on the client: the union of pieces across tile edges, the spill walks joined
-  up from the summaries, and the depression totals accumulated in raster order.
+  (connected components of ``s > z``, numbered in the tile's raster order);
+- on the client: the union of pieces across tile edges and the depression
+  totals accumulated in raster order.
+
+Spill points are summarised per tile and resolved on the client by
+:mod:`analysis._spill_kernels`, which uses the perimeter order defined here.
 
 Global cells are addressed by their flat index ``g = row * cols + col``. The
 kernels trust their inputs.
@@ -27,17 +28,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from analysis._flood_kernels import BLOCKED, OUTLET, UNVISITED, _find, _grow_int32, _grow_int64
+from analysis._flood_kernels import BLOCKED, UNVISITED, _find, _grow_int32
 
-#: Kinds of a walk's end (see :func:`_walk_tile`).
-END_NONE = -1
-END_OUTLET = 0
-END_EXIT = 1
-END_DROP = 2
-#: Kinds of a descent's end (see :func:`_descend`).
-DOWN_DEPRESSION = 0
-DOWN_OUTLET = 1
-DOWN_EXIT = 2
 
 
 def _perimeter_count(h, w):
@@ -251,156 +243,6 @@ def _label_tile(level, state, label, elevation, h, w, back):
     return first[:m], pit_cell[:m], pit_z[:m], piece_level[:m], count[:m], valid, unreached
 
 
-def _is_ring(li, lw, h, w):
-    lr = li // lw
-    lc = li % lw
-    return lr == 0 or lr == h + 1 or lc == 0 or lc == w + 1
-
-
-def _global_of(li, lw, r0, c0, cols):
-    return (r0 + li // lw - 1) * cols + (c0 + li % lw - 1)
-
-
-def _descend(start, state, label, offs, lw, h, w, dkind, dval, stack):
-    """Where the flood-tree route from ``start`` first meets a depression, inside the tile.
-
-    Memoised in ``dkind`` (-1 = not known yet) and ``dval``: kind
-    :data:`DOWN_DEPRESSION` (value: the piece), :data:`DOWN_OUTLET`, or
-    :data:`DOWN_EXIT` (value: the local index of the cell outside the tile the
-    route goes on to). ``start`` itself counts. Returns the kind and value.
-    """
-    n = 0
-    cur = start
-    kind = DOWN_OUTLET
-    val = 0
-    while True:
-        if dkind[cur] >= 0:
-            kind = dkind[cur]
-            val = dval[cur]
-            break
-        if label[cur] > 0:
-            kind = DOWN_DEPRESSION
-            val = label[cur]
-            break
-        t = state[cur]
-        if t == OUTLET:
-            kind = DOWN_OUTLET
-            val = 0
-            break
-        nxt = cur + offs[t - 1]
-        if _is_ring(nxt, lw, h, w):
-            kind = DOWN_EXIT
-            val = nxt
-            dkind[cur] = kind
-            dval[cur] = val
-            break
-        stack = _grow_int64(stack, n)
-        stack[n] = cur
-        n += 1
-        cur = nxt
-    dkind[cur] = kind
-    dval[cur] = val
-    for k in range(n):
-        dkind[stack[k]] = kind
-        dval[stack[k]] = val
-    return kind, val, stack
-
-
-def _walk_tile(level, state, label, h, w, offs, starts, r0, c0, cols):
-    """Summaries of the flood-tree walks that find spill points, for one finished tile.
-
-    The in-memory engine finds a depression's spill point by walking the flood
-    tree from its pit while the level stays at the depression's level, and the
-    depression it spills to by walking on to the next depression or outlet (see
-    :func:`analysis._flood_kernels._spill_cells`). Such a walk crosses tiles, so
-    each tile summarises its part of every walk that may pass through it:
-
-    For each cell of ``starts`` (local padded indices; -1 for none) the walk
-    from it at its own level: the runs of depression cells it passes (piece,
-    last cell, the cell after it), and how it ends: at an outlet, by leaving the
-    tile (the cell it goes on to), or by dropping below its level (the cell it
-    drops to, and where the route from there meets a depression, an outlet or
-    leaves the tile). Also, for each start, where the route from the start
-    itself first meets a depression (the second walk, from a perimeter cell).
-
-    Cells are returned as global flat indices.
-    """
-    lw = w + 2
-    n_starts = starts.shape[0]
-    n_local = (h + 2) * lw
-    dkind = np.full(n_local, -1, dtype=np.int8)
-    dval = np.zeros(n_local, dtype=np.int64)
-    stack = np.empty(1024, dtype=np.int64)
-    run_start = np.zeros(n_starts + 1, dtype=np.int64)
-    cap = 1024
-    run_label = np.empty(cap, dtype=np.int32)
-    run_last = np.empty(cap, dtype=np.int64)
-    run_next = np.empty(cap, dtype=np.int64)
-    end_kind = np.full(n_starts, END_NONE, dtype=np.int8)
-    end_cell = np.full(n_starts, -1, dtype=np.int64)
-    drop_kind = np.full(n_starts, -1, dtype=np.int8)
-    drop_val = np.full(n_starts, -1, dtype=np.int64)
-    down_kind = np.full(n_starts, -1, dtype=np.int8)
-    down_val = np.full(n_starts, -1, dtype=np.int64)
-    m = 0
-    for j in range(n_starts):
-        e = starts[j]
-        if e < 0 or state[e] == BLOCKED or state[e] == UNVISITED:
-            run_start[j + 1] = m
-            continue
-        kind, val, stack = _descend(e, state, label, offs, lw, h, w, dkind, dval, stack)
-        down_kind[j] = kind
-        down_val[j] = _global_of(val, lw, r0, c0, cols) if kind == DOWN_EXIT else val
-        top = level[e]
-        cell = e
-        previous = 0
-        while True:
-            lab = label[cell]
-            if lab > 0:
-                if lab == previous:
-                    run_last[m - 1] = cell
-                else:
-                    if m == cap:
-                        cap *= 2
-                        run_label = _resize_i32(run_label, cap)
-                        run_last = _resize_i64(run_last, cap)
-                        run_next = _resize_i64(run_next, cap)
-                    run_label[m] = lab
-                    run_last[m] = cell
-                    m += 1
-            previous = lab
-            t = state[cell]
-            if t == OUTLET:
-                end_kind[j] = END_OUTLET
-                break
-            nxt = cell + offs[t - 1]
-            if _is_ring(nxt, lw, h, w):
-                end_kind[j] = END_EXIT
-                end_cell[j] = _global_of(nxt, lw, r0, c0, cols)
-                break
-            if level[nxt] < top:
-                end_kind[j] = END_DROP
-                end_cell[j] = _global_of(nxt, lw, r0, c0, cols)
-                kind, val, stack = _descend(nxt, state, label, offs, lw, h, w, dkind, dval, stack)
-                drop_kind[j] = kind
-                drop_val[j] = _global_of(val, lw, r0, c0, cols) if kind == DOWN_EXIT else val
-                break
-            cell = nxt
-        for k in range(run_start[j], m):
-            last = run_last[k]
-            run_next[k] = _global_of(last + offs[state[last] - 1], lw, r0, c0, cols)
-            run_last[k] = _global_of(last, lw, r0, c0, cols)
-        run_start[j + 1] = m
-    return (run_start, run_label[:m].copy(), run_last[:m].copy(), run_next[:m].copy(),
-            end_kind, end_cell, drop_kind, drop_val, down_kind, down_val)
-
-
-def _resize_i32(values, size):
-    out = np.empty(size, dtype=np.int32)
-    out[: values.shape[0]] = values
-    return out
-
-
 def _union_pieces(pcomp, poff, piece_off, tile_rows, tile_cols, tile, rows, cols, drow, dcol,
                   dirs, forest):
     """Join pieces of one depression that touch across tile edges (union-find on ``forest``).
@@ -458,79 +300,11 @@ def _roots(forest):
 
 
 def _perimeter_index(g, poff, tile, tile_cols, rows, cols):
+    """Tile and position in the concatenated perimeters of global perimeter cell ``g``."""
     r = g // cols
     c = g % cols
     t, lr, lc, h, w = _tile_of(r, c, tile, tile_cols, rows, cols)
     return t, poff[t] + _perimeter_position(lr, lc, h, w)
-
-
-def _follow_down(g, poff, piece_off, piece_id, p_down_kind, p_down_val, tile, tile_cols,
-                 rows, cols):
-    """Depression id (0 for an outlet) where the route entering perimeter cell ``g`` leads."""
-    while True:
-        t, j = _perimeter_index(g, poff, tile, tile_cols, rows, cols)
-        kind = p_down_kind[j]
-        if kind == DOWN_DEPRESSION:
-            return piece_id[piece_off[t] + p_down_val[j] - 1]
-        if kind == DOWN_OUTLET:
-            return 0
-        g = p_down_val[j]
-
-
-def _spill_walks(pit_tile, pit_piece, dep_level, poff, piece_off, seg_off, piece_id,
-                 run_start, run_label, run_last, run_next, end_kind, end_cell, drop_kind,
-                 drop_val, p_down_kind, p_down_val, p_level, tile, tile_cols, rows, cols):
-    """Spill cell and receiving depression of every depression, from the tile summaries.
-
-    Joins the walk summaries of :func:`_walk_tile` tile after tile exactly as
-    :func:`analysis._flood_kernels._spill_cells` walks the whole flood tree:
-    the spill cell is the cell after the walk's last cell in the depression
-    (while the walk stays at the depression's level), and the receiving
-    depression the first other depression further down (0 for an outlet).
-    ``seg_off[t]`` is the first summary of tile ``t``: its perimeter cells in
-    perimeter order, then its pieces' pits. Depressions are 1..n (index 0 unused).
-    """
-    n = pit_tile.shape[0]
-    spill = np.full(n, -1, dtype=np.int64)
-    spills_to = np.zeros(n, dtype=np.int32)
-    for f in range(1, n):
-        t = pit_tile[f]
-        seg = seg_off[t] + (poff[t + 1] - poff[t]) + pit_piece[f] - 1
-        top = dep_level[f]
-        after = -1
-        target = 0
-        while True:
-            for k in range(run_start[seg], run_start[seg + 1]):
-                g = piece_id[piece_off[t] + run_label[k] - 1]
-                if g == f:
-                    spill[f] = run_next[k]
-                    after = -1
-                elif after < 0:
-                    after = g
-            kind = end_kind[seg]
-            if kind == END_OUTLET:
-                target = 0
-                break
-            if kind == END_DROP:
-                dk = drop_kind[seg]
-                if dk == DOWN_DEPRESSION:
-                    target = piece_id[piece_off[t] + drop_val[seg] - 1]
-                elif dk == DOWN_OUTLET:
-                    target = 0
-                else:
-                    target = _follow_down(drop_val[seg], poff, piece_off, piece_id, p_down_kind,
-                                          p_down_val, tile, tile_cols, rows, cols)
-                break
-            q = end_cell[seg]
-            t2, j2 = _perimeter_index(q, poff, tile, tile_cols, rows, cols)
-            if p_level[j2] < top:
-                target = _follow_down(q, poff, piece_off, piece_id, p_down_kind, p_down_val,
-                                      tile, tile_cols, rows, cols)
-                break
-            t = t2
-            seg = seg_off[t2] + (j2 - poff[t2])
-        spills_to[f] = after if after >= 0 else target
-    return spill, spills_to
 
 
 def _accumulate(ids, level, elevation, row_areas, count, area, volume):
@@ -554,18 +328,11 @@ def _accumulate(ids, level, elevation, row_areas, count, area, volume):
 
 _perimeter_position = njit(inline="always", cache=True)(_perimeter_position)
 _tile_of = njit(inline="always", cache=True)(_tile_of)
-_is_ring = njit(inline="always", cache=True)(_is_ring)
-_global_of = njit(inline="always", cache=True)(_global_of)
 _resize_i64 = njit(cache=True)(_resize_i64)
 _resize_f32 = njit(cache=True)(_resize_f32)
-_resize_i32 = njit(cache=True)(_resize_i32)
-_descend = njit(cache=True)(_descend)
 _perimeter_index = njit(cache=True)(_perimeter_index)
-_follow_down = njit(cache=True)(_follow_down)
 perimeter_links = njit(cache=True)(_perimeter_links)
 label_tile = njit(nogil=True, cache=True)(_label_tile)
-walk_tile = njit(nogil=True, cache=True)(_walk_tile)
 union_pieces = njit(cache=True)(_union_pieces)
 roots = njit(cache=True)(_roots)
-spill_walks = njit(cache=True)(_spill_walks)
 accumulate = njit(nogil=True, cache=True)(_accumulate)

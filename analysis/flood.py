@@ -13,8 +13,49 @@ the grid graph weighted by elevation. Recording the neighbour each cell was
 settled from gives that spanning tree, the *flood tree*; following it from any
 cell leads to an outlet along a path whose highest cell sits at ``s(c)``.
 
-Each connected region of ``s > z`` is a *depression*; its *spill point* is the
-rim cell its pit's route leaves it through, at the depression's *spill elevation*.
+Each connected region of ``s > z`` is a *depression*; all its cells share one
+onset stage, its *spill elevation* ``S``.
+
+Spill points
+------------
+Where several rim cells tie at ``S`` (a flat saddle, two equal notches) the
+flood tree's choice depends on the order of the flood, and so on the tiles.
+The spill point, ``spills_to`` and a route's controlling sill are therefore
+defined from ``s``, ``z``, the depression ids and the outlets alone, under the
+engine's connectivity, and both engines compute this definition:
+
+- At a level ``L``, a *dry area* is a connected set of cells with
+  ``s == z == L``, as large as it goes. It is a *way out* if one of its cells is
+  an outlet or has a neighbour with ``s < L``; its *exit* is its first such
+  cell in raster order (smallest ``row * cols + col``).
+- The dry areas at ``L`` and the depressions with spill elevation ``L`` are the
+  nodes of a graph whose edges join touching nodes (two depressions never
+  touch, nor two dry areas). Every node gets its hop distance from the
+  nearest way out by breadth-first search (Moore 1959). Every depression has
+  one: the cells at ``L`` around it hold a way out, where its flood-tree
+  route drops below ``L`` or reaches an outlet.
+- The **spill point** of a depression at distance ``d`` is, among its rim
+  cells (dry cells at ``S`` touching it) that lie in a dry area at distance
+  ``d - 1``, the first in raster order.
+- **Where water goes from a dry area** ``A`` at ``L``: if ``A`` is a way out
+  and its exit is an outlet, off the site (0); otherwise into the exit's
+  lowest neighbour (smallest ``s``, first in the direction order NW, N, NE, W,
+  E, SW, S, SE on ties): that neighbour's depression, or, for a dry cell, on
+  from its dry area (lower, so this ends). If ``A`` is no way out: the
+  touching depression at distance one less, the lowest id on ties.
+- **spills_to** of a depression is where water goes from the dry area of its
+  spill point: another depression at ``S`` nearer the way out, the first
+  depression further down, or 0 for an outlet.
+- The **controlling sill** of a route from a cell in a depression is the
+  depression's spill point; from any other cell, the cell itself. The route
+  runs inside the depression to the spill point (breadth-first, fewest
+  steps), on over cells at ``S`` outside it to the nearest way-out cell, to
+  that cell's lowest neighbour and then down the flood tree to an outlet.
+
+The onset stage, the depression ids and every column of the depression table
+are thus the same for every tile size, in this engine and in
+:mod:`analysis.tiled`; only the flood tree (and route cells below the spill
+elevation) may differ where routes tie.
 
 References
 ----------
@@ -24,6 +65,9 @@ models. Computers & Geosciences 62, 117-127. doi:10.1016/j.cageo.2013.04.024
 Zhou, G., Sun, Z., Fu, S. (2016). An efficient variant of the Priority-Flood
 algorithm for filling depressions in raster digital elevation models.
 Computers & Geosciences 90, 87-96. doi:10.1016/j.cageo.2016.02.021
+Moore, E. F. (1959). The shortest path through a maze. Proceedings of an
+International Symposium on the Theory of Switching, Harvard University Press,
+285-292.
 """
 
 from __future__ import annotations
@@ -36,6 +80,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from analysis import _flood_kernels as _k
+from analysis import _spill_kernels as _s
 from analysis import _tile_kernels as _t
 from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
 
@@ -75,14 +120,16 @@ class DepressionTable:
     pit_elevation : float32
         Its elevation, in the site's vertical unit.
     spill_row, spill_col : int64
-        Spill point: the rim cell the pit's route leaves the depression through.
+        Spill point: the rim cell at the spill elevation the overflow leaves
+        through (first in raster order among those one hop nearer a way out;
+        see the module docstring).
     spill_x, spill_y : float64
         Spill point cell centre in the DEM's CRS (NaN without a transform).
     spill_elevation : float32
         Water level at which the depression starts to overflow.
     spills_to : int32
-        Id of the depression the overflow reaches next along the route, or 0 for
-        an outlet.
+        Id of the depression the overflow reaches next, or 0 for an outlet (see
+        the module docstring).
     max_depth : float32
         ``spill_elevation - pit_elevation``.
     cell_count : int64
@@ -127,13 +174,14 @@ class DepressionTable:
 
 @dataclasses.dataclass(frozen=True)
 class Route:
-    """The flood-tree path from a location back to an outlet.
+    """The path from a location back to an outlet, and its controlling sill.
 
     ``rows``/``cols`` start at the location and end at an outlet cell. The
-    controlling sill is the highest cell on the route: for a location inside a
-    depression, the spill point through which the route finally leaves it; for
-    any other location, the location itself. Its elevation equals the onset
-    stage of the location.
+    controlling sill is a highest cell on the route: for a location inside a
+    depression, the depression's spill point (the route runs through it, see
+    the module docstring); for any other location, the location itself, and
+    the route follows the flood tree. Its elevation equals the onset stage of
+    the location.
     """
 
     rows: np.ndarray
@@ -204,17 +252,33 @@ class SpillResult:
         if self.flood_tree[row, col] == NO_PARENT_CODE:
             what = "nodata" if np.isnan(self.elevation[row, col]) else "not reached by any outlet"
             raise LocationOutsideDEM(f"cell ({row}, {col}) is {what}; pick a cell with data")
-        path_r, path_c = _k.walk_route(
-            self.flood_tree, np.int64(row), np.int64(col), DIRECTION_ROW, DIRECTION_COL,
-            np.int64(rows * cols + 1),
-        )
-        reaches = bool(self.flood_tree[path_r[-1], path_c[-1]] == OUTLET_CODE)
         dep = int(self.depression_id[row, col])
         if dep > 0:
-            inside = np.flatnonzero(self.depression_id[path_r, path_c] == dep)
-            k = int(inside[-1]) + 1
+            t = self.depressions
+            if not 0 < dep <= len(t):
+                raise InvalidParameter(
+                    f"cell ({row}, {col}) carries depression id {dep} but the table has "
+                    f"{len(t)} rows; pass the table computed with these rasters"
+                )
+            path_r, path_c, k = _s.route_through_sill(
+                self.onset_stage, self.depression_id, self.flood_tree, np.int64(row),
+                np.int64(col), np.int64(t.spill_row[dep - 1]), np.int64(t.spill_col[dep - 1]),
+                DIRECTION_ROW, DIRECTION_COL, _directions(self.connectivity),
+                np.zeros(rows * cols, dtype=np.uint8), np.int64(rows * cols + 1),
+            )
+            if k < 0:
+                raise InvalidParameter(
+                    f"the spill point of depression {dep} does not lead out of it at its "
+                    "spill elevation; pass the table computed with these rasters"
+                )
+            k = int(k)
         else:
+            path_r, path_c = _k.walk_route(
+                self.flood_tree, np.int64(row), np.int64(col), DIRECTION_ROW, DIRECTION_COL,
+                np.int64(rows * cols + 1),
+            )
             k = 0
+        reaches = bool(self.flood_tree[path_r[-1], path_c[-1]] == OUTLET_CODE)
         return Route(
             rows=path_r,
             cols=path_c,
@@ -369,8 +433,9 @@ def priority_flood(
         Grid-to-CRS transform, used for the spill points' x, y.
     tile_size : int, optional
         Side of the tiles the flood is cut into (default
-        :data:`DEFAULT_TILE_SIZE`). The onset stage, depression ids and table
-        do not depend on it; the flood tree may differ where routes tie.
+        :data:`DEFAULT_TILE_SIZE`). The onset stage, depression ids, the
+        whole table and every route's controlling sill do not depend on it;
+        the flood tree may differ where routes tie.
 
     Returns
     -------
@@ -443,11 +508,10 @@ def priority_flood(
     count, area, volume, pit_elevation, pit_cell, unreached = _k.label_depressions(
         level, tree, label, z, areas, back, np.int64(width)
     )
-    by_code = (DIRECTION_ROW * width + DIRECTION_COL).astype(np.int64)
-    spill_cell, spills_to = _k.spill_cells(level, tree, label, pit_cell, by_code)
+    spill_cell, spills_to = _spill_points(level, tree, label, len(count) - 1, dirs, rows, cols)
 
     table = _depression_table(
-        level, z.dtype, width, count, area, volume, pit_elevation, pit_cell, spill_cell,
+        level, width, cols, count, area, volume, pit_elevation, pit_cell, spill_cell,
         spills_to, transform,
     )
     return SpillResult(
@@ -462,8 +526,84 @@ def priority_flood(
     )
 
 
+def _spill_points(level, tree, label, n, dirs, rows, cols):
+    """Canonical spill cells (flat ``row * cols + col``) and ``spills_to`` of depressions 1..n.
+
+    The whole padded grid is summarised as one tile (no perimeter to share),
+    then the graph solved (see the module docstring and
+    :mod:`analysis._spill_kernels`). The summary labels dry areas with
+    negative numbers in ``label``; they are cleared afterwards.
+    """
+    width = cols + 2
+    offs = (DIRECTION_ROW[dirs] * width + DIRECTION_COL[dirs]).astype(np.int64)
+    none = np.empty(0, dtype=np.int64)
+    summary = _s.summarise_tile(level, tree, label, np.int64(rows), np.int64(cols), offs, dirs,
+                                np.int64(n), False, none, np.int64(0), np.int64(0),
+                                np.int64(cols))
+    np.maximum(label, 0, out=label)
+    parts = _spill_parts(summary, np.arange(n + 1, dtype=np.int32), 0)
+    empty_f, empty_i, empty_b = (np.empty(0, np.float32), np.empty(0, np.int32),
+                                 np.empty(0, np.bool_))
+    return _resolve_spill_parts(
+        n, parts, p_level=empty_f, p_dep=empty_i, p_outlet=empty_b,
+        poff=np.zeros(2, np.int64), tile=max(rows, cols), rows=rows, cols=cols, dirs=dirs,
+    )
+
+
+def _spill_parts(summary, piece_ids: np.ndarray, area_base: int) -> dict:
+    """One tile's spill summary in global numbers (for :func:`_resolve_spill_parts`).
+
+    ``piece_ids[k]`` is the depression id of the tile's depression piece ``k``
+    (``piece_ids[0] == 0``); the tile's reported dry areas 1..m become global
+    areas ``area_base .. area_base + m - 1`` (-1 for none).
+    """
+    (a_level, a_exit, a_kind, a_val, adj_area, adj_dep, adj_cell,
+     p_area, p_low_level, p_low_dir, p_low_kind, p_low_val) = summary
+
+    def targets(kind, val):
+        out = val.copy()
+        dep = kind == _s.KIND_DEPRESSION
+        out[dep] = piece_ids[val[dep]]
+        area = kind == _s.KIND_AREA
+        out[area] = area_base + val[area] - 1
+        return out
+
+    return {
+        "a_level": a_level, "a_exit": a_exit, "a_kind": a_kind, "a_val": targets(a_kind, a_val),
+        "adj_area": (area_base + adj_area.astype(np.int64) - 1), "adj_dep": piece_ids[adj_dep],
+        "adj_cell": adj_cell,
+        "p_area": np.where(p_area > 0, area_base + p_area.astype(np.int64) - 1, -1),
+        "p_low_level": p_low_level, "p_low_dir": p_low_dir, "p_low_kind": p_low_kind,
+        "p_low_val": targets(p_low_kind, p_low_val),
+    }
+
+
+def _resolve_spill_parts(n, parts, *, p_level, p_dep, p_outlet, poff, tile, rows, cols, dirs):
+    """Spill cells and ``spills_to`` of depressions 1..n from the tiles' summaries.
+
+    ``parts`` holds the :func:`_spill_parts` of every tile concatenated (same
+    keys); ``p_level``, ``p_dep`` (depression id or 0) and ``p_outlet`` are the
+    tiles' perimeters in perimeter order, tile ``t`` from ``poff[t]``.
+    Returns two arrays indexed by id (entry 0 unused): the spill cell as
+    ``row * cols + col`` and ``spills_to``.
+    """
+    tile_rows = -(-rows // tile)
+    tile_cols = -(-cols // tile)
+    return _s.resolve_spills(
+        np.int64(n), parts["a_level"].astype(np.float32), parts["a_exit"].astype(np.int64),
+        parts["a_kind"].astype(np.int8), parts["a_val"].astype(np.int64),
+        parts["adj_area"].astype(np.int64), parts["adj_dep"].astype(np.int32),
+        parts["adj_cell"].astype(np.int64), p_level.astype(np.float32), p_dep.astype(np.int32),
+        parts["p_area"].astype(np.int64), p_outlet.astype(np.bool_),
+        parts["p_low_level"].astype(np.float32), parts["p_low_dir"].astype(np.int64),
+        parts["p_low_kind"].astype(np.int8), parts["p_low_val"].astype(np.int64),
+        poff.astype(np.int64), np.int64(tile), np.int64(tile_rows), np.int64(tile_cols),
+        np.int64(rows), np.int64(cols), DIRECTION_ROW, DIRECTION_COL, dirs.astype(np.int64),
+    )
+
+
 def _depression_table(
-    level, dtype, width, count, area, volume, pit_elevation, pit_cell, spill_cell, spills_to,
+    level, width, cols, count, area, volume, pit_elevation, pit_cell, spill_cell, spills_to,
     transform,
 ) -> DepressionTable:
     spill = spill_cell[1:]
@@ -471,9 +611,9 @@ def _depression_table(
         pit_row=pit_cell[1:] // width - 1,
         pit_col=pit_cell[1:] % width - 1,
         pit_elevation=pit_elevation[1:],
-        spill_row=spill // width - 1,
-        spill_col=spill % width - 1,
-        spill_elevation=level[spill],
+        spill_row=spill // cols,
+        spill_col=spill % cols,
+        spill_elevation=level[pit_cell[1:]],
         spills_to=spills_to[1:],
         cell_count=count[1:],
         area_m2=area[1:],

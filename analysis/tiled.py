@@ -23,16 +23,24 @@ Steps
    and links gives every seed the level it is held to.
 3. **Finish each tile** (one task per tile). ``s = max(sl, lam[label])``, the
    seeds' parents, then the tile's pieces of depressions (components of
-   ``s > z`` inside it, with first cell and pit) and summaries of the
-   flood-tree walks that find spill points. The final onset stage, flood tree
-   and piece labels replace the scratch files; back go the perimeter (final
-   level, piece of each cell), the pieces and the walk summaries.
+   ``s > z`` inside it, with first cell and pit) and its spill summary
+   (:func:`analysis._spill_kernels.summarise_tile`): every dry area piece
+   next to a depression piece at its level or touching the perimeter, with
+   its first local way-out cell, where that way out leads inside the tile,
+   and its first rim cell next to each depression piece; per perimeter cell
+   its dry area and lowest neighbour inside the tile. The final onset stage,
+   flood tree and piece labels replace the scratch files; back go the
+   perimeter (final level, piece, outlet flag of each cell), the pieces and
+   the spill summary.
 4. **Join the pieces** (client). Pieces touching across tile edges are one
    depression (union-find over the perimeters). Depressions are numbered in
    raster order of their first cell, as the in-memory labelling numbers them;
-   the pit is the lowest cell, first in raster order; spill cells and the
-   depressions they spill to come from the walk summaries joined tile after
-   tile, exactly as the in-memory engine walks the whole flood tree.
+   the pit is the lowest cell, first in raster order. Dry area pieces that
+   touch across tile edges at one level are joined the same way, way-out
+   tests are completed across the edges, and the graph of dry areas and
+   depressions is solved once for all levels
+   (:func:`analysis._spill_kernels.resolve_spills`), giving every spill cell
+   and ``spills_to`` by the rule of :mod:`analysis.flood` ("Spill points").
 5. **Write** (one task per file). Each GeoTIFF is written block by block by
    one process from the tiles' scratch files; the depression-id writer also
    totals every depression's cell count, area and volume cell by cell in
@@ -42,26 +50,26 @@ Steps
    removes the scratch.
 
 What moves: task arguments and results are perimeters, meetings, seed levels,
-pieces and walk summaries (a few numbers per perimeter cell and per
-depression piece); no raster passes through the scheduler. Tile rasters go
+pieces and spill summaries (a few numbers per perimeter cell, per depression
+piece and per dry area next to one); no raster passes through the scheduler. Tile rasters go
 through files in the output folder, which every worker must be able to read
 and write.
 
 Exactness
 ---------
-With the same tile size, every result equals the in-memory engine's
-(``priority_flood(..., tile_size=T)``) bit for bit: the onset stage, flood
-tree, depression ids and every column of the depression table, and so every
-route and its controlling sill. The onset stage, the depression ids and every
-table column but the spill cell and ``spills_to`` do not depend on the tile
-size at all; where several rim cells tie at the spill elevation, the one the
-flood tree leaves through (and the next depression down) may change with it.
+The onset stage, the depression ids, every column of the depression table
+(spill points and ``spills_to`` included, by the canonical rule of
+:mod:`analysis.flood`) and so every route's controlling sill equal the
+in-memory engine's for any tile size of either engine. With the same tile
+size the flood tree, and so every route's cells, are the same bits too.
 
-Memory: a task holds one tile, about 22 bytes per cell of a tile (elevation,
-the outlet mask, the flood's working arrays, the walk memo: 0.36 GB per
-worker with 2048-cell tiles, 0.6 GB with 4096); a writer one block of
-:data:`analysis.export.BLOCK_ROWS` rows across the grid; the client the
-perimeters (about 100 bytes per perimeter cell) and the depression table.
+Memory: a task holds one tile, at most about 22 bytes per cell of a tile
+(elevation, the outlet mask, the flood's working arrays; the finish task's
+spill summary adds a stack of 4 bytes per cell of the dry areas it labels
+only: 0.36 GB per worker with 2048-cell tiles, 0.6 GB with 4096); a writer one
+block of :data:`analysis.export.BLOCK_ROWS` rows across the grid; the client
+the perimeters (about 100 bytes per perimeter cell), the spill summaries and
+the depression table.
 Scratch on disk: 13 bytes per cell, removed at the end.
 
 References
@@ -87,6 +95,7 @@ from typing import Any
 
 import numpy as np
 
+from analysis import _spill_kernels as _s
 from analysis import _tile_kernels as _t
 from analysis import _tiled_kernels as _k
 from analysis.dem import DEMGrid, read_dem_grid
@@ -105,6 +114,8 @@ from analysis.flood import (
     DIRECTION_ROW,
     DepressionTable,
     _directions,
+    _resolve_spill_parts,
+    _spill_parts,
     depression_table,
 )
 from analysis.outlets import OutletPlan, plan_outlets
@@ -370,7 +381,7 @@ def _flood_task(job: _Job, k: int) -> dict:
 
 
 def _finish_task(job: _Job, k: int, lam: np.ndarray, own: np.ndarray, other: np.ndarray) -> dict:
-    """Step 3 for tile ``k``: final level and tree, pieces of depressions, walk summaries."""
+    """Step 3 for tile ``k``: final level and tree, pieces of depressions, spill summary."""
     started = time.perf_counter()
     r0, r1, c0, c1 = job.bounds(k)
     h, w = r1 - r0, c1 - c0
@@ -394,13 +405,16 @@ def _finish_task(job: _Job, k: int, lam: np.ndarray, own: np.ndarray, other: np.
     first, pit_cell, pit_z, piece_level, _count, valid, unreached = _k.label_tile(
         lz, lstate, llab, z, np.int64(h), np.int64(w), back
     )
-    offs = (DIRECTION_ROW * lw + DIRECTION_COL).astype(np.int64)
-    starts = np.concatenate([pidx, pit_cell[1:]]).astype(np.int64)
-    walks = _k.walk_tile(lz, lstate, llab, np.int64(h), np.int64(w), offs, starts,
-                         np.int64(r0), np.int64(c0), np.int64(cols))
     _save(job.path(k, "level"), lz)
     _save(job.path(k, "state"), lstate)
     _save(job.path(k, "label"), llab)
+    p_piece = llab[pidx]
+    p_outlet = lstate[pidx] == _t.OUTLET
+    # The spill summary labels dry areas in llab (negative); it is saved already.
+    offs = (DIRECTION_ROW[dirs] * lw + DIRECTION_COL[dirs]).astype(np.int64)
+    spill = _s.summarise_tile(lz, lstate, llab, np.int64(h), np.int64(w), offs, dirs,
+                              np.int64(len(first) - 1), True, pidx.astype(np.int64),
+                              np.int64(r0), np.int64(c0), np.int64(cols))
 
     def to_global(li: np.ndarray) -> np.ndarray:
         return (r0 + li // lw - 1) * cols + (c0 + li % lw - 1)
@@ -411,8 +425,9 @@ def _finish_task(job: _Job, k: int, lam: np.ndarray, own: np.ndarray, other: np.
         "pit_z": pit_z[1:],
         "level": piece_level[1:],
         "p_level": lz[pidx],
-        "p_piece": llab[pidx],
-        "walks": walks,
+        "p_piece": p_piece,
+        "p_outlet": p_outlet,
+        "spill": spill,
         "valid": int(valid),
         "unreached": int(unreached),
         "task_s": time.perf_counter() - started,
@@ -772,7 +787,7 @@ def _solve(job: _Job, floods: list[dict], dirs: np.ndarray):
 
 
 def _join(job: _Job, finished: list[dict], dirs: np.ndarray) -> dict:
-    """Step 4: depressions from pieces, numbered in raster order; pits; spill walks."""
+    """Step 4: depressions from pieces, numbered in raster order; pits; spill points."""
     rows, cols = job.grid.shape
     n_pieces = np.array([len(f["first"]) for f in finished], dtype=np.int64)
     piece_off = np.concatenate([[0], np.cumsum(n_pieces)]).astype(np.int64)
@@ -788,8 +803,6 @@ def _join(job: _Job, finished: list[dict], dirs: np.ndarray) -> dict:
     pit = np.concatenate([f["pit"] for f in finished]).astype(np.int64)
     pit_z = np.concatenate([f["pit_z"] for f in finished]).astype(np.float32)
     level = np.concatenate([f["level"] for f in finished]).astype(np.float32)
-    tile_of_piece = np.repeat(np.arange(len(finished), dtype=np.int64), n_pieces)
-    local_of_piece = np.arange(total, dtype=np.int64) - piece_off[tile_of_piece] + 1
 
     # Number depressions by their first cell in raster order (as the in-memory labelling).
     first_of_root = np.full(total, np.iinfo(np.int64).max, dtype=np.int64)
@@ -809,35 +822,26 @@ def _join(job: _Job, finished: list[dict], dirs: np.ndarray) -> dict:
     dep_pit = np.zeros(n + 1, dtype=np.int64)
     dep_pit_z = np.zeros(n + 1, dtype=np.float32)
     dep_level = np.zeros(n + 1, dtype=np.float32)
-    pit_tile = np.zeros(n + 1, dtype=np.int64)
-    pit_piece = np.zeros(n + 1, dtype=np.int64)
     dep_pit[1:] = pit[best]
     dep_pit_z[1:] = pit_z[best]
     dep_level[1:] = level[best]
-    pit_tile[1:] = tile_of_piece[best]
-    pit_piece[1:] = local_of_piece[best]
 
-    # Spill walks, joined from the tiles' summaries.
-    walks = [f["walks"] for f in finished]
-    seg_counts = np.array([len(w[4]) for w in walks], dtype=np.int64)
-    seg_off = np.concatenate([[0], np.cumsum(seg_counts)]).astype(np.int64)
-    run_counts = np.array([len(w[1]) for w in walks], dtype=np.int64)
-    run_base = np.concatenate([[0], np.cumsum(run_counts)]).astype(np.int64)
-    run_start = np.concatenate(
-        [w[0][:-1] + run_base[t] for t, w in enumerate(walks)] + [[run_base[-1]]]
-    ).astype(np.int64)
-    cat = [np.concatenate([w[i] for w in walks]) for i in range(1, 8)]
-    run_label, run_last, run_next, end_kind, end_cell, drop_kind, drop_val = cat
-    p_down_kind = np.concatenate([w[8][: poff[t + 1] - poff[t]] for t, w in enumerate(walks)])
-    p_down_val = np.concatenate([w[9][: poff[t + 1] - poff[t]] for t, w in enumerate(walks)])
-    p_level = np.concatenate([f["p_level"] for f in finished]).astype(np.float32)
-    spill, spills_to = _k.spill_walks(
-        pit_tile, pit_piece, dep_level, poff, piece_off, seg_off, piece_id.astype(np.int32),
-        run_start, run_label.astype(np.int32), run_last.astype(np.int64),
-        run_next.astype(np.int64), end_kind.astype(np.int8), end_cell.astype(np.int64),
-        drop_kind.astype(np.int8), drop_val.astype(np.int64), p_down_kind.astype(np.int8),
-        p_down_val.astype(np.int64), p_level, np.int64(job.tile), np.int64(job.tile_cols),
-        np.int64(rows), np.int64(cols),
+    # Spill points and spills_to, from the tiles' spill summaries (canonical rule).
+    parts = []
+    p_dep = []
+    area_base = 0
+    for t, f in enumerate(finished):
+        ids_t = np.concatenate([[0], piece_id[piece_off[t]:piece_off[t + 1]]]).astype(np.int32)
+        parts.append(_spill_parts(f["spill"], ids_t, area_base))
+        area_base += len(f["spill"][0])
+        p_dep.append(ids_t[f["p_piece"]])
+    joined_parts = {key: np.concatenate([p[key] for p in parts]) for key in parts[0]}
+    spill, spills_to = _resolve_spill_parts(
+        n, joined_parts,
+        p_level=np.concatenate([f["p_level"] for f in finished]),
+        p_dep=np.concatenate(p_dep),
+        p_outlet=np.concatenate([f["p_outlet"] for f in finished]),
+        poff=poff, tile=job.tile, rows=rows, cols=cols, dirs=dirs,
     )
     return {"n": n, "piece_off": piece_off, "piece_id": piece_id.astype(np.int32),
             "pit": dep_pit, "pit_z": dep_pit_z, "level": dep_level, "spill": spill,

@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 
 from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
 from analysis.flood import OUTLET_CODE, DIRECTION_COL, DIRECTION_ROW, priority_flood
-from tests.textbook_flood import components, minimax_stage
+from tests.textbook_flood import canonical_spills, components, minimax_stage
 
 N = math.nan
 
@@ -274,6 +274,67 @@ def test_depression_with_an_island_at_the_spill_level():
     assert row["cell_count"] == 14
 
 
+def test_equal_notches_spill_through_the_first_in_raster_order():
+    # Two notches at 3 on the edge, (0, 2) and (2, 5); the basin inside (0 to 1)
+    # fills to 3. Both notches are outlets, so both are ways out at hop distance
+    # 0 and the basin is at distance 1; the rule picks the rim cell first in
+    # raster order: (0, 2) (flat index 2) before (2, 5) (index 17). Whatever the
+    # tile size, and so whatever order the flood meets the two notches in.
+    z = grid(
+        [
+            [9, 9, 3, 9, 9, 9],
+            [9, 1, 1, 1, 1, 9],
+            [9, 1, 0, 1, 1, 3],
+            [9, 9, 9, 9, 9, 9],
+        ]
+    )
+    for tile in (1, 2, 3, 4, 5, 512):
+        for conn in (4, 8):
+            r = priority_flood(z, edge_mask(z.shape), connectivity=conn, tile_size=tile)
+            row = r.depressions.row(1)
+            assert (row["spill_row"], row["spill_col"], row["spills_to"]) == (0, 2, 0)
+            assert row["spill_elevation"] == 3
+            route = r.route(2, 2)
+            assert (route.sill_row, route.sill_col) == (0, 2)
+
+
+# Left basin L (z 0-1) behind a flat saddle of nine cells at 5; right basin R
+# (z 1-2) drains over the edge notch (3, 8) at 4. Working: R fills to 4; every
+# saddle cell has z = 5 > 4, so s = 5 there (a dry area at 5); L is walled by 9
+# and the saddle, so it fills to 5. The saddle touches R (s = 4 < 5), so it is
+# a way out (distance 0) and L is at distance 1. L's rim cells are (1, 2),
+# (2, 2), (3, 2): the first in raster order is (1, 2). The saddle's exit (first
+# cell with a lower neighbour) is (1, 4) with 8 neighbours (its SE neighbour
+# (2, 5) is in R), (2, 4) with 4 neighbours; either way its lowest neighbour is
+# (2, 5), in R, so L spills to R; R spills at (3, 8) to the outlets (0).
+FLAT_SADDLE = [
+    [9, 9, 9, 9, 9, 9, 9, 9, 9],
+    [9, 1, 5, 5, 5, 9, 9, 9, 9],
+    [9, 1, 5, 5, 5, 2, 2, 2, 9],
+    [9, 0, 5, 5, 5, 2, 1, 2, 4],
+    [9, 9, 9, 9, 9, 2, 2, 2, 9],
+    [9, 9, 9, 9, 9, 9, 9, 9, 9],
+]
+
+
+@pytest.mark.parametrize("conn", [4, 8])
+def test_flat_saddle_spills_at_its_first_rim_cell_whatever_the_tiles(conn):
+    z = grid(FLAT_SADDLE)
+    for tile in (1, 2, 3, 4, 7, 512):
+        r = priority_flood(z, edge_mask(z.shape), connectivity=conn, tile_size=tile)
+        left, right = int(r.depression_id[3, 1]), int(r.depression_id[3, 6])
+        assert left > 0 and right > 0 and left != right
+        L, R = r.depressions.row(left), r.depressions.row(right)
+        assert L["spill_elevation"] == 5 and R["spill_elevation"] == 4
+        assert (L["spill_row"], L["spill_col"], L["spills_to"]) == (1, 2, right)
+        assert (R["spill_row"], R["spill_col"], R["spills_to"]) == (3, 8, 0)
+        route = r.route(3, 1)
+        assert (route.sill_row, route.sill_col) == (1, 2)
+        on_route = set(zip(route.rows.tolist(), route.cols.tolist()))
+        assert (1, 2) in on_route and route.reaches_outlet
+        assert z[route.rows, route.cols].max() == 5
+
+
 # --------------------------------------------------------------------------
 # Bad input
 # --------------------------------------------------------------------------
@@ -414,19 +475,40 @@ def test_invariants_of_the_flood(case):
 
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(small_dems())
-def test_tiling_changes_nothing_but_tied_routes(case):
+def test_tiling_changes_nothing_but_the_tied_flood_tree(case):
     # The tiled flood (Barnes 2016) must give the same onset stage, depression
-    # ids and depression totals whatever the tile size; only the flood tree may
-    # differ where several routes tie.
+    # ids, whole depression table and route sills whatever the tile size; only
+    # the flood tree (and route cells below the sill) may differ where routes tie.
     z, outlets, conn, tile = case
     whole = priority_flood(z, outlets, connectivity=conn, tile_size=10_000)
     tiled = priority_flood(z, outlets, connectivity=conn, tile_size=tile)
     assert np.array_equal(whole.onset_stage, tiled.onset_stage, equal_nan=True)
     assert np.array_equal(whole.depression_id, tiled.depression_id)
-    for name in ("pit_row", "pit_col", "pit_elevation", "spill_elevation", "max_depth",
-                 "cell_count", "area_m2", "volume_m2_vu"):
-        assert np.array_equal(getattr(whole.depressions, name), getattr(tiled.depressions, name))
+    for name in whole.depressions.columns:
+        assert np.array_equal(getattr(whole.depressions, name), getattr(tiled.depressions, name),
+                              equal_nan=True), name
     assert whole.unreached_cells == tiled.unreached_cells
+    # Every route's controlling sill is tile-independent too.
+    for rr, cc in np.argwhere(whole.flood_tree > 0):
+        a, b = whole.route(int(rr), int(cc)), tiled.route(int(rr), int(cc))
+        assert (a.sill_row, a.sill_col) == (b.sill_row, b.sill_col)
+        assert b.reaches_outlet and b.sill_elevation == whole.onset_stage[rr, cc]
+        assert z[b.rows, b.cols].max() == b.sill_elevation
+        assert (b.sill_row, b.sill_col) in set(zip(b.rows.tolist(), b.cols.tolist()))
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(small_dems())
+def test_spill_points_follow_the_rule_read_literally(case):
+    # tests/textbook_flood.canonical_spills reads the spill rule of the
+    # analysis.flood docstring literally, with Python sets and BFS.
+    z, outlets, conn, tile = case
+    r = priority_flood(z, outlets, connectivity=conn, tile_size=tile)
+    want = canonical_spills(z, r.onset_stage, r.depression_id, outlets, conn)
+    t = r.depressions
+    got = {int(t.id[k]): ((int(t.spill_row[k]), int(t.spill_col[k])), int(t.spills_to[k]))
+           for k in range(len(t))}
+    assert got == want
 
 
 @pytest.mark.parametrize("tile", [16, 37, 64])

@@ -97,6 +97,26 @@ def assert_same(run, folder, dem, outlets, r, *, routes=400):
         assert np.array_equal(a.rows, b.rows) and np.array_equal(a.cols, b.cols)
 
 
+def assert_tile_free(run, folder, dem, whole):
+    """Onset stage, ids, the whole table and every route's sill equal the one-tile result.
+
+    ``whole`` is the in-memory engine run as a single tile: only the flood tree
+    and route cells below the sill may differ where routes tie.
+    """
+    s = read_band(folder / "onset_stage.tif")
+    assert np.array_equal(s, whole.onset_stage, equal_nan=True)
+    ids = read_band(folder / "depression_id.tif")
+    assert np.array_equal(ids, np.where(np.isnan(whole.onset_stage), -1, whole.depression_id))
+    for name in whole.depressions.columns:
+        assert np.array_equal(getattr(whole.depressions, name), getattr(run.depressions, name),
+                              equal_nan=True), name
+    mine = tiled_result(run, folder, dem)
+    for rr, cc in np.argwhere(whole.flood_tree > 0):
+        a, b = whole.route(int(rr), int(cc)), mine.route(int(rr), int(cc))
+        assert (a.sill_row, a.sill_col) == (b.sill_row, b.sill_col)
+        assert b.reaches_outlet
+
+
 def run_tiled(path, out, *, specs=("edge",), connectivity=8, tile=16, map=None):
     if out.exists():
         shutil.rmtree(out)
@@ -275,7 +295,26 @@ def test_random_small_dems_and_tiles(tmp_path):
         z[0, 0] = 1.0
         path = write_raster(tmp_path / f"r{k}.tif", z, nodata=-9999.0)
         specs = ("edge",) if k % 3 else ("nodata", "edge")
-        check(path, tmp_path, specs=specs, connectivity=(4, 8)[k % 2], tile=int(rng.integers(1, 6)))
+        conn = (4, 8)[k % 2]
+        run, out, _ = check(path, tmp_path, specs=specs, connectivity=conn,
+                            tile=int(rng.integers(1, 6)))
+        # Spill points and sills do not depend on the tile size (ties abound).
+        dem, _, whole = in_memory(path, specs, conn, tile=max(rows, cols))
+        assert_tile_free(run, out, dem, whole)
+
+
+def test_tied_spill_points_do_not_depend_on_the_tile_size(tmp_path):
+    # Whole-metre heights: tied rims and flat saddles everywhere. Tiles of 1 to
+    # 7 cells (dividing the grid or not) give the one-tile table and sills.
+    rng = np.random.default_rng(31)
+    z = rng.integers(0, 4, (23, 29)).astype(np.int16)
+    path = write_raster(tmp_path / "ties.tif", z)
+    for conn in (4, 8):
+        dem, _, whole = in_memory(path, ("edge",), conn, tile=64)
+        for tile in (1, 2, 3, 5, 7, 23):
+            out = tmp_path / f"free_{tile}_{conn}"
+            run = run_tiled(path, out, connectivity=conn, tile=tile)
+            assert_tile_free(run, out, dem, whole)
 
 
 def test_bad_input_gets_the_in_memory_errors(tmp_path):

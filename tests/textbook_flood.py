@@ -71,3 +71,100 @@ def components(mask: np.ndarray, connectivity: int = 8) -> list[set]:
                             todo.append((aa, bb))
                 found.append(part)
     return found
+
+
+def canonical_spills(z: np.ndarray, s: np.ndarray, ids: np.ndarray, outlets: np.ndarray,
+                     connectivity: int = 8) -> dict:
+    """Spill cell and ``spills_to`` of every depression by the rule of analysis.flood.
+
+    A slow, literal reading of the rule in the module docstring of
+    :mod:`analysis.flood` ("Spill points"), written with Python sets and
+    breadth-first search and sharing no code with the engine. ``s`` is the
+    onset stage (NaN where unreached), ``ids`` the depression ids (0 outside
+    depressions). Returns ``{id: ((spill_row, spill_col), spills_to)}``.
+    """
+    rows, cols = z.shape
+    steps = EIGHT if connectivity == 8 else FOUR
+
+    def neighbours(r, c):
+        for dr, dc in steps:
+            rr, cc = r + dr, c + dc
+            if 0 <= rr < rows and 0 <= cc < cols:
+                yield rr, cc
+
+    reached = ~np.isnan(s)
+    dry = reached & (ids == 0)
+    # Dry areas: connected cells with s == z at one level.
+    area_of = {}
+    areas = []
+    for r in range(rows):
+        for c in range(cols):
+            if dry[r, c] and (r, c) not in area_of:
+                level = s[r, c]
+                todo, cells = [(r, c)], []
+                area_of[(r, c)] = len(areas)
+                while todo:
+                    cell = todo.pop()
+                    cells.append(cell)
+                    for nb in neighbours(*cell):
+                        if dry[nb] and s[nb] == level and nb not in area_of:
+                            area_of[nb] = len(areas)
+                            todo.append(nb)
+                areas.append((level, cells))
+    exits = []
+    touching = [dict() for _ in areas]  # area -> {depression: first rim cell}
+    for a, (level, cells) in enumerate(areas):
+        ways = [cell for cell in cells
+                if outlets[cell] or any(s[nb] < level for nb in neighbours(*cell))]
+        exits.append(min(ways, key=lambda rc: rc[0] * cols + rc[1]) if ways else None)
+        for cell in cells:
+            for nb in neighbours(*cell):
+                d = int(ids[nb])
+                if d > 0 and s[nb] == level:
+                    best = touching[a].get(d)
+                    if best is None or cell[0] * cols + cell[1] < best[0] * cols + best[1]:
+                        touching[a][d] = cell
+    # Hop distances from the ways out over the graph of dry areas and depressions.
+    dep_areas = {}
+    for a, found in enumerate(touching):
+        for d in found:
+            dep_areas.setdefault(d, []).append(a)
+    dist = {("a", a): 0 for a in range(len(areas)) if exits[a] is not None}
+    queue = list(dist)
+    while queue:
+        nxt = []
+        for kind, k in queue:
+            near = ([("d", d) for d in touching[k]] if kind == "a"
+                    else [("a", a) for a in dep_areas.get(k, [])])
+            for node in near:
+                if node not in dist:
+                    dist[node] = dist[(kind, k)] + 1
+                    nxt.append(node)
+        queue = nxt
+
+    def lowest_neighbour(cell):
+        best = None
+        for nb in neighbours(*cell):
+            if not np.isnan(s[nb]) and (best is None or s[nb] < s[best]):
+                best = nb
+        return best
+
+    def water_from(a):
+        while True:
+            if exits[a] is None:
+                near = [d for d in touching[a] if dist.get(("d", d)) == dist[("a", a)] - 1]
+                return min(near)
+            if outlets[exits[a]]:
+                return 0
+            nb = lowest_neighbour(exits[a])
+            if ids[nb] > 0:
+                return int(ids[nb])
+            a = area_of[nb]
+
+    out = {}
+    for d in range(1, int(ids.max(initial=0)) + 1):
+        want = dist[("d", d)] - 1
+        rims = [touching[a][d] for a in dep_areas[d] if dist.get(("a", a)) == want]
+        spill = min(rims, key=lambda rc: rc[0] * cols + rc[1])
+        out[d] = (spill, water_from(area_of[spill]))
+    return out
