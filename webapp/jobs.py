@@ -5,10 +5,19 @@ request that asks for it, and :class:`JobRunner` (a supervisor thread in the
 server process) claims queued runs in order, starts a fresh worker process for
 each (``multiprocessing``, *spawn* start method, so the worker shares nothing
 with the server's threads), waits for it and checks that it recorded an end:
-a worker killed by the system (out of memory, say) leaves its run ``running``,
-and the supervisor marks it failed with the exit code. Because the queue lives
-in SQLite, a run queued before the server stopped is picked up when it starts
-again, and a run interrupted by the stop is queued again.
+a worker killed by a signal (SIGKILL from the system when memory runs out, or
+from an operator) leaves its run ``running``; the supervisor marks it failed,
+with phase ``interrupted`` and a message naming the signal and the phase it
+stopped in, and removes what the run had half written (its ``worker.log``
+stays). A run's results only become the site's current results in the
+worker's last transaction, so an interrupted run is never shown.
+
+Because the queue lives in SQLite, a run queued before the server stopped is
+picked up when it starts again. A run the server was running when it stopped
+is queued again: :meth:`JobRunner.stop` queues the runs it ends, and
+:meth:`JobRunner.recover` (at start, and on every pass of the supervisor)
+queues runs left ``running`` by a worker process that no longer exists, such
+as one killed together with a server that crashed.
 
 ``JOB_RUNNER = "thread"`` runs the same job body in a thread of the server
 (no process start-up cost); ``"inline"`` runs it inside :meth:`JobRunner.submit`
@@ -20,18 +29,30 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
+import signal
 import threading
 from pathlib import Path
 
-from webapp import db
-from webapp.worker import run_job
+from webapp import db, layout
+from webapp.worker import discard_partial_output, run_job
 
 log = logging.getLogger("sillmark.jobs")
 
 MODES = ("process", "thread", "inline")
 
 
+#: Phase recorded for a run whose worker was killed before it finished.
+INTERRUPTED_PHASE = "interrupted"
+#: Phase recorded for a run queued again because the server stopped during it.
+REQUEUED_PHASE = "queued again after a restart"
+
+
 def _pid_alive(pid: int | None) -> bool:
+    """Whether ``pid`` is a live process that may be an analysis worker.
+
+    On Linux a live process whose command line is not a Python multiprocessing
+    child (the pid was reused after a reboot, say) does not count.
+    """
     if not pid:
         return False
     try:
@@ -40,7 +61,42 @@ def _pid_alive(pid: int | None) -> bool:
         return False
     except PermissionError:  # pragma: no cover - someone else's process
         return True
-    return True
+    try:
+        with open(f"/proc/{int(pid)}/cmdline", "rb") as fh:
+            cmdline = fh.read()
+    except OSError:  # no /proc: trust kill(0)
+        return True
+    if int(pid) == os.getpid():  # thread and inline runs record the server's own pid
+        return True
+    return b"multiprocessing" in cmdline or b"webapp.worker" in cmdline
+
+
+def _process_main(db_path: str, data_dir: str, run_id: int) -> None:
+    """Entry point of a worker process: Ctrl-C in the server's terminal is for the server.
+
+    The terminal sends SIGINT to the whole process group; the server stops its
+    workers itself (and queues their runs again), so a worker ignores it.
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    run_job(db_path, data_dir, run_id)
+
+
+def interruption_message(code: int, phase: str) -> str:
+    """What the page says about a worker process that ended with ``code`` (negative: a signal)."""
+    where = f" while {phase}" if phase and phase not in ("starting", "queued") else ""
+    if code < 0:
+        number = -code
+        try:
+            name = signal.Signals(number).name
+        except ValueError:
+            name = f"signal {number}"
+        why = f"its process was stopped by signal {number} ({name})"
+        if number == signal.SIGKILL:
+            why += "; the system may have run out of memory, or someone ended the process"
+    else:
+        why = f"its process ended without recording a result (exit code {code})"
+    return (f"The analysis was interrupted{where}: {why}. Nothing from this run is shown; "
+            "start it again")
 
 
 class JobRunner:
@@ -73,32 +129,67 @@ class JobRunner:
         self._thread.start()
 
     def stop(self, timeout: float = 5.0) -> None:
+        """Stop supervising; worker processes still running are ended and their runs queued again."""
         self._stop.set()
         self._wake.set()
         if self._thread is not None:
             self._thread.join(timeout)
         with self._lock:
-            active = list(self._active.values())
-        for proc in active:
-            if isinstance(proc, multiprocessing.process.BaseProcess) and proc.is_alive():
-                proc.terminate()
+            active = [(rid, proc) for rid, proc in self._active.items()
+                      if isinstance(proc, multiprocessing.process.BaseProcess) and proc.is_alive()]
+        if not active:
+            return
+        # Queue them again first, so the watcher of a process ended here does not
+        # record a failure: the next start runs them from the beginning.
+        requeued = self._requeue([rid for rid, _ in active])
+        for _, proc in active:
+            proc.terminate()
+        for _, proc in active:
+            proc.join(timeout)
+        self._discard(requeued)
+
+    def _requeue(self, run_ids: list[int]) -> list[tuple[int, int]]:
+        """Queue ``run_ids`` again if they are still running; returns their (site, run) ids."""
+        conn = db.connect(self.db_path)
+        try:
+            with db.transaction(conn):
+                done = []
+                for rid in run_ids:
+                    cur = conn.execute(
+                        "UPDATE runs SET status = ?, phase = ?, percent = 0, worker_pid = NULL, "
+                        "message = '' WHERE id = ? AND status = ?",
+                        (db.QUEUED, REQUEUED_PHASE, rid, db.RUNNING),
+                    )
+                    if cur.rowcount:
+                        site = conn.execute("SELECT site_id FROM runs WHERE id = ?", (rid,)).fetchone()
+                        done.append((int(site["site_id"]), int(rid)))
+            return done
+        finally:
+            conn.close()
+
+    def _discard(self, runs: list[tuple[int, int]]) -> None:
+        """Remove what the interrupted attempts of ``runs`` wrote; they start afresh."""
+        for site_id, run_id in runs:
+            discard_partial_output(layout.run_dir(self.data_dir, site_id, run_id),
+                                   note="the server stopped during this run; it is queued again")
 
     def recover(self) -> int:
-        """Runs left ``running`` by a server that stopped are queued again; returns how many."""
+        """Runs left ``running`` by a worker process that is gone are queued again; returns how many.
+
+        Runs this runner is supervising itself are left alone.
+        """
         conn = db.connect(self.db_path)
         try:
             rows = conn.execute("SELECT id, worker_pid FROM runs WHERE status = ?", (db.RUNNING,)).fetchall()
-            stale = [r["id"] for r in rows if not _pid_alive(r["worker_pid"])]
-            if stale:
-                with db.transaction(conn):
-                    conn.executemany(
-                        "UPDATE runs SET status = ?, phase = 'queued again after a restart', "
-                        "percent = 0, worker_pid = NULL WHERE id = ? AND status = ?",
-                        [(db.QUEUED, rid, db.RUNNING) for rid in stale],
-                    )
-            return len(stale)
         finally:
             conn.close()
+        with self._lock:
+            mine = set(self._active)
+        stale = [r["id"] for r in rows if r["id"] not in mine and not _pid_alive(r["worker_pid"])]
+        if stale:
+            self._discard(self._requeue(stale))
+            log.info("queued again runs %s, whose worker process is gone", stale)
+        return len(stale)
 
     # -- queue --------------------------------------------------------------
 
@@ -136,6 +227,7 @@ class JobRunner:
     def _loop(self) -> None:
         while not self._stop.is_set():
             try:
+                self.recover()  # e.g. a worker of an earlier server that was killed with it
                 with self._lock:
                     free = self.workers - len(self._active)
                 while free > 0 and not self._stop.is_set():
@@ -152,7 +244,7 @@ class JobRunner:
     def _launch(self, run_id: int) -> None:
         args = (str(self.db_path), str(self.data_dir), run_id)
         if self.mode == "process":
-            proc = self._ctx.Process(target=run_job, args=args, name=f"sillmark-run-{run_id}",
+            proc = self._ctx.Process(target=_process_main, args=args, name=f"sillmark-run-{run_id}",
                                      daemon=True)
             proc.start()
             db_conn = db.connect(self.db_path)
@@ -170,23 +262,43 @@ class JobRunner:
     def _watch(self, run_id: int, proc) -> None:
         proc.join()
         code = getattr(proc, "exitcode", 0)
-        with self._lock:
-            self._active.pop(run_id, None)
-        conn = db.connect(self.db_path)
+        try:
+            self._record_end(run_id, code)
+        finally:
+            # Only now: until the end is recorded, recover() must see the run as ours
+            # (it would otherwise queue the killed run again instead).
+            with self._lock:
+                self._active.pop(run_id, None)
+            self._wake.set()
+
+    def _record_end(self, run_id: int, code: int | None) -> None:
+        """A worker has ended: if it recorded no end, mark its run interrupted and clear its folder."""
+        try:
+            conn = db.connect(self.db_path)
+        except Exception:  # pragma: no cover - the database itself is gone
+            log.exception("could not record the end of run %s", run_id)
+            return
         try:
             run = db.get_run(conn, run_id)
-            if run is not None and run["status"] == db.RUNNING:
-                if self.mode == "process" and code is not None and code < 0:
-                    why = f"the analysis process was stopped by signal {-code}"
-                    if -code == 9:
-                        why += " (the system may have run out of memory)"
-                else:
-                    why = f"the analysis process ended without a result (exit code {code})"
-                db.update_run(conn, run_id, status=db.FAILED, message=why + "; start it again",
-                              finished_utc=db.utc_now())
+            if run is None or run["status"] != db.RUNNING:
+                return
+            message = interruption_message(int(code or 0) if self.mode == "process" else 0,
+                                           run["phase"])
+            with db.transaction(conn):
+                # Only if the run is still running (not queued again by stop() meanwhile).
+                changed = conn.execute(
+                    "UPDATE runs SET status = ?, phase = ?, message = ?, finished_utc = ? "
+                    "WHERE id = ? AND status = ?",
+                    (db.FAILED, INTERRUPTED_PHASE, message, db.utc_now(), run_id, db.RUNNING),
+                ).rowcount
+            if changed:
+                log.warning("run %s: %s", run_id, message)
+                folder = layout.run_dir(self.data_dir, run["site_id"], run_id)
+                discard_partial_output(folder, note=message)
+        except Exception:  # pragma: no cover - the database itself is gone
+            log.exception("could not record the end of run %s", run_id)
         finally:
             conn.close()
-        self._wake.set()
 
     def busy(self) -> int:
         with self._lock:

@@ -7,15 +7,22 @@ goes. It runs in a separate process (see :mod:`webapp.jobs`), so it imports no
 Flask and talks to the server only through the database and the files.
 
 A run never touches the results of an earlier run: it writes into its own
-folder, and only when everything is written does one transaction mark it done
-and make it the site's current run.
+folder (each file under a temporary name, renamed when complete), and only
+when everything is written does one transaction mark it done and make it the
+site's current run. A run that fails removes what it had half written
+(:func:`discard_partial_output`), which gives the space back on a full disk.
+Every write to the run's row is made only while the run is still ``running``:
+a run the server has taken back (see :class:`RunTakenBack`) is never recorded
+as done or failed by its worker, and never becomes current.
 """
 
 from __future__ import annotations
 
+import errno
 import logging
 import math
 import os
+import shutil
 import sys
 import time
 import traceback
@@ -43,6 +50,14 @@ _NEXT = {name: (PHASES[k + 1][1] if k + 1 < len(PHASES) else 100) for k, (name, 
 PROGRESS_INTERVAL = 0.25
 
 
+class RunTakenBack(Exception):
+    """The server took this run back (queued it again on stopping, or recorded its end).
+
+    The worker stops at its next progress write and records nothing: the run's
+    row belongs to the server now, and its results must not become current.
+    """
+
+
 class _Progress:
     """Writes phase and percent to the run's row, at most a few times a second."""
 
@@ -66,7 +81,9 @@ class _Progress:
         if not force and now - self._last < self.min_interval:
             return
         self._last = now
-        db.update_run(self.conn, self.run_id, phase=self.phase, percent=round(float(percent), 1))
+        if not db.update_run(self.conn, self.run_id, while_status=db.RUNNING, phase=self.phase,
+                             percent=round(float(percent), 1)):
+            raise RunTakenBack(f"run {self.run_id} is no longer running")
 
 
 def _specs(site_folder: Path, outlets: list[dict]) -> tuple:
@@ -121,28 +138,63 @@ def run_job(db_path: str, data_dir: str, run_id: int) -> None:
         if run is None:
             return
         folder = layout.run_dir(data, run["site_id"], run_id)
-        folder.mkdir(parents=True, exist_ok=True)
-        handler = logging.FileHandler(folder / "worker.log", encoding="utf-8")
-        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
-        log.addHandler(handler)
-        log.setLevel(logging.INFO)
+        handler = None
         try:
+            # Inside the try: a data folder that cannot be written is a failure with a reason.
+            folder.mkdir(parents=True, exist_ok=True)
+            handler = logging.FileHandler(folder / "worker.log", encoding="utf-8")
+            handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+            log.addHandler(handler)
+            log.setLevel(logging.INFO)
             _run(conn, data, run, folder)
+        except RunTakenBack:
+            log.warning("run %s was taken back by the server; this worker stops", run_id)
+            discard_partial_output(folder)
         except BaseException as exc:  # every failure is recorded; the message is for the user
-            message = _user_names(conn, run, failure_message(exc))
+            message = _user_names(conn, run, failure_message(exc, folder))
             log.error("run %s failed: %s\n%s", run_id, message, traceback.format_exc())
+            discard_partial_output(folder)
             try:
-                db.update_run(conn, run_id, status=db.FAILED, message=message,
-                              finished_utc=db.utc_now())
+                db.update_run(conn, run_id, while_status=db.RUNNING, status=db.FAILED,
+                              message=message, finished_utc=db.utc_now())
             except Exception:  # pragma: no cover - the database itself is gone
                 log.exception("could not record the failure of run %s", run_id)
             if isinstance(exc, (KeyboardInterrupt, SystemExit)):
                 raise
         finally:
-            log.removeHandler(handler)
-            handler.close()
+            if handler is not None:
+                log.removeHandler(handler)
+                handler.close()
     finally:
         conn.close()
+
+
+#: What a failed run leaves in its folder: only its log.
+_PARTIAL = ("results", "arrays", "arrays.tmp", "arrays.old", "levels", "stage_table.csv")
+
+
+def discard_partial_output(folder: Path, *, note: str | None = None) -> None:
+    """Remove what a run that did not finish wrote into ``folder``, keeping ``worker.log``.
+
+    Called for failed runs only (never for a site's current run). ``note`` is
+    appended to the log (the supervisor's account of a worker it saw killed).
+    """
+    folder = Path(folder)
+    for name in _PARTIAL:
+        path = folder / name
+        try:
+            if path.is_dir():
+                shutil.rmtree(path, ignore_errors=True)
+            elif path.exists():
+                path.unlink()
+        except OSError:  # pragma: no cover - best effort; nothing here is ever served
+            pass
+    if note:
+        try:
+            with open(folder / "worker.log", "a", encoding="utf-8") as fh:
+                fh.write(f"{db.utc_now()} ERROR {note}\n")
+        except OSError:
+            pass
 
 
 def _user_names(conn, run, message: str) -> str:
@@ -160,10 +212,75 @@ def _user_names(conn, run, message: str) -> str:
     return message
 
 
-def failure_message(exc: BaseException) -> str:
-    """What the page says when a run fails: the engine's own words for its errors."""
+#: errno values that mean the disk (or the user's quota on it) is full.
+_NO_SPACE = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG}
+#: errno values that mean the data folder may not be written.
+_DENIED = {errno.EACCES, errno.EPERM}
+#: Below this many free bytes in the run's folder, a write error is blamed on space.
+LOW_SPACE_BYTES = 4 * 2**20
+
+
+def _chain(exc: BaseException):
+    while exc is not None:
+        yield exc
+        exc = exc.__cause__ or exc.__context__
+
+
+def _storage_trouble(exc: BaseException, folder: Path | None) -> str | None:
+    """"space", "read-only", "denied" or None: whether a failure came from the disk, not the data.
+
+    GDAL (through rasterio) and SQLite report a full disk in their own words,
+    not as an OSError, so their messages are read too, and the free space left
+    in the run's folder decides a write error that says nothing.
+    """
+    import sqlite3
+
+    for e in _chain(exc):
+        if isinstance(e, OSError) and e.errno in _NO_SPACE:
+            return "space"
+        if isinstance(e, OSError) and e.errno == errno.EROFS:
+            return "read-only"
+        if isinstance(e, OSError) and e.errno in _DENIED:
+            return "denied"
+        text = str(e).lower()
+        if "no space left" in text or "disk is full" in text or "disk quota" in text:
+            return "space"
+        if "read-only file system" in text or "readonly database" in text:
+            return "read-only"
     from analysis.errors import SillmarkError
 
+    chain = list(_chain(exc))
+    if any(isinstance(e, (SillmarkError, FileNotFoundError, MemoryError)) for e in chain):
+        return None  # the engine's or the file's own reason says more
+    if folder is not None and any(isinstance(e, (OSError, sqlite3.Error)) or
+                                  e.__class__.__module__.startswith("rasterio") for e in chain):
+        try:
+            if shutil.disk_usage(next(p for p in (folder, *folder.parents) if p.exists())).free \
+                    < LOW_SPACE_BYTES:
+                return "space"
+        except (OSError, StopIteration):  # pragma: no cover
+            pass
+    return None
+
+
+def failure_message(exc: BaseException, folder: Path | None = None) -> str:
+    """What the page says when a run fails: the engine's own words for its errors, and
+    plain words for a full disk or a data folder that cannot be written."""
+    from analysis.errors import SillmarkError
+
+    trouble = _storage_trouble(exc, folder)
+    if trouble == "space":
+        return ("the disk holding the data folder is full (no space left to write the "
+                "results); free some space and start the analysis again. The earlier "
+                "results, if any, are unchanged")
+    if trouble == "read-only":
+        return ("the data folder is on a read-only file system, so the results cannot be "
+                "written; make it writable and start the analysis again. The earlier "
+                "results, if any, are unchanged")
+    if trouble == "denied":
+        return ("Sillmark is not allowed to write (or read) files in the data folder "
+                "(permission denied); fix the folder's permissions and start the analysis "
+                "again. The earlier results, if any, are unchanged")
     if isinstance(exc, SillmarkError):
         return " ".join(str(exc).split())
     if isinstance(exc, MemoryError):
@@ -190,7 +307,9 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     settings = db.loads(run["settings"])
     site_folder = layout.site_dir(data, run["site_id"])
     progress = _Progress(conn, run_id)
-    db.update_run(conn, run_id, started_utc=db.utc_now(), worker_pid=os.getpid())
+    if not db.update_run(conn, run_id, while_status=db.RUNNING, started_utc=db.utc_now(),
+                         worker_pid=os.getpid()):
+        raise RunTakenBack(f"run {run_id} is not running (it was never claimed, or taken back)")
     log.info("run %s started in process %s", run_id, os.getpid())
     t0 = time.perf_counter()
 
@@ -260,11 +379,15 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     progress.start("finishing")
     summary["seconds"] = round(time.perf_counter() - t0, 2)
     with db.transaction(conn):
-        conn.execute(
+        # Only a run still ours becomes current: one the server queued again while this
+        # worker was finishing is run afresh, and its folder is cleared.
+        done = conn.execute(
             "UPDATE runs SET status = ?, phase = ?, percent = 100, finished_utc = ?, summary = ? "
-            "WHERE id = ?",
-            (db.DONE, "done", db.utc_now(), db.dumps(summary), run_id),
-        )
+            "WHERE id = ? AND status = ?",
+            (db.DONE, "done", db.utc_now(), db.dumps(summary), run_id, db.RUNNING),
+        ).rowcount
+        if done != 1:
+            raise RunTakenBack(f"run {run_id} was taken back before it could finish")
         conn.execute("UPDATE sites SET current_run = ? WHERE id = ?", (run_id, run["site_id"]))
     log.info("run %s done in %.2f s", run_id, summary["seconds"])
 
@@ -272,6 +395,12 @@ def _run(conn, data: Path, run, folder: Path) -> None:
 def main(argv: list[str] | None = None) -> int:  # pragma: no cover - manual use
     """``python -m webapp.worker DB DATA RUN``: run one analysis in the foreground."""
     args = sys.argv[1:] if argv is None else argv
+    conn = db.connect(args[0])
+    try:  # claim it as the job runner would
+        db.update_run(conn, int(args[2]), while_status=db.QUEUED, status=db.RUNNING,
+                      phase="starting", started_utc=db.utc_now())
+    finally:
+        conn.close()
     run_job(args[0], args[1], int(args[2]))
     return 0
 
