@@ -6,7 +6,8 @@ under it: the pixel centres are transformed from Web Mercator to the DEM's CRS
 with pyproj and floored to a row and column (nearest neighbour). That lookup
 is the only costly step; :class:`TileIndexCache` keeps it per site grid and
 tile, so redrawing a tile at another water level costs one gather and one
-comparison per pixel, plus the PNG encoding.
+comparison per pixel, plus the PNG encoding. :class:`ImageCache` keeps the
+encoded tiles themselves, so a tile many viewers ask for is drawn once.
 
 Water-level tiles threshold the onset stage ``s`` at the level ``h`` (flooded
 where ``s <= h``, coloured by depth ``h - z``; shielded low ground where
@@ -35,6 +36,9 @@ MERCATOR_HALF = math.pi * 6378137.0
 WEB_MERCATOR = pyproj.CRS.from_epsg(3857)
 #: Deepest zoom the tile endpoint serves.
 MAX_ZOOM = 22
+#: Part of every tile's ETag: raise it whenever tiles are drawn differently, so
+#: browsers do not keep tiles in an older style.
+STYLE_REVISION = 1
 
 # --------------------------------------------------------------------------- palettes
 
@@ -349,6 +353,56 @@ class TileIndexCache:
             return len(self._entries)
 
 
+class ImageCache:
+    """LRU of encoded tile images (PNG bytes), bounded by their total size; thread-safe.
+
+    One per open site run (see :class:`webapp.sites.SiteData`): the hillshade
+    is the same for every viewer and every level, and a water-level tile is the
+    same for everyone at that level, so each is drawn and encoded once.
+    """
+
+    def __init__(self, max_bytes: int) -> None:
+        self.max_bytes = max(0, int(max_bytes))
+        self._entries: collections.OrderedDict = collections.OrderedDict()
+        self._bytes = 0
+        self._lock = threading.Lock()
+        self.hits = 0
+        self.misses = 0
+
+    def get(self, key) -> bytes | None:
+        with self._lock:
+            body = self._entries.get(key)
+            if body is None:
+                self.misses += 1
+                return None
+            self._entries.move_to_end(key)
+            self.hits += 1
+            return body
+
+    def put(self, key, body: bytes) -> None:
+        size = len(body)
+        if size > self.max_bytes:
+            return
+        with self._lock:
+            old = self._entries.pop(key, None)
+            if old is not None:
+                self._bytes -= len(old)
+            self._entries[key] = body
+            self._bytes += size
+            while self._bytes > self.max_bytes:
+                _, dropped = self._entries.popitem(last=False)
+                self._bytes -= len(dropped)
+
+    @property
+    def size_bytes(self) -> int:
+        with self._lock:
+            return self._bytes
+
+    def __len__(self) -> int:
+        with self._lock:
+            return len(self._entries)
+
+
 # --------------------------------------------------------------------------- drawing
 
 
@@ -371,6 +425,8 @@ def water_tile(index: np.ndarray, onset_flat: np.ndarray, elevation_flat: np.nda
     if shielded.any():
         stripe = _HATCH[inside][shielded]
         codes[shielded] = np.where(stripe, W_STRIPE, W_WASH).astype(np.uint8)
+    if not codes.any():
+        return BLANK_PNG  # dry ground only: the same transparent tile, not encoded again
     out[inside] = codes
     return encode_palette_png(out.reshape(TILE, TILE), WATER_PLTE, WATER_TRNS)
 

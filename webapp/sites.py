@@ -15,12 +15,14 @@ the flood. :class:`SiteCache` keeps the most recently used sites open.
 from __future__ import annotations
 
 import collections
+import dataclasses
 import functools
 import math
 import os
 import shutil
 import sqlite3
 import threading
+import weakref
 from pathlib import Path
 from typing import Any
 
@@ -29,6 +31,7 @@ import pyproj
 
 from analysis import SCREENING_CAUTION
 from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
+from analysis.flood import SpillResult
 from analysis.stage import checked_level
 from analysis.units import ACRE_FOOT_M3, VerticalUnit
 from webapp import arrays, db, layout, render
@@ -38,6 +41,8 @@ CRS84 = pyproj.CRS("OGC:CRS84")
 OUTLET_KINDS = ("edge", "nodata", "file")
 #: Most points of a stage chart.
 CHART_POINTS = 240
+#: Encoded map tiles kept per open site run, in bytes (see render.ImageCache).
+TILE_IMAGE_BYTES = 48 * 2**20
 
 
 class SiteNotReady(SillmarkError):
@@ -102,6 +107,14 @@ class Registry:
         self.data = Path(data_dir)
         self.db_path = Path(db_path)
         self.config = config
+        # One connection held open for the server's life keeps SQLite's WAL and
+        # shared-memory index in place between requests (each request's own
+        # connection would otherwise checkpoint and delete them on closing), and
+        # lets the server go on reading its metadata if the data folder turns
+        # read-only under it.
+        self._keeper = db.connect(self.db_path)
+        self._keeper.execute("SELECT count(*) FROM settings").fetchone()
+        weakref.finalize(self, self._keeper.close)
 
     # -- reading ------------------------------------------------------------
 
@@ -470,6 +483,36 @@ class _LRU:
         return len(self._d)
 
 
+#: Routes kept per open site run for the asset tables (they do not depend on the level).
+ASSET_ROUTES = 1024
+
+
+class RememberingRoutes(SpillResult):
+    """The same :class:`~analysis.flood.SpillResult` (its arrays shared, not copied), whose
+    :meth:`route` remembers the last ``capacity`` routes it found.
+
+    A cell's route and controlling sill depend on the result only, not on the
+    water level, so the asset table at each new level of the stage control
+    reuses them instead of walking every asset's route again.
+    """
+
+    @classmethod
+    def of(cls, result: SpillResult, capacity: int = ASSET_ROUTES) -> "RememberingRoutes":
+        made = cls(**{f.name: getattr(result, f.name) for f in dataclasses.fields(result)})
+        object.__setattr__(made, "_routes", _LRU(capacity))  # the dataclass is frozen
+        return made
+
+    def route(self, row: int, col: int):
+        key = (int(row), int(col))
+        found = self._routes.get(key)
+        if found is None:
+            found = super().route(row, col)
+            found.rows.setflags(write=False)  # shared by every later caller
+            found.cols.setflags(write=False)
+            self._routes.put(key, found)
+        return found
+
+
 class SiteData:
     """One analysed site (one run) open in the server, with its caches."""
 
@@ -496,7 +539,9 @@ class SiteData:
         self.elevation_flat = self.dem.elevation.reshape(-1)
         self.depth_bounds = render.depth_bounds(self.unit.value)
         self._levels = _LRU(level_cache)
+        self.images = render.ImageCache(TILE_IMAGE_BYTES)
         self._asset_tables = _LRU(64)
+        self._routed = RememberingRoutes.of(self.result)
         self._what_ifs = _LRU(32)
         self._lock = threading.RLock()
         self._engine_lock = threading.Lock()
@@ -832,7 +877,7 @@ class SiteData:
         cache_key = (key, float(level))
         table = self._asset_tables.get(cache_key)
         if table is None:
-            table = assess_assets(assets, self.dem, self.result, level)
+            table = assess_assets(assets, self.dem, self._routed, level)
             self._asset_tables.put(cache_key, table)
         return table
 

@@ -3,7 +3,11 @@
 in the site's vertical unit). Drawing is in :mod:`webapp.render`.
 
 Add ``?run=<id>`` (the page does) to let browsers keep a tile: the run id
-changes whenever the site's results do.
+changes whenever the site's results do. Every tile carries an ``ETag`` made
+from the run, the layer, the level and the tile address (no drawing needed),
+so a browser that asks again with ``If-None-Match`` gets ``304 Not Modified``
+at once; drawn tiles are kept encoded per open site run
+(:class:`webapp.render.ImageCache`), so a tile many viewers ask for is drawn once.
 """
 
 from __future__ import annotations
@@ -19,14 +23,27 @@ from webapp.sites import parse_level
 bp = Blueprint("tiles", __name__, url_prefix="/tiles")
 
 
-def _png(body: bytes, run_id: int) -> Response:
-    response = Response(body, mimetype="image/png")
+def _headers(response: Response, run_id: int, etag: str) -> Response:
     asked = request.args.get("run")
     if asked is not None and asked == str(run_id):
         response.headers["Cache-Control"] = f"public, max-age={int(current_app.config['TILE_MAX_AGE'])}"
     else:
         response.headers["Cache-Control"] = "no-cache"
+    response.set_etag(etag)
     return response
+
+
+def _tile(data, key: tuple, draw) -> Response:
+    """The tile ``key`` of the open site ``data``: 304 if the browser has it, else from the
+    image cache, else drawn by ``draw()`` and kept."""
+    etag = "-".join(str(part) for part in (render.STYLE_REVISION, data.site_id, data.run_id) + key)
+    if request.if_none_match.contains(etag):
+        return _headers(Response(status=304), data.run_id, etag)
+    body = data.images.get(key)
+    if body is None:
+        body = draw()
+        data.images.put(key, body)
+    return _headers(Response(body, mimetype="image/png"), data.run_id, etag)
 
 
 def _check_tile(z: int, x: int, y: int) -> None:
@@ -39,14 +56,18 @@ def _check_tile(z: int, x: int, y: int) -> None:
 def hillshade(site_id: int, z: int, x: int, y: int):
     _check_tile(z, x, y)
     _, data = open_site(site_id)
-    index = services().tiles.get(data.grid, z, x, y)
-    if index is None:
-        return _png(render.BLANK_PNG, data.run_id)
-    bounds = data.summary.get("lonlat_bounds") or [0, 0, 0, 0]
-    lat = 0.5 * (bounds[1] + bounds[3])
-    level = render.shade_level_for(z, lat, float(data.summary.get("cell_metres") or 1.0),
-                                   len(data.pyramid))
-    return _png(render.shade_tile(index, data.pyramid, data.tints, level, data.dem.cols), data.run_id)
+
+    def draw() -> bytes:
+        index = services().tiles.get(data.grid, z, x, y)
+        if index is None:
+            return render.BLANK_PNG
+        bounds = data.summary.get("lonlat_bounds") or [0, 0, 0, 0]
+        lat = 0.5 * (bounds[1] + bounds[3])
+        level = render.shade_level_for(z, lat, float(data.summary.get("cell_metres") or 1.0),
+                                       len(data.pyramid))
+        return render.shade_tile(index, data.pyramid, data.tints, level, data.dem.cols)
+
+    return _tile(data, ("hillshade", z, x, y), draw)
 
 
 @bp.get("/<int:site_id>/<level>/<int:z>/<int:x>/<int:y>.png")
@@ -54,11 +75,15 @@ def water(site_id: int, level: str, z: int, x: int, y: int):
     _check_tile(z, x, y)
     h = parse_level(level)
     _, data = open_site(site_id)
-    index = services().tiles.get(data.grid, z, x, y)
-    if index is None:
-        return _png(render.BLANK_PNG, data.run_id)
-    body = render.water_tile(index, data.onset_flat, data.elevation_flat, h, data.depth_bounds)
-    return _png(body, data.run_id)
+
+    def draw() -> bytes:
+        index = services().tiles.get(data.grid, z, x, y)
+        if index is None:
+            return render.BLANK_PNG
+        return render.water_tile(index, data.onset_flat, data.elevation_flat, h, data.depth_bounds)
+
+    # The level as the float32 the tile is drawn at: "47.5" and "47.50" are one tile.
+    return _tile(data, (repr(float(h)), z, x, y), draw)
 
 
 def warm(data, cache, zooms: int) -> int:
