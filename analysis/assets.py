@@ -33,6 +33,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pyproj
 
+from analysis.dem import MAX_ABS_ELEVATION, crs_name_refusal, gdal_path_refusal
 from analysis.geojson import CRS84, geojson_crs
 from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from analysis.flood import OUTLET_CODE, SpillResult, priority_flood
@@ -603,8 +604,9 @@ def _source_text(source: Any) -> tuple[str, str, str]:
         path = os.fsdecode(path)
     name = os.path.basename(path)
     label = f"'{name}'"
-    if path.lower().startswith("/vsi") or "://" in path:
-        raise InvalidAssets(f"the asset path {path!r} is a virtual or remote path; give a local file")
+    refusal = gdal_path_refusal(path, "the asset file")
+    if refusal is not None:
+        raise InvalidAssets(refusal)
     if not os.path.exists(path):
         raise InvalidAssets(f"the asset file {label} does not exist; check the path")
     if not os.path.isfile(path):
@@ -866,6 +868,9 @@ def _key(props: dict, wanted: str) -> str | None:
 
 
 def _geojson_crs(obj: dict, label: str) -> pyproj.CRS:
+    refusal = crs_name_refusal(obj, label)
+    if refusal is not None:
+        raise InvalidAssets(refusal)
     return geojson_crs(obj, label, InvalidAssets)
 
 
@@ -1379,6 +1384,11 @@ def _height(height: Any) -> float:
     if not math.isfinite(h) or h <= 0:
         raise InvalidParameter(
             f"the height must be a positive finite number (how much to raise the sill), not {height!r}"
+        )
+    if h > MAX_ABS_ELEVATION:
+        raise InvalidParameter(
+            f"the height {h:g} is more than any sill could be raised by (at most "
+            f"{MAX_ABS_ELEVATION:g} in the site's vertical unit); give the height of the works"
         )
     return h
 

@@ -20,6 +20,7 @@ import dataclasses
 import functools
 import math
 import os
+import re
 import warnings
 from collections.abc import Iterator
 from typing import Any
@@ -50,6 +51,11 @@ DEFAULT_TRANSFORM = Affine(1.0, 0.0, 500_000.0, 0.0, -1.0, 5_000_000.0)
 # Integers up to 2**24 in magnitude are exact in float32 (24-bit significand).
 _FLOAT32_EXACT_INT = 2**24
 _FLOAT32_MAX = float(np.finfo(np.float32).max)
+#: Largest elevation magnitude :func:`read_dem` accepts, in the DEM's vertical unit
+#: (metres or feet): the Earth's surface spans about -11 000 m to +8 850 m
+#: (-36 100 ft to +29 000 ft), so a value beyond 10**8 is a fill code or a wrong
+#: scale (integers up to 2**24, kept exactly, stay below it).
+MAX_ABS_ELEVATION = 100_000_000.0
 
 # GDAL drivers whose files describe data held elsewhere (other files, web
 # services). Sillmark only reads self-contained local rasters, so these are never
@@ -59,8 +65,34 @@ _REFUSED_DRIVERS = frozenset(
         "VRT", "GTI", "DERIVED", "WMS", "WMTS", "WCS", "HTTP", "KMLSUPEROVERLAY",
         "PLMOSAIC", "MRF", "EEDA", "EEDAI", "DAAS", "STACTA", "STACIT", "OGCAPI",
         "NGW", "GDALG",
+        # Labels and headers that name their data file(s) inside them: a label
+        # could name any file the server can read.
+        "PDS", "PDS4", "ISIS2", "ISIS3", "VICAR", "ERS", "FAST", "EIR", "NDF", "MFF",
+        "MFF2", "GenBin", "ISCE", "ROI_PAC", "CEOS", "SAR_CEOS", "ECRGTOC", "RPFTOC",
+        "SAFE", "SENTINEL2", "RS2", "RCM", "TSX", "COASP", "CPG", "DIMAP", "ILWIS",
+        "TIL", "RRASTER", "SDTS", "ESRIC", "Zarr", "AIG",
+        # Containers that may link to other files (HDF5 external links) or run
+        # queries stored in the file (SQLite-based formats).
+        "HDF5", "HDF5Image", "HDF4", "HDF4Image", "BAG", "S102", "S104", "S111",
+        "netCDF", "KEA", "GPKG", "MBTiles", "Rasterlite", "SQLite", "PDF",
+        "GNMFile", "GNMDatabase", "OSM",
     }
 )
+_REFUSED_DRIVERS_UPPER = frozenset(n.upper() for n in _REFUSED_DRIVERS)
+#: GDAL settings for every raster Sillmark opens: GDAL's network file systems
+#: (/vsicurl/, /vsis3/, /vsigs/, /vsiaz/, ... and plain http:// paths) accept
+#: only files with these extensions, and no real file has it, so they fetch
+#: nothing; no retries either. :func:`forbid_remote_access` sets the same for a
+#: whole process (the web server) and its children.
+NO_REMOTE_ACCESS = {
+    "CPL_VSIL_CURL_ALLOWED_EXTENSIONS": ".sillmark-remote-access-is-off",
+    "GDAL_HTTP_MAX_RETRY": "0",
+    "GDAL_HTTP_TIMEOUT": "1",
+}
+#: Path forms GDAL reads as something other than a local file: its virtual file
+#: systems (/vsizip/, /vsicurl/, /vsis3/, ... also with a backslash), URLs, and
+#: driver prefixes such as ``zip:``, ``HDF5:``, ``GTIFF_DIR:`` or ``WMTS:``.
+_GDAL_SPECIAL_PATH = re.compile(r"^\s*(?:[/\\]vsi|[a-z][a-z0-9_+.-]+:)", re.IGNORECASE)
 _REFERENCE_MARKERS = (
     (b"<VRTDataset", "a GDAL virtual raster (VRT)"),
     (b"<GDALTileIndexDataset", "a GDAL tile index"),
@@ -402,8 +434,10 @@ def read_dem(
         The file is missing, empty, not a raster, refers to other data, has
         several bands and no ``band``, has no CRS (and no ``crs``), is rotated,
         sheared or not north-up, has zero or more than ``max_cells`` cells, is
-        entirely nodata, holds integers float32 cannot store exactly or finite
-        floats beyond the float32 range, or cannot be read (damaged or truncated).
+        entirely nodata, holds integers float32 cannot store exactly, finite
+        floats beyond the float32 range or elevations beyond
+        ±:data:`MAX_ABS_ELEVATION`, names other files it is read with (a label
+        or header format), or cannot be read (damaged or truncated).
     InvalidParameter
         ``band``, ``vertical_unit``, ``crs`` or ``max_cells`` is unusable, or
         ``vertical_unit`` contradicts the unit of the CRS's vertical axis.
@@ -478,6 +512,7 @@ def read_dem(
         raw, head.nodata, scale=head.scale, offset=head.offset, hidden=hidden, owned=True,
         label=f"'{name}'",
     )
+    _check_plausible_heights(elevation, f"'{name}'")
     return DEM(
         elevation=elevation,
         transform=head.transform,
@@ -747,6 +782,66 @@ def dem_from_array(
 # opening files (shared with analysis.outlets)
 
 
+def gdal_path_refusal(text: str, what: str = "the file") -> str | None:
+    """Why ``text`` must not be given to GDAL as a path, or None for a plain local path.
+
+    Refused: GDAL virtual and remote file systems (``/vsicurl/``, ``/vsizip/``,
+    ``/vsis3/``, ...), anything with a scheme or driver prefix (``http://``,
+    ``zip://``, ``HDF5:...``), and NUL bytes (C strings end there, so GDAL
+    would open a different path than the one checked).
+    """
+    if "\0" in text:
+        return f"{what} path contains a NUL byte; give the path of a local file"
+    if "://" in text or _GDAL_SPECIAL_PATH.match(text):
+        shown = text if len(text) <= 80 else text[:77] + "..."
+        return (f"{what} path {shown!r} is a GDAL virtual or remote path; give the path of a "
+                "local file (upload or download it first)")
+    return None
+
+
+#: CRS names a GeoJSON ``crs`` member may give: an authority code (``EPSG:32633``,
+#: ``OGC:CRS84``) or its OGC URN (``urn:ogc:def:crs:EPSG::32633``).
+_CRS_NAME = re.compile(r"^(?:urn:ogc:def:crs:[A-Za-z0-9_.-]+:[A-Za-z0-9_.-]*:[A-Za-z0-9_.-]+"
+                       r"|[A-Za-z][A-Za-z0-9_.-]*:{1,2}[A-Za-z0-9_.-]+)$")
+
+
+def crs_name_refusal(obj: Any, label: str) -> str | None:
+    """Why the ``crs`` member of GeoJSON ``obj`` is refused, or None.
+
+    Only authority names are taken: a PROJ string or WKT from a file could name
+    grid or init files (``+nadgrids=...``, ``+init=...``) that PROJ would look for
+    on the server.
+    """
+    member = obj.get("crs") if isinstance(obj, dict) else None
+    if not isinstance(member, dict):
+        return None
+    props = member.get("properties")
+    name = props.get("name") if isinstance(props, dict) else None
+    if not isinstance(name, str) or _CRS_NAME.match(name.strip()):
+        return None
+    shown = name if len(name) <= 60 else name[:57] + "..."
+    return (f"{label} names its CRS as {shown!r}; give an authority name such as "
+            "'EPSG:32633' or 'urn:ogc:def:crs:EPSG::32633'")
+
+
+def forbid_remote_access() -> None:
+    """Turn GDAL's network file systems off for this process and the processes it starts.
+
+    Sets :data:`NO_REMOTE_ACCESS` as GDAL configuration and in the environment
+    (worker processes inherit it), and keeps PROJ from fetching grids.
+    """
+    from rasterio.env import set_gdal_config
+
+    for key, value in NO_REMOTE_ACCESS.items():
+        os.environ[key] = value
+        set_gdal_config(key, value)
+    os.environ["PROJ_NETWORK"] = "OFF"
+    try:
+        pyproj.network.set_network_enabled(False)
+    except AttributeError:  # pragma: no cover - pyproj without the network module
+        pass
+
+
 def _local_file(path: Any, error: type[SillmarkError], what: str) -> str:
     """Check that ``path`` names an existing, non-empty regular local file."""
     try:
@@ -755,11 +850,9 @@ def _local_file(path: Any, error: type[SillmarkError], what: str) -> str:
         raise error(f"{what} must be a file path, got {type(path).__name__}") from None
     if isinstance(text, bytes):
         text = os.fsdecode(text)
-    if text.lower().startswith("/vsi") or "://" in text:
-        raise error(
-            f"{what} path {text!r} is a GDAL virtual or remote path; "
-            "give the path of a local file (upload or download it first)"
-        )
+    refusal = gdal_path_refusal(text, what)
+    if refusal is not None:
+        raise error(refusal)
     name = os.path.basename(text)
     if not os.path.exists(text):
         raise error(f"{what} '{name}' does not exist; check the path")
@@ -774,7 +867,7 @@ def _local_file(path: Any, error: type[SillmarkError], what: str) -> str:
 def _allowed_drivers() -> tuple[str, ...]:
     with rasterio.Env() as env:
         names = env.drivers()
-    return tuple(sorted(n for n in names if n.upper() not in _REFUSED_DRIVERS))
+    return tuple(sorted(n for n in names if n.upper() not in _REFUSED_DRIVERS_UPPER))
 
 
 @contextlib.contextmanager
@@ -792,15 +885,19 @@ def open_local_raster(
             f"{what} '{name}' is a GDAL virtual raster (VRT), which can point to other or "
             f"remote files; convert it to a GeoTIFF first (gdal_translate in.vrt out.tif)"
         )
-    # Report a vertical CRS stored in GeoTIFF keys as part of a compound CRS.
-    env = rasterio.Env(GTIFF_REPORT_COMPD_CS="YES")
+    refusal = gdal_path_refusal(path, what)
+    if refusal is not None:
+        raise error(refusal)
+    # Report a vertical CRS stored in GeoTIFF keys as part of a compound CRS; no network.
+    env = rasterio.Env(GTIFF_REPORT_COMPD_CS="YES", **NO_REMOTE_ACCESS)
     with env:
         try:
             with warnings.catch_warnings():
                 # A file without geotransform is reported by our own checks.
                 warnings.simplefilter("ignore", NotGeoreferencedWarning)
                 src = DatasetReader(path, driver=list(_allowed_drivers()))
-        except (RasterioError, CPLE_BaseError, OSError) as exc:
+        # UnicodeDecodeError: rasterio decodes GeoTIFF CRS citation keys as UTF-8.
+        except (RasterioError, CPLE_BaseError, OSError, UnicodeDecodeError) as exc:
             kind = _reference_kind(path)
             if kind:
                 raise error(
@@ -812,9 +909,35 @@ def open_local_raster(
                 f"give {_ACCEPTED}"
             ) from None
         try:
+            _check_own_files(src, path, error, what)
             yield src
         finally:
             src.close()
+
+
+def _check_own_files(src: DatasetReader, path: str, error: type[SillmarkError], what: str) -> None:
+    """Refuse a raster whose driver reads files other than ``path`` and its own sidecars.
+
+    A sidecar shares the file's name and folder (``site.tif.aux.xml``, ``site.tfw``);
+    anything else (a header naming ``../other/file``) could be any file on the machine.
+    """
+    try:
+        files = list(src.files)
+    except (RasterioError, CPLE_BaseError, OSError):  # pragma: no cover - GDAL lists no files
+        files = [path]
+    own = os.path.realpath(path)
+    folder = os.path.dirname(own)
+    stem = os.path.splitext(os.path.basename(own))[0]
+    for f in files:
+        real = os.path.realpath(f)
+        if real == own:
+            continue
+        if os.path.dirname(real) == folder and os.path.basename(real).startswith(stem + "."):
+            continue
+        raise error(
+            f"{what} '{os.path.basename(path)}' is read together with other files it names "
+            f"({src.driver} format); give a self-contained raster file such as a GeoTIFF"
+        )
 
 
 def _reference_kind(path: str) -> str | None:
@@ -1105,6 +1228,20 @@ def _nodata_mask(raw: np.ndarray, nodata: float | None) -> np.ndarray:
         if math.isinf(value) or abs(value) <= top:
             invalid |= raw == raw.dtype.type(value)
     return invalid
+
+
+def _check_plausible_heights(z: np.ndarray, label: str) -> None:
+    """Refuse elevations no terrain has in any unit Sillmark knows (|z| > MAX_ABS_ELEVATION)."""
+    with np.errstate(invalid="ignore"):
+        lo, hi = float(np.nanmin(z)), float(np.nanmax(z))
+    worst = lo if abs(lo) >= abs(hi) else hi
+    if abs(worst) > MAX_ABS_ELEVATION:
+        r, c = np.unravel_index(int(np.nanargmin(z) if worst == lo else np.nanargmax(z)), z.shape)
+        raise InvalidDEM(
+            f"{label} holds an elevation of {worst:g} (row {r}, col {c}), beyond "
+            f"±{MAX_ABS_ELEVATION:,.0f} in metres or feet; no terrain is that high or deep: "
+            "declare such values as nodata, or check the band's scale"
+        )
 
 
 def _check_exact_in_float32(raw: np.ndarray, invalid: np.ndarray, label: str) -> None:

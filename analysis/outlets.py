@@ -27,7 +27,8 @@ from rasterio.errors import RasterioError
 from rasterio.features import rasterize
 from shapely.geometry import shape as shapely_shape
 
-from analysis.dem import DEM, _local_file, _gdal_reason, _horizontal_part, _to_pyproj, open_local_raster
+from analysis.dem import (DEM, _gdal_reason, _horizontal_part, _local_file, _to_pyproj, crs_name_refusal,
+                          open_local_raster)
 from analysis.geojson import geojson_crs
 from analysis.errors import InvalidOutlets, InvalidParameter
 
@@ -803,6 +804,9 @@ def _single_parts(geom: Any) -> list[Any]:
 
 
 def _geojson_crs(obj: dict, label: str) -> pyproj.CRS:
+    refusal = crs_name_refusal(obj, label)
+    if refusal is not None:
+        raise InvalidOutlets(refusal)
     return geojson_crs(obj, label, InvalidOutlets)
 
 
