@@ -337,7 +337,8 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     serve.add_argument("--host", default="127.0.0.1",
-                       help="address to listen on (default 127.0.0.1: this machine only)")
+                       help="address to listen on (default 127.0.0.1: this machine only; any other "
+                       "address needs $SILLMARK_EDITOR_SECRET)")
     serve.add_argument("--port", type=_port, default=8150, help="port to listen on (default 8150)")
     serve.add_argument(
         "--data", default=None, metavar="DIR",
@@ -356,11 +357,15 @@ _SERVE_DESCRIPTION = (
 )
 _SERVE_EPILOG = (
     _wrap(
-        "The app has no login: keep --host at 127.0.0.1 unless the network it listens on "
-        "is trusted. Every page and script is served by this server; nothing is fetched "
-        "from elsewhere."
+        "By default the app listens on 127.0.0.1 and asks for no sign-in. Any other --host "
+        "needs an access secret chosen by the operator: $SILLMARK_EDITOR_SECRET (upload, "
+        "settings, runs) and optionally $SILLMARK_VIEWER_SECRET (read-only), or "
+        "EDITOR_SECRET / VIEWER_SECRET in the data folder's config.py; without one the "
+        "server refuses to start. Every page and script is served by this server; nothing "
+        "is fetched from elsewhere."
     )
-    + "\n\nexample:\n  sillmark serve --port 8150 --data ~/sillmark-data\n\n"
+    + "\n\nexamples:\n  sillmark serve --port 8150 --data ~/sillmark-data\n"
+    + "  SILLMARK_EDITOR_SECRET=... SILLMARK_VIEWER_SECRET=... sillmark serve --host 0.0.0.0\n\n"
     + _wrap(
         "Screening analysis only, not a hydraulic model; decisions rest with a licensed "
         "engineer or hydrologist and the local codes."
@@ -1281,11 +1286,26 @@ def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress)
     return path
 
 
+def serve_refusal(args: argparse.Namespace) -> str | None:
+    """Why ``sillmark serve`` with ``args`` must not start, or None: a host beyond this
+    machine without an access secret, or unusable secrets (see webapp.auth)."""
+    from webapp import auth
+    from webapp import config as web_config
+
+    options = {"DATA_DIR": args.data} if args.data is not None else {}
+    data_dir = web_config.data_dir_from({**web_config.DEFAULTS, **options})
+    return auth.serving_refusal(args.host, web_config.instance_settings(data_dir, options))
+
+
 def _run_serve(args: argparse.Namespace) -> int:
     import waitress
 
-    from webapp import create_app
+    from webapp import auth, create_app
 
+    refusal = serve_refusal(args)
+    if refusal is not None:
+        print(f"{PROG}: error: {refusal}", file=sys.stderr, flush=True)
+        return EXIT_ERROR
     options = {}
     if args.data is not None:
         options["DATA_DIR"] = args.data
@@ -1294,9 +1314,14 @@ def _run_serve(args: argparse.Namespace) -> int:
     where = f"http://{'[' + args.host + ']' if ':' in args.host else args.host}:{args.port}/"
     print(f"Sillmark {__version__} serving at {where}", flush=True)
     print(f"Data folder: {services.data_dir}", flush=True)
-    if args.host not in ("127.0.0.1", "localhost", "::1"):
-        print(f"{PROG}: warning: listening on {args.host}; the app has no login, so anyone who "
-              "can reach this address can use it", file=sys.stderr, flush=True)
+    found = auth.secrets_in(app.config)
+    if found:
+        roles = "editors and viewers" if auth.VIEWER in found else "editors"
+        print(f"Sign-in required ({roles}): {where}signin", flush=True)
+    if not auth.is_loopback(args.host):
+        print(f"{PROG}: warning: listening on {args.host}; other machines can reach this "
+              "server (with the access secret); the connection is not encrypted, so put it "
+              "behind an HTTPS proxy on an untrusted network", file=sys.stderr, flush=True)
     print("Press Ctrl-C to stop.", flush=True)
     try:
         waitress.serve(app, host=args.host, port=args.port, threads=args.threads,

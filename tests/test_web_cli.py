@@ -78,12 +78,16 @@ def test_serve_starts_waitress_on_localhost_with_the_demo(monkeypatch, capsys, t
 
 
 def test_serve_warns_when_listening_beyond_this_machine(monkeypatch, capsys, tmp_path):
+    """With an editor secret it starts (the refusal without one: tests/test_web_access.py)."""
     import waitress
 
     monkeypatch.setattr(waitress, "serve", lambda app, **o: None)
     monkeypatch.setitem(web_config.DEFAULTS, "REGISTER_DEMO", False)
+    monkeypatch.setenv("SILLMARK_EDITOR_SECRET", "invented-editor-secret-1")
     assert main(["serve", "--host", "0.0.0.0", "--port", "8151", "--data", str(tmp_path / "d")]) == 0
-    assert "no login" in capsys.readouterr().err
+    captured = capsys.readouterr()
+    assert "other machines can reach this server" in captured.err
+    assert "Sign-in required (editors)" in captured.out
 
 
 def test_the_real_demo_site_is_analysed_with_the_edge_and_the_river(tmp_path):

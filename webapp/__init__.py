@@ -3,7 +3,8 @@
 :func:`create_app` builds the app: configuration (defaults, then the
 instance's ``config.py`` in the data folder, then the test dictionary), the
 SQLite metadata, the job runner and the four blueprints (pages, api, tiles,
-uploads). Every response carries a Content-Security-Policy that allows
+uploads), and the sign-in of :mod:`webapp.auth` when the operator has set
+access secrets. Every response carries a Content-Security-Policy that allows
 requests to this origin only.
 """
 
@@ -96,6 +97,9 @@ def create_app(test_config: dict | None = None) -> Flask:
         Settings applied last (over the defaults and the instance config),
         e.g. ``{"DATA_DIR": tmp, "JOB_RUNNER": "inline", "REGISTER_DEMO": False}``.
     """
+    from analysis.dem import forbid_remote_access
+
+    forbid_remote_access()  # GDAL fetches nothing over the network in this process or its workers
     settings = dict(_config.DEFAULTS)
     early = dict(test_config or {})
     data_dir = _config.data_dir_from({**settings, **early})
@@ -109,6 +113,7 @@ def create_app(test_config: dict | None = None) -> Flask:
     )
     app.config.update(settings)
     app.config.from_pyfile(_config.INSTANCE_CONFIG, silent=True)
+    _config.access_secrets_from_env(app.config)
     if test_config:
         app.config.update(test_config)
     app.config["DATA_DIR"] = str(data_dir)
@@ -121,7 +126,9 @@ def create_app(test_config: dict | None = None) -> Flask:
     # Werkzeug refuses bodies beyond this before a view reads them (multipart forms);
     # raw uploads are counted as they stream (see webapp.uploads).
     app.config["MAX_CONTENT_LENGTH"] = int(app.config["MAX_UPLOAD_BYTES"]) + 1024 * 1024
-    app.config.setdefault("SESSION_COOKIE_SAMESITE", "Lax")
+    # Flask's own default is None (no SameSite attribute), so setdefault would keep it.
+    if not app.config.get("SESSION_COOKIE_SAMESITE"):
+        app.config["SESSION_COOKIE_SAMESITE"] = "Lax"
     app.config["SESSION_COOKIE_HTTPONLY"] = True
     app.json.sort_keys = False
 
@@ -139,8 +146,9 @@ def create_app(test_config: dict | None = None) -> Flask:
         runner=runner,
     )
 
-    from webapp import api, pages, tiles, uploads
+    from webapp import api, auth, pages, tiles, uploads
 
+    auth.init_app(app)  # first: its check runs before every other hook
     app.register_blueprint(pages.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(tiles.bp)
@@ -182,6 +190,24 @@ def _install_handlers(app: Flask) -> None:
             return _error(403, "the page's form token is missing or out of date; reload the page and try again")
         return None
 
+    @app.before_request
+    def check_level_argument():
+        """Every ``level`` a request carries (URL part or ``?level=``), checked in one place:
+        a finite number, and not absurdly far from the site's ground."""
+        view_args = request.view_args or {}
+        text = view_args.get("level", request.args.get("level"))
+        if text is None:
+            return None
+        from webapp.sites import parse_level
+
+        level = parse_level(text)
+        site_id = view_args.get("site_id")
+        if site_id is not None:
+            refusal = level_refusal(get_db(), int(site_id), float(level))
+            if refusal is not None:
+                return _error(400, refusal)
+        return None
+
     @app.after_request
     def security_headers(response):
         response.headers.setdefault("Content-Security-Policy", app.config["CONTENT_SECURITY_POLICY"])
@@ -216,6 +242,40 @@ def _error(status: int, message: str):
         response.status_code = status
         return response
     return render_template("error.html", status=status, message=message), status
+
+
+#: A level farther than this many times the site's elevation range (at least 1 unit)
+#: from its ground is refused as a mistake (the same rule as ``sillmark stage``).
+LEVEL_MARGIN_FACTOR = 10.0
+
+
+def level_refusal(conn, site_id: int, level: float) -> str | None:
+    """Why ``level`` makes no sense for the site's current results, or None.
+
+    Levels more than :data:`LEVEL_MARGIN_FACTOR` times the elevation range above
+    the highest ground or below the lowest are refused (1e30, a level in the
+    wrong unit). A site without results is left to the view (409).
+    """
+    from analysis.units import VerticalUnit
+
+    if not 0 < site_id < 2**63:  # no such site in SQLite; the view answers 404
+        return None
+    row = conn.execute("SELECT r.summary FROM sites s JOIN runs r ON r.id = s.current_run "
+                       "WHERE s.id = ?", (site_id,)).fetchone()
+    summary = db.loads(row["summary"], {}) if row is not None else {}
+    lo, hi = summary.get("elevation_min"), summary.get("elevation_max")
+    if lo is None or hi is None:
+        return None
+    margin = LEVEL_MARGIN_FACTOR * max(hi - lo, 1.0)
+    if lo - margin <= level <= hi + margin:
+        return None
+    try:
+        sym = VerticalUnit.parse(summary.get("vertical_unit") or "m").symbol
+    except SillmarkError:  # pragma: no cover - a summary always names its unit
+        sym = ""
+    return (f"the water level {level:g} {sym} is far from this site's ground ({lo:.2f} to "
+            f"{hi:.2f} {sym}); give a level between {lo - margin:.2f} and {hi + margin:.2f} "
+            f"{sym} (in the site's vertical unit)")
 
 
 def csrf_token() -> str:

@@ -67,13 +67,52 @@ DEFAULTS: dict = {
     # Its attribution as its provider asks for it (required with a URL).
     "BASE_LAYER_ATTRIBUTION": None,
     "BASE_LAYER_NAME": "Online base map",
+    # Access secrets chosen by the operator (see webapp.auth). With none set the
+    # app is open, as suits 127.0.0.1; `sillmark serve` refuses any other host
+    # without EDITOR_SECRET. With one set, every request needs a sign-in: the
+    # viewer secret lets one look (GET), the editor secret also lets one change
+    # things. Also $SILLMARK_VIEWER_SECRET and $SILLMARK_EDITOR_SECRET.
+    "VIEWER_SECRET": None,
+    "EDITOR_SECRET": None,
+    # Pause after a wrong secret, in seconds, growing with each further wrong
+    # attempt from the same address (up to SIGNIN_MAX_DELAY).
+    "SIGNIN_DELAY": 0.5,
+    "SIGNIN_MAX_DELAY": 5.0,
+    # How long a sign-in lasts, in seconds.
+    "SIGNIN_LIFETIME": 12 * 3600,
 }
+
+#: Environment variables that may hold the access secrets when the configuration does not.
+SECRET_ENV = {"VIEWER_SECRET": "SILLMARK_VIEWER_SECRET", "EDITOR_SECRET": "SILLMARK_EDITOR_SECRET"}
 
 
 def data_dir_from(config: dict) -> Path:
     """The data folder: DATA_DIR, else $SILLMARK_DATA, else ~/.sillmark."""
     value = config.get("DATA_DIR") or os.environ.get(DATA_ENV) or "~/.sillmark"
     return Path(value).expanduser().resolve()
+
+
+def instance_settings(data_dir: Path, test_config: dict | None = None) -> dict:
+    """The settings an app on ``data_dir`` would have, without building it.
+
+    Defaults, then the data folder's ``config.py``, then ``test_config``, then
+    the access secrets from the environment where none is configured: what
+    ``sillmark serve`` checks before it starts anything.
+    """
+    from flask import Config
+
+    config = Config(str(data_dir), DEFAULTS)
+    config.from_pyfile(INSTANCE_CONFIG, silent=True)
+    config.update(test_config or {})
+    return access_secrets_from_env(dict(config))
+
+
+def access_secrets_from_env(config: dict) -> dict:
+    """``config`` with VIEWER_SECRET / EDITOR_SECRET taken from the environment where unset."""
+    for key, env in SECRET_ENV.items():
+        if not config.get(key) and os.environ.get(env):
+            config[key] = os.environ[env]
+    return config
 
 
 def installation_secret(data_dir: Path) -> str:
