@@ -501,8 +501,6 @@ def test_a_full_disk_fails_the_run_with_a_message_about_space_and_keeps_the_resu
 
 
 @needs_mounts
-@pytest.mark.xfail(strict=True, reason="webapp/uploads.py lets ENOSPC from the upload stream "
-                   "through as a 500; it should refuse the upload with a message about space")
 def test_an_upload_to_a_full_disk_is_refused_with_a_message(tmp_path):
     got = scenario("full-disk-upload", tmp_path)
     assert got["left_in_uploads"] == []

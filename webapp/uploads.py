@@ -14,6 +14,7 @@ progress), with its name in the ``X-File-Name`` header (percent-encoded);
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 import re
 from pathlib import Path
@@ -24,6 +25,7 @@ from werkzeug.exceptions import RequestEntityTooLarge
 
 from analysis.errors import InvalidParameter, SillmarkError
 from webapp import get_db, layout, services
+from webapp.db import StorageError
 from webapp.access import site_row
 from webapp.sites import SiteNotReady
 
@@ -39,34 +41,43 @@ def _received(field: str, *, limit: int, required: bool = True):
     Yields (None, None) when ``required`` is False and no file was sent.
     """
     folder = layout.uploads_dir(services().data_dir)
-    folder.mkdir(parents=True, exist_ok=True)
     path = folder / (layout.new_name(".bin") + ".part")
     try:
-        if request.mimetype == "multipart/form-data":
-            upload = request.files.get(field)
-            if upload is None or not upload.filename:
-                if not required:
-                    yield None, None
-                    return
-                raise InvalidParameter(f"no file in the upload; send it in the form field '{field}'")
-            upload.save(path)
-            name = upload.filename
-            if os.path.getsize(path) > limit:
-                raise RequestEntityTooLarge()
-        else:
-            if request.content_length is not None and request.content_length > limit:
-                raise RequestEntityTooLarge()
-            name = unquote(request.headers.get("X-File-Name", "")) or request.args.get("name", "upload")
-            total = 0
-            with open(path, "xb") as fh:
-                while True:
-                    chunk = request.stream.read(CHUNK)
-                    if not chunk:
-                        break
-                    total += len(chunk)
-                    if total > limit:
-                        raise RequestEntityTooLarge()
-                    fh.write(chunk)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            if request.mimetype == "multipart/form-data":
+                upload = request.files.get(field)
+                if upload is None or not upload.filename:
+                    if not required:
+                        yield None, None
+                        return
+                    raise InvalidParameter(
+                        f"no file in the upload; send it in the form field '{field}'")
+                upload.save(path)
+                name = upload.filename
+                if os.path.getsize(path) > limit:
+                    raise RequestEntityTooLarge()
+            else:
+                if request.content_length is not None and request.content_length > limit:
+                    raise RequestEntityTooLarge()
+                name = (unquote(request.headers.get("X-File-Name", ""))
+                        or request.args.get("name", "upload"))
+                total = 0
+                with open(path, "xb") as fh:
+                    while True:
+                        chunk = request.stream.read(CHUNK)
+                        if not chunk:
+                            break
+                        total += len(chunk)
+                        if total > limit:
+                            raise RequestEntityTooLarge()
+                        fh.write(chunk)
+        except OSError as exc:
+            # A full disk or a read-only data folder: say so, keep nothing.
+            problem = _storage_problem(exc, folder)
+            if problem is None:
+                raise
+            raise problem from None
         if os.path.getsize(path) == 0:
             raise InvalidParameter(f"the uploaded file '{_shown(name)}' is empty (0 bytes)")
         try:
@@ -76,12 +87,34 @@ def _received(field: str, *, limit: int, required: bool = True):
     finally:
         path.unlink(missing_ok=True)
         # A reader may have renamed the file to give it its proper extension.
-        for sibling in folder.glob(path.stem + ".*"):
-            sibling.unlink(missing_ok=True)
+        if folder.is_dir():
+            for sibling in folder.glob(path.stem + ".*"):
+                sibling.unlink(missing_ok=True)
+
+
+#: errno values that mean the disk, or the user's quota on it, is full.
+_NO_SPACE = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG}
+
+
+def _storage_problem(exc: OSError, folder: Path) -> StorageError | None:
+    """The clear error for an upload the data folder could not take, or None."""
+    if isinstance(exc, StorageError):
+        return exc
+    if exc.errno in _NO_SPACE:
+        return StorageError(
+            f"the disk holding Sillmark's data folder ({folder.parent}) is full, so the upload "
+            "was not kept; free some space and try again (nothing was changed)")
+    if exc.errno in (errno.EROFS, errno.EACCES, errno.EPERM):
+        return StorageError(
+            f"Sillmark cannot write to its data folder ({folder.parent}): it is read-only, or "
+            "its permissions forbid writing, so the upload was not kept (nothing was changed)")
+    return None
 
 
 def _shown(name: str) -> str:
-    return os.path.basename(str(name).replace("\\", "/"))[:80] or "upload"
+    """The user's file name as messages show it: its last part, printable characters only."""
+    base = os.path.basename(str(name).replace("\\", "/"))
+    return "".join(ch for ch in base if ch.isprintable())[:80] or "upload"
 
 
 def _in_user_terms(exc: SillmarkError, path: Path, name: str) -> SillmarkError:
@@ -102,11 +135,31 @@ def _with_suffix(path: Path, name: str, allowed: tuple[str, ...], default: str) 
     return target
 
 
+#: Fewest rows and columns of a site DEM: the map's hillshade needs a slope across
+#: and along the grid, which one row or column does not have.
+MIN_SITE_SIDE = 2
+
+
+def _check_map_size(path: Path) -> None:
+    """Refuse a DEM too narrow to map (read from its header; no pixels are read)."""
+    from analysis.dem import read_dem_grid
+    from analysis.errors import InvalidDEM
+
+    grid = read_dem_grid(path)
+    if grid.rows < MIN_SITE_SIDE or grid.cols < MIN_SITE_SIDE:
+        raise InvalidDEM(
+            f"'{path.name}' is {grid.rows} × {grid.cols} cells; a site needs at least "
+            f"{MIN_SITE_SIDE} × {MIN_SITE_SIDE} cells to be mapped (a single row or column has "
+            "no ground to either side); give the DEM of an area"
+        )
+
+
 @bp.post("/dem")
 def dem():
     """A new DEM: read it, keep it as a draft site, say what was found (201)."""
     svc = services()
     with _received("dem", limit=int(current_app.config["MAX_UPLOAD_BYTES"])) as (path, name):
+        _check_map_size(path)
         site_id = svc.registry.register_upload(get_db(), path, name)
     row = svc.registry.site(get_db(), site_id)
     described = svc.registry.describe(get_db(), row)
@@ -147,6 +200,30 @@ def settings(site_id: int):
     return response
 
 
+ASSET_SUFFIXES = (".csv", ".tsv", ".txt", ".geojson", ".json")
+
+
+def _starts_with_brace(path: Path) -> bool:
+    with open(path, "rb") as fh:
+        return fh.read(64).lstrip().startswith(b"{")
+
+
+def _check_assets_on_dem(path: Path, name: str, dem) -> None:
+    """Refuse an asset table none of whose points lies on the DEM (most often: another CRS)."""
+    from analysis.assets import InvalidAssets, read_assets
+    from analysis.export import crs_label
+
+    placed = read_assets(path, dem)
+    if len(placed) and all(a.status == "outside DEM" for a in placed):
+        west, south, east, north = dem.bounds
+        raise InvalidAssets(
+            f"none of the {len(placed)} assets lies on the DEM ({west:.6g} to {east:.6g} east, "
+            f"{south:.6g} to {north:.6g} north in {crs_label(dem)}); check the coordinates: x/y "
+            "columns must be in the DEM's CRS, lon/lat columns and GeoJSON in WGS 84 degrees "
+            "unless the GeoJSON names its CRS"
+        )
+
+
 @bp.post("/sites/<int:site_id>/assets")
 def assets(site_id: int):
     """An asset table (CSV or GeoJSON points) for the site: becomes its active asset set (201)."""
@@ -156,6 +233,8 @@ def assets(site_id: int):
         raise SiteNotReady("add assets once the site's analysis has finished")
     data = svc.cache.get(site_id, row["current_run"])
     with _received("assets", limit=int(current_app.config["MAX_SIDE_FILE_BYTES"])) as (path, name):
+        path = _with_suffix(path, name, ASSET_SUFFIXES, ".geojson" if _starts_with_brace(path) else ".csv")
+        _check_assets_on_dem(path, name, data.dem)
         added = svc.registry.add_assets(get_db(), site_id, data.dem, Path(path), name)
     response = jsonify(added)
     response.status_code = 201
