@@ -208,6 +208,21 @@ def test_a_viewer_reads_everything_and_changes_nothing(guarded):
     assert viewer.get(f"/api/sites/{site_id}/status").get_json()["run"]["id"] == runs_before
 
 
+def test_pages_offer_viewers_no_editing_and_editors_all_of_it(guarded):
+    app, site_id, _ = guarded
+    viewer, editor = Visitor(app, VIEWER_SECRET), Visitor(app, EDITOR_SECRET)
+    for url in ("/", f"/sites/{site_id}"):
+        seen = viewer.get(url).get_data(as_text=True)
+        assert 'href="/sites/new"' not in seen, url
+        assert f'href="/sites/{site_id}/settings"' not in seen, url
+        assert ">viewer</a>" in seen
+        mine = editor.get(url).get_data(as_text=True)
+        assert 'href="/sites/new"' in mine and ">editor</a>" in mine, url
+    page = viewer.get(f"/sites/{site_id}").get_data(as_text=True)
+    assert 'id="assets-form" class="inline-upload" hidden' in page
+    assert "need the editor secret" in page
+
+
 def test_an_editor_reads_and_changes(guarded):
     app, site_id, run_id = guarded
     editor = Visitor(app, EDITOR_SECRET)
