@@ -115,9 +115,9 @@ def test_the_invented_site_has_the_depressions_it_was_built_with(site):
 # --------------------------------------------------------------------------- rasters
 
 RASTERS = {
-    # file: (dtype, nodata, TIFF predictor: 3 floating point, 2 horizontal differencing)
-    "onset_stage.tif": ("float32", "nan", "3"),
-    "fill_depth.tif": ("float32", "nan", "3"),
+    # file: (dtype, nodata, TIFF predictor: 2 horizontal differencing, for every type)
+    "onset_stage.tif": ("float32", "nan", "2"),
+    "fill_depth.tif": ("float32", "nan", "2"),
     "depression_id.tif": ("int32", -1, "2"),
     "flood_tree.tif": ("uint8", 0, "2"),
 }
