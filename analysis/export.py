@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import contextlib
 import csv
+import dataclasses
 import datetime
 import json
 import math
@@ -961,6 +962,74 @@ def write_summary(
     if final.name not in names:
         names.append(final.name)
     return _write_json(final, _summary(result, dem, outlets, names))
+
+
+@dataclasses.dataclass(frozen=True)
+class RunSummary:
+    """What a folder's ``summary.json`` says about the analysis that wrote it."""
+
+    path: Path
+    dem: str
+    shape: tuple[int, int]
+    transform: tuple[float, ...]
+    vertical_unit: str
+    crs: str
+    connectivity: int
+    outlet_sources: tuple[str, ...]
+    outlet_cells: int
+
+    def dem_file(self, *, instead: str = "give the DEM file") -> str:
+        """The DEM's path, checked to exist; InvalidParameter if it cannot be found from here.
+
+        ``instead`` ends the message with what the caller can do instead.
+        """
+        if not self.dem:
+            raise InvalidParameter(f"{self.path} records no DEM file; {instead}")
+        if not os.path.isfile(self.dem):
+            raise InvalidParameter(
+                f"the DEM recorded in {self.path} ({self.dem}) is not found from here; run "
+                f"from the folder 'sillmark analyse' ran in, or {instead}"
+            )
+        return self.dem
+
+    def same_grid(self, shape: tuple[int, int], transform) -> bool:
+        """Whether a DEM's shape and affine transform are the analysed grid's."""
+        tr = transform
+        return (tuple(shape) == self.shape
+                and (tr.a, tr.b, tr.c, tr.d, tr.e, tr.f) == self.transform)
+
+
+def read_summary(folder: str | os.PathLike) -> RunSummary:
+    """Read the ``summary.json`` that :func:`write_summary` (or the tiled engine) wrote.
+
+    Raises InvalidParameter when the folder has none or it is not one Sillmark wrote.
+    """
+    path = Path(folder) / "summary.json"
+    if not path.is_file():
+        raise InvalidParameter(
+            f"the folder {Path(folder)} holds no summary.json; give a DEM file or a folder "
+            "written by 'sillmark analyse'"
+        )
+    try:
+        summary = json.loads(path.read_text(encoding="utf-8"))
+        grid = summary["grid"]
+        epsg = grid["crs"]["epsg"]
+        return RunSummary(
+            path=path,
+            dem=str(summary["dem"] or ""),
+            shape=(int(grid["rows"]), int(grid["cols"])),
+            transform=tuple(float(v) for v in grid["transform"]),
+            vertical_unit=str(grid["vertical_unit"]),
+            crs=f"EPSG:{int(epsg)}" if epsg is not None else str(grid["crs"]["wkt"]),
+            connectivity=int(summary["connectivity"]),
+            outlet_sources=tuple(str(v) for v in summary["outlets"]["sources"]),
+            outlet_cells=int(summary["outlets"]["cell_count"]),
+        )
+    except (ValueError, KeyError, TypeError, UnicodeDecodeError, AttributeError):
+        raise InvalidParameter(
+            f"{path} is not a summary written by 'sillmark analyse'; run the analysis again, "
+            "or give the DEM file"
+        ) from None
 
 
 # --------------------------------------------------------------------------- all

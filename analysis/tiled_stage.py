@@ -39,7 +39,6 @@ from __future__ import annotations
 
 import dataclasses
 import decimal
-import json
 import math
 import os
 import types
@@ -237,39 +236,19 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
         The DEM is missing, has another grid, or no longer gives the stored results.
     """
     out = Path(folder)
-    summary_path = out / "summary.json"
-    needed = ("summary.json", "onset_stage.tif", "fill_depth.tif", "depressions.csv")
-    for name in needed:
+    summary = export.read_summary(out)
+    for name in ("onset_stage.tif", "fill_depth.tif", "depressions.csv"):
         if not (out / name).is_file():
             raise InvalidParameter(
                 f"the folder {out} lacks {name}; give a folder written by 'sillmark analyse' "
                 "(run it again if it was interrupted)"
             )
-    try:
-        summary = json.loads(summary_path.read_text(encoding="utf-8"))
-        dem_text = summary["dem"]
-        grid_info = summary["grid"]
-        rows, cols = int(grid_info["rows"]), int(grid_info["cols"])
-        transform = [float(v) for v in grid_info["transform"]]
-        unit = str(grid_info["vertical_unit"])
-        epsg = grid_info["crs"]["epsg"]
-        crs = f"EPSG:{int(epsg)}" if epsg is not None else str(grid_info["crs"]["wkt"])
-        connectivity = int(summary["connectivity"])
-        sources = tuple(str(v) for v in summary["outlets"]["sources"])
-        outlet_count = int(summary["outlets"]["cell_count"])
-    except (ValueError, KeyError, TypeError, UnicodeDecodeError):
-        raise InvalidParameter(
-            f"{summary_path} is not a summary written by 'sillmark analyse'; run the analysis "
-            "again, or give the DEM file"
-        ) from None
-    if not dem_text or not os.path.isfile(dem_text):
-        raise InvalidDEM(
-            f"the DEM recorded in {summary_path} ({dem_text}) is not found from here; run from "
-            "the folder 'sillmark analyse' ran in, or give the DEM file"
-        )
+    rows, cols = summary.shape
+    dem_text = summary.dem_file()
+    unit, crs, connectivity = summary.vertical_unit, summary.crs, summary.connectivity
+    sources, outlet_count = summary.outlet_sources, summary.outlet_cells
     grid = read_dem_grid(dem_text, band=band, vertical_unit=unit, crs=crs)
-    tr = grid.transform
-    if grid.shape != (rows, cols) or [tr.a, tr.b, tr.c, tr.d, tr.e, tr.f] != transform:
+    if not summary.same_grid(grid.shape, grid.transform):
         raise InvalidDEM(
             f"the DEM {dem_text} no longer has the grid of the analysis in {out}; run "
             "'sillmark analyse' again"

@@ -840,43 +840,20 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
             f"is a DEM; the analysis in {folder} keeps its own settings: drop "
             f"{'it' if len(given) == 1 else 'them'}, or give the DEM file as SOURCE"
         )
-    summary_path = folder / "summary.json"
-    if not summary_path.is_file():
-        raise InvalidParameter(
-            f"the folder {folder} holds no summary.json; give a DEM file or a folder "
-            "written by 'sillmark analyse'"
-        )
-    try:
-        summary = json.loads(summary_path.read_text(encoding="utf-8"))
-        dem_text = summary["dem"]
-        grid = summary["grid"]
-        rows, cols = int(grid["rows"]), int(grid["cols"])
-        transform = [float(v) for v in grid["transform"]]
-        unit = str(grid["vertical_unit"])
-        epsg = grid["crs"]["epsg"]
-        crs = f"EPSG:{int(epsg)}" if epsg is not None else str(grid["crs"]["wkt"])
-        connectivity = int(summary["connectivity"])
-        sources = [str(v) for v in summary["outlets"]["sources"]]
-    except (ValueError, KeyError, TypeError, UnicodeDecodeError):
-        raise InvalidParameter(
-            f"{summary_path} is not a summary written by 'sillmark analyse'; run the "
-            "analysis again, or give the DEM file as SOURCE"
-        ) from None
-    if not dem_text:
-        raise InvalidParameter(f"{summary_path} records no DEM file; give the DEM file as SOURCE")
-    if not os.path.isfile(dem_text):
-        raise InvalidParameter(
-            f"the DEM recorded in {summary_path} ({dem_text}) is not found from here; run "
-            "from the folder 'sillmark analyse' ran in, or give the DEM file as SOURCE"
-        )
+    from analysis.export import read_summary
+
+    summary = read_summary(folder)
+    rows, cols = summary.shape
+    dem_text = summary.dem_file(instead="give the DEM file as SOURCE")
+    unit, crs, sources = summary.vertical_unit, summary.crs, list(summary.outlet_sources)
+    connectivity = summary.connectivity
 
     progress.start("read")
     options = {}
     if args.max_cells is not None:
         options["max_cells"] = args.max_cells
     dem = read_dem(dem_text, band=args.band, vertical_unit=unit, crs=crs, **options)
-    tr = dem.transform
-    if dem.shape != (rows, cols) or [tr.a, tr.b, tr.c, tr.d, tr.e, tr.f] != transform:
+    if not summary.same_grid(dem.shape, dem.transform):
         raise InvalidDEM(
             f"the DEM {dem_text} no longer has the grid of the analysis in {folder}; "
             "run 'sillmark analyse' again, or give the DEM file as SOURCE"
