@@ -53,7 +53,7 @@ import numpy as np
 from numba import njit
 
 from analysis._flood_kernels import OUTLET, _find
-from analysis._tiled_kernels import _perimeter_index, _perimeter_position, _tile_of
+from analysis._tile_layout import _across_tiles, _grid_perimeters, _perimeter_index
 
 #: Where a way out leads (kinds of a descent's end).
 KIND_NONE = -1
@@ -432,7 +432,7 @@ def _resolve_spills(n_dep, a_level, a_exit, a_kind, a_val, adj_area, adj_dep, ad
     Inputs are the tiles' summaries (:func:`summarise_tile`) concatenated, with
     depression pieces turned into depression ids and compact areas into global
     area numbers 0..A-1 (-1 for none); perimeter arrays in the perimeter order
-    of :mod:`analysis._tiled_kernels`, tile ``t``'s from ``poff[t]`` (all empty
+    of :mod:`analysis._tile_layout`, tile ``t``'s from ``poff[t]`` (all empty
     for the in-memory engine). Returns the spill cell (global flat index) and
     ``spills_to`` of every depression, index 0 unused.
     """
@@ -447,58 +447,40 @@ def _resolve_spills(n_dep, a_level, a_exit, a_kind, a_val, adj_area, adj_dep, ad
     n_xadj = 0
     if n_per > 0:
         # Across tile edges: one dry area, lower ground, or a depression at the level.
-        for ti in range(tile_rows):
-            r0 = ti * tile
-            r1 = min(rows, r0 + tile)
-            for tj in range(tile_cols):
-                c0 = tj * tile
-                c1 = min(cols, c0 + tile)
-                h = r1 - r0
-                w = c1 - c0
-                t = ti * tile_cols + tj
-                for lr in range(h):
-                    step = 1 if (lr == 0 or lr == h - 1) else max(1, w - 1)
-                    lc = 0
-                    while lc < w:
-                        r = r0 + lr
-                        c = c0 + lc
-                        j = poff[t] + _perimeter_position(lr, lc, h, w)
-                        lc += step
-                        p_cell[j] = r * cols + c
-                        ax = p_area[j]
-                        if ax < 0:
-                            continue
-                        lx = p_level[j]
-                        for k in range(n_dirs):
-                            d = dirs[k]
-                            rr = r + drow[d]
-                            cc = c + dcol[d]
-                            if rr < 0 or rr >= rows or cc < 0 or cc >= cols:
-                                continue
-                            if rr // tile == ti and cc // tile == tj:
-                                continue
-                            t2, lr2, lc2, h2, w2 = _tile_of(rr, cc, tile, tile_cols, rows, cols)
-                            j2 = poff[t2] + _perimeter_position(lr2, lc2, h2, w2)
-                            ly = p_level[j2]
-                            if ly < lx:
-                                if ly < cross_level[j]:
-                                    cross_level[j] = ly
-                                    cross_dir[j] = d
-                            elif ly == lx:
-                                ay = p_area[j2]
-                                if ay >= 0:
-                                    x = _find(forest, ax)
-                                    y = _find(forest, ay)
-                                    if x < y:
-                                        forest[y] = x
-                                    elif y < x:
-                                        forest[x] = y
-                                elif p_dep[j2] > 0:
-                                    xadj = _grown(xadj, n_xadj)
-                                    xadj[n_xadj, 0] = ax
-                                    xadj[n_xadj, 1] = p_dep[j2]
-                                    xadj[n_xadj, 2] = r * cols + c
-                                    n_xadj += 1
+        p_cell, _ = _grid_perimeters(tile, tile_rows, tile_cols, rows, cols)
+        for j in range(n_per):
+            ax = p_area[j]
+            if ax < 0:
+                continue
+            r = p_cell[j] // cols
+            c = p_cell[j] - r * cols
+            lx = p_level[j]
+            for k in range(n_dirs):
+                d = dirs[k]
+                rr, cc = _across_tiles(r, c, d, tile, rows, cols, drow, dcol)
+                if rr < 0:
+                    continue
+                _, j2 = _perimeter_index(rr * cols + cc, poff, tile, tile_cols, rows, cols)
+                ly = p_level[j2]
+                if ly < lx:
+                    if ly < cross_level[j]:
+                        cross_level[j] = ly
+                        cross_dir[j] = d
+                elif ly == lx:
+                    ay = p_area[j2]
+                    if ay >= 0:
+                        x = _find(forest, ax)
+                        y = _find(forest, ay)
+                        if x < y:
+                            forest[y] = x
+                        elif y < x:
+                            forest[x] = y
+                    elif p_dep[j2] > 0:
+                        xadj = _grown(xadj, n_xadj)
+                        xadj[n_xadj, 0] = ax
+                        xadj[n_xadj, 1] = p_dep[j2]
+                        xadj[n_xadj, 2] = r * cols + c
+                        n_xadj += 1
     root = np.empty(n_areas, dtype=np.int64)
     for a in range(n_areas):
         root[a] = _find(forest, a)

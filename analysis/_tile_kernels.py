@@ -50,6 +50,7 @@ from analysis._flood_kernels import (
     _ordered_key,
     _ring_unrolled,
 )
+from analysis._tile_layout import _across_tiles, _grid_perimeters, _push_link
 
 #: Flood-tree state of a tile seed until step 3 gives it a parent.
 SEED = 12
@@ -298,79 +299,45 @@ def _links(level, state, label, node_base, tile_rows, tile_cols, tile_size,
     """Edges between touching perimeter cells of different tiles.
 
     The level of such an edge is the higher of the two cells' elevations (a
-    perimeter cell's local level is its elevation). Each pair is listed once.
+    perimeter cell's local level is its elevation). Each pair is listed once,
+    perimeter cells in the order of :func:`analysis._tile_layout._grid_perimeters`.
     """
     n_dirs = dirs.shape[0]
-    cap = 1024
-    eu = np.empty(cap, dtype=np.int64)
-    ev = np.empty(cap, dtype=np.int64)
-    elevel = np.empty(cap, dtype=np.float32)
-    ecu = np.empty(cap, dtype=np.int64)
-    ecv = np.empty(cap, dtype=np.int64)
+    eu = np.empty(1024, dtype=np.int64)
+    ev = np.empty(1024, dtype=np.int64)
+    elevel = np.empty(1024, dtype=np.float32)
+    ecu = np.empty(1024, dtype=np.int64)
+    ecv = np.empty(1024, dtype=np.int64)
     m = 0
-    for ti in range(tile_rows):
-        r0 = ti * tile_size
-        r1 = min(rows, r0 + tile_size)
-        for tj in range(tile_cols):
-            c0 = tj * tile_size
-            c1 = min(cols, c0 + tile_size)
-            h = r1 - r0
-            w = c1 - c0
-            for lr in range(h):
-                step = 1 if (lr == 0 or lr == h - 1) else max(1, w - 1)
-                lc = 0
-                while lc < w:
-                    r = r0 + lr
-                    c = c0 + lc
-                    p = (r + 1) * width + c + 1
-                    lc += step
-                    tp = state[p]
-                    if tp == BLOCKED or tp == UNVISITED:
-                        continue
-                    for k in range(n_dirs):
-                        d = dirs[k]
-                        rr = r + drow[d]
-                        cc = c + dcol[d]
-                        if rr < 0 or rr >= rows or cc < 0 or cc >= cols:
-                            continue
-                        if rr // tile_size == ti and cc // tile_size == tj:
-                            continue
-                        q = p + drow[d] * width + dcol[d]
-                        if q < p:
-                            continue  # listed from the other side
-                        tq = state[q]
-                        if tq == BLOCKED or tq == UNVISITED:
-                            continue
-                        if m == cap:
-                            cap *= 2
-                            eu = _resize_i64(eu, cap)
-                            ev = _resize_i64(ev, cap)
-                            elevel = _resize_f32(elevel, cap)
-                            ecu = _resize_i64(ecu, cap)
-                            ecv = _resize_i64(ecv, cap)
-                        lp = label[p]
-                        lq = label[q]
-                        eu[m] = 0 if lp == 0 else node_base[ti * tile_cols + tj] + lp
-                        ev[m] = 0 if lq == 0 else node_base[(rr // tile_size) * tile_cols + cc // tile_size] + lq
-                        zp = level[p]
-                        zq = level[q]
-                        elevel[m] = zp if zp > zq else zq
-                        ecu[m] = p
-                        ecv[m] = q
-                        m += 1
+    cells, tiles = _grid_perimeters(tile_size, tile_rows, tile_cols, rows, cols)
+    for j in range(cells.shape[0]):
+        r = cells[j] // cols
+        c = cells[j] - r * cols
+        p = (r + 1) * width + c + 1
+        tp = state[p]
+        if tp == BLOCKED or tp == UNVISITED:
+            continue
+        for k in range(n_dirs):
+            d = dirs[k]
+            rr, cc = _across_tiles(r, c, d, tile_size, rows, cols, drow, dcol)
+            if rr < 0:
+                continue
+            q = p + drow[d] * width + dcol[d]
+            if q < p:
+                continue  # listed from the other side
+            tq = state[q]
+            if tq == BLOCKED or tq == UNVISITED:
+                continue
+            lp = label[p]
+            lq = label[q]
+            zp = level[p]
+            zq = level[q]
+            eu, ev, elevel, ecu, ecv = _push_link(
+                m, eu, ev, elevel, ecu, ecv, 0 if lp == 0 else node_base[tiles[j]] + lp,
+                0 if lq == 0 else node_base[(rr // tile_size) * tile_cols + cc // tile_size] + lq, zp if zp > zq else zq, p, q,
+            )
+            m += 1
     return eu[:m], ev[:m], elevel[:m], ecu[:m], ecv[:m]
-
-
-def _resize_i64(values, size):
-    out = np.empty(size, dtype=np.int64)
-    out[: values.shape[0]] = values
-    return out
-
-
-def _resize_f32(values, size):
-    out = np.empty(size, dtype=np.float32)
-    out[: values.shape[0]] = values
-    return out
 
 
 def _solve_graph(n_nodes, eu, ev, elevel, ecu, ecv):
@@ -484,8 +451,6 @@ def _finish_tile(r0, r1, c0, c1, level, state, label, base, lam, seeds, own_cell
 _is_perimeter = njit(inline="always", cache=True)(_is_perimeter)
 _local_to_global = njit(inline="always", cache=True)(_local_to_global)
 _rehash = njit(cache=True)(_rehash)
-_resize_i64 = njit(cache=True)(_resize_i64)
-_resize_f32 = njit(cache=True)(_resize_f32)
 flood_tile_arrays = njit(nogil=True, cache=True)(_flood_tile_arrays)
 _flood_tile_arrays = flood_tile_arrays
 flood_tile = njit(nogil=True, cache=True)(_flood_tile)

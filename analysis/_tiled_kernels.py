@@ -5,9 +5,8 @@ and finishes it with :func:`analysis._tile_kernels.finish_tile`, both on the
 tile's own padded arrays (width ``lw = w + 2``, local index
 ``li = (lr + 1) * lw + lc + 1``). The loops here do the rest:
 
-- the *perimeter* of a tile, its cells in a fixed order (first row, then the
-  first and last cell of every middle row, then the last row), which is all the
-  client ever sees of a tile;
+- (the *perimeter* of a tile, its cells in a fixed order, which is all the
+  client ever sees of a tile, is laid out by :mod:`analysis._tile_layout`);
 - the links between touching perimeter cells of neighbouring tiles, in the very
   order the in-memory engine lists them (so both solve the same graph the same
   way);
@@ -17,7 +16,7 @@ tile's own padded arrays (width ``lw = w + 2``, local index
   totals accumulated in raster order.
 
 Spill points are summarised per tile and resolved on the client by
-:mod:`analysis._spill_kernels`, which uses the perimeter order defined here.
+:mod:`analysis._spill_kernels`, in the same perimeter order.
 
 Global cells are addressed by their flat index ``g = row * cols + col``. The
 kernels trust their inputs.
@@ -29,49 +28,14 @@ import numpy as np
 from numba import njit
 
 from analysis._flood_kernels import BLOCKED, UNVISITED, _find, _grow_int32
+from analysis._tile_layout import (  # noqa: F401  (perimeter_cells: used by analysis.tiled)
+    _across_tiles,
+    _grid_perimeters,
+    _perimeter_index,
+    _push_link,
+    perimeter_cells,
+)
 
-
-
-def _perimeter_count(h, w):
-    """Number of perimeter cells of an ``h x w`` tile."""
-    if h == 1:
-        return w
-    m = 1 if w == 1 else 2
-    return 2 * w + (h - 2) * m
-
-
-def _perimeter_position(lr, lc, h, w):
-    """Position of perimeter cell ``(lr, lc)`` of an ``h x w`` tile in perimeter order."""
-    if lr == 0:
-        return lc
-    m = 1 if w == 1 else 2
-    if lr == h - 1:
-        return w + (h - 2) * m + lc
-    return w + (lr - 1) * m + (0 if lc == 0 else 1)
-
-
-def perimeter_cells(h: int, w: int) -> tuple[np.ndarray, np.ndarray]:
-    """Rows and columns (tile-local) of the perimeter of an ``h x w`` tile, in order."""
-    if h == 1:
-        return np.zeros(w, dtype=np.int64), np.arange(w, dtype=np.int64)
-    middle = np.arange(1, h - 1, dtype=np.int64)
-    if w == 1:
-        mid_r, mid_c = middle, np.zeros(h - 2, dtype=np.int64)
-    else:
-        mid_r = np.repeat(middle, 2)
-        mid_c = np.tile(np.array([0, w - 1], dtype=np.int64), h - 2)
-    rr = np.concatenate([np.zeros(w, dtype=np.int64), mid_r, np.full(w, h - 1, dtype=np.int64)])
-    cc = np.concatenate([np.arange(w, dtype=np.int64), mid_c, np.arange(w, dtype=np.int64)])
-    return rr, cc
-
-
-def _tile_of(r, c, tile, tile_cols, rows, cols):
-    """Tile index, tile-local row and column, and tile shape of global cell ``(r, c)``."""
-    ti = r // tile
-    tj = c // tile
-    h = min(rows, (ti + 1) * tile) - ti * tile
-    w = min(cols, (tj + 1) * tile) - tj * tile
-    return ti * tile_cols + tj, r - ti * tile, c - tj * tile, h, w
 
 
 def _perimeter_links(pstate, plevel, plabel, poff, node_base, tile_rows, tile_cols, tile,
@@ -83,80 +47,42 @@ def _perimeter_links(pstate, plevel, plabel, poff, node_base, tile_rows, tile_co
     cells as global padded indices (width ``width``).
     """
     n_dirs = dirs.shape[0]
-    cap = 1024
-    eu = np.empty(cap, dtype=np.int64)
-    ev = np.empty(cap, dtype=np.int64)
-    elevel = np.empty(cap, dtype=np.float32)
-    ecu = np.empty(cap, dtype=np.int64)
-    ecv = np.empty(cap, dtype=np.int64)
+    eu = np.empty(1024, dtype=np.int64)
+    ev = np.empty(1024, dtype=np.int64)
+    elevel = np.empty(1024, dtype=np.float32)
+    ecu = np.empty(1024, dtype=np.int64)
+    ecv = np.empty(1024, dtype=np.int64)
     m = 0
-    for ti in range(tile_rows):
-        r0 = ti * tile
-        r1 = min(rows, r0 + tile)
-        for tj in range(tile_cols):
-            c0 = tj * tile
-            c1 = min(cols, c0 + tile)
-            h = r1 - r0
-            w = c1 - c0
-            t = ti * tile_cols + tj
-            for lr in range(h):
-                step = 1 if (lr == 0 or lr == h - 1) else max(1, w - 1)
-                lc = 0
-                while lc < w:
-                    r = r0 + lr
-                    c = c0 + lc
-                    jp = poff[t] + _perimeter_position(lr, lc, h, w)
-                    lc += step
-                    tp = pstate[jp]
-                    if tp == BLOCKED or tp == UNVISITED:
-                        continue
-                    p = (r + 1) * width + c + 1
-                    for k in range(n_dirs):
-                        d = dirs[k]
-                        rr = r + drow[d]
-                        cc = c + dcol[d]
-                        if rr < 0 or rr >= rows or cc < 0 or cc >= cols:
-                            continue
-                        if rr // tile == ti and cc // tile == tj:
-                            continue
-                        q = p + drow[d] * width + dcol[d]
-                        if q < p:
-                            continue  # listed from the other side
-                        t2, lr2, lc2, h2, w2 = _tile_of(rr, cc, tile, tile_cols, rows, cols)
-                        jq = poff[t2] + _perimeter_position(lr2, lc2, h2, w2)
-                        tq = pstate[jq]
-                        if tq == BLOCKED or tq == UNVISITED:
-                            continue
-                        if m == cap:
-                            cap *= 2
-                            eu = _resize_i64(eu, cap)
-                            ev = _resize_i64(ev, cap)
-                            elevel = _resize_f32(elevel, cap)
-                            ecu = _resize_i64(ecu, cap)
-                            ecv = _resize_i64(ecv, cap)
-                        lp = plabel[jp]
-                        lq = plabel[jq]
-                        eu[m] = 0 if lp == 0 else node_base[t] + lp
-                        ev[m] = 0 if lq == 0 else node_base[t2] + lq
-                        zp = plevel[jp]
-                        zq = plevel[jq]
-                        elevel[m] = zp if zp > zq else zq
-                        ecu[m] = p
-                        ecv[m] = q
-                        m += 1
+    cells, tiles = _grid_perimeters(tile, tile_rows, tile_cols, rows, cols)
+    for jp in range(cells.shape[0]):  # jp: position in the concatenated perimeters
+        tp = pstate[jp]
+        if tp == BLOCKED or tp == UNVISITED:
+            continue
+        r = cells[jp] // cols
+        c = cells[jp] - r * cols
+        p = (r + 1) * width + c + 1
+        for k in range(n_dirs):
+            d = dirs[k]
+            rr, cc = _across_tiles(r, c, d, tile, rows, cols, drow, dcol)
+            if rr < 0:
+                continue
+            q = p + drow[d] * width + dcol[d]
+            if q < p:
+                continue  # listed from the other side
+            t2, jq = _perimeter_index(rr * cols + cc, poff, tile, tile_cols, rows, cols)
+            tq = pstate[jq]
+            if tq == BLOCKED or tq == UNVISITED:
+                continue
+            lp = plabel[jp]
+            lq = plabel[jq]
+            zp = plevel[jp]
+            zq = plevel[jq]
+            eu, ev, elevel, ecu, ecv = _push_link(
+                m, eu, ev, elevel, ecu, ecv, 0 if lp == 0 else node_base[tiles[jp]] + lp,
+                0 if lq == 0 else node_base[t2] + lq, zp if zp > zq else zq, p, q,
+            )
+            m += 1
     return eu[:m], ev[:m], elevel[:m], ecu[:m], ecv[:m]
-
-
-def _resize_i64(values, size):
-    out = np.empty(size, dtype=np.int64)
-    out[: values.shape[0]] = values
-    return out
-
-
-def _resize_f32(values, size):
-    out = np.empty(size, dtype=np.float32)
-    out[: values.shape[0]] = values
-    return out
 
 
 def _label_tile(level, state, label, elevation, h, w, back):
@@ -252,44 +178,28 @@ def _union_pieces(pcomp, poff, piece_off, tile_rows, tile_cols, tile, rows, cols
     tiles that are both in a piece joins the two pieces.
     """
     n_dirs = dirs.shape[0]
-    for ti in range(tile_rows):
-        r0 = ti * tile
-        r1 = min(rows, r0 + tile)
-        for tj in range(tile_cols):
-            c0 = tj * tile
-            c1 = min(cols, c0 + tile)
-            h = r1 - r0
-            w = c1 - c0
-            t = ti * tile_cols + tj
-            for lr in range(h):
-                step = 1 if (lr == 0 or lr == h - 1) else max(1, w - 1)
-                lc = 0
-                while lc < w:
-                    r = r0 + lr
-                    c = c0 + lc
-                    a = pcomp[poff[t] + _perimeter_position(lr, lc, h, w)]
-                    lc += step
-                    if a <= 0:
-                        continue
-                    for k in range(n_dirs):
-                        d = dirs[k]
-                        rr = r + drow[d]
-                        cc = c + dcol[d]
-                        if rr < 0 or rr >= rows or cc < 0 or cc >= cols:
-                            continue
-                        if rr // tile == ti and cc // tile == tj:
-                            continue
-                        t2, lr2, lc2, h2, w2 = _tile_of(rr, cc, tile, tile_cols, rows, cols)
-                        b = pcomp[poff[t2] + _perimeter_position(lr2, lc2, h2, w2)]
-                        if b <= 0:
-                            continue
-                        x = _find(forest, piece_off[t] + a - 1)
-                        y = _find(forest, piece_off[t2] + b - 1)
-                        if x != y:
-                            if x < y:
-                                forest[y] = x
-                            else:
-                                forest[x] = y
+    cells, tiles = _grid_perimeters(tile, tile_rows, tile_cols, rows, cols)
+    for jp in range(cells.shape[0]):
+        a = pcomp[jp]
+        if a <= 0:
+            continue
+        r = cells[jp] // cols
+        c = cells[jp] - r * cols
+        for k in range(n_dirs):
+            rr, cc = _across_tiles(r, c, dirs[k], tile, rows, cols, drow, dcol)
+            if rr < 0:
+                continue
+            t2, jq = _perimeter_index(rr * cols + cc, poff, tile, tile_cols, rows, cols)
+            b = pcomp[jq]
+            if b <= 0:
+                continue
+            x = _find(forest, piece_off[tiles[jp]] + a - 1)
+            y = _find(forest, piece_off[t2] + b - 1)
+            if x != y:
+                if x < y:
+                    forest[y] = x
+                else:
+                    forest[x] = y
 
 
 def _roots(forest):
@@ -297,14 +207,6 @@ def _roots(forest):
     for k in range(forest.shape[0]):
         out[k] = _find(forest, k)
     return out
-
-
-def _perimeter_index(g, poff, tile, tile_cols, rows, cols):
-    """Tile and position in the concatenated perimeters of global perimeter cell ``g``."""
-    r = g // cols
-    c = g % cols
-    t, lr, lc, h, w = _tile_of(r, c, tile, tile_cols, rows, cols)
-    return t, poff[t] + _perimeter_position(lr, lc, h, w)
 
 
 def _accumulate(ids, level, elevation, row_areas, count, area, volume):
@@ -326,11 +228,6 @@ def _accumulate(ids, level, elevation, row_areas, count, area, volume):
             volume[f] += (np.float64(level[r, c]) - np.float64(elevation[r, c])) * a
 
 
-_perimeter_position = njit(inline="always", cache=True)(_perimeter_position)
-_tile_of = njit(inline="always", cache=True)(_tile_of)
-_resize_i64 = njit(cache=True)(_resize_i64)
-_resize_f32 = njit(cache=True)(_resize_f32)
-_perimeter_index = njit(cache=True)(_perimeter_index)
 perimeter_links = njit(cache=True)(_perimeter_links)
 label_tile = njit(nogil=True, cache=True)(_label_tile)
 union_pieces = njit(cache=True)(_union_pieces)
