@@ -515,19 +515,9 @@ def _write_stage_table_csv(site: ResultFolder, table: StageTable, path: Path) ->
 
 
 @dataclasses.dataclass(frozen=True)
-class TiledStageFiles:
-    """What :func:`write_tiled_stage_results` wrote (as :class:`analysis.stage_export.StageFiles`)."""
-
-    levels: tuple[TiledLevelFiles, ...]
-    table: StageTable | None
-    table_path: Path | None
-
-    @property
-    def paths(self) -> list[Path]:
-        out = [p for level in self.levels for p in level.paths]
-        if self.table_path is not None:
-            out.append(self.table_path)
-        return out
+class TiledStageFiles(stage_export.StageFiles):
+    """What :func:`write_tiled_stage_results` wrote: a :class:`analysis.stage_export.StageFiles`
+    whose levels are :class:`TiledLevelFiles`."""
 
 
 def write_tiled_stage_results(
