@@ -50,7 +50,8 @@ digital elevation models on desktops or clusters. Computers & Geosciences 96,
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, types
+from numba.typed import Dict
 
 from analysis._flood_kernels import OUTLET, _find
 from analysis._tile_layout import _across_tiles, _grid_perimeters, _perimeter_index
@@ -612,27 +613,29 @@ def _resolve_spills(n_dep, a_level, a_exit, a_kind, a_val, adj_area, adj_dep, ad
 
 
 def _route_through_sill(stage, ids, tree, row, col, sill_row, sill_col, drow, dcol, dirs,
-                        seen, limit):
+                        limit):
     """Cells of the route from ``(row, col)``, inside a depression, through its spill cell.
 
     Breadth-first inside the depression from the start to a cell next to the
     spill cell; the spill cell; breadth-first over the cells at the spill
     elevation outside the depression to the nearest way out (an outlet, or a
     cell with a lower neighbour); its lowest neighbour (first in direction
-    order); then the flood tree to an outlet. ``seen`` is a zeroed uint8 array
-    of ``rows * cols`` cells (scratch). Returns rows, cols and the index of
-    the spill cell on the route, or empty arrays if the spill cell does not
-    touch the depression.
+    order); then the flood tree to an outlet. The searches remember the cells
+    they reach (and the direction they came from) in a hash map, so a route
+    costs in proportion to the cells searched, not to the grid. Returns rows,
+    cols and the index of the spill cell on the route, or empty arrays if the
+    spill cell does not touch the depression.
     """
     rows, cols = stage.shape
     n_dirs = dirs.shape[0]
     dep = ids[row, col]
     top = stage[row, col]
     queue = np.empty(64, dtype=np.int64)
+    seen = Dict.empty(key_type=types.int64, value_type=types.uint8)
 
     # 1. Inside the depression to a cell next to the spill cell.
     start = row * cols + col
-    seen[start] = 255
+    seen[start] = np.uint8(255)
     queue[0] = start
     head = 0
     tail = 1
@@ -656,8 +659,8 @@ def _route_through_sill(stage, ids, tree, row, col, sill_row, sill_col, drow, dc
             if rr < 0 or rr >= rows or cc < 0 or cc >= cols:
                 continue
             y = rr * cols + cc
-            if seen[y] == 0 and ids[rr, cc] == dep:
-                seen[y] = k + 1
+            if y not in seen and ids[rr, cc] == dep:
+                seen[y] = np.uint8(k + 1)
                 queue = _grown(queue, tail)
                 queue[tail] = y
                 tail += 1
@@ -667,7 +670,7 @@ def _route_through_sill(stage, ids, tree, row, col, sill_row, sill_col, drow, dc
 
     # 2. At the spill elevation, outside the depression, to the nearest way out.
     sill = sill_row * cols + sill_col
-    seen[sill] = 255
+    seen[sill] = np.uint8(255)
     queue[0] = sill
     head = 0
     tail = 1
@@ -698,8 +701,8 @@ def _route_through_sill(stage, ids, tree, row, col, sill_row, sill_col, drow, dc
             if rr < 0 or rr >= rows or cc < 0 or cc >= cols:
                 continue
             y = rr * cols + cc
-            if seen[y] == 0 and stage[rr, cc] == top and ids[rr, cc] != dep:
-                seen[y] = k + 1
+            if y not in seen and stage[rr, cc] == top and ids[rr, cc] != dep:
+                seen[y] = np.uint8(k + 1)
                 queue = _grown(queue, tail)
                 queue[tail] = y
                 tail += 1

@@ -264,7 +264,7 @@ class SpillResult:
                 self.onset_stage, self.depression_id, self.flood_tree, np.int64(row),
                 np.int64(col), np.int64(t.spill_row[dep - 1]), np.int64(t.spill_col[dep - 1]),
                 DIRECTION_ROW, DIRECTION_COL, _directions(self.connectivity),
-                np.zeros(rows * cols, dtype=np.uint8), np.int64(rows * cols + 1),
+                np.int64(rows * cols + 1),
             )
             if k < 0:
                 raise InvalidParameter(
