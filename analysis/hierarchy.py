@@ -513,12 +513,42 @@ def depression_hierarchy(
         )
     unit = VerticalUnit.parse(unit)
     z = result.elevation
-    rows, cols = z.shape
-    areas = _checked_row_areas(row_areas, rows)
+    areas = _checked_row_areas(row_areas, z.shape[0])
     _check_transform(transform)
     table = result.depressions
-    n_dep = len(table)
-    dep = result.depression_id
+    return _hierarchy_of_cells(
+        z, result.depression_id, table.spill_elevation, table.spill_row, table.spill_col,
+        connectivity=int(result.connectivity), areas=areas, unit=unit, transform=transform,
+    )
+
+
+def _hierarchy_of_cells(
+    z: np.ndarray,
+    dep: np.ndarray,
+    spill_elevation: np.ndarray,
+    spill_row: np.ndarray,
+    spill_col: np.ndarray,
+    *,
+    connectivity: int,
+    areas: np.ndarray,
+    unit: VerticalUnit,
+    transform: "Affine | None",
+    origin: tuple[int, int] = (0, 0),
+) -> DepressionHierarchy:
+    """The body of :func:`depression_hierarchy`, on plain arrays of one window of a grid.
+
+    ``z`` and ``dep`` are the window's elevations and depression ids (1..n,
+    every cell of each of those depressions inside the window), ``spill_*`` the
+    n depressions' spill elevations and spill cells in grid coordinates,
+    ``areas`` the window's row areas (checked). ``origin`` is the window's first
+    row and column in the grid: pit and spill cells and their x, y are given in
+    grid coordinates (the same numbers as for the whole grid); the regions,
+    ``shape`` and ``row_areas`` stay the window's. For
+    :mod:`analysis.tiled_hierarchy`, which runs it window by window.
+    """
+    rows, cols = z.shape
+    row0, col0 = int(origin[0]), int(origin[1])
+    n_dep = int(spill_elevation.shape[0])
 
     # Depression cells in ascending (elevation, row-major index) order.
     # One contiguous copy: the engine's id raster is a view into a padded grid,
@@ -549,7 +579,7 @@ def depression_hierarchy(
     padded = (cells // cols + 1) * width + (cells % cols + 1)
     rank = np.full((rows + 2) * width, -1, dtype=np.int32)
     rank[padded] = np.arange(m, dtype=np.int32)
-    offsets = _neighbour_offsets(result.connectivity, width)
+    offsets = _neighbour_offsets(connectivity, width)
 
     (owner, lo_old, internal_old, parent_old, alias_old, pit_pos_old, spill_cell_old,
      n_old, top_of_dep) = _k.sweep(padded, zs, rank, offsets, dep_sorted, np.int64(n_dep))
@@ -579,14 +609,15 @@ def depression_hierarchy(
     spill = np.empty(n, dtype=np.float32)
     spill[~is_top] = lo[parent[~is_top] - 1]
     top_ids = new_id[tops_old]  # top node of each depression, in depression order
-    spill[top_ids - 1] = table.spill_elevation
+    spill[top_ids - 1] = spill_elevation
     pit_cell = cells[pit_pos_old[old]]
     pit_elevation = zs[pit_pos_old[old]]
     spill_flat_pad = spill_cell_old[old]
-    spill_row = spill_flat_pad // width - 1
-    spill_col = spill_flat_pad % width - 1
-    spill_row[top_ids - 1] = table.spill_row
-    spill_col[top_ids - 1] = table.spill_col
+    spill_row_all = spill_flat_pad // width - 1 + row0
+    spill_col_all = spill_flat_pad % width - 1 + col0
+    spill_row_all[top_ids - 1] = spill_row
+    spill_col_all[top_ids - 1] = spill_col
+    spill_row, spill_col = spill_row_all, spill_col_all
     subtree_size = size_old[old].astype(np.int32)
     depression = np.zeros(n, dtype=np.int32)
     for d, top in enumerate(top_ids, start=1):
@@ -629,8 +660,8 @@ def depression_hierarchy(
         depression=depression,
         is_leaf=is_leaf,
         subtree_size=subtree_size,
-        pit_row=(pit_cell // cols).astype(np.int64),
-        pit_col=(pit_cell % cols).astype(np.int64),
+        pit_row=(pit_cell // cols + row0).astype(np.int64),
+        pit_col=(pit_cell % cols + col0).astype(np.int64),
         pit_elevation=pit_elevation.astype(np.float32),
         merge_elevation=np.where(is_leaf, np.float32(np.nan), lo).astype(np.float32),
         spill_elevation=spill,
@@ -648,7 +679,7 @@ def depression_hierarchy(
     return DepressionHierarchy(
         nodes=nodes,
         unit=unit,
-        connectivity=int(result.connectivity),
+        connectivity=int(connectivity),
         shape=(rows, cols),
         row_areas=areas,
         segments=CurveSegments(

@@ -12,7 +12,11 @@
 The files follow the conventions of :mod:`analysis.export` (``# `` comment lines
 before a CSV header, the screening caution in every file, atomic writes) and are
 written by :func:`analysis.export.write_results` next to ``depressions.csv``;
-the ``depression`` column of the node table is the ``id`` of that file.
+the ``depression`` column of the node table is the ``id`` of that file. Each
+file is a head and runs of rows (:func:`csv_head`, :func:`csv_rows`,
+:func:`hierarchy_json_head`, :func:`json_node_texts`), so that
+:mod:`analysis.tiled_hierarchy` writes the same bytes from windows of
+depressions out of core.
 
 Curves
 ------
@@ -38,17 +42,20 @@ precision or the nesting depth. On the demo site: 77 nodes, about 2 300 rows,
 
 from __future__ import annotations
 
+import csv
 import json
 import math
 import os
+from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, TextIO
 
 import numpy as np
 
 from analysis import SCREENING_CAUTION
 from analysis.errors import InvalidParameter
 from analysis.export import (
+    _column_texts,
     atomic_output,
     crs_label,
     horizontal_crs,
@@ -58,9 +65,8 @@ from analysis.export import (
     unit_name,
     unit_suffix,
     wgs84_transformer,
-    write_table_csv,
 )
-from analysis.hierarchy import DepressionHierarchy
+from analysis.hierarchy import DepressionHierarchy, HierarchyTable
 from analysis.units import ACRE_FOOT_M3, VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -73,11 +79,21 @@ __all__ = [
     "HIERARCHY_JSON",
     "MAX_CURVE_POINTS",
     "STEP_ROWS",
+    "csv_head",
+    "csv_rows",
     "curve_columns",
+    "curve_part_columns",
+    "curves_csv_comments",
     "hierarchy_columns",
+    "hierarchy_csv_comments",
+    "hierarchy_json_head",
+    "json_node_texts",
+    "node_table_columns",
+    "write_csv_parts",
     "write_curves_csv",
     "write_hierarchy_csv",
     "write_hierarchy_json",
+    "write_json_parts",
 ]
 
 HIERARCHY_CSV = "depression_hierarchy.csv"
@@ -128,14 +144,13 @@ def _check(hierarchy: DepressionHierarchy, dem: "DEM") -> VerticalUnit:
     return unit
 
 
-def _comment_head(title: str, hierarchy: DepressionHierarchy, dem: "DEM") -> list[str]:
-    unit = hierarchy.unit
+def _comment_head(title: str, unit: VerticalUnit, connectivity: int, dem: "DEM") -> list[str]:
     return [
         f"Sillmark {sillmark_version()} {title}",
         f"CAUTION: {SCREENING_CAUTION}",
         f"vertical unit: {unit.value} ({unit_name(unit)}); areas in m2, volumes in m3",
         f"CRS: {crs_label(dem)}",
-        f"connectivity: {hierarchy.connectivity}",
+        f"connectivity: {connectivity}",
     ]
 
 
@@ -154,7 +169,16 @@ def hierarchy_columns(hierarchy: DepressionHierarchy, dem: "DEM") -> dict[str, n
     ``spill_lat_deg``), ``area_ha`` and, for sites in feet, ``volume_acre_ft``.
     """
     unit = _check(hierarchy, dem)
-    t = hierarchy.nodes
+    return node_table_columns(hierarchy.nodes, unit, dem)
+
+
+def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dict[str, np.ndarray]:
+    """:func:`hierarchy_columns` of a node table (or a run of its rows) in ``unit``.
+
+    Row by row the same values whatever rows the table holds, so the out-of-core
+    writer (:mod:`analysis.tiled_hierarchy`) gives the file of the whole table
+    from its pieces. ``dem`` may be a :class:`~analysis.dem.DEMGrid`.
+    """
     v = unit_suffix(unit)
     h = horizontal_unit_suffix(dem)
     n = len(t)
@@ -205,8 +229,14 @@ def write_hierarchy_csv(hierarchy: DepressionHierarchy, dem: "DEM", path: str | 
     do not exist (a pit's merge elevation, a pit's children).
     """
     cols = hierarchy_columns(hierarchy, dem)
-    v = unit_suffix(hierarchy.unit)
-    comments = _comment_head("depression hierarchy", hierarchy, dem) + [
+    comments = hierarchy_csv_comments(hierarchy.unit, hierarchy.connectivity, dem)
+    return write_csv_parts(path, csv_head(comments, cols), [cols])
+
+
+def hierarchy_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM") -> list[str]:
+    """The ``# `` comment lines of ``depression_hierarchy.csv``."""
+    v = unit_suffix(unit)
+    return _comment_head("depression hierarchy", unit, connectivity, dem) + [
         "one row per node: the pits (is_leaf = true) and the pools formed where pools meet; "
         "ids in post-order (children before their parent)",
         "parent: id of the node this one merges into, 0 = a top (a whole depression of "
@@ -220,7 +250,6 @@ def write_hierarchy_csv(hierarchy: DepressionHierarchy, dem: "DEM", path: str | 
         "pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top; "
         "spill_lon_deg, spill_lat_deg: the spill cell in WGS84 degrees",
     ]
-    return write_table_csv(path, comments, cols)
 
 
 def write_hierarchy_json(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
@@ -232,30 +261,141 @@ def write_hierarchy_json(hierarchy: DepressionHierarchy, dem: "DEM", path: str |
     that read back as the same float32 values; NaN (a pit's merge elevation) is null.
     """
     unit = _check(hierarchy, dem)
-    doc = json.loads(hierarchy.to_json())
-    t = hierarchy.nodes
-    for k, node in enumerate(doc.get("nodes", ())):
-        # float32 columns as their shortest decimals (59.2, not 59.20000076293945),
-        # as in the CSV; each reads back as the same float32.
-        for name in _FLOAT32_FIELDS:
-            node[name] = json_number(getattr(t, name)[k])
+    head = hierarchy_json_head(unit, hierarchy.connectivity, dem, len(hierarchy))
+    return write_json_parts(path, head, [json_node_texts(hierarchy.nodes)])
+
+
+def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_count: int) -> str:
+    """The text of ``depression_hierarchy.json`` before its first node: every
+    member up to ``"nodes":[``, in file order (the node count included)."""
     h = horizontal_unit_suffix(dem)
     units = {name: unit.value for name in _FLOAT32_FIELDS}
     units.update({"spill_x": h, "spill_y": h, "area_m2": "m2", "volume_m3": "m3"})
-    out = {
+    members = {
         "name": "depression_hierarchy",
         "sillmark_version": sillmark_version(),
-        "caution": doc.pop("caution", SCREENING_CAUTION),
+        "caution": SCREENING_CAUTION,
         "crs": crs_label(dem),
         "units": units,
-        **doc,
+        # The members of DepressionHierarchy.to_json, in its order.
+        "vertical_unit": unit.value,
+        "area_unit": "m2",
+        "volume_unit": "m3",
+        "connectivity": int(connectivity),
+        "node_count": int(node_count),
     }
+    return _dumps(members)[:-1] + ',"nodes":['
+
+
+def json_node_texts(t: HierarchyTable) -> Iterator[str]:
+    """Each node of a table as its JSON object text, in id order.
+
+    The object of :meth:`~analysis.hierarchy.HierarchyTable.row` (every column,
+    then ``children``), with the float32 fields (elevations, depth) as their
+    shortest decimals, as in the CSV (59.2, not 59.20000076293945); each reads
+    back as the same float32. NaN is null.
+    """
+    for k in range(len(t)):
+        node = t.row(k + 1)
+        for name in _FLOAT32_FIELDS:
+            node[name] = json_number(getattr(t, name)[k])
+        yield _dumps(node)
+
+
+def _dumps(value) -> str:
+    return json.dumps(value, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+
+
+# --------------------------------------------------------------------------- streamed files
+#
+# Each file is a head, then its body in runs of rows (or nodes); the in-memory
+# writers pass the whole body as one run, the out-of-core writer one run (or a
+# part file) per window of depressions, so both give the same bytes.
+
+
+def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
+    """``# `` comment lines and the header row of a table CSV (as
+    :func:`analysis.export.write_table_csv` writes them)."""
+    lines = "".join(f"# {line}\n" for line in comments)
+    return lines + _csv_text([list(columns)])
+
+
+def csv_rows(columns: dict[str, np.ndarray]) -> str:
+    """The rows of a table CSV, numbers as :func:`analysis.export.write_table_csv`
+    writes them (shortest text that reads back as the same float32 or float64,
+    empty for NaN); empty when the columns are."""
+    arrays = [np.asarray(values) for values in columns.values()]
+    lengths = {len(a) for a in arrays}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
+    if not arrays or not lengths.pop():
+        return ""
+    return _csv_text(zip(*(_column_texts(a) for a in arrays)))
+
+
+def _csv_text(rows) -> str:
+    import io
+
+    buffer = io.StringIO(newline="")
+    csv.writer(buffer, lineterminator="\n").writerows(rows)
+    return buffer.getvalue()
+
+
+def write_csv_parts(path: str | os.PathLike, head: str, parts: Iterable) -> Path:
+    """Write a CSV atomically: ``head``, then each part in order.
+
+    A part is a dict of columns (its rows are written, see :func:`csv_rows`) or
+    the path of a file of rows already written that way (copied as it is).
+    """
+    final = Path(path)
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", newline="", encoding="utf-8") as f:
+            f.write(head)
+            for part in parts:
+                if isinstance(part, dict):
+                    f.write(csv_rows(part))
+                else:
+                    _copy_text(part, f)
+    return final
+
+
+def write_json_parts(path: str | os.PathLike, head: str, parts: Iterable) -> Path:
+    """Write ``depression_hierarchy.json`` atomically: ``head``
+    (:func:`hierarchy_json_head`), the nodes of every part separated by commas,
+    then the closing brackets and a newline.
+
+    A part is an iterable of node texts (:func:`json_node_texts`) or the path of a
+    file holding such texts already joined by commas (copied as it is; an empty
+    file is a part without nodes).
+    """
     final = Path(path)
     with atomic_output(final) as tmp:
         with open(tmp, "x", encoding="utf-8") as f:
-            f.write(json.dumps(out, ensure_ascii=False, allow_nan=False, separators=(",", ":")))
-            f.write("\n")
+            f.write(head)
+            first = True
+            for part in parts:
+                if isinstance(part, (str, os.PathLike)):
+                    if os.path.getsize(part) == 0:
+                        continue
+                    if not first:
+                        f.write(",")
+                    _copy_text(part, f)
+                    first = False
+                else:
+                    for text in part:
+                        if not first:
+                            f.write(",")
+                        f.write(text)
+                        first = False
+            f.write("]}\n")
     return final
+
+
+def _copy_text(path: str | os.PathLike, out: TextIO) -> None:
+    import shutil
+
+    with open(path, encoding="utf-8", newline="") as f:
+        shutil.copyfileobj(f, out, 1 << 20)
 
 
 # --------------------------------------------------------------------------- curves
@@ -339,10 +479,34 @@ def curve_columns(
     exact at every row. Memory: the rows themselves (about 30 bytes each).
     """
     unit = _check(hierarchy, dem)
+    _check_curve_options(max_points, step_rows)
+    return curve_part_columns(hierarchy, unit, max_points=max_points, step_rows=step_rows)
+
+
+def _check_curve_options(max_points, step_rows) -> None:
     if isinstance(max_points, bool) or not isinstance(max_points, int) or max_points < 2:
         raise InvalidParameter(f"max_points must be a whole number of at least 2, not {max_points!r}")
     if isinstance(step_rows, bool) or not isinstance(step_rows, int) or step_rows < 1:
         raise InvalidParameter(f"step_rows must be a positive whole number, not {step_rows!r}")
+
+
+def curve_part_columns(
+    hierarchy: DepressionHierarchy,
+    unit: VerticalUnit,
+    *,
+    max_points: int = MAX_CURVE_POINTS,
+    step_rows: int = STEP_ROWS,
+    node_offset: int = 0,
+    depression_offset: int = 0,
+) -> dict[str, np.ndarray]:
+    """:func:`curve_columns` of a hierarchy that is one piece of a site's.
+
+    For a hierarchy of a run of the site's depressions (its trees are those of
+    depressions ``depression_offset + 1 ...``, its nodes the site's nodes
+    ``node_offset + 1 ...``): the same rows as the site's curves file holds for
+    those nodes, with the site's ids. Curves depend on a node's own subtree
+    only, so the values are the same bits. The vertical unit is not checked.
+    """
     t = hierarchy.nodes
     exact = _breakpoint_sets(hierarchy, max_points)
     ids: list[np.ndarray] = []
@@ -368,8 +532,8 @@ def curve_columns(
             kind[levels == merge] = POINT_MERGE
         kind[0] = POINT_PIT
         kind[-1] = POINT_SPILL
-        ids.append(np.full(levels.shape[0], v, dtype=np.int32))
-        deps.append(np.full(levels.shape[0], int(t.depression[k]), dtype=np.int32))
+        ids.append(np.full(levels.shape[0], v + node_offset, dtype=np.int32))
+        deps.append(np.full(levels.shape[0], int(t.depression[k]) + depression_offset, dtype=np.int32))
         points.append(kind)
         elevations.append(levels.astype(np.float32))
         areas.append(curve.area_m2)
@@ -403,9 +567,17 @@ def write_curves_csv(
     """Write ``depression_curves.csv``: the columns of :func:`curve_columns`, after
     ``# `` comment lines that say how to read between rows."""
     cols = curve_columns(hierarchy, dem, max_points=max_points, step_rows=step_rows)
-    v = unit_suffix(hierarchy.unit)
-    comments = _comment_head("stage-area and stage-storage curves of the depression hierarchy",
-                             hierarchy, dem) + [
+    comments = curves_csv_comments(hierarchy.unit, hierarchy.connectivity, dem,
+                                   max_points=max_points, step_rows=step_rows)
+    return write_csv_parts(path, csv_head(comments, cols), [cols])
+
+
+def curves_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM", *,
+                        max_points: int = MAX_CURVE_POINTS, step_rows: int = STEP_ROWS) -> list[str]:
+    """The ``# `` comment lines of ``depression_curves.csv``."""
+    v = unit_suffix(unit)
+    return _comment_head("stage-area and stage-storage curves of the depression hierarchy",
+                         unit, connectivity, dem) + [
         "one row per node and elevation, node by node (node_id = id in depression_hierarchy.csv, "
         "depression = id in depressions.csv), from the node's pit to its spill elevation",
         f"area_m2: area of the node's region below elevation_{v}; storage_m3: water it holds "
@@ -415,4 +587,3 @@ def write_curves_csv(
         f"step (nodes with more get rows at a fixed step spanning their depth in at most "
         f"{step_rows} steps; values are exact on every row, storage is convex between them)",
     ]
-    return write_table_csv(path, comments, cols)
