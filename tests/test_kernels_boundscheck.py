@@ -4,7 +4,7 @@ The kernels trust their inputs and index flat padded arrays with computed
 offsets; with bounds checks off (numba's default) a stray index would corrupt
 memory silently. A fresh interpreter with NUMBA_BOUNDSCHECK=1 and an empty
 cache compiles every kernel with checks and runs the engine, the stage
-analysis, the hierarchy and the tiled engine on DEMs that exercise tiles, nodata, ties and both
+analysis, the hierarchy and the tiled engine (with its hierarchy) on DEMs that exercise tiles, nodata, ties and both
 connectivities; an out-of-range index raises IndexError there.
 """
 
@@ -46,6 +46,7 @@ SCRIPT = textwrap.dedent(
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.
     import tempfile
     from analysis.tiled import analyse_tiled
+    from analysis.tiled_hierarchy import write_tiled_hierarchy
     from tests.rasters import write_raster
     with tempfile.TemporaryDirectory() as tmp:
         z = rng.integers(0, 6, (13, 11)).astype(np.float32)
@@ -55,6 +56,7 @@ SCRIPT = textwrap.dedent(
         for conn, tile in ((8, 3), (4, 4)):
             analyse_tiled(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
                           connectivity=conn, tile_size=tile)
+            write_tiled_hierarchy(Path(tmp) / f"out{conn}", window_cells=6)
     print("bounds ok")
     """
 )

@@ -1,0 +1,338 @@
+"""The hierarchy files out of core (analysis.tiled_hierarchy) against the in-memory files.
+
+The reference is Sillmark's own in-memory path on the same DEM and outlets:
+:func:`analysis.flood.priority_flood`, :func:`analysis.hierarchy.site_hierarchy`
+and the writers of :mod:`analysis.hierarchy_export` (the in-memory hierarchy is
+checked elsewhere against hand-worked DEMs, a separate basin construction after
+Barnes, Callaghan & Wickert 2020, and closed-form volumes). The three files
+written from a tiled folder, window of depressions by window, must be the same
+bytes, for any tile size and any batch budget: these files hold no creation time.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rasterio
+from affine import Affine
+
+from analysis import hierarchy_export as hx
+from analysis.dem import read_dem
+from analysis.errors import InvalidDEM, InvalidParameter
+from analysis.flood import priority_flood
+from analysis.hierarchy import site_hierarchy
+from analysis.outlets import build_outlets
+from analysis.tiled import analyse_tiled
+from analysis.tiled_hierarchy import hierarchy_batches, write_tiled_hierarchy
+from tests.rasters import grid, write_raster
+from tests.test_flood import synthetic_terrain
+from tests.test_hierarchy import THREE_LEVELS
+
+WRITERS = (hx.write_hierarchy_csv, hx.write_hierarchy_json, hx.write_curves_csv)
+
+
+def reference_files(path, folder, *, specs=("edge",), connectivity=8):
+    """The three files of the in-memory path, in ``folder``; returns the hierarchy."""
+    dem = read_dem(path)
+    outlets = build_outlets(dem, list(specs), connectivity=connectivity)
+    r = priority_flood(dem.elevation, outlets.mask, connectivity=connectivity,
+                       row_areas=dem.row_areas, transform=dem.transform)
+    h = site_hierarchy(dem, r)
+    folder.mkdir(parents=True, exist_ok=True)
+    for name, write in zip(hx.HIERARCHY_FILE_NAMES, WRITERS):
+        write(h, dem, folder / name)
+    return h
+
+
+def tiled_folder(path, out, *, specs=("edge",), connectivity=8, tile=16, map=None):
+    if out.exists():
+        shutil.rmtree(out)
+    analyse_tiled(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile,
+                  map=map)
+    return out
+
+
+def assert_same_files(mine, ref):
+    for name in hx.HIERARCHY_FILE_NAMES:
+        assert (mine / name).read_bytes() == (ref / name).read_bytes(), name
+
+
+def check(path, tmp_path, *, specs=("edge",), connectivity=8, tiles=(16,), budgets=(1 << 24,),
+          map=None):
+    """Every tile size and budget gives the in-memory files; returns the last run and the
+    in-memory hierarchy."""
+    ref = tmp_path / f"ref_{connectivity}"
+    h = reference_files(path, ref, specs=specs, connectivity=connectivity)
+    for tile in tiles:
+        out = tiled_folder(path, tmp_path / f"tiled_{tile}_{connectivity}", specs=specs,
+                           connectivity=connectivity, tile=tile, map=map)
+        for budget in budgets:
+            for name in hx.HIERARCHY_FILE_NAMES:
+                (out / name).unlink(missing_ok=True)
+            run = write_tiled_hierarchy(out, window_cells=budget, map=map)
+            assert_same_files(out, ref)
+            assert (run.nodes, run.pits) == (len(h), len(h.leaves))
+            assert not [p for p in out.iterdir() if p.name.startswith(".")]  # scratch removed
+    return run, h
+
+
+@pytest.fixture(scope="module")
+def terrain_tif(tmp_path_factory):
+    """Rolling synthetic terrain, 150 x 170, with dozens of nested depressions."""
+    return write_raster(tmp_path_factory.mktemp("terrain") / "terrain.tif",
+                        synthetic_terrain(150, 170, 7))
+
+
+# --------------------------------------------------------------------------- same bytes
+
+
+def test_synthetic_terrain_for_tile_sizes_and_budgets(terrain_tif, tmp_path):
+    # 16 and 37 do not divide 150 x 170; budgets from the whole grid in one window
+    # down to 50 cells (each depression a batch of its own, many larger than that).
+    run, h = check(terrain_tif, tmp_path, tiles=(16, 37), budgets=(1 << 24, 2000, 50))
+    assert len(h) > 100 and len(h.leaves) < len(h)  # nested, not only pits
+    assert run.batches == len(h.tops)  # at 50 cells no two depressions share a window
+    assert run.window_cells > 50
+
+
+def test_four_neighbour_connectivity(terrain_tif, tmp_path):
+    check(terrain_tif, tmp_path, connectivity=4, tiles=(23,), budgets=(3000,))
+
+
+@pytest.mark.parametrize("connectivity", [8, 4])
+def test_hand_worked_three_levels_of_nesting(tmp_path, connectivity):
+    # tests/test_hierarchy.py works this DEM by hand: pits A, B meet at 4 (AB),
+    # AB and C meet at 6, the top spills over (2, 7) at 7, volumes 6, 2, 17, 4, 29.
+    path = write_raster(tmp_path / "three.tif", np.array(THREE_LEVELS, dtype=np.float32))
+    check(path, tmp_path, connectivity=connectivity, tiles=(1, 2, 3), budgets=(1, 1 << 24))
+    out = tmp_path / f"tiled_3_{connectivity}"
+    rows = [line for line in (out / hx.HIERARCHY_CSV).read_text().splitlines()
+            if not line.startswith("#")]
+    header = rows[0].split(",")
+    volumes = [float(r.split(",")[header.index("volume_m3")]) for r in rows[1:]]
+    assert volumes == [6, 2, 17, 4, 29]
+
+
+def test_several_hand_worked_sites_side_by_side(tmp_path):
+    # Three trenches of tests/test_hierarchy.py in one DEM, apart from each other:
+    # three pools meeting at one level (one node with three children), a plateau pit
+    # and a flat saddle, and the three-level nest; small budgets cut them apart.
+    # Each trench ends in its low outlet on the right edge of the grid.
+    z = np.full((17, 9), 9, np.float32)
+    z[1, 1:] = [9, 1, 5, 2, 5, 3, 6, 0]
+    z[5, :] = [9, 2, 2, 4, 4, 4, 1, 7, 0]
+    z[9:14, :9] = np.array(THREE_LEVELS, dtype=np.float32)
+    path = write_raster(tmp_path / "trenches.tif", z)
+    run, h = check(path, tmp_path, tiles=(2, 5), budgets=(1, 30, 1 << 24))
+    assert len(h.tops) == 3 and [len(h.children(v)) for v in h.tops] == [3, 2, 2]
+
+
+def test_one_depression_spanning_every_tile_and_larger_than_the_budget(tmp_path):
+    # A 62 x 68 basin below a rim at 50 with one notch: in all 11 x 12 tiles of
+    # 6 cells, and far more cells than a 100-cell budget.
+    yy, xx = np.mgrid[0:62, 0:68]
+    z = (20 + 0.01 * ((yy - 30) ** 2 + (xx - 33) ** 2)
+         + 0.5 * np.sin(xx * 0.7) * np.cos(yy * 0.4)).astype(np.float32)
+    z[0, :] = z[-1, :] = z[:, 0] = z[:, -1] = 50.0
+    z[0, 40] = 45.0
+    path = write_raster(tmp_path / "basin.tif", z)
+    run, h = check(path, tmp_path, tiles=(6,), budgets=(100, 1 << 24))
+    big = int(np.argmax(h.nodes.cell_count))
+    assert h.nodes.cell_count[big] > 100 and h.nodes.spill_elevation[big] == 45.0
+    assert run.window_cells > 100  # that depression was a batch of its own
+
+
+def test_integer_dems_with_many_ties(tmp_path):
+    # Whole metres: plateau pits, flats at merge levels and tied saddles everywhere.
+    rng = np.random.default_rng(4)
+    z = rng.integers(0, 6, (40, 45)).astype(np.int16)
+    path = write_raster(tmp_path / "ties.tif", z)
+    for connectivity in (8, 4):
+        check(path, tmp_path, connectivity=connectivity, tiles=(3,), budgets=(40, 400))
+    # Rounded terrain: large flat-bottomed pools, every node written in full.
+    terrain = np.round(synthetic_terrain(70, 90, 2) * 0.5).astype(np.int16)
+    path = write_raster(tmp_path / "rounded.tif", terrain)
+    check(path, tmp_path, tiles=(11,), budgets=(60, 1 << 24))
+
+
+def test_nodata_crossing_tiles_and_cells_of_half_a_square_metre(tmp_path):
+    # A nodata sea, a masked lake and a long gap across many tiles; 0.7 m cells
+    # (0.49 m² is no binary fraction, so areas and storage only agree to the bit
+    # if the additions are made in the in-memory order).
+    z = synthetic_terrain(90, 110, 3, smooth=2.0)
+    yy, xx = np.mgrid[0:90, 0:110]
+    z[(xx + 0.6 * yy) < 25] = -9999.0
+    z[(yy - 50) ** 2 + (xx - 70) ** 2 < 60] = -9999.0
+    z[10:13, 40:95] = -9999.0
+    path = write_raster(tmp_path / "coast.tif", z, nodata=-9999.0, transform=grid(0.7))
+    check(path, tmp_path, specs=("nodata", "edge"), tiles=(7, 16), budgets=(500,))
+    check(path, tmp_path, specs=("nodata",), tiles=(9,), budgets=(1 << 24,))
+
+
+def test_geographic_grid_and_feet(tmp_path):
+    # Lon/lat cells (a different true area in every row, and spill lon/lat from
+    # the grid coordinates) and a site in feet (acre-feet columns).
+    geo = Affine(0.001, 0.0, 15.0, 0.0, -0.001, 46.0)
+    path = write_raster(tmp_path / "geo.tif", synthetic_terrain(60, 70, 11), crs="EPSG:4326",
+                        transform=geo)
+    check(path, tmp_path, tiles=(9,), budgets=(300,))
+    feet = write_raster(tmp_path / "feet.tif", synthetic_terrain(50, 60, 5) * 3.3,
+                        crs="EPSG:2263")  # NAD83 / New York Long Island, US survey feet
+    check(feet, tmp_path / "ft", tiles=(13,), budgets=(200,))
+    assert "storage_acre_ft" in (tmp_path / "ft" / "ref_8" / hx.CURVES_CSV).read_text()
+
+
+def test_a_site_without_depressions_gives_the_empty_files(tmp_path):
+    z = np.add.outer(np.arange(12.0), np.arange(14.0)).astype(np.float32)  # a plane
+    path = write_raster(tmp_path / "plane.tif", z)
+    run, h = check(path, tmp_path, tiles=(5,))
+    assert len(h) == 0 and run.batches == 0
+
+
+# --------------------------------------------------------------------------- the folder
+
+
+def test_summary_lists_the_files_and_progress_counts_batches(terrain_tif, tmp_path):
+    out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=32)
+    before = json.loads((out / "summary.json").read_text())
+    seen = []
+    run = write_tiled_hierarchy(out, window_cells=3000,
+                                progress=lambda step, done, total: seen.append((step, done, total)))
+    after = json.loads((out / "summary.json").read_text())
+    assert after["files"] == ["onset_stage.tif", "fill_depth.tif", "depression_id.tif",
+                              "flood_tree.tif", "depressions.csv", "spill_points.geojson",
+                              *hx.HIERARCHY_FILE_NAMES, "summary.json"]
+    assert {k: v for k, v in after.items() if k != "files"} == \
+        {k: v for k, v in before.items() if k != "files"}
+    batches = [(d, t) for s, d, t in seen if s == "hierarchy"]
+    assert batches == [(k, run.batches) for k in range(run.batches + 1)] and run.batches > 3
+    assert [d for s, d, _ in seen if s == "hierarchy_write"] == [0, 1, 2, 3]
+    assert [p.name for p in run.files] == list(hx.HIERARCHY_FILE_NAMES)
+
+
+def test_batches_are_runs_of_consecutive_ids_covering_their_depressions(terrain_tif, tmp_path):
+    out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=37)
+    with rasterio.open(out / "depression_id.tif") as ds:
+        ids = ds.read(1)
+    count = int(ids.max())
+    for budget in (1, 900, 5000):
+        b = hierarchy_batches(out / "depression_id.tif", count, window_cells=budget)
+        assert b[0, 0] == 1 and b[-1, 1] == count and np.array_equal(b[1:, 0], b[:-1, 1] + 1)
+        for first, last, r0, r1, c0, c1 in b.tolist():
+            inside = np.zeros_like(ids, dtype=bool)
+            inside[r0:r1, c0:c1] = True
+            mine = (ids >= first) & (ids <= last)
+            assert not (mine & ~inside).any()  # every cell of the batch in its window
+            rows, cols = np.nonzero(mine)
+            assert (rows.min(), rows.max() + 1, cols.min(), cols.max() + 1) == (r0, r1, c0, c1)
+            assert first == last or (r1 - r0) * (c1 - c0) <= budget
+
+
+def test_files_that_do_not_belong_together_are_refused(terrain_tif, tmp_path):
+    out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=32)
+    other = tiled_folder(write_raster(tmp_path / "other.tif", synthetic_terrain(150, 170, 8)),
+                         tmp_path / "other", tile=32)
+    shutil.copy(other / "depressions.csv", out / "depressions.csv")
+    with pytest.raises(InvalidParameter, match="do not belong together|cell counts"):
+        write_tiled_hierarchy(out, grid=_grid(terrain_tif))
+    assert not (out / hx.HIERARCHY_CSV).exists()
+    assert not [p for p in out.iterdir() if p.name.startswith(".")]
+    with pytest.raises(InvalidParameter, match="window_cells"):
+        write_tiled_hierarchy(other, window_cells=0)
+
+
+def test_a_changed_dem_is_refused(tmp_path):
+    z = synthetic_terrain(40, 50, 3)
+    path = write_raster(tmp_path / "site.tif", z)
+    out = tiled_folder(path, tmp_path / "tiled", tile=16)
+    write_raster(path, z + 0.5)
+    with pytest.raises(InvalidDEM, match="changed"):
+        write_tiled_hierarchy(out)
+    assert not (out / hx.HIERARCHY_CSV).exists()
+
+
+def _grid(path):
+    from analysis.dem import read_dem_grid
+
+    return read_dem_grid(path)
+
+
+def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
+    # The streamed JSON writer against the document built the direct way: the
+    # flat to_json() with name, version, caution, crs and units in front and the
+    # float32 fields as shortest decimals (analysis.export.json_number).
+    from analysis.export import crs_label, json_number, sillmark_version
+
+    ref = tmp_path / "ref"
+    h = reference_files(terrain_tif, ref)
+    dem = read_dem(terrain_tif)
+    doc = json.loads(h.to_json())
+    for k, node in enumerate(doc["nodes"]):
+        for name in ("pit_elevation", "merge_elevation", "spill_elevation", "max_depth"):
+            node[name] = json_number(getattr(h.nodes, name)[k])
+    units = {n: "m" for n in ("pit_elevation", "merge_elevation", "spill_elevation", "max_depth")}
+    units.update({"spill_x": "m", "spill_y": "m", "area_m2": "m2", "volume_m3": "m3"})
+    whole = {"name": "depression_hierarchy", "sillmark_version": sillmark_version(),
+             "caution": doc.pop("caution"), "crs": crs_label(dem), "units": units, **doc}
+    text = json.dumps(whole, ensure_ascii=False, allow_nan=False, separators=(",", ":")) + "\n"
+    assert (ref / hx.HIERARCHY_JSON).read_text(encoding="utf-8") == text
+
+
+# --------------------------------------------------------------------------- on a cluster
+
+
+@pytest.fixture(scope="module")
+def cluster_address():
+    """A dask.distributed LocalCluster of two worker processes on 127.0.0.1."""
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       host="127.0.0.1", dashboard_address=None,
+                                       memory_limit="1GB")
+    try:
+        yield cluster.scheduler_address
+    finally:
+        cluster.close()
+
+
+def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_address, terrain_tif,
+                                                                  tmp_path, capsys):
+    from sillmark.cli import main
+
+    tiled, whole = tmp_path / "tiled", tmp_path / "whole"
+    assert main(["analyse", str(terrain_tif), "--tiles", "40", "--scheduler", cluster_address,
+                 "--out", str(tiled), "-q"]) == 0
+    printed = capsys.readouterr().out
+    assert main(["analyse", str(terrain_tif), "--out", str(whole), "-q"]) == 0
+    in_memory = capsys.readouterr().out
+    assert_same_files(tiled, whole)
+    line = [t for t in printed.splitlines() if t.startswith("Depression hierarchy:")]
+    assert line and line == [t for t in in_memory.splitlines() if t.startswith("Depression hierarchy:")]
+    assert "Results: 11 files" in printed and "no hierarchy" not in printed
+    summary = json.loads((tiled / "summary.json").read_text())
+    assert summary["files"] == json.loads((whole / "summary.json").read_text())["files"]
+    assert not [p for p in tiled.iterdir() if p.name.startswith(".")]
+
+
+def test_batch_kernels_compiled_and_plain_python_agree(terrain_tif, tmp_path):
+    # The compiled batch cutter against its own plain-Python loop (the same source
+    # run by the interpreter). tests/test_kernels_boundscheck.py runs both kernels
+    # of analysis._tiled_hierarchy_kernels once more with numba's index checks on.
+    from analysis import _tiled_hierarchy_kernels as kernels
+    from analysis.tiled_hierarchy import _bounding_boxes
+
+    out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=64)
+    ids_path = out / "depression_id.tif"
+    with rasterio.open(ids_path) as ds:
+        ids = ds.read(1)
+    count, shape = int(ids.max()), ids.shape
+    expected = hierarchy_batches(ids_path, count, window_cells=900)
+    bounds = _bounding_boxes(ids_path, count, shape)
+    assert np.array_equal(kernels.batches.py_func(*bounds, 900), expected)
+    # Each depression's box, the direct way.
+    for d in (1, count // 2, count):
+        r, c = np.nonzero(ids == d)
+        assert [b[d] for b in bounds] == [r.min(), r.max(), c.min(), c.max()]
