@@ -624,7 +624,10 @@ def analyse_tiled(
     creation time and the ``engine`` member of ``summary.json``) as
     :func:`analysis.export.write_results` writes for the in-memory result with
     the same tile size. The depression outlines (``depressions.geojson``) and
-    the hierarchy files need the whole id raster at once and are not written.
+    the three hierarchy files are written afterwards from the folder, window
+    by window, by :func:`analysis.tiled_outlines.add_depression_outlines` and
+    :func:`analysis.tiled_hierarchy.write_tiled_hierarchy` (which the command
+    line and the web app call); they too equal the in-memory files.
     """
     times: dict[str, float] = {}
     run_map = serial_map if map is None else map

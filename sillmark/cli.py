@@ -65,8 +65,9 @@ _ANALYSE_EPILOG = (
         "--tiles N runs the same analysis tile by tile on Dask for DEMs larger than memory "
         "(same onset stage, flood tree, depression ids and depression table as the "
         "in-memory engine with N-cell tiles); without --scheduler it starts a local cluster. "
-        "It writes the four rasters, depressions.csv, depressions.geojson, "
-        "spill_points.geojson and summary.json (no hierarchy files)."
+        "It writes the same files as the in-memory engine, each built window by window: "
+        "the four rasters, depressions.csv, depressions.geojson, spill_points.geojson, "
+        "the hierarchy files and summary.json."
     )
     + "\n\nexamples:\n"
     + "  sillmark analyse site.tif --outlet nodata --outlet edge --out results/site\n"
@@ -274,8 +275,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
     _add_site_options(analyse, connectivity_default=8)
     _add_tiled_options(analyse, "analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; "
-                       "the files are the rasters, depressions.csv, depressions.geojson, "
-                       "spill_points.geojson and summary.json")
+                       "the same files as without --tiles (the hierarchy files from "
+                       "windows of depressions)")
     analyse.set_defaults(run=_run_analyse)
 
     stage = commands.add_parser(
@@ -521,15 +522,19 @@ def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], strea
 
 
 def _hierarchy_line(hierarchy) -> str:
-    """Nodes, pits and nesting depth of the depression hierarchy."""
-    t = hierarchy.nodes
-    depth = [0] * (len(t) + 1)
-    for v in range(len(t), 0, -1):  # parents have higher ids than their children
-        p = int(t.parent[v - 1])
-        depth[v] = depth[p] + 1 if p else 1
-    levels = max(depth)
+    """Nodes, pits and nesting depth of the depression hierarchy (in memory, or the
+    counts of analysis.tiled_hierarchy.TiledHierarchy)."""
+    if hasattr(hierarchy, "depth"):
+        nodes, pits, levels = hierarchy.nodes, hierarchy.pits, hierarchy.depth
+    else:
+        t = hierarchy.nodes
+        depth = [0] * (len(t) + 1)
+        for v in range(len(t), 0, -1):  # parents have higher ids than their children
+            p = int(t.parent[v - 1])
+            depth[v] = depth[p] + 1 if p else 1
+        nodes, pits, levels = len(t), len(hierarchy.leaves), max(depth)
     return (
-        f"Depression hierarchy: {len(t):,} nodes ({len(hierarchy.leaves):,} pits), nested up "
+        f"Depression hierarchy: {nodes:,} nodes ({pits:,} pits), nested up "
         f"to {levels:,} level{'s' if levels != 1 else ''} deep; curves in depression_curves.csv"
     )
 
@@ -920,11 +925,19 @@ def _run_analyse(args: argparse.Namespace) -> int:
 
 _TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
                  "join": "join depressions", "write": "write"}
+#: Steps of analysis.tiled_hierarchy.write_tiled_hierarchy (``analyse --tiles``).
+_HIERARCHY_STEPS = {"hierarchy": "depression hierarchy", "hierarchy_files": "format hierarchy",
+                    "hierarchy_write": "write hierarchy files"}
 
 
-def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progress: _Progress):
+def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progress: _Progress,
+                  then=None):
     """Run :func:`analysis.tiled.analyse_tiled` on the cluster the options name; return
-    the run, the DEM's grid and a line naming the engine."""
+    the run, the DEM's grid and a line naming the engine.
+
+    ``then(run, grid, run_map, step)``, if given, runs next on the same cluster
+    (``step`` is the progress callback of the tiled steps); its result is returned
+    fourth."""
     from analysis.dem import read_dem_grid
     from analysis.errors import InvalidParameter
     from analysis.tiled import analyse_tiled, dask_map
@@ -935,8 +948,10 @@ def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progre
     connectivity = 8 if args.connectivity is None else args.connectivity
 
     def step(name: str, done: int, total: int) -> None:
+        if name in _HIERARCHY_STEPS:
+            progress.file(_HIERARCHY_STEPS[name], done, total)  # batches done
         if done == 0:
-            progress.start(_TILED_STEPS[name])
+            progress.start(_TILED_STEPS.get(name) or _HIERARCHY_STEPS[name])
         elif done == total:
             progress.done()
 
@@ -948,34 +963,48 @@ def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progre
             connectivity=connectivity, tile_size=args.tiles, map=run_map, band=args.band,
             vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
         )
-    grid = read_dem_grid(os.path.abspath(dem_path), band=args.band,
-                         vertical_unit=args.vertical_unit, crs=args.crs)
+        grid = read_dem_grid(os.path.abspath(dem_path), band=args.band,
+                             vertical_unit=args.vertical_unit, crs=args.crs)
+        after = None if then is None else then(run, grid, run_map, step)
     where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
     engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
               f"{run.tile_size:,} cells on {where} ({n_workers} workers)")
-    return run, grid, engine
+    if then is None:
+        return run, grid, engine
+    return run, grid, engine, after
 
 
 def _run_analyse_tiled(args: argparse.Namespace) -> int:
     """``analyse --tiles N``: the out-of-core engine on a Dask cluster (local or given),
-    then the depression outlines from depression_id.tif window by window."""
+    then the depression outlines from depression_id.tif window by window, then the
+    hierarchy files in windows of depressions on the same cluster."""
     import types
 
+    from analysis.export import FILE_NAMES
+    from analysis.tiled_hierarchy import write_tiled_hierarchy
     from analysis.tiled_outlines import add_depression_outlines
 
     show = not args.quiet and sys.stderr.isatty()
-    progress = _Progress(show, phases=(*_TILED_STEPS, "outlines"))
+    progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
     out_dir = Path(args.out)
-    try:
-        run, grid, engine = _tiled_engine(args, args.dem, out_dir, progress)
+
+    def outlines_and_hierarchy(run, grid, run_map, step):
         progress.start("outline depressions")
         files = add_depression_outlines(run, grid, out_dir)
         progress.done()
+        # After the outlines: their summary.json is the one the hierarchy adds to.
+        hierarchy = write_tiled_hierarchy(out_dir, map=run_map, progress=step, grid=grid)
+        by_name = {p.name: p for p in [*files, *hierarchy.files]}
+        return [by_name[n] for n in FILE_NAMES if n in by_name], hierarchy
+
+    try:
+        run, grid, engine, (files, hierarchy) = _tiled_engine(
+            args, args.dem, out_dir, progress, then=outlines_and_hierarchy)
     finally:
         progress.close()
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
-    lines = _summary_lines(run, grid, outlets, out_dir, files, sys.stdout)
-    lines.insert(2, f"{engine}; no hierarchy files")
+    lines = _summary_lines(run, grid, outlets, out_dir, files, sys.stdout, hierarchy)
+    lines.insert(2, engine)
     for line in lines:
         print(line)
     return EXIT_OK

@@ -290,14 +290,20 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     assert main(["analyse", str(terrain_tif), "--tiles", "512", "--scheduler", cluster_address,
                  "--out", str(tiled), "-q"]) == 0
     printed = capsys.readouterr().out
-    assert "no hierarchy files" in printed and "Results: 8 files" in printed
+    assert "Depression hierarchy:" in printed and "Results: 11 files" in printed
     assert main(["analyse", str(terrain_tif), "--out", str(whole), "-q"]) == 0
     summary = json.loads((tiled / "summary.json").read_text())
     assert summary["files"] == ["onset_stage.tif", "fill_depth.tif", "depression_id.tif",
                                 "flood_tree.tif", "depressions.csv", "depressions.geojson",
-                                "spill_points.geojson", "summary.json"]
+                                "spill_points.geojson", "depression_hierarchy.csv",
+                                "depression_hierarchy.json", "depression_curves.csv",
+                                "summary.json"]
     assert summary["engine"]["kind"] == "tiled"
     assert_same_collections(tiled / "depressions.geojson", whole / "depressions.geojson")
+    # The hierarchy, built on the cluster in windows of depressions: the same bytes.
+    for name in ("depression_hierarchy.csv", "depression_hierarchy.json", "depression_curves.csv"):
+        assert (tiled / name).read_bytes() == (whole / name).read_bytes(), name
+    assert not list(tiled.glob(".sillmark-*"))  # scratch removed
     capsys.readouterr()
 
     args = ["--level", "0", "--level", "20", "--table-step", "1.5", "-q"]

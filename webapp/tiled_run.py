@@ -4,10 +4,12 @@
 is read. For a DEM of more than ``TILED_ABOVE_CELLS`` cells (see
 :mod:`webapp.config`; the value travels with the run's settings) it runs
 :func:`analysis.tiled.analyse_tiled` on the DEM file instead of the in-memory
-engine, adds the depression outlines (:mod:`analysis.tiled_outlines`), and
-reads the written GeoTIFFs back into the :class:`~analysis.flood.SpillResult`
-the viewer stores (:func:`webapp.arrays.save`). The run's phase shows the
-tiles done (``flooding tiles: 3 of 12 tiles done``).
+engine, adds the depression outlines (:mod:`analysis.tiled_outlines`) and the
+three depression-hierarchy files (:mod:`analysis.tiled_hierarchy`, in windows
+of depressions), and reads the written GeoTIFFs back into the
+:class:`~analysis.flood.SpillResult` the viewer stores
+(:func:`webapp.arrays.save`). The run's phase shows the tiles done
+(``flooding tiles: 3 of 12 tiles done``) and then the hierarchy's batches.
 
 The tiles run one after another in the worker process (:func:`analysis.tiled.serial_map`),
 not on a local Dask cluster: the worker is already a process of its own per
@@ -15,8 +17,8 @@ run, a cluster would add a scheduler and worker processes (about half a
 gigabyte and seconds of start-up) on a laptop that also serves the app, and
 dask.distributed is an optional extra the app does not need otherwise. The
 tiled engine's gain here is memory: one tile's working arrays at a time
-instead of the in-memory engine's 12 to 13 bytes a cell, and no depression
-hierarchy written (see ``sillmark analyse --tiles``).
+instead of the in-memory engine's 12 to 13 bytes a cell, and the hierarchy
+built one window of depressions at a time (see ``sillmark analyse --tiles``).
 
 Like :mod:`webapp.worker`, this module imports no Flask.
 """
@@ -42,9 +44,15 @@ _STEPS = {
     "graph": ("solving the seed graph between tiles", 38.0, 40.0),
     "finish": ("finishing tiles", 40.0, 48.0),
     "join": ("joining depressions across tiles", 48.0, 49.0),
-    "write": ("writing the tiled result files", 49.0, 53.0),
-    "outlines": ("outlining depressions window by window", 53.0, 55.0),
+    "write": ("writing the tiled result files", 49.0, 52.0),
+    "outlines": ("outlining depressions window by window", 52.0, 53.0),
+    "hierarchy": ("building the depression hierarchy", 53.0, 54.4),
+    "hierarchy_files": ("formatting the depression hierarchy", 54.4, 54.8),
+    "hierarchy_write": ("writing the depression hierarchy files", 54.8, 55.0),
 }
+#: What the done / total of a step counts (steps not named here show no count).
+_COUNTED = {"flood": "tiles", "finish": "tiles", "write": "files", "hierarchy": "batches",
+            "hierarchy_files": "batches", "hierarchy_write": "files"}
 
 
 def engine_settings(config) -> dict:
@@ -75,23 +83,23 @@ class _TileProgress:
         db.update_run(self.progress.conn, self.progress.run_id, phase=text,
                       percent=round(float(percent), 1))
 
-    def show(self, name: str, done: int, total: int, what: str = "tiles") -> None:
+    def show(self, name: str, done: int, total: int) -> None:
         label, lo, hi = _STEPS[name]
         fraction = done / total if total else 1.0
-        text = f"{label}: {done:,} of {total:,} {what} done" if name in ("flood", "finish", "write") else label
+        what = _COUNTED.get(name)
+        text = f"{label}: {done:,} of {total:,} {what} done" if what else label
         self._write(text, lo + (hi - lo) * fraction, force=done in (0, total))
 
     def step(self, name: str, done: int, total: int) -> None:
         self.step_name = name
-        self.show(name, done, total, "files" if name == "write" else "tiles")
+        self.show(name, done, total)
 
     def map(self, fn, calls) -> list:
         calls = list(calls)
         out = []
-        what = "files" if self.step_name == "write" else "tiles"
         for k, args in enumerate(calls):
             out.append(fn(*args))
-            self.show(self.step_name, k + 1, len(calls), what)
+            self.show(self.step_name, k + 1, len(calls))
         return out
 
 
@@ -134,6 +142,7 @@ def analyse_if_large(dem, dem_path: Path, specs: tuple, settings: dict, results:
     from analysis.dem import read_dem_grid
     from analysis.flood import SpillResult
     from analysis.tiled import analyse_tiled
+    from analysis.tiled_hierarchy import write_tiled_hierarchy
     from analysis.tiled_outlines import add_depression_outlines
 
     tile = int(settings.get("tile_size") or DEFAULTS["TILED_TILE_SIZE"])
@@ -146,6 +155,8 @@ def analyse_if_large(dem, dem_path: Path, specs: tuple, settings: dict, results:
     grid = read_dem_grid(dem_path, vertical_unit=settings["vertical_unit"])
     add_depression_outlines(run, grid, results)
     tracker.show("outlines", 1, 1)
+    # After the outlines, whose summary.json it lists the three files in.
+    write_tiled_hierarchy(results, map=tracker.map, progress=tracker.step, grid=grid)
     ids = _read_band(results / "depression_id.tif")
     np.maximum(ids, 0, out=ids)  # the file's -1 (nodata, unreached) is 0 in a SpillResult
     result = SpillResult(
