@@ -464,6 +464,23 @@ def _curve_at(node, levels, seg_start, elev, area, storage, lo, spill, pit, chil
     return out_area, out_storage
 
 
+def _curves_at(level_start, levels, seg_start, elev, area, storage, lo, spill, pit,
+               child_start, child_ids, metres):
+    """:func:`_curve_at` of every node ``v`` (1..n) at its own levels
+    ``levels[level_start[v - 1]:level_start[v]]``, into two arrays as long as
+    ``levels``: one call for a whole hierarchy instead of one per node."""
+    out_area = np.empty(levels.shape[0], dtype=np.float64)
+    out_storage = np.empty(levels.shape[0], dtype=np.float64)
+    for v in range(1, level_start.shape[0]):
+        i0 = level_start[v - 1]
+        i1 = level_start[v]
+        a, s = curve_at(np.int32(v), levels[i0:i1], seg_start, elev, area, storage, lo, spill,
+                        pit, child_start, child_ids, metres)
+        out_area[i0:i1] = a
+        out_storage[i0:i1] = s
+    return out_area, out_storage
+
+
 def _full_curve(zs, areas, lo, spill):
     """Breakpoints of a whole curve from the cells of a region (``zs`` ascending)."""
     total = zs.shape[0] + 2
@@ -488,4 +505,5 @@ group_stable = njit(cache=True)(_group_stable)
 sort_within_groups = njit(parallel=True, cache=True)(_sort_within_groups)
 segments = njit(cache=True)(_segments)
 curve_at = njit(cache=True)(_curve_at)
+curves_at = njit(cache=True)(_curves_at)
 full_curve = njit(cache=True)(_full_curve)

@@ -581,16 +581,20 @@ def _float_texts(values: np.ndarray) -> list[str]:
     """
     is32 = values.dtype == np.float32
     flat = np.asarray(values, dtype=np.float32 if is32 else np.float64).reshape(-1)
+    # float64: Python's repr is the same shortest round-trip text (David Gay's
+    # correctly rounded dtoa, same exponent thresholds), about 1.5x faster.
+    texts = flat.astype(str).tolist() if is32 else list(map(repr, flat.tolist()))
     out = []
-    for t in flat.astype(str).tolist():
+    append = out.append
+    for t in texts:
         if "e" in t:
-            out.append(_positional(t))
-        elif t.endswith(".0"):
-            out.append(t[:-2])
+            append(_positional(t))
+        elif t[-2:] == ".0":
+            append(t[:-2])
         elif t[-1] in "fn":  # inf, -inf, nan
-            out.append("")
+            append("")
         else:
-            out.append(t)
+            append(t)
     return out
 
 
@@ -617,7 +621,9 @@ def _column_texts(values: np.ndarray) -> list[str]:
     kind = values.dtype.kind
     if kind in "USO":
         return [str(v) for v in values.tolist()]
-    if kind in "iub":
+    if kind in "iu":
+        return list(map(str, values.tolist()))
+    if kind == "b":
         return [str(int(v)) for v in values.tolist()]
     return _float_texts(values)
 

@@ -370,6 +370,40 @@ class DepressionHierarchy:
         return StageCurve(node=int(node), elevation=h, area_m2=area, storage_m3=storage,
                           unit=self.unit)
 
+    def curves_at(self, level_start, levels) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`curve_at` of every node at once, each node at its own levels.
+
+        Parameters
+        ----------
+        level_start : array of int, length ``len(self) + 1``
+            Node ``v``'s levels are ``levels[level_start[v - 1]:level_start[v]]``;
+            starts at 0, never decreases, ends at ``len(levels)``.
+        levels : 1-D array of float
+            Finite water levels in the site's vertical unit.
+
+        Returns
+        -------
+        (area_m2, storage_m3) : two float64 arrays as long as ``levels``
+            The same values, bit for bit, as :meth:`curve_at` gives node by
+            node; one compiled loop instead of one call per node.
+        """
+        start = np.asarray(level_start)
+        h = np.asarray(levels, dtype=np.float64) if _numeric(levels) or np.size(levels) == 0 \
+            else None
+        if h is None or h.ndim != 1 or not np.all(np.isfinite(h)):
+            raise InvalidParameter(f"levels must be a 1-D array of finite numbers, not {levels!r}")
+        if (start.dtype.kind not in "iu" or start.shape != (len(self) + 1,) or start[0] != 0
+                or start[-1] != h.shape[0] or np.any(np.diff(start) < 0)):
+            raise InvalidParameter(
+                f"level_start must be {len(self) + 1} non-decreasing whole numbers from 0 to "
+                f"the number of levels ({h.shape[0]})")
+        s = self.segments
+        lo, spill, pit, child_start = self._tree_arrays
+        return _k.curves_at(
+            start.astype(np.int64), h, s.start, s.elevation, s.area_m2, s.storage_m3,
+            lo, spill, pit, child_start, self.nodes.children_ids, np.float64(self.unit.metres),
+        )
+
     @functools.cached_property
     def _tree_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Per-node arrays indexed by one-based id, as the curve kernel takes them

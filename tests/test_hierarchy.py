@@ -268,6 +268,14 @@ def test_bad_inputs_get_clear_errors():
         h.curve_at(5, [1.0, math.nan])
     with pytest.raises(InvalidParameter, match="finite"):
         h.curve_at(5, "high")
+    with pytest.raises(InvalidParameter, match="finite"):
+        h.curves_at([0, 1, 1, 1, 1, 2], [1.0, math.inf])
+    with pytest.raises(InvalidParameter, match="non-decreasing"):
+        h.curves_at([0, 1, 1], [1.0])  # 5 nodes need 6 starts
+    with pytest.raises(InvalidParameter, match="non-decreasing"):
+        h.curves_at([0, 2, 1, 2, 2, 2], [1.0, 2.0])
+    with pytest.raises(InvalidParameter, match="non-decreasing"):
+        h.curves_at([0, 1, 1, 1, 1, 3], [1.0, 2.0])  # ends past the levels
     with pytest.raises(InvalidParameter, match="1 to 1"):
         h.top_node(2)
     with pytest.raises(SillmarkError, match="grid"):
@@ -582,10 +590,41 @@ def test_rolling_terrain_against_the_basin_construction(seed, connectivity):
         assert np.array_equal(h.region_mask(h.top_node(d)), result.depression_id == d)
 
 
+def _levels_of_every_node(h):
+    """Per node: its pit, merge and spill elevations, a level between and one
+    above its spill, in no order; as (level_start, levels) for curves_at."""
+    t = h.nodes
+    per = []
+    for k in range(len(t)):
+        pit, spill = float(t.pit_elevation[k]), float(t.spill_elevation[k])
+        merge = float(t.merge_elevation[k])
+        per.append([spill + 0.5, pit, (pit + spill) / 2, spill]
+                   + ([merge] if math.isfinite(merge) else []))
+    start = np.concatenate([[0], np.cumsum([len(p) for p in per])]).astype(np.int64)
+    return start, np.array([x for p in per for x in p], dtype=np.float64)
+
+
+@settings(max_examples=40, deadline=None)
+@given(small_sites())
+def test_curves_of_every_node_at_once_equal_them_node_by_node(case):
+    z, outlets, conn, areas, unit = case
+    h = depression_hierarchy(priority_flood(z, outlets, connectivity=conn, row_areas=areas),
+                             row_areas=areas, unit=unit)
+    start, levels = _levels_of_every_node(h)
+    area, storage = h.curves_at(start, levels)
+    assert area.shape == storage.shape == levels.shape
+    for v in range(1, len(h) + 1):
+        one = h.curve_at(v, levels[start[v - 1]:start[v]])
+        assert np.array_equal(area[start[v - 1]:start[v]], one.area_m2, equal_nan=True)
+        assert np.array_equal(storage[start[v - 1]:start[v]], one.storage_m3, equal_nan=True)
+    # Above the spill: NaN, as curve_at says (the first level of every node).
+    assert np.all(np.isnan(area[start[:-1]]))
+
+
 @contextlib.contextmanager
 def plain_python_kernels():
     """Swap the compiled kernels of analysis._hierarchy_kernels for their Python source."""
-    names = ["sweep", "postorder", "bucket", "segments", "curve_at", "full_curve"]
+    names = ["sweep", "postorder", "bucket", "segments", "curve_at", "curves_at", "full_curve"]
     saved = {name: getattr(kernels, name) for name in names}
     try:
         for name in names:
@@ -611,7 +650,11 @@ def test_kernels_run_as_plain_python(case):
                                                 if not plain.nodes.is_leaf[v - 1] else 0.0]))
             for v in range(1, len(plain) + 1)
         ]
+        start, levels = _levels_of_every_node(plain)
+        plain_all = plain.curves_at(start, levels)
     assert compiled.to_json() == plain.to_json()
+    for got, ref in zip(plain_all, compiled.curves_at(start, levels)):
+        assert np.array_equal(got, ref, equal_nan=True)
     for v, (curve, at) in enumerate(plain_curves, start=1):
         ref = compiled.curve(v)
         assert np.array_equal(curve.storage_m3, ref.storage_m3)

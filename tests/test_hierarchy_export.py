@@ -258,3 +258,32 @@ def test_write_results_adds_the_three_files_before_the_summary(nested, tmp_path)
     write_results(result, dem, outlets, tmp_path / "b", hierarchy=h)
     for name in he.HIERARCHY_FILE_NAMES:
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
+
+
+# --------------------------------------------------------------------------- row texts
+
+
+@pytest.mark.parametrize("words", [
+    ["pit", "step", "spill"],                    # plain: joined without the csv module
+    ["a,b", 'say "x"', "two\nlines"],            # need quotes: the csv module writes them
+    ["", "pit", ""],                             # empty texts beside numbers
+])
+def test_rows_are_what_the_csv_module_writes(words):
+    import io
+
+    cols = {
+        "n": np.arange(3, dtype=np.int32),
+        "word": np.array(words, dtype=object),
+        "z": np.array([1.5, np.nan, -0.25], dtype=np.float32),
+        "v": np.array([1e-7, 2.0, np.inf]),
+    }
+    texts = [["0", words[0], "1.5", "0.0000001"], ["1", words[1], "", "2"],
+             ["2", words[2], "-0.25", ""]]
+    buffer = io.StringIO(newline="")
+    csv.writer(buffer, lineterminator="\n").writerows(texts)
+    assert he.csv_rows(cols) == buffer.getvalue()
+    assert list(csv.reader(io.StringIO(he.csv_rows(cols), newline=""))) == texts
+
+
+def test_a_single_empty_column_is_quoted_as_the_csv_module_does():
+    assert he.csv_rows({"word": np.array(["", "x"], dtype=object)}) == '""\nx\n'
