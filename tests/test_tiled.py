@@ -36,6 +36,7 @@ from analysis.export import (
 from analysis.flood import SpillResult, priority_flood
 from analysis.outlets import build_outlets
 from analysis.tiled import TILED_FILE_NAMES, analyse_tiled, serial_map
+from tests.loopback import loopback_cluster
 from tests.rasters import write_raster
 from tests.test_flood import TWIN_BOWLS, synthetic_terrain
 
@@ -342,18 +343,16 @@ def test_bad_input_gets_the_in_memory_errors(tmp_path):
 @pytest.fixture(scope="module")
 def cluster_map():
     """A dask.distributed LocalCluster: 2 worker processes, 1 thread each, on 127.0.0.1."""
-    distributed = pytest.importorskip("distributed")
-    from analysis.tiled import DaskMap
+    with loopback_cluster(2) as cluster:
+        import distributed
 
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None,
-                                       memory_limit="1GB")
-    client = distributed.Client(cluster)
-    try:
-        yield DaskMap(client)
-    finally:
-        client.close()
-        cluster.close()
+        from analysis.tiled import DaskMap
+
+        client = distributed.Client(cluster)
+        try:
+            yield DaskMap(client)
+        finally:
+            client.close()
 
 
 def test_cluster_run_equals_in_memory(cluster_map, terrain_tif, coast_tif, tmp_path):

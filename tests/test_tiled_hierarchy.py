@@ -28,6 +28,7 @@ from analysis.hierarchy import site_hierarchy
 from analysis.outlets import build_outlets
 from analysis.tiled import analyse_tiled
 from analysis.tiled_hierarchy import hierarchy_batches, write_tiled_hierarchy
+from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
 from tests.test_flood import synthetic_terrain
 from tests.test_hierarchy import THREE_LEVELS
@@ -288,14 +289,8 @@ def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
 @pytest.fixture(scope="module")
 def cluster_address():
     """A dask.distributed LocalCluster of two worker processes on 127.0.0.1."""
-    distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None,
-                                       memory_limit="1GB")
-    try:
+    with loopback_cluster(2) as cluster:
         yield cluster.scheduler_address
-    finally:
-        cluster.close()
 
 
 def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_address, terrain_tif,

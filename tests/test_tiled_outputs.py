@@ -36,6 +36,7 @@ from analysis.tiled_stage import (
     tiled_stage_levels,
     write_tiled_stage_results,
 )
+from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
 from tests.test_flood import synthetic_terrain
 from tests.test_tiled import in_memory
@@ -270,14 +271,8 @@ def test_float32_texts_are_read_back_exactly():
 @pytest.fixture(scope="module")
 def cluster_address():
     """A dask.distributed LocalCluster of one worker process on 127.0.0.1, for the CLI."""
-    distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None,
-                                       memory_limit="1GB")
-    try:
+    with loopback_cluster(1) as cluster:
         yield cluster.scheduler_address
-    finally:
-        cluster.close()
 
 
 def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, terrain_tif,

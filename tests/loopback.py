@@ -1,0 +1,21 @@
+"""A dask.distributed cluster on loopback for the tests of the tiled engine."""
+
+from __future__ import annotations
+
+import contextlib
+
+import pytest
+
+
+@contextlib.contextmanager
+def loopback_cluster(n_workers: int):
+    """A LocalCluster of ``n_workers`` worker processes (1 thread, 1 GB each) on
+    127.0.0.1, started here and closed on exit; skips the test without distributed."""
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
+                                       host="127.0.0.1", dashboard_address=None,
+                                       memory_limit="1GB")
+    try:
+        yield cluster
+    finally:
+        cluster.close()
