@@ -213,15 +213,15 @@ def all_files(run, dem_path: Path, out: Path, run_map, engine_wall: float) -> di
     hierarchy = write_tiled_hierarchy(out, map=run_map, grid=grid)
     tree = time.perf_counter() - t0
     wall = engine_wall + outlines + tree
-    names = {p.name for p in files} | {p.name for p in hierarchy.files}
+    sizes = {p.name: p.stat().st_size for p in [*files, *hierarchy.files]}
     return {
         "outlines_s": outlines,
         "hierarchy_s": tree,
         "hierarchy_steps_s": hierarchy.seconds,
         "hierarchy_nodes": hierarchy.nodes,
         "hierarchy_batches": hierarchy.batches,
-        "files": len(names),
-        "file_bytes": {p.name: p.stat().st_size for p in [*files, *hierarchy.files]},
+        "files": len(sizes),
+        "file_bytes": sizes,
         "wall_s": wall,
     }
 

@@ -343,16 +343,10 @@ def test_bad_input_gets_the_in_memory_errors(tmp_path):
 @pytest.fixture(scope="module")
 def cluster_map():
     """A dask.distributed LocalCluster: 2 worker processes, 1 thread each, on 127.0.0.1."""
-    with loopback_cluster(2) as cluster:
-        import distributed
+    from analysis.tiled import dask_map
 
-        from analysis.tiled import DaskMap
-
-        client = distributed.Client(cluster)
-        try:
-            yield DaskMap(client)
-        finally:
-            client.close()
+    with loopback_cluster(2) as cluster, dask_map(scheduler=cluster.scheduler_address) as run_map:
+        yield run_map
 
 
 def test_cluster_run_equals_in_memory(cluster_map, terrain_tif, coast_tif, tmp_path):
