@@ -37,7 +37,6 @@ from analysis._tile_layout import (  # noqa: F401  (perimeter_cells: used by ana
 )
 
 
-
 def _perimeter_links(pstate, plevel, plabel, poff, node_base, tile_rows, tile_cols, tile,
                      rows, cols, width, drow, dcol, dirs):
     """Edges between touching perimeter cells of different tiles, from perimeters only.

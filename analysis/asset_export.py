@@ -43,6 +43,8 @@ from analysis.export import (
     unit_suffix,
     write_feature_collection,
 )
+from analysis.stage_export import level_label
+from analysis.units import VerticalUnit
 
 __all__ = [
     "FEATURE_ASSET",
@@ -381,7 +383,6 @@ def asset_file_names(level: Any, unit: Any) -> tuple[str, str]:
     >>> asset_file_names(47.6, "m")
     ('assets_47.60m.csv', 'assets_47.60m.geojson')
     """
-    from analysis.stage_export import level_label
 
     h = level_label(level, unit)
     return f"assets_{h}.csv", f"assets_{h}.geojson"
@@ -393,7 +394,6 @@ def what_if_file_name(height: Any, unit: Any) -> str:
     >>> what_if_file_name(0.5, "m"), what_if_file_name(2, "ft")
     ('what_if_raise_0.50m.csv', 'what_if_raise_2.00ft.csv')
     """
-    from analysis.stage_export import level_label
 
     return f"what_if_raise_{level_label(height, unit)}.csv"
 
@@ -460,7 +460,6 @@ def write_what_if_csv(
     the columns mean and ``notes`` (e.g. which assets were passed over and
     why); then a header and the rows. With no rows the header is still written.
     """
-    from analysis.units import VerticalUnit
 
     unit = VerticalUnit.parse(dem.vertical_unit)
     v = unit_suffix(unit)

@@ -32,11 +32,12 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pyproj
+from scipy import ndimage
 
 from analysis.dem import MAX_ABS_ELEVATION, crs_name_refusal, gdal_path_refusal
-from analysis.geojson import CRS84, geojson_crs
 from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from analysis.flood import OUTLET_CODE, SpillResult, priority_flood
+from analysis.geojson import CRS84, geojson_crs
 from analysis.outlets import Outlets
 from analysis.stage import checked_level
 from analysis.units import VerticalUnit
@@ -1201,7 +1202,6 @@ def sill_crest(
     it) and higher parts of the rim are not part of it, so raising a notch
     above the rest of the rim shows which sill controls next.
     """
-    from scipy import ndimage
 
     z = result.elevation
     floor = z[row, col]

@@ -33,10 +33,16 @@ from affine import Affine
 from rasterio._err import CPLE_BaseError
 from rasterio.crs import CRS
 from rasterio.enums import MaskFlags
+from rasterio.env import set_gdal_config
 from rasterio.errors import CRSError, NotGeoreferencedWarning, RasterioError
 from rasterio.io import DatasetReader
 
-from analysis.errors import InvalidDEM, InvalidParameter, LocationOutsideDEM, SillmarkError
+from analysis.errors import (
+    InvalidDEM,
+    InvalidParameter,
+    LocationOutsideDEM,
+    SillmarkError,
+)
 from analysis.units import VerticalUnit
 
 __all__ = ["DEFAULT_MAX_CELLS", "DEM", "DEMGrid", "dem_from_array", "read_dem", "read_dem_grid"]
@@ -830,7 +836,6 @@ def forbid_remote_access() -> None:
     Sets :data:`NO_REMOTE_ACCESS` as GDAL configuration and in the environment
     (worker processes inherit it), and keeps PROJ from fetching grids.
     """
-    from rasterio.env import set_gdal_config
 
     for key, value in NO_REMOTE_ACCESS.items():
         os.environ[key] = value

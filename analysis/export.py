@@ -57,6 +57,7 @@ from shapely.geometry.polygon import orient
 from analysis import SCREENING_CAUTION
 from analysis.errors import InvalidDEM, InvalidParameter
 from analysis.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark import __version__
 
 if TYPE_CHECKING:  # pragma: no cover
     from analysis.dem import DEM
@@ -216,15 +217,6 @@ def _fsync_dir(folder: Path) -> None:
 
 
 def _version() -> str:
-    try:
-        from sillmark import __version__
-    except ImportError:  # pragma: no cover - analysis used without the CLI package
-        from importlib import metadata
-
-        try:
-            return metadata.version("sillmark")
-        except metadata.PackageNotFoundError:
-            return "unknown"
     return __version__
 
 

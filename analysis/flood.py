@@ -82,7 +82,12 @@ import numpy as np
 from analysis import _flood_kernels as _k
 from analysis import _spill_kernels as _s
 from analysis import _tile_kernels as _t
-from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
+from analysis.errors import (
+    InvalidDEM,
+    InvalidOutlets,
+    InvalidParameter,
+    LocationOutsideDEM,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     from affine import Affine

@@ -43,10 +43,12 @@ precision or the nesting depth. On the demo site: 77 nodes, about 2 300 rows,
 from __future__ import annotations
 
 import csv
+import io
 import json
 import math
 import os
 import re
+import shutil
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, TextIO
@@ -346,8 +348,6 @@ _NEEDS_QUOTES = re.compile(r'[,"\r\n]')
 
 
 def _csv_text(rows) -> str:
-    import io
-
     buffer = io.StringIO(newline="")
     csv.writer(buffer, lineterminator="\n").writerows(rows)
     return buffer.getvalue()
@@ -404,8 +404,6 @@ def write_json_parts(path: str | os.PathLike, head: str, parts: Iterable) -> Pat
 
 
 def _copy_text(path: str | os.PathLike, out: TextIO) -> None:
-    import shutil
-
     with open(path, encoding="utf-8", newline="") as f:
         shutil.copyfileobj(f, out, 1 << 20)
 

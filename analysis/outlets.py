@@ -27,10 +27,17 @@ from rasterio.errors import RasterioError
 from rasterio.features import rasterize
 from shapely.geometry import shape as shapely_shape
 
-from analysis.dem import (DEM, _gdal_reason, _horizontal_part, _local_file, _to_pyproj, crs_name_refusal,
-                          open_local_raster)
-from analysis.geojson import geojson_crs
+from analysis.dem import (
+    DEM,
+    _gdal_reason,
+    _horizontal_part,
+    _local_file,
+    _to_pyproj,
+    crs_name_refusal,
+    open_local_raster,
+)
 from analysis.errors import InvalidOutlets, InvalidParameter
+from analysis.geojson import geojson_crs
 
 __all__ = [
     "OutletPlan",

@@ -36,8 +36,7 @@ import numpy as np
 import rasterio.features
 import shapely.geometry
 
-from analysis import SCREENING_CAUTION
-from analysis import export
+from analysis import SCREENING_CAUTION, export
 from analysis.errors import InvalidParameter
 from analysis.stage import (
     CLASS_NAMES,

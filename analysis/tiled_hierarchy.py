@@ -96,6 +96,8 @@ from analysis import hierarchy_export as hx
 from analysis.dem import DEMGrid
 from analysis.errors import InvalidDEM, InvalidParameter
 from analysis.hierarchy import HierarchyTable, _hierarchy_of_cells
+from analysis.tiled import serial_map
+from analysis.tiled_stage import open_result_folder, read_depression_columns
 from analysis.units import VerticalUnit
 
 __all__ = [
@@ -331,8 +333,6 @@ def _empty_hierarchy(job: _Job):
 
 
 def _open_folder(folder: Path, band: int | None) -> tuple[DEMGrid, int, dict]:
-    from analysis.tiled_stage import open_result_folder
-
     site = open_result_folder(folder, band=band)
     return site.grid, site.connectivity, site.depressions
 
@@ -397,7 +397,6 @@ def write_tiled_hierarchy(
     tile size). ``summary.json`` is written again, listing them (its other
     members kept).
     """
-    from analysis.tiled import serial_map
 
     times: dict[str, float] = {}
     budget = _checked_count(window_cells)
@@ -414,7 +413,6 @@ def write_tiled_hierarchy(
     else:
         if not summary.same_grid(grid.shape, grid.transform):
             raise InvalidDEM(f"the DEM {grid.path} does not have the grid of the analysis in {out}")
-        from analysis.tiled_stage import read_depression_columns
 
         connectivity = summary.connectivity
         table = read_depression_columns(out / _TABLE_FILE)

@@ -37,6 +37,7 @@ window and the outlines.
 
 from __future__ import annotations
 
+import csv
 import dataclasses
 import decimal
 import math
@@ -49,10 +50,9 @@ import numpy as np
 import rasterio
 import rasterio.windows
 
-from analysis import SCREENING_CAUTION
+from analysis import SCREENING_CAUTION, export, stage_export
 from analysis import _stage_kernels as _sk
 from analysis import _tiled_stage_kernels as _k
-from analysis import export
 from analysis.dem import DEMGrid, read_dem_grid
 from analysis.errors import InvalidDEM, InvalidParameter
 from analysis.stage import (
@@ -70,7 +70,6 @@ from analysis.stage import (
     stage_levels,
     stage_table_from_bins,
 )
-from analysis import stage_export
 from analysis.stage_export import (
     _DEPRESSION_STATE_NOTE,
     _STATE_CODES,
@@ -141,7 +140,6 @@ def read_depression_columns(path: str | os.PathLike) -> dict[str, np.ndarray]:
     float64 (empty fields NaN); each value is the number the file was written
     from, so writing it again gives the same text.
     """
-    import csv
 
     with open(path, encoding="utf-8", newline="") as f:
         lines = [line for line in f if not line.startswith("#")]

@@ -15,16 +15,19 @@ import logging
 import secrets
 from pathlib import Path
 
-from flask import Flask, g, jsonify, render_template, request, session
+from flask import Flask, current_app, g, jsonify, render_template, request, session
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
 from analysis import SCREENING_CAUTION
+from analysis.dem import forbid_remote_access
 from analysis.errors import LocationOutsideDEM, SillmarkError
+from analysis.units import VerticalUnit
 from webapp import config as _config
 from webapp import db, layout
 from webapp.jobs import JobRunner
+from webapp.mapview import online_base_layer
 from webapp.render import TileIndexCache
-from webapp.sites import Registry, SiteCache, SiteNotReady, UnknownSite
+from webapp.sites import Registry, SiteCache, SiteNotReady, UnknownSite, parse_level
 
 log = logging.getLogger("sillmark.web")
 
@@ -62,8 +65,6 @@ class Services:
 
 
 def services():
-    from flask import current_app
-
     return current_app.extensions["sillmark"]
 
 
@@ -97,7 +98,6 @@ def create_app(test_config: dict | None = None) -> Flask:
         Settings applied last (over the defaults and the instance config),
         e.g. ``{"DATA_DIR": tmp, "JOB_RUNNER": "inline", "REGISTER_DEMO": False}``.
     """
-    from analysis.dem import forbid_remote_access
 
     forbid_remote_access()  # GDAL fetches nothing over the network in this process or its workers
     settings = dict(_config.DEFAULTS)
@@ -117,7 +117,6 @@ def create_app(test_config: dict | None = None) -> Flask:
     if test_config:
         app.config.update(test_config)
     app.config["DATA_DIR"] = str(data_dir)
-    from webapp.mapview import online_base_layer
 
     base_layer = online_base_layer(app.config)  # refuses a malformed URL before serving
     app.config["CONTENT_SECURITY_POLICY"] = content_security_policy(base_layer.origin if base_layer else None)
@@ -198,7 +197,6 @@ def _install_handlers(app: Flask) -> None:
         text = view_args.get("level", request.args.get("level"))
         if text is None:
             return None
-        from webapp.sites import parse_level
 
         level = parse_level(text)
         site_id = view_args.get("site_id")
@@ -256,7 +254,6 @@ def level_refusal(conn, site_id: int, level: float) -> str | None:
     the highest ground or below the lowest are refused (1e30, a level in the
     wrong unit). A site without results is left to the view (409).
     """
-    from analysis.units import VerticalUnit
 
     if not 0 < site_id < 2**63:  # no such site in SQLite; the view answers 404
         return None

@@ -17,10 +17,18 @@ from pathlib import Path
 from flask import Blueprint, abort, jsonify, request, send_file, url_for
 
 from analysis import SCREENING_CAUTION
+from analysis.asset_export import write_assets_csv, write_assets_geojson
 from analysis.errors import InvalidParameter
+from analysis.export import FILE_NAMES
+from analysis.stage_export import (
+    level_file_names,
+    level_label,
+    write_level,
+    write_stage_table_csv,
+)
 from webapp import db, get_db, layout, render, services
 from webapp.access import open_site, site_assets, site_row
-from webapp.sites import parse_level
+from webapp.sites import parse_level, run_dict
 
 bp = Blueprint("api", __name__, url_prefix="/api")
 
@@ -205,8 +213,6 @@ def what_if(site_id: int):
 
 
 def _result_file(site_id: int, name: str, *, attachment: bool = True):
-    from analysis.export import FILE_NAMES
-
     if name not in FILE_NAMES:
         abort(404, f"no result file {name!r}; the files are: {', '.join(FILE_NAMES)}")
     row = site_row(site_id)
@@ -231,8 +237,6 @@ def result_file(site_id: int, name: str):
 
 def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
     """The export folder of one level, written on first request (write_level + asset files)."""
-    from analysis.asset_export import write_assets_csv, write_assets_geojson
-    from analysis.stage_export import level_file_names, level_label, write_level
 
     label = level_label(level, data.unit)
     base = layout.levels_dir(services().data_dir, site_id, data.run_id)
@@ -269,7 +273,6 @@ def level_file(site_id: int, level: str, kind: str):
         abort(404, f"no level file {kind!r}; choose one of {', '.join(LEVEL_FILES)}")
     _, data = open_site(site_id)
     folder, names = _level_folder(site_id, data, h)
-    from analysis.stage_export import level_label
 
     label = level_label(h, data.unit)
     name = {"assets_csv": f"assets_{label}.csv", "assets_geojson": f"assets_{label}.geojson"}.get(kind)
@@ -284,7 +287,6 @@ def level_file(site_id: int, level: str, kind: str):
 @bp.get("/sites/<int:site_id>/files/level/<level>.zip")
 def level_zip(site_id: int, level: str):
     """Every export at one water level in one ZIP, with the caution as a text file."""
-    from analysis.stage_export import level_label
 
     h = parse_level(level)
     row, data = open_site(site_id)
@@ -306,7 +308,6 @@ def level_zip(site_id: int, level: str):
 @bp.get("/sites/<int:site_id>/files/stage_table.csv")
 def stage_table_csv(site_id: int):
     """The site stage table (the chart's rows) as ``stage_table.csv``."""
-    from analysis.stage_export import write_stage_table_csv
 
     _, data = open_site(site_id)
     path = layout.run_dir(services().data_dir, site_id, data.run_id) / "stage_table.csv"
@@ -323,6 +324,5 @@ def run(run_id: int):
     row = db.get_run(get_db(), run_id)
     if row is None:
         abort(404, f"there is no run {run_id}")
-    from webapp.sites import run_dict
 
     return jsonify({**run_dict(row), "site_id": row["site_id"]})

@@ -22,6 +22,7 @@ asks before listening beyond this machine.
 from __future__ import annotations
 
 import collections
+import datetime as _dt
 import hashlib
 import hmac
 import ipaddress
@@ -30,8 +31,19 @@ import threading
 import time
 from urllib.parse import urlsplit
 
-from flask import (Blueprint, Flask, current_app, jsonify, redirect, render_template, request,
-                   session, url_for)
+from flask import (
+    Blueprint,
+    Flask,
+    current_app,
+    jsonify,
+    redirect,
+    render_template,
+    request,
+    session,
+    url_for,
+)
+
+from webapp import _error, wants_json
 
 bp = Blueprint("auth", __name__)
 
@@ -149,7 +161,6 @@ def check_access():
         return None
     role = current_role()
     if role is None:
-        from webapp import wants_json
 
         if request.method in READ_METHODS and not wants_json():
             return redirect(url_for("auth.signin", next=request.full_path.rstrip("?")), code=303)
@@ -162,8 +173,6 @@ def check_access():
 
 
 def _refuse(status: int, message: str):
-    from webapp import _error
-
     response = _error(status, message)
     if isinstance(response, tuple):
         response = current_app.make_response(response)
@@ -281,7 +290,6 @@ def init_app(app: Flask) -> None:
     Call before any other ``before_request`` hook is registered, so an unsigned
     request is answered 401 before its form token is looked at.
     """
-    import datetime as _dt
 
     check_secrets(app.config)
     app.config["PERMANENT_SESSION_LIFETIME"] = _dt.timedelta(seconds=float(app.config["SIGNIN_LIFETIME"]))

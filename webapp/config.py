@@ -13,6 +13,8 @@ import os
 import secrets
 from pathlib import Path
 
+from flask import Config
+
 #: Environment variable that names the data folder when no other setting does.
 DATA_ENV = "SILLMARK_DATA"
 #: Name of the file in the data folder that holds the installation's secret key.
@@ -99,7 +101,6 @@ def instance_settings(data_dir: Path, test_config: dict | None = None) -> dict:
     the access secrets from the environment where none is configured: what
     ``sillmark serve`` checks before it starts anything.
     """
-    from flask import Config
 
     config = Config(str(data_dir), DEFAULTS)
     config.from_pyfile(INSTANCE_CONFIG, silent=True)

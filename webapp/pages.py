@@ -13,6 +13,7 @@ from webapp import get_db, render, services
 from webapp.access import open_site, site_row
 from webapp.mapview import LEAFLET_VERSION, site_map
 from webapp.sites import UNIT_SOURCE_TEXT, SiteNotReady, parse_level
+from webapp.tiles import warm
 
 bp = Blueprint("pages", __name__)
 
@@ -120,7 +121,6 @@ def print_map(site_id: int):
 
 def _warm(data) -> None:
     """Prepare the tile lookups of a site in the background, once per opened run."""
-    from webapp.tiles import warm
 
     key = (data.site_id, data.run_id)
     with _warm_lock:

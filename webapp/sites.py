@@ -28,11 +28,25 @@ from typing import Any
 
 import numpy as np
 import pyproj
+import rasterio.features
+import shapely.geometry
 
-from analysis import SCREENING_CAUTION
+from analysis import SCREENING_CAUTION, export
+from analysis.assets import assess_assets, raise_sill, read_assets
+from analysis.dem import read_dem
 from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
-from analysis.flood import SpillResult
-from analysis.stage import checked_level
+from analysis.export import crs_label
+from analysis.flood import OUTLET_CODE, SpillResult
+from analysis.hierarchy import site_hierarchy
+from analysis.outlets import build_outlets
+from analysis.stage import (
+    DEPRESSION_CUT_OFF,
+    DEPRESSION_OVERTOPPED,
+    checked_level,
+    depression_states,
+    stage_table,
+    water_level_map,
+)
 from analysis.units import ACRE_FOOT_M3, VerticalUnit
 from webapp import arrays, db, layout, render
 from webapp.tiled_run import engine_settings
@@ -58,7 +72,6 @@ class UnknownSite(SillmarkError, LookupError):
 
 def dem_info(dem, *, file_bytes: int | None = None) -> dict:
     """What the upload page shows about a DEM it read."""
-    from analysis.export import crs_label
 
     valid = dem.valid
     total = dem.rows * dem.cols
@@ -159,7 +172,6 @@ class Registry:
         The file is read first (``InvalidDEM`` and friends propagate, and the
         caller deletes the temporary file); only a readable DEM becomes a site.
         """
-        from analysis.dem import read_dem
 
         dem = read_dem(tmp_path, max_cells=int(self.config["MAX_DEM_CELLS"]))
         info = dem_info(dem, file_bytes=os.path.getsize(tmp_path))
@@ -188,8 +200,6 @@ class Registry:
         unit against the CRS, the outlets on the grid (a water-body GeoJSON
         that misses the DEM is refused). On any error nothing changes.
         """
-        from analysis.dem import read_dem
-        from analysis.outlets import build_outlets
 
         row = self.site(conn, site_id)
         unit = VerticalUnit.parse(vertical_unit)
@@ -276,7 +286,6 @@ class Registry:
             with db.transaction(conn):
                 db.set_setting(conn, "demo_registered", "missing")
             return None
-        from analysis.dem import read_dem
 
         dem = read_dem(dem_src)
         info = dem_info(dem, file_bytes=dem_src.stat().st_size)
@@ -299,7 +308,6 @@ class Registry:
             for src, rel in ((dem_src, dem_rel), (river, river_rel), (assets, assets_rel)):
                 (folder / rel).parent.mkdir(parents=True, exist_ok=True)
                 shutil.copyfile(src, folder / rel)
-            from analysis.assets import read_assets
 
             placed = read_assets(folder / assets_rel, dem)
             conn.execute(
@@ -339,7 +347,6 @@ class Registry:
     def add_assets(self, conn: sqlite3.Connection, site_id: int, dem, tmp_path: Path,
                    original_name: str) -> dict:
         """Read an asset table on the site's DEM and make it the site's active asset set."""
-        from analysis.assets import read_assets
 
         suffix = Path(original_name).suffix.lower()
         if suffix not in (".csv", ".tsv", ".txt", ".geojson", ".json"):
@@ -604,8 +611,6 @@ class SiteData:
 
     def figures(self, level: np.float32, assets_key: Any = None, assets=None) -> dict:
         """Flooded and shielded totals, depression states and asset counts at ``level`` (cached)."""
-        from analysis.stage import (DEPRESSION_CUT_OFF, DEPRESSION_OVERTOPPED, depression_states,
-                                    water_level_map)
 
         key = (float(level), assets_key)
         hit = self._levels.get(key)
@@ -662,7 +667,6 @@ class SiteData:
     def stage_table(self):
         """The site stage table (analysis.stage.StageTable) over the slider's range,
         about :data:`CHART_POINTS` rows."""
-        from analysis.stage import stage_table
 
         rng = self.level_range()
         lo, hi = rng["min"], rng["max"]
@@ -699,11 +703,7 @@ class SiteData:
         so the map shows exactly the cells the flood started from, whatever marked
         them (the DEM edge, nodata, a water-body file or a traced shape).
         """
-        import rasterio.features
-        import shapely.geometry
 
-        from analysis import export
-        from analysis.flood import OUTLET_CODE
 
         mask = np.ascontiguousarray(self.result.flood_tree == OUTLET_CODE, dtype=np.uint8)
         features = []
@@ -772,11 +772,7 @@ class SiteData:
 
     @functools.cached_property
     def hierarchy(self):
-        """The depression hierarchy (analysis.hierarchy), or None where that module is missing."""
-        try:
-            from analysis.hierarchy import site_hierarchy
-        except ImportError:
-            return None
+        """The depression hierarchy of the site (analysis.hierarchy)."""
         with self._engine_lock:
             return site_hierarchy(self.dem, self.result)
 
@@ -787,8 +783,6 @@ class SiteData:
             raise UnknownSite(f"there is no depression {depression_id} on this site "
                               f"(ids run from 1 to {len(t)})")
         h = self.hierarchy
-        if h is None:
-            raise SiteNotReady("per-depression curves need analysis.hierarchy, which is not installed")
         node = h.top_node(depression_id)
         k = depression_id - 1
         pit, spill = float(t.pit_elevation[k]), float(t.spill_elevation[k])
@@ -864,7 +858,6 @@ class SiteData:
 
     def assets(self, key: Any, path: Path):
         """The asset set ``key`` (its file ``path``) placed on this DEM (cached)."""
-        from analysis.assets import read_assets
 
         with self._lock:
             if key not in self._assets:
@@ -872,8 +865,6 @@ class SiteData:
             return self._assets[key]
 
     def asset_table(self, key: Any, assets, level: np.float32):
-        from analysis.assets import assess_assets
-
         cache_key = (key, float(level))
         table = self._asset_tables.get(cache_key)
         if table is None:
@@ -914,8 +905,6 @@ class SiteData:
 
     def what_if(self, key: Any, assets, index: int, height: Any) -> dict:
         """Raise the controlling sill of asset ``index`` by ``height`` and flood again."""
-        from analysis.assets import raise_sill
-        from analysis.flood import OUTLET_CODE
 
         if not 0 <= index < len(assets):
             raise InvalidParameter(f"there is no asset {index}; indices run from 0 to {len(assets) - 1}")

@@ -30,7 +30,13 @@ import types
 from pathlib import Path
 
 import numpy as np
+import rasterio
 
+from analysis.dem import read_dem_grid
+from analysis.flood import SpillResult
+from analysis.tiled import analyse_tiled
+from analysis.tiled_hierarchy import write_tiled_hierarchy
+from analysis.tiled_outlines import add_depression_outlines
 from webapp import db
 from webapp.config import DEFAULTS
 
@@ -104,8 +110,6 @@ class _TileProgress:
 
 
 def _read_band(path: Path) -> np.ndarray:
-    import rasterio
-
     with rasterio.open(path) as ds:
         return ds.read(1)
 
@@ -139,11 +143,6 @@ def analyse_if_large(dem, dem_path: Path, specs: tuple, settings: dict, results:
     threshold = int(DEFAULTS["TILED_ABOVE_CELLS"] if threshold is None else threshold)
     if dem.rows * dem.cols <= threshold:
         return None
-    from analysis.dem import read_dem_grid
-    from analysis.flood import SpillResult
-    from analysis.tiled import analyse_tiled
-    from analysis.tiled_hierarchy import write_tiled_hierarchy
-    from analysis.tiled_outlines import add_depression_outlines
 
     tile = int(settings.get("tile_size") or DEFAULTS["TILED_TILE_SIZE"])
     connectivity = int(settings["connectivity"])

@@ -23,10 +23,13 @@ from urllib.parse import unquote
 from flask import Blueprint, current_app, jsonify, request, url_for
 from werkzeug.exceptions import RequestEntityTooLarge
 
-from analysis.errors import InvalidParameter, SillmarkError
+from analysis.assets import InvalidAssets, read_assets
+from analysis.dem import read_dem_grid
+from analysis.errors import InvalidDEM, InvalidParameter, SillmarkError
+from analysis.export import crs_label
 from webapp import get_db, layout, services
-from webapp.db import StorageError
 from webapp.access import site_row
+from webapp.db import StorageError
 from webapp.sites import SiteNotReady
 
 bp = Blueprint("uploads", __name__, url_prefix="/uploads")
@@ -142,8 +145,6 @@ MIN_SITE_SIDE = 2
 
 def _check_map_size(path: Path) -> None:
     """Refuse a DEM too narrow to map (read from its header; no pixels are read)."""
-    from analysis.dem import read_dem_grid
-    from analysis.errors import InvalidDEM
 
     grid = read_dem_grid(path)
     if grid.rows < MIN_SITE_SIDE or grid.cols < MIN_SITE_SIDE:
@@ -210,8 +211,6 @@ def _starts_with_brace(path: Path) -> bool:
 
 def _check_assets_on_dem(path: Path, name: str, dem) -> None:
     """Refuse an asset table none of whose points lies on the DEM (most often: another CRS)."""
-    from analysis.assets import InvalidAssets, read_assets
-    from analysis.export import crs_label
 
     placed = read_assets(path, dem)
     if len(placed) and all(a.status == "outside DEM" for a in placed):

@@ -23,12 +23,21 @@ import logging
 import math
 import os
 import shutil
+import sqlite3
 import sys
 import time
 import traceback
 from pathlib import Path
 
-from webapp import db, layout
+import numpy as np
+import pyproj
+
+from analysis.dem import read_dem
+from analysis.errors import SillmarkError
+from analysis.export import FILE_NAMES, write_results
+from analysis.flood import analyse_site
+from analysis.outlets import build_outlets
+from webapp import arrays, db, layout, render, tiled_run
 
 log = logging.getLogger("sillmark.worker")
 
@@ -98,8 +107,6 @@ def _specs(site_folder: Path, outlets: list[dict]) -> tuple:
 
 def lonlat_bounds(dem) -> list[float]:
     """[west, south, east, north] in WGS 84 degrees of the DEM's outline."""
-    import numpy as np
-    import pyproj
 
     left, bottom, right, top = dem.bounds
     n = 32
@@ -116,7 +123,6 @@ def lonlat_bounds(dem) -> list[float]:
 
 def _cell_metres(dem) -> tuple:
     """Cell width per row (array) and height, in metres, for the hillshade."""
-    import numpy as np
 
     dx, dy = dem.cell_size
     if dem.is_geographic:
@@ -233,7 +239,6 @@ def _storage_trouble(exc: BaseException, folder: Path | None) -> str | None:
     not as an OSError, so their messages are read too, and the free space left
     in the run's folder decides a write error that says nothing.
     """
-    import sqlite3
 
     for e in _chain(exc):
         if isinstance(e, OSError) and e.errno in _NO_SPACE:
@@ -247,7 +252,6 @@ def _storage_trouble(exc: BaseException, folder: Path | None) -> str | None:
             return "space"
         if "read-only file system" in text or "readonly database" in text:
             return "read-only"
-    from analysis.errors import SillmarkError
 
     chain = list(_chain(exc))
     if any(isinstance(e, (SillmarkError, FileNotFoundError, MemoryError)) for e in chain):
@@ -266,7 +270,6 @@ def _storage_trouble(exc: BaseException, folder: Path | None) -> str | None:
 def failure_message(exc: BaseException, folder: Path | None = None) -> str:
     """What the page says when a run fails: the engine's own words for its errors, and
     plain words for a full disk or a data folder that cannot be written."""
-    from analysis.errors import SillmarkError
 
     trouble = _storage_trouble(exc, folder)
     if trouble == "space":
@@ -295,14 +298,6 @@ def failure_message(exc: BaseException, folder: Path | None = None) -> str:
 
 
 def _run(conn, data: Path, run, folder: Path) -> None:
-    import numpy as np
-
-    from analysis.dem import read_dem
-    from analysis.export import FILE_NAMES, write_results
-    from analysis.flood import analyse_site
-    from analysis.outlets import build_outlets
-    from webapp import arrays, render, tiled_run
-
     run_id = run["id"]
     settings = db.loads(run["settings"])
     site_folder = layout.site_dir(data, run["site_id"])
