@@ -67,7 +67,7 @@ def child(kind: str, path: str, repeat: int) -> dict:
     z = np.load(path)
     outlets = _edge(z.shape)
     if kind == "sillmark":
-        from analysis.flood import priority_flood
+        from sillmark.engine.flood import priority_flood
 
         priority_flood(z[:600, :600].copy(), _edge((600, 600)), tile_size=256)  # compile outside the timing
 

@@ -3,15 +3,15 @@
 1. Writes a SIZE x SIZE float32 terrain (default 20 000 x 20 000, 1.6 GB, an
    uncompressed tiled GeoTIFF) window by window: the generator never holds more
    than one band of rows, so the DEM may be larger than memory.
-2. Analyses it with :func:`analysis.tiled.analyse_tiled` on a LocalCluster of
+2. Analyses it with :func:`sillmark.engine.tiled.analyse_tiled` on a LocalCluster of
    WORKERS worker processes (1 thread each, MEMORY per worker, on 127.0.0.1),
    tiles of TILE cells, and prints the wall time of each step, the aggregate
    Mcells/s, the peak resident memory of every process (this one, which also
    runs the scheduler, the nannies and the workers) and the bytes that moved:
    task arguments sent, results gathered and the workers' own outgoing bytes.
    Then, as ``sillmark analyse --tiles`` does, the depression outlines
-   (:func:`analysis.tiled_outlines.add_depression_outlines`, in this process)
-   and the three hierarchy files (:func:`analysis.tiled_hierarchy.write_tiled_hierarchy`
+   (:func:`sillmark.products.tiled_outlines.add_depression_outlines`, in this process)
+   and the three hierarchy files (:func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy`
    on the same cluster), timed apart: the engine's rate is the issue's target,
    the rate over all eleven files is what a user of the command waits for.
 3. Crops CROP x CROP cells from the terrain and checks that the tiled engine on
@@ -132,9 +132,9 @@ def _process_peaks() -> dict[str, float]:
 
 def _in_memory_child(path: str, tile: int | None) -> None:
     """In a fresh process: the in-memory engine on a DEM file; print time and peak RSS."""
-    from analysis.dem import read_dem
-    from analysis.flood import analyse_site, priority_flood
-    from analysis.outlets import build_outlets
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import analyse_site, priority_flood
+    from sillmark.grid.outlets import build_outlets
 
     dem = read_dem(path, max_cells=2**40)
     outlets = build_outlets(dem, ["edge"])
@@ -162,10 +162,10 @@ def check_crop(crop_path: Path, out: Path, run_map, tile: int) -> dict:
     """Tiled (on the cluster) against in-memory on the crop: every cell and every row."""
     import rasterio
 
-    from analysis.dem import read_dem
-    from analysis.flood import priority_flood
-    from analysis.outlets import build_outlets
-    from analysis.tiled import analyse_tiled
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import priority_flood
+    from sillmark.grid.outlets import build_outlets
+    from sillmark.engine.tiled import analyse_tiled
 
     run = analyse_tiled(crop_path, out, tile_size=tile, map=run_map)
     dem = read_dem(crop_path)
@@ -201,9 +201,9 @@ def check_crop(crop_path: Path, out: Path, run_map, tile: int) -> dict:
 def all_files(run, dem_path: Path, out: Path, run_map, engine_wall: float) -> dict:
     """The outlines and the hierarchy files after the engine, as ``analyse --tiles``
     writes them; times, sizes and the rate over everything."""
-    from analysis.dem import read_dem_grid
-    from analysis.tiled_hierarchy import write_tiled_hierarchy
-    from analysis.tiled_outlines import add_depression_outlines
+    from sillmark.grid.dem import read_dem_grid
+    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
+    from sillmark.products.tiled_outlines import add_depression_outlines
 
     grid = read_dem_grid(dem_path)
     t0 = time.perf_counter()
@@ -245,7 +245,7 @@ def main(argv=None) -> int:
         _in_memory_child(args.in_memory_child, None)
         return 0
 
-    from analysis.tiled import analyse_tiled, dask_map
+    from sillmark.engine.tiled import analyse_tiled, dask_map
 
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="sillmark-bench-"))
     work.mkdir(parents=True, exist_ok=True)

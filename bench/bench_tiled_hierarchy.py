@@ -5,11 +5,11 @@
 Writes the terrain of bench/bench_tiled.py (size x size float32) to a temporary
 folder, runs the tiled engine on it once, then in fresh processes:
 
-- out of core: :func:`analysis.tiled_hierarchy.write_tiled_hierarchy` on the
+- out of core: :func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy` on the
   folder (serial, one batch after another; the DEM check of the folder is
   timed apart);
-- in memory: read the DEM, flood it, then :func:`analysis.hierarchy.site_hierarchy`
-  and the three writers of :mod:`analysis.hierarchy_export` (only these two
+- in memory: read the DEM, flood it, then :func:`sillmark.products.hierarchy.site_hierarchy`
+  and the three writers of :mod:`sillmark.io.hierarchy_files` (only these two
   timed).
 
 Prints wall times, each process's peak resident memory (VmHWM) and whether the
@@ -39,9 +39,9 @@ def _peak_mib() -> float:
 
 
 def out_of_core(folder: str, window_cells: int) -> dict:
-    from analysis.dem import read_dem_grid
-    from analysis.export import read_summary
-    from analysis.tiled_hierarchy import write_tiled_hierarchy
+    from sillmark.grid.dem import read_dem_grid
+    from sillmark.io.export import read_summary
+    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
 
     grid = read_dem_grid(read_summary(folder).dem)
     t0 = time.perf_counter()
@@ -51,11 +51,11 @@ def out_of_core(folder: str, window_cells: int) -> dict:
 
 
 def in_memory(dem_path: str, out: str) -> dict:
-    from analysis import hierarchy_export as hx
-    from analysis.dem import read_dem
-    from analysis.flood import analyse_site
-    from analysis.hierarchy import site_hierarchy
-    from analysis.outlets import build_outlets
+    from sillmark.io import hierarchy_files as hx
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import analyse_site
+    from sillmark.products.hierarchy import site_hierarchy
+    from sillmark.grid.outlets import build_outlets
 
     dem = read_dem(dem_path)
     result = analyse_site(dem, build_outlets(dem, ["edge"]))
@@ -89,8 +89,8 @@ def main() -> None:
         print(json.dumps(out))
         return
 
-    from analysis import hierarchy_export as hx
-    from analysis.tiled import analyse_tiled
+    from sillmark.io import hierarchy_files as hx
+    from sillmark.engine.tiled import analyse_tiled
     sys.path.insert(0, str(ROOT / "bench"))
     from bench_tiled import write_terrain
 

@@ -39,7 +39,7 @@ TARGET_MS = 200.0
 
 def view(bounds, z: int, cols: int = 5, rows: int = 4):
     """The 20 tiles of a cols × rows window centred on the site at zoom z."""
-    from webapp import render
+    from sillmark.web import render
 
     w, s, e, n = bounds
     cx, cy = render.lonlat_to_tile((w + e) / 2, (s + n) / 2, z)
@@ -64,7 +64,7 @@ def main(argv=None) -> int:
 
     import waitress
 
-    from webapp import create_app
+    from sillmark.web import create_app
 
     data = Path(tempfile.mkdtemp(prefix="sillmark-bench-"))
     t0 = time.perf_counter()

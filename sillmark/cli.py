@@ -1,13 +1,13 @@
 """The ``sillmark`` command line.
 
 ``sillmark analyse DEM --out DIR`` reads a DEM, marks its outlets, runs the spill
-engine and writes the result files (see :mod:`analysis.export`), then prints a
+engine and writes the result files (see :mod:`sillmark.io.export`), then prints a
 short summary. ``sillmark stage SOURCE --level H --out DIR`` writes the
 water-level maps at outlet water levels and the stage table (see
-:mod:`analysis.stage_export`), from a DEM or from the folder ``analyse`` wrote;
+:mod:`sillmark.io.stage_files`), from a DEM or from the folder ``analyse`` wrote;
 with ``--assets FILE`` also each asset's state, depth and controlling sill at
 every level, and with ``--raise-sill HEIGHT`` what raising each controlling
-sill would gain (see :mod:`analysis.assets`, :mod:`analysis.asset_export`).
+sill would gain (see :mod:`sillmark.products.assets`, :mod:`sillmark.io.asset_files`).
 Errors Sillmark expects (bad input, unwritable output) end the run with one line
 ``sillmark: error: ...`` on stderr and exit status 2.
 
@@ -191,7 +191,7 @@ def _positive_int(text: str) -> int:
 
 
 def _tile_cells(text: str) -> int:
-    from analysis.tiled import MAX_TILE_SIZE
+    from sillmark.engine.tiled import MAX_TILE_SIZE
 
     value = _positive_int(text)
     if value > MAX_TILE_SIZE:
@@ -405,7 +405,7 @@ def _add_tiled_options(parser: argparse.ArgumentParser, tiles_help: str) -> None
 
 def _add_site_options(parser: argparse.ArgumentParser, *, connectivity_default: int | None) -> None:
     """Options that say how to read a DEM and run the engine on it (analyse, stage)."""
-    from analysis.dem import DEFAULT_MAX_CELLS
+    from sillmark.grid.dem import DEFAULT_MAX_CELLS
 
     parser.add_argument(
         "--outlet",
@@ -470,7 +470,7 @@ def _area_volume_symbols(stream: TextIO) -> tuple[str, str]:
 
 def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
     """The site and its outlets, as the first lines of every command's summary."""
-    from analysis.units import VerticalUnit
+    from sillmark.units import VerticalUnit
 
     unit = VerticalUnit.parse(dem.vertical_unit)
     rows, cols = dem.shape
@@ -488,8 +488,8 @@ def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
 
 def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], stream: TextIO,
                    hierarchy=None) -> list[str]:
-    from analysis import SCREENING_CAUTION
-    from analysis.units import ACRE_FOOT_M3, VerticalUnit
+    from sillmark import SCREENING_CAUTION
+    from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 
     m2, m3 = _area_volume_symbols(stream)
     unit = VerticalUnit.parse(dem.vertical_unit)
@@ -523,7 +523,7 @@ def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], strea
 
 def _hierarchy_line(hierarchy) -> str:
     """Nodes, pits and nesting depth of the depression hierarchy (in memory, or the
-    counts of analysis.tiled_hierarchy.TiledHierarchy)."""
+    counts of sillmark.products.tiled_hierarchy.TiledHierarchy)."""
     if hasattr(hierarchy, "depth"):
         nodes, pits, levels = hierarchy.nodes, hierarchy.pits, hierarchy.depth
     else:
@@ -540,7 +540,7 @@ def _hierarchy_line(hierarchy) -> str:
 
 
 def _volume_text(volume_m3: float, unit, m3: str) -> str:
-    from analysis.units import ACRE_FOOT_M3
+    from sillmark.units import ACRE_FOOT_M3
 
     text = f"{_number(volume_m3)} {m3}"
     if unit.is_feet:
@@ -551,9 +551,9 @@ def _volume_text(volume_m3: float, unit, m3: str) -> str:
 def _stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, origin: str | None,
                  stream: TextIO, *, assets=None, asset_levels=(), what_if=None,
                  what_if_path: Path | None = None) -> list[str]:
-    from analysis import SCREENING_CAUTION
-    from analysis.stage_export import level_text
-    from analysis.units import VerticalUnit
+    from sillmark import SCREENING_CAUTION
+    from sillmark.io.stage_files import level_text
+    from sillmark.units import VerticalUnit
 
     m2, m3 = _area_volume_symbols(stream)
     unit = VerticalUnit.parse(dem.vertical_unit)
@@ -614,7 +614,7 @@ def _xy_text(dem, x: float, y: float, stream: TextIO) -> str:
 
 def _assets_line(assets, asset_levels) -> str:
     """How many assets were read and how many have no figures, once for all levels."""
-    from analysis.assets import STATUS_OK
+    from sillmark.products.assets import STATUS_OK
 
     source = assets.source
     if not asset_levels:
@@ -636,8 +636,8 @@ def _asset_level_lines(table, dem, stream: TextIO) -> list[str]:
     with their depth, and the next to flood with their onset stage and sill."""
     import numpy as np
 
-    from analysis.assets import STATE_DRY, STATE_FLOODED, STATE_SHIELDED
-    from analysis.stage_export import level_text
+    from sillmark.products.assets import STATE_DRY, STATE_FLOODED, STATE_SHIELDED
+    from sillmark.io.stage_files import level_text
 
     sym = table.unit.symbol
     state = table.state
@@ -677,9 +677,9 @@ def _asset_name(table, k: int, state: str = "") -> str:
 
 
 def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
-    from analysis.export import horizontal_unit_suffix, unit_suffix
-    from analysis.stage_export import level_text
-    from analysis.units import VerticalUnit
+    from sillmark.io.export import horizontal_unit_suffix, unit_suffix
+    from sillmark.io.stage_files import level_text
+    from sillmark.units import VerticalUnit
 
     unit = VerticalUnit.parse(dem.vertical_unit)
     sym = unit.symbol
@@ -794,9 +794,9 @@ def _site_from_dem(dem_path: str, args: argparse.Namespace, progress: _Progress)
     The DEM is read by its absolute path, so that ``summary.json`` records a path
     that still leads to it from another working folder.
     """
-    from analysis.dem import read_dem
-    from analysis.flood import analyse_site
-    from analysis.outlets import build_outlets
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import analyse_site
+    from sillmark.grid.outlets import build_outlets
 
     connectivity = 8 if args.connectivity is None else args.connectivity
     progress.start("read")
@@ -830,10 +830,10 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
     import numpy as np
     import rasterio
 
-    from analysis.dem import read_dem
-    from analysis.errors import InvalidDEM, InvalidParameter
-    from analysis.flood import OUTLET_CODE, analyse_site
-    from analysis.outlets import Outlets
+    from sillmark.grid.dem import read_dem
+    from sillmark.errors import InvalidDEM, InvalidParameter
+    from sillmark.engine.flood import OUTLET_CODE, analyse_site
+    from sillmark.grid.outlets import Outlets
 
     given = [option for option, value in (
         ("--outlet", args.outlets), ("--connectivity", args.connectivity),
@@ -845,7 +845,7 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
             f"is a DEM; the analysis in {folder} keeps its own settings: drop "
             f"{'it' if len(given) == 1 else 'them'}, or give the DEM file as SOURCE"
         )
-    from analysis.export import read_summary
+    from sillmark.io.export import read_summary
 
     summary = read_summary(folder)
     rows, cols = summary.shape
@@ -897,13 +897,13 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
 
 
 def _run_analyse(args: argparse.Namespace) -> int:
-    from analysis.export import write_results
-    from analysis.hierarchy import site_hierarchy
+    from sillmark.io.export import write_results
+    from sillmark.products.hierarchy import site_hierarchy
 
     if args.tiles is not None:
         return _run_analyse_tiled(args)
     if args.scheduler is not None or args.workers is not None:
-        from analysis.errors import InvalidParameter
+        from sillmark.errors import InvalidParameter
 
         option = "--scheduler" if args.scheduler is not None else "--workers"
         raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
@@ -925,22 +925,22 @@ def _run_analyse(args: argparse.Namespace) -> int:
 
 _TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
                  "join": "join depressions", "write": "write"}
-#: Steps of analysis.tiled_hierarchy.write_tiled_hierarchy (``analyse --tiles``).
+#: Steps of sillmark.products.tiled_hierarchy.write_tiled_hierarchy (``analyse --tiles``).
 _HIERARCHY_STEPS = {"hierarchy": "depression hierarchy", "hierarchy_files": "format hierarchy",
                     "hierarchy_write": "write hierarchy files"}
 
 
 def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progress: _Progress,
                   then=None):
-    """Run :func:`analysis.tiled.analyse_tiled` on the cluster the options name; return
+    """Run :func:`sillmark.engine.tiled.analyse_tiled` on the cluster the options name; return
     the run, the DEM's grid and a line naming the engine.
 
     ``then(run, grid, run_map, step)``, if given, runs next on the same cluster
     (``step`` is the progress callback of the tiled steps); its result is returned
     fourth."""
-    from analysis.dem import read_dem_grid
-    from analysis.errors import InvalidParameter
-    from analysis.tiled import analyse_tiled, dask_map
+    from sillmark.grid.dem import read_dem_grid
+    from sillmark.errors import InvalidParameter
+    from sillmark.engine.tiled import analyse_tiled, dask_map
 
     if args.max_cells is not None:
         raise InvalidParameter("--max-cells guards the memory of the in-memory engine; the tiled "
@@ -980,9 +980,9 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     hierarchy files in windows of depressions on the same cluster."""
     import types
 
-    from analysis.export import FILE_NAMES
-    from analysis.tiled_hierarchy import write_tiled_hierarchy
-    from analysis.tiled_outlines import add_depression_outlines
+    from sillmark.io.export import FILE_NAMES
+    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
+    from sillmark.products.tiled_outlines import add_depression_outlines
 
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
@@ -1012,7 +1012,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
 
 def _stage_request(args: argparse.Namespace) -> None:
     """Checks of the stage options that need no DEM, made before anything is read."""
-    from analysis.errors import InvalidParameter
+    from sillmark.errors import InvalidParameter
 
     levels = args.levels or []
     if len(levels) > MAX_LEVELS:
@@ -1044,9 +1044,9 @@ def _level_checks(result, dem, args: argparse.Namespace) -> dict[float, list[str
 def _level_notes(vertical_unit, z_low: float, z_high: float, lowest: float,
                  args: argparse.Namespace) -> dict[float, list[str]]:
     """:func:`_level_checks` from the lowest and highest ground and the lowest onset stage."""
-    from analysis.errors import InvalidParameter
-    from analysis.stage_export import level_text, unique_levels
-    from analysis.units import VerticalUnit
+    from sillmark.errors import InvalidParameter
+    from sillmark.io.stage_files import level_text, unique_levels
+    from sillmark.units import VerticalUnit
 
     unit = VerticalUnit.parse(vertical_unit)
     sym = unit.symbol
@@ -1084,15 +1084,15 @@ def _level_notes(vertical_unit, z_low: float, z_high: float, lowest: float,
 
 
 def _run_stage(args: argparse.Namespace) -> int:
-    from analysis.stage import stage_levels
-    from analysis.stage_export import write_stage_results
+    from sillmark.products.stage import stage_levels
+    from sillmark.io.stage_files import write_stage_results
 
     _stage_request(args)
     source = Path(args.source)
     if args.tiles is not None or _tiled_folder(source):
         return _run_stage_tiled(args)
     if args.scheduler is not None or args.workers is not None:
-        from analysis.errors import InvalidParameter
+        from sillmark.errors import InvalidParameter
 
         option = "--scheduler" if args.scheduler is not None else "--workers"
         raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
@@ -1112,7 +1112,7 @@ def _run_stage(args: argparse.Namespace) -> int:
                                         stop=args.table_to)
         assets = what_if = None
         if args.assets is not None:
-            from analysis.assets import read_assets
+            from sillmark.products.assets import read_assets
 
             assets = read_assets(args.assets, dem)
             if args.raise_sill is not None:
@@ -1157,8 +1157,8 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
     import types
     import uuid
 
-    from analysis.errors import InvalidParameter
-    from analysis.tiled_stage import open_result_folder, tiled_stage_levels, write_tiled_stage_results
+    from sillmark.errors import InvalidParameter
+    from sillmark.products.tiled_stage import open_result_folder, tiled_stage_levels, write_tiled_stage_results
 
     source = Path(args.source)
     if args.assets is not None:
@@ -1222,8 +1222,8 @@ LIST_SILLS = 10
 
 def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -> list:
     """Assess the assets at every written level and write their two files; return the tables."""
-    from analysis.asset_export import asset_file_names, write_assets_csv, write_assets_geojson
-    from analysis.assets import assess_assets
+    from sillmark.io.asset_files import asset_file_names, write_assets_csv, write_assets_geojson
+    from sillmark.products.assets import assess_assets
 
     tables = []
     for level in written.levels:
@@ -1249,8 +1249,8 @@ class _WhatIfRun:
 
 def _what_if_rows(result, dem, outlets, assets, height: float) -> _WhatIfRun:
     """Raise every distinct controlling sill of the assets once; keep light rows only."""
-    from analysis.asset_export import what_if_row
-    from analysis.assets import STATUS_OK, raise_sills
+    from sillmark.io.asset_files import what_if_row
+    from sillmark.products.assets import STATUS_OK, raise_sills
 
     behind: dict[tuple[int, int], int] = {}
     own = no_figures = 0
@@ -1276,7 +1276,7 @@ def _what_if_rows(result, dem, outlets, assets, height: float) -> _WhatIfRun:
 
 
 def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress) -> Path:
-    from analysis.asset_export import what_if_file_name, write_what_if_csv
+    from sillmark.io.asset_files import what_if_file_name, write_what_if_csv
 
     name = what_if_file_name(height, dem.vertical_unit)
     notes = []
@@ -1294,9 +1294,9 @@ def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress)
 
 def serve_refusal(args: argparse.Namespace) -> str | None:
     """Why ``sillmark serve`` with ``args`` must not start, or None: a host beyond this
-    machine without an access secret, or unusable secrets (see webapp.auth)."""
-    from webapp import auth
-    from webapp import config as web_config
+    machine without an access secret, or unusable secrets (see sillmark.web.auth)."""
+    from sillmark.web import auth
+    from sillmark.web import config as web_config
 
     options = {"DATA_DIR": args.data} if args.data is not None else {}
     data_dir = web_config.data_dir_from({**web_config.DEFAULTS, **options})
@@ -1306,7 +1306,7 @@ def serve_refusal(args: argparse.Namespace) -> str | None:
 def _run_serve(args: argparse.Namespace) -> int:
     import waitress
 
-    from webapp import auth, create_app
+    from sillmark.web import auth, create_app
 
     refusal = serve_refusal(args)
     if refusal is not None:
@@ -1357,7 +1357,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     import rasterio.errors
 
-    from analysis.errors import SillmarkError
+    from sillmark.errors import SillmarkError
 
     try:
         return args.run(args)

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from analysis.dem import DEM, dem_from_array
+from sillmark.grid.dem import DEM, dem_from_array
 from tests.rasters import write_raster
 from tests.web_support import fresh, lowbank_tif, ready, reference  # noqa: F401  (web test fixtures)
 

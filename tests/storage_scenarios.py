@@ -26,7 +26,7 @@ import numpy as np
 
 from tests.rasters import grid, write_raster
 from tests.web_support import Client, analysed_site, make_app, upload_dem, write_lowbank
-from webapp import layout
+from sillmark.web import layout
 
 #: Side of the DEM of the full-disk scenario: its results need several MiB.
 FULL_DISK_SIDE = 700
@@ -53,7 +53,7 @@ def sha(data: bytes) -> str:
 
 
 def served(client: Client, site_id: int) -> dict:
-    from analysis.export import FILE_NAMES
+    from sillmark.io.export import FILE_NAMES
 
     out = {}
     for name in FILE_NAMES:
@@ -63,7 +63,7 @@ def served(client: Client, site_id: int) -> dict:
 
 
 def tile(client: Client, site_id: int) -> str:
-    from webapp import render
+    from sillmark.web import render
 
     w, s, e, n = client.get(f"/api/sites/{site_id}").get_json()["summary"]["lonlat_bounds"]
     x, y = render.lonlat_to_tile((w + e) / 2, (s + n) / 2, 17)

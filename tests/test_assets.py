@@ -1,4 +1,4 @@
-"""Tests of analysis.assets and analysis.asset_export: when each asset gets wet, and why.
+"""Tests of sillmark.products.assets and sillmark.io.asset_files: when each asset gets wet, and why.
 
 Outside references used here, each named beside its check:
 - hand-worked DEMs (the working is in the comments);
@@ -28,8 +28,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from analysis import SCREENING_CAUTION
-from analysis.asset_export import (
+from sillmark import SCREENING_CAUTION
+from sillmark.io.asset_files import (
     FEATURE_ASSET,
     FEATURE_ROUTE,
     FEATURE_SILL,
@@ -37,7 +37,7 @@ from analysis.asset_export import (
     write_assets_csv,
     write_assets_geojson,
 )
-from analysis.assets import (
+from sillmark.products.assets import (
     Assets,
     InvalidAssets,
     assess_assets,
@@ -46,10 +46,10 @@ from analysis.assets import (
     read_assets,
     sill_crest,
 )
-from analysis.dem import dem_from_array, read_dem
-from analysis.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
-from analysis.flood import analyse_site
-from analysis.outlets import Outlets, build_outlets
+from sillmark.grid.dem import dem_from_array, read_dem
+from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
+from sillmark.engine.flood import analyse_site
+from sillmark.grid.outlets import Outlets, build_outlets
 from tests.textbook_flood import minimax_stage
 
 REPO = Path(__file__).resolve().parents[1]

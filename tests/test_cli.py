@@ -12,8 +12,8 @@ import pytest
 import rasterio
 from affine import Affine
 
-from analysis import SCREENING_CAUTION
-from analysis.export import FILE_NAMES
+from sillmark import SCREENING_CAUTION
+from sillmark.io.export import FILE_NAMES
 from sillmark import __version__
 from sillmark.cli import main
 

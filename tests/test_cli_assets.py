@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from analysis import SCREENING_CAUTION
+from sillmark import SCREENING_CAUTION
 from tests.test_cli import assert_one_line_error, run_cli, write_dem
 
 # The grid of tests.test_cli: 5 m cells, north-west corner at (500000, 5000000),
@@ -140,16 +140,16 @@ def basin_assets(tmp_path: Path) -> Path:
 
 def test_raising_the_lower_gap_lets_the_higher_one_control(capsys, monkeypatch, ridge_tif,
                                                            basin_assets, tmp_path):
-    import analysis.assets
+    import sillmark.products.assets
 
     floods = []
-    original = analysis.assets.priority_flood
+    original = sillmark.products.assets.priority_flood
 
     def counted(*args, **kwargs):
         floods.append(1)
         return original(*args, **kwargs)
 
-    monkeypatch.setattr(analysis.assets, "priority_flood", counted)
+    monkeypatch.setattr(sillmark.products.assets, "priority_flood", counted)
     out_dir = tmp_path / "s"
     code, out, err = run_cli(capsys, "stage", str(ridge_tif), "--level", "2.8", "--assets",
                              str(basin_assets), "--raise-sill", "2", "--out", str(out_dir))

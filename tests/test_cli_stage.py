@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 import rasterio
 
-from analysis import SCREENING_CAUTION
-from analysis.stage import water_level_map
+from sillmark import SCREENING_CAUTION
+from sillmark.products.stage import water_level_map
 from tests.test_cli import SITE, assert_one_line_error, run_cli, write_dem
 
 #: Files of one level, with {h} the level's label.
@@ -130,9 +130,9 @@ def test_folder_with_file_outlets_and_four_neighbours_gives_identical_files(caps
 
 
 def test_rasters_hold_the_water_level_map(capsys, dem_tif, tmp_path):
-    from analysis.dem import read_dem
-    from analysis.flood import analyse_site
-    from analysis.outlets import build_outlets
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import analyse_site
+    from sillmark.grid.outlets import build_outlets
 
     assert run_cli(capsys, "stage", str(dem_tif), "--level", "4.5", "--out", str(tmp_path / "s"))[0] == 0
     dem = read_dem(dem_tif)

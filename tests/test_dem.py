@@ -1,4 +1,4 @@
-"""Tests for analysis.dem: reading, value handling, vertical units, areas, coordinates."""
+"""Tests for sillmark.grid.dem: reading, value handling, vertical units, areas, coordinates."""
 
 from __future__ import annotations
 
@@ -15,9 +15,9 @@ from affine import Affine
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from analysis.dem import DEFAULT_MAX_CELLS, DEM, dem_from_array, read_dem
-from analysis.errors import InvalidDEM, InvalidParameter, LocationOutsideDEM
-from analysis.units import VerticalUnit
+from sillmark.grid.dem import DEFAULT_MAX_CELLS, DEM, dem_from_array, read_dem
+from sillmark.errors import InvalidDEM, InvalidParameter, LocationOutsideDEM
+from sillmark.units import VerticalUnit
 from tests.rasters import NORTH, UTM33, WEST, grid
 
 # A compound CRS whose vertical axis is in international feet, written by hand
@@ -150,7 +150,7 @@ def test_float32_nodata_written_as_rounded_text_still_matches(write_tif):
         dst.nodata = float(lowest)
     dem = read_dem(path)
     assert dem.valid.tolist() == [[False, True]]
-    from analysis.dem import _nodata_mask
+    from sillmark.grid.dem import _nodata_mask
 
     assert _nodata_mask(z, -3.4028235e38).tolist() == [[True, False]]
 

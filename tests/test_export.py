@@ -1,4 +1,4 @@
-"""Tests for analysis.export: GeoTIFF, CSV, GeoJSON and summary files of a site run."""
+"""Tests for sillmark.io.export: GeoTIFF, CSV, GeoJSON and summary files of a site run."""
 
 from __future__ import annotations
 
@@ -17,13 +17,13 @@ import shapely.geometry
 from affine import Affine
 from rasterio.enums import Compression
 
-from analysis import SCREENING_CAUTION
-from analysis import export
-from analysis.dem import dem_from_array
-from analysis.errors import InvalidParameter
-from analysis.flood import analyse_site
-from analysis.outlets import build_outlets
-from analysis.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark import SCREENING_CAUTION
+from sillmark.io import export
+from sillmark.grid.dem import dem_from_array
+from sillmark.errors import InvalidParameter
+from sillmark.engine.flood import analyse_site
+from sillmark.grid.outlets import build_outlets
+from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 from sillmark import __version__
 
 
@@ -364,7 +364,7 @@ def test_polygon_areas_match_the_table_on_a_geographic_dem(tmp_path):
     floating-point noise; what remains is the outlines' parallel edges being
     geodesics, which for edges a few 1e-4 degree long bow by far less than the
     1e-6 tolerance (the table's cell areas follow the parallels, see
-    analysis.dem)."""
+    sillmark.grid.dem)."""
     z = site_elevation()
     transform = Affine(1e-4, 0.0, 15.0, 0.0, -1e-4, 45.0)
     dem, _, result = run(z, transform=transform, crs="EPSG:4326")

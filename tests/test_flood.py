@@ -1,4 +1,4 @@
-"""Tests of the spill engine (analysis.flood).
+"""Tests of the spill engine (sillmark.engine.flood).
 
 Outside references used here, each named beside its check:
 - hand-worked DEMs (the working is in the comments);
@@ -19,8 +19,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
-from analysis.flood import OUTLET_CODE, DIRECTION_COL, DIRECTION_ROW, priority_flood
+from sillmark.errors import InvalidDEM, InvalidOutlets, InvalidParameter, LocationOutsideDEM
+from sillmark.engine.flood import OUTLET_CODE, DIRECTION_COL, DIRECTION_ROW, priority_flood
 from tests.textbook_flood import canonical_spills, components, minimax_stage
 
 N = math.nan
@@ -501,7 +501,7 @@ def test_tiling_changes_nothing_but_the_tied_flood_tree(case):
 @given(small_dems())
 def test_spill_points_follow_the_rule_read_literally(case):
     # tests/textbook_flood.canonical_spills reads the spill rule of the
-    # analysis.flood docstring literally, with Python sets and BFS.
+    # sillmark.engine.flood docstring literally, with Python sets and BFS.
     z, outlets, conn, tile = case
     r = priority_flood(z, outlets, connectivity=conn, tile_size=tile)
     want = canonical_spills(z, r.onset_stage, r.depression_id, outlets, conn)

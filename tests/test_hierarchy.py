@@ -1,8 +1,8 @@
-"""Tests of the depression hierarchy and its stage curves (analysis.hierarchy).
+"""Tests of the depression hierarchy and its stage curves (sillmark.products.hierarchy).
 
 Outside references used here, each named beside its check:
 - hand-worked DEMs (the working is in the comments);
-- the spill engine's own depression table (analysis.flood.SpillResult), which the
+- the spill engine's own depression table (sillmark.engine.flood.SpillResult), which the
   tops of the hierarchy must reproduce;
 - a slow, separate implementation of the construction described by Barnes,
   Callaghan & Wickert (2020, Earth Surf. Dynam. 8, 431-445,
@@ -34,12 +34,12 @@ from affine import Affine
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from analysis import _hierarchy_kernels as kernels
-from analysis.dem import dem_from_array
-from analysis.errors import InvalidParameter, SillmarkError
-from analysis.flood import priority_flood
-from analysis.hierarchy import depression_hierarchy, site_hierarchy
-from analysis.units import VerticalUnit
+from sillmark.products import _hierarchy_kernels as kernels
+from sillmark.grid.dem import dem_from_array
+from sillmark.errors import InvalidParameter, SillmarkError
+from sillmark.engine.flood import priority_flood
+from sillmark.products.hierarchy import depression_hierarchy, site_hierarchy
+from sillmark.units import VerticalUnit
 from tests.textbook_flood import EIGHT, FOUR, components
 
 
@@ -623,7 +623,7 @@ def test_curves_of_every_node_at_once_equal_them_node_by_node(case):
 
 @contextlib.contextmanager
 def plain_python_kernels():
-    """Swap the compiled kernels of analysis._hierarchy_kernels for their Python source."""
+    """Swap the compiled kernels of sillmark.products._hierarchy_kernels for their Python source."""
     names = ["sweep", "postorder", "bucket", "segments", "curve_at", "curves_at", "full_curve"]
     saved = {name: getattr(kernels, name) for name in names}
     try:

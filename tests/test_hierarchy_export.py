@@ -1,4 +1,4 @@
-"""Tests for analysis.hierarchy_export: the node table as CSV and JSON, and the curves file."""
+"""Tests for sillmark.io.hierarchy_files: the node table as CSV and JSON, and the curves file."""
 
 from __future__ import annotations
 
@@ -9,15 +9,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from analysis import SCREENING_CAUTION
-from analysis import hierarchy_export as he
-from analysis.dem import dem_from_array
-from analysis.errors import InvalidParameter
-from analysis.export import FILE_NAMES, write_results
-from analysis.flood import analyse_site
-from analysis.hierarchy import site_hierarchy
-from analysis.outlets import build_outlets
-from analysis.units import ACRE_FOOT_M3
+from sillmark import SCREENING_CAUTION
+from sillmark.io import hierarchy_files as he
+from sillmark.grid.dem import dem_from_array
+from sillmark.errors import InvalidParameter
+from sillmark.io.export import FILE_NAMES, write_results
+from sillmark.engine.flood import analyse_site
+from sillmark.products.hierarchy import site_hierarchy
+from sillmark.grid.outlets import build_outlets
+from sillmark.units import ACRE_FOOT_M3
 from tests.rasters import grid
 
 

@@ -22,9 +22,9 @@ SCRIPT = textwrap.dedent(
     """
     from pathlib import Path
     import numpy as np
-    from analysis.flood import priority_flood
-    from analysis.stage import stage_table, water_level_map
-    from analysis.hierarchy import depression_hierarchy
+    from sillmark.engine.flood import priority_flood
+    from sillmark.products.stage import stage_table, water_level_map
+    from sillmark.products.hierarchy import depression_hierarchy
 
     rng = np.random.default_rng(5)
     for shape, conn, tile in [((23, 31), 8, 4), ((17, 9), 4, 3), ((1, 12), 8, 5), ((9, 1), 4, 2)]:
@@ -45,8 +45,8 @@ SCRIPT = textwrap.dedent(
 
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.
     import tempfile
-    from analysis.tiled import analyse_tiled
-    from analysis.tiled_hierarchy import write_tiled_hierarchy
+    from sillmark.engine.tiled import analyse_tiled
+    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
     from tests.rasters import write_raster
     with tempfile.TemporaryDirectory() as tmp:
         z = rng.integers(0, 6, (13, 11)).astype(np.float32)

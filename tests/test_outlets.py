@@ -1,4 +1,4 @@
-"""Tests for analysis.outlets: edge, nodata, GeoJSON and mask outlets, and combinations."""
+"""Tests for sillmark.grid.outlets: edge, nodata, GeoJSON and mask outlets, and combinations."""
 
 from __future__ import annotations
 
@@ -14,9 +14,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from analysis.dem import dem_from_array
-from analysis.errors import InvalidOutlets, InvalidParameter
-from analysis.outlets import (
+from sillmark.grid.dem import dem_from_array
+from sillmark.errors import InvalidOutlets, InvalidParameter
+from sillmark.grid.outlets import (
     Outlets,
     build_outlets,
     edge_outlets,

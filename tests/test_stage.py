@@ -1,4 +1,4 @@
-"""Tests of water-level maps and the site stage table (analysis.stage)."""
+"""Tests of water-level maps and the site stage table (sillmark.products.stage)."""
 
 from __future__ import annotations
 
@@ -7,9 +7,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from analysis.errors import InvalidParameter
-from analysis.flood import priority_flood
-from analysis.stage import (
+from sillmark.errors import InvalidParameter
+from sillmark.engine.flood import priority_flood
+from sillmark.products.stage import (
     DEPRESSION_CUT_OFF,
     DEPRESSION_DRY,
     DEPRESSION_OVERTOPPED,
@@ -22,7 +22,7 @@ from analysis.stage import (
     stage_table,
     water_level_map,
 )
-from analysis.units import VerticalUnit
+from sillmark.units import VerticalUnit
 from tests.test_flood import edge_mask, grid
 
 # River (edge cells at 1, left) | ridge at 6 (col 3) | low ground at 2-3, as in

@@ -1,4 +1,4 @@
-"""Tests for analysis.stage_export: water-level rasters, outlines and stage tables as files."""
+"""Tests for sillmark.io.stage_files: water-level rasters, outlines and stage tables as files."""
 
 from __future__ import annotations
 
@@ -18,12 +18,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from rasterio.enums import Compression
 
-from analysis import SCREENING_CAUTION
-from analysis import export
-from analysis import stage_export as se
-from analysis.dem import dem_from_array
-from analysis.errors import InvalidParameter
-from analysis.stage import (
+from sillmark import SCREENING_CAUTION
+from sillmark.io import export
+from sillmark.io import stage_files as se
+from sillmark.grid.dem import dem_from_array
+from sillmark.errors import InvalidParameter
+from sillmark.products.stage import (
     CLASS_NAMES,
     DRY,
     FLOODED,
@@ -34,7 +34,7 @@ from analysis.stage import (
     stage_table,
     water_level_map,
 )
-from analysis.units import ACRE_FOOT_M3
+from sillmark.units import ACRE_FOOT_M3
 from sillmark import __version__
 from tests.test_export import UTM33, polygons_of, read_csv, run, signed_area, site_elevation
 

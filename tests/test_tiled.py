@@ -1,7 +1,7 @@
-"""Tests of the out-of-core tiled engine (analysis.tiled) against the in-memory engine.
+"""Tests of the out-of-core tiled engine (sillmark.engine.tiled) against the in-memory engine.
 
 The reference for every check is Sillmark's own in-memory engine
-(:func:`analysis.flood.priority_flood`), which the suite checks elsewhere against
+(:func:`sillmark.engine.flood.priority_flood`), which the suite checks elsewhere against
 a textbook minimax Dijkstra, scikit-image and pysheds. With the same tile size
 the tiled engine must give the very same bits: onset stage, flood tree,
 depression ids, every column of the depression table (hence every route and its
@@ -9,7 +9,7 @@ controlling sill) and the result files. The tile-independent part (onset stage,
 ids, pits, counts, areas, volumes, spill elevations) must also equal the
 in-memory engine at its default tile size.
 
-Most runs use :func:`analysis.tiled.serial_map`; the last tests run the same
+Most runs use :func:`sillmark.engine.tiled.serial_map`; the last tests run the same
 cases on a dask.distributed LocalCluster of two worker processes on 127.0.0.1.
 """
 
@@ -23,9 +23,9 @@ import pytest
 import rasterio
 from affine import Affine
 
-from analysis.dem import read_dem
-from analysis.errors import InvalidDEM, InvalidOutlets, InvalidParameter
-from analysis.export import (
+from sillmark.grid.dem import read_dem
+from sillmark.errors import InvalidDEM, InvalidOutlets, InvalidParameter
+from sillmark.io.export import (
     write_depression_ids,
     write_depressions_csv,
     write_fill_depth,
@@ -33,9 +33,9 @@ from analysis.export import (
     write_onset_stage,
     write_spill_points_geojson,
 )
-from analysis.flood import SpillResult, priority_flood
-from analysis.outlets import build_outlets
-from analysis.tiled import TILED_FILE_NAMES, analyse_tiled, serial_map
+from sillmark.engine.flood import SpillResult, priority_flood
+from sillmark.grid.outlets import build_outlets
+from sillmark.engine.tiled import TILED_FILE_NAMES, analyse_tiled, serial_map
 from tests.loopback import loopback_cluster
 from tests.rasters import write_raster
 from tests.test_flood import TWIN_BOWLS, synthetic_terrain
@@ -343,7 +343,7 @@ def test_bad_input_gets_the_in_memory_errors(tmp_path):
 @pytest.fixture(scope="module")
 def cluster_map():
     """A dask.distributed LocalCluster: 2 worker processes, 1 thread each, on 127.0.0.1."""
-    from analysis.tiled import dask_map
+    from sillmark.engine.tiled import dask_map
 
     with loopback_cluster(2) as cluster, dask_map(scheduler=cluster.scheduler_address) as run_map:
         yield run_map

@@ -1,8 +1,8 @@
-"""The hierarchy files out of core (analysis.tiled_hierarchy) against the in-memory files.
+"""The hierarchy files out of core (sillmark.products.tiled_hierarchy) against the in-memory files.
 
 The reference is Sillmark's own in-memory path on the same DEM and outlets:
-:func:`analysis.flood.priority_flood`, :func:`analysis.hierarchy.site_hierarchy`
-and the writers of :mod:`analysis.hierarchy_export` (the in-memory hierarchy is
+:func:`sillmark.engine.flood.priority_flood`, :func:`sillmark.products.hierarchy.site_hierarchy`
+and the writers of :mod:`sillmark.io.hierarchy_files` (the in-memory hierarchy is
 checked elsewhere against hand-worked DEMs, a separate basin construction after
 Barnes, Callaghan & Wickert 2020, and closed-form volumes). The three files
 written from a tiled folder, window of depressions by window, must be the same
@@ -20,14 +20,14 @@ import pytest
 import rasterio
 from affine import Affine
 
-from analysis import hierarchy_export as hx
-from analysis.dem import read_dem
-from analysis.errors import InvalidDEM, InvalidParameter
-from analysis.flood import priority_flood
-from analysis.hierarchy import site_hierarchy
-from analysis.outlets import build_outlets
-from analysis.tiled import analyse_tiled
-from analysis.tiled_hierarchy import hierarchy_batches, write_tiled_hierarchy
+from sillmark.io import hierarchy_files as hx
+from sillmark.grid.dem import read_dem
+from sillmark.errors import InvalidDEM, InvalidParameter
+from sillmark.engine.flood import priority_flood
+from sillmark.products.hierarchy import site_hierarchy
+from sillmark.grid.outlets import build_outlets
+from sillmark.engine.tiled import analyse_tiled
+from sillmark.products.tiled_hierarchy import hierarchy_batches, write_tiled_hierarchy
 from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
 from tests.test_flood import synthetic_terrain
@@ -257,7 +257,7 @@ def test_a_changed_dem_is_refused(tmp_path):
 
 
 def _grid(path):
-    from analysis.dem import read_dem_grid
+    from sillmark.grid.dem import read_dem_grid
 
     return read_dem_grid(path)
 
@@ -265,8 +265,8 @@ def _grid(path):
 def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
     # The streamed JSON writer against the document built the direct way: the
     # flat to_json() with name, version, caution, crs and units in front and the
-    # float32 fields as shortest decimals (analysis.export.json_number).
-    from analysis.export import crs_label, json_number, sillmark_version
+    # float32 fields as shortest decimals (sillmark.io.export.json_number).
+    from sillmark.io.export import crs_label, json_number, sillmark_version
 
     ref = tmp_path / "ref"
     h = reference_files(terrain_tif, ref)
@@ -315,9 +315,9 @@ def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_addre
 def test_batch_kernels_compiled_and_plain_python_agree(terrain_tif, tmp_path):
     # The compiled batch cutter against its own plain-Python loop (the same source
     # run by the interpreter). tests/test_kernels_boundscheck.py runs both kernels
-    # of analysis._tiled_hierarchy_kernels once more with numba's index checks on.
-    from analysis import _tiled_hierarchy_kernels as kernels
-    from analysis.tiled_hierarchy import _bounding_boxes
+    # of sillmark.products._tiled_hierarchy_kernels once more with numba's index checks on.
+    from sillmark.products import _tiled_hierarchy_kernels as kernels
+    from sillmark.products.tiled_hierarchy import _bounding_boxes
 
     out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=64)
     ids_path = out / "depression_id.tif"

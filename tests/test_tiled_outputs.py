@@ -1,12 +1,12 @@
 """Out-of-core outputs of the tiled engine against the in-memory writers.
 
-The depression outlines (:mod:`analysis.tiled_outlines`) and the water-level
-exports and stage table (:mod:`analysis.tiled_stage`) are built from the files
-:func:`analysis.tiled.analyse_tiled` writes, window by window. The reference is
+The depression outlines (:mod:`sillmark.products.tiled_outlines`) and the water-level
+exports and stage table (:mod:`sillmark.products.tiled_stage`) are built from the files
+:func:`sillmark.engine.tiled.analyse_tiled` writes, window by window. The reference is
 Sillmark's own in-memory path on the same DEM: the engine with the same tile
-size (:func:`analysis.flood.priority_flood` with ``tile_size``, so that the
-spill cells of tied routes agree) and the writers of :mod:`analysis.export` and
-:mod:`analysis.stage_export`. Rasters and CSV files must be the same bytes;
+size (:func:`sillmark.engine.flood.priority_flood` with ``tile_size``, so that the
+spill cells of tied routes agree) and the writers of :mod:`sillmark.io.export` and
+:mod:`sillmark.io.stage_files`. Rasters and CSV files must be the same bytes;
 outlines the same regions (shapely ``equals``) with the same vertices, and
 every GeoJSON property the same value.
 """
@@ -23,14 +23,14 @@ import shapely
 import shapely.geometry
 from affine import Affine
 
-from analysis.dem import read_dem, read_dem_grid
-from analysis.errors import InvalidDEM, InvalidParameter
-from analysis.export import depression_polygons, write_depressions_geojson
-from analysis.stage import stage_levels
-from analysis.stage_export import write_stage_results
-from analysis.tiled import analyse_tiled
-from analysis.tiled_outlines import depression_outlines, write_depressions_geojson_tiled
-from analysis.tiled_stage import (
+from sillmark.grid.dem import read_dem, read_dem_grid
+from sillmark.errors import InvalidDEM, InvalidParameter
+from sillmark.io.export import depression_polygons, write_depressions_geojson
+from sillmark.products.stage import stage_levels
+from sillmark.io.stage_files import write_stage_results
+from sillmark.engine.tiled import analyse_tiled
+from sillmark.products.tiled_outlines import depression_outlines, write_depressions_geojson_tiled
+from sillmark.products.tiled_stage import (
     _float32_from_text,
     open_result_folder,
     tiled_stage_levels,
@@ -221,8 +221,8 @@ def test_stage_files_in_feet_on_a_geographic_grid(tmp_path):
     out = tmp_path / "out"
     analyse_tiled(path, out, tile_size=9, vertical_unit="ft")
     dem = read_dem(path, vertical_unit="ft")
-    from analysis.outlets import build_outlets
-    from analysis.flood import priority_flood
+    from sillmark.grid.outlets import build_outlets
+    from sillmark.engine.flood import priority_flood
 
     outlets = build_outlets(dem, ("edge",))
     r = priority_flood(dem.elevation, outlets.mask, row_areas=dem.row_areas,
@@ -352,8 +352,8 @@ BOUNDS_SCRIPT = """
 import tempfile
 from pathlib import Path
 import numpy as np
-from analysis.tiled import analyse_tiled
-from analysis.tiled_stage import open_result_folder, tiled_stage_table, write_tiled_stage_results
+from sillmark.engine.tiled import analyse_tiled
+from sillmark.products.tiled_stage import open_result_folder, tiled_stage_table, write_tiled_stage_results
 from tests.rasters import write_raster
 rng = np.random.default_rng(8)
 with tempfile.TemporaryDirectory() as tmp:

@@ -14,8 +14,8 @@ import pytest
 
 from sillmark.cli import build_parser, main, serve_refusal
 from tests.web_support import analysed_site, make_app, write_lowbank
-from webapp import auth
-from webapp import config as web_config
+from sillmark.web import auth
+from sillmark.web import config as web_config
 
 VIEWER_SECRET = "lowbank-viewer-secret-41"
 EDITOR_SECRET = "lowbank-editor-secret-97"
@@ -185,7 +185,7 @@ def test_static_files_and_the_sign_in_page_are_open(guarded):
     assert anon.get("/static/css/sillmark.css").status_code == 200
     page = anon.get("/signin")
     assert page.status_code == 200 and "Access secret" in page.get_data(as_text=True)
-    from analysis import SCREENING_CAUTION
+    from sillmark import SCREENING_CAUTION
 
     assert SCREENING_CAUTION in page.get_data(as_text=True)
 

@@ -14,8 +14,8 @@ import zipfile
 import numpy as np
 import pytest
 
-from analysis import SCREENING_CAUTION
-from analysis.stage import stage_table, water_level_map
+from sillmark import SCREENING_CAUTION
+from sillmark.products.stage import stage_table, water_level_map
 from tests.web_support import NOTCH, SPILL, cell_centre, lonlat
 
 
@@ -78,7 +78,7 @@ def test_behind_the_bank_is_shielded_below_the_notch_and_floods_at_it(ready):
 
 
 def test_assets_wet_count_follows_the_onset_stage(ready, reference, tmp_path):
-    from analysis.assets import assess_assets, read_assets
+    from sillmark.products.assets import assess_assets, read_assets
     from tests.web_support import ASSETS_CSV
 
     dem, _, result = reference
@@ -401,7 +401,7 @@ def test_print_page_has_level_unit_date_scale_north_legend_and_caution(ready):
     assert 'id="legend"' in html
     assert html.count(SCREENING_CAUTION) >= 1 and "sheet-caution" in html
     assert "print.css" in html
-    css = (__import__("pathlib").Path(__file__).resolve().parents[1] / "static/css/print.css").read_text()
+    css = (__import__("pathlib").Path(__file__).resolve().parents[1] / "sillmark/web/static/css/print.css").read_text()
     assert "@media print" in css and "size: A4 landscape" in css
 
 

@@ -11,9 +11,9 @@ from pathlib import Path
 import folium
 import pytest
 
-from analysis import SCREENING_CAUTION
+from sillmark import SCREENING_CAUTION
 from tests.web_support import external_references, make_app
-from webapp import CONTENT_SECURITY_POLICY, config as web_config
+from sillmark.web import CONTENT_SECURITY_POLICY, config as web_config
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -90,17 +90,17 @@ def test_vendored_leaflet_is_served_with_its_licence_and_images(ready):
         r = client.get(f"/static/vendor/leaflet/{path}")
         assert r.status_code == 200, path
         r.close()
-    licence = (ROOT / "static/vendor/leaflet/LICENSE").read_text()
+    licence = (ROOT / "sillmark/web/static/vendor/leaflet/LICENSE").read_text()
     assert "BSD 2-Clause" in licence
-    assert "1.9.4" in (ROOT / "static/vendor/leaflet/VENDORED.md").read_text()
-    css = (ROOT / "static/vendor/leaflet/leaflet.css").read_text()
+    assert "1.9.4" in (ROOT / "sillmark/web/static/vendor/leaflet/VENDORED.md").read_text()
+    css = (ROOT / "sillmark/web/static/vendor/leaflet/leaflet.css").read_text()
     assert external_references(css) == []
 
 
 @pytest.mark.parametrize("static", ["css/sillmark.css", "css/print.css", "js/common.js", "js/site.js",
                                     "js/chart.js", "js/upload.js", "js/progress.js", "js/print.js"])
 def test_own_scripts_and_styles_reference_nothing_outside(static):
-    text = (ROOT / "static" / static).read_text()
+    text = (ROOT / "sillmark/web/static" / static).read_text()
     assert external_references(text) == []
     assert "http://" not in text.replace("http://www.w3.org/2000/svg", "") and "https://" not in text
 
@@ -151,15 +151,19 @@ def test_index_lists_the_site(ready):
     assert "ready" in html
 
 
-def test_analysis_never_imports_flask_or_webapp():
+def test_the_computation_never_loads_flask_or_the_web_app():
+    """Importing every module below the web app and the command line loads neither them nor Flask."""
     import subprocess
     import sys
 
     code = (
-        "import sys, pkgutil, importlib, analysis\n"
-        "for m in pkgutil.iter_modules(analysis.__path__):\n"
-        "    importlib.import_module('analysis.' + m.name)\n"
-        "bad = [n for n in sys.modules if n.split('.')[0] in ('flask', 'webapp', 'folium', 'waitress')]\n"
+        "import sys, pkgutil, importlib\n"
+        "for pkg in ('grid', 'engine', 'products', 'io'):\n"
+        "    p = importlib.import_module('sillmark.' + pkg)\n"
+        "    for m in pkgutil.iter_modules(p.__path__):\n"
+        "        importlib.import_module(f'sillmark.{pkg}.{m.name}')\n"
+        "bad = [n for n in sys.modules if n.split('.')[0] in ('flask', 'folium', 'waitress')\n"
+        "       or n.startswith(('sillmark.web', 'sillmark.cli'))]\n"
         "assert not bad, bad\n"
     )
     done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
@@ -194,7 +198,7 @@ def test_an_operator_configured_online_base_layer_is_offered_and_allowed(tmp_pat
     ("https://tiles.example.org/{z}/{x}/{y}.png", "", "attribution"),
 ])
 def test_a_malformed_base_layer_setting_stops_the_start_with_a_reason(tmp_path, url, attribution, words):
-    from analysis.errors import InvalidParameter
+    from sillmark.errors import InvalidParameter
 
     with pytest.raises(InvalidParameter, match=words):
         make_app(tmp_path / "data", BASE_LAYER_URL=url, BASE_LAYER_ATTRIBUTION=attribution)

@@ -4,7 +4,7 @@ driven by Playwright, against waitress serving the demo site.
 Checks: the page loads with no request leaving the server's origin (every other
 request is blocked and fails the test); moving the stage control redraws the
 water-level tiles at the new level and shows the flooded area that
-analysis.stage.water_level_map gives for that level; clicking a cell draws its
+sillmark.products.stage.water_level_map gives for that level; clicking a cell draws its
 route with the controlling sill. Screenshots go to test-artifacts/.
 
 Needs: the Python package ``playwright`` and Debian's ``chromium``
@@ -97,7 +97,7 @@ def page(browser, server):
 
 def _site_data(app):
     """The server's open results of the demo site (site 1)."""
-    from webapp import db
+    from sillmark.web import db
 
     svc = app.extensions["sillmark"]
     conn = db.connect(svc.db_path)
@@ -114,7 +114,7 @@ def _shot(pg, name: str) -> None:
 
 
 def test_stage_control_redraws_and_shows_the_engines_flooded_area(page, server):
-    from analysis.stage import water_level_map
+    from sillmark.products.stage import water_level_map
 
     origin, app = server
     tiles_seen: list[tuple[str, int]] = []
@@ -182,7 +182,7 @@ def test_clicking_a_cell_draws_its_route_and_controlling_sill(page, server):
 
 
 def test_print_page_renders_with_legend_and_caution(page, server):
-    from analysis import SCREENING_CAUTION
+    from sillmark import SCREENING_CAUTION
 
     origin, _ = server
     page.goto(origin + "/sites/1/print?level=47.5")
@@ -228,15 +228,15 @@ def test_tracing_a_water_body_makes_it_an_outlet(page, server, tmp_path):
     lies behind a 12.00 m bank with an 11.00 m notch, so with the DEM edge as the
     only outlet it is shielded at 10.50 m. A water body traced inside it makes
     the basin's cells outlets: at 10.50 m the basin floods. The page's flooded
-    area must equal analysis.stage.water_level_map on the engine run with the
+    area must equal sillmark.products.stage.water_level_map on the engine run with the
     edge and the traced file (as stored by the server) as outlets.
     """
-    from analysis.dem import read_dem
-    from analysis.flood import analyse_site
-    from analysis.outlets import build_outlets
-    from analysis.stage import water_level_map
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import analyse_site
+    from sillmark.grid.outlets import build_outlets
+    from sillmark.products.stage import water_level_map
     from tests.web_support import Client, analysed_site, cell_centre, lonlat, write_lowbank
-    from webapp import db, layout
+    from sillmark.web import db, layout
 
     origin, app = server
     dem_path = write_lowbank(tmp_path / "lowbank.tif")
@@ -289,12 +289,12 @@ def test_tracing_a_water_body_makes_it_an_outlet(page, server, tmp_path):
 
 def test_downloading_the_depth_at_the_level_gives_the_engines_depths(page, server, tmp_path):
     """Files tab → depth at 47.75 m: the GeoTIFF the browser saves opens with
-    rasterio and holds analysis.stage.water_level_map's depths, in the DEM's grid."""
+    rasterio and holds sillmark.products.stage.water_level_map's depths, in the DEM's grid."""
     import numpy as np
     import rasterio
 
-    from analysis import SCREENING_CAUTION
-    from analysis.stage import water_level_map
+    from sillmark import SCREENING_CAUTION
+    from sillmark.products.stage import water_level_map
 
     origin, app = server
     page.goto(origin + "/sites/1#level=47.75")

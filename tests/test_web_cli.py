@@ -13,7 +13,7 @@ import pytest
 
 from sillmark.cli import main
 from tests.web_support import Client, cell_centre, lonlat, write_lowbank
-from webapp import config as web_config
+from sillmark.web import config as web_config
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -28,8 +28,8 @@ import pytest
 
 from tests.rasters import grid, write_raster
 from tests.web_support import ASSETS_CSV, Client, analysed_site, confirm, make_app, upload_dem
-from webapp import db, layout
-from webapp.jobs import INTERRUPTED_PHASE, REQUEUED_PHASE, JobRunner, _pid_alive
+from sillmark.web import db, layout
+from sillmark.web.jobs import INTERRUPTED_PHASE, REQUEUED_PHASE, JobRunner, _pid_alive
 
 ROOT = Path(__file__).resolve().parent.parent
 SLOW_SIDE = 1600
@@ -93,7 +93,7 @@ def sha(data: bytes) -> str:
 
 def served_results(client: Client, site_id: int) -> dict[str, str]:
     """Digest of every result file the site serves now."""
-    from analysis.export import FILE_NAMES
+    from sillmark.io.export import FILE_NAMES
 
     out = {}
     for name in FILE_NAMES:
@@ -180,7 +180,7 @@ def test_a_worker_killed_mid_run_is_interrupted_and_never_shown(tmp_path, harrow
 
 
 def test_interruption_messages_name_the_signal_and_the_phase():
-    from webapp.jobs import interruption_message
+    from sillmark.web.jobs import interruption_message
 
     text = interruption_message(-15, "drawing the hillshade")
     assert text.startswith("The analysis was interrupted while drawing the hillshade: ")
@@ -209,7 +209,7 @@ def snapshot(client: Client, site_ids: list[int]) -> dict:
             out[f"assets{sid}"] = client.get(f"/api/sites/{sid}/assets?level=11").get_json()
             out[f"files{sid}"] = served_results(client, sid)
             w, s, e, n = d["summary"]["lonlat_bounds"]
-            from webapp import render
+            from sillmark.web import render
 
             x, y = render.lonlat_to_tile((w + e) / 2, (s + n) / 2, 19)
             out[f"tile{sid}"] = sha(client.get(f"/tiles/{sid}/10.5/19/{x}/{y}.png").get_data())
@@ -334,7 +334,7 @@ def test_a_worker_whose_run_was_taken_back_records_nothing_and_changes_nothing(
     in the middle of the result files or just before its last transaction: the worker stops,
     the run stays queued, the earlier results stay current and whole, and the run's half
     output is removed; the queued run then runs afresh."""
-    from webapp import worker
+    from sillmark.web import worker
 
     app = make_app(tmp_path / "data")
     svc = app.extensions["sillmark"]
@@ -382,7 +382,7 @@ def test_a_worker_whose_run_was_taken_back_records_nothing_and_changes_nothing(
 
 def test_a_worker_never_runs_a_run_it_was_not_given(tmp_path, lowbank_tif):
     """run_job on a run that is queued (not claimed by a runner) leaves it alone."""
-    from webapp.worker import run_job
+    from sillmark.web.worker import run_job
 
     app = make_app(tmp_path / "data")
     svc = app.extensions["sillmark"]

@@ -32,7 +32,7 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 from tests.web_support import ASSETS_CSV, Client, analysed_site, make_app, upload_dem, write_lowbank
-from webapp import layout
+from sillmark.web import layout
 
 FUZZ = dict(deadline=None, derandomize=bool(os.environ.get("CI")),
             suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
@@ -54,7 +54,7 @@ def target(tmp_path_factory):
     ready = analysed_site(client, tif)
     draft = upload_dem(client, tif, name="draft.tif").get_json()["site_id"]
     w, s, e, n = client.get(f"/api/sites/{ready}").get_json()["summary"]["lonlat_bounds"]
-    from webapp import render
+    from sillmark.web import render
 
     tile = (19, *render.lonlat_to_tile((w + e) / 2, (s + n) / 2, 19))
     return app, client, {"ready": ready, "draft": draft, "tif": tif.read_bytes(), "tile": tile,

@@ -22,11 +22,11 @@ import numpy as np
 import pytest
 from affine import Affine
 
-from analysis import SCREENING_CAUTION
+from sillmark import SCREENING_CAUTION
 from tests.rasters import write_raster
 from tests.web_support import (Client, analysed_site, cell_centre, confirm, lonlat, make_app, upload_dem,
                                write_lowbank)
-from webapp import layout
+from sillmark.web import layout
 
 # --------------------------------------------------------------------------- the shared site
 
@@ -533,10 +533,10 @@ REMOTE_OR_VIRTUAL = ["/vsicurl/http://127.0.0.1:9/x.tif", "/VSIZIP//tmp/site.zip
 
 @pytest.mark.parametrize("path", REMOTE_OR_VIRTUAL)
 def test_gdal_virtual_and_remote_paths_are_refused_by_every_reader(path):
-    from analysis.assets import InvalidAssets, read_assets
-    from analysis.dem import dem_from_array, read_dem, read_dem_grid
-    from analysis.errors import InvalidDEM, InvalidOutlets
-    from analysis.outlets import outlets_from_geojson, outlets_from_raster
+    from sillmark.products.assets import InvalidAssets, read_assets
+    from sillmark.grid.dem import dem_from_array, read_dem, read_dem_grid
+    from sillmark.errors import InvalidDEM, InvalidOutlets
+    from sillmark.grid.outlets import outlets_from_geojson, outlets_from_raster
 
     expected = "NUL byte" if "\x00" in path else "virtual or remote path"
     for reader in (read_dem, read_dem_grid):
@@ -591,8 +591,8 @@ def test_a_raster_that_names_another_file_is_refused(tmp_path):
     """The files GDAL reads for a dataset must be the file itself or its own sidecars."""
     import rasterio
 
-    from analysis.dem import _check_own_files
-    from analysis.errors import InvalidDEM
+    from sillmark.grid.dem import _check_own_files
+    from sillmark.errors import InvalidDEM
 
     (tmp_path / "secret_key").write_bytes(np.arange(16, dtype=np.float32).tobytes())
     (tmp_path / "up").mkdir()

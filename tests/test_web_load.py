@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from tests.web_support import Client, analysed_site, make_app
-from webapp import render
+from sillmark.web import render
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -155,8 +155,8 @@ def test_the_image_cache_is_bounded_by_bytes_and_keeps_the_recently_used():
 def test_moving_the_stage_control_walks_each_assets_route_once(tmp_path, lowbank_tif, monkeypatch):
     """Routes do not depend on the level: the asset table at each new level reuses them, and
     gives the same figures as the engine's own table at that level."""
-    from analysis.assets import assess_assets
-    from analysis.flood import SpillResult
+    from sillmark.products.assets import assess_assets
+    from sillmark.engine.flood import SpillResult
 
     app = make_app(tmp_path / "data")
     client = Client(app)

@@ -1,12 +1,12 @@
 """The browser app on the tiled engine: a DEM above TILED_ABOVE_CELLS is analysed
-tile by tile (webapp.tiled_run), its progress counts the tiles, and the viewer
+tile by tile (sillmark.web.tiled_run), its progress counts the tiles, and the viewer
 shows the very figures of the in-memory analysis.
 
 The site is Lowbank (tests/web_support.py, invented): 40 x 50 = 2 000 cells, so
 a threshold of 1 000 cells sends it to the tiled engine; tiles of 16 cells make
 3 x 4 = 12 tiles. The reference is the same site analysed in memory by a second
 app with the default threshold, and the engine run directly (the ``reference``
-fixture, and :func:`analysis.flood.priority_flood` with 16-cell tiles for the
+fixture, and :func:`sillmark.engine.flood.priority_flood` with 16-cell tiles for the
 flood tree, whose tied routes depend on the tile size).
 """
 
@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 from tests.web_support import Client, analysed_site, cell_centre, confirm, lonlat, make_app, upload_dem
-from webapp import arrays, db, layout
+from sillmark.web import arrays, db, layout
 
 TILED = {"TILED_ABOVE_CELLS": 1_000, "TILED_TILE_SIZE": 16}
 LEVELS = (9.5, 10.5, 11.0, 12.2)
@@ -49,7 +49,7 @@ def in_memory_site(tmp_path_factory, lowbank_tif):
 def tiled_site(tmp_path_factory, lowbank_tif):
     """The same site on an app whose threshold sends it to the tiled engine; with the
     phases its run wrote, in order."""
-    from webapp import worker
+    from sillmark.web import worker
 
     seen = []
     real, interval = db.update_run, worker.PROGRESS_INTERVAL
@@ -92,7 +92,7 @@ def test_the_run_used_the_tiled_engine_and_counted_its_tiles(tiled_site, in_memo
 
 
 def test_stored_arrays_are_the_in_memory_result(tiled_site, reference):
-    from analysis.flood import priority_flood
+    from sillmark.engine.flood import priority_flood
 
     app, _, site_id, _ = tiled_site
     dem, outlets, result = reference
@@ -137,7 +137,7 @@ def test_viewer_figures_equal_the_in_memory_site(tiled_site, in_memory_site, url
 
 
 def test_viewer_level_figures_equal_the_engine(tiled_site, reference):
-    from analysis.stage import water_level_map
+    from sillmark.products.stage import water_level_map
 
     _, client, site_id, _ = tiled_site
     dem, _, result = reference
@@ -173,12 +173,12 @@ def test_a_worker_process_gets_the_threshold_with_the_run(tmp_path, lowbank_tif)
 
 
 def test_in_memory_file_progress_spreads_over_every_result_file(fresh, lowbank_tif, monkeypatch):
-    # write_results writes the 11 files of analysis.export.FILE_NAMES; the phase
+    # write_results writes the 11 files of sillmark.io.export.FILE_NAMES; the phase
     # "writing result files" runs from 62 % to 92 %, so each file's start is its
     # own step of 30/11 % and 92 % is reached only when summary.json is done
     # (dividing by a fixed 8 would reach 92 % after the eighth file and stay there).
-    from analysis.export import FILE_NAMES
-    from webapp import worker
+    from sillmark.io.export import FILE_NAMES
+    from sillmark.web import worker
 
     seen = []
     real = db.update_run

@@ -14,7 +14,7 @@ import pyproj
 import pytest
 
 from tests.web_support import read_png
-from webapp import render
+from sillmark.web import render
 
 
 def site_tiles(ready, z):

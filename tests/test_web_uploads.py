@@ -10,7 +10,7 @@ import sqlite3
 import pytest
 
 from tests.web_support import ASSETS_CSV, Client, confirm, make_app, upload_dem, write_lowbank
-from webapp import layout
+from sillmark.web import layout
 
 
 def site_files(app) -> list[str]:

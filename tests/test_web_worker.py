@@ -10,8 +10,8 @@ import time
 import pytest
 
 from tests.web_support import Client, analysed_site, confirm, make_app, upload_dem
-from webapp import db, layout
-from webapp.jobs import JobRunner
+from sillmark.web import db, layout
+from sillmark.web.jobs import JobRunner
 
 
 def run_rows(app, site_id):
@@ -77,7 +77,7 @@ def test_a_first_run_that_fails_shows_its_reason_on_the_progress_page(fresh, low
 
 
 def test_progress_is_recorded_phase_by_phase(fresh, lowbank_tif, monkeypatch):
-    from webapp import worker
+    from sillmark.web import worker
 
     seen = []
     real = db.update_run

@@ -75,10 +75,10 @@ def components(mask: np.ndarray, connectivity: int = 8) -> list[set]:
 
 def canonical_spills(z: np.ndarray, s: np.ndarray, ids: np.ndarray, outlets: np.ndarray,
                      connectivity: int = 8) -> dict:
-    """Spill cell and ``spills_to`` of every depression by the rule of analysis.flood.
+    """Spill cell and ``spills_to`` of every depression by the rule of sillmark.engine.flood.
 
     A slow, literal reading of the rule in the module docstring of
-    :mod:`analysis.flood` ("Spill points"), written with Python sets and
+    :mod:`sillmark.engine.flood` ("Spill points"), written with Python sets and
     breadth-first search and sharing no code with the engine. ``s`` is the
     onset stage (NaN where unreached), ``ids`` the depression ids (0 outside
     depressions). Returns ``{id: ((spill_row, spill_col), spills_to)}``.

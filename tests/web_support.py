@@ -70,7 +70,7 @@ ASSETS_CSV = (
 
 
 def make_app(data_dir: Path, **overrides):
-    from webapp import create_app
+    from sillmark.web import create_app
 
     config = {
         "DATA_DIR": str(data_dir),
@@ -169,9 +169,9 @@ def fresh(tmp_path):
 @pytest.fixture(scope="module")
 def reference(lowbank_tif):
     """The engine run directly on the Lowbank DEM (edge outlets, D8): what the app must match."""
-    from analysis.dem import read_dem
-    from analysis.flood import analyse_site
-    from analysis.outlets import build_outlets
+    from sillmark.grid.dem import read_dem
+    from sillmark.engine.flood import analyse_site
+    from sillmark.grid.outlets import build_outlets
 
     dem = read_dem(lowbank_tif)
     outlets = build_outlets(dem, ("edge",))

@@ -1,0 +1,1 @@
+"""The Priority-Flood engine: onset stage, flood tree, depressions, in memory or by tiles."""

@@ -1,0 +1,1 @@
+"""What sits on a grid: DEM reading and checks, CRS helpers, outlets."""

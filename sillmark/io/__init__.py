@@ -1,0 +1,1 @@
+"""File formats only: GeoTIFF, GeoJSON, CSV, JSON and the results folder."""

@@ -1,0 +1,593 @@
+"""Files of the depression hierarchy: the node table, its JSON, and every node's curves.
+
+=============================  ==========================================================
+``depression_hierarchy.csv``   one row per node of :class:`sillmark.products.hierarchy.HierarchyTable`,
+                               units in the column names, children as ``;``-separated ids
+``depression_hierarchy.json``  :meth:`sillmark.products.hierarchy.DepressionHierarchy.to_json` (flat
+                               node list) with the caution, the units of every field and the CRS
+``depression_curves.csv``      stage–area and stage–storage of every node, long format:
+                               one row per node and elevation
+=============================  ==========================================================
+
+The files follow the conventions of :mod:`sillmark.io.export` (``# `` comment lines
+before a CSV header, the screening caution in every file, atomic writes) and are
+written by :func:`sillmark.io.export.write_results` next to ``depressions.csv``;
+the ``depression`` column of the node table is the ``id`` of that file. Each
+file is a head and runs of rows (:func:`csv_head`, :func:`csv_rows`,
+:func:`hierarchy_json_head`, :func:`json_node_texts`), so that
+:mod:`sillmark.products.tiled_hierarchy` writes the same bytes from windows of
+depressions out of core.
+
+Curves
+------
+A node's curves are exact and piecewise linear between its *breakpoints* (its
+pit, every distinct cell elevation of its region above the pit, its spill
+elevation; see :class:`sillmark.products.hierarchy.StageCurve`). A node with at most
+:data:`MAX_CURVE_POINTS` breakpoints gets a row at each of them, so linear
+interpolation of storage between rows is exact. A node with more (a large
+region of a DEM with unrounded elevations) gets rows at a fixed step of its own
+instead, chosen among 1, 2 and 5 times a power of ten so that it spans the
+node's depth in at most :data:`STEP_ROWS` steps, plus exact rows at its pit,
+merge elevation and spill elevation; the values on those rows are still exact,
+only the points between them are left out. On a site DEM with elevations in
+centimetres the breakpoints are few (one per centimetre of depth at most), so
+every node is written in full.
+
+Every node has its whole curve, pit to spill, so a node's rows repeat the
+levels of the nodes nested in it; the caps keep the file at most a few hundred
+rows per node (the node table's size times a few hundred) whatever the DEM's
+precision or the nesting depth. On the demo site: 77 nodes, about 2 300 rows,
+100 kB.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import os
+import re
+import shutil
+from collections.abc import Iterable, Iterator
+from pathlib import Path
+from typing import TYPE_CHECKING, TextIO
+
+import numpy as np
+
+from sillmark import SCREENING_CAUTION
+from sillmark.errors import InvalidParameter
+from sillmark.io.export import (
+    _column_texts,
+    atomic_output,
+    crs_label,
+    horizontal_crs,
+    horizontal_unit_suffix,
+    json_number,
+    sillmark_version,
+    unit_name,
+    unit_suffix,
+    wgs84_transformer,
+)
+from sillmark.products.hierarchy import DepressionHierarchy, HierarchyTable
+from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+
+if TYPE_CHECKING:  # pragma: no cover
+    from sillmark.grid.dem import DEM
+
+__all__ = [
+    "CURVES_CSV",
+    "HIERARCHY_CSV",
+    "HIERARCHY_FILE_NAMES",
+    "HIERARCHY_JSON",
+    "MAX_CURVE_POINTS",
+    "STEP_ROWS",
+    "csv_head",
+    "csv_rows",
+    "curve_columns",
+    "curve_part_columns",
+    "curves_csv_comments",
+    "hierarchy_columns",
+    "hierarchy_csv_comments",
+    "hierarchy_json_head",
+    "json_node_texts",
+    "node_table_columns",
+    "write_csv_parts",
+    "write_curves_csv",
+    "write_hierarchy_csv",
+    "write_hierarchy_json",
+    "write_json_parts",
+]
+
+HIERARCHY_CSV = "depression_hierarchy.csv"
+HIERARCHY_JSON = "depression_hierarchy.json"
+CURVES_CSV = "depression_curves.csv"
+#: The three file names, in the order :func:`sillmark.io.export.write_results` writes them.
+HIERARCHY_FILE_NAMES = (HIERARCHY_CSV, HIERARCHY_JSON, CURVES_CSV)
+
+#: A node with at most this many breakpoints has every one of them in the curves file.
+#: (The demo's deepest node, 2.08 m of ground in centimetres, has 209.)
+MAX_CURVE_POINTS = 250
+#: Most steps a node with more breakpoints is sampled at (pit, merge and spill come on top).
+STEP_ROWS = 100
+
+#: Values of the ``point`` column of the curves file.
+POINT_PIT = "pit"
+POINT_BREAKPOINT = "breakpoint"
+POINT_STEP = "step"
+POINT_MERGE = "merge"
+POINT_SPILL = "spill"
+
+_CHILD_SEPARATOR = ";"
+#: Node fields held as float32, in the vertical unit.
+_FLOAT32_FIELDS = ("pit_elevation", "merge_elevation", "spill_elevation", "max_depth")
+
+
+# --------------------------------------------------------------------------- checks
+
+
+def _check(hierarchy: DepressionHierarchy, dem: "DEM") -> VerticalUnit:
+    if not isinstance(hierarchy, DepressionHierarchy):
+        raise InvalidParameter(
+            f"expected a DepressionHierarchy from sillmark.products.hierarchy.site_hierarchy(), not "
+            f"{type(hierarchy).__name__}"
+        )
+    if tuple(hierarchy.shape) != tuple(dem.shape):
+        raise InvalidParameter(
+            f"the hierarchy is for a {hierarchy.shape[0]} x {hierarchy.shape[1]} grid but the "
+            f"DEM is {dem.rows} x {dem.cols}; compute it from a result on this DEM"
+        )
+    unit = VerticalUnit.parse(dem.vertical_unit)
+    if hierarchy.unit is not unit:
+        raise InvalidParameter(
+            f"the hierarchy is in {hierarchy.unit.value} but the DEM in {unit.value}; compute "
+            "it with the DEM's vertical unit (site_hierarchy does)"
+        )
+    horizontal_crs(dem)  # InvalidDEM before anything is written if there is no CRS
+    return unit
+
+
+def _comment_head(title: str, unit: VerticalUnit, connectivity: int, dem: "DEM") -> list[str]:
+    return [
+        f"Sillmark {sillmark_version()} {title}",
+        f"CAUTION: {SCREENING_CAUTION}",
+        f"vertical unit: {unit.value} ({unit_name(unit)}); areas in m2, volumes in m3",
+        f"CRS: {crs_label(dem)}",
+        f"connectivity: {connectivity}",
+    ]
+
+
+# --------------------------------------------------------------------------- node table
+
+
+def hierarchy_columns(hierarchy: DepressionHierarchy, dem: "DEM") -> dict[str, np.ndarray]:
+    """The node table with units in the column names, in file order.
+
+    Every :class:`~sillmark.products.hierarchy.HierarchyTable` column appears under its
+    own name, elevations and depths with the vertical-unit suffix (``_m``,
+    ``_ft``, ``_us_ft``) and the spill point's CRS coordinates with the CRS's
+    unit (``spill_x_m`` ...). ``is_leaf`` is ``true`` or ``false``;
+    ``children`` lists the children ids separated by ``;``, lowest pit first
+    (empty for a pit). Added: the spill point in WGS84 (``spill_lon_deg``,
+    ``spill_lat_deg``), ``area_ha`` and, for sites in feet, ``volume_acre_ft``.
+    """
+    unit = _check(hierarchy, dem)
+    return node_table_columns(hierarchy.nodes, unit, dem)
+
+
+def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dict[str, np.ndarray]:
+    """:func:`hierarchy_columns` of a node table (or a run of its rows) in ``unit``.
+
+    Row by row the same values whatever rows the table holds, so the out-of-core
+    writer (:mod:`sillmark.products.tiled_hierarchy`) gives the file of the whole table
+    from its pieces. ``dem`` may be a :class:`~sillmark.grid.dem.DEMGrid`.
+    """
+    v = unit_suffix(unit)
+    h = horizontal_unit_suffix(dem)
+    n = len(t)
+    lon = np.full(n, np.nan)
+    lat = np.full(n, np.nan)
+    ok = np.isfinite(t.spill_x) & np.isfinite(t.spill_y)
+    if ok.any():
+        lon[ok], lat[ok] = wgs84_transformer(dem).transform(t.spill_x[ok], t.spill_y[ok])
+    children = [
+        _CHILD_SEPARATOR.join(str(int(c)) for c in t.children_ids[t.children_start[k] : t.children_start[k + 1]])
+        for k in range(n)
+    ]
+    area = np.asarray(t.area_m2, dtype=np.float64)
+    volume = np.asarray(t.volume_m3, dtype=np.float64)
+    cols: dict[str, np.ndarray] = {
+        "id": t.id,
+        "parent": t.parent,
+        "depression": t.depression,
+        "is_leaf": np.array(["true" if leaf else "false" for leaf in t.is_leaf], dtype=str),
+        "subtree_size": t.subtree_size,
+        "children": np.array(children, dtype=object),
+        "pit_row": t.pit_row,
+        "pit_col": t.pit_col,
+        f"pit_elevation_{v}": t.pit_elevation,
+        f"merge_elevation_{v}": t.merge_elevation,
+        f"spill_elevation_{v}": t.spill_elevation,
+        "spill_row": t.spill_row,
+        "spill_col": t.spill_col,
+        f"spill_x_{h}": t.spill_x,
+        f"spill_y_{h}": t.spill_y,
+        "spill_lon_deg": np.round(lon, 8),
+        "spill_lat_deg": np.round(lat, 8),
+        f"max_depth_{v}": t.max_depth,
+        "cell_count": t.cell_count,
+        "area_m2": area,
+        "area_ha": area / 1e4,
+        "volume_m3": volume,
+    }
+    if unit.is_feet:
+        cols["volume_acre_ft"] = volume / ACRE_FOOT_M3
+    return cols
+
+
+def write_hierarchy_csv(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
+    """Write ``depression_hierarchy.csv``: ``# `` comment lines, a header, one row per node.
+
+    Columns are those of :func:`hierarchy_columns`. Empty fields are values that
+    do not exist (a pit's merge elevation, a pit's children).
+    """
+    cols = hierarchy_columns(hierarchy, dem)
+    comments = hierarchy_csv_comments(hierarchy.unit, hierarchy.connectivity, dem)
+    return write_csv_parts(path, csv_head(comments, cols), [cols])
+
+
+def hierarchy_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM") -> list[str]:
+    """The ``# `` comment lines of ``depression_hierarchy.csv``."""
+    v = unit_suffix(unit)
+    return _comment_head("depression hierarchy", unit, connectivity, dem) + [
+        "one row per node: the pits (is_leaf = true) and the pools formed where pools meet; "
+        "ids in post-order (children before their parent)",
+        "parent: id of the node this one merges into, 0 = a top (a whole depression of "
+        "depressions.csv, whose id is in the column 'depression')",
+        f"children: ids of the nodes that meet at merge_elevation_{v}, ';'-separated, lowest "
+        "pit first; empty for a pit",
+        f"spill_elevation_{v}: level at which the node meets a sibling (for a top: the "
+        "depression's spill elevation); spill_row, spill_col: a cell where it does",
+        "area_m2, volume_m3: plan area and storage of the node's region full to its spill "
+        "elevation; stage curves in depression_curves.csv",
+        "pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top; "
+        "spill_lon_deg, spill_lat_deg: the spill cell in WGS84 degrees",
+    ]
+
+
+def write_hierarchy_json(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
+    """Write ``depression_hierarchy.json``: the flat :meth:`~sillmark.products.hierarchy.DepressionHierarchy.to_json`
+    document, with a ``name``, the Sillmark version, the CRS and a ``units``
+    member giving the unit of every node field that has one.
+
+    The float32 fields (elevations, depth) are written as the shortest decimals
+    that read back as the same float32 values; NaN (a pit's merge elevation) is null.
+    """
+    unit = _check(hierarchy, dem)
+    head = hierarchy_json_head(unit, hierarchy.connectivity, dem, len(hierarchy))
+    return write_json_parts(path, head, [json_node_texts(hierarchy.nodes)])
+
+
+def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_count: int) -> str:
+    """The text of ``depression_hierarchy.json`` before its first node: every
+    member up to ``"nodes":[``, in file order (the node count included)."""
+    h = horizontal_unit_suffix(dem)
+    units = {name: unit.value for name in _FLOAT32_FIELDS}
+    units.update({"spill_x": h, "spill_y": h, "area_m2": "m2", "volume_m3": "m3"})
+    members = {
+        "name": "depression_hierarchy",
+        "sillmark_version": sillmark_version(),
+        "caution": SCREENING_CAUTION,
+        "crs": crs_label(dem),
+        "units": units,
+        # The members of DepressionHierarchy.to_json, in its order.
+        "vertical_unit": unit.value,
+        "area_unit": "m2",
+        "volume_unit": "m3",
+        "connectivity": int(connectivity),
+        "node_count": int(node_count),
+    }
+    return _dumps(members)[:-1] + ',"nodes":['
+
+
+def json_node_texts(t: HierarchyTable) -> Iterator[str]:
+    """Each node of a table as its JSON object text, in id order.
+
+    The object of :meth:`~sillmark.products.hierarchy.HierarchyTable.row` (every column,
+    then ``children``), with the float32 fields (elevations, depth) as their
+    shortest decimals, as in the CSV (59.2, not 59.20000076293945); each reads
+    back as the same float32. NaN is null.
+    """
+    for k in range(len(t)):
+        node = t.row(k + 1)
+        for name in _FLOAT32_FIELDS:
+            node[name] = json_number(getattr(t, name)[k])
+        yield _dumps(node)
+
+
+def _dumps(value) -> str:
+    return json.dumps(value, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+
+
+# --------------------------------------------------------------------------- streamed files
+#
+# Each file is a head, then its body in runs of rows (or nodes); the in-memory
+# writers pass the whole body as one run, the out-of-core writer one run (or a
+# part file) per window of depressions, so both give the same bytes.
+
+
+def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
+    """``# `` comment lines and the header row of a table CSV (as
+    :func:`sillmark.io.export.write_table_csv` writes them)."""
+    lines = "".join(f"# {line}\n" for line in comments)
+    return lines + _csv_text([list(columns)])
+
+
+def csv_rows(columns: dict[str, np.ndarray]) -> str:
+    """The rows of a table CSV, numbers as :func:`sillmark.io.export.write_table_csv`
+    writes them (shortest text that reads back as the same float32 or float64,
+    empty for NaN); empty when the columns are."""
+    arrays = [np.asarray(values) for values in columns.values()]
+    lengths = {len(a) for a in arrays}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
+    if not arrays or not lengths.pop():
+        return ""
+    texts = [_column_texts(a) for a in arrays]
+    plain = len(texts) > 1 and not any(
+        any(_NEEDS_QUOTES.search(t) for t in set(column))
+        for column, a in zip(texts, arrays) if a.dtype.kind in "USO")
+    if plain:
+        # What csv.writer writes when no field needs quoting, several times faster.
+        return "\n".join(map(",".join, zip(*texts))) + "\n"
+    return _csv_text(zip(*texts))
+
+
+#: Characters that make csv.writer quote a field (delimiter, quote, line ends).
+_NEEDS_QUOTES = re.compile(r'[,"\r\n]')
+
+
+def _csv_text(rows) -> str:
+    buffer = io.StringIO(newline="")
+    csv.writer(buffer, lineterminator="\n").writerows(rows)
+    return buffer.getvalue()
+
+
+def write_csv_parts(path: str | os.PathLike, head: str, parts: Iterable) -> Path:
+    """Write a CSV atomically: ``head``, then each part in order.
+
+    A part is a dict of columns (its rows are written, see :func:`csv_rows`) or
+    the path of a file of rows already written that way (copied as it is).
+    """
+    final = Path(path)
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", newline="", encoding="utf-8") as f:
+            f.write(head)
+            for part in parts:
+                if isinstance(part, dict):
+                    f.write(csv_rows(part))
+                else:
+                    _copy_text(part, f)
+    return final
+
+
+def write_json_parts(path: str | os.PathLike, head: str, parts: Iterable) -> Path:
+    """Write ``depression_hierarchy.json`` atomically: ``head``
+    (:func:`hierarchy_json_head`), the nodes of every part separated by commas,
+    then the closing brackets and a newline.
+
+    A part is an iterable of node texts (:func:`json_node_texts`) or the path of a
+    file holding such texts already joined by commas (copied as it is; an empty
+    file is a part without nodes).
+    """
+    final = Path(path)
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", encoding="utf-8") as f:
+            f.write(head)
+            first = True
+            for part in parts:
+                if isinstance(part, (str, os.PathLike)):
+                    if os.path.getsize(part) == 0:
+                        continue
+                    if not first:
+                        f.write(",")
+                    _copy_text(part, f)
+                    first = False
+                else:
+                    for text in part:
+                        if not first:
+                            f.write(",")
+                        f.write(text)
+                        first = False
+            f.write("]}\n")
+    return final
+
+
+def _copy_text(path: str | os.PathLike, out: TextIO) -> None:
+    with open(path, encoding="utf-8", newline="") as f:
+        shutil.copyfileobj(f, out, 1 << 20)
+
+
+# --------------------------------------------------------------------------- curves
+
+
+def _breakpoint_sets(hierarchy: DepressionHierarchy, limit: int) -> list[np.ndarray | None]:
+    """Per node (index ``v - 1``), the elevations of its full curve's breakpoints,
+    or None when there are more than ``limit``.
+
+    The breakpoints of a node are the union of the own segments of its subtree
+    (each node's segment runs from its merge elevation, or pit, to its spill
+    elevation through its own cells' elevations). Built children first and
+    dropped as soon as a set passes ``limit``, so the work is at most about
+    ``limit`` per node whatever the nesting depth.
+    """
+    t = hierarchy.nodes
+    s = hierarchy.segments
+    out: list[np.ndarray | None] = [None] * len(t)
+    for v in range(1, len(t) + 1):  # post-order: children first
+        own = s.elevation[s.start[v] : s.start[v + 1]]
+        if own.shape[0] > limit:
+            continue
+        parts = [own]
+        complete = True
+        for c in t.children_ids[t.children_start[v - 1] : t.children_start[v]]:
+            child = out[int(c) - 1]
+            if child is None:
+                complete = False
+                break
+            parts.append(child)
+        if not complete:
+            continue
+        points = np.unique(np.concatenate(parts)) if len(parts) > 1 else own
+        if points.shape[0] <= limit:
+            out[v - 1] = points
+    return out
+
+
+def _nice_step(depth: float, steps: int) -> float:
+    """Smallest of 1, 2, 5 times a power of ten that covers ``depth`` in at most ``steps``."""
+    raw = depth / steps
+    power = 10.0 ** math.floor(math.log10(raw))
+    for factor in (1.0, 2.0, 5.0, 10.0):
+        if factor * power >= raw:
+            return factor * power
+    return 10.0 * power  # pragma: no cover - the loop always returns
+
+
+def _stepped_levels(pit: float, merge: float, spill: float, steps: int) -> np.ndarray:
+    """Pit, spill, merge (if any) and the multiples of a nice step between pit and spill."""
+    step = _nice_step(spill - pit, steps)
+    decimals = max(0, -math.floor(math.log10(step)) + 1)
+    k = np.arange(math.ceil(pit / step), math.floor(spill / step) + 1, dtype=np.float64)
+    grid = np.float32(np.round(k * step, decimals)).astype(np.float64)
+    grid = grid[(grid > pit) & (grid < spill)]
+    levels = [grid, np.array([pit, spill])]
+    if math.isfinite(merge):
+        levels.append(np.array([merge]))
+    return np.unique(np.concatenate(levels))
+
+
+def curve_columns(
+    hierarchy: DepressionHierarchy,
+    dem: "DEM",
+    *,
+    max_points: int = MAX_CURVE_POINTS,
+    step_rows: int = STEP_ROWS,
+) -> dict[str, np.ndarray]:
+    """Every node's stage–area and stage–storage curve, long format, in file order.
+
+    Columns: ``node_id``, ``depression``, ``point`` (``pit``, ``breakpoint``,
+    ``step``, ``merge`` or ``spill``), ``elevation_{u}`` (float32, the vertical
+    unit's suffix), ``area_m2`` (area of the region's cells strictly below the
+    elevation), ``storage_m3`` and, for sites in feet, ``storage_acre_ft``.
+    Rows run node by node (ascending id), each from pit to spill elevation; see
+    the module docstring for which elevations a node gets.
+
+    Notes
+    -----
+    Values come from :meth:`~sillmark.products.hierarchy.DepressionHierarchy.curves_at`
+    (:meth:`~sillmark.products.hierarchy.DepressionHierarchy.curve_at` of every node in
+    one call), exact at every row. Memory: the rows themselves (about 30 bytes each).
+    """
+    unit = _check(hierarchy, dem)
+    _check_curve_options(max_points, step_rows)
+    return curve_part_columns(hierarchy, unit, max_points=max_points, step_rows=step_rows)
+
+
+def _check_curve_options(max_points, step_rows) -> None:
+    if isinstance(max_points, bool) or not isinstance(max_points, int) or max_points < 2:
+        raise InvalidParameter(f"max_points must be a whole number of at least 2, not {max_points!r}")
+    if isinstance(step_rows, bool) or not isinstance(step_rows, int) or step_rows < 1:
+        raise InvalidParameter(f"step_rows must be a positive whole number, not {step_rows!r}")
+
+
+def curve_part_columns(
+    hierarchy: DepressionHierarchy,
+    unit: VerticalUnit,
+    *,
+    max_points: int = MAX_CURVE_POINTS,
+    step_rows: int = STEP_ROWS,
+    node_offset: int = 0,
+    depression_offset: int = 0,
+) -> dict[str, np.ndarray]:
+    """:func:`curve_columns` of a hierarchy that is one piece of a site's.
+
+    For a hierarchy of a run of the site's depressions (its trees are those of
+    depressions ``depression_offset + 1 ...``, its nodes the site's nodes
+    ``node_offset + 1 ...``): the same rows as the site's curves file holds for
+    those nodes, with the site's ids. Curves depend on a node's own subtree
+    only, so the values are the same bits. The vertical unit is not checked.
+    """
+    t = hierarchy.nodes
+    n = len(t)
+    exact = _breakpoint_sets(hierarchy, max_points)
+    per_node: list[np.ndarray] = []
+    stepped = np.zeros(n, dtype=bool)
+    for k in range(n):
+        levels = exact[k]
+        if levels is None:
+            levels = _stepped_levels(float(t.pit_elevation[k]), float(t.merge_elevation[k]),
+                                     float(t.spill_elevation[k]), step_rows)
+            stepped[k] = True
+        per_node.append(np.asarray(levels, dtype=np.float64))
+    counts = np.fromiter((a.shape[0] for a in per_node), dtype=np.int64, count=n)
+    start = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(counts, out=start[1:])
+    levels = np.concatenate(per_node) if per_node else np.empty(0, dtype=np.float64)
+    area, storage = hierarchy.curves_at(start, levels)
+
+    # Kind of each row: step or breakpoint between, merge where the children
+    # meet, then pit on each node's first row and spill on its last.
+    names = np.array([POINT_BREAKPOINT, POINT_STEP, POINT_MERGE, POINT_PIT, POINT_SPILL],
+                     dtype=object)
+    code = np.repeat(stepped.astype(np.int8), counts)
+    merge = np.repeat(t.merge_elevation.astype(np.float64), counts)
+    code[levels == merge] = 2  # NaN merges (leaves) match nothing
+    code[start[:-1][counts > 0]] = 3
+    code[start[1:][counts > 0] - 1] = 4
+    cols: dict[str, np.ndarray] = {
+        "node_id": np.repeat(np.arange(1 + node_offset, n + 1 + node_offset, dtype=np.int32),
+                             counts),
+        "depression": np.repeat(t.depression.astype(np.int32) + np.int32(depression_offset),
+                                counts),
+        "point": names[code],
+        f"elevation_{unit_suffix(unit)}": levels.astype(np.float32),
+        "area_m2": area,
+        "storage_m3": storage,
+    }
+    if unit.is_feet:
+        cols["storage_acre_ft"] = storage / ACRE_FOOT_M3
+    return cols
+
+
+def write_curves_csv(
+    hierarchy: DepressionHierarchy,
+    dem: "DEM",
+    path: str | os.PathLike,
+    *,
+    max_points: int = MAX_CURVE_POINTS,
+    step_rows: int = STEP_ROWS,
+) -> Path:
+    """Write ``depression_curves.csv``: the columns of :func:`curve_columns`, after
+    ``# `` comment lines that say how to read between rows."""
+    cols = curve_columns(hierarchy, dem, max_points=max_points, step_rows=step_rows)
+    comments = curves_csv_comments(hierarchy.unit, hierarchy.connectivity, dem,
+                                   max_points=max_points, step_rows=step_rows)
+    return write_csv_parts(path, csv_head(comments, cols), [cols])
+
+
+def curves_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM", *,
+                        max_points: int = MAX_CURVE_POINTS, step_rows: int = STEP_ROWS) -> list[str]:
+    """The ``# `` comment lines of ``depression_curves.csv``."""
+    v = unit_suffix(unit)
+    return _comment_head("stage-area and stage-storage curves of the depression hierarchy",
+                         unit, connectivity, dem) + [
+        "one row per node and elevation, node by node (node_id = id in depression_hierarchy.csv, "
+        "depression = id in depressions.csv), from the node's pit to its spill elevation",
+        f"area_m2: area of the node's region below elevation_{v}; storage_m3: water it holds "
+        f"with its surface at elevation_{v}",
+        f"point: pit, merge (where its children meet), spill, breakpoint (a cell elevation: "
+        f"nodes with at most {max_points} of them get every one, and storage is linear between rows), "
+        f"step (nodes with more get rows at a fixed step spanning their depth in at most "
+        f"{step_rows} steps; values are exact on every row, storage is convex between them)",
+    ]

@@ -1,0 +1,1 @@
+"""What is derived from a flood result: water-level maps, stage tables, hierarchy, assets, outlines."""

@@ -1,0 +1,83 @@
+"""Vertical units of a site and conversions to SI.
+
+Elevations keep the unit they were surveyed in; areas are reported in m² (and ha),
+volumes in m³, and also in acre-feet when the site is in feet.
+
+References
+----------
+NIST Handbook 44 (2023), Appendix C: 1 international foot = 0.3048 m exactly;
+1 US survey foot = 1200/3937 m exactly; 1 acre = 43 560 ft² (international
+acre = 4046.8564224 m²).
+"""
+
+from __future__ import annotations
+
+import enum
+
+from sillmark.errors import InvalidParameter
+
+
+class VerticalUnit(str, enum.Enum):
+    """Unit of the elevations in a DEM."""
+
+    METRE = "m"
+    FOOT = "ft"
+    US_SURVEY_FOOT = "us-ft"
+
+    @property
+    def metres(self) -> float:
+        """Length of one unit in metres."""
+        return _METRES[self]
+
+    @property
+    def symbol(self) -> str:
+        """Short symbol shown beside figures."""
+        return _SYMBOL[self]
+
+    @property
+    def is_feet(self) -> bool:
+        return self is not VerticalUnit.METRE
+
+    @classmethod
+    def parse(cls, text: str | "VerticalUnit") -> "VerticalUnit":
+        """Read a unit from user text (``m``, ``metre``, ``ft``, ``us-ft`` ...)."""
+        if isinstance(text, VerticalUnit):
+            return text
+        key = str(text).strip().lower().replace("_", "-").replace(" ", "-")
+        try:
+            return _ALIASES[key]
+        except KeyError:
+            raise InvalidParameter(
+                f"unknown vertical unit {text!r}; use one of: m (metres), "
+                "ft (international feet), us-ft (US survey feet)"
+            ) from None
+
+
+_METRES = {
+    VerticalUnit.METRE: 1.0,
+    VerticalUnit.FOOT: 0.3048,
+    VerticalUnit.US_SURVEY_FOOT: 1200.0 / 3937.0,
+}
+_SYMBOL = {VerticalUnit.METRE: "m", VerticalUnit.FOOT: "ft", VerticalUnit.US_SURVEY_FOOT: "US ft"}
+_ALIASES = {
+    "m": VerticalUnit.METRE,
+    "metre": VerticalUnit.METRE,
+    "metres": VerticalUnit.METRE,
+    "meter": VerticalUnit.METRE,
+    "meters": VerticalUnit.METRE,
+    "ft": VerticalUnit.FOOT,
+    "foot": VerticalUnit.FOOT,
+    "feet": VerticalUnit.FOOT,
+    "international-foot": VerticalUnit.FOOT,
+    "international-feet": VerticalUnit.FOOT,
+    "us-ft": VerticalUnit.US_SURVEY_FOOT,
+    "usft": VerticalUnit.US_SURVEY_FOOT,
+    "us-survey-foot": VerticalUnit.US_SURVEY_FOOT,
+    "us-survey-feet": VerticalUnit.US_SURVEY_FOOT,
+    "survey-foot": VerticalUnit.US_SURVEY_FOOT,
+}
+
+#: One international acre in square metres (NIST Handbook 44, Appendix C).
+ACRE_M2 = 4046.8564224
+#: One acre-foot in cubic metres (43 560 ft³ with the international foot).
+ACRE_FOOT_M3 = 43560.0 * 0.3048**3

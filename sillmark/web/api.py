@@ -1,0 +1,328 @@
+"""JSON API and downloads of the browser app (``/api/...``).
+
+Views are short: parse the request, ask :mod:`sillmark.web.sites` (which calls
+:mod:`sillmark`), serialise. Errors come back as ``{"error": message}`` with a
+4xx status (see :func:`sillmark.web.create_app`). Levels are in the site's vertical
+unit; areas in m² and ha, volumes in m³ (and acre-ft for sites in feet).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import threading
+import zipfile
+from pathlib import Path
+
+from flask import Blueprint, abort, jsonify, request, send_file, url_for
+
+from sillmark import SCREENING_CAUTION
+from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
+from sillmark.errors import InvalidParameter
+from sillmark.io.export import FILE_NAMES
+from sillmark.io.stage_files import (
+    level_file_names,
+    level_label,
+    write_level,
+    write_stage_table_csv,
+)
+from sillmark.web import db, get_db, layout, render, services
+from sillmark.web.access import open_site, site_assets, site_row
+from sillmark.web.sites import parse_level, run_dict
+
+bp = Blueprint("api", __name__, url_prefix="/api")
+
+_export_locks: dict = {}
+_export_guard = threading.Lock()
+
+#: Downloads of one water level: kind -> (file name attribute or asset file, mimetype).
+LEVEL_FILES = {
+    "depth": "image/tiff",
+    "water_state": "image/tiff",
+    "flood_extent": "application/geo+json",
+    "shielded": "application/geo+json",
+    "depressions": "text/csv",
+    "assets_csv": "text/csv",
+    "assets_geojson": "application/geo+json",
+}
+
+
+def _lock_for(key) -> threading.Lock:
+    with _export_guard:
+        return _export_locks.setdefault(key, threading.Lock())
+
+
+def _level_arg(required: bool = True):
+    text = request.args.get("level")
+    if text is None:
+        if required:
+            raise InvalidParameter("give a water level, e.g. ?level=47.6 (in the site's vertical unit)")
+        return None
+    return parse_level(text)
+
+
+# --------------------------------------------------------------------------- sites and runs
+
+
+@bp.get("/sites")
+def sites():
+    return jsonify({"sites": services().registry.sites(get_db()), "caution": SCREENING_CAUTION})
+
+
+@bp.get("/sites/<int:site_id>")
+def site(site_id: int):
+    return jsonify(services().registry.describe(get_db(), site_row(site_id)))
+
+
+@bp.get("/sites/<int:site_id>/status")
+def status(site_id: int):
+    """What the progress panel polls: the site's state and its latest run."""
+    d = services().registry.describe(get_db(), site_row(site_id))
+    response = jsonify({"state": d["state"], "current_run": d["current_run"], "run": d["latest_run"]})
+    response.headers["Cache-Control"] = "no-store"
+    return response
+
+
+@bp.post("/sites/<int:site_id>/rerun")
+def rerun(site_id: int):
+    svc = services()
+    run_id = svc.registry.rerun(get_db(), site_id)
+    svc.runner.submit(run_id)
+    response = jsonify({"run_id": run_id, "status_url": url_for("api.status", site_id=site_id)})
+    response.status_code = 202
+    return response
+
+
+# --------------------------------------------------------------------------- the map's numbers
+
+
+@bp.get("/sites/<int:site_id>/stage")
+def stage(site_id: int):
+    """Flooded and shielded totals, depression states and assets wet at ``?level=``."""
+    level = _level_arg()
+    _, data = open_site(site_id)
+    key, assets = site_assets(site_id, data)
+    return jsonify(data.figures(level, key, assets))
+
+
+@bp.get("/sites/<int:site_id>/stage_table")
+def stage_table(site_id: int):
+    _, data = open_site(site_id)
+    return jsonify(data.stage_chart)
+
+
+@bp.get("/sites/<int:site_id>/legend")
+def legend(site_id: int):
+    _, data = open_site(site_id)
+    return jsonify(render.legend(data.unit.value, data.unit.symbol))
+
+
+@bp.get("/sites/<int:site_id>/depressions")
+def depressions(site_id: int):
+    _, data = open_site(site_id)
+    return jsonify({"unit": data.unit.value, "unit_symbol": data.unit.symbol,
+                    "depressions": data.depression_list, "caution": SCREENING_CAUTION})
+
+
+@bp.get("/sites/<int:site_id>/depressions/<int:depression_id>/curve")
+def depression_curve(site_id: int, depression_id: int):
+    _, data = open_site(site_id)
+    return jsonify(data.depression_curve(depression_id))
+
+
+@bp.get("/sites/<int:site_id>/depressions.geojson")
+def depressions_geojson(site_id: int):
+    return _result_file(site_id, "depressions.geojson", attachment=False)
+
+
+@bp.get("/sites/<int:site_id>/spill_points.geojson")
+def spill_points_geojson(site_id: int):
+    return _result_file(site_id, "spill_points.geojson", attachment=False)
+
+
+@bp.get("/sites/<int:site_id>/outlets.geojson")
+def outlets_geojson(site_id: int):
+    """The cells the run's flood started from, as WGS84 GeoJSON (for the map)."""
+    _, data = open_site(site_id)
+    return jsonify(data.outlet_outline)
+
+
+@bp.get("/sites/<int:site_id>/cell")
+def cell(site_id: int):
+    """Elevation, onset stage, depth at ``?level=`` and the route of the cell at ``?lon=&lat=``."""
+    level = _level_arg()
+    lon = _float_arg("lon")
+    lat = _float_arg("lat")
+    _, data = open_site(site_id)
+    return jsonify(data.cell_report(lon, lat, level))
+
+
+def _float_arg(name: str) -> float:
+    text = request.args.get(name)
+    if text is None:
+        raise InvalidParameter(f"give {name} in WGS 84 degrees, e.g. ?lon=8.57&lat=48.85")
+    try:
+        value = float(text)
+    except ValueError:
+        raise InvalidParameter(f"{name} must be a number of degrees, not {text[:40]!r}") from None
+    if value != value or value in (float("inf"), float("-inf")):
+        raise InvalidParameter(f"{name} must be a finite number of degrees")
+    return value
+
+
+@bp.get("/sites/<int:site_id>/assets")
+def assets(site_id: int):
+    """The site's assets with their figures at ``?level=`` (an empty list if it has none)."""
+    level = _level_arg()
+    _, data = open_site(site_id)
+    key, placed = site_assets(site_id, data)
+    row = services().registry.active_assets(get_db(), site_id)
+    if placed is None:
+        return jsonify({"assets": [], "source": None, "unit": data.unit.value,
+                        "unit_symbol": data.unit.symbol, "level": float(level)})
+    return jsonify({
+        "assets": data.asset_rows(key, placed, level),
+        "source": {"name": row["original_name"], "count": row["count"], "uploaded_utc": row["created_utc"]},
+        "unit": data.unit.value,
+        "unit_symbol": data.unit.symbol,
+        "level": float(level),
+        "caution": SCREENING_CAUTION,
+    })
+
+
+@bp.post("/sites/<int:site_id>/whatif")
+def what_if(site_id: int):
+    """Raise an asset's controlling sill by a height and report its new onset stage."""
+    body = request.get_json(silent=True) if request.is_json else None
+    values = body if isinstance(body, dict) else request.form
+    try:
+        index = int(str(values.get("asset", "")).strip())
+    except ValueError:
+        raise InvalidParameter("give the asset as its index in the asset table (asset=0, 1, ...)") from None
+    height = values.get("height")
+    if height is None or str(height).strip() == "":
+        raise InvalidParameter("give the height to raise the sill by, in the site's vertical unit")
+    _, data = open_site(site_id)
+    key, placed = site_assets(site_id, data)
+    if placed is None:
+        raise InvalidParameter("this site has no assets; upload an asset table first")
+    return jsonify(data.what_if(key, placed, index, height))
+
+
+# --------------------------------------------------------------------------- downloads
+
+
+def _result_file(site_id: int, name: str, *, attachment: bool = True):
+    if name not in FILE_NAMES:
+        abort(404, f"no result file {name!r}; the files are: {', '.join(FILE_NAMES)}")
+    row = site_row(site_id)
+    if not row["current_run"]:
+        abort(409, "this site has no finished analysis yet")
+    folder = layout.results_dir(services().data_dir, site_id, row["current_run"])
+    path = folder / name
+    if not path.is_file():
+        abort(404, f"the result file {name} is missing; run the analysis again")
+    mimetype = ("application/geo+json" if name.endswith(".geojson") else
+                "application/json" if name.endswith(".json") else
+                "text/csv" if name.endswith(".csv") else "image/tiff")
+    return send_file(path, mimetype=mimetype, as_attachment=attachment, download_name=name,
+                     max_age=0)
+
+
+@bp.get("/sites/<int:site_id>/files/results/<name>")
+def result_file(site_id: int, name: str):
+    """One of the files ``sillmark analyse`` writes, from the site's current run."""
+    return _result_file(site_id, name)
+
+
+def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
+    """The export folder of one level, written on first request (write_level + asset files)."""
+
+    label = level_label(level, data.unit)
+    base = layout.levels_dir(services().data_dir, site_id, data.run_id)
+    key, placed = site_assets(site_id, data)
+    tag = f"assets{key[1]}" if key else "noassets"
+    folder = base / f"{label}_{tag}"
+    names = level_file_names(level, data.unit)
+    if not (folder / ".complete").is_file():
+        with _lock_for((site_id, data.run_id, label, tag)):
+            if not (folder / ".complete").is_file():
+                tmp = base / f".{label}_{tag}.tmp"
+                if tmp.exists():
+                    shutil.rmtree(tmp)
+                tmp.mkdir(parents=True)
+                with data._engine_lock:
+                    write_level(data.result, data.dem, level, tmp)
+                if placed is not None:
+                    table = data.asset_table(key, placed, level)
+                    write_assets_csv(table, tmp / f"assets_{label}.csv")
+                    write_assets_geojson(table, tmp / f"assets_{label}.geojson")
+                (tmp / ".complete").write_text("ok\n", encoding="ascii")
+                if folder.exists():
+                    shutil.rmtree(folder)
+                os.replace(tmp, folder)
+    return folder, names
+
+
+@bp.get("/sites/<int:site_id>/files/level/<level>/<kind>")
+def level_file(site_id: int, level: str, kind: str):
+    """One export at a water level: depth, water_state, flood_extent, shielded,
+    depressions, assets_csv or assets_geojson."""
+    h = parse_level(level)
+    if kind not in LEVEL_FILES:
+        abort(404, f"no level file {kind!r}; choose one of {', '.join(LEVEL_FILES)}")
+    _, data = open_site(site_id)
+    folder, names = _level_folder(site_id, data, h)
+
+    label = level_label(h, data.unit)
+    name = {"assets_csv": f"assets_{label}.csv", "assets_geojson": f"assets_{label}.geojson"}.get(kind)
+    if name is None:
+        name = getattr(names, kind)
+    path = folder / name
+    if not path.is_file():
+        abort(404, "this site has no assets; upload an asset table first")
+    return send_file(path, mimetype=LEVEL_FILES[kind], as_attachment=True, download_name=name, max_age=0)
+
+
+@bp.get("/sites/<int:site_id>/files/level/<level>.zip")
+def level_zip(site_id: int, level: str):
+    """Every export at one water level in one ZIP, with the caution as a text file."""
+
+    h = parse_level(level)
+    row, data = open_site(site_id)
+    folder, _ = _level_folder(site_id, data, h)
+    label = level_label(h, data.unit)
+    path = folder / f"sillmark_site{site_id}_{label}.zip"
+    if not path.is_file():
+        tmp = path.with_suffix(".zip.tmp")
+        with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+            zf.writestr("CAUTION.txt", SCREENING_CAUTION + "\n")
+            for f in sorted(folder.iterdir()):
+                if f.is_file() and not f.name.startswith(".") and f.suffix != ".zip" and not f.name.endswith(".tmp"):
+                    zf.write(f, arcname=f.name)
+        os.replace(tmp, path)
+    return send_file(path, mimetype="application/zip", as_attachment=True, download_name=path.name,
+                     max_age=0)
+
+
+@bp.get("/sites/<int:site_id>/files/stage_table.csv")
+def stage_table_csv(site_id: int):
+    """The site stage table (the chart's rows) as ``stage_table.csv``."""
+
+    _, data = open_site(site_id)
+    path = layout.run_dir(services().data_dir, site_id, data.run_id) / "stage_table.csv"
+    if not path.is_file():
+        with _lock_for((site_id, data.run_id, "stage_table")):
+            if not path.is_file():
+                write_stage_table_csv(data.result, data.dem, data.stage_table, path)
+    return send_file(path, mimetype="text/csv", as_attachment=True, download_name="stage_table.csv",
+                     max_age=0)
+
+
+@bp.get("/runs/<int:run_id>")
+def run(run_id: int):
+    row = db.get_run(get_db(), run_id)
+    if row is None:
+        abort(404, f"there is no run {run_id}")
+
+    return jsonify({**run_dict(row), "site_id": row["site_id"]})

@@ -1,0 +1,305 @@
+"""The job runner: analyses run outside the request, one worker process each.
+
+The queue is the ``runs`` table itself: a run is created ``queued`` by the
+request that asks for it, and :class:`JobRunner` (a supervisor thread in the
+server process) claims queued runs in order, starts a fresh worker process for
+each (``multiprocessing``, *spawn* start method, so the worker shares nothing
+with the server's threads), waits for it and checks that it recorded an end:
+a worker killed by a signal (SIGKILL from the system when memory runs out, or
+from an operator) leaves its run ``running``; the supervisor marks it failed,
+with phase ``interrupted`` and a message naming the signal and the phase it
+stopped in, and removes what the run had half written (its ``worker.log``
+stays). A run's results only become the site's current results in the
+worker's last transaction, so an interrupted run is never shown.
+
+Because the queue lives in SQLite, a run queued before the server stopped is
+picked up when it starts again. A run the server was running when it stopped
+is queued again: :meth:`JobRunner.stop` queues the runs it ends, and
+:meth:`JobRunner.recover` (at start, and on every pass of the supervisor)
+queues runs left ``running`` by a worker process that no longer exists, such
+as one killed together with a server that crashed.
+
+``JOB_RUNNER = "thread"`` runs the same job body in a thread of the server
+(no process start-up cost); ``"inline"`` runs it inside :meth:`JobRunner.submit`
+(tests).
+"""
+
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import os
+import signal
+import threading
+from pathlib import Path
+
+from sillmark.web import db, layout
+from sillmark.web.worker import discard_partial_output, run_job
+
+log = logging.getLogger("sillmark.jobs")
+
+MODES = ("process", "thread", "inline")
+
+
+#: Phase recorded for a run whose worker was killed before it finished.
+INTERRUPTED_PHASE = "interrupted"
+#: Phase recorded for a run queued again because the server stopped during it.
+REQUEUED_PHASE = "queued again after a restart"
+
+
+def _pid_alive(pid: int | None) -> bool:
+    """Whether ``pid`` is a live process that may be an analysis worker.
+
+    On Linux a live process whose command line is not a Python multiprocessing
+    child (the pid was reused after a reboot, say) does not count.
+    """
+    if not pid:
+        return False
+    try:
+        os.kill(int(pid), 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # pragma: no cover - someone else's process
+        return True
+    try:
+        with open(f"/proc/{int(pid)}/cmdline", "rb") as fh:
+            cmdline = fh.read()
+    except OSError:  # no /proc: trust kill(0)
+        return True
+    if int(pid) == os.getpid():  # thread and inline runs record the server's own pid
+        return True
+    return b"multiprocessing" in cmdline or b"sillmark.web.worker" in cmdline
+
+
+def _process_main(db_path: str, data_dir: str, run_id: int) -> None:
+    """Entry point of a worker process: Ctrl-C in the server's terminal is for the server.
+
+    The terminal sends SIGINT to the whole process group; the server stops its
+    workers itself (and queues their runs again), so a worker ignores it.
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    run_job(db_path, data_dir, run_id)
+
+
+def interruption_message(code: int, phase: str) -> str:
+    """What the page says about a worker process that ended with ``code`` (negative: a signal)."""
+    where = f" while {phase}" if phase and phase not in ("starting", "queued") else ""
+    if code < 0:
+        number = -code
+        try:
+            name = signal.Signals(number).name
+        except ValueError:
+            name = f"signal {number}"
+        why = f"its process was stopped by signal {number} ({name})"
+        if number == signal.SIGKILL:
+            why += "; the system may have run out of memory, or someone ended the process"
+    else:
+        why = f"its process ended without recording a result (exit code {code})"
+    return (f"The analysis was interrupted{where}: {why}. Nothing from this run is shown; "
+            "start it again")
+
+
+class JobRunner:
+    """Claims queued runs from SQLite and executes them (see the module docstring)."""
+
+    def __init__(self, db_path: Path, data_dir: Path, *, mode: str = "process", workers: int = 1,
+                 poll_seconds: float = 1.0) -> None:
+        if mode not in MODES:
+            raise ValueError(f"JOB_RUNNER must be one of {MODES}, not {mode!r}")
+        self.db_path = Path(db_path)
+        self.data_dir = Path(data_dir)
+        self.mode = mode
+        self.workers = max(1, int(workers))
+        self.poll_seconds = poll_seconds
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._lock = threading.Lock()
+        self._active: dict[int, object] = {}
+        self._thread: threading.Thread | None = None
+        self._ctx = multiprocessing.get_context("spawn")
+
+    # -- life cycle -------------------------------------------------------
+
+    def start(self) -> None:
+        """Queue again the runs an earlier server left running, then start supervising."""
+        self.recover()
+        if self.mode == "inline" or self._thread is not None:
+            return
+        self._thread = threading.Thread(target=self._loop, name="sillmark-jobs", daemon=True)
+        self._thread.start()
+
+    def stop(self, timeout: float = 5.0) -> None:
+        """Stop supervising; worker processes still running are ended and their runs queued again."""
+        self._stop.set()
+        self._wake.set()
+        if self._thread is not None:
+            self._thread.join(timeout)
+        with self._lock:
+            active = [(rid, proc) for rid, proc in self._active.items()
+                      if isinstance(proc, multiprocessing.process.BaseProcess) and proc.is_alive()]
+        if not active:
+            return
+        # Queue them again first, so the watcher of a process ended here does not
+        # record a failure: the next start runs them from the beginning.
+        requeued = self._requeue([rid for rid, _ in active])
+        for _, proc in active:
+            proc.terminate()
+        for _, proc in active:
+            proc.join(timeout)
+        self._discard(requeued)
+
+    def _requeue(self, run_ids: list[int]) -> list[tuple[int, int]]:
+        """Queue ``run_ids`` again if they are still running; returns their (site, run) ids."""
+        conn = db.connect(self.db_path)
+        try:
+            with db.transaction(conn):
+                done = []
+                for rid in run_ids:
+                    cur = conn.execute(
+                        "UPDATE runs SET status = ?, phase = ?, percent = 0, worker_pid = NULL, "
+                        "message = '' WHERE id = ? AND status = ?",
+                        (db.QUEUED, REQUEUED_PHASE, rid, db.RUNNING),
+                    )
+                    if cur.rowcount:
+                        site = conn.execute("SELECT site_id FROM runs WHERE id = ?", (rid,)).fetchone()
+                        done.append((int(site["site_id"]), int(rid)))
+            return done
+        finally:
+            conn.close()
+
+    def _discard(self, runs: list[tuple[int, int]]) -> None:
+        """Remove what the interrupted attempts of ``runs`` wrote; they start afresh."""
+        for site_id, run_id in runs:
+            discard_partial_output(layout.run_dir(self.data_dir, site_id, run_id),
+                                   note="the server stopped during this run; it is queued again")
+
+    def recover(self) -> int:
+        """Runs left ``running`` by a worker process that is gone are queued again; returns how many.
+
+        Runs this runner is supervising itself are left alone.
+        """
+        conn = db.connect(self.db_path)
+        try:
+            rows = conn.execute("SELECT id, worker_pid FROM runs WHERE status = ?", (db.RUNNING,)).fetchall()
+        finally:
+            conn.close()
+        with self._lock:
+            mine = set(self._active)
+        stale = [r["id"] for r in rows if r["id"] not in mine and not _pid_alive(r["worker_pid"])]
+        if stale:
+            self._discard(self._requeue(stale))
+            log.info("queued again runs %s, whose worker process is gone", stale)
+        return len(stale)
+
+    # -- queue --------------------------------------------------------------
+
+    def submit(self, run_id: int) -> None:
+        """Tell the runner a run was queued (it is already in the table)."""
+        if self.mode == "inline":
+            if self._claim(run_id):
+                run_job(str(self.db_path), str(self.data_dir), run_id)
+            return
+        self._wake.set()
+
+    def _claim(self, run_id: int) -> bool:
+        conn = db.connect(self.db_path)
+        try:
+            with db.transaction(conn):
+                cur = conn.execute(
+                    "UPDATE runs SET status = ?, phase = 'starting', started_utc = ? "
+                    "WHERE id = ? AND status = ?",
+                    (db.RUNNING, db.utc_now(), run_id, db.QUEUED),
+                )
+            return cur.rowcount == 1
+        finally:
+            conn.close()
+
+    def _next_queued(self) -> int | None:
+        conn = db.connect(self.db_path)
+        try:
+            row = conn.execute(
+                "SELECT id FROM runs WHERE status = ? ORDER BY id LIMIT 1", (db.QUEUED,)
+            ).fetchone()
+            return None if row is None else int(row["id"])
+        finally:
+            conn.close()
+
+    def _loop(self) -> None:
+        while not self._stop.is_set():
+            try:
+                self.recover()  # e.g. a worker of an earlier server that was killed with it
+                with self._lock:
+                    free = self.workers - len(self._active)
+                while free > 0 and not self._stop.is_set():
+                    run_id = self._next_queued()
+                    if run_id is None or not self._claim(run_id):
+                        break
+                    self._launch(run_id)
+                    free -= 1
+            except Exception:  # pragma: no cover - keep supervising whatever happens
+                log.exception("job supervisor error")
+            self._wake.wait(self.poll_seconds)
+            self._wake.clear()
+
+    def _launch(self, run_id: int) -> None:
+        args = (str(self.db_path), str(self.data_dir), run_id)
+        if self.mode == "process":
+            proc = self._ctx.Process(target=_process_main, args=args, name=f"sillmark-run-{run_id}",
+                                     daemon=True)
+            proc.start()
+            db_conn = db.connect(self.db_path)
+            try:
+                db.update_run(db_conn, run_id, worker_pid=proc.pid)
+            finally:
+                db_conn.close()
+        else:
+            proc = threading.Thread(target=run_job, args=args, name=f"sillmark-run-{run_id}", daemon=True)
+            proc.start()
+        with self._lock:
+            self._active[run_id] = proc
+        threading.Thread(target=self._watch, args=(run_id, proc), daemon=True).start()
+
+    def _watch(self, run_id: int, proc) -> None:
+        proc.join()
+        code = getattr(proc, "exitcode", 0)
+        try:
+            self._record_end(run_id, code)
+        finally:
+            # Only now: until the end is recorded, recover() must see the run as ours
+            # (it would otherwise queue the killed run again instead).
+            with self._lock:
+                self._active.pop(run_id, None)
+            self._wake.set()
+
+    def _record_end(self, run_id: int, code: int | None) -> None:
+        """A worker has ended: if it recorded no end, mark its run interrupted and clear its folder."""
+        try:
+            conn = db.connect(self.db_path)
+        except Exception:  # pragma: no cover - the database itself is gone
+            log.exception("could not record the end of run %s", run_id)
+            return
+        try:
+            run = db.get_run(conn, run_id)
+            if run is None or run["status"] != db.RUNNING:
+                return
+            message = interruption_message(int(code or 0) if self.mode == "process" else 0,
+                                           run["phase"])
+            with db.transaction(conn):
+                # Only if the run is still running (not queued again by stop() meanwhile).
+                changed = conn.execute(
+                    "UPDATE runs SET status = ?, phase = ?, message = ?, finished_utc = ? "
+                    "WHERE id = ? AND status = ?",
+                    (db.FAILED, INTERRUPTED_PHASE, message, db.utc_now(), run_id, db.RUNNING),
+                ).rowcount
+            if changed:
+                log.warning("run %s: %s", run_id, message)
+                folder = layout.run_dir(self.data_dir, run["site_id"], run_id)
+                discard_partial_output(folder, note=message)
+        except Exception:  # pragma: no cover - the database itself is gone
+            log.exception("could not record the end of run %s", run_id)
+        finally:
+            conn.close()
+
+    def busy(self) -> int:
+        with self._lock:
+            return len(self._active)

@@ -1,0 +1,404 @@
+"""The body of one analysis run, as executed by the background worker.
+
+:func:`run_job` reads the DEM, marks the outlets, runs the spill engine, draws
+the hillshade, writes the result files (the same as ``sillmark analyse``) and
+the memory-mappable arrays, recording its phase and percent in SQLite as it
+goes. It runs in a separate process (see :mod:`sillmark.web.jobs`), so it imports no
+Flask and talks to the server only through the database and the files.
+
+A run never touches the results of an earlier run: it writes into its own
+folder (each file under a temporary name, renamed when complete), and only
+when everything is written does one transaction mark it done and make it the
+site's current run. A run that fails removes what it had half written
+(:func:`discard_partial_output`), which gives the space back on a full disk.
+Every write to the run's row is made only while the run is still ``running``:
+a run the server has taken back (see :class:`RunTakenBack`) is never recorded
+as done or failed by its worker, and never becomes current.
+"""
+
+from __future__ import annotations
+
+import errno
+import logging
+import math
+import os
+import shutil
+import sqlite3
+import sys
+import time
+import traceback
+from pathlib import Path
+
+import numpy as np
+import pyproj
+
+from sillmark.grid.dem import read_dem
+from sillmark.errors import SillmarkError
+from sillmark.io.export import FILE_NAMES, write_results
+from sillmark.engine.flood import analyse_site
+from sillmark.grid.outlets import build_outlets
+from sillmark.web import arrays, db, layout, render, tiled_run
+
+log = logging.getLogger("sillmark.worker")
+
+# Where each phase starts, in percent of the whole run.
+PHASES = (
+    ("reading the DEM", 0),
+    ("marking outlets", 4),
+    ("flooding from the outlets", 8),
+    ("drawing the hillshade", 55),
+    ("writing result files", 62),
+    ("storing arrays for the map", 92),
+    ("finishing", 98),
+)
+_START = dict(PHASES)
+_NEXT = {name: (PHASES[k + 1][1] if k + 1 < len(PHASES) else 100) for k, (name, _) in enumerate(PHASES)}
+
+
+#: Least time between two progress writes within a phase, in seconds.
+PROGRESS_INTERVAL = 0.25
+
+
+class RunTakenBack(Exception):
+    """The server took this run back (queued it again on stopping, or recorded its end).
+
+    The worker stops at its next progress write and records nothing: the run's
+    row belongs to the server now, and its results must not become current.
+    """
+
+
+class _Progress:
+    """Writes phase and percent to the run's row, at most a few times a second."""
+
+    def __init__(self, conn, run_id: int, min_interval: float | None = None) -> None:
+        self.conn = conn
+        self.run_id = run_id
+        self.min_interval = PROGRESS_INTERVAL if min_interval is None else min_interval
+        self.phase = ""
+        self._last = 0.0
+
+    def start(self, phase: str) -> None:
+        self.phase = phase
+        self._write(_START[phase], force=True)
+
+    def within(self, fraction: float) -> None:
+        lo, hi = _START[self.phase], _NEXT[self.phase]
+        self._write(lo + (hi - lo) * min(max(fraction, 0.0), 1.0))
+
+    def _write(self, percent: float, force: bool = False) -> None:
+        now = time.monotonic()
+        if not force and now - self._last < self.min_interval:
+            return
+        self._last = now
+        if not db.update_run(self.conn, self.run_id, while_status=db.RUNNING, phase=self.phase,
+                             percent=round(float(percent), 1)):
+            raise RunTakenBack(f"run {self.run_id} is no longer running")
+
+
+def _specs(site_folder: Path, outlets: list[dict]) -> tuple:
+    specs = []
+    for o in outlets:
+        if o["kind"] in ("edge", "nodata"):
+            specs.append(o["kind"])
+        else:
+            specs.append(str(site_folder / o["file"]))
+    return tuple(specs)
+
+
+def lonlat_bounds(dem) -> list[float]:
+    """[west, south, east, north] in WGS 84 degrees of the DEM's outline."""
+
+    left, bottom, right, top = dem.bounds
+    n = 32
+    xs = np.concatenate([np.linspace(left, right, n), np.full(n, right),
+                         np.linspace(right, left, n), np.full(n, left)])
+    ys = np.concatenate([np.full(n, top), np.linspace(top, bottom, n),
+                         np.full(n, bottom), np.linspace(bottom, top, n)])
+    tr = pyproj.Transformer.from_crs(dem.horizontal_crs, pyproj.CRS("OGC:CRS84"), always_xy=True)
+    lon, lat = tr.transform(xs, ys)
+    lon, lat = np.asarray(lon), np.asarray(lat)
+    ok = np.isfinite(lon) & np.isfinite(lat)
+    return [float(lon[ok].min()), float(lat[ok].min()), float(lon[ok].max()), float(lat[ok].max())]
+
+
+def _cell_metres(dem) -> tuple:
+    """Cell width per row (array) and height, in metres, for the hillshade."""
+
+    dx, dy = dem.cell_size
+    if dem.is_geographic:
+        # Spherical metres per degree: enough for shading (not for areas).
+        t = dem.transform
+        lat = t.f + (np.arange(dem.rows) + 0.5) * t.e
+        per_deg = 111_320.0
+        return dx * per_deg * np.cos(np.radians(lat)), dy * per_deg
+    metres = float(dem.horizontal_crs.axis_info[0].unit_conversion_factor)
+    return dx * metres, dy * metres
+
+
+def run_job(db_path: str, data_dir: str, run_id: int) -> None:
+    """Run analysis ``run_id`` to the end, recording progress, success or the reason it failed."""
+    data = Path(data_dir)
+    conn = db.connect(db_path)
+    try:
+        run = db.get_run(conn, run_id)
+        if run is None:
+            return
+        folder = layout.run_dir(data, run["site_id"], run_id)
+        handler = None
+        try:
+            # Inside the try: a data folder that cannot be written is a failure with a reason.
+            folder.mkdir(parents=True, exist_ok=True)
+            handler = logging.FileHandler(folder / "worker.log", encoding="utf-8")
+            handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+            log.addHandler(handler)
+            log.setLevel(logging.INFO)
+            _run(conn, data, run, folder)
+        except RunTakenBack:
+            log.warning("run %s was taken back by the server; this worker stops", run_id)
+            discard_partial_output(folder)
+        except BaseException as exc:  # every failure is recorded; the message is for the user
+            message = _user_names(conn, run, failure_message(exc, folder))
+            log.error("run %s failed: %s\n%s", run_id, message, traceback.format_exc())
+            discard_partial_output(folder)
+            try:
+                db.update_run(conn, run_id, while_status=db.RUNNING, status=db.FAILED,
+                              message=message, finished_utc=db.utc_now())
+            except Exception:  # pragma: no cover - the database itself is gone
+                log.exception("could not record the failure of run %s", run_id)
+            if isinstance(exc, (KeyboardInterrupt, SystemExit)):
+                raise
+        finally:
+            if handler is not None:
+                log.removeHandler(handler)
+                handler.close()
+    finally:
+        conn.close()
+
+
+#: What a failed run leaves in its folder: only its log.
+_PARTIAL = ("results", "arrays", "arrays.tmp", "arrays.old", "levels", "stage_table.csv")
+
+
+def discard_partial_output(folder: Path, *, note: str | None = None) -> None:
+    """Remove what a run that did not finish wrote into ``folder``, keeping ``worker.log``.
+
+    Called for failed runs only (never for a site's current run). ``note`` is
+    appended to the log (the supervisor's account of a worker it saw killed).
+    """
+    folder = Path(folder)
+    for name in _PARTIAL:
+        path = folder / name
+        try:
+            if path.is_dir():
+                shutil.rmtree(path, ignore_errors=True)
+            elif path.exists():
+                path.unlink()
+        except OSError:  # pragma: no cover - best effort; nothing here is ever served
+            pass
+    if note:
+        try:
+            with open(folder / "worker.log", "a", encoding="utf-8") as fh:
+                fh.write(f"{db.utc_now()} ERROR {note}\n")
+        except OSError:
+            pass
+
+
+def _user_names(conn, run, message: str) -> str:
+    """Name files as the user knows them, not by their server-made names."""
+    try:
+        site = db.get_site(conn, run["site_id"])
+        settings = db.loads(run["settings"], {})
+        pairs = [(settings.get("dem_file"), site["original_name"] if site else None)]
+        pairs += [(o.get("file"), o.get("name")) for o in settings.get("outlets", []) if o.get("file")]
+        for stored, shown in pairs:
+            if stored and shown:
+                message = message.replace(Path(stored).name, shown)
+    except Exception:  # pragma: no cover - the message is still worth recording
+        pass
+    return message
+
+
+#: errno values that mean the disk (or the user's quota on it) is full.
+_NO_SPACE = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG}
+#: errno values that mean the data folder may not be written.
+_DENIED = {errno.EACCES, errno.EPERM}
+#: Below this many free bytes in the run's folder, a write error is blamed on space.
+LOW_SPACE_BYTES = 4 * 2**20
+
+
+def _chain(exc: BaseException):
+    while exc is not None:
+        yield exc
+        exc = exc.__cause__ or exc.__context__
+
+
+def _storage_trouble(exc: BaseException, folder: Path | None) -> str | None:
+    """"space", "read-only", "denied" or None: whether a failure came from the disk, not the data.
+
+    GDAL (through rasterio) and SQLite report a full disk in their own words,
+    not as an OSError, so their messages are read too, and the free space left
+    in the run's folder decides a write error that says nothing.
+    """
+
+    for e in _chain(exc):
+        if isinstance(e, OSError) and e.errno in _NO_SPACE:
+            return "space"
+        if isinstance(e, OSError) and e.errno == errno.EROFS:
+            return "read-only"
+        if isinstance(e, OSError) and e.errno in _DENIED:
+            return "denied"
+        text = str(e).lower()
+        if "no space left" in text or "disk is full" in text or "disk quota" in text:
+            return "space"
+        if "read-only file system" in text or "readonly database" in text:
+            return "read-only"
+
+    chain = list(_chain(exc))
+    if any(isinstance(e, (SillmarkError, FileNotFoundError, MemoryError)) for e in chain):
+        return None  # the engine's or the file's own reason says more
+    if folder is not None and any(isinstance(e, (OSError, sqlite3.Error)) or
+                                  e.__class__.__module__.startswith("rasterio") for e in chain):
+        try:
+            if shutil.disk_usage(next(p for p in (folder, *folder.parents) if p.exists())).free \
+                    < LOW_SPACE_BYTES:
+                return "space"
+        except (OSError, StopIteration):  # pragma: no cover
+            pass
+    return None
+
+
+def failure_message(exc: BaseException, folder: Path | None = None) -> str:
+    """What the page says when a run fails: the engine's own words for its errors, and
+    plain words for a full disk or a data folder that cannot be written."""
+
+    trouble = _storage_trouble(exc, folder)
+    if trouble == "space":
+        return ("the disk holding the data folder is full (no space left to write the "
+                "results); free some space and start the analysis again. The earlier "
+                "results, if any, are unchanged")
+    if trouble == "read-only":
+        return ("the data folder is on a read-only file system, so the results cannot be "
+                "written; make it writable and start the analysis again. The earlier "
+                "results, if any, are unchanged")
+    if trouble == "denied":
+        return ("Sillmark is not allowed to write (or read) files in the data folder "
+                "(permission denied); fix the folder's permissions and start the analysis "
+                "again. The earlier results, if any, are unchanged")
+    if isinstance(exc, SillmarkError):
+        return " ".join(str(exc).split())
+    if isinstance(exc, MemoryError):
+        return ("not enough memory for this DEM; crop it to the site or resample it to "
+                "coarser cells")
+    if isinstance(exc, OSError):
+        return f"a file could not be read or written ({exc.strerror or exc.__class__.__name__})"
+    if isinstance(exc, KeyboardInterrupt):
+        return "the analysis was interrupted; start it again"
+    return (f"internal error ({exc.__class__.__name__}); the details are in the run's "
+            "worker.log in the data folder")
+
+
+def _run(conn, data: Path, run, folder: Path) -> None:
+    run_id = run["id"]
+    settings = db.loads(run["settings"])
+    site_folder = layout.site_dir(data, run["site_id"])
+    progress = _Progress(conn, run_id)
+    if not db.update_run(conn, run_id, while_status=db.RUNNING, started_utc=db.utc_now(),
+                         worker_pid=os.getpid()):
+        raise RunTakenBack(f"run {run_id} is not running (it was never claimed, or taken back)")
+    log.info("run %s started in process %s", run_id, os.getpid())
+    t0 = time.perf_counter()
+
+    progress.start("reading the DEM")
+    dem = read_dem(site_folder / settings["dem_file"], vertical_unit=settings["vertical_unit"],
+                   max_cells=int(settings.get("max_cells") or 400_000_000))
+    connectivity = int(settings["connectivity"])
+    tiled = tiled_run.analyse_if_large(dem, site_folder / settings["dem_file"], _specs(
+        site_folder, settings["outlets"]), settings, folder / "results", progress)
+    if tiled is None:
+        progress.start("marking outlets")
+        outlets = build_outlets(dem, _specs(site_folder, settings["outlets"]), connectivity=connectivity)
+        progress.start("flooding from the outlets")
+        result = analyse_site(dem, outlets, connectivity=connectivity)
+    else:
+        outlets, result = tiled
+    log.info("flood done in %.2f s", time.perf_counter() - t0)
+
+    progress.start("drawing the hillshade")
+    dx_m, dy_m = _cell_metres(dem)
+    shade = render.hillshade(dem.elevation, dx_m=dx_m, dy_m=dy_m, z_metres=dem.vertical_unit.metres)
+    pyramid = render.shade_pyramid(shade)
+    z_lo, z_hi = float(np.nanmin(dem.elevation)), float(np.nanmax(dem.elevation))
+    tints = render.shade_pyramid(render.tint_classes(dem.elevation, z_lo, z_hi))
+
+    progress.start("writing result files")
+    names: list[str] = []
+
+    def file_progress(name: str, done: int, total: int) -> None:
+        if name not in names:
+            names.append(name)
+        progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
+
+    results = folder / "results"
+    if tiled is None:  # the tiled engine wrote its files as it went
+        write_results(result, dem, outlets, results, progress=file_progress)
+
+    progress.start("storing arrays for the map")
+    z = dem.elevation
+    valid = dem.valid
+    finite_s = result.onset_stage[np.isfinite(result.onset_stage)]
+    t = result.depressions
+    summary = {
+        "rows": dem.rows,
+        "cols": dem.cols,
+        "valid_cells": int(np.count_nonzero(valid)),
+        "outlet_cells": int(outlets.count),
+        "outlet_sources": [o.get("name", o["kind"]) for o in settings["outlets"]],
+        "connectivity": connectivity,
+        "vertical_unit": dem.vertical_unit.value,
+        "elevation_min": float(np.nanmin(z)),
+        "elevation_max": float(np.nanmax(z)),
+        "onset_min": float(finite_s.min()) if finite_s.size else None,
+        "onset_max": float(finite_s.max()) if finite_s.size else None,
+        "depressions": len(t),
+        "highest_spill": float(t.spill_elevation.max()) if len(t) else None,
+        "unreached_cells": int(result.unreached_cells),
+        "lonlat_bounds": lonlat_bounds(dem),
+        "cell_metres": float(min(np.min(dx_m), dy_m)),
+        "seconds": None,
+    }
+    for key in ("elevation_min", "elevation_max", "onset_min", "onset_max", "highest_spill"):
+        if summary[key] is not None and not math.isfinite(summary[key]):
+            summary[key] = None
+    arrays.save(folder / "arrays", dem, result, pyramid, tints, {"summary": summary})
+
+    progress.start("finishing")
+    summary["seconds"] = round(time.perf_counter() - t0, 2)
+    with db.transaction(conn):
+        # Only a run still ours becomes current: one the server queued again while this
+        # worker was finishing is run afresh, and its folder is cleared.
+        done = conn.execute(
+            "UPDATE runs SET status = ?, phase = ?, percent = 100, finished_utc = ?, summary = ? "
+            "WHERE id = ? AND status = ?",
+            (db.DONE, "done", db.utc_now(), db.dumps(summary), run_id, db.RUNNING),
+        ).rowcount
+        if done != 1:
+            raise RunTakenBack(f"run {run_id} was taken back before it could finish")
+        conn.execute("UPDATE sites SET current_run = ? WHERE id = ?", (run_id, run["site_id"]))
+    log.info("run %s done in %.2f s", run_id, summary["seconds"])
+
+
+def main(argv: list[str] | None = None) -> int:  # pragma: no cover - manual use
+    """``python -m sillmark.web.worker DB DATA RUN``: run one analysis in the foreground."""
+    args = sys.argv[1:] if argv is None else argv
+    conn = db.connect(args[0])
+    try:  # claim it as the job runner would
+        db.update_run(conn, int(args[2]), while_status=db.QUEUED, status=db.RUNNING,
+                      phase="starting", started_utc=db.utc_now())
+    finally:
+        conn.close()
+    run_job(args[0], args[1], int(args[2]))
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
