@@ -40,7 +40,7 @@ def _peak_mib() -> float:
 
 def out_of_core(folder: str, window_cells: int) -> dict:
     from sillmark.grid.dem import read_dem_grid
-    from sillmark.io.export import read_summary
+    from sillmark.io.summary import read_summary
     from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
 
     grid = read_dem_grid(read_summary(folder).dem)

@@ -636,8 +636,8 @@ def _asset_level_lines(table, dem, stream: TextIO) -> list[str]:
     with their depth, and the next to flood with their onset stage and sill."""
     import numpy as np
 
-    from sillmark.products.assets import STATE_DRY, STATE_FLOODED, STATE_SHIELDED
     from sillmark.io.stage_files import level_text
+    from sillmark.products.assets import STATE_DRY, STATE_FLOODED, STATE_SHIELDED
 
     sym = table.unit.symbol
     state = table.state
@@ -677,9 +677,9 @@ def _asset_name(table, k: int, state: str = "") -> str:
 
 
 def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
-    from sillmark.io.export import horizontal_unit_suffix, unit_suffix
+    from sillmark.grid.crs import horizontal_unit_suffix
     from sillmark.io.stage_files import level_text
-    from sillmark.units import VerticalUnit
+    from sillmark.units import VerticalUnit, unit_suffix
 
     unit = VerticalUnit.parse(dem.vertical_unit)
     sym = unit.symbol
@@ -794,8 +794,8 @@ def _site_from_dem(dem_path: str, args: argparse.Namespace, progress: _Progress)
     The DEM is read by its absolute path, so that ``summary.json`` records a path
     that still leads to it from another working folder.
     """
-    from sillmark.grid.dem import read_dem
     from sillmark.engine.flood import analyse_site
+    from sillmark.grid.dem import read_dem
     from sillmark.grid.outlets import build_outlets
 
     connectivity = 8 if args.connectivity is None else args.connectivity
@@ -830,9 +830,9 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
     import numpy as np
     import rasterio
 
-    from sillmark.grid.dem import read_dem
-    from sillmark.errors import InvalidDEM, InvalidParameter
     from sillmark.engine.flood import OUTLET_CODE, analyse_site
+    from sillmark.errors import InvalidDEM, InvalidParameter
+    from sillmark.grid.dem import read_dem
     from sillmark.grid.outlets import Outlets
 
     given = [option for option, value in (
@@ -845,7 +845,7 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
             f"is a DEM; the analysis in {folder} keeps its own settings: drop "
             f"{'it' if len(given) == 1 else 'them'}, or give the DEM file as SOURCE"
         )
-    from sillmark.io.export import read_summary
+    from sillmark.io.summary import read_summary
 
     summary = read_summary(folder)
     rows, cols = summary.shape
@@ -938,9 +938,9 @@ def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progre
     ``then(run, grid, run_map, step)``, if given, runs next on the same cluster
     (``step`` is the progress callback of the tiled steps); its result is returned
     fourth."""
-    from sillmark.grid.dem import read_dem_grid
-    from sillmark.errors import InvalidParameter
     from sillmark.engine.tiled import analyse_tiled, dask_map
+    from sillmark.errors import InvalidParameter
+    from sillmark.grid.dem import read_dem_grid
 
     if args.max_cells is not None:
         raise InvalidParameter("--max-cells guards the memory of the in-memory engine; the tiled "
@@ -980,7 +980,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     hierarchy files in windows of depressions on the same cluster."""
     import types
 
-    from sillmark.io.export import FILE_NAMES
+    from sillmark.io.summary import FILE_NAMES
     from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
     from sillmark.products.tiled_outlines import add_depression_outlines
 
@@ -1084,8 +1084,8 @@ def _level_notes(vertical_unit, z_low: float, z_high: float, lowest: float,
 
 
 def _run_stage(args: argparse.Namespace) -> int:
-    from sillmark.products.stage import stage_levels
     from sillmark.io.stage_files import write_stage_results
+    from sillmark.products.stage import stage_levels
 
     _stage_request(args)
     source = Path(args.source)
@@ -1158,7 +1158,11 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
     import uuid
 
     from sillmark.errors import InvalidParameter
-    from sillmark.products.tiled_stage import open_result_folder, tiled_stage_levels, write_tiled_stage_results
+    from sillmark.products.tiled_stage import (
+        open_result_folder,
+        tiled_stage_levels,
+        write_tiled_stage_results,
+    )
 
     source = Path(args.source)
     if args.assets is not None:
@@ -1222,7 +1226,11 @@ LIST_SILLS = 10
 
 def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -> list:
     """Assess the assets at every written level and write their two files; return the tables."""
-    from sillmark.io.asset_files import asset_file_names, write_assets_csv, write_assets_geojson
+    from sillmark.io.asset_files import (
+        asset_file_names,
+        write_assets_csv,
+        write_assets_geojson,
+    )
     from sillmark.products.assets import assess_assets
 
     tables = []

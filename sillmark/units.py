@@ -81,3 +81,34 @@ _ALIASES = {
 ACRE_M2 = 4046.8564224
 #: One acre-foot in cubic metres (43 560 ft³ with the international foot).
 ACRE_FOOT_M3 = 43560.0 * 0.3048**3
+
+
+# Column-name suffixes and long names of the vertical units. The long names are
+# the unit names of the EPSG registry as PROJ spells them (EPSG 9001, 9002, 9003).
+_UNIT_SUFFIX = {VerticalUnit.METRE: "m", VerticalUnit.FOOT: "ft", VerticalUnit.US_SURVEY_FOOT: "us_ft"}
+_UNIT_NAME = {
+    VerticalUnit.METRE: "metre",
+    VerticalUnit.FOOT: "foot",
+    VerticalUnit.US_SURVEY_FOOT: "US survey foot",
+}
+
+
+def unit_of(grid) -> VerticalUnit:
+    """The vertical unit of a DEM or grid (its ``vertical_unit`` attribute)."""
+    return VerticalUnit.parse(grid.vertical_unit)
+
+
+def unit_suffix(unit: VerticalUnit | str) -> str:
+    """Column-name suffix of a vertical unit: ``m``, ``ft`` or ``us_ft``.
+
+    Examples
+    --------
+    >>> unit_suffix("us-ft")
+    'us_ft'
+    """
+    return _UNIT_SUFFIX[VerticalUnit.parse(unit)]
+
+
+def unit_name(unit: VerticalUnit | str) -> str:
+    """Long name of a vertical unit as written in GeoTIFF band units and CSV comments."""
+    return _UNIT_NAME[VerticalUnit.parse(unit)]

@@ -53,7 +53,7 @@ def sha(data: bytes) -> str:
 
 
 def served(client: Client, site_id: int) -> dict:
-    from sillmark.io.export import FILE_NAMES
+    from sillmark.io.summary import FILE_NAMES
 
     out = {}
     for name in FILE_NAMES:

@@ -13,7 +13,7 @@ import rasterio
 from affine import Affine
 
 from sillmark import SCREENING_CAUTION
-from sillmark.io.export import FILE_NAMES
+from sillmark.io.summary import FILE_NAMES
 from sillmark import __version__
 from sillmark.cli import main
 

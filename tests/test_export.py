@@ -18,7 +18,12 @@ from affine import Affine
 from rasterio.enums import Compression
 
 from sillmark import SCREENING_CAUTION
+from sillmark.io import atomic
+from sillmark.io import csv_tables
 from sillmark.io import export
+from sillmark.io import geojson as geojson_files
+from sillmark.io import geotiff
+from sillmark.io import summary
 from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidParameter
 from sillmark.engine.flood import analyse_site
@@ -192,7 +197,7 @@ def test_tall_raster_is_written_in_blocks_that_join_exactly(tmp_path):
     z = (rng.random((600, 9)) * 5.0).astype(np.float32)
     dem, _, result = run(z)
     calls = []
-    export.write_onset_stage(result, dem, tmp_path / "s.tif", progress=lambda *a: calls.append(a))
+    geotiff.write_onset_stage(result, dem, tmp_path / "s.tif", progress=lambda *a: calls.append(a))
     assert calls == [("s.tif", 1, 3), ("s.tif", 2, 3), ("s.tif", 3, 3)]
     with rasterio.open(tmp_path / "s.tif") as ds:
         np.testing.assert_array_equal(ds.read(1), result.onset_stage)
@@ -250,7 +255,7 @@ def test_csv_columns_carry_units_and_numbers_match_the_table(site, written):
 
 def test_csv_in_feet_converts_volume_and_adds_acre_feet(tmp_path):
     dem, _, result = run(site_elevation(), unit="ft")
-    export.write_depressions_csv(result, dem, tmp_path / "d.csv")
+    csv_tables.write_depressions_csv(result, dem, tmp_path / "d.csv")
     comments, header, rows = read_csv(tmp_path / "d.csv")
     assert "# vertical unit: ft (foot)" in comments
     assert "pit_elevation_ft" in header and "max_depth_ft" in header
@@ -345,7 +350,7 @@ def test_polygon_areas_on_the_ellipsoid_match_the_table(site, written):
     k0 = params["Scale factor at natural origin"]
     assert k0 == 0.9996
     geod = pyproj.Geod(ellps="WGS84")  # pyproj Geod, Karney (2013) algorithms
-    half_step = 0.5 * 10.0 ** -export.COORDINATE_DECIMALS
+    half_step = 0.5 * 10.0 ** -geojson_files.COORDINATE_DECIMALS
     _, _, delta = geod.inv(15.0, 45.1, 15.0, 45.1 + half_step)
     doc = json.loads((out / "depressions.geojson").read_text(encoding="utf-8"))
     for feature in doc["features"]:
@@ -368,7 +373,7 @@ def test_polygon_areas_match_the_table_on_a_geographic_dem(tmp_path):
     z = site_elevation()
     transform = Affine(1e-4, 0.0, 15.0, 0.0, -1e-4, 45.0)
     dem, _, result = run(z, transform=transform, crs="EPSG:4326")
-    path = export.write_depressions_geojson(result, dem, tmp_path / "d.geojson")
+    path = geojson_files.write_depressions_geojson(result, dem, tmp_path / "d.geojson")
     doc = json.loads(path.read_text(encoding="utf-8"))
     geod = pyproj.Geod(ellps="WGS84")
     assert len(doc["features"]) == len(result.depressions) == 3
@@ -443,15 +448,15 @@ def test_summary_json(site, written):
     assert "total_volume_acre_ft" not in d
     assert d["highest_spill_elevation"]["value"] == float(t.spill_elevation.max()) == 20.0
     assert d["highest_spill_elevation"]["unit"] == "m"
-    assert s["files"] == list(export.FILE_NAMES)
+    assert s["files"] == list(summary.FILE_NAMES)
 
 
 def test_write_results_writes_every_file_atomically(written):
     out, paths, calls = written
-    assert [p.name for p in paths] == list(export.FILE_NAMES)
-    assert sorted(p.name for p in out.iterdir()) == sorted(export.FILE_NAMES)  # no temp files left
+    assert [p.name for p in paths] == list(summary.FILE_NAMES)
+    assert sorted(p.name for p in out.iterdir()) == sorted(summary.FILE_NAMES)  # no temp files left
     assert all(p.stat().st_size > 0 for p in paths)
-    assert {c[0] for c in calls} == set(export.FILE_NAMES)
+    assert {c[0] for c in calls} == set(summary.FILE_NAMES)
     assert all(done <= total for _, done, total in calls)
 
 
@@ -459,7 +464,7 @@ def test_failed_write_keeps_the_previous_file_and_leaves_no_temporary(tmp_path):
     target = tmp_path / "depressions.csv"
     target.write_text("previous complete result\n")
     with pytest.raises(RuntimeError):
-        with export.atomic_output(target) as tmp:
+        with atomic.atomic_output(target) as tmp:
             tmp.write_text("half a res")
             raise RuntimeError("disk full, say")
     assert target.read_text() == "previous complete result\n"
@@ -505,7 +510,7 @@ def test_result_of_another_grid_is_refused(site, tmp_path):
     _, outlets, result = site
     other = dem_from_array(np.zeros((3, 3), dtype=np.float32), transform=SITE)
     with pytest.raises(InvalidParameter, match="export a result computed on this DEM"):
-        export.write_onset_stage(result, other, tmp_path / "x.tif")
+        geotiff.write_onset_stage(result, other, tmp_path / "x.tif")
     assert list(tmp_path.iterdir()) == []
 
 
@@ -548,9 +553,9 @@ def test_table_number_texts_equal_the_per_value_shortest_positional_text(dtype):
         np.array([0.0, -0.0, np.inf, -np.inf, np.nan, 1e30, 47.6, 1.0, 100.0, 0.1, 123456789.0], dtype=dtype),
     ])
     with np.errstate(over="ignore", invalid="ignore"):
-        fast = export._float_texts(values)
+        fast = csv_tables.float_texts(values)
     expected = [_positional_reference(v) for v in values]
     wrong = [(repr(v), f, e) for v, f, e in zip(values, fast, expected) if f != e]
     assert wrong == []
-    assert export._float_texts(np.array([47.6, 3e-7, 2.5e20], dtype=np.float32)) == \
+    assert csv_tables.float_texts(np.array([47.6, 3e-7, 2.5e20], dtype=np.float32)) == \
         ["47.6", "0.0000003", "250000000000000000000"]

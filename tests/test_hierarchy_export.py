@@ -13,7 +13,8 @@ from sillmark import SCREENING_CAUTION
 from sillmark.io import hierarchy_files as he
 from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidParameter
-from sillmark.io.export import FILE_NAMES, write_results
+from sillmark.io.summary import FILE_NAMES
+from sillmark.io.export import write_results
 from sillmark.engine.flood import analyse_site
 from sillmark.products.hierarchy import site_hierarchy
 from sillmark.grid.outlets import build_outlets

@@ -19,7 +19,8 @@ from hypothesis import strategies as st
 from rasterio.enums import Compression
 
 from sillmark import SCREENING_CAUTION
-from sillmark.io import export
+from sillmark.io import csv_tables
+from sillmark.io import geojson as geojson_files
 from sillmark.io import stage_files as se
 from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidParameter
@@ -196,8 +197,8 @@ def test_outlines_follow_rfc_7946(written, level, kind):
                 for lon, lat in ring:  # sections 3.1.1 and 4: lon, lat in WGS84 degrees
                     assert 14.9 < lon < 15.1 and 45.0 < lat < 45.2
                     # Rounded as depressions.geojson is (section 11.2).
-                    assert lon == round(lon, export.COORDINATE_DECIMALS)
-                    assert lat == round(lat, export.COORDINATE_DECIMALS)
+                    assert lon == round(lon, geojson_files.COORDINATE_DECIMALS)
+                    assert lat == round(lat, geojson_files.COORDINATE_DECIMALS)
                 # Section 3.1.6: exterior counterclockwise, holes clockwise.
                 assert (signed_area(ring) > 0) == (k == 0)
         assert shapely.geometry.shape(feature["geometry"]).is_valid
@@ -243,7 +244,7 @@ def test_outline_areas_on_the_ellipsoid_match_the_map(site, written):
     params = {p.name: p.value for p in pyproj.CRS(UTM33).coordinate_operation.params}
     k0 = params["Scale factor at natural origin"]
     geod = pyproj.Geod(ellps="WGS84")  # pyproj Geod, Karney (2013) algorithms
-    half_step = 0.5 * 10.0 ** -export.COORDINATE_DECIMALS
+    half_step = 0.5 * 10.0 ** -geojson_files.COORDINATE_DECIMALS
     _, _, delta = geod.inv(15.0, 45.1, 15.0, 45.1 + half_step)
     out, _, _ = written
     checked = 0
@@ -374,7 +375,7 @@ def test_depressions_at_a_level(site, written, level):
         assert column in header
     states, freeboard = depression_states(result, level)
     t = result.depressions
-    table = export.depression_columns(result, dem)
+    table = csv_tables.depression_columns(result, dem)
     assert len(rows) == len(t) == 3
     for k, row in enumerate(rows):
         assert int(row["id"]) == t.id[k]

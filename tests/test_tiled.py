@@ -25,14 +25,9 @@ from affine import Affine
 
 from sillmark.grid.dem import read_dem
 from sillmark.errors import InvalidDEM, InvalidOutlets, InvalidParameter
-from sillmark.io.export import (
-    write_depression_ids,
-    write_depressions_csv,
-    write_fill_depth,
-    write_flood_tree,
-    write_onset_stage,
-    write_spill_points_geojson,
-)
+from sillmark.io.geotiff import write_depression_ids, write_fill_depth, write_flood_tree, write_onset_stage
+from sillmark.io.csv_tables import write_depressions_csv
+from sillmark.io.geojson import write_spill_points_geojson
 from sillmark.engine.flood import SpillResult, priority_flood
 from sillmark.grid.outlets import build_outlets
 from sillmark.engine.tiled import TILED_FILE_NAMES, analyse_tiled, serial_map

@@ -25,7 +25,8 @@ from affine import Affine
 
 from sillmark.grid.dem import read_dem, read_dem_grid
 from sillmark.errors import InvalidDEM, InvalidParameter
-from sillmark.io.export import depression_polygons, write_depressions_geojson
+from sillmark.products.outlines import depression_polygons
+from sillmark.io.geojson import write_depressions_geojson
 from sillmark.products.stage import stage_levels
 from sillmark.io.stage_files import write_stage_results
 from sillmark.engine.tiled import analyse_tiled

@@ -93,7 +93,7 @@ def sha(data: bytes) -> str:
 
 def served_results(client: Client, site_id: int) -> dict[str, str]:
     """Digest of every result file the site serves now."""
-    from sillmark.io.export import FILE_NAMES
+    from sillmark.io.summary import FILE_NAMES
 
     out = {}
     for name in FILE_NAMES:

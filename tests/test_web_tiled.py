@@ -177,7 +177,7 @@ def test_in_memory_file_progress_spreads_over_every_result_file(fresh, lowbank_t
     # "writing result files" runs from 62 % to 92 %, so each file's start is its
     # own step of 30/11 % and 92 % is reached only when summary.json is done
     # (dividing by a fixed 8 would reach 92 % after the eighth file and stay there).
-    from sillmark.io.export import FILE_NAMES
+    from sillmark.io.summary import FILE_NAMES
     from sillmark.web import worker
 
     seen = []

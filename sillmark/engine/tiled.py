@@ -98,17 +98,6 @@ import numpy as np
 from sillmark.engine import _spill_kernels as _s
 from sillmark.engine import _tile_kernels as _t
 from sillmark.engine import _tiled_kernels
-from sillmark.grid.dem import DEMGrid, read_dem_grid
-from sillmark.errors import InvalidDEM, InvalidParameter
-from sillmark.io.export import (
-    DEPRESSION_ID_NODATA,
-    FILE_NAMES,
-    RESULT_LAYERS,
-    write_depression_table_csv,
-    write_result_layer,
-    write_spill_points_table,
-    write_table_summary,
-)
 from sillmark.engine.flood import (
     DIRECTION_COL,
     DIRECTION_ROW,
@@ -118,7 +107,13 @@ from sillmark.engine.flood import (
     _spill_parts,
     depression_table,
 )
+from sillmark.errors import InvalidDEM, InvalidParameter
+from sillmark.grid.dem import DEMGrid, read_dem_grid
 from sillmark.grid.outlets import OutletPlan, plan_outlets
+from sillmark.io.csv_tables import write_depression_table_csv
+from sillmark.io.geojson import write_spill_points_table
+from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
+from sillmark.io.summary import FILE_NAMES, write_table_summary
 
 __all__ = [
     "DEFAULT_TILE_SIZE",

@@ -1321,3 +1321,25 @@ def _short(a: np.ndarray) -> str:
     if a.ndim == 0:
         return str(a.item())
     return np.array2string(a.ravel()[:5], separator=", ") + ("..." if a.size > 5 else "")
+
+
+def check_layers_on_grid(dem: "DEM | DEMGrid", **layers: np.ndarray) -> None:
+    """Every named layer has the DEM's shape, or :class:`InvalidParameter` naming the first that differs.
+
+    Examples
+    --------
+    >>> z = dem_from_array(np.zeros((2, 3), np.float32))
+    >>> check_layers_on_grid(z, onset_stage=np.zeros((2, 3)))
+    >>> check_layers_on_grid(z, onset_stage=np.zeros((3, 2)))
+    Traceback (most recent call last):
+    ...
+    sillmark.errors.InvalidParameter: the result's onset_stage is 3 x 2 cells but the DEM is 2 x 3; export a result computed on this DEM
+    """
+    shape = tuple(dem.shape)
+    for name, layer in layers.items():
+        got = tuple(np.shape(layer))
+        if got != shape:
+            raise InvalidParameter(
+                f"the result's {name} is {got[0]} x {got[1]} cells but the DEM is "
+                f"{shape[0]} x {shape[1]}; export a result computed on this DEM"
+            )

@@ -30,21 +30,14 @@ from typing import Any
 
 import numpy as np
 
-from sillmark import SCREENING_CAUTION
-from sillmark.products.assets import STATE_FLOODED, AssetTable, WhatIf
+from sillmark import SCREENING_CAUTION, __version__
 from sillmark.errors import InvalidParameter
-from sillmark.io.export import (
-    COORDINATE_DECIMALS,
-    atomic_output,
-    crs_label,
-    horizontal_unit_suffix,
-    sillmark_version,
-    unit_name,
-    unit_suffix,
-    write_feature_collection,
-)
+from sillmark.grid.crs import crs_label, horizontal_unit_suffix
+from sillmark.io.atomic import atomic_output
+from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
-from sillmark.units import VerticalUnit
+from sillmark.products.assets import STATE_FLOODED, AssetTable, WhatIf
+from sillmark.units import VerticalUnit, unit_name, unit_suffix
 
 __all__ = [
     "FEATURE_ASSET",
@@ -216,7 +209,7 @@ def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
     n = len(table)
     with atomic_output(final) as tmp:
         with open(tmp, "x", newline="", encoding="utf-8") as f:
-            f.write(f"# Sillmark {sillmark_version()} asset table\n")
+            f.write(f"# Sillmark {__version__} asset table\n")
             f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
             f.write(f"# water level: {_level_text(table)} {unit.symbol} ({unit_name(unit)})\n")
             f.write(f"# vertical unit: {unit.value} ({unit_name(unit)})\n")
@@ -471,7 +464,7 @@ def write_what_if_csv(
     final = Path(path)
     with atomic_output(final) as tmp:
         with open(tmp, "x", newline="", encoding="utf-8") as f:
-            f.write(f"# Sillmark {sillmark_version()} what-if: controlling sills raised\n")
+            f.write(f"# Sillmark {__version__} what-if: controlling sills raised\n")
             f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
             f.write(f"# height: each controlling sill raised by {_short(height)} {unit.symbol} "
                     f"({unit_name(unit)}), one sill at a time, the site flooded again for each\n")

@@ -55,22 +55,19 @@ from typing import TYPE_CHECKING, TextIO
 
 import numpy as np
 
-from sillmark import SCREENING_CAUTION
+from sillmark import SCREENING_CAUTION, __version__
 from sillmark.errors import InvalidParameter
-from sillmark.io.export import (
-    _column_texts,
-    atomic_output,
+from sillmark.grid.crs import (
     crs_label,
     horizontal_crs,
     horizontal_unit_suffix,
-    json_number,
-    sillmark_version,
-    unit_name,
-    unit_suffix,
     wgs84_transformer,
 )
+from sillmark.io.atomic import atomic_output
+from sillmark.io.csv_tables import column_texts
+from sillmark.io.json_values import json_number
 from sillmark.products.hierarchy import DepressionHierarchy, HierarchyTable
-from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark.units import ACRE_FOOT_M3, VerticalUnit, unit_name, unit_suffix
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.grid.dem import DEM
@@ -149,7 +146,7 @@ def _check(hierarchy: DepressionHierarchy, dem: "DEM") -> VerticalUnit:
 
 def _comment_head(title: str, unit: VerticalUnit, connectivity: int, dem: "DEM") -> list[str]:
     return [
-        f"Sillmark {sillmark_version()} {title}",
+        f"Sillmark {__version__} {title}",
         f"CAUTION: {SCREENING_CAUTION}",
         f"vertical unit: {unit.value} ({unit_name(unit)}); areas in m2, volumes in m3",
         f"CRS: {crs_label(dem)}",
@@ -276,7 +273,7 @@ def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_
     units.update({"spill_x": h, "spill_y": h, "area_m2": "m2", "volume_m3": "m3"})
     members = {
         "name": "depression_hierarchy",
-        "sillmark_version": sillmark_version(),
+        "sillmark_version": __version__,
         "caution": SCREENING_CAUTION,
         "crs": crs_label(dem),
         "units": units,
@@ -287,7 +284,7 @@ def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_
         "connectivity": int(connectivity),
         "node_count": int(node_count),
     }
-    return _dumps(members)[:-1] + ',"nodes":['
+    return json_text(members)[:-1] + ',"nodes":['
 
 
 def json_node_texts(t: HierarchyTable) -> Iterator[str]:
@@ -302,10 +299,10 @@ def json_node_texts(t: HierarchyTable) -> Iterator[str]:
         node = t.row(k + 1)
         for name in _FLOAT32_FIELDS:
             node[name] = json_number(getattr(t, name)[k])
-        yield _dumps(node)
+        yield json_text(node)
 
 
-def _dumps(value) -> str:
+def json_text(value) -> str:
     return json.dumps(value, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
 
 
@@ -333,7 +330,7 @@ def csv_rows(columns: dict[str, np.ndarray]) -> str:
         raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
     if not arrays or not lengths.pop():
         return ""
-    texts = [_column_texts(a) for a in arrays]
+    texts = [column_texts(a) for a in arrays]
     plain = len(texts) > 1 and not any(
         any(_NEEDS_QUOTES.search(t) for t in set(column))
         for column, a in zip(texts, arrays) if a.dtype.kind in "USO")

@@ -36,9 +36,11 @@ import numpy as np
 import rasterio.features
 import shapely.geometry
 
-from sillmark import SCREENING_CAUTION
-from sillmark.io import export
+from sillmark import SCREENING_CAUTION, __version__, units
 from sillmark.errors import InvalidParameter
+from sillmark.grid import crs
+from sillmark.io import csv_tables, geotiff, json_values
+from sillmark.io import geojson as geojson_files
 from sillmark.products.stage import (
     CLASS_NAMES,
     DEPRESSION_CUT_OFF,
@@ -58,8 +60,8 @@ from sillmark.products.stage import (
 from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
-    from sillmark.grid.dem import DEM
     from sillmark.engine.flood import SpillResult
+    from sillmark.grid.dem import DEM
 
 __all__ = [
     "DEPTH_NODATA",
@@ -124,7 +126,7 @@ def level_label(level, unit: VerticalUnit | str) -> str:
     >>> level_label(47.6, "m"), level_label(-1.25, "m"), level_label(152.5, "us-ft")
     ('47.60m', '-1.25m', '152.50us_ft')
     """
-    return f"{level_text(level)}{export.unit_suffix(unit)}"
+    return f"{level_text(level)}{units.unit_suffix(unit)}"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -207,7 +209,7 @@ def write_depth(
     water_map: WaterLevelMap,
     path: str | os.PathLike,
     *,
-    progress: export.Progress | None = None,
+    progress: geotiff.Progress | None = None,
 ) -> Path:
     """Write ``depth_{h}.tif``: water depth at the map's level, float32, NaN nodata.
 
@@ -220,13 +222,13 @@ def write_depth(
     _check_map(water_map, dem)
     unit = _unit(dem)
     depth = water_map.depth
-    return export.write_geotiff(
+    return geotiff.write_geotiff(
         path, dem, dtype="float32", nodata=DEPTH_NODATA,
         block=lambda r0, r1: depth[r0:r1],
         layer="depth",
         description=f"depth of water reached from the outlets at water level "
         f"{level_text(water_map.level)} {unit.symbol} ({unit.symbol})",
-        band_unit=export.unit_name(unit),
+        band_unit=units.unit_name(unit),
         extra_tags=_level_tags(water_map, result),
         progress=progress,
     )
@@ -238,7 +240,7 @@ def write_water_state(
     water_map: WaterLevelMap,
     path: str | os.PathLike,
     *,
-    progress: export.Progress | None = None,
+    progress: geotiff.Progress | None = None,
 ) -> Path:
     """Write ``water_state_{h}.tif``: the class of every cell at the map's level, uint8.
 
@@ -255,7 +257,7 @@ def write_water_state(
     tags["WATER_STATE_CLASSES"] = _STATE_CODES
     tags.update({f"CLASS_{code}": CLASS_NAMES[code] for code in (NODATA, DRY, FLOODED, SHIELDED)})
     tags["WATER_STATE_MEANING"] = _STATE_MEANING
-    return export.write_geotiff(
+    return geotiff.write_geotiff(
         path, dem, dtype="uint8", nodata=STATE_NODATA,
         block=lambda r0, r1: state[r0:r1],
         layer="water_state",
@@ -320,18 +322,18 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
     The in-memory and the out-of-core exports both write through here.
     """
     unit = _unit(grid)
-    transformer = export.wgs84_transformer(grid)  # fails before writing if there is no CRS
+    transformer = crs.wgs84_transformer(grid)  # fails before writing if there is no CRS
     area, volume = totals
     properties = {
-        "level": export.json_number(np.float32(level)),
+        "level": json_values.json_number(np.float32(level)),
         "unit": unit.value,
         "class": CLASS_NAMES[state],
-        "area_m2": export.json_number(area),
-        "area_ha": export.json_number(area / 1e4),
-        "volume_m3": export.json_number(volume),
+        "area_m2": json_values.json_number(area),
+        "area_ha": json_values.json_number(area / 1e4),
+        "volume_m3": json_values.json_number(volume),
     }
     if unit.is_feet:
-        properties["volume_acre_ft"] = export.json_number(volume / ACRE_FOOT_M3)
+        properties["volume_acre_ft"] = json_values.json_number(volume / ACRE_FOOT_M3)
     properties["connectivity"] = int(connectivity)
     properties["caution"] = SCREENING_CAUTION
     polygon = outline()
@@ -342,14 +344,14 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
         yield {
             "type": "Feature",
             "id": CLASS_NAMES[state],
-            "geometry": export.wgs84_geometry(polygon, grid, transformer=transformer),
+            "geometry": geojson_files.wgs84_geometry(polygon, grid, transformer=transformer),
             "properties": properties,
         }
 
     # Foreign members (RFC 7946, section 6.1): the totals stay readable when no
     # cell has the class and the collection holds no feature.
     members = {"name": name, **{k: v for k, v in properties.items() if k != "connectivity"}}
-    return export.write_feature_collection(path, members, features())
+    return geojson_files.write_feature_collection(path, members, features())
 
 
 def write_flood_extent_geojson(
@@ -386,10 +388,10 @@ def write_shielded_geojson(
 def _comment_head(title: str, dem: "DEM", result: "SpillResult") -> list[str]:
     unit = _unit(dem)
     return [
-        f"Sillmark {export.sillmark_version()} {title}",
+        f"Sillmark {__version__} {title}",
         f"CAUTION: {SCREENING_CAUTION}",
-        f"vertical unit: {unit.value} ({export.unit_name(unit)})",
-        f"CRS: {export.crs_label(dem)}",
+        f"vertical unit: {unit.value} ({units.unit_name(unit)})",
+        f"CRS: {crs.crs_label(dem)}",
         f"connectivity: {result.connectivity}",
     ]
 
@@ -402,7 +404,7 @@ def stage_table_columns(table: StageTable) -> dict[str, np.ndarray]:
     acre-feet (43 560 international cubic feet, :data:`sillmark.units.ACRE_FOOT_M3`).
     """
     unit = VerticalUnit.parse(table.unit)
-    cols: dict[str, np.ndarray] = {f"level_{export.unit_suffix(unit)}": np.asarray(table.level, np.float32)}
+    cols: dict[str, np.ndarray] = {f"level_{units.unit_suffix(unit)}": np.asarray(table.level, np.float32)}
     for prefix, area, volume in (
         ("flooded", table.flooded_area_m2, table.flooded_volume_m3),
         ("shielded", table.shielded_area_m2, table.shielded_volume_m3),
@@ -426,7 +428,7 @@ def write_stage_table_csv(
     columns mean), then the columns of :func:`stage_table_columns`.
     """
     _check_result(result, dem)
-    export.horizontal_crs(dem)
+    crs.horizontal_crs(dem)
     if VerticalUnit.parse(table.unit) is not _unit(dem):
         raise InvalidParameter(
             f"the stage table is in {table.unit.value} but the DEM in {_unit(dem).value}; "
@@ -436,7 +438,7 @@ def write_stage_table_csv(
         "flooded: cells reached from the outlets at the level; volume = water above the ground on them",
         "shielded: ground below the level that no surface path reaches; volume = what it would hold if reached",
     ]
-    return export.write_table_csv(path, comments, stage_table_columns(table))
+    return csv_tables.write_table_csv(path, comments, stage_table_columns(table))
 
 
 _DEPRESSION_STATE_NOTE = (
@@ -460,9 +462,9 @@ def write_depressions_at_csv(
     """
     _check_result(result, dem)
     unit = _unit(dem)
-    v = export.unit_suffix(unit)
+    v = units.unit_suffix(unit)
     states, freeboard = depression_states(result, level)
-    table = export.depression_columns(result, dem)
+    table = csv_tables.depression_columns(result, dem)
     cols: dict[str, np.ndarray] = {
         "id": table["id"],
         "state": np.asarray(states, dtype=str),
@@ -478,7 +480,7 @@ def write_depressions_at_csv(
         f"freeboard_{v}: spill elevation minus the water level (negative once overtopped)",
         "volume_m3: storage of the depression full to its spill elevation",
     ]
-    return export.write_table_csv(path, comments, cols)
+    return csv_tables.write_table_csv(path, comments, cols)
 
 
 # --------------------------------------------------------------------------- one level, all levels
@@ -532,7 +534,7 @@ def write_level(
     out_dir: str | os.PathLike,
     *,
     out: tuple[np.ndarray, np.ndarray] | None = None,
-    progress: export.Progress | None = None,
+    progress: geotiff.Progress | None = None,
 ) -> LevelFiles:
     """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`).
 
@@ -556,7 +558,7 @@ def write_level(
     the grid while outlining, and the outlines.
     """
     _check_result(result, dem)
-    export.horizontal_crs(dem)  # fail before writing anything if there is no CRS
+    crs.horizontal_crs(dem)  # fail before writing anything if there is no CRS
     unit = _unit(dem)
     folder = _out_folder(out_dir)
     water_map = water_level_map(result, level, row_areas=dem.row_areas, unit=unit, out=out)
@@ -621,7 +623,7 @@ def write_stage_results(
     *,
     levels: Sequence = (),
     table_levels=None,
-    progress: export.Progress | None = None,
+    progress: geotiff.Progress | None = None,
 ) -> StageFiles:
     """Write the files of every level in ``levels`` and, if ``table_levels`` is
     given, ``stage_table.csv`` at those levels (e.g. from :func:`sillmark.products.stage.stage_levels`).
@@ -630,7 +632,7 @@ def write_stage_results(
     ascending order. One pair of map buffers serves every level.
     """
     _check_result(result, dem)
-    export.horizontal_crs(dem)
+    crs.horizontal_crs(dem)
     unique = unique_levels(levels) if len(levels) else np.empty(0, np.float32)
     if table_levels is not None:
         table_levels = unique_levels(table_levels)

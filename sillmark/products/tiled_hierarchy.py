@@ -90,13 +90,16 @@ import numpy as np
 import rasterio
 import rasterio.windows
 
-from sillmark.products import _tiled_hierarchy_kernels
-from sillmark.io import export
-from sillmark.io import hierarchy_files as hx
-from sillmark.grid.dem import DEMGrid
-from sillmark.errors import InvalidDEM, InvalidParameter
-from sillmark.products.hierarchy import HierarchyTable, _hierarchy_of_cells
+from sillmark import units
 from sillmark.engine.tiled import serial_map
+from sillmark.errors import InvalidDEM, InvalidParameter
+from sillmark.grid.crs import horizontal_crs
+from sillmark.grid.dem import DEMGrid
+from sillmark.io import geotiff, json_values
+from sillmark.io import hierarchy_files as hx
+from sillmark.io.summary import FILE_NAMES, read_summary
+from sillmark.products import _tiled_hierarchy_kernels
+from sillmark.products.hierarchy import HierarchyTable, _hierarchy_of_cells
 from sillmark.products.tiled_stage import open_result_folder, read_depression_columns
 from sillmark.units import VerticalUnit
 
@@ -186,8 +189,8 @@ def _bounding_boxes(id_path: Path, count: int, shape: tuple[int, int]):
         if (ds.height, ds.width) != (rows, cols):
             raise InvalidParameter(f"{id_path.name} does not match summary.json's grid; run "
                                    "'sillmark analyse' again")
-        for r0 in range(0, rows, export.BLOCK_ROWS):
-            r1 = min(rows, r0 + export.BLOCK_ROWS)
+        for r0 in range(0, rows, geotiff.BLOCK_ROWS):
+            r1 = min(rows, r0 + geotiff.BLOCK_ROWS)
             block = ds.read(1, window=rasterio.windows.Window(0, r0, cols, r1 - r0))
             too_large = int(_tiled_hierarchy_kernels.add_bounds(np.ascontiguousarray(block, dtype=np.int32), np.int64(r0),
                                           row_min, row_max, col_min, col_max))
@@ -401,7 +404,7 @@ def write_tiled_hierarchy(
     times: dict[str, float] = {}
     budget = _checked_count(window_cells)
     out = Path(folder)
-    summary = export.read_summary(out)
+    summary = read_summary(out)
     for name in (_ID_FILE, _TABLE_FILE):
         if not (out / name).is_file():
             raise InvalidParameter(
@@ -417,8 +420,8 @@ def write_tiled_hierarchy(
         connectivity = summary.connectivity
         table = read_depression_columns(out / _TABLE_FILE)
     unit = VerticalUnit.parse(grid.vertical_unit)
-    export.horizontal_crs(grid)  # InvalidDEM before anything is written if there is no CRS
-    suffix = export.unit_suffix(unit)
+    horizontal_crs(grid)  # InvalidDEM before anything is written if there is no CRS
+    suffix = units.unit_suffix(unit)
     count = int(table["id"].shape[0])
     if not np.array_equal(table["id"], np.arange(1, count + 1)):
         raise InvalidParameter(f"{_TABLE_FILE} in {out} does not number its depressions 1..n; "
@@ -515,6 +518,6 @@ def _list_in_summary(out: Path, names: list[str]) -> None:
     path = out / _SUMMARY_FILE
     summary = json.loads(path.read_text(encoding="utf-8"))
     listed = set(summary.get("files", [])) | set(names)
-    order = {name: k for k, name in enumerate(export.FILE_NAMES)}
+    order = {name: k for k, name in enumerate(FILE_NAMES)}
     summary["files"] = sorted(listed, key=lambda n: (order.get(n, len(order)), n))
-    export._write_json(path, summary)
+    json_values.write_json(path, summary)

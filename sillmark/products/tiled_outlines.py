@@ -57,21 +57,17 @@ from affine import Affine
 
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
-from sillmark.io.export import (
-    FILE_NAMES,
-    json_number,
-    table_columns,
-    wgs84_geometry,
-    wgs84_transformer,
-    write_feature_collection,
-    write_table_summary,
-)
+from sillmark.grid.crs import wgs84_transformer
+from sillmark.io.csv_tables import table_columns
+from sillmark.io.geojson import wgs84_geometry, write_feature_collection
+from sillmark.io.json_values import json_number
+from sillmark.io.summary import FILE_NAMES, write_table_summary
 from sillmark.units import VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
-    from sillmark.grid.dem import DEMGrid
     from sillmark.engine.flood import DepressionTable
     from sillmark.engine.tiled import TiledRun
+    from sillmark.grid.dem import DEMGrid
 
 __all__ = [
     "DEFAULT_WINDOW",

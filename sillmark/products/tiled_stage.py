@@ -50,13 +50,28 @@ import numpy as np
 import rasterio
 import rasterio.windows
 
-from sillmark import SCREENING_CAUTION
-from sillmark.io import export
+from sillmark import units
+from sillmark.errors import InvalidDEM, InvalidParameter
+from sillmark.grid.crs import horizontal_crs
+from sillmark.grid.dem import DEMGrid, read_dem_grid
+from sillmark.io import csv_tables, geotiff
 from sillmark.io import stage_files as stage_export
+from sillmark.io.stage_files import (
+    _DEPRESSION_STATE_NOTE,
+    _STATE_CODES,
+    _STATE_MEANING,
+    DEPTH_NODATA,
+    STAGE_TABLE_NAME,
+    STATE_NODATA,
+    _comment_head,
+    level_file_names,
+    level_text,
+    stage_table_columns,
+    unique_levels,
+)
+from sillmark.io.summary import read_summary
 from sillmark.products import _stage_kernels as _sk
 from sillmark.products import _tiled_stage_kernels
-from sillmark.grid.dem import DEMGrid, read_dem_grid
-from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.products.stage import (
     CLASS_NAMES,
     DEPRESSION_CUT_OFF,
@@ -72,21 +87,8 @@ from sillmark.products.stage import (
     stage_levels,
     stage_table_from_bins,
 )
-from sillmark.io.stage_files import (
-    _DEPRESSION_STATE_NOTE,
-    _STATE_CODES,
-    _STATE_MEANING,
-    DEPTH_NODATA,
-    STAGE_TABLE_NAME,
-    STATE_NODATA,
-    _comment_head,
-    level_file_names,
-    level_text,
-    stage_table_columns,
-    unique_levels,
-)
 from sillmark.products.tiled_outlines import DEFAULT_WINDOW, label_outlines
-from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark.units import VerticalUnit
 
 __all__ = [
     "ResultFolder",
@@ -202,16 +204,16 @@ class ResultFolder:
 
     @property
     def spill_elevation(self) -> np.ndarray:
-        return self.depressions[f"spill_elevation_{export.unit_suffix(self.unit)}"]
+        return self.depressions[f"spill_elevation_{units.unit_suffix(self.unit)}"]
 
     @property
     def pit_elevation(self) -> np.ndarray:
-        return self.depressions[f"pit_elevation_{export.unit_suffix(self.unit)}"]
+        return self.depressions[f"pit_elevation_{units.unit_suffix(self.unit)}"]
 
 
 def _strips(rows: int):
-    for r0 in range(0, rows, export.BLOCK_ROWS):
-        yield r0, min(rows, r0 + export.BLOCK_ROWS)
+    for r0 in range(0, rows, geotiff.BLOCK_ROWS):
+        yield r0, min(rows, r0 + geotiff.BLOCK_ROWS)
 
 
 def _read_rows(ds, r0: int, r1: int) -> np.ndarray:
@@ -236,7 +238,7 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
         The DEM is missing, has another grid, or no longer gives the stored results.
     """
     out = Path(folder)
-    summary = export.read_summary(out)
+    summary = read_summary(out)
     for name in ("onset_stage.tif", "fill_depth.tif", "depressions.csv"):
         if not (out / name).is_file():
             raise InvalidParameter(
@@ -369,7 +371,7 @@ def _write_class_geojson(site: ResultFolder, level: float, totals: tuple[float, 
 def _write_depressions_at(site: ResultFolder, level: float, path: Path) -> Path:
     """The file of :func:`sillmark.io.stage_files.write_depressions_at_csv`, from ``depressions.csv``."""
     unit = site.unit
-    v = export.unit_suffix(unit)
+    v = units.unit_suffix(unit)
     states, freeboard = depression_states(_site_like(site), level)
     table = site.depressions
     cols: dict[str, np.ndarray] = {
@@ -387,7 +389,7 @@ def _write_depressions_at(site: ResultFolder, level: float, path: Path) -> Path:
         f"freeboard_{v}: spill elevation minus the water level (negative once overtopped)",
         "volume_m3: storage of the depression full to its spill elevation",
     ]
-    return export.write_table_csv(path, comments, cols)
+    return csv_tables.write_table_csv(path, comments, cols)
 
 
 def _out_folder(out_dir: str | os.PathLike) -> Path:
@@ -400,7 +402,7 @@ def _out_folder(out_dir: str | os.PathLike) -> Path:
 
 def write_tiled_level(site: ResultFolder, level, out_dir: str | os.PathLike, *,
                       window: int = DEFAULT_WINDOW,
-                      progress: export.Progress | None = None) -> TiledLevelFiles:
+                      progress: geotiff.Progress | None = None) -> TiledLevelFiles:
     """Write the five files of one water level (:func:`sillmark.io.stage_files.level_file_names`)
     block by block; the same files as :func:`sillmark.io.stage_files.write_level`.
 
@@ -410,7 +412,7 @@ def write_tiled_level(site: ResultFolder, level, out_dir: str | os.PathLike, *,
     written ``water_state_{h}.tif`` twice (once per outline file).
     """
     grid = site.grid
-    export.horizontal_crs(grid)  # fail before writing anything if there is no CRS
+    horizontal_crs(grid)  # fail before writing anything if there is no CRS
     unit = site.unit
     h = checked_level(level)
     folder = _out_folder(out_dir)
@@ -418,20 +420,20 @@ def write_tiled_level(site: ResultFolder, level, out_dir: str | os.PathLike, *,
     tags = _level_tags(h, unit, site.connectivity)
     with rasterio.open(site.onset_path) as s_ds:
         blocks = _LevelBlocks(site, h, s_ds)
-        depth_path = export.write_geotiff(
+        depth_path = geotiff.write_geotiff(
             folder / names.depth, grid, dtype="float32", nodata=DEPTH_NODATA,
             block=lambda r0, r1: blocks.classify(r0, r1)[1],
             layer="depth",
             description=f"depth of water reached from the outlets at water level "
             f"{level_text(h)} {unit.symbol} ({unit.symbol})",
-            band_unit=export.unit_name(unit), extra_tags=tags, progress=progress,
+            band_unit=units.unit_name(unit), extra_tags=tags, progress=progress,
         )
         state_tags = dict(tags)
         state_tags["WATER_STATE_CLASSES"] = _STATE_CODES
         state_tags.update({f"CLASS_{code}": CLASS_NAMES[code]
                            for code in (NODATA, DRY, FLOODED, SHIELDED)})
         state_tags["WATER_STATE_MEANING"] = _STATE_MEANING
-        state_path = export.write_geotiff(
+        state_path = geotiff.write_geotiff(
             folder / names.water_state, grid, dtype="uint8", nodata=STATE_NODATA,
             block=lambda r0, r1: blocks.classify(r0, r1)[0],
             layer="water_state",
@@ -508,7 +510,7 @@ def _write_stage_table_csv(site: ResultFolder, table: StageTable, path: Path) ->
         "flooded: cells reached from the outlets at the level; volume = water above the ground on them",
         "shielded: ground below the level that no surface path reaches; volume = what it would hold if reached",
     ]
-    return export.write_table_csv(path, comments, stage_table_columns(table))
+    return csv_tables.write_table_csv(path, comments, stage_table_columns(table))
 
 
 # --------------------------------------------------------------------------- all levels
@@ -527,12 +529,12 @@ def write_tiled_stage_results(
     levels: Sequence = (),
     table_levels=None,
     window: int = DEFAULT_WINDOW,
-    progress: export.Progress | None = None,
+    progress: geotiff.Progress | None = None,
 ) -> TiledStageFiles:
     """:func:`sillmark.io.stage_files.write_stage_results` out of core: every level's
     files (distinct float32 levels, ascending) and, with ``table_levels``,
     ``stage_table.csv``; the same files."""
-    export.horizontal_crs(site.grid)
+    horizontal_crs(site.grid)
     unique = unique_levels(levels) if len(levels) else np.empty(0, np.float32)
     if table_levels is not None:
         table_levels = unique_levels(table_levels)

@@ -17,15 +17,15 @@ from pathlib import Path
 from flask import Blueprint, abort, jsonify, request, send_file, url_for
 
 from sillmark import SCREENING_CAUTION
-from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
 from sillmark.errors import InvalidParameter
-from sillmark.io.export import FILE_NAMES
+from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
 from sillmark.io.stage_files import (
     level_file_names,
     level_label,
     write_level,
     write_stage_table_csv,
 )
+from sillmark.io.summary import FILE_NAMES
 from sillmark.web import db, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.sites import parse_level, run_dict

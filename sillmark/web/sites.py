@@ -32,14 +32,14 @@ import rasterio.features
 import shapely.geometry
 
 from sillmark import SCREENING_CAUTION
-from sillmark.io import export
-from sillmark.products.assets import assess_assets, raise_sill, read_assets
-from sillmark.grid.dem import read_dem
-from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
-from sillmark.io.export import crs_label
 from sillmark.engine.flood import OUTLET_CODE, SpillResult
-from sillmark.products.hierarchy import site_hierarchy
+from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
+from sillmark.grid.crs import crs_label
+from sillmark.grid.dem import read_dem
 from sillmark.grid.outlets import build_outlets
+from sillmark.io import geojson as geojson_files
+from sillmark.products.assets import assess_assets, raise_sill, read_assets
+from sillmark.products.hierarchy import site_hierarchy
 from sillmark.products.stage import (
     DEPRESSION_CUT_OFF,
     DEPRESSION_OVERTOPPED,
@@ -716,7 +716,7 @@ class SiteData:
                 "type": "Feature",
                 "properties": {"cells": int(mask.sum()),
                                "sources": list(self.summary.get("outlet_sources") or [])},
-                "geometry": export.wgs84_geometry(geom, self.dem),
+                "geometry": geojson_files.wgs84_geometry(geom, self.dem),
             })
         return {"type": "FeatureCollection", "caution": SCREENING_CAUTION, "features": features}
 

@@ -23,10 +23,10 @@ from urllib.parse import unquote
 from flask import Blueprint, current_app, jsonify, request, url_for
 from werkzeug.exceptions import RequestEntityTooLarge
 
-from sillmark.products.assets import InvalidAssets, read_assets
-from sillmark.grid.dem import read_dem_grid
 from sillmark.errors import InvalidDEM, InvalidParameter, SillmarkError
-from sillmark.io.export import crs_label
+from sillmark.grid.crs import crs_label
+from sillmark.grid.dem import read_dem_grid
+from sillmark.products.assets import InvalidAssets, read_assets
 from sillmark.web import get_db, layout, services
 from sillmark.web.access import site_row
 from sillmark.web.db import StorageError

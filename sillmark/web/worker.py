@@ -32,11 +32,12 @@ from pathlib import Path
 import numpy as np
 import pyproj
 
-from sillmark.grid.dem import read_dem
-from sillmark.errors import SillmarkError
-from sillmark.io.export import FILE_NAMES, write_results
 from sillmark.engine.flood import analyse_site
+from sillmark.errors import SillmarkError
+from sillmark.grid.dem import read_dem
 from sillmark.grid.outlets import build_outlets
+from sillmark.io.export import write_results
+from sillmark.io.summary import FILE_NAMES
 from sillmark.web import arrays, db, layout, render, tiled_run
 
 log = logging.getLogger("sillmark.worker")

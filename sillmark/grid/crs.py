@@ -1,0 +1,102 @@
+"""CRS helpers: a grid's horizontal CRS, its unit, its label, and the way to WGS 84.
+
+One place for the CRS texts that files and pages show, e.g.
+``EPSG:32633 (WGS 84 / UTM zone 33N)``, and for the column-name suffix of a
+CRS's unit (``m``, ``ft``, ``us_ft``, ``deg``).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pyproj
+
+from sillmark.errors import InvalidDEM
+
+#: WGS 84 latitude/longitude; with ``always_xy`` transformers give lon, lat.
+WGS84 = "EPSG:4326"
+
+_CRS_UNIT_SUFFIX = {
+    "metre": "m",
+    "meter": "m",
+    "foot": "ft",
+    "us survey foot": "us_ft",
+    "degree": "deg",
+}
+
+
+def horizontal_crs(grid: Any) -> pyproj.CRS:
+    """The grid's horizontal CRS (a compound CRS's vertical part dropped).
+
+    Raises
+    ------
+    InvalidDEM
+        The grid has no CRS, so its results cannot be placed on a map.
+    """
+    if grid.crs is None:
+        raise InvalidDEM(
+            "the DEM has no CRS, so its results cannot be placed on a map; "
+            "give one (e.g. EPSG:32633)"
+        )
+    horizontal = getattr(grid, "horizontal_crs", None)
+    if horizontal is not None:
+        return horizontal
+    crs = pyproj.CRS.from_user_input(grid.crs.to_wkt())
+    return crs.to_2d() if crs.is_compound else crs
+
+
+def full_crs(grid: Any) -> pyproj.CRS:
+    """The grid's whole CRS, with its vertical part when it has one."""
+    return pyproj.CRS.from_user_input(grid.crs.to_wkt())
+
+
+def crs_unit_name(crs: pyproj.CRS) -> str:
+    """Name of the unit of the CRS's first axis, e.g. ``metre`` (``unknown`` without axes)."""
+    axes = crs.axis_info
+    return axes[0].unit_name if axes else "unknown"
+
+
+def crs_unit_suffix(crs: pyproj.CRS) -> str:
+    """Column-name suffix of the CRS's unit, e.g. ``m``, ``ft``, ``us_ft`` or ``deg``.
+
+    Examples
+    --------
+    >>> crs_unit_suffix(pyproj.CRS("EPSG:32633"))
+    'm'
+    >>> crs_unit_suffix(pyproj.CRS("EPSG:4326"))
+    'deg'
+    """
+    name = crs_unit_name(crs).lower()
+    return _CRS_UNIT_SUFFIX.get(name, "".join(ch if ch.isalnum() else "_" for ch in name))
+
+
+def crs_text(crs: pyproj.CRS) -> str:
+    """A CRS as people read it: its EPSG code and name, or its name alone.
+
+    Examples
+    --------
+    >>> crs_text(pyproj.CRS("EPSG:32633"))
+    'EPSG:32633 (WGS 84 / UTM zone 33N)'
+    """
+    epsg = crs.to_epsg()
+    return f"EPSG:{epsg} ({crs.name})" if epsg else f"{crs.name} (no EPSG code)"
+
+
+def crs_label(grid: Any) -> str:
+    """The grid's whole CRS as :func:`crs_text` writes it."""
+    return crs_text(full_crs(grid))
+
+
+def horizontal_unit_suffix(grid: Any) -> str:
+    """Column-name suffix of the grid's horizontal CRS unit, e.g. ``m`` or ``ft``."""
+    return crs_unit_suffix(horizontal_crs(grid))
+
+
+def to_wgs84(crs: pyproj.CRS) -> pyproj.Transformer:
+    """Transformer from ``crs`` to WGS 84 lon/lat (``always_xy``)."""
+    return pyproj.Transformer.from_crs(crs, WGS84, always_xy=True)
+
+
+def wgs84_transformer(grid: Any) -> pyproj.Transformer:
+    """Transformer from the grid's horizontal CRS to WGS 84 lon/lat (``always_xy``)."""
+    return to_wgs84(horizontal_crs(grid))

@@ -1,0 +1,218 @@
+"""CSV tables: a header and one row per entry; numbers as the shortest text that reads back
+as the same float32 or float64, empty where a value does not exist.
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+from collections.abc import Iterator
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from sillmark import SCREENING_CAUTION, __version__
+from sillmark.errors import InvalidParameter
+from sillmark.grid.crs import (
+    crs_label,
+    crs_unit_suffix,
+    horizontal_crs,
+    to_wgs84,
+)
+from sillmark.io.atomic import atomic_output
+from sillmark.io.json_values import json_value
+from sillmark.units import ACRE_FOOT_M3, unit_name, unit_of, unit_suffix
+
+if TYPE_CHECKING:  # pragma: no cover
+    from sillmark.engine.flood import SpillResult
+    from sillmark.grid.dem import DEM
+
+
+def depression_columns(result: "SpillResult", dem: "DEM") -> dict[str, np.ndarray]:
+    """The depression table with units in the column names, in file order.
+
+    Every :class:`~sillmark.engine.flood.DepressionTable` column appears: elevations and
+    depths get the vertical-unit suffix (``_m``, ``_ft``, ``_us_ft``), the spill
+    point's CRS coordinates the CRS's unit (``spill_x_m`` ...), and
+    ``volume_m2_vu`` is given converted to ``volume_m3``. Added: the spill point in
+    WGS84 (``spill_lon_deg``, ``spill_lat_deg``), ``area_ha`` and, for sites in
+    feet, ``volume_acre_ft``.
+
+    Notes
+    -----
+    The acre-foot is 43 560 international cubic feet (:data:`sillmark.units.ACRE_FOOT_M3`)
+    for both kinds of feet; the survey-foot acre-foot is 4 parts per million larger.
+    """
+    return table_columns(result.depressions, dem)
+
+
+def table_columns(table, dem: "DEM") -> dict[str, np.ndarray]:
+    """:func:`depression_columns` of a :class:`~sillmark.engine.flood.DepressionTable` itself."""
+    t = table
+    unit = unit_of(dem)
+    v = unit_suffix(unit)
+    crs = horizontal_crs(dem)
+    h = crs_unit_suffix(crs)
+    lon = np.full(len(t), np.nan)
+    lat = np.full(len(t), np.nan)
+    ok = np.isfinite(t.spill_x) & np.isfinite(t.spill_y)
+    if ok.any():
+        lon[ok], lat[ok] = to_wgs84(crs).transform(t.spill_x[ok], t.spill_y[ok])
+    volume_m3 = np.asarray(t.volume_m2_vu, dtype=np.float64) * unit.metres
+    cols: dict[str, np.ndarray] = {
+        "id": t.id,
+        "pit_row": t.pit_row,
+        "pit_col": t.pit_col,
+        f"pit_elevation_{v}": t.pit_elevation,
+        "spill_row": t.spill_row,
+        "spill_col": t.spill_col,
+        f"spill_x_{h}": t.spill_x,
+        f"spill_y_{h}": t.spill_y,
+        "spill_lon_deg": lon,
+        "spill_lat_deg": lat,
+        f"spill_elevation_{v}": t.spill_elevation,
+        "spills_to": t.spills_to,
+        f"max_depth_{v}": t.max_depth,
+        "cell_count": t.cell_count,
+        "area_m2": np.asarray(t.area_m2, dtype=np.float64),
+        "area_ha": np.asarray(t.area_m2, dtype=np.float64) / 1e4,
+        "volume_m3": volume_m3,
+    }
+    if unit.is_feet:
+        cols["volume_acre_ft"] = volume_m3 / ACRE_FOOT_M3
+    return cols
+
+
+def _text(value: Any) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, float):
+        return np.format_float_positional(value, unique=True, trim="-")
+    return str(value)
+
+
+def float_texts(values: np.ndarray) -> list[str]:
+    """``_text(json_value(values, k))`` for every k of a float32 or float64 array, fast.
+
+    The per-value route (``format_float_positional`` on each number) costs about
+    a microsecond a number, and tables of hundreds of thousands of depressions
+    have millions. ``astype(str)`` prints the same shortest round-trip digits
+    (numpy's Dragon4 in unique mode; Steele & White 1990) in one C loop, in
+    positional or exponent form; here each text is only rewritten without an
+    exponent and trimmed (``47.0`` -> ``47``), and inf and NaN become empty.
+    """
+    is32 = values.dtype == np.float32
+    flat = np.asarray(values, dtype=np.float32 if is32 else np.float64).reshape(-1)
+    # float64: Python's repr is the same shortest round-trip text (David Gay's
+    # correctly rounded dtoa, same exponent thresholds), about 1.5x faster.
+    texts = flat.astype(str).tolist() if is32 else list(map(repr, flat.tolist()))
+    out = []
+    append = out.append
+    for t in texts:
+        if "e" in t:
+            append(_positional(t))
+        elif t[-2:] == ".0":
+            append(t[:-2])
+        elif t[-1] in "fn":  # inf, -inf, nan
+            append("")
+        else:
+            append(t)
+    return out
+
+
+def _positional(scientific: str) -> str:
+    """'-4.76e+01' -> '-47.6': a text in exponent form written out without it, trimmed."""
+    mant, exp = scientific.split("e")
+    sign = "-" if mant.startswith("-") else ""
+    digits = mant.lstrip("-").replace(".", "")
+    point = int(exp) + 1  # digits before the decimal point
+    if point <= 0:
+        text = "0." + "0" * (-point) + digits
+    elif point >= len(digits):
+        text = digits + "0" * (point - len(digits))
+    else:
+        text = digits[:point] + "." + digits[point:]
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return sign + text
+
+
+def column_texts(values: np.ndarray) -> list[str]:
+    """Every entry of a table column as its CSV text (see :func:`write_table_csv`)."""
+    values = np.asarray(values)
+    kind = values.dtype.kind
+    if kind in "USO":
+        return [str(v) for v in values.tolist()]
+    if kind in "iu":
+        return list(map(str, values.tolist()))
+    if kind == "b":
+        return [str(int(v)) for v in values.tolist()]
+    return float_texts(values)
+
+
+def json_records(columns: dict[str, np.ndarray]) -> Iterator[dict[str, Any]]:
+    n = len(next(iter(columns.values())))
+    for k in range(n):
+        yield {name: json_value(values, k) for name, values in columns.items()}
+
+
+def write_depressions_csv(result: "SpillResult", dem: "DEM", path: str | os.PathLike) -> Path:
+    """Write ``depressions.csv``: ``# `` comment lines, a header, one row per depression.
+
+    The comment lines hold the screening caution, the vertical unit, the CRS and the
+    connectivity; read the file with e.g. ``csv.reader`` after skipping lines that
+    start with ``#``. Empty fields are values that do not exist (a spill point with
+    no coordinates). Row and column indices are 0-based, rows counted from the top.
+    """
+    return write_depression_table_csv(result.depressions, dem, path, connectivity=result.connectivity)
+
+
+def write_depression_table_csv(table, dem: "DEM", path: str | os.PathLike, *, connectivity: int) -> Path:
+    """:func:`write_depressions_csv` from a :class:`~sillmark.engine.flood.DepressionTable` itself."""
+    columns = table_columns(table, dem)
+    unit = unit_of(dem)
+    crs = horizontal_crs(dem)
+    final = Path(path)
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", newline="", encoding="utf-8") as f:
+            f.write(f"# Sillmark {__version__} depression table\n")
+            f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
+            f.write(f"# vertical unit: {unit.value} ({unit_name(unit)})\n")
+            f.write(f"# CRS: {crs_label(dem)}\n")
+            if crs.is_geographic:
+                f.write(f"# spill_x_{crs_unit_suffix(crs)}, spill_y_{crs_unit_suffix(crs)}: "
+                        "longitude and latitude in the DEM's CRS\n")
+            f.write("# spill_lon_deg, spill_lat_deg: the spill point in WGS84 degrees\n")
+            f.write(f"# connectivity: {connectivity}\n")
+            f.write("# pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top\n")
+            f.write("# spills_to: id of the depression the overflow reaches next; 0 = an outlet\n")
+            writer = csv.writer(f, lineterminator="\n")
+            writer.writerow(columns)
+            writer.writerows(zip(*(column_texts(a) for a in columns.values())))
+    return final
+
+
+def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[str, np.ndarray]) -> Path:
+    """Write a CSV table atomically: ``# `` comment lines, a header, one row per entry.
+
+    ``comments`` are written after ``# ``, in order, before the header; put the
+    screening caution among them. ``columns`` maps each header to a numpy array
+    (all of one length); numbers are written as in ``depressions.csv`` (the
+    shortest text that reads back as the same float32 or float64, empty for
+    NaN), string columns as they are.
+    """
+    final = Path(path)
+    arrays = {name: np.asarray(values) for name, values in columns.items()}
+    lengths = {len(a) for a in arrays.values()}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns of {final.name} differ in length: {sorted(lengths)}")
+    with atomic_output(final) as tmp:
+        with open(tmp, "x", newline="", encoding="utf-8") as f:
+            for line in comments:
+                f.write(f"# {line}\n")
+            writer = csv.writer(f, lineterminator="\n")
+            writer.writerow(arrays)
+            if arrays and lengths.pop():
+                writer.writerows(zip(*(column_texts(a) for a in arrays.values())))
+    return final

@@ -1,0 +1,206 @@
+"""GeoJSON (RFC 7946): WGS 84 lon/lat, rings oriented, positions rounded, streamed one feature
+per line.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pyproj
+import shapely
+import shapely.geometry
+from shapely.geometry.polygon import orient
+
+from sillmark import SCREENING_CAUTION
+from sillmark.errors import InvalidParameter
+from sillmark.grid.crs import (
+    horizontal_crs,
+    to_wgs84,
+)
+from sillmark.io.atomic import atomic_output
+from sillmark.io.csv_tables import depression_columns, float_texts, json_records
+from sillmark.io.geotiff import check_result_grid
+from sillmark.io.json_values import json_text
+from sillmark.products.outlines import depression_polygons
+from sillmark.units import unit_of
+
+if TYPE_CHECKING:  # pragma: no cover
+    from sillmark.engine.flood import SpillResult
+    from sillmark.grid.dem import DEM
+
+
+#: Decimal places kept in GeoJSON lon/lat: 1e-8 degree is about 1 mm on the ground,
+#: well below the cell size of any site DEM, so outlines keep their areas.
+COORDINATE_DECIMALS = 8
+
+
+def _oriented(geom):
+    """Exterior rings counterclockwise, holes clockwise (RFC 7946, section 3.1.6)."""
+    if geom.geom_type == "Polygon":
+        return orient(geom, sign=1.0)
+    return shapely.geometry.MultiPolygon([orient(p, sign=1.0) for p in geom.geoms])
+
+
+def _ring(ring) -> list:
+    return np.round(np.asarray(ring.coords)[:, :2], COORDINATE_DECIMALS).tolist()
+
+
+def _geojson_geometry(geom) -> dict:
+    if geom.geom_type == "Polygon":
+        return {"type": "Polygon", "coordinates": [_ring(geom.exterior)] + [_ring(r) for r in geom.interiors]}
+    if geom.geom_type == "MultiPolygon":
+        return {
+            "type": "MultiPolygon",
+            "coordinates": [
+                [_ring(p.exterior)] + [_ring(r) for r in p.interiors] for p in geom.geoms
+            ],
+        }
+    raise InvalidParameter(f"cannot write a {geom.geom_type} as a depression outline")
+
+
+def write_feature_collection(path: str | os.PathLike, members: dict, features) -> Path:
+    """Write a GeoJSON FeatureCollection atomically, one feature per line.
+
+    ``members`` are extra top-level members (RFC 7946 section 6.1 foreign members,
+    e.g. ``name`` and ``caution``); ``features`` is an iterable of Feature dicts,
+    consumed once, so the whole text is never held in memory. NaN is refused
+    (write None).
+    """
+    path = Path(path)
+    with atomic_output(path) as tmp:
+        with open(tmp, "x", encoding="utf-8") as f:
+            head = json_text({"type": "FeatureCollection", **members})
+            f.write(head[:-1] + ',"features":[')
+            for k, feature in enumerate(features):
+                f.write(",\n" if k else "\n")
+                f.write(json_text(feature))
+            f.write("\n]}\n")
+    return path
+
+
+def write_depressions_geojson(
+    result: "SpillResult", dem: "DEM", path: str | os.PathLike, *, polygons: list | None = None
+) -> Path:
+    """Write ``depressions.geojson``: one Feature per depression, WGS84 lon/lat.
+
+    Follows RFC 7946: no ``crs`` member (section 4), positions are longitude,
+    latitude (section 3.1.1), exterior rings counterclockwise and holes clockwise
+    (section 3.1.6); lon/lat rounded to :data:`COORDINATE_DECIMALS` places
+    (section 11.2). Properties are the row of :func:`depression_columns` plus
+    ``vertical_unit`` and ``caution``.
+
+    Notes
+    -----
+    Outline vertices are reprojected one by one; the cell edges between them are
+    not densified, which on a site-sized DEM moves an edge by far less than a cell.
+    A site crossing the antimeridian is not split (section 3.1.9).
+    """
+    final = Path(path)
+    unit = unit_of(dem)
+    crs = horizontal_crs(dem)
+    if polygons is None:
+        polygons = depression_polygons(result, dem)
+    transformer = to_wgs84(crs)
+
+    def to_lonlat(xy: np.ndarray) -> np.ndarray:
+        x, y = transformer.transform(xy[:, 0], xy[:, 1])
+        return np.column_stack([x, y])
+
+    def features() -> Iterator[dict]:
+        for record, geom in zip(json_records(depression_columns(result, dem)), polygons):
+            lonlat = _oriented(shapely.transform(geom, to_lonlat))
+            properties = dict(record)
+            properties["vertical_unit"] = unit.value
+            properties["caution"] = SCREENING_CAUTION
+            yield {
+                "type": "Feature",
+                "id": record["id"],
+                "geometry": _geojson_geometry(lonlat),
+                "properties": properties,
+            }
+
+    # "name", "caution" and "vertical_unit" are foreign members (RFC 7946, section 6.1).
+    members = {"name": "depressions", "caution": SCREENING_CAUTION, "vertical_unit": unit.value}
+    return write_feature_collection(final, members, features())
+
+
+def write_spill_points_geojson(result: "SpillResult", dem: "DEM", path: str | os.PathLike) -> Path:
+    """Write ``spill_points.geojson``: a Point per depression at its spill cell centre.
+
+    Properties: ``id``, ``spill_elevation`` (in ``unit``), ``unit``, ``spills_to``
+    (0 = an outlet) and ``caution``. WGS84 lon/lat as in RFC 7946.
+    """
+    check_result_grid(result, dem)
+    return write_spill_points_table(result.depressions, dem, path)
+
+
+def write_spill_points_table(table, dem: "DEM", path: str | os.PathLike) -> Path:
+    """:func:`write_spill_points_geojson` from a :class:`~sillmark.engine.flood.DepressionTable` itself."""
+    final = Path(path)
+    t = table
+    unit = unit_of(dem)
+    crs = horizontal_crs(dem)
+    x = np.array(t.spill_x, dtype=np.float64)  # copies: the table stays as it is
+    y = np.array(t.spill_y, dtype=np.float64)
+    missing = ~(np.isfinite(x) & np.isfinite(y))
+    if missing.any():
+        # No coordinates from the engine: use the cell centres from the DEM's transform.
+        tr = dem.transform
+        cc = t.spill_col[missing] + 0.5
+        rr = t.spill_row[missing] + 0.5
+        x[missing] = tr.a * cc + tr.b * rr + tr.c
+        y[missing] = tr.d * cc + tr.e * rr + tr.f
+    lon, lat = to_wgs84(crs).transform(x, y) if len(t) else (x, y)
+
+    # Plain Python values up front: indexing numpy arrays value by value is slow.
+    ids = np.asarray(t.id).tolist()
+    to = np.asarray(t.spills_to).tolist()
+    spill = [float(v) if v else None for v in float_texts(np.asarray(t.spill_elevation, dtype=np.float32))]
+    lons = np.asarray(lon, dtype=np.float64).tolist()
+    lats = np.asarray(lat, dtype=np.float64).tolist()
+
+    def features() -> Iterator[dict]:
+        for k in range(len(t)):
+            yield {
+                "type": "Feature",
+                "id": ids[k],
+                "geometry": {
+                    "type": "Point",
+                    "coordinates": [
+                        round(lons[k], COORDINATE_DECIMALS),
+                        round(lats[k], COORDINATE_DECIMALS),
+                    ],
+                },
+                "properties": {
+                    "id": ids[k],
+                    "spill_elevation": spill[k],
+                    "unit": unit.value,
+                    "spills_to": to[k],
+                    "caution": SCREENING_CAUTION,
+                },
+            }
+
+    members = {"name": "spill_points", "caution": SCREENING_CAUTION, "vertical_unit": unit.value}
+    return write_feature_collection(final, members, features())
+
+
+def wgs84_geometry(geom, dem: "DEM", *, transformer: pyproj.Transformer | None = None) -> dict:
+    """A shapely (Multi)Polygon in the DEM's CRS as an RFC 7946 GeoJSON geometry.
+
+    Reprojected vertex by vertex to WGS84 lon/lat, exterior rings counterclockwise
+    and holes clockwise, positions rounded to :data:`COORDINATE_DECIMALS` places,
+    as in ``depressions.geojson``. Pass ``transformer`` (from the DEM's CRS to
+    WGS84, ``always_xy=True``) to reuse one across many geometries.
+    """
+    if transformer is None:
+        transformer = to_wgs84(horizontal_crs(dem))
+
+    def to_lonlat(xy: np.ndarray) -> np.ndarray:
+        x, y = transformer.transform(xy[:, 0], xy[:, 1])
+        return np.column_stack([x, y])
+
+    return _geojson_geometry(_oriented(shapely.transform(geom, to_lonlat)))
