@@ -778,6 +778,39 @@ def dem_from_array(
     )
 
 
+def nodata_as_json(value: float | None) -> float | str | None:
+    """A declared nodata value as JSON may hold it.
+
+    A finite value stays a number; NaN and the infinities, which JSON has no
+    number for (RFC 8259, section 6), become the strings ``"NaN"``,
+    ``"Infinity"`` and ``"-Infinity"``; None stays None.
+
+    Examples
+    --------
+    >>> nodata_as_json(-9999.0), nodata_as_json(float("nan")), nodata_as_json(float("-inf"))
+    (-9999.0, 'NaN', '-Infinity')
+    """
+    if value is None:
+        return None
+    value = float(value)
+    if math.isfinite(value):
+        return value
+    if math.isnan(value):
+        return "NaN"
+    return "Infinity" if value > 0 else "-Infinity"
+
+
+def nodata_from_json(value: float | str | None) -> float | None:
+    """The inverse of :func:`nodata_as_json`.
+
+    Examples
+    --------
+    >>> nodata_from_json("-Infinity"), nodata_from_json(-9999.0), nodata_from_json(None)
+    (-inf, -9999.0, None)
+    """
+    return None if value is None else float(value)
+
+
 # ---------------------------------------------------------------------------
 # opening files (shared with analysis.outlets)
 

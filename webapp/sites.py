@@ -58,6 +58,7 @@ class UnknownSite(SillmarkError, LookupError):
 
 def dem_info(dem, *, file_bytes: int | None = None) -> dict:
     """What the upload page shows about a DEM it read."""
+    from analysis.dem import nodata_as_json
     from analysis.export import crs_label
 
     valid = dem.valid
@@ -79,7 +80,7 @@ def dem_info(dem, *, file_bytes: int | None = None) -> dict:
         "vertical_unit": dem.vertical_unit.value,
         "vertical_unit_source": dem.vertical_unit_source,
         "vertical_unit_certain": dem.vertical_unit_source in ("crs", "band-unit"),
-        "nodata_value": dem.nodata,
+        "nodata_value": nodata_as_json(dem.nodata),
         "nodata_share": float(1.0 - np.count_nonzero(valid) / total),
         "elevation_min": float(np.nanmin(z)),
         "elevation_max": float(np.nanmax(z)),
