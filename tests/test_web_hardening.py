@@ -67,3 +67,29 @@ def test_a_float_dem_with_non_finite_nodata_uploads_analyses_and_exports(fresh, 
     summary = client.get(f"/api/sites/{site_id}/files/results/summary.json")
     assert summary.status_code == 200
     strict_json(summary.get_data(as_text=True))
+
+
+# --------------------------------------------------------------------------- unplaceable georeferencing
+
+
+LOCAL_GRID = ('LOCAL_CS["Works grid",LOCAL_DATUM["Arbitrary",0],UNIT["metre",1],'
+              'AXIS["Easting",EAST],AXIS["Northing",NORTH]]')
+UNPLACEABLE = {
+    "cells-of-1e7-m": (dict(transform=Affine(1e7, 0, 500_000, 0, -1e7, 5e6)), "more than the Earth's circumference"),
+    "origin-at-1e15-m": (dict(transform=Affine(2, 0, 1e15, 0, -2, 1e15)), "cannot be placed on the Earth"),
+    "local-grid-without-datum": (dict(crs=LOCAL_GRID, transform=Affine(2, 0, 1000, 0, -2, 2000)),
+                                 "has no geodetic datum"),
+}
+
+
+@pytest.mark.parametrize("case", list(UNPLACEABLE))
+def test_an_unplaceable_dem_is_refused_at_upload_with_a_clear_message(fresh, tmp_path, case):
+    app, client = fresh
+    options, fragment = UNPLACEABLE[case]
+    path = write_raster(tmp_path / "odd.tif", lowbank_elevation(), nodata=-9999.0, **options)
+    r = upload_dem(client, path)
+    assert r.status_code == 400, r.get_data(as_text=True)[:300]
+    message = r.get_json()["error"]
+    assert fragment in message and "Traceback" not in message
+    assert str(app.extensions["sillmark"].data_dir) not in message
+    assert client.get("/api/sites").get_json()["sites"] == []

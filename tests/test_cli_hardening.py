@@ -1,0 +1,82 @@
+"""The command line on DEMs it must refuse: one line, no traceback, no partial results."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from affine import Affine
+
+from sillmark.cli import main
+from tests.rasters import write_raster
+
+LOCAL_GRID = ('LOCAL_CS["Works grid",LOCAL_DATUM["Arbitrary",0],UNIT["metre",1],'
+              'AXIS["Easting",EAST],AXIS["Northing",NORTH]]')
+
+
+def small_site() -> np.ndarray:
+    """20 × 20 invented site: ground at 10 m round a 5 m basin with a notch at 8 m."""
+    z = np.full((20, 20), 10.0, np.float32)
+    z[5:10, 5:10] = 5.0
+    z[7, 4] = 8.0
+    return z
+
+
+UNPLACEABLE = {
+    "cells-of-1e7-m": (dict(transform=Affine(1e7, 0, 500_000, 0, -1e7, 5e6)), "more than the Earth's circumference"),
+    "origin-at-1e15-m": (dict(transform=Affine(2, 0, 1e15, 0, -2, 1e15)), "cannot be placed on the Earth"),
+    "local-grid-without-datum": (dict(crs=LOCAL_GRID, transform=Affine(2, 0, 1000, 0, -2, 2000)),
+                                 "has no geodetic datum"),
+}
+
+
+def run(capsys, *argv):
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def one_line_error(code, out, err, fragment):
+    assert code == 2, (code, out, err)
+    assert out == ""
+    assert len(err.splitlines()) == 1, err
+    assert err.startswith("sillmark: error: ") and "Traceback" not in err
+    assert fragment in err, err
+
+
+@pytest.mark.parametrize("case", list(UNPLACEABLE))
+def test_analyse_refuses_unplaceable_georeferencing_in_one_line_and_writes_nothing(tmp_path, capsys, case):
+    options, fragment = UNPLACEABLE[case]
+    dem = write_raster(tmp_path / "site.tif", small_site(), **options)
+    out = tmp_path / "results"
+    one_line_error(*run(capsys, "analyse", str(dem), "--out", str(out)), fragment)
+    assert not out.exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["site.tif"]
+
+
+def test_a_failure_after_the_engine_leaves_the_output_folder_as_it_was(tmp_path, capsys):
+    """A folder where a result file goes is found only when the results are moved in:
+    by then every file has been written, yet none may reach the output folder."""
+    dem = write_raster(tmp_path / "site.tif", small_site(), transform=Affine(2, 0, 500_000, 0, -2, 5e6))
+    out = tmp_path / "results"
+    (out / "onset_stage.tif").mkdir(parents=True)
+    (out / "notes.txt").write_text("kept\n")
+    one_line_error(*run(capsys, "analyse", str(dem), "--out", str(out)), "holds a folder named onset_stage.tif")
+    assert sorted(p.name for p in out.iterdir()) == ["notes.txt", "onset_stage.tif"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["results", "site.tif"]  # no staging folder left
+
+
+def test_analyse_into_an_existing_folder_replaces_the_results_and_keeps_other_files(tmp_path, capsys):
+    dem = write_raster(tmp_path / "site.tif", small_site(), transform=Affine(2, 0, 500_000, 0, -2, 5e6))
+    out = tmp_path / "results"
+    out.mkdir()
+    (out / "notes.txt").write_text("kept\n")
+    (out / "summary.json").write_text("{}")
+    code, stdout, err = run(capsys, "analyse", str(dem), "--out", str(out))
+    assert code == 0, err
+    assert str(out) in stdout
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["grid"]["rows"] == 20
+    assert (out / "notes.txt").read_text() == "kept\n" and (out / "onset_stage.tif").is_file()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["results", "site.tif"]
