@@ -37,6 +37,7 @@ from analysis.export import (
     COORDINATE_DECIMALS,
     atomic_output,
     crs_label,
+    spreadsheet_safe,
     horizontal_unit_suffix,
     sillmark_version,
     unit_name,
@@ -190,8 +191,10 @@ def _csv_text(value: Any) -> str:
     if isinstance(value, float):
         return np.format_float_positional(value, unique=True, trim="-")
     if isinstance(value, (dict, list)):
-        return json.dumps(value, ensure_ascii=False)
-    return str(value)
+        return spreadsheet_safe(json.dumps(value, ensure_ascii=False))
+    if isinstance(value, (int, np.integer, np.floating)):
+        return str(value)
+    return spreadsheet_safe(str(value))
 
 
 def _level_text(table: AssetTable) -> str:
@@ -239,7 +242,7 @@ def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
             )
             f.write("# row, col, sill_row, sill_col: 0-based cell indices, rows from the top\n")
             writer = csv.writer(f, lineterminator="\n")
-            writer.writerow(columns)
+            writer.writerow(spreadsheet_safe(str(name)) for name in columns)
             values = list(columns.values())
             for k in range(n):
                 writer.writerow(_csv_text(col[k]) for col in values)

@@ -80,3 +80,29 @@ def test_analyse_into_an_existing_folder_replaces_the_results_and_keeps_other_fi
     assert summary["grid"]["rows"] == 20
     assert (out / "notes.txt").read_text() == "kept\n" and (out / "onset_stage.tif").is_file()
     assert sorted(p.name for p in tmp_path.iterdir()) == ["results", "site.tif"]
+
+
+def data_rows(path):
+    import csv
+    import io
+
+    lines = [line for line in path.read_text(encoding="utf-8").splitlines(keepends=True) if not line.startswith("#")]
+    return list(csv.DictReader(io.StringIO("".join(lines), newline="")))
+
+
+def test_stage_csvs_neutralise_formula_names_and_keep_negative_numbers(tmp_path, capsys):
+    dem = write_raster(tmp_path / "site.tif", small_site(), transform=Affine(2, 0, 500_000, 0, -2, 5e6))
+    names = ["=1+1", "+SUM(A1:A2)", "-3", "@cmd", "Mill school"]
+    assets = tmp_path / "assets.csv"
+    assets.write_text("name,kind,x,y\n" + "".join(
+        f"{n},@risky,{500_011 + 2 * k},4999985\n" for k, n in enumerate(names)), encoding="utf-8")
+    out = tmp_path / "stage"
+    code, _, err = run(capsys, "stage", str(dem), "--level", "10.5", "--assets", str(assets),
+                       "--raise-sill", "0.5", "--out", str(out))
+    assert code == 0, err
+    for path in (out / "assets_10.50m.csv", out / "what_if_raise_0.50m.csv"):
+        rows = data_rows(path)
+        assert sorted(r["name"] for r in rows) == sorted(("'" + n if n[0] in "=+-@" else n) for n in names), path
+        assert {r["kind"] for r in rows} == {"'@risky"}
+    numbers = [v for r in data_rows(out / "assets_10.50m.csv") for c, v in r.items() if c.startswith("freeboard_")]
+    assert numbers and all(v.startswith("-") and float(v) < 0 for v in numbers)  # flooded: below the level
