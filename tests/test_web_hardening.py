@@ -191,3 +191,21 @@ def test_many_viewers_asking_for_the_same_new_level_export_all_get_it(ready, wha
         assert len({body for _, body in answers}) == 1  # every viewer got the same complete file
     levels = app.extensions["sillmark"].data_dir / "sites" / str(site_id)
     assert not [p for p in levels.rglob("*") if p.name.endswith((".tmp", ".partial"))]
+
+
+# --------------------------------------------------------------------------- forms without a file
+
+
+def test_a_settings_form_without_a_file_is_taken_as_settings_only(fresh, tmp_path):
+    from tests.web_support import write_lowbank
+
+    app, client = fresh
+    site_id = upload_dem(client, write_lowbank(tmp_path / "lowbank.tif")).get_json()["site_id"]
+    r = client.post(f"/uploads/sites/{site_id}/settings", headers={"Accept": "application/json"},
+                    data={"vertical_unit": "m", "outlet": "edge", "connectivity": "4"})  # a plain form
+    assert r.status_code == 202, r.get_data(as_text=True)
+    site = client.get(f"/api/sites/{site_id}").get_json()
+    assert site["connectivity"] == 4 and site["state"] == "ready"
+    r = client.post(f"/uploads/sites/{site_id}/settings", headers={"Accept": "application/json"})
+    assert r.status_code == 400
+    assert "empty" not in r.get_json()["error"]
