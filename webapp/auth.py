@@ -217,6 +217,8 @@ def _safe_next(target: str | None) -> str:
     """Where to go after signing in: a path on this server only (no other host, no scheme)."""
     if not target or not target.startswith("/") or target.startswith("//") or "\\" in target:
         return url_for("pages.index")
+    if any(ord(ch) < 32 or ord(ch) == 127 for ch in target):  # no header splitting, no odd paths
+        return url_for("pages.index")
     parts = urlsplit(target)
     if parts.scheme or parts.netloc:
         return url_for("pages.index")
@@ -275,6 +277,37 @@ def signout():
     return redirect(url_for("auth.signin"), code=303)
 
 
+#: Endpoints whose answers carry sign-in state: never stored by any cache.
+NO_STORE_ENDPOINTS = frozenset({"auth.signin", "auth.signin_post", "auth.signout"})
+
+
+def private_caching(response):
+    """With access secrets set, keep every answer out of shared caches (proxies).
+
+    Sign-in answers get ``no-store``; ``public`` becomes ``private``; an answer
+    that says nothing gets ``private, no-cache``. Static files (the same for
+    everyone) keep their own policy. ``Vary: Cookie`` is added, since the
+    answer depends on who asks.
+    """
+    if not enabled() or request.endpoint == "static":
+        return response
+    if request.endpoint in NO_STORE_ENDPOINTS:
+        response.headers["Cache-Control"] = "no-store"
+    else:
+        response.headers["Cache-Control"] = _private(response.headers.get("Cache-Control"))
+    response.vary.add("Cookie")
+    return response
+
+
+def _private(policy: str | None) -> str:
+    """``policy`` with shared caching ruled out."""
+    parts = [p.strip() for p in (policy or "").split(",") if p.strip()]
+    parts = [p for p in parts if p.lower() not in ("public", "private")]
+    if not any(p.lower() in ("no-store", "no-cache") or p.lower().startswith("max-age") for p in parts):
+        parts.append("no-cache")
+    return ", ".join(["private", *parts])
+
+
 def init_app(app: Flask) -> None:
     """Check the configured secrets, register the sign-in pages and the per-request check.
 
@@ -288,6 +321,7 @@ def init_app(app: Flask) -> None:
     app.extensions["sillmark_signin"] = _Attempts()
     app.register_blueprint(bp)
     app.before_request(check_access)
+    app.after_request(private_caching)
 
     @app.context_processor
     def role_for_templates():
