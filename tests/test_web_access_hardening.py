@@ -70,3 +70,54 @@ def test_without_secrets_tiles_stay_publicly_cacheable(ready):
     run_id = client.get(f"/api/sites/{site_id}").get_json()["current_run"]
     r = client.get(f"/tiles/{site_id}/hillshade/18/141449/92100.png?run={run_id}")
     assert r.status_code == 200 and r.headers["Cache-Control"].startswith("public")
+
+
+# --------------------------------------------------------------------------- sessions on the server
+
+
+def copied_cookie(visitor) -> str:
+    cookie = visitor.raw.get_cookie("session")
+    assert cookie is not None
+    return cookie.value
+
+
+def client_with_cookie(app, value: str):
+    other = app.test_client()
+    other.set_cookie("session", value)
+    return other
+
+
+def test_signing_out_revokes_every_copy_of_the_session_cookie(guarded):
+    app, site_id = guarded
+    viewer = Visitor(app, VIEWER_SECRET)
+    stolen = copied_cookie(viewer)
+    thief = client_with_cookie(app, stolen)
+    assert thief.get("/api/sites").status_code == 200  # the copy works while the sign-in lasts
+    assert viewer.post("/signout").status_code == 303
+    assert thief.get("/api/sites").status_code == 401
+    assert client_with_cookie(app, stolen).get(f"/api/sites/{site_id}").status_code == 401
+
+
+def test_a_sign_in_older_than_its_lifetime_is_refused_even_with_a_valid_cookie(guarded):
+    import sqlite3
+
+    app, _ = guarded
+    viewer = Visitor(app, VIEWER_SECRET)
+    assert viewer.get("/api/sites").status_code == 200
+    conn = sqlite3.connect(app.extensions["sillmark"].db_path)
+    try:
+        with conn:
+            conn.execute("UPDATE signins SET created = created - ?", (app.config["SIGNIN_LIFETIME"] + 60,))
+    finally:
+        conn.close()
+    assert viewer.get("/api/sites").status_code == 401
+
+
+def test_a_changed_secret_ends_the_sessions_granted_with_the_old_one(tmp_path):
+    data = tmp_path / "data"
+    before = make_app(data, EDITOR_SECRET=EDITOR_SECRET)
+    editor = Visitor(before, EDITOR_SECRET)
+    cookie = copied_cookie(editor)
+    assert client_with_cookie(before, cookie).get("/api/sites").status_code == 200
+    after = make_app(data, EDITOR_SECRET=EDITOR_SECRET + "-changed")
+    assert client_with_cookie(after, cookie).get("/api/sites").status_code == 401

@@ -12,7 +12,8 @@ folder's ``config.py`` or as ``$SILLMARK_EDITOR_SECRET`` /
 
 The role is kept in Flask's signed session cookie together with a fingerprint
 of the secret it was granted with, so changing a secret signs out everyone who
-used it. :func:`check_access` runs before every view (registered by
+used it, and a random sign-in id that the server keeps in SQLite (table
+``signins``), so signing out ends the sign-in for every copy of the cookie. :func:`check_access` runs before every view (registered by
 :func:`init_app`), so a new route cannot forget it. Secrets are compared with
 :func:`secrets.compare_digest`; each wrong attempt from an address adds a
 pause before the answer. :func:`serving_refusal` is what ``sillmark serve``
@@ -137,7 +138,53 @@ def current_role() -> str | None:
     mark = session.get("access")
     if not isinstance(mark, str) or not hmac.compare_digest(mark, _fingerprint(role, found[role])):
         return None
+    if not _signin_alive(session.get("sid"), role):
+        return None
     return role
+
+
+# --------------------------------------------------------------------------- sign-ins kept on the server
+#
+# The cookie holds only a random sign-in id; the server keeps which ids are
+# signed in (table ``signins``). Signing out deletes the id, so a copy of the
+# cookie is worth nothing afterwards; ids older than SIGNIN_LIFETIME are refused.
+
+SIGNINS_TABLE = ("CREATE TABLE IF NOT EXISTS signins (sid TEXT PRIMARY KEY, role TEXT NOT NULL, "
+                 "created REAL NOT NULL)")
+
+
+def _lifetime() -> float:
+    return float(current_app.config["SIGNIN_LIFETIME"])
+
+
+def _remember_signin(role: str) -> str:
+    """Record a new sign-in of ``role`` and return its id (old ones are swept)."""
+    from webapp import db, get_db
+
+    sid = secrets.token_urlsafe(24)
+    now = time.time()
+    with db.transaction(get_db()) as conn:
+        conn.execute("DELETE FROM signins WHERE created < ?", (now - _lifetime(),))
+        conn.execute("INSERT INTO signins(sid, role, created) VALUES (?, ?, ?)", (sid, role, now))
+    return sid
+
+
+def _signin_alive(sid, role: str) -> bool:
+    """Whether ``sid`` is a sign-in of ``role`` the server still holds and that has not expired."""
+    from webapp import get_db
+
+    if not isinstance(sid, str) or not sid:
+        return False
+    row = get_db().execute("SELECT role, created FROM signins WHERE sid = ?", (sid,)).fetchone()
+    return row is not None and row["role"] == role and row["created"] > time.time() - _lifetime()
+
+
+def _forget_signin(sid) -> None:
+    from webapp import db, get_db
+
+    if isinstance(sid, str) and sid:
+        with db.transaction(get_db()) as conn:
+            conn.execute("DELETE FROM signins WHERE sid = ?", (sid,))
 
 
 # --------------------------------------------------------------------------- the check
@@ -266,6 +313,7 @@ def signin_post():
     session.permanent = True
     session["role"] = granted
     session["access"] = _fingerprint(granted, found[granted])
+    session["sid"] = _remember_signin(granted)
     if request.accept_mimetypes.best == "application/json":
         return jsonify({"role": granted, "next": target})
     return redirect(target, code=303)
@@ -273,6 +321,7 @@ def signin_post():
 
 @bp.post("/signout")
 def signout():
+    _forget_signin(session.get("sid"))
     session.clear()
     return redirect(url_for("auth.signin"), code=303)
 
@@ -308,6 +357,20 @@ def _private(policy: str | None) -> str:
     return ", ".join(["private", *parts])
 
 
+def _create_signins_table(db_path) -> None:
+    from webapp import db
+
+    import sqlite3
+
+    conn = db.connect(db_path)
+    try:
+        conn.execute(SIGNINS_TABLE)
+    except sqlite3.OperationalError:  # a read-only data folder: reading still works, signing in will say why not
+        pass
+    finally:
+        conn.close()
+
+
 def init_app(app: Flask) -> None:
     """Check the configured secrets, register the sign-in pages and the per-request check.
 
@@ -317,6 +380,7 @@ def init_app(app: Flask) -> None:
     import datetime as _dt
 
     check_secrets(app.config)
+    _create_signins_table(app.extensions["sillmark"].db_path)
     app.config["PERMANENT_SESSION_LIFETIME"] = _dt.timedelta(seconds=float(app.config["SIGNIN_LIFETIME"]))
     app.extensions["sillmark_signin"] = _Attempts()
     app.register_blueprint(bp)
