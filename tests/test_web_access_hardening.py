@@ -121,3 +121,37 @@ def test_a_changed_secret_ends_the_sessions_granted_with_the_old_one(tmp_path):
     assert client_with_cookie(before, cookie).get("/api/sites").status_code == 200
     after = make_app(data, EDITOR_SECRET=EDITOR_SECRET + "-changed")
     assert client_with_cookie(after, cookie).get("/api/sites").status_code == 401
+
+
+# --------------------------------------------------------------------------- guessing
+
+
+def test_a_burst_of_wrong_guesses_is_refused_early_and_holds_no_thread(tmp_path):
+    import threading
+    import time
+
+    app = make_app(tmp_path / "data", EDITOR_SECRET=EDITOR_SECRET, SIGNIN_DELAY=3.0, SIGNIN_MAX_DELAY=30.0)
+    anon = Visitor(app)
+    token = anon.session_token()
+    first = anon.raw.post("/signin", data={"secret": "wrong-guess-0000", "csrf_token": token})
+    assert first.status_code == 401
+    statuses, started = [], time.monotonic()
+
+    def guess(k: int) -> None:
+        r = anon.raw.post("/signin", data={"secret": f"wrong-guess-{k:04d}", "csrf_token": token},
+                          headers={"Accept": "application/json"})
+        statuses.append((r.status_code, r.headers.get("Retry-After"), r.get_json()))
+
+    threads = [threading.Thread(target=guess, args=(k,)) for k in range(1, 25)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(10)
+    assert time.monotonic() - started < 2.0  # nobody slept for the 3 s wait
+    assert {s for s, _, _ in statuses} == {429}
+    assert all(int(after) in (2, 3) for _, after, _ in statuses)
+    assert all("wait" in body["error"] and body["status"] == 429 for _, _, body in statuses)
+    # Someone else, from the same machine here, already signed in is not held up.
+    t0 = time.monotonic()
+    assert Visitor(app).get("/signin").status_code == 200
+    assert time.monotonic() - t0 < 1.0

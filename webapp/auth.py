@@ -15,8 +15,9 @@ of the secret it was granted with, so changing a secret signs out everyone who
 used it, and a random sign-in id that the server keeps in SQLite (table
 ``signins``), so signing out ends the sign-in for every copy of the cookie. :func:`check_access` runs before every view (registered by
 :func:`init_app`), so a new route cannot forget it. Secrets are compared with
-:func:`secrets.compare_digest`; each wrong attempt from an address adds a
-pause before the answer. :func:`serving_refusal` is what ``sillmark serve``
+:func:`secrets.compare_digest`; after each wrong attempt from an address its
+next try must wait longer, and one that comes too soon is refused at once
+(429 with Retry-After) rather than held in a sleeping thread. :func:`serving_refusal` is what ``sillmark serve``
 asks before listening beyond this machine.
 """
 
@@ -26,6 +27,7 @@ import collections
 import hashlib
 import hmac
 import ipaddress
+import math
 import secrets
 import threading
 import time
@@ -223,26 +225,41 @@ def _refuse(status: int, message: str):
 
 
 class _Attempts:
-    """Recent wrong sign-ins per client address, to pause longer after each one."""
+    """Recent wrong sign-ins per client address, and until when each address must wait.
+
+    Nothing sleeps: a try from an address that is still waiting is refused at
+    once (429 with Retry-After), so a burst of guesses holds no request thread.
+    """
 
     WINDOW = 15 * 60.0
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._wrong: dict[str, collections.deque] = {}
+        self._until: dict[str, float] = {}
 
-    def wrong(self, who: str) -> int:
+    def wait_left(self, who: str) -> float:
+        """Seconds ``who`` must still wait before the next try (0 when it may try now)."""
+        with self._lock:
+            return max(0.0, self._until.get(who, 0.0) - time.monotonic())
+
+    def wrong(self, who: str, pause_for) -> float:
+        """Record a wrong try; ``pause_for(count)`` gives the wait before the next. Returns it."""
         with self._lock:
             q = self._prune(who)
             q.append(time.monotonic())
+            pause = float(pause_for(len(q)))
+            self._until[who] = time.monotonic() + pause
             if len(self._wrong) > 10_000:  # keep memory bounded under a flood of addresses
                 for key in list(self._wrong)[:5_000]:
                     self._wrong.pop(key, None)
-            return len(q)
+                    self._until.pop(key, None)
+            return pause
 
     def forget(self, who: str) -> None:
         with self._lock:
             self._wrong.pop(who, None)
+            self._until.pop(who, None)
 
     def _prune(self, who: str) -> collections.deque:
         q = self._wrong.setdefault(who, collections.deque())
@@ -255,6 +272,15 @@ class _Attempts:
 def _pause_after_wrong(count: int) -> float:
     base = float(current_app.config["SIGNIN_DELAY"])
     return min(base * count, float(current_app.config["SIGNIN_MAX_DELAY"]))
+
+
+def _too_soon(wait: float):
+    """429 for a try that comes before the address's wait is over."""
+    seconds = max(1, math.ceil(wait))
+    response = _refuse(429, f"too many wrong secrets from your address; wait {seconds} s and try again")
+    response.headers["Retry-After"] = str(seconds)
+    response.headers["Cache-Control"] = "no-store"
+    return response
 
 
 # --------------------------------------------------------------------------- sign-in views
@@ -295,17 +321,20 @@ def signin_post():
         return _signin_page(message="this server has no access secrets: everyone may use it")
     who = request.remote_addr or "?"
     attempts = current_app.extensions["sillmark_signin"]
+    wait = attempts.wait_left(who)
+    if wait > 0:
+        return _too_soon(wait)
     sent = str(request.form.get("secret", "")).encode()
     granted = None
     for role in (EDITOR, VIEWER):
         if role in found and secrets.compare_digest(sent, found[role].encode()):
             granted = role
     if granted is None:
-        pause = _pause_after_wrong(attempts.wrong(who))
-        time.sleep(pause)
+        attempts.wrong(who, _pause_after_wrong)
         if request.accept_mimetypes.best == "application/json":
             return _refuse(401, "that secret is not right")
-        response = _signin_page(401, "That secret is not right. Each wrong try makes the next answer slower.")
+        response = _signin_page(401, "That secret is not right. After each wrong try the next "
+                                           "one must wait longer.")
         return response
     attempts.forget(who)
     target = _safe_next(request.form.get("next"))
