@@ -899,6 +899,7 @@ def _place(dem: "DEM", raw: list, src: pyproj.CRS, label: str) -> Assets:
         ) from None
     x, y, lon, lat = (np.where(np.isfinite(v), v, np.nan) for v in map(np.asarray, (x, y, lon, lat)))
     t = dem.transform
+    x = dem.wrapped_x(x)  # a -170° asset lies at 190° on a grid stored with 0–360° longitudes
     with np.errstate(invalid="ignore"):
         colf = np.floor((x - t.c) / t.a)
         rowf = np.floor((y - t.f) / t.e)
@@ -1428,4 +1429,6 @@ def _explain(
 
 
 def _to_wgs84(dem: "DEM") -> pyproj.Transformer:
-    return pyproj.Transformer.from_crs(dem.horizontal_crs, _CRS84, always_xy=True)
+    from analysis.dem import LonLatTransformer
+
+    return LonLatTransformer(dem.horizontal_crs)

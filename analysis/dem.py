@@ -253,6 +253,28 @@ class _Georeferenced:
         xb, yb = np.broadcast_arrays(x, y)
         return xb.copy(), yb.copy()
 
+    def wrapped_x(self, x: Any) -> Any:
+        """``x`` with longitudes brought into the grid's own 360° turn.
+
+        On a geographic grid a longitude and the same longitude plus or minus
+        360° are one place: a grid stored with 0–360° longitudes holds the
+        point given as -170° at 190°. Other grids get ``x`` unchanged.
+
+        Examples
+        --------
+        >>> from affine import Affine
+        >>> dem = dem_from_array(np.zeros((2, 4), np.float32), crs=4326,
+        ...                      transform=Affine(1, 0, 180, 0, -1, 10))
+        >>> float(dem.wrapped_x(-178.5))
+        181.5
+        """
+        if not self.is_geographic:
+            return x
+        turn = 360.0 / self._degrees_per_unit
+        west = self.transform.c
+        with np.errstate(invalid="ignore"):
+            return west + np.mod(np.asarray(x, dtype=np.float64) - west, turn)
+
     def rowcol(self, x: Any, y: Any) -> tuple[Any, Any]:
         """The cell ``(row, col)`` holding map point ``(x, y)``.
 
@@ -279,7 +301,7 @@ class _Georeferenced:
         >>> dem.rowcol(500002.9, 4999998.1)
         (1, 2)
         """
-        xs = np.asarray(x, dtype=np.float64)
+        xs = self.wrapped_x(np.asarray(x, dtype=np.float64))
         ys = np.asarray(y, dtype=np.float64)
         t = self.transform
         with np.errstate(invalid="ignore"):
@@ -813,6 +835,38 @@ def nodata_from_json(value: float | str | None) -> float | None:
     (-inf, -9999.0, None)
     """
     return None if value is None else float(value)
+
+
+def normal_longitude(lon: Any) -> Any:
+    """Longitudes in [-180, 180], as RFC 7946 asks of GeoJSON (190 becomes -170).
+
+    Examples
+    --------
+    >>> normal_longitude(np.array([190.0, -185.0, 180.0, 15.0])).tolist()
+    [-170.0, 175.0, 180.0, 15.0]
+    """
+    a = np.asarray(lon, dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        out = np.where(np.abs(a) <= 180.0, a, np.mod(a + 180.0, 360.0) - 180.0)
+    return out if out.ndim else float(out)
+
+
+class LonLatTransformer:
+    """A transformer to WGS 84 longitude/latitude whose longitudes are always in [-180, 180].
+
+    Wraps a :class:`pyproj.Transformer` (``always_xy=True``); only
+    :meth:`transform` is offered, which is what the writers use.
+    """
+
+    def __init__(self, source: Any) -> None:
+        self._inner = pyproj.Transformer.from_crs(source, pyproj.CRS("OGC:CRS84"), always_xy=True)
+
+    def transform(self, x: Any, y: Any, *args: Any, **kwargs: Any):
+        lon, lat = self._inner.transform(x, y, *args, **kwargs)
+        lon = normal_longitude(lon)
+        if isinstance(x, list):
+            lon = list(lon)
+        return lon, lat
 
 
 # ---------------------------------------------------------------------------

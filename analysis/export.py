@@ -266,8 +266,11 @@ def _crs_label(crs: pyproj.CRS) -> str:
     return f"EPSG:{epsg} ({crs.name})" if epsg else f"{crs.name} (no EPSG code)"
 
 
-def _to_wgs84(crs: pyproj.CRS) -> pyproj.Transformer:
-    return pyproj.Transformer.from_crs(crs, _WGS84, always_xy=True)
+def _to_wgs84(crs: pyproj.CRS):
+    """To WGS 84 lon/lat (``always_xy``), longitudes in [-180, 180] (RFC 7946)."""
+    from analysis.dem import LonLatTransformer
+
+    return LonLatTransformer(crs)
 
 
 def _short32(value) -> float | None:

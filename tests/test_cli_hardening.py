@@ -106,3 +106,47 @@ def test_stage_csvs_neutralise_formula_names_and_keep_negative_numbers(tmp_path,
         assert {r["kind"] for r in rows} == {"'@risky"}
     numbers = [v for r in data_rows(out / "assets_10.50m.csv") for c, v in r.items() if c.startswith("freeboard_")]
     assert numbers and all(v.startswith("-") and float(v) < 0 for v in numbers)  # flooded: below the level
+
+
+# --------------------------------------------------------------------------- 0-360 degree longitudes
+
+
+def all_positions(geometry) -> list:
+    """Every [lon, lat] position of a GeoJSON geometry."""
+    found = []
+
+    def walk(coords) -> None:
+        if coords and isinstance(coords[0], (int, float)):
+            found.append(coords)
+        else:
+            for part in coords:
+                walk(part)
+
+    walk(geometry["coordinates"])
+    return found
+
+
+def test_a_dem_stored_with_0_to_360_longitudes_places_wgs84_assets_and_writes_rfc7946_geojson(tmp_path, capsys):
+    """Invented site straddling the antimeridian: columns from 179.90° to 180.10° (stored as
+    179.90..180.10), cells of 0.005°; the basin lies east of 180°, i.e. at -179.97° in WGS 84."""
+    z = np.full((40, 40), 10.0, np.float32)
+    z[10:30, 22:36] = 5.0  # the basin: 180.01° to 180.08° as stored
+    dem = write_raster(tmp_path / "geo.tif", z, crs="EPSG:4326",
+                       transform=Affine(0.005, 0, 179.9, 0, -0.005, -16.9))
+    assets = tmp_path / "assets.geojson"
+    assets.write_text(json.dumps({"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"name": "Reef store"},
+         "geometry": {"type": "Point", "coordinates": [-179.955, -17.0]}}]}))
+    out = tmp_path / "stage"
+    code, stdout, err = run(capsys, "stage", str(dem), "--level", "7", "--assets", str(assets), "--out", str(out))
+    assert code == 0, err
+    table = data_rows(out / "assets_7.00m.csv")
+    assert table[0]["status"] == "ok", table[0]
+    analysed = tmp_path / "results"
+    assert run(capsys, "analyse", str(dem), "--out", str(analysed))[0] == 0
+    for path in [*analysed.glob("*.geojson"), *out.glob("*.geojson")]:
+        for feature in json.loads(path.read_text())["features"]:
+            for lon, lat in (p[:2] for p in all_positions(feature["geometry"])):
+                assert -180.0 <= lon <= 180.0, (path.name, lon)
+    spill = json.loads((analysed / "spill_points.geojson").read_text())["features"]
+    assert spill and all(f["geometry"]["coordinates"][0] < -179.0 for f in spill)

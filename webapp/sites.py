@@ -547,7 +547,9 @@ class SiteData:
         self._lock = threading.RLock()
         self._engine_lock = threading.Lock()
         self._buffers: tuple | None = None
-        self._to_lonlat = pyproj.Transformer.from_crs(self.dem.horizontal_crs, CRS84, always_xy=True)
+        from analysis.dem import LonLatTransformer
+
+        self._to_lonlat = LonLatTransformer(self.dem.horizontal_crs)
         self._from_lonlat = pyproj.Transformer.from_crs(CRS84, self.dem.horizontal_crs, always_xy=True)
         self._proj_lock = threading.Lock()
         self._assets: dict = {}
