@@ -633,8 +633,8 @@ def spreadsheet_safe(text: str) -> str:
 
     Examples
     --------
-    >>> spreadsheet_safe("=HYPERLINK(\"http://x\")"), spreadsheet_safe("Mill school")
-    ('\'=HYPERLINK("http://x")', 'Mill school')
+    >>> print(spreadsheet_safe("=SUM(A1:A3)"), spreadsheet_safe("-2+3"), spreadsheet_safe("Mill school"))
+    '=SUM(A1:A3) '-2+3 Mill school
     """
     return "'" + text if text.startswith(FORMULA_STARTS) else text
 
