@@ -17,6 +17,7 @@ Exit status: 0 on success, 2 on a usage or input error, 130 when interrupted.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import math
 import os
@@ -896,6 +897,53 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
     return dem, outlets, result
 
 
+@contextlib.contextmanager
+def _staged_output(out_dir: Path):
+    """Yield a hidden sibling of ``out_dir`` to write into; move its files into ``out_dir`` at the end.
+
+    When the body fails (a bad DEM found late, a full disk, Ctrl-C) the staging
+    folder is removed and ``out_dir`` is left exactly as it was: no half set
+    of results without ``summary.json``. On success a missing or empty
+    ``out_dir`` is replaced by the staging folder in one rename; otherwise the
+    files are moved in one by one, ``summary.json`` last.
+    """
+    import secrets
+    import shutil
+
+    from sillmark.errors import InvalidParameter
+
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InvalidParameter(f"--out {out_dir} is a file; give a folder (new or existing) for the results")
+    out_dir.parent.mkdir(parents=True, exist_ok=True)
+    staging = out_dir.parent / f".{out_dir.name}.{secrets.token_hex(6)}.partial"
+    staging.mkdir()
+    try:
+        yield staging
+        _move_results(staging, out_dir)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+
+
+def _move_results(staging: Path, out_dir: Path) -> None:
+    """Move every file of ``staging`` into ``out_dir`` (one rename when ``out_dir`` is new or empty)."""
+    if out_dir.is_dir() and not any(out_dir.iterdir()):
+        out_dir.rmdir()
+    if not out_dir.exists():
+        os.replace(staging, out_dir)
+        return
+    from sillmark.errors import InvalidParameter
+
+    names = sorted(p.name for p in staging.iterdir())
+    blocked = [n for n in names if (out_dir / n).is_dir()]
+    if blocked:
+        raise InvalidParameter(
+            f"{out_dir} holds a folder named {blocked[0]}, where a result file goes; move it "
+            "away or give another --out (nothing was written)")
+    for name in [n for n in names if n != "summary.json"] + [n for n in names if n == "summary.json"]:
+        os.replace(staging / name, out_dir / name)
+
+
 def _run_analyse(args: argparse.Namespace) -> int:
     from sillmark.io.export import write_results
     from sillmark.products.hierarchy import site_hierarchy
@@ -914,7 +962,9 @@ def _run_analyse(args: argparse.Namespace) -> int:
         progress.start("export")
         out_dir = Path(args.out)
         hierarchy = site_hierarchy(dem, result)
-        files = write_results(result, dem, outlets, out_dir, hierarchy=hierarchy, progress=progress.file)
+        with _staged_output(out_dir) as staging:
+            written = write_results(result, dem, outlets, staging, hierarchy=hierarchy, progress=progress.file)
+        files = [out_dir / p.name for p in written]
         progress.done()
     finally:
         progress.close()
@@ -988,18 +1038,20 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
     out_dir = Path(args.out)
 
-    def outlines_and_hierarchy(run, grid, run_map, step):
+    def outlines_and_hierarchy(run, grid, run_map, step, folder):
         progress.start("outline depressions")
-        files = add_depression_outlines(run, grid, out_dir)
+        files = add_depression_outlines(run, grid, folder)
         progress.done()
         # After the outlines: their summary.json is the one the hierarchy adds to.
-        hierarchy = write_tiled_hierarchy(out_dir, map=run_map, progress=step, grid=grid)
+        hierarchy = write_tiled_hierarchy(folder, map=run_map, progress=step, grid=grid)
         by_name = {p.name: p for p in [*files, *hierarchy.files]}
         return [by_name[n] for n in FILE_NAMES if n in by_name], hierarchy
 
     try:
-        run, grid, engine, (files, hierarchy) = _tiled_engine(
-            args, args.dem, out_dir, progress, then=outlines_and_hierarchy)
+        with _staged_output(out_dir) as staging:
+            run, grid, engine, (files, hierarchy) = _tiled_engine(
+                args, args.dem, staging, progress, then=lambda *a: outlines_and_hierarchy(*a, staging))
+        files = [out_dir / p.name for p in files]
     finally:
         progress.close()
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)

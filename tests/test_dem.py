@@ -264,9 +264,12 @@ def test_vertical_unit_defaults(write_tif, crs, transform, unit, source):
 
 def test_vertical_unit_cannot_default_from_an_unusual_horizontal_unit():
     chains = "+proj=utm +zone=33 +datum=WGS84 +units=ch +type=crs"  # 1 chain = 66 ft
+    # 500 000 m E, 5 000 000 m N in chains (20.1168 m): a grid the CRS can place on the Earth.
+    near = Affine(1.0, 0.0, 24_855.0, 0.0, -1.0, 248_548.0)
     with pytest.raises(InvalidDEM, match="pass vertical_unit"):
-        dem_from_array(np.ones((2, 2)), crs=chains, vertical_unit=None)
-    assert dem_from_array(np.ones((2, 2)), crs=chains, vertical_unit="m").vertical_unit is VerticalUnit.METRE
+        dem_from_array(np.ones((2, 2)), crs=chains, vertical_unit=None, transform=near)
+    assert dem_from_array(np.ones((2, 2)), crs=chains, vertical_unit="m",
+                          transform=near).vertical_unit is VerticalUnit.METRE
 
 
 def test_depth_axis_is_refused():

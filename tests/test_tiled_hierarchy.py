@@ -265,7 +265,7 @@ def _grid(path):
 def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
     # The streamed JSON writer against the document built the direct way: the
     # flat to_json() with name, version, caution, crs and units in front and the
-    # float32 fields as shortest decimals (sillmark.io.export.json_number).
+    # float32 fields as shortest decimals (sillmark.io.json_values.json_number).
     from sillmark.grid.crs import crs_label
     from sillmark.io.json_values import json_number
     from sillmark.io.summary import sillmark_version

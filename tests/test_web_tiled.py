@@ -173,7 +173,7 @@ def test_a_worker_process_gets_the_threshold_with_the_run(tmp_path, lowbank_tif)
 
 
 def test_in_memory_file_progress_spreads_over_every_result_file(fresh, lowbank_tif, monkeypatch):
-    # write_results writes the 11 files of sillmark.io.export.FILE_NAMES; the phase
+    # write_results writes the 11 files of sillmark.io.summary.FILE_NAMES; the phase
     # "writing result files" runs from 62 % to 92 %, so each file's start is its
     # own step of 30/11 % and 92 % is reached only when summary.json is done
     # (dividing by a fixed 8 would reach 92 % after the eighth file and stay there).

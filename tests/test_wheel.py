@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import signal
 import socket
 import subprocess
@@ -35,8 +36,17 @@ pytestmark = pytest.mark.slow
 def installed(tmp_path_factory) -> Path:
     """The ``bin`` folder of a new environment holding only the wheel of this checkout."""
     work = tmp_path_factory.mktemp("wheel")
+    # Build from a copy of the files git knows (tracked, or new and not ignored), so that
+    # nothing left in the checkout (a build/ folder, caches) can slip into the wheel.
+    source = work / "source"
+    listed = subprocess.run(["git", "ls-files", "-co", "--exclude-standard"], cwd=ROOT, check=True,
+                            capture_output=True, text=True).stdout.splitlines()
+    for name in listed:
+        if (ROOT / name).is_file():
+            (source / name).parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(ROOT / name, source / name)
     subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation",
-                    "--quiet", "-w", str(work / "dist"), str(ROOT)], check=True, timeout=600,
+                    "--quiet", "-w", str(work / "dist"), str(source)], check=True, timeout=600,
                    cwd=work)
     (wheel,) = (work / "dist").glob("sillmark-*.whl")
     env_dir = work / "env"

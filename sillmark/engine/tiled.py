@@ -67,7 +67,7 @@ Memory: a task holds one tile, at most about 22 bytes per cell of a tile
 (elevation, the outlet mask, the flood's working arrays; the finish task's
 spill summary adds a stack of 4 bytes per cell of the dry areas it labels
 only: 0.36 GB per worker with 2048-cell tiles, 0.6 GB with 4096); a writer one
-block of :data:`sillmark.io.export.BLOCK_ROWS` rows across the grid; the client
+block of :data:`sillmark.io.geotiff.BLOCK_ROWS` rows across the grid; the client
 the perimeters (about 100 bytes per perimeter cell), the spill summaries and
 the depression table.
 Scratch on disk: 13 bytes per cell, removed at the end.

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
+import numpy as np
 import pyproj
 
 from sillmark.errors import InvalidDEM
@@ -92,11 +93,43 @@ def horizontal_unit_suffix(grid: Any) -> str:
     return crs_unit_suffix(horizontal_crs(grid))
 
 
-def to_wgs84(crs: pyproj.CRS) -> pyproj.Transformer:
-    """Transformer from ``crs`` to WGS 84 lon/lat (``always_xy``)."""
-    return pyproj.Transformer.from_crs(crs, WGS84, always_xy=True)
+def normal_longitude(lon: Any) -> Any:
+    """Longitudes in [-180, 180], as RFC 7946 asks of GeoJSON (190 becomes -170).
+
+    Examples
+    --------
+    >>> normal_longitude(np.array([190.0, -185.0, 180.0, 15.0])).tolist()
+    [-170.0, 175.0, 180.0, 15.0]
+    """
+    a = np.asarray(lon, dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        out = np.where(np.abs(a) <= 180.0, a, np.mod(a + 180.0, 360.0) - 180.0)
+    return out if out.ndim else float(out)
 
 
-def wgs84_transformer(grid: Any) -> pyproj.Transformer:
+class LonLatTransformer:
+    """A transformer to WGS 84 longitude/latitude whose longitudes are always in [-180, 180].
+
+    Wraps a :class:`pyproj.Transformer` (``always_xy=True``); only
+    :meth:`transform` is offered, which is what the writers use.
+    """
+
+    def __init__(self, source: Any) -> None:
+        self._inner = pyproj.Transformer.from_crs(source, pyproj.CRS("OGC:CRS84"), always_xy=True)
+
+    def transform(self, x: Any, y: Any, *args: Any, **kwargs: Any):
+        lon, lat = self._inner.transform(x, y, *args, **kwargs)
+        lon = normal_longitude(lon)
+        if isinstance(x, list):
+            lon = list(lon)
+        return lon, lat
+
+
+def to_wgs84(crs: pyproj.CRS) -> LonLatTransformer:
+    """Transformer from ``crs`` to WGS 84 lon/lat, longitudes in [-180, 180] (RFC 7946)."""
+    return LonLatTransformer(crs)
+
+
+def wgs84_transformer(grid: Any) -> LonLatTransformer:
     """Transformer from the grid's horizontal CRS to WGS 84 lon/lat (``always_xy``)."""
     return to_wgs84(horizontal_crs(grid))

@@ -259,6 +259,28 @@ class _Georeferenced:
         xb, yb = np.broadcast_arrays(x, y)
         return xb.copy(), yb.copy()
 
+    def wrapped_x(self, x: Any) -> Any:
+        """``x`` with longitudes brought into the grid's own 360° turn.
+
+        On a geographic grid a longitude and the same longitude plus or minus
+        360° are one place: a grid stored with 0–360° longitudes holds the
+        point given as -170° at 190°. Other grids get ``x`` unchanged.
+
+        Examples
+        --------
+        >>> from affine import Affine
+        >>> dem = dem_from_array(np.zeros((2, 4), np.float32), crs=4326,
+        ...                      transform=Affine(1, 0, 180, 0, -1, 10))
+        >>> float(dem.wrapped_x(-178.5))
+        181.5
+        """
+        if not self.is_geographic:
+            return x
+        turn = 360.0 / self._degrees_per_unit
+        west = self.transform.c
+        with np.errstate(invalid="ignore"):
+            return west + np.mod(np.asarray(x, dtype=np.float64) - west, turn)
+
     def rowcol(self, x: Any, y: Any) -> tuple[Any, Any]:
         """The cell ``(row, col)`` holding map point ``(x, y)``.
 
@@ -285,7 +307,7 @@ class _Georeferenced:
         >>> dem.rowcol(500002.9, 4999998.1)
         (1, 2)
         """
-        xs = np.asarray(x, dtype=np.float64)
+        xs = self.wrapped_x(np.asarray(x, dtype=np.float64))
         ys = np.asarray(y, dtype=np.float64)
         t = self.transform
         with np.errstate(invalid="ignore"):
@@ -382,6 +404,8 @@ class DEM(_Georeferenced):
             raise InvalidDEM("DEM.vertical_unit must be a VerticalUnit")
         if self._horizontal.is_geographic:
             _check_geographic_extent(self.transform, z.shape, self._degrees_per_unit)
+        else:
+            _check_projected_on_earth(self._horizontal, self.transform, z.shape)
 
     # -- shape and masks -------------------------------------------------
 
@@ -618,6 +642,8 @@ class DEMGrid(_Georeferenced):
     def __post_init__(self) -> None:
         if self._horizontal.is_geographic:
             _check_geographic_extent(self.transform, self.shape, self._degrees_per_unit)
+        else:
+            _check_projected_on_earth(self._horizontal, self.transform, self.shape)
 
     def read_window(self, row0: int, row1: int, col0: int, col1: int) -> np.ndarray:
         """Elevations of rows ``row0:row1`` and columns ``col0:col1`` (float32, NaN nodata).
@@ -782,6 +808,39 @@ def dem_from_array(
         path=None,
         vertical_unit_source=unit_source,
     )
+
+
+def nodata_as_json(value: float | None) -> float | str | None:
+    """A declared nodata value as JSON may hold it.
+
+    A finite value stays a number; NaN and the infinities, which JSON has no
+    number for (RFC 8259, section 6), become the strings ``"NaN"``,
+    ``"Infinity"`` and ``"-Infinity"``; None stays None.
+
+    Examples
+    --------
+    >>> nodata_as_json(-9999.0), nodata_as_json(float("nan")), nodata_as_json(float("-inf"))
+    (-9999.0, 'NaN', '-Infinity')
+    """
+    if value is None:
+        return None
+    value = float(value)
+    if math.isfinite(value):
+        return value
+    if math.isnan(value):
+        return "NaN"
+    return "Infinity" if value > 0 else "-Infinity"
+
+
+def nodata_from_json(value: float | str | None) -> float | None:
+    """The inverse of :func:`nodata_as_json`.
+
+    Examples
+    --------
+    >>> nodata_from_json("-Infinity"), nodata_from_json(-9999.0), nodata_from_json(None)
+    (-inf, -9999.0, None)
+    """
+    return None if value is None else float(value)
 
 
 # ---------------------------------------------------------------------------
@@ -1292,6 +1351,73 @@ def _check_geographic_extent(t: Affine, shape: tuple[int, int], deg_per_unit: fl
     if span > 360.0 + 2 * tol:
         raise InvalidDEM(
             f"the DEM spans {span:.9g}° of longitude, more than 360°; check the transform"
+        )
+
+
+#: Longest side a DEM may have on the ground, in metres: about the Earth's equator.
+EARTH_CIRCUMFERENCE_M = 40_075_017.0
+
+
+@functools.lru_cache(maxsize=64)
+def _lonlat_transformers(horizontal: pyproj.CRS) -> tuple[pyproj.Transformer, pyproj.Transformer]:
+    """Forward (CRS to lon/lat) and backward transformers of a projected CRS, made once."""
+    lonlat = pyproj.CRS("OGC:CRS84")
+    return (pyproj.Transformer.from_crs(horizontal, lonlat, always_xy=True),
+            pyproj.Transformer.from_crs(lonlat, horizontal, always_xy=True))
+
+
+def _grid_sample_points(t: Affine, shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """x, y of the corners, edge middles and centre of a north-up grid."""
+    rows, cols = shape
+    fr = np.array([0.0, 0.0, 0.0, 0.5, 0.5, 0.5, 1.0, 1.0, 1.0])
+    fc = np.array([0.0, 0.5, 1.0, 0.0, 0.5, 1.0, 0.0, 0.5, 1.0])
+    return t.c + fc * cols * t.a, t.f + fr * rows * t.e
+
+
+def _check_projected_on_earth(horizontal: pyproj.CRS, t: Affine, shape: tuple[int, int]) -> None:
+    """Refuse a projected grid that cannot be placed on the Earth.
+
+    Three ways to fail: the CRS has no geodetic datum (a local engineering
+    grid), so nothing relates it to longitude and latitude; a side of the grid
+    is longer than the equator; or a corner, edge middle or the centre does not
+    come back to itself through longitude/latitude (an origin or cell size far
+    beyond the projection's reach).
+
+    Raises
+    ------
+    InvalidDEM
+        With what was found and what would be accepted.
+    """
+    name = horizontal.name or "unnamed"
+    try:
+        forward, backward = _lonlat_transformers(horizontal)
+    except pyproj.exceptions.ProjError:
+        raise InvalidDEM(
+            f"the DEM's CRS '{name}' has no geodetic datum (a local or engineering grid), so "
+            "Sillmark cannot place it on the Earth for maps, GeoJSON and true areas; assign the "
+            "DEM its real projected CRS (an EPSG code, e.g. with gdal_edit -a_srs) and try again"
+        ) from None
+    metres = _linear_unit_metres(horizontal)
+    width, height = shape[1] * abs(t.a) * metres, shape[0] * abs(t.e) * metres
+    if max(width, height) > EARTH_CIRCUMFERENCE_M:
+        raise InvalidDEM(
+            f"the DEM covers {width:.4g} m × {height:.4g} m (cells of {abs(t.a):.4g} × "
+            f"{abs(t.e):.4g} CRS units), more than the Earth's circumference; check the "
+            "transform's cell size and the CRS's unit"
+        )
+    x, y = _grid_sample_points(t, shape)
+    with np.errstate(invalid="ignore", over="ignore"):
+        lon, lat = forward.transform(x, y, errcheck=False)
+        bx, by = backward.transform(lon, lat, errcheck=False)
+        tol = max(abs(t.a), abs(t.e), 1.0 / metres)
+        off = ~(np.isfinite(lon) & np.isfinite(lat) & (np.abs(bx - x) <= tol) & (np.abs(by - y) <= tol))
+    if off.any():
+        k = int(np.argmax(off))
+        raise InvalidDEM(
+            f"the DEM's georeferencing cannot be placed on the Earth: the point ({x[k]:.6g}, "
+            f"{y[k]:.6g}) of its grid lies beyond what CRS '{name}' can map to longitude and "
+            "latitude; check the transform's origin and cell size, and that the CRS is the "
+            "one the DEM was made in"
         )
 
 

@@ -12,7 +12,7 @@
 ===========================  =============================================================
 
 All carry :data:`sillmark.SCREENING_CAUTION` and are written atomically
-(temporary file, then rename) with :func:`sillmark.io.export.atomic_output`. Assets
+(temporary file, then rename) with :func:`sillmark.io.atomic.atomic_output`. Assets
 without figures (outside the DEM, on nodata, not reached) are kept, with empty
 fields (CSV) or null values (GeoJSON) and their status.
 """
@@ -34,6 +34,7 @@ from sillmark import SCREENING_CAUTION, __version__
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import crs_label, horizontal_unit_suffix
 from sillmark.io.atomic import atomic_output
+from sillmark.io.csv_tables import spreadsheet_safe
 from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
 from sillmark.products.assets import STATE_FLOODED, AssetTable, WhatIf
@@ -185,8 +186,10 @@ def _csv_text(value: Any) -> str:
     if isinstance(value, float):
         return np.format_float_positional(value, unique=True, trim="-")
     if isinstance(value, (dict, list)):
-        return json.dumps(value, ensure_ascii=False)
-    return str(value)
+        return spreadsheet_safe(json.dumps(value, ensure_ascii=False))
+    if isinstance(value, (int, np.integer, np.floating)):
+        return str(value)
+    return spreadsheet_safe(str(value))
 
 
 def _level_text(table: AssetTable) -> str:
@@ -234,7 +237,7 @@ def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
             )
             f.write("# row, col, sill_row, sill_col: 0-based cell indices, rows from the top\n")
             writer = csv.writer(f, lineterminator="\n")
-            writer.writerow(columns)
+            writer.writerow(spreadsheet_safe(str(name)) for name in columns)
             values = list(columns.values())
             for k in range(n):
                 writer.writerow(_csv_text(col[k]) for col in values)

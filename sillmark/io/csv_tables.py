@@ -138,12 +138,33 @@ def _positional(scientific: str) -> str:
     return sign + text
 
 
+#: First characters that make a spreadsheet read a cell as a formula (OWASP, "CSV Injection").
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def spreadsheet_safe(text: str) -> str:
+    """``text`` as a CSV text cell that no spreadsheet runs as a formula.
+
+    A cell beginning with ``=``, ``+``, ``-``, ``@``, a tab or a carriage
+    return gets a single quote in front, as OWASP's CSV-injection guidance
+    advises; a reader sees the text with a leading quote, and a program gets
+    the original back by removing it. Only text cells are passed through
+    here: numbers (negative ones too) stay numbers.
+
+    Examples
+    --------
+    >>> print(spreadsheet_safe("=SUM(A1:A3)"), spreadsheet_safe("-2+3"), spreadsheet_safe("Mill school"))
+    '=SUM(A1:A3) '-2+3 Mill school
+    """
+    return "'" + text if text.startswith(FORMULA_STARTS) else text
+
+
 def column_texts(values: np.ndarray) -> list[str]:
     """Every entry of a table column as its CSV text (see :func:`write_table_csv`)."""
     values = np.asarray(values)
     kind = values.dtype.kind
     if kind in "USO":
-        return [str(v) for v in values.tolist()]
+        return [spreadsheet_safe(str(v)) for v in values.tolist()]
     if kind in "iu":
         return list(map(str, values.tolist()))
     if kind == "b":

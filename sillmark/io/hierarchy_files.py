@@ -315,13 +315,13 @@ def json_text(value) -> str:
 
 def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
     """``# `` comment lines and the header row of a table CSV (as
-    :func:`sillmark.io.export.write_table_csv` writes them)."""
+    :func:`sillmark.io.csv_tables.write_table_csv` writes them)."""
     lines = "".join(f"# {line}\n" for line in comments)
     return lines + _csv_text([list(columns)])
 
 
 def csv_rows(columns: dict[str, np.ndarray]) -> str:
-    """The rows of a table CSV, numbers as :func:`sillmark.io.export.write_table_csv`
+    """The rows of a table CSV, numbers as :func:`sillmark.io.csv_tables.write_table_csv`
     writes them (shortest text that reads back as the same float32 or float64,
     empty for NaN); empty when the columns are."""
     arrays = [np.asarray(values) for values in columns.values()]

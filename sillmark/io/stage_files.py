@@ -215,7 +215,7 @@ def write_depth(
 
     Depth is ``level - elevation`` on flooded cells, in the site's vertical unit;
     every other cell (dry, shielded, DEM nodata) is NaN, the declared nodata.
-    Tags: those of :func:`sillmark.io.export.write_geotiff` plus ``WATER_LEVEL``,
+    Tags: those of :func:`sillmark.io.geotiff.write_geotiff` plus ``WATER_LEVEL``,
     ``WATER_LEVEL_UNIT`` and ``CONNECTIVITY``.
     """
     _check_result(result, dem)
@@ -359,9 +359,9 @@ def write_flood_extent_geojson(
 ) -> Path:
     """Write ``flood_extent_{h}.geojson``: the flooded cells as one Feature, WGS84.
 
-    RFC 7946 as in :func:`sillmark.io.export.write_depressions_geojson` (lon/lat,
+    RFC 7946 as in :func:`sillmark.io.geojson.write_depressions_geojson` (lon/lat,
     counterclockwise exteriors, clockwise holes, coordinates rounded to
-    :data:`sillmark.io.export.COORDINATE_DECIMALS` places). Properties: ``level``,
+    :data:`sillmark.io.geojson.COORDINATE_DECIMALS` places). Properties: ``level``,
     ``unit``, ``class`` (``"flooded"``), ``area_m2``, ``area_ha``, ``volume_m3``
     (water on the flooded cells; plus ``volume_acre_ft`` for sites in feet),
     ``connectivity`` and ``caution``; the same (but connectivity) are members of

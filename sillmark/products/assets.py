@@ -19,7 +19,6 @@ estimated. Units are those of the DEM (:attr:`sillmark.grid.dem.DEM.vertical_uni
 
 from __future__ import annotations
 
-import collections
 import csv
 import dataclasses
 import functools
@@ -34,9 +33,10 @@ import numpy as np
 import pyproj
 from scipy import ndimage
 
-from sillmark.grid.dem import MAX_ABS_ELEVATION, crs_name_refusal, gdal_path_refusal
-from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from sillmark.engine.flood import OUTLET_CODE, SpillResult, priority_flood
+from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
+from sillmark.grid.crs import LonLatTransformer
+from sillmark.grid.dem import MAX_ABS_ELEVATION, crs_name_refusal, gdal_path_refusal
 from sillmark.grid.geojson import CRS84, geojson_crs
 from sillmark.grid.outlets import Outlets
 from sillmark.products.stage import checked_level
@@ -900,6 +900,7 @@ def _place(dem: "DEM", raw: list, src: pyproj.CRS, label: str) -> Assets:
         ) from None
     x, y, lon, lat = (np.where(np.isfinite(v), v, np.nan) for v in map(np.asarray, (x, y, lon, lat)))
     t = dem.transform
+    x = dem.wrapped_x(x)  # a -170° asset lies at 190° on a grid stored with 0–360° longitudes
     with np.errstate(invalid="ignore"):
         colf = np.floor((x - t.c) / t.a)
         rowf = np.floor((y - t.f) / t.e)
@@ -1428,4 +1429,5 @@ def _explain(
 
 
 def _to_wgs84(dem: "DEM") -> pyproj.Transformer:
-    return pyproj.Transformer.from_crs(dem.horizontal_crs, _CRS84, always_xy=True)
+
+    return LonLatTransformer(dem.horizontal_crs)

@@ -25,7 +25,7 @@ runs of consecutive depressions, with ids shifted.
 Steps
 -----
 1. **Bounding boxes** (this process): one pass over ``depression_id.tif``, a
-   block of :data:`sillmark.io.export.BLOCK_ROWS` rows at a time, gives each
+   block of :data:`sillmark.io.geotiff.BLOCK_ROWS` rows at a time, gives each
    depression's first and last row and column (32 bytes a depression).
 2. **Batches**: consecutive depression ids are grouped while the bounding box
    of the group stays within ``window_cells`` cells (a depression whose own
@@ -514,7 +514,7 @@ def write_tiled_hierarchy(
 
 def _list_in_summary(out: Path, names: list[str]) -> None:
     """Write ``summary.json`` again with ``names`` among its files, in the order of
-    :data:`sillmark.io.export.FILE_NAMES`; every other member is kept as it was."""
+    :data:`sillmark.io.summary.FILE_NAMES`; every other member is kept as it was."""
     path = out / _SUMMARY_FILE
     summary = json.loads(path.read_text(encoding="utf-8"))
     listed = set(summary.get("files", [])) | set(names)

@@ -1,7 +1,7 @@
 """Outlines of labelled cells from a GeoTIFF on disk, built window by window.
 
 The in-memory writers vectorise a whole label raster at once
-(:func:`sillmark.io.export.depression_polygons`, :func:`sillmark.io.stage_files.class_polygon`).
+(:func:`sillmark.products.outlines.depression_polygons`, :func:`sillmark.io.stage_files.class_polygon`).
 For rasters larger than memory (the files of :func:`sillmark.engine.tiled.analyse_tiled`)
 this module gives the same outlines without holding the raster:
 
@@ -26,7 +26,7 @@ with the same vertices; only where a ring starts may differ.
 
 :func:`write_depressions_geojson_tiled` writes ``depressions.geojson`` from
 ``depression_id.tif`` with the properties of
-:func:`sillmark.io.export.write_depressions_geojson`;
+:func:`sillmark.io.geojson.write_depressions_geojson`;
 :func:`add_depression_outlines` does so for a folder :func:`sillmark.engine.tiled.analyse_tiled`
 wrote and brings its ``summary.json`` up to date.
 
@@ -177,7 +177,7 @@ def depression_outlines(id_path: str | os.PathLike, count: int, *, window: int =
     """One outline per depression from ``depression_id.tif``; index ``k`` is id ``k+1``.
 
     The same regions, with the same vertices, as
-    :func:`sillmark.io.export.depression_polygons` of the in-memory result.
+    :func:`sillmark.products.outlines.depression_polygons` of the in-memory result.
 
     Raises
     ------
@@ -208,7 +208,7 @@ def write_depressions_geojson_tiled(
 ) -> Path:
     """Write ``depressions.geojson`` from ``depression_id.tif``, window by window.
 
-    Feature for feature the file of :func:`sillmark.io.export.write_depressions_geojson`
+    Feature for feature the file of :func:`sillmark.io.geojson.write_depressions_geojson`
     (RFC 7946, WGS84, the same ``id`` and properties: the depression table's
     row, ``vertical_unit`` and ``caution``), with outlines from
     :func:`depression_outlines`.
@@ -240,7 +240,7 @@ def add_depression_outlines(run: "TiledRun", grid: "DEMGrid", out_dir: str | os.
 
     Then writes ``summary.json`` again, last, listing the outlines among the
     files (its ``engine`` member kept). Returns every file of the folder's run
-    in the order of :data:`sillmark.io.export.FILE_NAMES`.
+    in the order of :data:`sillmark.io.summary.FILE_NAMES`.
     """
     out = Path(out_dir)
     name = "depressions.geojson"

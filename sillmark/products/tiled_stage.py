@@ -4,7 +4,7 @@
 :class:`~sillmark.engine.flood.SpillResult` in memory. For DEMs larger than memory
 (the folders :func:`sillmark.engine.tiled.analyse_tiled` writes) this module writes the
 same files from ``onset_stage.tif``, ``depressions.csv`` and the DEM file,
-reading them block by block (:data:`sillmark.io.export.BLOCK_ROWS` rows across the
+reading them block by block (:data:`sillmark.io.geotiff.BLOCK_ROWS` rows across the
 grid), never the whole raster:
 
 - ``depth_{h}.tif`` and ``water_state_{h}.tif``: each block is classified by the
@@ -30,7 +30,7 @@ DEM still gives the folder's fill depth (``onset_stage - elevation``); the
 figures the command line prints (lowest and highest ground, lowest onset stage)
 come from the same pass.
 
-Memory: a few arrays of :data:`~sillmark.io.export.BLOCK_ROWS` rows across the
+Memory: a few arrays of :data:`~sillmark.io.geotiff.BLOCK_ROWS` rows across the
 grid, 32 bytes a row of totals, the depression table and, while outlining, one
 window and the outlines.
 """
@@ -107,7 +107,7 @@ __all__ = [
 #: runs added. It must stay equal to the in-memory pass for the same bits.
 STAGE_TABLE_CHUNKS = 2
 
-# Columns of depressions.csv (sillmark.io.export.table_columns) held as float32:
+# Columns of depressions.csv (sillmark.io.csv_tables.table_columns) held as float32:
 # the elevations and depths, stored as float32 by the engine.
 _FLOAT32_PREFIXES = ("pit_elevation_", "spill_elevation_", "max_depth_")
 _INTEGER_COLUMNS = ("id", "pit_row", "pit_col", "spill_row", "spill_col", "spills_to", "cell_count")
@@ -138,7 +138,7 @@ def _float32_from_text(texts: Sequence[str]) -> np.ndarray:
 
 
 def read_depression_columns(path: str | os.PathLike) -> dict[str, np.ndarray]:
-    """The columns of a ``depressions.csv``, as :func:`sillmark.io.export.table_columns` made them.
+    """The columns of a ``depressions.csv``, as :func:`sillmark.io.csv_tables.table_columns` made them.
 
     Integers as int64, elevations and depths as float32, everything else as
     float64 (empty fields NaN); each value is the number the file was written

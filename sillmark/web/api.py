@@ -294,15 +294,28 @@ def level_zip(site_id: int, level: str):
     label = level_label(h, data.unit)
     path = folder / f"sillmark_site{site_id}_{label}.zip"
     if not path.is_file():
-        tmp = path.with_suffix(".zip.tmp")
+        with _lock_for((site_id, data.run_id, folder.name, "zip")):
+            if not path.is_file():  # built once; the others waited for it
+                _write_level_zip(folder, path)
+    return send_file(path, mimetype="application/zip", as_attachment=True, download_name=path.name,
+                     max_age=0)
+
+
+def _write_level_zip(folder: Path, path: Path) -> None:
+    """Zip every export of ``folder`` with the caution into ``path``, through a temporary
+    file of this call's own (so a second writer can never truncate or move it)."""
+    import secrets
+
+    tmp = path.with_name(f".{path.stem}.{secrets.token_hex(6)}.tmp")
+    try:
         with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
             zf.writestr("CAUTION.txt", SCREENING_CAUTION + "\n")
             for f in sorted(folder.iterdir()):
-                if f.is_file() and not f.name.startswith(".") and f.suffix != ".zip" and not f.name.endswith(".tmp"):
+                if f.is_file() and not f.name.startswith(".") and f.suffix != ".zip":
                     zf.write(f, arcname=f.name)
         os.replace(tmp, path)
-    return send_file(path, mimetype="application/zip", as_attachment=True, download_name=path.name,
-                     max_age=0)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
 @bp.get("/sites/<int:site_id>/files/stage_table.csv")

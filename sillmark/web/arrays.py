@@ -23,7 +23,7 @@ import numpy as np
 from affine import Affine
 from rasterio.crs import CRS
 
-from sillmark.grid.dem import DEM
+from sillmark.grid.dem import DEM, nodata_as_json, nodata_from_json
 from sillmark.engine.flood import DepressionTable, SpillResult
 from sillmark.units import VerticalUnit
 
@@ -73,7 +73,7 @@ def save(folder: Path, dem: DEM, result: SpillResult, pyramid: list[np.ndarray],
             "crs_wkt": dem.crs.to_wkt(),
             "vertical_unit": dem.vertical_unit.value,
             "vertical_unit_source": dem.vertical_unit_source,
-            "nodata": dem.nodata,
+            "nodata": nodata_as_json(dem.nodata),
             "source_dtype": dem.source_dtype,
             "path": dem.path,
             "shape": list(dem.shape),
@@ -126,7 +126,7 @@ def load(folder: Path) -> Stored:
             transform=Affine(*d["transform"]),
             crs=CRS.from_wkt(d["crs_wkt"]),
             vertical_unit=VerticalUnit(d["vertical_unit"]),
-            nodata=d["nodata"],
+            nodata=nodata_from_json(d["nodata"]),
             source_dtype=d["source_dtype"],
             path=d["path"],
             vertical_unit_source=d["vertical_unit_source"],

@@ -12,10 +12,12 @@ folder's ``config.py`` or as ``$SILLMARK_EDITOR_SECRET`` /
 
 The role is kept in Flask's signed session cookie together with a fingerprint
 of the secret it was granted with, so changing a secret signs out everyone who
-used it. :func:`check_access` runs before every view (registered by
+used it, and a random sign-in id that the server keeps in SQLite (table
+``signins``), so signing out ends the sign-in for every copy of the cookie. :func:`check_access` runs before every view (registered by
 :func:`init_app`), so a new route cannot forget it. Secrets are compared with
-:func:`secrets.compare_digest`; each wrong attempt from an address adds a
-pause before the answer. :func:`serving_refusal` is what ``sillmark serve``
+:func:`secrets.compare_digest`; after each wrong attempt from an address its
+next try must wait longer, and one that comes too soon is refused at once
+(429 with Retry-After) rather than held in a sleeping thread. :func:`serving_refusal` is what ``sillmark serve``
 asks before listening beyond this machine.
 """
 
@@ -26,7 +28,9 @@ import datetime as _dt
 import hashlib
 import hmac
 import ipaddress
+import math
 import secrets
+import sqlite3
 import threading
 import time
 from urllib.parse import urlsplit
@@ -43,7 +47,7 @@ from flask import (
     url_for,
 )
 
-from sillmark.web import _error, wants_json
+from sillmark.web import _error, db, get_db, wants_json
 
 bp = Blueprint("auth", __name__)
 
@@ -149,7 +153,50 @@ def current_role() -> str | None:
     mark = session.get("access")
     if not isinstance(mark, str) or not hmac.compare_digest(mark, _fingerprint(role, found[role])):
         return None
+    if not _signin_alive(session.get("sid"), role):
+        return None
     return role
+
+
+# --------------------------------------------------------------------------- sign-ins kept on the server
+#
+# The cookie holds only a random sign-in id; the server keeps which ids are
+# signed in (table ``signins``). Signing out deletes the id, so a copy of the
+# cookie is worth nothing afterwards; ids older than SIGNIN_LIFETIME are refused.
+
+SIGNINS_TABLE = ("CREATE TABLE IF NOT EXISTS signins (sid TEXT PRIMARY KEY, role TEXT NOT NULL, "
+                 "created REAL NOT NULL)")
+
+
+def _lifetime() -> float:
+    return float(current_app.config["SIGNIN_LIFETIME"])
+
+
+def _remember_signin(role: str) -> str:
+    """Record a new sign-in of ``role`` and return its id (old ones are swept)."""
+
+    sid = secrets.token_urlsafe(24)
+    now = time.time()
+    with db.transaction(get_db()) as conn:
+        conn.execute("DELETE FROM signins WHERE created < ?", (now - _lifetime(),))
+        conn.execute("INSERT INTO signins(sid, role, created) VALUES (?, ?, ?)", (sid, role, now))
+    return sid
+
+
+def _signin_alive(sid, role: str) -> bool:
+    """Whether ``sid`` is a sign-in of ``role`` the server still holds and that has not expired."""
+
+    if not isinstance(sid, str) or not sid:
+        return False
+    row = get_db().execute("SELECT role, created FROM signins WHERE sid = ?", (sid,)).fetchone()
+    return row is not None and row["role"] == role and row["created"] > time.time() - _lifetime()
+
+
+def _forget_signin(sid) -> None:
+
+    if isinstance(sid, str) and sid:
+        with db.transaction(get_db()) as conn:
+            conn.execute("DELETE FROM signins WHERE sid = ?", (sid,))
 
 
 # --------------------------------------------------------------------------- the check
@@ -185,26 +232,41 @@ def _refuse(status: int, message: str):
 
 
 class _Attempts:
-    """Recent wrong sign-ins per client address, to pause longer after each one."""
+    """Recent wrong sign-ins per client address, and until when each address must wait.
+
+    Nothing sleeps: a try from an address that is still waiting is refused at
+    once (429 with Retry-After), so a burst of guesses holds no request thread.
+    """
 
     WINDOW = 15 * 60.0
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._wrong: dict[str, collections.deque] = {}
+        self._until: dict[str, float] = {}
 
-    def wrong(self, who: str) -> int:
+    def wait_left(self, who: str) -> float:
+        """Seconds ``who`` must still wait before the next try (0 when it may try now)."""
+        with self._lock:
+            return max(0.0, self._until.get(who, 0.0) - time.monotonic())
+
+    def wrong(self, who: str, pause_for) -> float:
+        """Record a wrong try; ``pause_for(count)`` gives the wait before the next. Returns it."""
         with self._lock:
             q = self._prune(who)
             q.append(time.monotonic())
+            pause = float(pause_for(len(q)))
+            self._until[who] = time.monotonic() + pause
             if len(self._wrong) > 10_000:  # keep memory bounded under a flood of addresses
                 for key in list(self._wrong)[:5_000]:
                     self._wrong.pop(key, None)
-            return len(q)
+                    self._until.pop(key, None)
+            return pause
 
     def forget(self, who: str) -> None:
         with self._lock:
             self._wrong.pop(who, None)
+            self._until.pop(who, None)
 
     def _prune(self, who: str) -> collections.deque:
         q = self._wrong.setdefault(who, collections.deque())
@@ -219,12 +281,23 @@ def _pause_after_wrong(count: int) -> float:
     return min(base * count, float(current_app.config["SIGNIN_MAX_DELAY"]))
 
 
+def _too_soon(wait: float):
+    """429 for a try that comes before the address's wait is over."""
+    seconds = max(1, math.ceil(wait))
+    response = _refuse(429, f"too many wrong secrets from your address; wait {seconds} s and try again")
+    response.headers["Retry-After"] = str(seconds)
+    response.headers["Cache-Control"] = "no-store"
+    return response
+
+
 # --------------------------------------------------------------------------- sign-in views
 
 
 def _safe_next(target: str | None) -> str:
     """Where to go after signing in: a path on this server only (no other host, no scheme)."""
     if not target or not target.startswith("/") or target.startswith("//") or "\\" in target:
+        return url_for("pages.index")
+    if any(ord(ch) < 32 or ord(ch) == 127 for ch in target):  # no header splitting, no odd paths
         return url_for("pages.index")
     parts = urlsplit(target)
     if parts.scheme or parts.netloc:
@@ -255,17 +328,20 @@ def signin_post():
         return _signin_page(message="this server has no access secrets: everyone may use it")
     who = request.remote_addr or "?"
     attempts = current_app.extensions["sillmark_signin"]
+    wait = attempts.wait_left(who)
+    if wait > 0:
+        return _too_soon(wait)
     sent = str(request.form.get("secret", "")).encode()
     granted = None
     for role in (EDITOR, VIEWER):
         if role in found and secrets.compare_digest(sent, found[role].encode()):
             granted = role
     if granted is None:
-        pause = _pause_after_wrong(attempts.wrong(who))
-        time.sleep(pause)
+        attempts.wrong(who, _pause_after_wrong)
         if request.accept_mimetypes.best == "application/json":
             return _refuse(401, "that secret is not right")
-        response = _signin_page(401, "That secret is not right. Each wrong try makes the next answer slower.")
+        response = _signin_page(401, "That secret is not right. After each wrong try the next "
+                                           "one must wait longer.")
         return response
     attempts.forget(who)
     target = _safe_next(request.form.get("next"))
@@ -273,6 +349,7 @@ def signin_post():
     session.permanent = True
     session["role"] = granted
     session["access"] = _fingerprint(granted, found[granted])
+    session["sid"] = _remember_signin(granted)
     if request.accept_mimetypes.best == "application/json":
         return jsonify({"role": granted, "next": target})
     return redirect(target, code=303)
@@ -280,8 +357,52 @@ def signin_post():
 
 @bp.post("/signout")
 def signout():
+    _forget_signin(session.get("sid"))
     session.clear()
     return redirect(url_for("auth.signin"), code=303)
+
+
+#: Endpoints whose answers carry sign-in state: never stored by any cache.
+NO_STORE_ENDPOINTS = frozenset({"auth.signin", "auth.signin_post", "auth.signout"})
+
+
+def private_caching(response):
+    """With access secrets set, keep every answer out of shared caches (proxies).
+
+    Sign-in answers get ``no-store``; ``public`` becomes ``private``; an answer
+    that says nothing gets ``private, no-cache``. Static files (the same for
+    everyone) keep their own policy. ``Vary: Cookie`` is added, since the
+    answer depends on who asks.
+    """
+    if not enabled() or request.endpoint == "static":
+        return response
+    if request.endpoint in NO_STORE_ENDPOINTS:
+        response.headers["Cache-Control"] = "no-store"
+    else:
+        response.headers["Cache-Control"] = _private(response.headers.get("Cache-Control"))
+    response.vary.add("Cookie")
+    return response
+
+
+def _private(policy: str | None) -> str:
+    """``policy`` with shared caching ruled out."""
+    parts = [p.strip() for p in (policy or "").split(",") if p.strip()]
+    parts = [p for p in parts if p.lower() not in ("public", "private")]
+    if not any(p.lower() in ("no-store", "no-cache") or p.lower().startswith("max-age") for p in parts):
+        parts.append("no-cache")
+    return ", ".join(["private", *parts])
+
+
+def _create_signins_table(db_path) -> None:
+
+
+    conn = db.connect(db_path)
+    try:
+        conn.execute(SIGNINS_TABLE)
+    except sqlite3.OperationalError:  # a read-only data folder: reading still works, signing in will say why not
+        pass
+    finally:
+        conn.close()
 
 
 def init_app(app: Flask) -> None:
@@ -292,10 +413,12 @@ def init_app(app: Flask) -> None:
     """
 
     check_secrets(app.config)
+    _create_signins_table(app.extensions["sillmark"].db_path)
     app.config["PERMANENT_SESSION_LIFETIME"] = _dt.timedelta(seconds=float(app.config["SIGNIN_LIFETIME"]))
     app.extensions["sillmark_signin"] = _Attempts()
     app.register_blueprint(bp)
     app.before_request(check_access)
+    app.after_request(private_caching)
 
     @app.context_processor
     def role_for_templates():

@@ -76,8 +76,9 @@ DEFAULTS: dict = {
     # things. Also $SILLMARK_VIEWER_SECRET and $SILLMARK_EDITOR_SECRET.
     "VIEWER_SECRET": None,
     "EDITOR_SECRET": None,
-    # Pause after a wrong secret, in seconds, growing with each further wrong
-    # attempt from the same address (up to SIGNIN_MAX_DELAY).
+    # Wait after a wrong secret, in seconds, growing with each further wrong
+    # attempt from the same address (up to SIGNIN_MAX_DELAY); a try that comes
+    # sooner is refused at once with 429 and Retry-After (nothing sleeps).
     "SIGNIN_DELAY": 0.5,
     "SIGNIN_MAX_DELAY": 5.0,
     # How long a sign-in lasts, in seconds.

@@ -35,7 +35,8 @@ from sillmark import SCREENING_CAUTION
 from sillmark.engine.flood import OUTLET_CODE, SpillResult
 from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from sillmark.grid.crs import crs_label
-from sillmark.grid.dem import read_dem
+from sillmark.grid.crs import LonLatTransformer
+from sillmark.grid.dem import nodata_as_json, read_dem
 from sillmark.grid.outlets import build_outlets
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets, raise_sill, read_assets
@@ -93,7 +94,7 @@ def dem_info(dem, *, file_bytes: int | None = None) -> dict:
         "vertical_unit": dem.vertical_unit.value,
         "vertical_unit_source": dem.vertical_unit_source,
         "vertical_unit_certain": dem.vertical_unit_source in ("crs", "band-unit"),
-        "nodata_value": dem.nodata,
+        "nodata_value": nodata_as_json(dem.nodata),
         "nodata_share": float(1.0 - np.count_nonzero(valid) / total),
         "elevation_min": float(np.nanmin(z)),
         "elevation_max": float(np.nanmax(z)),
@@ -554,7 +555,8 @@ class SiteData:
         self._lock = threading.RLock()
         self._engine_lock = threading.Lock()
         self._buffers: tuple | None = None
-        self._to_lonlat = pyproj.Transformer.from_crs(self.dem.horizontal_crs, CRS84, always_xy=True)
+
+        self._to_lonlat = LonLatTransformer(self.dem.horizontal_crs)
         self._from_lonlat = pyproj.Transformer.from_crs(CRS84, self.dem.horizontal_crs, always_xy=True)
         self._proj_lock = threading.Lock()
         self._assets: dict = {}

@@ -47,6 +47,11 @@ def _received(field: str, *, limit: int, required: bool = True):
     path = folder / (layout.new_name(".bin") + ".part")
     try:
         try:
+            if not required and request.mimetype != "multipart/form-data":
+                # An optional file comes only in a multipart form; a plain form
+                # (or none) carries the other fields and no file.
+                yield None, None
+                return
             folder.mkdir(parents=True, exist_ok=True)
             if request.mimetype == "multipart/form-data":
                 upload = request.files.get(field)
