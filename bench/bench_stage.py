@@ -45,15 +45,19 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
 
     from sillmark.engine.flood import priority_flood
+    from sillmark.grid.dem import dem_from_array
+    from sillmark.products.source import ArraySource
     from sillmark.products.stage import stage_levels, stage_table, water_level_map
 
     z = make_terrain(args.size)
     outlets = _edge(z.shape)
-    areas = np.full(z.shape[0], 1.0)
+    dem = dem_from_array(z)  # 1 m cells: areas count cells
+    areas = dem.row_areas
     small = make_terrain(64)
     r_small = priority_flood(small, _edge(small.shape))  # compile outside the timing
     water_level_map(r_small, float(np.nanmedian(small)))
-    stage_table(r_small, stage_levels(r_small, step=1.0))
+    small_source = ArraySource(dem_from_array(small), r_small)
+    stage_table(small_source, stage_levels(small_source, step=1.0))
 
     engine_s, result = best_of(max(1, args.repeat // 2), lambda: priority_flood(z, outlets))
     level = float(np.percentile(result.onset_stage, 40))
@@ -65,7 +69,7 @@ def main(argv=None) -> int:
     lo, hi = float(np.nanmin(result.onset_stage)), float(result.depressions.spill_elevation.max())
     levels = np.linspace(lo, hi, 200).astype(np.float32)
     levels = np.unique(levels)
-    table_s, table = best_of(args.repeat, lambda: stage_table(result, levels, row_areas=areas))
+    table_s, table = best_of(args.repeat, lambda: stage_table(ArraySource(dem, result), levels))
 
     curves_s = None
     try:

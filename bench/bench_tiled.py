@@ -10,7 +10,7 @@
    runs the scheduler, the nannies and the workers) and the bytes that moved:
    task arguments sent, results gathered and the workers' own outgoing bytes.
    Then, as ``sillmark analyse --tiles`` does, the depression outlines
-   (:func:`sillmark.products.tiled_outlines.add_depression_outlines`, in this process)
+   (:func:`sillmark.io.results_folder.add_depression_outlines`, in this process)
    and the three hierarchy files (:func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy`
    on the same cluster), timed apart: the engine's rate is the issue's target,
    the rate over all eleven files is what a user of the command waits for.
@@ -203,7 +203,7 @@ def all_files(run, dem_path: Path, out: Path, run_map, engine_wall: float) -> di
     writes them; times, sizes and the rate over everything."""
     from sillmark.grid.dem import read_dem_grid
     from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
-    from sillmark.products.tiled_outlines import add_depression_outlines
+    from sillmark.io.results_folder import add_depression_outlines
 
     grid = read_dem_grid(dem_path)
     t0 = time.perf_counter()

@@ -1032,7 +1032,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
 
     from sillmark.io.summary import FILE_NAMES
     from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
-    from sillmark.products.tiled_outlines import add_depression_outlines
+    from sillmark.io.results_folder import add_depression_outlines
 
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
@@ -1137,6 +1137,7 @@ def _level_notes(vertical_unit, z_low: float, z_high: float, lowest: float,
 
 def _run_stage(args: argparse.Namespace) -> int:
     from sillmark.io.stage_files import write_stage_results
+    from sillmark.products.source import ArraySource
     from sillmark.products.stage import stage_levels
 
     _stage_request(args)
@@ -1160,8 +1161,8 @@ def _run_stage(args: argparse.Namespace) -> int:
         notes = _level_checks(result, dem, args)
         table_levels = None
         if args.table_step is not None:
-            table_levels = stage_levels(result, step=args.table_step, start=args.table_from,
-                                        stop=args.table_to)
+            table_levels = stage_levels(ArraySource(dem, result), step=args.table_step,
+                                        start=args.table_from, stop=args.table_to)
         assets = what_if = None
         if args.assets is not None:
             from sillmark.products.assets import read_assets
@@ -1174,7 +1175,7 @@ def _run_stage(args: argparse.Namespace) -> int:
                 what_if = _what_if_rows(result, dem, outlets, assets, args.raise_sill)
         progress.start("export")
         out_dir = Path(args.out)
-        written = write_stage_results(result, dem, out_dir, levels=args.levels or [],
+        written = write_stage_results(ArraySource(dem, result), out_dir, levels=args.levels or [],
                                       table_levels=table_levels, progress=progress.file)
         asset_levels = []
         if assets is not None:
@@ -1210,11 +1211,9 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
     import uuid
 
     from sillmark.errors import InvalidParameter
-    from sillmark.products.tiled_stage import (
-        open_result_folder,
-        tiled_stage_levels,
-        write_tiled_stage_results,
-    )
+    from sillmark.io.results_folder import open_result_folder
+    from sillmark.io.stage_files import write_stage_results
+    from sillmark.products.stage import stage_levels
 
     source = Path(args.source)
     if args.assets is not None:
@@ -1252,11 +1251,11 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
                              site.onset_min, args)
         table_levels = None
         if args.table_step is not None:
-            table_levels = tiled_stage_levels(site, step=args.table_step, start=args.table_from,
-                                              stop=args.table_to)
+            table_levels = stage_levels(site, step=args.table_step, start=args.table_from,
+                                        stop=args.table_to)
         progress.start("export")
-        written = write_tiled_stage_results(site, out_dir, levels=args.levels or [],
-                                            table_levels=table_levels, progress=progress.file)
+        written = write_stage_results(site, out_dir, levels=args.levels or [],
+                                      table_levels=table_levels, progress=progress.file)
         progress.done()
     finally:
         progress.close()

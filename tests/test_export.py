@@ -17,6 +17,7 @@ import shapely.geometry
 from affine import Affine
 from rasterio.enums import Compression
 
+from sillmark.products.source import ArraySource
 from sillmark import SCREENING_CAUTION
 from sillmark.io import atomic
 from sillmark.io import csv_tables
@@ -373,7 +374,7 @@ def test_polygon_areas_match_the_table_on_a_geographic_dem(tmp_path):
     z = site_elevation()
     transform = Affine(1e-4, 0.0, 15.0, 0.0, -1e-4, 45.0)
     dem, _, result = run(z, transform=transform, crs="EPSG:4326")
-    path = geojson_files.write_depressions_geojson(result, dem, tmp_path / "d.geojson")
+    path = geojson_files.write_depressions_geojson(ArraySource(dem, result), tmp_path / "d.geojson")
     doc = json.loads(path.read_text(encoding="utf-8"))
     geod = pyproj.Geod(ellps="WGS84")
     assert len(doc["features"]) == len(result.depressions) == 3

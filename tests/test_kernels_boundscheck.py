@@ -23,6 +23,8 @@ SCRIPT = textwrap.dedent(
     from pathlib import Path
     import numpy as np
     from sillmark.engine.flood import priority_flood
+    from sillmark.grid.dem import dem_from_array
+    from sillmark.products.source import ArraySource
     from sillmark.products.stage import stage_table, water_level_map
     from sillmark.products.hierarchy import depression_hierarchy
 
@@ -40,7 +42,7 @@ SCRIPT = textwrap.dedent(
         for k in range(len(r.depressions)):
             r.route(int(r.depressions.pit_row[k]), int(r.depressions.pit_col[k]))
         water_level_map(r, 2.5)
-        stage_table(r, np.arange(0, 6, 0.5))
+        stage_table(ArraySource(dem_from_array(z), r), np.arange(0, 6, 0.5))
         depression_hierarchy(r)
 
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from affine import Affine
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -22,8 +23,18 @@ from sillmark.products.stage import (
     stage_table,
     water_level_map,
 )
+from sillmark.grid.dem import dem_from_array
+from sillmark.products.source import ArraySource
 from sillmark.units import VerticalUnit
 from tests.test_flood import edge_mask, grid
+
+#: A lon/lat grid of 0.001 degree cells near 50 N: true cell areas, which differ row by row.
+LONLAT = Affine(0.001, 0.0, 10.0, 0.0, -0.001, 50.0)
+
+
+def lonlat_source(result) -> ArraySource:
+    """The result on a real lon/lat DEM of its elevations (row areas from the ellipsoid)."""
+    return ArraySource(dem_from_array(result.elevation, transform=LONLAT, crs="EPSG:4326"), result)
 
 # River (edge cells at 1, left) | ridge at 6 (col 3) | low ground at 2-3, as in
 # tests/test_flood.py.
@@ -100,23 +111,23 @@ def test_absurd_levels_are_refused(ridge, bad):
 
 
 def test_stage_table_levels_and_errors(ridge):
-    levels = stage_levels(ridge, step=0.5)
+    levels = stage_levels(lonlat_source(ridge), step=0.5)
     # Lowest onset stage 1 (the river) to the highest spill elevation 6.
     assert levels[0] == 1 and levels[-1] == 6 and len(levels) == 11
     with pytest.raises(InvalidParameter):
-        stage_levels(ridge, step=0)
+        stage_levels(lonlat_source(ridge), step=0)
     with pytest.raises(InvalidParameter):
-        stage_table(ridge, [3, 2])
+        stage_table(lonlat_source(ridge), [3, 2])
     with pytest.raises(InvalidParameter):
-        stage_table(ridge, [])
+        stage_table(lonlat_source(ridge), [])
 
 
 def test_depression_states_and_freeboard(ridge):
     # The one depression (behind the ridge): pit 2, spill 6.
-    assert depression_states(ridge, 2)[0][0] == DEPRESSION_DRY
-    states, freeboard = depression_states(ridge, 4)
+    assert depression_states(ridge.depressions, 2)[0][0] == DEPRESSION_DRY
+    states, freeboard = depression_states(ridge.depressions, 4)
     assert states[0] == DEPRESSION_CUT_OFF and freeboard[0] == 2
-    states, freeboard = depression_states(ridge, 6.5)
+    states, freeboard = depression_states(ridge.depressions, 6.5)
     assert states[0] == DEPRESSION_OVERTOPPED and freeboard[0] == -0.5
 
 
@@ -145,8 +156,10 @@ def test_stage_table_equals_one_map_per_level(case):
     if not outlets.any():
         outlets = ~np.isnan(z)
     r = priority_flood(z, outlets, connectivity=conn)
-    areas = np.linspace(1.0, 2.0, z.shape[0])
-    t = stage_table(r, levels, row_areas=areas)
+    source = lonlat_source(r)
+    areas = source.grid.row_areas
+    assert len(set(areas.tolist())) == len(areas)  # every row its own cell area
+    t = stage_table(source, levels)
     previous = -1.0
     for k, h in enumerate(levels):
         m = water_level_map(r, h, row_areas=areas)

@@ -19,9 +19,10 @@ from hypothesis import strategies as st
 from rasterio.enums import Compression
 
 from sillmark import SCREENING_CAUTION
-from sillmark.io import csv_tables
+from sillmark.products import inventory
 from sillmark.io import geojson as geojson_files
 from sillmark.io import stage_files as se
+from sillmark.products.source import ArraySource
 from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidParameter
 from sillmark.products.stage import (
@@ -57,8 +58,7 @@ def written(site, tmp_path_factory):
     dem, _, result = site
     out = tmp_path_factory.mktemp("stage")
     calls = []
-    files = se.write_stage_results(
-        result, dem, out, levels=LEVELS, table_levels=stage_levels(result, step=0.5),
+    files = se.write_stage_results(ArraySource(dem, result), out, levels=LEVELS, table_levels=stage_levels(ArraySource(dem, result), step=0.5),
         progress=lambda *a: calls.append(a),
     )
     return out, files, calls
@@ -269,10 +269,11 @@ def test_outline_areas_match_the_map_on_a_geographic_dem(tmp_path):
     transform = Affine(1e-4, 0.0, 15.0, 0.0, -1e-4, 45.0)
     dem, _, result = run(site_elevation(), transform=transform, crs="EPSG:4326")
     m = water_level_map(result, 18.5, row_areas=dem.row_areas)
-    se.write_flood_extent_geojson(result, dem, m, tmp_path / "f.geojson")
-    se.write_shielded_geojson(result, dem, m, tmp_path / "s.geojson")
+    files = se.write_level(ArraySource(dem, result), 18.5, tmp_path)
+    names = se.level_file_names(18.5, dem.vertical_unit)
+    assert files.flooded_area_m2 == m.flooded_area_m2 and files.shielded_area_m2 == m.shielded_area_m2
     geod = pyproj.Geod(ellps="WGS84")
-    for name, expected in (("f.geojson", m.flooded_area_m2), ("s.geojson", m.shielded_area_m2)):
+    for name, expected in ((names.flood_extent, m.flooded_area_m2), (names.shielded, m.shielded_area_m2)):
         (feature,) = geojson(tmp_path, name)["features"]
         area, _ = geod.geometry_area_perimeter(shapely.geometry.shape(feature["geometry"]))
         assert area == pytest.approx(expected, rel=1e-6)
@@ -311,8 +312,8 @@ def test_stage_table_csv_equals_stage_table(site, written):
         "level_m", "flooded_area_m2", "flooded_area_ha", "flooded_volume_m3",
         "shielded_area_m2", "shielded_area_ha", "shielded_volume_m3",
     ]
-    levels = stage_levels(result, step=0.5)
-    t = stage_table(result, levels, row_areas=dem.row_areas, unit="m")
+    levels = stage_levels(ArraySource(dem, result), step=0.5)
+    t = stage_table(ArraySource(dem, result), levels)
     assert len(rows) == len(t) == len(files.table)
     for k, row in enumerate(rows):
         # Written as the shortest text that reads back exactly.
@@ -340,8 +341,8 @@ def test_stage_table_rows_agree_with_the_maps_of_the_same_levels(site, written):
 
 def test_stage_table_in_feet_adds_acre_feet(tmp_path):
     dem, _, result = run(site_elevation(), unit="ft")
-    t = stage_table(result, [18.5, 20.0], row_areas=dem.row_areas, unit="ft")
-    se.write_stage_table_csv(result, dem, t, tmp_path / "t.csv")
+    t = stage_table(ArraySource(dem, result), [18.5, 20.0])
+    se.write_stage_table_csv(ArraySource(dem, result), t, tmp_path / "t.csv")
     comments, header, rows = read_csv(tmp_path / "t.csv")
     assert "# vertical unit: ft (foot)" in comments
     assert header[0] == "level_ft"
@@ -357,9 +358,10 @@ def test_stage_table_in_feet_adds_acre_feet(tmp_path):
 
 def test_stage_table_of_another_unit_is_refused(site, tmp_path):
     dem, _, result = site
-    t = stage_table(result, [18.5], unit="ft")
+    feet = dem_from_array(dem.elevation, transform=dem.transform, crs=dem.crs, vertical_unit="ft")
+    t = stage_table(ArraySource(feet, result), [18.5])
     with pytest.raises(InvalidParameter, match="vertical unit"):
-        se.write_stage_table_csv(result, dem, t, tmp_path / "t.csv")
+        se.write_stage_table_csv(ArraySource(dem, result), t, tmp_path / "t.csv")
     assert list(tmp_path.iterdir()) == []
 
 
@@ -373,9 +375,9 @@ def test_depressions_at_a_level(site, written, level):
     assert header[:3] == ["id", "state", "freeboard_m"]
     for column in ("pit_elevation_m", "spill_elevation_m", "area_m2", "area_ha", "volume_m3"):
         assert column in header
-    states, freeboard = depression_states(result, level)
+    states, freeboard = depression_states(result.depressions, level)
     t = result.depressions
-    table = csv_tables.depression_columns(result, dem)
+    table = inventory.depression_columns(result, dem)
     assert len(rows) == len(t) == 3
     for k, row in enumerate(rows):
         assert int(row["id"]) == t.id[k]
@@ -392,7 +394,7 @@ def test_depressions_at_a_level(site, written, level):
 
 def test_depressions_at_a_level_on_a_site_without_depressions(tmp_path):
     dem, _, result = run(np.arange(48, dtype=np.float32).reshape(6, 8))  # a plane
-    se.write_depressions_at_csv(result, dem, 3.0, tmp_path / "d.csv")
+    se.write_depressions_at_csv(ArraySource(dem, result), 3.0, tmp_path / "d.csv")
     _, header, rows = read_csv(tmp_path / "d.csv")
     assert rows == [] and header[:2] == ["id", "state"]
 
@@ -402,7 +404,7 @@ def test_depressions_at_a_level_on_a_site_without_depressions(tmp_path):
 
 def test_write_stage_results_writes_each_level_once_in_order(site, tmp_path):
     dem, _, result = site
-    files = se.write_stage_results(result, dem, tmp_path, levels=[20, 18.5, 18.50, 20.0])
+    files = se.write_stage_results(ArraySource(dem, result), tmp_path, levels=[20, 18.5, 18.50, 20.0])
     assert [lf.level for lf in files.levels] == [18.5, 20.0]
     assert files.table is None and files.table_path is None
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted(p.name for p in files.paths)
@@ -423,30 +425,30 @@ def test_written_set_has_no_temporaries_and_reports_progress(written):
 def test_same_site_and_levels_give_byte_identical_files(site, written, tmp_path):
     dem, _, result = site
     out, files, _ = written
-    se.write_stage_results(result, dem, tmp_path, levels=LEVELS, table_levels=stage_levels(result, step=0.5))
+    se.write_stage_results(ArraySource(dem, result), tmp_path, levels=LEVELS, table_levels=stage_levels(ArraySource(dem, result), step=0.5))
     for path in files.paths:
         assert (tmp_path / path.name).read_bytes() == path.read_bytes(), path.name
 
 
 def test_a_failed_write_keeps_the_previous_file(site, tmp_path, monkeypatch):
     dem, _, result = site
-    se.write_level(result, dem, 18.5, tmp_path)
+    se.write_level(ArraySource(dem, result), 18.5, tmp_path)
     names = se.level_file_names(18.5, "m")
     before = (tmp_path / names.flood_extent).read_bytes()
 
     def broken(*args, **kwargs):
         raise RuntimeError("disk full, say")
 
-    monkeypatch.setattr(se, "class_polygon", broken)
+    monkeypatch.setattr(se, "label_outlines", broken)
     with pytest.raises(RuntimeError):
-        se.write_level(result, dem, 18.5, tmp_path)
+        se.write_level(ArraySource(dem, result), 18.5, tmp_path)
     assert (tmp_path / names.flood_extent).read_bytes() == before
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
 
 
 def test_feet_site_names_files_in_feet_and_reports_acre_feet(tmp_path):
     dem, _, result = run(site_elevation(), unit="us-ft")
-    files = se.write_level(result, dem, 18.5, tmp_path)
+    files = se.write_level(ArraySource(dem, result), 18.5, tmp_path)
     assert [p.name for p in files.paths][0] == "depth_18.50us_ft.tif"
     with rasterio.open(files.paths[0]) as ds:
         assert ds.units == ("US survey foot",) and ds.tags()["WATER_LEVEL_UNIT"] == "us-ft"
@@ -457,25 +459,21 @@ def test_feet_site_names_files_in_feet_and_reports_acre_feet(tmp_path):
     assert p["volume_acre_ft"] == pytest.approx(p["volume_m3"] / ACRE_FOOT_M3, rel=1e-12)
 
 
-def test_map_of_another_grid_or_unit_is_refused(site, tmp_path):
+def test_a_result_of_another_grid_is_refused(site, tmp_path):
     dem, _, result = site
-    m = a_map(site, 18.5)
     other = dem_from_array(np.zeros((3, 3), dtype=np.float32))
     with pytest.raises(InvalidParameter, match="computed on this DEM"):
-        se.write_depth(result, other, m, tmp_path / "d.tif")
-    feet = water_level_map(result, 18.5, unit="ft")
-    with pytest.raises(InvalidParameter, match="vertical unit"):
-        se.write_water_state(result, dem, feet, tmp_path / "s.tif")
+        se.write_level(ArraySource(other, result), 18.5, tmp_path)
     assert list(tmp_path.iterdir()) == []
 
 
 def test_bad_requests_are_refused_before_writing(site, tmp_path):
     dem, _, result = site
     with pytest.raises(InvalidParameter, match="at least one water level"):
-        se.write_stage_results(result, dem, tmp_path / "a")
+        se.write_stage_results(ArraySource(dem, result), tmp_path / "a")
     with pytest.raises(InvalidParameter):
-        se.write_stage_results(result, dem, tmp_path / "b", levels=[18.5, float("nan")])
+        se.write_stage_results(ArraySource(dem, result), tmp_path / "b", levels=[18.5, float("nan")])
     (tmp_path / "taken").write_text("someone's file\n")
     with pytest.raises(InvalidParameter, match="is a file"):
-        se.write_stage_results(result, dem, tmp_path / "taken", levels=[18.5])
+        se.write_stage_results(ArraySource(dem, result), tmp_path / "taken", levels=[18.5])
     assert sorted(p.name for p in tmp_path.iterdir()) == ["taken"]

@@ -268,7 +268,7 @@ def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
     # float32 fields as shortest decimals (sillmark.io.json_values.json_number).
     from sillmark.grid.crs import crs_label
     from sillmark.io.json_values import json_number
-    from sillmark.io.summary import sillmark_version
+    from sillmark import __version__
 
     ref = tmp_path / "ref"
     h = reference_files(terrain_tif, ref)
@@ -279,7 +279,7 @@ def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
             node[name] = json_number(getattr(h.nodes, name)[k])
     units = {n: "m" for n in ("pit_elevation", "merge_elevation", "spill_elevation", "max_depth")}
     units.update({"spill_x": "m", "spill_y": "m", "area_m2": "m2", "volume_m3": "m3"})
-    whole = {"name": "depression_hierarchy", "sillmark_version": sillmark_version(),
+    whole = {"name": "depression_hierarchy", "sillmark_version": __version__,
              "caution": doc.pop("caution"), "crs": crs_label(dem), "units": units, **doc}
     text = json.dumps(whole, ensure_ascii=False, allow_nan=False, separators=(",", ":")) + "\n"
     assert (ref / hx.HIERARCHY_JSON).read_text(encoding="utf-8") == text

@@ -1,18 +1,21 @@
 """Out-of-core outputs of the tiled engine against the in-memory writers.
 
-The depression outlines (:mod:`sillmark.products.tiled_outlines`) and the water-level
-exports and stage table (:mod:`sillmark.products.tiled_stage`) are built from the files
-:func:`sillmark.engine.tiled.analyse_tiled` writes, window by window. The reference is
+The depression outlines (:mod:`sillmark.products.outlines`) and the water-level
+exports and stage table (:mod:`sillmark.io.stage_files`) are written once, against a
+result source. Here they are built from the folder
+:func:`sillmark.engine.tiled.analyse_tiled` writes, read window by window
+(:mod:`sillmark.io.results_folder`), and compared with the same writers on
 Sillmark's own in-memory path on the same DEM: the engine with the same tile
 size (:func:`sillmark.engine.flood.priority_flood` with ``tile_size``, so that the
-spill cells of tied routes agree) and the writers of :mod:`sillmark.io.export` and
-:mod:`sillmark.io.stage_files`. Rasters and CSV files must be the same bytes;
+spill cells of tied routes agree) held as arrays
+(:class:`sillmark.products.source.ArraySource`, one window). Rasters and CSV files must be the same bytes;
 outlines the same regions (shapely ``equals``) with the same vertices, and
 every GeoJSON property the same value.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import shutil
 
@@ -23,20 +26,16 @@ import shapely
 import shapely.geometry
 from affine import Affine
 
-from sillmark.grid.dem import read_dem, read_dem_grid
+from sillmark.grid.dem import read_dem
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.products.outlines import depression_polygons
 from sillmark.io.geojson import write_depressions_geojson
 from sillmark.products.stage import stage_levels
 from sillmark.io.stage_files import write_stage_results
 from sillmark.engine.tiled import analyse_tiled
-from sillmark.products.tiled_outlines import depression_outlines, write_depressions_geojson_tiled
-from sillmark.products.tiled_stage import (
-    _float32_from_text,
-    open_result_folder,
-    tiled_stage_levels,
-    write_tiled_stage_results,
-)
+from sillmark.io.results_folder import _float32_from_text, open_result_folder
+from sillmark.products.outlines import depression_outlines
+from sillmark.products.source import ArraySource
 from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
 from tests.test_flood import synthetic_terrain
@@ -131,7 +130,8 @@ def test_hand_made_outlines_equal_the_in_memory_ones(shapes_tif, tmp_path, windo
     ref = depression_polygons(r, dem)
     assert [g.geom_type for g in ref] == ["Polygon", "MultiPolygon", "Polygon"]
     assert len(ref[0].interiors) == 1  # the island
-    mine = depression_outlines(tmp_path / "out" / "depression_id.tif", len(run.depressions), window=window)
+    assert len(run.depressions) == len(ref)
+    mine = depression_outlines(open_result_folder(tmp_path / "out"), window=window)
     for a, b in zip(ref, mine):
         assert b.is_valid and a.equals(b) and vertex_set(a) == vertex_set(b)
         assert a.geom_type == b.geom_type and len(shapely.get_parts(a)) == len(shapely.get_parts(b))
@@ -151,20 +151,23 @@ def test_outlines_and_geojson_equal_the_in_memory_file(request, tmp_path, dem_na
     run = run_tiled(path, out, specs=specs, connectivity=connectivity, tile=tile)
     assert len(run.depressions) > 10
     ref = depression_polygons(r, dem)
-    mine = depression_outlines(out / "depression_id.tif", len(run.depressions), window=window)
+    mine = depression_outlines(open_result_folder(out), window=window)
+    assert len(mine) == len(ref)
     assert all(a.equals(b) and vertex_set(a) == vertex_set(b) for a, b in zip(ref, mine))
-    write_depressions_geojson(r, dem, tmp_path / "memory.geojson")
-    write_depressions_geojson_tiled(run.depressions, read_dem_grid(path), out / "depression_id.tif",
-                                    tmp_path / "tiled.geojson", window=window)
+    write_depressions_geojson(ArraySource(dem, r), tmp_path / "memory.geojson")
+    write_depressions_geojson(open_result_folder(out), tmp_path / "tiled.geojson", window=window)
     assert_same_collections(tmp_path / "tiled.geojson", tmp_path / "memory.geojson")
 
 
 def test_outlines_refuse_an_id_raster_that_lacks_a_depression(terrain_tif, tmp_path):
-    run = run_tiled(terrain_tif, tmp_path / "out")
+    run_tiled(terrain_tif, tmp_path / "out")
+    site = open_result_folder(tmp_path / "out")
+    # A table with one depression more than the id raster holds.
+    longer = {name: np.append(values, values[-1]) for name, values in site.depressions.items()}
     with pytest.raises(InvalidParameter, match="has no cells"):
-        depression_outlines(tmp_path / "out" / "depression_id.tif", len(run.depressions) + 1)
+        depression_outlines(dataclasses.replace(site, depressions=longer))
     with pytest.raises(InvalidParameter, match="window"):
-        depression_outlines(tmp_path / "out" / "depression_id.tif", 1, window=0)
+        depression_outlines(site, window=0)
 
 
 # --------------------------------------------------------------------------- stage exports
@@ -200,11 +203,12 @@ def test_stage_files_are_the_in_memory_files(request, tmp_path, dem_name, specs,
     # A level below every onset stage, two inside the range, and one above all ground.
     levels = [float(s.min()) - 1.0, float(np.median(s)), float(np.percentile(s, 80)),
               float(np.nanmax(dem.elevation)) + 0.5]
-    table_levels = stage_levels(r, step=0.37)
-    assert np.array_equal(tiled_stage_levels(site, step=0.37), table_levels)
-    theirs = write_stage_results(r, dem, tmp_path / "memory", levels=levels, table_levels=table_levels)
-    mine = write_tiled_stage_results(site, tmp_path / "tiled", levels=levels,
-                                     table_levels=table_levels, window=window)
+    table_levels = stage_levels(ArraySource(dem, r), step=0.37)
+    assert np.array_equal(stage_levels(site, step=0.37), table_levels)
+    theirs = write_stage_results(ArraySource(dem, r), tmp_path / "memory", levels=levels,
+                                 table_levels=table_levels)
+    mine = write_stage_results(site, tmp_path / "tiled", levels=levels, table_levels=table_levels,
+                               window=window)
     assert_same_stage_files(mine, theirs)
     # Not a trivial comparison: some ground is flooded and some shielded at the middle level.
     middle = mine.levels[1]
@@ -230,9 +234,10 @@ def test_stage_files_in_feet_on_a_geographic_grid(tmp_path):
                        transform=dem.transform, tile_size=9)
     site = open_result_folder(out)
     levels = [float(np.nanmedian(r.onset_stage))]
-    table = stage_levels(r, step=2.5, start=float(np.nanmin(dem.elevation)))
-    theirs = write_stage_results(r, dem, tmp_path / "memory", levels=levels, table_levels=table)
-    mine = write_tiled_stage_results(site, tmp_path / "tiled", levels=levels, table_levels=table)
+    table = stage_levels(ArraySource(dem, r), step=2.5, start=float(np.nanmin(dem.elevation)))
+    theirs = write_stage_results(ArraySource(dem, r), tmp_path / "memory", levels=levels,
+                                 table_levels=table)
+    mine = write_stage_results(site, tmp_path / "tiled", levels=levels, table_levels=table)
     assert_same_stage_files(mine, theirs)
     header = (tmp_path / "tiled" / "stage_table.csv").read_text().splitlines()
     assert any("flooded_volume_acre_ft" in line for line in header)
@@ -354,7 +359,9 @@ import tempfile
 from pathlib import Path
 import numpy as np
 from sillmark.engine.tiled import analyse_tiled
-from sillmark.products.tiled_stage import open_result_folder, tiled_stage_table, write_tiled_stage_results
+from sillmark.io.results_folder import open_result_folder
+from sillmark.io.stage_files import write_stage_results
+from sillmark.products.stage import stage_table
 from tests.rasters import write_raster
 rng = np.random.default_rng(8)
 with tempfile.TemporaryDirectory() as tmp:
@@ -366,8 +373,8 @@ with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp) / f"out{shape[0]}"
         analyse_tiled(path, out, outlets=["edge"], tile_size=4)
         site = open_result_folder(out)
-        tiled_stage_table(site, np.arange(-1, 7, 0.5))
-        write_tiled_stage_results(site, Path(tmp) / f"stage{shape[0]}", levels=[2.5])
+        stage_table(site, np.arange(-1, 7, 0.5))
+        write_stage_results(site, Path(tmp) / f"stage{shape[0]}", levels=[2.5])
 print("bounds ok")
 """
 

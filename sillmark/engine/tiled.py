@@ -620,7 +620,7 @@ def analyse_tiled(
     :func:`sillmark.io.export.write_results` writes for the in-memory result with
     the same tile size. The depression outlines (``depressions.geojson``) and
     the three hierarchy files are written afterwards from the folder, window
-    by window, by :func:`sillmark.products.tiled_outlines.add_depression_outlines` and
+    by window, by :func:`sillmark.io.results_folder.add_depression_outlines` and
     :func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy` (which the command
     line and the web app call); they too equal the in-memory files.
     """

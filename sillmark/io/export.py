@@ -51,6 +51,7 @@ from sillmark.io.geotiff import (
 )
 from sillmark.io.summary import FILE_NAMES, write_summary
 from sillmark.products.hierarchy import site_hierarchy
+from sillmark.products.source import ArraySource
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
@@ -251,7 +252,7 @@ def write_results(
         write_depression_ids(result, dem, out / FILE_NAMES[2], progress=progress),
         write_flood_tree(result, dem, out / FILE_NAMES[3], progress=progress),
         step(FILE_NAMES[4], lambda: write_depressions_csv(result, dem, out / FILE_NAMES[4])),
-        step(FILE_NAMES[5], lambda: write_depressions_geojson(result, dem, out / FILE_NAMES[5])),
+        step(FILE_NAMES[5], lambda: write_depressions_geojson(ArraySource(dem, result), out / FILE_NAMES[5])),
         step(FILE_NAMES[6], lambda: write_spill_points_geojson(result, dem, out / FILE_NAMES[6])),
     ]
     if hierarchy is None:

@@ -17,20 +17,18 @@ from shapely.geometry.polygon import orient
 
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
-from sillmark.grid.crs import (
-    horizontal_crs,
-    to_wgs84,
-)
+from sillmark.grid.crs import horizontal_crs, to_wgs84, wgs84_transformer
 from sillmark.io.atomic import atomic_output
-from sillmark.io.csv_tables import depression_columns, float_texts, json_records
+from sillmark.io.csv_tables import float_texts
 from sillmark.io.geotiff import check_result_grid
-from sillmark.io.json_values import json_text
-from sillmark.products.outlines import depression_polygons
+from sillmark.io.json_values import json_number, json_text
+from sillmark.products.outlines import depression_outlines
 from sillmark.units import unit_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
     from sillmark.grid.dem import DEM
+    from sillmark.products.source import ResultSource
 
 
 #: Decimal places kept in GeoJSON lon/lat: 1e-8 degree is about 1 mm on the ground,
@@ -82,16 +80,18 @@ def write_feature_collection(path: str | os.PathLike, members: dict, features) -
     return path
 
 
-def write_depressions_geojson(
-    result: "SpillResult", dem: "DEM", path: str | os.PathLike, *, polygons: list | None = None
-) -> Path:
+def write_depressions_geojson(source: "ResultSource", path: str | os.PathLike, *,
+                              window: int | None = None) -> Path:
     """Write ``depressions.geojson``: one Feature per depression, WGS84 lon/lat.
 
     Follows RFC 7946: no ``crs`` member (section 4), positions are longitude,
     latitude (section 3.1.1), exterior rings counterclockwise and holes clockwise
     (section 3.1.6); lon/lat rounded to :data:`COORDINATE_DECIMALS` places
-    (section 11.2). Properties are the row of :func:`depression_columns` plus
-    ``vertical_unit`` and ``caution``.
+    (section 11.2). Properties are the depression's row of ``depressions.csv``
+    (:func:`sillmark.products.inventory.depression_columns`) plus
+    ``vertical_unit`` and ``caution``. Outlines come from
+    :func:`sillmark.products.outlines.depression_outlines`, window by window
+    (``window`` cells a side; by default the whole grid in memory).
 
     Notes
     -----
@@ -99,33 +99,27 @@ def write_depressions_geojson(
     not densified, which on a site-sized DEM moves an edge by far less than a cell.
     A site crossing the antimeridian is not split (section 3.1.9).
     """
-    final = Path(path)
-    unit = unit_of(dem)
-    crs = horizontal_crs(dem)
-    if polygons is None:
-        polygons = depression_polygons(result, dem)
-    transformer = to_wgs84(crs)
-
-    def to_lonlat(xy: np.ndarray) -> np.ndarray:
-        x, y = transformer.transform(xy[:, 0], xy[:, 1])
-        return np.column_stack([x, y])
+    grid = source.grid
+    unit = unit_of(grid)
+    transformer = wgs84_transformer(grid)  # fails before reading if there is no CRS
+    outlines = depression_outlines(source, window=window)
+    columns = source.depression_columns
 
     def features() -> Iterator[dict]:
-        for record, geom in zip(json_records(depression_columns(result, dem)), polygons):
-            lonlat = _oriented(shapely.transform(geom, to_lonlat))
-            properties = dict(record)
+        for k, outline in enumerate(outlines):
+            properties = {name: json_number(values[k]) for name, values in columns.items()}
             properties["vertical_unit"] = unit.value
             properties["caution"] = SCREENING_CAUTION
             yield {
                 "type": "Feature",
-                "id": record["id"],
-                "geometry": _geojson_geometry(lonlat),
+                "id": properties["id"],
+                "geometry": wgs84_geometry(outline, grid, transformer=transformer),
                 "properties": properties,
             }
 
     # "name", "caution" and "vertical_unit" are foreign members (RFC 7946, section 6.1).
     members = {"name": "depressions", "caution": SCREENING_CAUTION, "vertical_unit": unit.value}
-    return write_feature_collection(final, members, features())
+    return write_feature_collection(path, members, features())
 
 
 def write_spill_points_geojson(result: "SpillResult", dem: "DEM", path: str | os.PathLike) -> Path:

@@ -275,3 +275,9 @@ def write_flood_tree(
     tree = result.flood_tree
     return write_result_layer("flood_tree", dem, path, block=lambda r0, r1: tree[r0:r1],
                               connectivity=result.connectivity, progress=progress)
+
+
+def read_window(path: str | os.PathLike, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+    """Rows ``r0:r1`` and columns ``c0:c1`` of band 1 of a GeoTIFF."""
+    with rasterio.open(path) as ds:
+        return ds.read(1, window=rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0))

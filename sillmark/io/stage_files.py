@@ -16,7 +16,10 @@ and :func:`write_stage_table_csv` writes ``stage_table.csv``, flooded and
 shielded area and volume against level. :func:`write_stage_results` writes the
 lot for several levels into one folder.
 
-The files follow the conventions of :mod:`sillmark.io.export`: GeoTIFFs tiled and
+Every function takes a result source (:mod:`sillmark.products.source`): a result
+in memory, or a results folder on disk read block by block, with the same files.
+The files follow the conventions of :mod:`sillmark.io.geotiff`, :mod:`sillmark.io.csv_tables`
+and :mod:`sillmark.io.geojson`: GeoTIFFs tiled and
 compressed with the CRS kept, GeoJSON after RFC 7946, CSV with ``# `` comment
 lines before the header; every file carries :data:`sillmark.SCREENING_CAUTION`
 and is written atomically (temporary name, then rename). The files hold nothing
@@ -29,18 +32,19 @@ from __future__ import annotations
 import dataclasses
 import os
 from collections.abc import Iterator, Sequence
+from functools import partial
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
-import rasterio.features
-import shapely.geometry
 
 from sillmark import SCREENING_CAUTION, __version__, units
 from sillmark.errors import InvalidParameter
 from sillmark.grid import crs
 from sillmark.io import csv_tables, geotiff, json_values
 from sillmark.io import geojson as geojson_files
+from sillmark.products.outlines import DEFAULT_WINDOW, label_outlines
+from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
     CLASS_NAMES,
     DEPRESSION_CUT_OFF,
@@ -50,18 +54,17 @@ from sillmark.products.stage import (
     FLOODED,
     NODATA,
     SHIELDED,
+    LevelBlocks,
     StageTable,
-    WaterLevelMap,
     checked_level,
     depression_states,
+    level_blocks,
     stage_table,
-    water_level_map,
 )
 from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
-    from sillmark.engine.flood import SpillResult
-    from sillmark.grid.dem import DEM
+    from sillmark.products.source import ResultSource
 
 __all__ = [
     "DEPTH_NODATA",
@@ -70,20 +73,16 @@ __all__ = [
     "LevelFileNames",
     "LevelFiles",
     "StageFiles",
-    "class_polygon",
     "level_file_names",
     "level_label",
     "level_text",
-    "write_depressions_at_csv",
-    "write_depth",
-    "write_flood_extent_geojson",
-    "write_level",
-    "write_shielded_geojson",
-    "write_stage_results",
     "stage_table_columns",
     "unique_levels",
+    "write_class_collection",
+    "write_depressions_at_csv",
+    "write_level",
+    "write_stage_results",
     "write_stage_table_csv",
-    "write_water_state",
 ]
 
 #: Nodata of ``depth_{h}.tif`` (the IEEE NaN, declared as the GeoTIFF nodata).
@@ -159,155 +158,48 @@ def level_file_names(level, unit: VerticalUnit | str) -> LevelFileNames:
     )
 
 
-# --------------------------------------------------------------------------- checks
+# --------------------------------------------------------------------------- one level
 
 
-def _unit(dem: "DEM") -> VerticalUnit:
-    return VerticalUnit.parse(dem.vertical_unit)
+def _level_tags(level, unit: VerticalUnit, connectivity: int) -> dict[str, str]:
+    return {"WATER_LEVEL": level_text(level), "WATER_LEVEL_UNIT": unit.value,
+            "CONNECTIVITY": str(connectivity)}
 
 
-def _check_map(water_map: WaterLevelMap, dem: "DEM") -> None:
-    shape = tuple(dem.elevation.shape)
-    got = tuple(water_map.state.shape)
-    if got != shape or tuple(water_map.depth.shape) != shape:
-        raise InvalidParameter(
-            f"the water-level map is {got[0]} x {got[1]} cells but the DEM is "
-            f"{shape[0]} x {shape[1]}; export a map computed on this DEM"
-        )
-    if VerticalUnit.parse(water_map.unit) is not _unit(dem):
-        raise InvalidParameter(
-            f"the water-level map is in {water_map.unit.value} but the DEM in "
-            f"{_unit(dem).value}; compute the map with the DEM's vertical unit"
-        )
-
-
-def _check_result(result: "SpillResult", dem: "DEM") -> None:
-    shape = tuple(dem.elevation.shape)
-    got = tuple(result.onset_stage.shape)
-    if got != shape:
-        raise InvalidParameter(
-            f"the result is {got[0]} x {got[1]} cells but the DEM is {shape[0]} x "
-            f"{shape[1]}; export a result computed on this DEM"
-        )
-
-
-def _level_tags(water_map: WaterLevelMap, result: "SpillResult") -> dict[str, str]:
-    unit = VerticalUnit.parse(water_map.unit)
-    return {
-        "WATER_LEVEL": level_text(water_map.level),
-        "WATER_LEVEL_UNIT": unit.value,
-        "CONNECTIVITY": str(result.connectivity),
-    }
-
-
-# --------------------------------------------------------------------------- rasters
-
-
-def write_depth(
-    result: "SpillResult",
-    dem: "DEM",
-    water_map: WaterLevelMap,
-    path: str | os.PathLike,
-    *,
-    progress: geotiff.Progress | None = None,
-) -> Path:
-    """Write ``depth_{h}.tif``: water depth at the map's level, float32, NaN nodata.
-
-    Depth is ``level - elevation`` on flooded cells, in the site's vertical unit;
-    every other cell (dry, shielded, DEM nodata) is NaN, the declared nodata.
-    Tags: those of :func:`sillmark.io.geotiff.write_geotiff` plus ``WATER_LEVEL``,
-    ``WATER_LEVEL_UNIT`` and ``CONNECTIVITY``.
-    """
-    _check_result(result, dem)
-    _check_map(water_map, dem)
-    unit = _unit(dem)
-    depth = water_map.depth
+def _write_depth(source: "ResultSource", blocks: LevelBlocks, path: Path,
+                 progress: geotiff.Progress | None) -> Path:
+    """``depth_{h}.tif``: ``level - elevation`` on flooded cells, NaN (the declared nodata) elsewhere."""
+    unit = source.unit
     return geotiff.write_geotiff(
-        path, dem, dtype="float32", nodata=DEPTH_NODATA,
-        block=lambda r0, r1: depth[r0:r1],
+        path, source.grid, dtype="float32", nodata=DEPTH_NODATA,
+        block=lambda r0, r1: blocks.classify(r0, r1)[1],
         layer="depth",
         description=f"depth of water reached from the outlets at water level "
-        f"{level_text(water_map.level)} {unit.symbol} ({unit.symbol})",
-        band_unit=units.unit_name(unit),
-        extra_tags=_level_tags(water_map, result),
+        f"{level_text(blocks.level)} {unit.symbol} ({unit.symbol})",
+        band_unit=units.unit_name(unit), extra_tags=_level_tags(blocks.level, unit, source.connectivity),
         progress=progress,
     )
 
 
-def write_water_state(
-    result: "SpillResult",
-    dem: "DEM",
-    water_map: WaterLevelMap,
-    path: str | os.PathLike,
-    *,
-    progress: geotiff.Progress | None = None,
-) -> Path:
-    """Write ``water_state_{h}.tif``: the class of every cell at the map's level, uint8.
+def _write_water_state(source: "ResultSource", blocks: LevelBlocks, path: Path,
+                       progress: geotiff.Progress | None) -> Path:
+    """``water_state_{h}.tif``: 0 nodata (declared), 1 dry, 2 flooded, 3 shielded low ground.
 
-    Codes are those of :mod:`sillmark.products.stage`: 0 nodata (the declared nodata),
-    1 dry, 2 flooded, 3 shielded low ground. The tag ``WATER_STATE_CLASSES``
-    lists them (``0 = nodata, 1 = dry, ...``), ``CLASS_1`` ... ``CLASS_3`` name
-    each and ``WATER_STATE_MEANING`` explains them.
+    The tag ``WATER_STATE_CLASSES`` lists the codes (``0 = nodata, 1 = dry,
+    ...``), ``CLASS_0`` ... ``CLASS_3`` name each and ``WATER_STATE_MEANING``
+    explains them.
     """
-    _check_result(result, dem)
-    _check_map(water_map, dem)
-    unit = _unit(dem)
-    state = water_map.state
-    tags = _level_tags(water_map, result)
+    unit = source.unit
+    tags = _level_tags(blocks.level, unit, source.connectivity)
     tags["WATER_STATE_CLASSES"] = _STATE_CODES
     tags.update({f"CLASS_{code}": CLASS_NAMES[code] for code in (NODATA, DRY, FLOODED, SHIELDED)})
     tags["WATER_STATE_MEANING"] = _STATE_MEANING
     return geotiff.write_geotiff(
-        path, dem, dtype="uint8", nodata=STATE_NODATA,
-        block=lambda r0, r1: state[r0:r1],
+        path, source.grid, dtype="uint8", nodata=STATE_NODATA,
+        block=lambda r0, r1: blocks.classify(r0, r1)[0],
         layer="water_state",
-        description=f"water state at water level {level_text(water_map.level)} {unit.symbol}: "
-        + _STATE_CODES,
-        band_unit="",
-        extra_tags=tags,
-        progress=progress,
-    )
-
-
-# --------------------------------------------------------------------------- vectors
-
-
-def class_polygon(water_map: WaterLevelMap, dem: "DEM", state: int):
-    """The cells of class ``state`` as one shapely (Multi)Polygon in the DEM's CRS.
-
-    None when no cell has the class. The class raster is vectorised with
-    :func:`rasterio.features.shapes` (4-connected, cell edges as outlines); the
-    pieces are distinct 4-connected regions of one class, so they meet at most at
-    corners and their MultiPolygon is already their union (and valid).
-
-    Notes
-    -----
-    Memory: a boolean mask of the grid (1 byte per cell) plus the outline vertices.
-    """
-    _check_map(water_map, dem)
-    classes = np.ascontiguousarray(water_map.state, dtype=np.uint8)
-    mask = classes == np.uint8(state)
-    if not mask.any():
-        return None
-    parts = [
-        shapely.geometry.shape(geom)
-        for geom, _ in rasterio.features.shapes(classes, mask=mask, connectivity=4, transform=dem.transform)
-    ]
-    return parts[0] if len(parts) == 1 else shapely.geometry.MultiPolygon(parts)
-
-
-def _write_class_geojson(
-    result: "SpillResult", dem: "DEM", water_map: WaterLevelMap, path, state: int, name: str
-) -> Path:
-    _check_result(result, dem)
-    _check_map(water_map, dem)
-    if state == FLOODED:
-        totals = water_map.flooded_area_m2, water_map.flooded_volume_m3
-    else:
-        totals = water_map.shielded_area_m2, water_map.shielded_volume_m3
-    return write_class_collection(
-        path, dem, level=water_map.level, state=state, name=name, totals=totals,
-        connectivity=result.connectivity, outline=lambda: class_polygon(water_map, dem, state),
+        description=f"water state at water level {level_text(blocks.level)} {unit.symbol}: " + _STATE_CODES,
+        band_unit="", extra_tags=tags, progress=progress,
     )
 
 
@@ -319,9 +211,15 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
     ``totals`` the class's area (m²) and volume (m³); ``outline()`` gives its
     (Multi)Polygon in the DEM's CRS or None when no cell has the class (it is
     called after the CRS is checked, so a grid without one fails before any work).
-    The in-memory and the out-of-core exports both write through here.
+
+    RFC 7946 as ``depressions.geojson`` (lon/lat, counterclockwise exteriors,
+    clockwise holes, coordinates rounded). Properties: ``level``, ``unit``,
+    ``class``, ``area_m2``, ``area_ha``, ``volume_m3`` (plus ``volume_acre_ft``
+    for sites in feet), ``connectivity`` and ``caution``; the same (but
+    connectivity) are members of the collection, so the totals stay readable
+    when no cell has the class and the collection holds no feature.
     """
-    unit = _unit(grid)
+    unit = units.unit_of(grid)
     transformer = crs.wgs84_transformer(grid)  # fails before writing if there is no CRS
     area, volume = totals
     properties = {
@@ -348,51 +246,39 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
             "properties": properties,
         }
 
-    # Foreign members (RFC 7946, section 6.1): the totals stay readable when no
-    # cell has the class and the collection holds no feature.
+    # Foreign members (RFC 7946, section 6.1).
     members = {"name": name, **{k: v for k, v in properties.items() if k != "connectivity"}}
     return geojson_files.write_feature_collection(path, members, features())
 
 
-def write_flood_extent_geojson(
-    result: "SpillResult", dem: "DEM", water_map: WaterLevelMap, path: str | os.PathLike
-) -> Path:
-    """Write ``flood_extent_{h}.geojson``: the flooded cells as one Feature, WGS84.
+def _write_class_geojson(source: "ResultSource", level: float, totals: tuple[float, float],
+                         state_path: Path, path: Path, state: int, name: str, window: int) -> Path:
+    """``flood_extent_{h}.geojson`` or ``shielded_{h}.geojson``: the class's cells of the
+    written ``water_state_{h}.tif``, outlined window by window."""
 
-    RFC 7946 as in :func:`sillmark.io.geojson.write_depressions_geojson` (lon/lat,
-    counterclockwise exteriors, clockwise holes, coordinates rounded to
-    :data:`sillmark.io.geojson.COORDINATE_DECIMALS` places). Properties: ``level``,
-    ``unit``, ``class`` (``"flooded"``), ``area_m2``, ``area_ha``, ``volume_m3``
-    (water on the flooded cells; plus ``volume_acre_ft`` for sites in feet),
-    ``connectivity`` and ``caution``; the same (but connectivity) are members of
-    the collection. When nothing floods the collection holds no feature.
-    """
-    return _write_class_geojson(result, dem, water_map, path, FLOODED, "flood_extent")
+    def select(block: np.ndarray):
+        return block == np.uint8(state), block.astype(np.int32)
 
+    def outline():
+        found = label_outlines(partial(geotiff.read_window, state_path), tuple(source.grid.shape),
+                               source.grid.transform, select, window=window)
+        return found.get(state)
 
-def write_shielded_geojson(
-    result: "SpillResult", dem: "DEM", water_map: WaterLevelMap, path: str | os.PathLike
-) -> Path:
-    """Write ``shielded_{h}.geojson``: shielded low ground as one Feature, WGS84.
-
-    As :func:`write_flood_extent_geojson`, with ``class`` ``"shielded"`` and
-    ``volume_m3`` the volume between the ground and the level on the shielded
-    cells (what they would hold if water reached them).
-    """
-    return _write_class_geojson(result, dem, water_map, path, SHIELDED, "shielded")
+    return write_class_collection(path, source.grid, level=level, state=state, name=name, totals=totals,
+                                  connectivity=source.connectivity, outline=outline)
 
 
 # --------------------------------------------------------------------------- tables
 
 
-def _comment_head(title: str, dem: "DEM", result: "SpillResult") -> list[str]:
-    unit = _unit(dem)
+def _comment_head(title: str, source: "ResultSource") -> list[str]:
+    unit = source.unit
     return [
         f"Sillmark {__version__} {title}",
         f"CAUTION: {SCREENING_CAUTION}",
         f"vertical unit: {unit.value} ({units.unit_name(unit)})",
-        f"CRS: {crs.crs_label(dem)}",
-        f"connectivity: {result.connectivity}",
+        f"CRS: {crs.crs_label(source.grid)}",
+        f"connectivity: {source.connectivity}",
     ]
 
 
@@ -419,22 +305,14 @@ def stage_table_columns(table: StageTable) -> dict[str, np.ndarray]:
     return cols
 
 
-def write_stage_table_csv(
-    result: "SpillResult", dem: "DEM", table: StageTable, path: str | os.PathLike
-) -> Path:
-    """Write ``stage_table.csv``: one row per level of ``table`` (:func:`sillmark.products.stage.stage_table`).
-
-    ``# `` comment lines (caution, vertical unit, CRS, connectivity, what the
-    columns mean), then the columns of :func:`stage_table_columns`.
-    """
-    _check_result(result, dem)
-    crs.horizontal_crs(dem)
-    if VerticalUnit.parse(table.unit) is not _unit(dem):
+def write_stage_table_csv(source: "ResultSource", table: StageTable, path: str | os.PathLike) -> Path:
+    """Write ``stage_table.csv``: the columns of :func:`stage_table_columns`, one row per level."""
+    if VerticalUnit.parse(table.unit) is not source.unit:
         raise InvalidParameter(
-            f"the stage table is in {table.unit.value} but the DEM in {_unit(dem).value}; "
-            "compute the table with the DEM's vertical unit"
+            f"the stage table is in {VerticalUnit.parse(table.unit).value} but the site in "
+            f"{source.unit.value}; compute the table with the site's vertical unit"
         )
-    comments = _comment_head("stage table", dem, result) + [
+    comments = _comment_head("stage table", source) + [
         "flooded: cells reached from the outlets at the level; volume = water above the ground on them",
         "shielded: ground below the level that no surface path reaches; volume = what it would hold if reached",
     ]
@@ -448,9 +326,7 @@ _DEPRESSION_STATE_NOTE = (
 )
 
 
-def write_depressions_at_csv(
-    result: "SpillResult", dem: "DEM", level, path: str | os.PathLike
-) -> Path:
+def write_depressions_at_csv(source: "ResultSource", level, path: str | os.PathLike) -> Path:
     """Write ``depressions_at_{h}.csv``: every depression's state and freeboard at ``level``.
 
     Columns: ``id``, ``state`` (:func:`sillmark.products.stage.depression_states`),
@@ -460,11 +336,10 @@ def write_depressions_at_csv(
     ``area_ha``, ``volume_m3`` (storage at the spill elevation; plus
     ``volume_acre_ft`` for sites in feet), as in ``depressions.csv``.
     """
-    _check_result(result, dem)
-    unit = _unit(dem)
+    unit = source.unit
     v = units.unit_suffix(unit)
-    states, freeboard = depression_states(result, level)
-    table = csv_tables.depression_columns(result, dem)
+    states, freeboard = depression_states(source, level)
+    table = source.depression_columns
     cols: dict[str, np.ndarray] = {
         "id": table["id"],
         "state": np.asarray(states, dtype=str),
@@ -474,7 +349,7 @@ def write_depressions_at_csv(
                  "spill_lon_deg", "spill_lat_deg", "area_m2", "area_ha", "volume_m3", "volume_acre_ft"):
         if name in table:
             cols[name] = table[name]
-    comments = _comment_head("depressions at one water level", dem, result) + [
+    comments = _comment_head("depressions at one water level", source) + [
         f"water level: {level_text(level)} {unit.value}",
         _DEPRESSION_STATE_NOTE,
         f"freeboard_{v}: spill elevation minus the water level (negative once overtopped)",
@@ -488,35 +363,18 @@ def write_depressions_at_csv(
 
 @dataclasses.dataclass(frozen=True)
 class LevelFiles:
-    """What :func:`write_level` wrote for one level, with the figures to report.
-
-    ``water_map`` holds the totals (its arrays are those :func:`write_level`
-    filled, and may be overwritten when buffers are reused for the next level).
-    """
+    """What :func:`write_level` wrote for one level, with the figures to report."""
 
     level: float
     unit: VerticalUnit
-    water_map: WaterLevelMap
     paths: tuple[Path, ...]
+    flooded_area_m2: float
+    flooded_volume_m3: float
+    shielded_area_m2: float
+    shielded_volume_m3: float
     depressions_overtopped: int
     depressions_cut_off: int
     depressions_dry: int
-
-    @property
-    def flooded_area_m2(self) -> float:
-        return self.water_map.flooded_area_m2
-
-    @property
-    def flooded_volume_m3(self) -> float:
-        return self.water_map.flooded_volume_m3
-
-    @property
-    def shielded_area_m2(self) -> float:
-        return self.water_map.shielded_area_m2
-
-    @property
-    def shielded_volume_m3(self) -> float:
-        return self.water_map.shielded_volume_m3
 
 
 def _out_folder(out_dir: str | os.PathLike) -> Path:
@@ -527,42 +385,49 @@ def _out_folder(out_dir: str | os.PathLike) -> Path:
     return out
 
 
-def write_level(
-    result: "SpillResult",
-    dem: "DEM",
-    level,
-    out_dir: str | os.PathLike,
-    *,
-    out: tuple[np.ndarray, np.ndarray] | None = None,
-    progress: geotiff.Progress | None = None,
-) -> LevelFiles:
+def _outline_window(source: "ResultSource", window: int | None) -> int:
+    if window is not None:
+        return window
+    return max(source.grid.shape) if isinstance(source, ArraySource) else DEFAULT_WINDOW
+
+
+def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
+                window: int | None = None, progress: geotiff.Progress | None = None) -> LevelFiles:
     """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`).
 
     Parameters
     ----------
-    result : SpillResult
-        From :func:`sillmark.engine.flood.analyse_site` on ``dem``.
-    dem : DEM
+    source : ResultSource
+        A result in memory (:class:`sillmark.products.source.ArraySource`) or a
+        results folder (:func:`sillmark.io.results_folder.open_result_folder`).
     level : float
-        Outlet water level in the DEM's vertical unit (compared at float32 precision).
+        Outlet water level in the site's vertical unit (compared at float32 precision).
     out_dir : path
         Created if missing; files of these names are replaced, nothing else is touched.
-    out : (uint8, float32) arrays, optional
-        Buffers for the map, as in :func:`sillmark.products.stage.water_level_map`.
+    window : int, optional
+        Side of the windows the outlines are traced in (default: the whole grid
+        in memory, :data:`sillmark.products.outlines.DEFAULT_WINDOW` on disk).
     progress : callable, optional
-        ``progress(file_name, done, total)`` as in :func:`sillmark.io.export.write_results`.
+        ``progress(file_name, done, total)``.
 
     Notes
     -----
-    Memory: the map (5 bytes per cell unless ``out`` is given), a boolean mask of
-    the grid while outlining, and the outlines.
+    The rasters are classified block by block (:class:`sillmark.products.stage.LevelBlocks`)
+    as they are written; the outlines are traced from the written
+    ``water_state_{h}.tif``. Memory: a block of :data:`sillmark.io.geotiff.BLOCK_ROWS`
+    rows, one outline window, and the outlines.
     """
-    _check_result(result, dem)
-    crs.horizontal_crs(dem)  # fail before writing anything if there is no CRS
-    unit = _unit(dem)
+    grid = source.grid
+    crs.horizontal_crs(grid)  # fail before writing anything if there is no CRS
+    unit = source.unit
+    h = checked_level(level)
     folder = _out_folder(out_dir)
-    water_map = water_level_map(result, level, row_areas=dem.row_areas, unit=unit, out=out)
-    names = level_file_names(water_map.level, unit)
+    names = level_file_names(h, unit)
+    blocks = level_blocks(source, h)
+    depth_path = _write_depth(source, blocks, folder / names.depth, progress)
+    state_path = _write_water_state(source, blocks, folder / names.water_state, progress)
+    flooded_area, flooded_volume, shielded_area, shielded_volume = blocks.totals
+    size = _outline_window(source, window)
 
     def step(name: str, write) -> Path:
         if progress is not None:
@@ -573,21 +438,21 @@ def write_level(
         return written
 
     paths = (
-        write_depth(result, dem, water_map, folder / names.depth, progress=progress),
-        write_water_state(result, dem, water_map, folder / names.water_state, progress=progress),
-        step(names.flood_extent,
-             lambda: write_flood_extent_geojson(result, dem, water_map, folder / names.flood_extent)),
-        step(names.shielded,
-             lambda: write_shielded_geojson(result, dem, water_map, folder / names.shielded)),
-        step(names.depressions,
-             lambda: write_depressions_at_csv(result, dem, water_map.level, folder / names.depressions)),
+        depth_path,
+        state_path,
+        step(names.flood_extent, lambda: _write_class_geojson(
+            source, float(h), (flooded_area, flooded_volume), state_path,
+            folder / names.flood_extent, FLOODED, "flood_extent", size)),
+        step(names.shielded, lambda: _write_class_geojson(
+            source, float(h), (shielded_area, shielded_volume), state_path,
+            folder / names.shielded, SHIELDED, "shielded", size)),
+        step(names.depressions, lambda: write_depressions_at_csv(source, float(h), folder / names.depressions)),
     )
-    states, _ = depression_states(result, water_map.level)
+    states, _ = depression_states(source, h)
     return LevelFiles(
-        level=water_map.level,
-        unit=unit,
-        water_map=water_map,
-        paths=paths,
+        level=float(h), unit=unit, paths=paths,
+        flooded_area_m2=flooded_area, flooded_volume_m3=flooded_volume,
+        shielded_area_m2=shielded_area, shielded_volume_m3=shielded_volume,
         depressions_overtopped=int(np.count_nonzero(states == DEPRESSION_OVERTOPPED)),
         depressions_cut_off=int(np.count_nonzero(states == DEPRESSION_CUT_OFF)),
         depressions_dry=int(np.count_nonzero(states == DEPRESSION_DRY)),
@@ -617,39 +482,34 @@ def unique_levels(levels: Sequence) -> np.ndarray:
 
 
 def write_stage_results(
-    result: "SpillResult",
-    dem: "DEM",
+    source: "ResultSource",
     out_dir: str | os.PathLike,
     *,
     levels: Sequence = (),
     table_levels=None,
+    window: int | None = None,
     progress: geotiff.Progress | None = None,
 ) -> StageFiles:
     """Write the files of every level in ``levels`` and, if ``table_levels`` is
     given, ``stage_table.csv`` at those levels (e.g. from :func:`sillmark.products.stage.stage_levels`).
 
     Levels equal at float32 precision are written once; levels are written in
-    ascending order. One pair of map buffers serves every level.
+    ascending order.
     """
-    _check_result(result, dem)
-    crs.horizontal_crs(dem)
+    crs.horizontal_crs(source.grid)
     unique = unique_levels(levels) if len(levels) else np.empty(0, np.float32)
     if table_levels is not None:
         table_levels = unique_levels(table_levels)
     if not len(unique) and table_levels is None:
         raise InvalidParameter("give at least one water level or the levels of a stage table")
     folder = _out_folder(out_dir)
-    shape = dem.elevation.shape
-    buffers = (np.empty(shape, np.uint8), np.empty(shape, np.float32)) if len(unique) else None
-    written = tuple(
-        write_level(result, dem, h, folder, out=buffers, progress=progress) for h in unique
-    )
+    written = tuple(write_level(source, h, folder, window=window, progress=progress) for h in unique)
     table = table_path = None
     if table_levels is not None:
         if progress is not None:
             progress(STAGE_TABLE_NAME, 0, 1)
-        table = stage_table(result, table_levels, row_areas=dem.row_areas, unit=_unit(dem))
-        table_path = write_stage_table_csv(result, dem, table, folder / STAGE_TABLE_NAME)
+        table = stage_table(source, table_levels)
+        table_path = write_stage_table_csv(source, table, folder / STAGE_TABLE_NAME)
         if progress is not None:
             progress(STAGE_TABLE_NAME, 1, 1)
     return StageFiles(levels=written, table=table, table_path=table_path)

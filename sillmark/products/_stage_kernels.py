@@ -80,43 +80,48 @@ def _first_above(levels, value):
     return lo
 
 
-def _stage_bins(onset, elevation, row_areas, levels, n_chunks):
-    """Per-level increments of flooded and shielded area and area-weighted elevation.
+def _add_stage_bins(onset, elevation, row_areas, levels, first_row, rows_per_chunk,
+                    flood_a, flood_z, shield_a, shield_z):
+    """Add one block of rows to the per-level increments of the stage table.
 
     A cell of onset stage ``s`` and elevation ``z`` is flooded at every level
     index ``k >= first_at_least(s)`` and shielded for ``first_above(z) <= k <
     first_at_least(s)``. Adding its area (and area x z) where each range starts,
     and subtracting where it ends, lets cumulative sums over the level axis give
     every level's totals from one pass over the cells.
+
+    Row ``first_row + i`` of the grid adds into accumulator row ``(first_row +
+    i) // rows_per_chunk``; inside an accumulator row cells are added in raster
+    order. The accumulator rows are filled in parallel. So the sums are the
+    same bits however the grid is cut into blocks, as long as the blocks come
+    in raster order: one block of the whole grid in memory, or blocks read one
+    by one from a file.
     """
     rows, cols = onset.shape
-    n = levels.shape[0] + 1
-    flood_a = np.zeros((n_chunks, n), np.float64)
-    flood_z = np.zeros((n_chunks, n), np.float64)
-    shield_a = np.zeros((n_chunks, n), np.float64)
-    shield_z = np.zeros((n_chunks, n), np.float64)
-    per = (rows + n_chunks - 1) // n_chunks
-    for chunk in prange(n_chunks):
-        for r in range(chunk * per, min(rows, (chunk + 1) * per)):
-            a = row_areas[r]
+    first_chunk = first_row // rows_per_chunk
+    last_chunk = (first_row + rows - 1) // rows_per_chunk
+    for chunk in prange(first_chunk, last_chunk + 1):
+        lo = max(0, chunk * rows_per_chunk - first_row)
+        hi = min(rows, (chunk + 1) * rows_per_chunk - first_row)
+        for i in range(lo, hi):
+            a = row_areas[i]
             for c in range(cols):
-                s = onset[r, c]
+                s = onset[i, c]
                 if np.isnan(s):
                     continue
-                z = np.float64(elevation[r, c])
+                z = np.float64(elevation[i, c])
                 ks = _first_at_least(levels, s)
                 flood_a[chunk, ks] += a
                 flood_z[chunk, ks] += a * z
-                kz = _first_above(levels, elevation[r, c])
+                kz = _first_above(levels, elevation[i, c])
                 if kz < ks:
                     shield_a[chunk, kz] += a
                     shield_z[chunk, kz] += a * z
                     shield_a[chunk, ks] -= a
                     shield_z[chunk, ks] -= a * z
-    return flood_a.sum(axis=0), flood_z.sum(axis=0), shield_a.sum(axis=0), shield_z.sum(axis=0)
 
 
 water_level_map = njit(parallel=True, cache=True)(_water_level_map)
 _first_at_least = njit(inline="always", cache=True)(_first_at_least)
 _first_above = njit(inline="always", cache=True)(_first_above)
-stage_bins = njit(parallel=True, cache=True)(_stage_bins)
+add_stage_bins = njit(parallel=True, cache=True)(_add_stage_bins)

@@ -1,53 +1,184 @@
-"""Outlines of depressions: one (Multi)Polygon per depression from the id raster.
+"""Outlines of labelled cells (depressions, the flooded ground at a level), window by window.
+
+A label raster is read one square window at a time, from a result source or a
+file:
+
+1. Each window is vectorised with :func:`rasterio.features.shapes` (GDAL's
+   polygonizer; 4-connected regions, cell edges as outlines) on the grid's
+   *cell* coordinates (column, row), so every vertex is an exact small integer.
+2. A region that crosses a window edge comes out as several pieces, one per
+   window. Pieces that touch an interior window edge are joined per label with
+   a polygon union (:func:`shapely.union_all`); on integer coordinates and
+   axis-parallel edges the union is exact. The vertices the window edges add
+   along straight runs are dropped (:func:`shapely.simplify` with tolerance 0
+   removes exactly the collinear ones), so each outline has the corners GDAL
+   gives the whole raster, and no others.
+3. The cell coordinates are mapped to the CRS with the grid's transform,
+   computed as GDAL computes it (``x = c + a*col + b*row``, ``y = f + d*col +
+   e*row``), so the vertices are the same floating-point numbers whatever the
+   window size: a result in memory is outlined in one window, a folder on disk
+   in many, with the same outlines.
+
+A depression whose cells meet only at corners (possible with 8-connectivity)
+comes out as a MultiPolygon, the union of its pieces.
+
+Memory: one window of the raster and its mask, plus the outlines themselves.
+
+References
+----------
+GDAL ``GDALPolygonize`` (the raster-to-polygon algorithm behind
+:func:`rasterio.features.shapes`), https://gdal.org/api/gdal_alg.html.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable, Iterator
 from typing import TYPE_CHECKING
 
 import numpy as np
-import rasterio
 import rasterio.features
-import rasterio.windows
 import shapely
 import shapely.geometry
+from affine import Affine
 
 from sillmark.errors import InvalidParameter
-from sillmark.grid.dem import check_layers_on_grid
+from sillmark.products.source import ArraySource, ResultSource
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
     from sillmark.grid.dem import DEM
 
+__all__ = ["DEFAULT_WINDOW", "depression_outlines", "depression_polygons", "label_outlines"]
+
+#: Side of the square windows read at a time, in cells: 2048 x 2048 int32 cells
+#: are 16 MB, and a multiple of the result GeoTIFFs' 256-cell tiles.
+DEFAULT_WINDOW = 2048
+
+#: ``select(block) -> (mask, values)``: which cells of a window are outlined
+#: (bool) and the label of each (int32), as :func:`rasterio.features.shapes` takes them.
+Select = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
+
+
+def _window_size(window) -> int:
+    if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or int(window) < 1:
+        raise InvalidParameter(f"the outline window must be a whole number of cells, 1 or more, not {window!r}")
+    return int(window)
+
+
+def _windows(rows: int, cols: int, size: int) -> Iterator[tuple[int, int, int, int]]:
+    for r0 in range(0, rows, size):
+        for c0 in range(0, cols, size):
+            yield r0, min(rows, r0 + size), c0, min(cols, c0 + size)
+
+
+def _joined(interior: list, edge: list):
+    """One label's outline from its pieces: edge pieces joined, collinear vertices dropped."""
+    parts = list(interior)
+    if len(edge) == 1:
+        parts.extend(edge)
+    elif edge:
+        union = shapely.simplify(shapely.union_all(edge), 0.0)
+        parts.extend(union.geoms if union.geom_type == "MultiPolygon" else [union])
+    # The parts are distinct 4-connected regions of one label, meeting at most
+    # at corners: their MultiPolygon is already their union (and valid).
+    return parts[0] if len(parts) == 1 else shapely.geometry.MultiPolygon(parts)
+
+
+def _cell_to_crs(transform: Affine):
+    a, b, c, d, e, f = (float(v) for v in transform[:6])
+
+    def to_crs(xy: np.ndarray) -> np.ndarray:
+        col, row = xy[:, 0], xy[:, 1]
+        # The order of GDAL's geotransform: the same bits as rasterio.features.shapes.
+        return np.column_stack([c + a * col + b * row, f + d * col + e * row])
+
+    return to_crs
+
+
+#: ``read(r0, r1, c0, c1)``: a window of the label raster.
+ReadWindow = Callable[[int, int, int, int], np.ndarray]
+
+
+def label_outlines(read: ReadWindow, shape: tuple[int, int], transform: Affine, select: Select, *,
+                   window: int = DEFAULT_WINDOW) -> dict:
+    """Outline every label of a raster, window by window.
+
+    Parameters
+    ----------
+    read : callable
+        ``read(r0, r1, c0, c1)`` gives rows ``r0:r1`` and columns ``c0:c1`` of the raster.
+    shape : (rows, cols)
+    transform : affine.Affine
+        The raster's grid-to-CRS transform.
+    select : callable
+        ``select(block) -> (mask, values)`` for each window ``block``: the cells
+        to outline and their int32 labels.
+    window : int, keyword-only
+        Side of the windows read at a time, in cells.
+
+    Returns
+    -------
+    dict
+        label -> shapely Polygon or MultiPolygon in the raster's CRS, one entry
+        per label that has cells.
+    """
+    size = _window_size(window)
+    rows, cols = shape
+    interior: dict[int, list] = {}
+    edge: dict[int, list] = {}
+    for r0, r1, c0, c1 in _windows(rows, cols, size):
+        mask, values = select(read(r0, r1, c0, c1))
+        if not mask.any():
+            continue
+        values = np.ascontiguousarray(values, dtype=np.int32)
+        cells = Affine.translation(c0, r0)  # x = column, y = row: exact integers
+        for geom, value in rasterio.features.shapes(values, mask=mask, connectivity=4, transform=cells):
+            piece = shapely.geometry.shape(geom)
+            x0, y0, x1, y1 = piece.bounds
+            touches = ((x0 == c0 and c0 > 0) or (x1 == c1 and c1 < cols)
+                       or (y0 == r0 and r0 > 0) or (y1 == r1 and r1 < rows))
+            (edge if touches else interior).setdefault(int(value), []).append(piece)
+    to_crs = _cell_to_crs(transform)
+    out = {}
+    for label in sorted(set(interior) | set(edge)):
+        outline = _joined(interior.get(label, []), edge.get(label, []))
+        out[label] = shapely.transform(outline, to_crs)
+    return out
+
+
+def depression_outlines(source: ResultSource, *, window: int | None = None) -> list:
+    """One outline per depression of ``source``; index ``k`` is id ``k+1``.
+
+    ``window`` defaults to the whole grid for a result in memory
+    (:class:`~sillmark.products.source.ArraySource`) and to
+    :data:`DEFAULT_WINDOW` otherwise.
+
+    Raises
+    ------
+    InvalidParameter
+        A depression of the table has no cell in the id raster.
+    """
+    count = len(source.spill_elevation)
+    shape = tuple(source.grid.shape)
+    if window is None:
+        window = max(shape) if isinstance(source, ArraySource) else DEFAULT_WINDOW
+
+    def select(block: np.ndarray):
+        return block > 0, block
+
+    def read(r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        return source.window("depression_id", r0, r1, c0, c1)
+
+    outlines = label_outlines(read, shape, source.grid.transform, select, window=window) if count else {}
+    missing = [k for k in range(1, count + 1) if k not in outlines]
+    if missing:
+        raise InvalidParameter(
+            f"depression {missing[0]} has no cells in the id raster; the result's "
+            "files do not belong together: run the analysis again"
+        )
+    return [outlines[k] for k in range(1, count + 1)]
+
 
 def depression_polygons(result: "SpillResult", dem: "DEM") -> list:
-    """One shapely (Multi)Polygon per depression, in the DEM's CRS; index ``k`` is id ``k+1``.
-
-    The whole id raster is vectorised once (:func:`rasterio.features.shapes`,
-    4-connected, cell edges as outlines); a depression whose cells meet only at
-    corners (possible with 8-connectivity) comes out as a MultiPolygon, the
-    union of its pieces.
-
-    Notes
-    -----
-    Memory: a boolean mask of the grid (1 byte per cell) plus the vertices of the
-    outlines.
-    """
-    check_layers_on_grid(dem, depression_id=result.depression_id)
-    ids = np.ascontiguousarray(result.depression_id, dtype=np.int32)
-    n = len(result.depressions)
-    pieces: list[list] = [[] for _ in range(n)]
-    if n:
-        for geom, value in rasterio.features.shapes(
-            ids, mask=ids > 0, connectivity=4, transform=dem.transform
-        ):
-            pieces[int(value) - 1].append(shapely.geometry.shape(geom))
-    out = []
-    for k, parts in enumerate(pieces):
-        if not parts:
-            raise InvalidParameter(f"depression {k + 1} has no cells in the id raster")
-        # The pieces are distinct 4-connected regions of one value, so their
-        # interiors are disjoint and they meet at most at corners: the
-        # MultiPolygon of them is already their union (and valid).
-        out.append(parts[0] if len(parts) == 1 else shapely.geometry.MultiPolygon(parts))
-    return out
+    """:func:`depression_outlines` of a result held in memory, outlined in one window."""
+    return depression_outlines(ArraySource(dem, result))

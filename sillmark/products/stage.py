@@ -11,6 +11,11 @@ against level for many levels from one pass over the cells (each cell adds its
 area where its flooded or shielded range of levels begins and removes it where
 the range ends; cumulative sums over the level axis finish the job), so its
 cost does not grow with the number of levels beyond a binary search per cell.
+
+The stage table and the block-by-block map are written once against a result
+source (:mod:`sillmark.products.source`): arrays in memory, or a results folder
+read block by block. :func:`water_level_map` classifies a whole grid held in
+memory at once, for the web app's map tiles.
 """
 
 from __future__ import annotations
@@ -20,9 +25,10 @@ import math
 
 import numpy as np
 
-from sillmark.products import _stage_kernels
-from sillmark.errors import InvalidParameter
 from sillmark.engine.flood import SpillResult
+from sillmark.errors import InvalidParameter
+from sillmark.products import _stage_kernels
+from sillmark.products.source import ResultSource, rows
 from sillmark.units import VerticalUnit
 
 #: Cell classes of a water-level map.
@@ -155,19 +161,58 @@ def water_level_map(
     )
 
 
-def stage_levels(result: SpillResult, *, step, start=None, stop=None) -> np.ndarray:
+def level_blocks(source: "ResultSource", level) -> "LevelBlocks":
+    """The water-level map at ``level``, classified one block of rows at a time (see :class:`LevelBlocks`)."""
+    return LevelBlocks(source, checked_level(level))
+
+
+class LevelBlocks:
+    """The water-level map of a result source at one level, made block by block.
+
+    :meth:`classify` gives rows ``r0:r1`` of the state and depth rasters with
+    the kernel of :func:`water_level_map` and keeps each row's totals, so that
+    after a pass over every row :attr:`totals` are the map's flooded and
+    shielded area and volume. A writer asks for the blocks it writes; nothing
+    holds the whole map.
+    """
+
+    def __init__(self, source: "ResultSource", level: np.float32) -> None:
+        self.source = source
+        self.level = np.float32(level)
+        self.unit = source.unit
+        self.areas = np.ascontiguousarray(source.grid.row_areas, dtype=np.float64)
+        self.sums = np.zeros((source.grid.shape[0], 4), np.float64)
+
+    def classify(self, r0: int, r1: int) -> tuple[np.ndarray, np.ndarray]:
+        """(state, depth) of rows ``r0:r1``: uint8 classes and float32 depth (NaN off the water)."""
+        s = np.ascontiguousarray(rows(self.source, "onset_stage", r0, r1), dtype=np.float32)
+        z = np.ascontiguousarray(rows(self.source, "elevation", r0, r1), dtype=np.float32)
+        state = np.empty(s.shape, np.uint8)
+        depth = np.empty(s.shape, np.float32)
+        _stage_kernels.water_level_map(s, z, self.areas[r0:r1], self.level, depth, state, self.sums[r0:r1])
+        return state, depth
+
+    @property
+    def totals(self) -> tuple[float, float, float, float]:
+        """Flooded area (m²) and volume (m³), shielded area and volume, of the rows classified."""
+        total = self.sums.sum(axis=0)
+        return (float(total[0]), float(total[1]) * self.unit.metres,
+                float(total[2]), float(total[3]) * self.unit.metres)
+
+
+def stage_levels(source: "ResultSource", *, step, start=None, stop=None) -> np.ndarray:
     """Levels from ``start`` (default: the lowest onset stage, i.e. the lowest
     outlet) to ``stop`` (default: the highest spill elevation, or the highest
     onset stage when there is no depression) every ``step``."""
     step = float(checked_level(step))
     if step <= 0:
         raise InvalidParameter(f"the level step must be positive, not {step}")
-    s = result.onset_stage
+    low, high = source.onset_range
     if start is None:
-        start = float(np.nanmin(s))
+        start = low
     if stop is None:
-        spills = result.depressions.spill_elevation
-        stop = float(spills.max()) if len(spills) else float(np.nanmax(s))
+        spills = source.spill_elevation
+        stop = float(spills.max()) if len(spills) else high
     start, stop = float(checked_level(start)), float(checked_level(stop))
     if stop < start:
         raise InvalidParameter(f"the top level {stop} is below the bottom level {start}")
@@ -183,28 +228,35 @@ def stage_levels(result: SpillResult, *, step, start=None, stop=None) -> np.ndar
     return levels.astype(np.float32)
 
 
-def stage_table(
-    result: SpillResult,
-    levels,
-    *,
-    row_areas=None,
-    unit: VerticalUnit | str = VerticalUnit.METRE,
-) -> StageTable:
+#: Accumulator rows of the stage table's binning pass: the grid's rows are cut
+#: into this many runs, each summed on its own (in parallel), then the runs are
+#: added. Fixed, so the figures do not depend on the machine.
+STAGE_TABLE_CHUNKS = 2
+
+
+def stage_table(source: "ResultSource", levels) -> StageTable:
     """Flooded and shielded area and volume at each of ``levels`` (ascending).
 
     Exact for the DEM: the same totals as :func:`water_level_map` at each
-    level, from one pass over the cells whatever the number of levels.
+    level, from one pass over the cells whatever the number of levels, block by
+    block in raster order; the sums are the same bits for any blocks (see
+    :func:`sillmark.products._stage_kernels.add_stage_bins`).
     """
-    unit = VerticalUnit.parse(unit)
-    areas = _check_areas(result, row_areas)
     lv = np.asarray([checked_level(v) for v in np.atleast_1d(np.asarray(levels, dtype=object))],
                     dtype=np.float32)
     if lv.size == 0:
         raise InvalidParameter("give at least one water level")
     if np.any(np.diff(lv) <= 0):
         raise InvalidParameter("water levels must be strictly ascending")
-    return stage_table_from_bins(lv, unit, *_stage_kernels.stage_bins(result.onset_stage, result.elevation,
-                                                          areas, lv, 2))
+    n_rows = source.grid.shape[0]
+    per = (n_rows + STAGE_TABLE_CHUNKS - 1) // STAGE_TABLE_CHUNKS
+    acc = [np.zeros((STAGE_TABLE_CHUNKS, lv.size + 1), np.float64) for _ in range(4)]
+    areas = np.ascontiguousarray(source.grid.row_areas, dtype=np.float64)
+    for r0, r1 in source.blocks():
+        s = np.ascontiguousarray(rows(source, "onset_stage", r0, r1), dtype=np.float32)
+        z = np.ascontiguousarray(rows(source, "elevation", r0, r1), dtype=np.float32)
+        _stage_kernels.add_stage_bins(s, z, areas[r0:r1], lv, np.int64(r0), np.int64(per), *acc)
+    return stage_table_from_bins(lv, source.unit, *(a.sum(axis=0) for a in acc))
 
 
 def stage_table_from_bins(lv: np.ndarray, unit: VerticalUnit, fa, fz, sa, sz) -> StageTable:
@@ -213,7 +265,7 @@ def stage_table_from_bins(lv: np.ndarray, unit: VerticalUnit, fa, fz, sa, sz) ->
     ``fa``/``sa``: area (m²) whose flooded / shielded range starts (+) or ends (-)
     at each level bin; ``fz``/``sz``: the same weighted by elevation. Their
     running sums give the area at each level, and ``h * area - sum(area * z)`` the
-    volume. Shared by the in-memory and the out-of-core stage tables.
+    volume. 
     """
     h = lv.astype(np.float64)
     flooded_area = np.cumsum(fa)[:-1]
@@ -236,7 +288,7 @@ DEPRESSION_CUT_OFF = "below level, cut off"
 DEPRESSION_OVERTOPPED = "overtopped"
 
 
-def depression_states(result: SpillResult, level) -> tuple[np.ndarray, np.ndarray]:
+def depression_states(depressions, level) -> tuple[np.ndarray, np.ndarray]:
     """State of every depression at outlet water level ``level``, and its freeboard.
 
     A depression is *dry* while the level is at or below its pit, *below level,
@@ -244,9 +296,12 @@ def depression_states(result: SpillResult, level) -> tuple[np.ndarray, np.ndarra
     of its ground is below the water, but no surface path reaches it), and
     *overtopped* once the level reaches its spill elevation (filled from the
     outlets). Freeboard is ``spill_elevation - level`` (negative once overtopped).
+
+    ``depressions`` is anything with ``pit_elevation`` and ``spill_elevation``
+    arrays: a :class:`~sillmark.engine.flood.DepressionTable` or a result source.
     """
     h = checked_level(level)
-    t = result.depressions
+    t = depressions
     states = np.where(
         t.spill_elevation <= h,
         DEPRESSION_OVERTOPPED,

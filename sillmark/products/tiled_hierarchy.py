@@ -100,7 +100,7 @@ from sillmark.io import hierarchy_files as hx
 from sillmark.io.summary import FILE_NAMES, read_summary
 from sillmark.products import _tiled_hierarchy_kernels
 from sillmark.products.hierarchy import HierarchyTable, _hierarchy_of_cells
-from sillmark.products.tiled_stage import open_result_folder, read_depression_columns
+from sillmark.io.results_folder import open_result_folder, read_depression_columns
 from sillmark.units import VerticalUnit
 
 __all__ = [
@@ -371,7 +371,7 @@ def write_tiled_hierarchy(
         The DEM the folder was computed from, when the caller has it open
         (right after the analysis). Without it the DEM named in
         ``summary.json`` is opened and checked block by block against the
-        folder's ``fill_depth.tif`` (:func:`sillmark.products.tiled_stage.open_result_folder`).
+        folder's ``fill_depth.tif`` (:func:`sillmark.io.results_folder.open_result_folder`).
     band : int, optional, keyword-only
         Band of the DEM, without ``grid``.
     window_cells : int, keyword-only

@@ -19,6 +19,7 @@ from flask import Blueprint, abort, jsonify, request, send_file, url_for
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
 from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
+from sillmark.products.source import ArraySource
 from sillmark.io.stage_files import (
     level_file_names,
     level_label,
@@ -252,7 +253,7 @@ def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
                     shutil.rmtree(tmp)
                 tmp.mkdir(parents=True)
                 with data._engine_lock:
-                    write_level(data.result, data.dem, level, tmp)
+                    write_level(ArraySource(data.dem, data.result), level, tmp)
                 if placed is not None:
                     table = data.asset_table(key, placed, level)
                     write_assets_csv(table, tmp / f"assets_{label}.csv")
@@ -327,7 +328,7 @@ def stage_table_csv(site_id: int):
     if not path.is_file():
         with _lock_for((site_id, data.run_id, "stage_table")):
             if not path.is_file():
-                write_stage_table_csv(data.result, data.dem, data.stage_table, path)
+                write_stage_table_csv(ArraySource(data.dem, data.result), data.stage_table, path)
     return send_file(path, mimetype="text/csv", as_attachment=True, download_name="stage_table.csv",
                      max_age=0)
 

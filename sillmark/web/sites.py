@@ -41,6 +41,7 @@ from sillmark.grid.outlets import build_outlets
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets, raise_sill, read_assets
 from sillmark.products.hierarchy import site_hierarchy
+from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
     DEPRESSION_CUT_OFF,
     DEPRESSION_OVERTOPPED,
@@ -627,7 +628,7 @@ class SiteData:
                     self._buffers = (np.empty(shape, np.uint8), np.empty(shape, np.float32))
                 wm = water_level_map(self.result, level, row_areas=self.dem.row_areas,
                                      unit=self.unit, out=self._buffers)
-            states, _ = depression_states(self.result, level)
+            states, _ = depression_states(self.result.depressions, level)
             base = {
                 "level": float(level),
                 "unit": self.unit.value,
@@ -677,7 +678,7 @@ class SiteData:
         levels = np.arange(math.floor(lo / step) * step, hi + step * 0.5, step, dtype=np.float64)
         levels = np.unique(levels.astype(np.float32))
         with self._engine_lock:
-            return stage_table(self.result, levels, row_areas=self.dem.row_areas, unit=self.unit)
+            return stage_table(ArraySource(self.dem, self.result), levels)
 
     @functools.cached_property
     def stage_chart(self) -> dict:

@@ -4,7 +4,7 @@
 is read. For a DEM of more than ``TILED_ABOVE_CELLS`` cells (see
 :mod:`sillmark.web.config`; the value travels with the run's settings) it runs
 :func:`sillmark.engine.tiled.analyse_tiled` on the DEM file instead of the in-memory
-engine, adds the depression outlines (:mod:`sillmark.products.tiled_outlines`) and the
+engine, adds the depression outlines (:func:`sillmark.io.results_folder.add_depression_outlines`) and the
 three depression-hierarchy files (:mod:`sillmark.products.tiled_hierarchy`, in windows
 of depressions), and reads the written GeoTIFFs back into the
 :class:`~sillmark.engine.flood.SpillResult` the viewer stores
@@ -36,7 +36,7 @@ from sillmark.grid.dem import read_dem_grid
 from sillmark.engine.flood import SpillResult
 from sillmark.engine.tiled import analyse_tiled
 from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
-from sillmark.products.tiled_outlines import add_depression_outlines
+from sillmark.io.results_folder import add_depression_outlines
 from sillmark.web import db
 from sillmark.web.config import DEFAULTS
 
