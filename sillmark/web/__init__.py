@@ -24,6 +24,7 @@ from sillmark.errors import LocationOutsideDEM, SillmarkError
 from sillmark.units import VerticalUnit
 from sillmark.web import config as _config
 from sillmark.web import db, layout
+from sillmark.web.exports import ExportCache, ExportSpaceError
 from sillmark.web.jobs import JobRunner
 from sillmark.web.mapview import online_base_layer
 from sillmark.web.render import TileIndexCache
@@ -62,6 +63,7 @@ class Services:
     cache: SiteCache
     tiles: TileIndexCache
     runner: JobRunner
+    exports: ExportCache
 
 
 def services():
@@ -80,6 +82,8 @@ def error_status(exc: SillmarkError) -> int:
         return 404
     if isinstance(exc, SiteNotReady):
         return 409
+    if isinstance(exc, ExportSpaceError):
+        return 507
     return 400
 
 
@@ -141,6 +145,7 @@ def create_app(test_config: dict | None = None) -> Flask:
         cache=SiteCache(data_dir, int(app.config["SITE_CACHE_SIZE"]), int(app.config["LEVEL_CACHE"])),
         tiles=TileIndexCache(int(app.config["TILE_INDEX_CACHE"])),
         runner=runner,
+        exports=ExportCache(data_dir, int(app.config["LEVEL_EXPORT_CACHE_BYTES"])),
     )
 
     from sillmark.web import api, auth, pages, tiles, uploads

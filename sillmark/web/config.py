@@ -53,6 +53,10 @@ DEFAULTS: dict = {
     "SITE_CACHE_SIZE": 4,  # sites whose arrays are held open
     "TILE_INDEX_CACHE": 768,  # tiles whose pixel-to-cell lookup is kept (256 KiB each)
     "LEVEL_CACHE": 256,  # water levels whose figures are kept per site
+    # Disk space kept for the downloads of water levels (each level asked for is
+    # written once into a folder of its own), in bytes, over all sites; past it the
+    # folders used least recently are removed (and written again when asked for).
+    "LEVEL_EXPORT_CACHE_BYTES": 1 * 2**30,
     # Ask for a token on every state-changing request (forms and XHR).
     "CSRF_ENABLED": True,
     # Tiles: how long browsers may keep a tile (seconds); the run id in the
