@@ -11,14 +11,22 @@ few hundred KB); the full disk is a small tmpfs in a private mount namespace
 from __future__ import annotations
 
 import io
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
 import zipfile
 from pathlib import Path
 
 import pytest
 
-from tests.test_web_crash import needs_mounts, scenario
+from tests.test_web_crash import (KILL_PHASE, free_port, harrowmere_tif, needs_mounts, run_row,  # noqa: F401
+                                   scenario, wait_for)
 from tests.web_support import Client, analysed_site, make_app
-from sillmark.web import layout
+from sillmark.web import db, layout
+from sillmark.web.jobs import REQUEUED_PHASE, _pid_alive
 from sillmark.web.exports import folder_bytes
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -108,3 +116,102 @@ def test_a_level_export_on_a_full_disk_is_refused_with_507_and_leaves_nothing(tm
     assert got["stage_status"] == 200
     assert got["after_freeing"] == 200
 
+
+
+# --------------------------------------------------------------------------- workers end with their server
+
+
+def _serve(data: Path) -> subprocess.Popen:
+    return subprocess.Popen(
+        [sys.executable, "-m", "sillmark", "serve", "--data", str(data), "--port", str(free_port())],
+        cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, start_new_session=True)
+
+
+def _worker_of(db_path: Path, run_id: int, other_than: int | None = None) -> int:
+    row = wait_for(lambda: (lambda r: r if r["phase"] == KILL_PHASE and r["worker_pid"]
+                            and int(r["worker_pid"]) != other_than else None)(run_row(db_path, run_id)),
+                   180, f"run {run_id} to write its results")
+    return int(row["worker_pid"])
+
+
+def test_a_worker_ends_with_its_killed_server_and_with_the_next_server_stopped(tmp_path, harrowmere_tif):
+    """`sillmark serve` alone (not its process group) is killed with SIGKILL while its worker
+    writes results: the worker ends too. The next server runs the run again in a worker of
+    its own, and stopping that server (SIGTERM, as a service manager does) ends its worker
+    and queues the run again."""
+    data = tmp_path / "data"
+    app = make_app(data, MAX_DEM_CELLS=10**8)  # inline: analyse once, then queue a re-run
+    client = Client(app)
+    site_id = analysed_site(client, harrowmere_tif, assets=False)
+    svc = app.extensions["sillmark"]
+    conn = db.connect(svc.db_path)
+    try:
+        run_id = svc.registry.rerun(conn, site_id)
+    finally:
+        conn.close()
+    (data / "config.py").write_text("REGISTER_DEMO = False\nMAX_DEM_CELLS = 10**8\n")
+    db_path = svc.db_path
+    del app, client
+
+    first = _serve(data)
+    try:
+        worker = _worker_of(db_path, run_id)
+        os.kill(first.pid, signal.SIGKILL)  # the server only: its worker is not signalled
+        first.wait(10)
+        wait_for(lambda: not _pid_alive(worker), 10, "the worker of the killed server to end")
+    finally:
+        if first.poll() is None:  # pragma: no cover - only if the test failed above
+            os.killpg(first.pid, signal.SIGKILL)
+        first.stderr.close()
+    assert run_row(db_path, run_id)["status"] == db.RUNNING  # nobody recorded its end
+
+    second = _serve(data)
+    try:
+        worker2 = _worker_of(db_path, run_id, other_than=worker)
+        second.send_signal(signal.SIGTERM)
+        assert second.wait(30) is not None
+        wait_for(lambda: not _pid_alive(worker2), 10, "the worker of the stopped server to end")
+    finally:
+        if second.poll() is None:  # pragma: no cover
+            os.killpg(second.pid, signal.SIGKILL)
+        second.stderr.close()
+    row = run_row(db_path, run_id)
+    assert row["status"] == db.QUEUED and row["phase"] == REQUEUED_PHASE, dict(row)
+
+
+def test_end_with_parent_kills_a_process_whose_parent_is_gone(tmp_path):
+    """The fallback guard alone (no prctl): a grandchild whose parent exits ends within a second."""
+    orphan = tmp_path / "orphan.py"
+    orphan.write_text(textwrap.dedent(f"""
+        import os, sys, time
+        sys.path.insert(0, {str(ROOT)!r})
+        import sillmark.web.jobs as jobs
+        jobs.sys.platform = "other"  # the getppid watch only
+        jobs.end_with_parent(os.getppid(), every=0.1)
+        print(os.getpid(), flush=True)
+        time.sleep(60)
+    """))
+    parent = tmp_path / "parent.py"
+    parent.write_text(textwrap.dedent(f"""
+        import os, subprocess, sys
+        child = subprocess.Popen([sys.executable, {str(orphan)!r}], stdout=subprocess.PIPE,
+                                 stderr=subprocess.DEVNULL, text=True)
+        print(child.stdout.readline().strip(), flush=True)
+        os._exit(0)  # the parent goes without waiting
+    """))
+    out = subprocess.run([sys.executable, str(parent)], capture_output=True, text=True, timeout=60,
+                         cwd=ROOT)
+    pid = int(out.stdout.strip().splitlines()[-1])
+    wait_for(lambda: not _pid_alive_at_all(pid), 10, "the orphan to end")
+
+
+def _pid_alive_at_all(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    try:  # a zombie has ended; only its exit status waits to be collected
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[0] != b"Z"
+    except OSError:
+        return True
