@@ -118,6 +118,131 @@ def test_a_level_export_on_a_full_disk_is_refused_with_507_and_leaves_nothing(tm
 
 
 
+# --------------------------------------------------------------------------- memory of uploads and analyses
+
+#: A flat invented plain of 7500 × 8000 = 60 million cells (the default MAX_DEM_CELLS):
+#: deflate makes the file a few hundred KB, the cells take 240 MB as float32.
+PLAIN_ROWS, PLAIN_COLS = 7500, 8000
+
+
+@pytest.fixture(scope="module")
+def plain_tif(tmp_path_factory) -> Path:
+    import numpy as np
+    import rasterio
+    from rasterio.windows import Window
+
+    from tests.rasters import grid
+
+    path = tmp_path_factory.mktemp("plain") / "plain.tif"
+    profile = {"driver": "GTiff", "width": PLAIN_COLS, "height": PLAIN_ROWS, "count": 1,
+               "dtype": "float32", "crs": "EPSG:32633", "transform": grid(2.0), "tiled": True,
+               "blockxsize": 512, "blockysize": 512, "compress": "deflate"}
+    strip = np.full((500, PLAIN_COLS), 12.5, np.float32)
+    with rasterio.open(path, "w", **profile) as dst:
+        for row in range(0, PLAIN_ROWS, 500):
+            dst.write(strip, 1, window=Window(0, row, PLAIN_COLS, 500))
+    assert path.stat().st_size < 2 * 2**20
+    return path
+
+
+def upload_peak(data: Path, dem: Path, **config) -> dict:
+    """Upload ``dem`` to a fresh app in a fresh interpreter; how much the process's peak
+    resident memory grew during the request (resource.getrusage), and the answer."""
+    script = textwrap.dedent(f"""
+        import json, resource
+        from tests.web_support import Client, make_app, upload_dem
+        from pathlib import Path
+        client = Client(make_app(Path({str(data)!r}), **{config!r}))
+        before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        r = upload_dem(client, Path({str(dem)!r}))
+        after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        print(json.dumps({{"status": r.status_code, "body": r.get_json(),
+                          "grew_kib": after - before}}))
+    """)
+    out = subprocess.run([sys.executable, "-c", script], cwd=ROOT, capture_output=True, text=True,
+                         timeout=300)
+    assert out.returncode == 0, out.stderr[-3000:]
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def test_a_large_compressed_dem_is_read_from_its_header_in_the_upload_request(tmp_path, plain_tif):
+    """Reading the 60-million-cell plain in the request would take over 240 MB (float32 cells
+    alone); its header takes next to nothing. The site's page says the elevations come later."""
+    got = upload_peak(tmp_path / "data", plain_tif)
+    assert got["status"] == 201, got
+    assert got["grew_kib"] < 64 * 1024, got  # under 64 MiB
+    dem = got["body"]["dem"]
+    assert (dem["rows"], dem["cols"], dem["cells"]) == (PLAIN_ROWS, PLAIN_COLS, PLAIN_ROWS * PLAIN_COLS)
+    assert dem["elevation_min"] is None and dem["nodata_share"] is None
+    app = make_app(tmp_path / "data")
+    page = Client(app).get(f"/sites/{got['body']['site_id']}/settings")
+    assert page.status_code == 200
+    assert "read when the analysis runs" in page.get_data(as_text=True)
+
+
+def test_a_small_dem_is_still_read_whole_and_checked_in_the_request(tmp_path, lowbank_tif):
+    got = upload_peak(tmp_path / "data", lowbank_tif)
+    assert got["status"] == 201
+    assert got["body"]["dem"]["elevation_min"] == pytest.approx(9.0)
+    # With UPLOAD_READ_CELLS below its size, only its header is read.
+    got = upload_peak(tmp_path / "data2", lowbank_tif, UPLOAD_READ_CELLS=100)
+    assert got["status"] == 201 and got["body"]["dem"]["elevation_min"] is None
+
+
+def test_a_large_dem_analysed_after_a_header_only_upload_fills_in_its_figures(tmp_path, lowbank_tif):
+    app = make_app(tmp_path / "data", UPLOAD_READ_CELLS=100)
+    client = Client(app)
+    site = analysed_site(client, lowbank_tif, assets=False)
+    dem = client.get(f"/api/sites/{site}").get_json()["dem"]
+    assert dem["elevation_min"] == pytest.approx(9.0) and dem["elevation_max"] == pytest.approx(12.45)
+    assert dem["nodata_share"] == pytest.approx(30 / 2000)
+
+
+def test_analyses_start_only_within_the_memory_budget(tmp_path, lowbank_tif, monkeypatch):
+    """Three queued analyses, three workers, and a memory budget that holds two of them: never
+    more than two run at once, and all three run, in the order they were queued."""
+    import threading
+    import time
+
+    from sillmark.web import jobs
+
+    running: list[int] = []
+    seen: list[int] = []
+    started: list[int] = []
+    guard = threading.Lock()
+
+    def fake_run_job(db_path, data_dir, run_id):
+        with guard:
+            running.append(run_id)
+            started.append(run_id)
+            seen.append(len(running))
+        time.sleep(0.6)
+        conn = db.connect(db_path)
+        try:
+            db.update_run(conn, run_id, status=db.DONE, phase="done", finished_utc=db.utc_now())
+        finally:
+            conn.close()
+        with guard:
+            running.remove(run_id)
+
+    monkeypatch.setattr(jobs, "run_job", fake_run_job)
+    cells = 50 * 40  # the Lowbank DEM
+    app = make_app(tmp_path / "data", JOB_RUNNER="thread", JOB_WORKERS=3,
+                   ANALYSIS_BYTES_PER_CELL=1000, ANALYSIS_MEMORY_BUDGET=int(2.5 * cells * 1000))
+    client = Client(app)
+    try:
+        sites = [client.post("/uploads/dem", data=lowbank_tif.read_bytes(), headers={
+            "Content-Type": "application/octet-stream", "X-File-Name": "lowbank.tif"}).get_json()["site_id"]
+            for _ in range(3)]
+        runs = [client.post(f"/uploads/sites/{s}/settings", data={
+            "vertical_unit": "m", "outlet": ["edge"], "connectivity": "8"}).get_json()["run_id"]
+            for s in sites]
+        wait_for(lambda: len(started) == 3 and not running, 30, "the three analyses")
+    finally:
+        app.extensions["sillmark"].runner.stop()
+    assert max(seen) == 2 and started == runs, (seen, started, runs)
+
+
 # --------------------------------------------------------------------------- workers end with their server
 
 

@@ -137,7 +137,9 @@ def create_app(test_config: dict | None = None) -> Flask:
     db_path = data_dir / layout.DB_NAME
     db.initialise(db_path)
     runner = JobRunner(db_path, data_dir, mode=app.config["JOB_RUNNER"],
-                       workers=int(app.config["JOB_WORKERS"]))
+                       workers=int(app.config["JOB_WORKERS"]),
+                       memory_budget=int(app.config["ANALYSIS_MEMORY_BUDGET"]),
+                       bytes_per_cell=int(app.config["ANALYSIS_BYTES_PER_CELL"]))
     app.extensions["sillmark"] = Services(
         data_dir=data_dir,
         db_path=db_path,

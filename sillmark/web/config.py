@@ -44,8 +44,18 @@ DEFAULTS: dict = {
     # supervised by a thread), "thread" (a thread in the server process) or
     # "inline" (inside the request; for tests).
     "JOB_RUNNER": "process",
-    # Analyses run at the same time.
+    # Analyses run at the same time (at most; see ANALYSIS_MEMORY_BUDGET).
     "JOB_WORKERS": 1,
+    # Memory set aside for the analyses running at the same time, in bytes. A
+    # queued analysis starts only when its estimate (cells × ANALYSIS_BYTES_PER_CELL)
+    # fits beside those running; one larger than the whole budget runs alone.
+    "ANALYSIS_MEMORY_BUDGET": 4 * 2**30,
+    "ANALYSIS_BYTES_PER_CELL": 64,
+    # DEMs of up to this many cells are read whole by the upload request (the page
+    # then shows their elevation range and nodata share, and refuses a DEM without
+    # ground at once); larger ones only from their header, their cells being read
+    # by the analysis worker. Reading takes about 9 bytes a cell at peak.
+    "UPLOAD_READ_CELLS": 4_000_000,
     # Register and analyse the demo site on first start.
     "REGISTER_DEMO": True,
     "DEMO_DIR": str(ROOT / "demo_dem"),

@@ -21,7 +21,9 @@ as one killed together with a server that crashed.
 
 A worker process ends with the server that started it, also a server killed
 outright (:func:`end_with_parent`), so no orphan goes on writing a run that
-the next server queues again.
+the next server queues again. Queued runs start in order, at most
+``JOB_WORKERS`` at once, and only while the memory estimates of those running
+(cells × ``ANALYSIS_BYTES_PER_CELL``) fit in ``ANALYSIS_MEMORY_BUDGET``.
 
 ``JOB_RUNNER = "thread"`` runs the same job body in a thread of the server
 (no process start-up cost); ``"inline"`` runs it inside :meth:`JobRunner.submit`
@@ -153,9 +155,14 @@ class JobRunner:
     """Claims queued runs from SQLite and executes them (see the module docstring)."""
 
     def __init__(self, db_path: Path, data_dir: Path, *, mode: str = "process", workers: int = 1,
-                 poll_seconds: float = 1.0) -> None:
+                 poll_seconds: float = 1.0, memory_budget: int | None = None,
+                 bytes_per_cell: int = 64) -> None:
         if mode not in MODES:
             raise ValueError(f"JOB_RUNNER must be one of {MODES}, not {mode!r}")
+        #: Bytes the running analyses may need together (None: no limit but ``workers``).
+        self.memory_budget = None if memory_budget is None else max(1, int(memory_budget))
+        self.bytes_per_cell = max(1, int(bytes_per_cell))
+        self._need: dict[int, int] = {}  # run id -> its memory estimate, while it runs
         self.db_path = Path(db_path)
         self.data_dir = Path(data_dir)
         self.mode = mode
@@ -267,15 +274,35 @@ class JobRunner:
         finally:
             conn.close()
 
-    def _next_queued(self) -> int | None:
+    def _next_queued(self) -> tuple[int, int] | None:
+        """The oldest queued run and its memory estimate in bytes (cells × bytes per cell)."""
         conn = db.connect(self.db_path)
         try:
             row = conn.execute(
-                "SELECT id FROM runs WHERE status = ? ORDER BY id LIMIT 1", (db.QUEUED,)
+                "SELECT r.id, s.dem_info FROM runs r JOIN sites s ON s.id = r.site_id "
+                "WHERE r.status = ? ORDER BY r.id LIMIT 1", (db.QUEUED,)
             ).fetchone()
-            return None if row is None else int(row["id"])
+            if row is None:
+                return None
+            info = db.loads(row["dem_info"], {}) or {}
+            cells = int(info.get("cells") or 0)
+            return int(row["id"]), cells * self.bytes_per_cell
         finally:
             conn.close()
+
+    def _fits(self, need: int) -> bool:
+        """Whether a run needing ``need`` bytes may start beside those running now.
+
+        Runs start in the order they were queued: a large run at the head of the
+        queue waits for memory rather than being overtaken for ever by small ones.
+        A run larger than the whole budget starts when nothing else runs.
+        """
+        if self.memory_budget is None:
+            return True
+        with self._lock:
+            if not self._active:
+                return True
+            return sum(self._need.values()) + need <= self.memory_budget
 
     def _loop(self) -> None:
         while not self._stop.is_set():
@@ -284,9 +311,14 @@ class JobRunner:
                 with self._lock:
                     free = self.workers - len(self._active)
                 while free > 0 and not self._stop.is_set():
-                    run_id = self._next_queued()
-                    if run_id is None or not self._claim(run_id):
+                    head = self._next_queued()
+                    if head is None or not self._fits(head[1]):
+                        break  # nothing queued, or the next run waits for memory
+                    run_id, need = head
+                    if not self._claim(run_id):
                         break
+                    with self._lock:
+                        self._need[run_id] = need
                     self._launch(run_id)
                     free -= 1
             except Exception:  # pragma: no cover - keep supervising whatever happens
@@ -302,6 +334,7 @@ class JobRunner:
             with self._lock:
                 if self._closing:  # stop() has begun: the next server runs it
                     self._requeue([run_id])
+                    self._need.pop(run_id, None)
                     return
                 proc.start()
             db_conn = db.connect(self.db_path)
@@ -326,6 +359,7 @@ class JobRunner:
             # (it would otherwise queue the killed run again instead).
             with self._lock:
                 self._active.pop(run_id, None)
+                self._need.pop(run_id, None)
             self._wake.set()
 
     def _record_end(self, run_id: int, code: int | None) -> None:
