@@ -35,6 +35,7 @@ from typing import BinaryIO, Callable
 
 from cachetools import LRUCache
 
+from sillmark.errors import InvalidParameter
 from sillmark.web.db import StorageError
 
 log = logging.getLogger("sillmark.exports")
@@ -116,7 +117,9 @@ class ExportCache:
     def __init__(self, data_dir: Path, limit_bytes: int) -> None:
         limit = int(limit_bytes)
         if limit < 1:
-            raise ValueError(f"LEVEL_EXPORT_CACHE_BYTES must be a positive number of bytes, not {limit_bytes!r}")
+            raise InvalidParameter(
+                f"LEVEL_EXPORT_CACHE_BYTES must be a positive number of bytes, not {limit_bytes!r}; "
+                "e.g. LEVEL_EXPORT_CACHE_BYTES = 2**30 (1 GiB) in the data folder's config.py")
         self.data_dir = Path(data_dir)
         self.limit = limit
         self._lock = threading.RLock()
