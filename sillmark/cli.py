@@ -22,6 +22,7 @@ import json
 import math
 import os
 import re
+import signal
 import sys
 import textwrap
 from collections.abc import Sequence
@@ -1388,12 +1389,19 @@ def _run_serve(args: argparse.Namespace) -> int:
               "server (with the access secret); the connection is not encrypted, so put it "
               "behind an HTTPS proxy on an untrusted network", file=sys.stderr, flush=True)
     print("Press Ctrl-C to stop.", flush=True)
+    # SIGTERM (a service manager's stop) ends the server as Ctrl-C does: its analysis
+    # workers are stopped and their runs queued again for the next start.
+    signal.signal(signal.SIGTERM, _exit_on_signal)
     try:
         waitress.serve(app, host=args.host, port=args.port, threads=args.threads,
                        ident="Sillmark", _quiet=True)
     finally:
         services.runner.stop()
     return EXIT_OK
+
+
+def _exit_on_signal(signum, _frame) -> None:
+    raise SystemExit(128 + signum)
 
 
 def _error_text(exc: BaseException) -> str:

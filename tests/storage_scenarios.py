@@ -218,7 +218,41 @@ def read_only_run(work: Path) -> dict:
     return out
 
 
-SCENARIOS = {"full-disk": full_disk, "full-disk-upload": full_disk_upload, "read-only-start": read_only_start, "read-only-run": read_only_run}
+def full_disk_export(work: Path) -> dict:
+    """Level exports asked for when the disk holding the data folder is full."""
+    dem = write_lowbank(work / "lowbank.tif")
+    data = work / "data"
+    data.mkdir()
+    mount("-t", "tmpfs", "-o", "size=16m", "tmpfs", str(data))
+    app = make_app(data)
+    client = Client(app)
+    site_id = analysed_site(client, dem)
+    out: dict = {"data_dir": str(data)}
+
+    def ask(url: str) -> dict:
+        r = client.get(url)
+        return {"status": r.status_code, "error": (r.get_json(silent=True) or {}).get("error")}
+
+    # A new level, with no other export to give up.
+    fill(data, leave=0)
+    out["depth"] = ask(f"/api/sites/{site_id}/files/level/10.75/depth")
+    out["stage_status"] = client.get(f"/api/sites/{site_id}/stage?level=10.75").status_code
+    # The ZIP of a level whose files were written while there was room.
+    for leftover in data.glob("ballast*"):
+        leftover.unlink()
+    assert client.get(f"/api/sites/{site_id}/files/level/11.5/depth").status_code == 200
+    fill(data, leave=0)
+    out["zip"] = ask(f"/api/sites/{site_id}/files/level/11.5.zip")
+    out["hidden_left"] = sorted(str(p.relative_to(data)) for p in data.rglob(".*")
+                                if p.name.endswith(".tmp"))
+    # With room again, the export is written.
+    for leftover in data.glob("ballast*"):
+        leftover.unlink()
+    out["after_freeing"] = client.get(f"/api/sites/{site_id}/files/level/10.75/depth").status_code
+    return out
+
+
+SCENARIOS = {"full-disk-export": full_disk_export, "full-disk": full_disk, "full-disk-upload": full_disk_upload, "read-only-start": read_only_start, "read-only-run": read_only_run}
 
 
 def main(argv: list[str]) -> int:

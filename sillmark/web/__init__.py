@@ -24,6 +24,7 @@ from sillmark.errors import LocationOutsideDEM, SillmarkError
 from sillmark.units import VerticalUnit
 from sillmark.web import config as _config
 from sillmark.web import db, layout
+from sillmark.web.exports import ExportCache, ExportSpaceError
 from sillmark.web.jobs import JobRunner
 from sillmark.web.mapview import online_base_layer
 from sillmark.web.render import TileIndexCache
@@ -62,6 +63,7 @@ class Services:
     cache: SiteCache
     tiles: TileIndexCache
     runner: JobRunner
+    exports: ExportCache
 
 
 def services():
@@ -80,6 +82,8 @@ def error_status(exc: SillmarkError) -> int:
         return 404
     if isinstance(exc, SiteNotReady):
         return 409
+    if isinstance(exc, ExportSpaceError):
+        return 507
     return 400
 
 
@@ -133,7 +137,9 @@ def create_app(test_config: dict | None = None) -> Flask:
     db_path = data_dir / layout.DB_NAME
     db.initialise(db_path)
     runner = JobRunner(db_path, data_dir, mode=app.config["JOB_RUNNER"],
-                       workers=int(app.config["JOB_WORKERS"]))
+                       workers=int(app.config["JOB_WORKERS"]),
+                       memory_budget=int(app.config["ANALYSIS_MEMORY_BUDGET"]),
+                       bytes_per_cell=int(app.config["ANALYSIS_BYTES_PER_CELL"]))
     app.extensions["sillmark"] = Services(
         data_dir=data_dir,
         db_path=db_path,
@@ -141,6 +147,7 @@ def create_app(test_config: dict | None = None) -> Flask:
         cache=SiteCache(data_dir, int(app.config["SITE_CACHE_SIZE"]), int(app.config["LEVEL_CACHE"])),
         tiles=TileIndexCache(int(app.config["TILE_INDEX_CACHE"])),
         runner=runner,
+        exports=ExportCache(data_dir, int(app.config["LEVEL_EXPORT_CACHE_BYTES"])),
     )
 
     from sillmark.web import api, auth, pages, tiles, uploads

@@ -9,7 +9,7 @@ unit; areas in m² and ha, volumes in m³ (and acre-ft for sites in feet).
 from __future__ import annotations
 
 import os
-import shutil
+import secrets
 import threading
 import zipfile
 from pathlib import Path
@@ -27,7 +27,7 @@ from sillmark.io.stage_files import (
     write_stage_table_csv,
 )
 from sillmark.io.summary import FILE_NAMES
-from sillmark.web import db, get_db, layout, render, services
+from sillmark.web import db, exports, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.sites import parse_level, run_dict
 
@@ -237,7 +237,12 @@ def result_file(site_id: int, name: str):
 
 
 def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
-    """The export folder of one level, written on first request (write_level + asset files)."""
+    """The export folder of one level, written on first request (write_level + asset files).
+
+    Kept in the size-bounded export cache (:mod:`sillmark.web.exports`): a folder
+    used least recently may be removed by a later request, and is written again
+    when asked for.
+    """
 
     label = level_label(level, data.unit)
     base = layout.levels_dir(services().data_dir, site_id, data.run_id)
@@ -245,24 +250,39 @@ def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
     tag = f"assets{key[1]}" if key else "noassets"
     folder = base / f"{label}_{tag}"
     names = level_file_names(level, data.unit)
-    if not (folder / ".complete").is_file():
+    cache = services().exports
+    if not cache.known(folder):
         with _lock_for((site_id, data.run_id, label, tag)):
-            if not (folder / ".complete").is_file():
-                tmp = base / f".{label}_{tag}.tmp"
-                if tmp.exists():
-                    shutil.rmtree(tmp)
-                tmp.mkdir(parents=True)
-                with data._engine_lock:
-                    write_level(ArraySource(data.dem, data.result), level, tmp)
-                if placed is not None:
-                    table = data.asset_table(key, placed, level)
-                    write_assets_csv(table, tmp / f"assets_{label}.csv")
-                    write_assets_geojson(table, tmp / f"assets_{label}.geojson")
-                (tmp / ".complete").write_text("ok\n", encoding="ascii")
-                if folder.exists():
-                    shutil.rmtree(folder)
-                os.replace(tmp, folder)
+            if not cache.known(folder):
+
+                def write(tmp: Path) -> None:
+                    with data._engine_lock:
+                        write_level(ArraySource(data.dem, data.result), level, tmp)
+                    if placed is not None:
+                        table = data.asset_table(key, placed, level)
+                        write_assets_csv(table, tmp / f"assets_{label}.csv")
+                        write_assets_geojson(table, tmp / f"assets_{label}.geojson")
+
+                cache.build(folder, write, what=f"the exports at {label}")
     return folder, names
+
+
+def _open_level_export(site_id: int, data, level, name_of) -> tuple[object, str]:
+    """An open export file of one level and its name; ``name_of(folder, names)`` picks it.
+
+    The folder is (re)written if the export cache removed it meanwhile.
+    """
+    for _ in range(3):
+        folder, names = _level_folder(site_id, data, level)
+        name = name_of(folder, names)
+        try:
+            handle = services().exports.open(folder, name)
+        except FileNotFoundError:
+            abort(404, "this site has no assets; upload an asset table first")
+        if handle is not None:
+            return handle, name
+    abort(503, "the level's exports were removed to make room while they were being "
+               "written; ask again")
 
 
 @bp.get("/sites/<int:site_id>/files/level/<level>/<kind>")
@@ -273,16 +293,15 @@ def level_file(site_id: int, level: str, kind: str):
     if kind not in LEVEL_FILES:
         abort(404, f"no level file {kind!r}; choose one of {', '.join(LEVEL_FILES)}")
     _, data = open_site(site_id)
-    folder, names = _level_folder(site_id, data, h)
-
     label = level_label(h, data.unit)
-    name = {"assets_csv": f"assets_{label}.csv", "assets_geojson": f"assets_{label}.geojson"}.get(kind)
-    if name is None:
-        name = getattr(names, kind)
-    path = folder / name
-    if not path.is_file():
-        abort(404, "this site has no assets; upload an asset table first")
-    return send_file(path, mimetype=LEVEL_FILES[kind], as_attachment=True, download_name=name, max_age=0)
+
+    def name_of(_folder, names):
+        name = {"assets_csv": f"assets_{label}.csv", "assets_geojson": f"assets_{label}.geojson"}.get(kind)
+        return getattr(names, kind) if name is None else name
+
+    handle, name = _open_level_export(site_id, data, h, name_of)
+    return send_file(handle, mimetype=LEVEL_FILES[kind], as_attachment=True, download_name=name,
+                     max_age=0)
 
 
 @bp.get("/sites/<int:site_id>/files/level/<level>.zip")
@@ -291,21 +310,33 @@ def level_zip(site_id: int, level: str):
 
     h = parse_level(level)
     row, data = open_site(site_id)
-    folder, _ = _level_folder(site_id, data, h)
     label = level_label(h, data.unit)
-    path = folder / f"sillmark_site{site_id}_{label}.zip"
-    if not path.is_file():
-        with _lock_for((site_id, data.run_id, folder.name, "zip")):
-            if not path.is_file():  # built once; the others waited for it
-                _write_level_zip(folder, path)
-    return send_file(path, mimetype="application/zip", as_attachment=True, download_name=path.name,
+    cache = services().exports
+
+    def name_of(folder, _names):
+        path = folder / f"sillmark_site{site_id}_{label}.zip"
+        if not path.is_file():
+            with _lock_for((site_id, data.run_id, folder.name, "zip")):
+                if not path.is_file():  # built once; the others waited for it
+                    try:
+                        _write_level_zip(folder, path)
+                    except FileNotFoundError:
+                        return path.name  # the folder was removed meanwhile: open() says so
+                    except OSError as exc:
+                        if exports.out_of_space(exc, folder):
+                            raise cache.space_error(f"the ZIP of the exports at {label}") from None
+                        raise
+                    cache.measure(folder)
+        return path.name
+
+    handle, name = _open_level_export(site_id, data, h, name_of)
+    return send_file(handle, mimetype="application/zip", as_attachment=True, download_name=name,
                      max_age=0)
 
 
 def _write_level_zip(folder: Path, path: Path) -> None:
     """Zip every export of ``folder`` with the caution into ``path``, through a temporary
     file of this call's own (so a second writer can never truncate or move it)."""
-    import secrets
 
     tmp = path.with_name(f".{path.stem}.{secrets.token_hex(6)}.tmp")
     try:

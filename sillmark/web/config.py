@@ -44,8 +44,18 @@ DEFAULTS: dict = {
     # supervised by a thread), "thread" (a thread in the server process) or
     # "inline" (inside the request; for tests).
     "JOB_RUNNER": "process",
-    # Analyses run at the same time.
+    # Analyses run at the same time (at most; see ANALYSIS_MEMORY_BUDGET).
     "JOB_WORKERS": 1,
+    # Memory set aside for the analyses running at the same time, in bytes. A
+    # queued analysis starts only when its estimate (cells × ANALYSIS_BYTES_PER_CELL)
+    # fits beside those running; one larger than the whole budget runs alone.
+    "ANALYSIS_MEMORY_BUDGET": 4 * 2**30,
+    "ANALYSIS_BYTES_PER_CELL": 64,
+    # DEMs of up to this many cells are read whole by the upload request (the page
+    # then shows their elevation range and nodata share, and refuses a DEM without
+    # ground at once); larger ones only from their header, their cells being read
+    # by the analysis worker. Reading takes about 9 bytes a cell at peak.
+    "UPLOAD_READ_CELLS": 4_000_000,
     # Register and analyse the demo site on first start.
     "REGISTER_DEMO": True,
     "DEMO_DIR": str(ROOT / "demo_dem"),
@@ -53,6 +63,10 @@ DEFAULTS: dict = {
     "SITE_CACHE_SIZE": 4,  # sites whose arrays are held open
     "TILE_INDEX_CACHE": 768,  # tiles whose pixel-to-cell lookup is kept (256 KiB each)
     "LEVEL_CACHE": 256,  # water levels whose figures are kept per site
+    # Disk space kept for the downloads of water levels (each level asked for is
+    # written once into a folder of its own), in bytes, over all sites; past it the
+    # folders used least recently are removed (and written again when asked for).
+    "LEVEL_EXPORT_CACHE_BYTES": 1 * 2**30,
     # Ask for a token on every state-changing request (forms and XHR).
     "CSRF_ENABLED": True,
     # Tiles: how long browsers may keep a tile (seconds); the run id in the

@@ -19,6 +19,12 @@ is queued again: :meth:`JobRunner.stop` queues the runs it ends, and
 queues runs left ``running`` by a worker process that no longer exists, such
 as one killed together with a server that crashed.
 
+A worker process ends with the server that started it, also a server killed
+outright (:func:`end_with_parent`), so no orphan goes on writing a run that
+the next server queues again. Queued runs start in order, at most
+``JOB_WORKERS`` at once, and only while the memory estimates of those running
+(cells × ``ANALYSIS_BYTES_PER_CELL``) fit in ``ANALYSIS_MEMORY_BUDGET``.
+
 ``JOB_RUNNER = "thread"`` runs the same job body in a thread of the server
 (no process start-up cost); ``"inline"`` runs it inside :meth:`JobRunner.submit`
 (tests).
@@ -26,11 +32,14 @@ as one killed together with a server that crashed.
 
 from __future__ import annotations
 
+import ctypes
 import logging
 import multiprocessing
 import os
 import signal
+import sys
 import threading
+import time
 from pathlib import Path
 
 from sillmark.web import db, layout
@@ -71,12 +80,55 @@ def _pid_alive(pid: int | None) -> bool:
     return b"multiprocessing" in cmdline or b"sillmark.web.worker" in cmdline
 
 
-def _process_main(db_path: str, data_dir: str, run_id: int) -> None:
-    """Entry point of a worker process: Ctrl-C in the server's terminal is for the server.
+#: prctl option asking the kernel to signal this process when its parent ends (Linux).
+PR_SET_PDEATHSIG = 1
+#: How often a worker checks that the server that started it is still there, in seconds.
+PARENT_CHECK_SECONDS = 0.5
+
+
+def end_with_parent(parent_pid: int, *, every: float = PARENT_CHECK_SECONDS) -> None:
+    """Make this process end as soon as the process ``parent_pid`` (its server) ends.
+
+    A server killed outright (SIGKILL, a crash, the system out of memory) runs
+    no clean-up, and a worker it leaves would go on writing results for a run
+    the next server takes back, holding memory nobody asked for. Two guards:
+
+    - on Linux, ``prctl(PR_SET_PDEATHSIG, SIGKILL)``: the kernel kills this
+      process when the server thread that started it ends (the job runner's
+      supervisor thread, which lives as long as the server);
+    - everywhere, a daemon thread that checks ``os.getppid()`` every ``every``
+      seconds: an orphan is re-parented, so a changed parent means the server
+      is gone, and the process kills itself (the run it leaves ``running`` is
+      queued again by the next server, see :meth:`JobRunner.recover`).
+
+    The check is also made once at once, for a server that died before the guard was set.
+    """
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):  # pragma: no cover - no prctl: the thread still guards
+            pass
+    if os.getppid() != parent_pid:
+        os.kill(os.getpid(), signal.SIGKILL)
+
+    def watch() -> None:
+        while True:
+            time.sleep(every)
+            if os.getppid() != parent_pid:
+                os.kill(os.getpid(), signal.SIGKILL)
+
+    threading.Thread(target=watch, name="sillmark-parent-watch", daemon=True).start()
+
+
+def _process_main(db_path: str, data_dir: str, run_id: int, parent_pid: int | None = None) -> None:
+    """Entry point of a worker process: it ends with its server, and Ctrl-C is for the server.
 
     The terminal sends SIGINT to the whole process group; the server stops its
     workers itself (and queues their runs again), so a worker ignores it.
     """
+    if parent_pid is not None:
+        end_with_parent(parent_pid)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     run_job(db_path, data_dir, run_id)
 
@@ -103,9 +155,14 @@ class JobRunner:
     """Claims queued runs from SQLite and executes them (see the module docstring)."""
 
     def __init__(self, db_path: Path, data_dir: Path, *, mode: str = "process", workers: int = 1,
-                 poll_seconds: float = 1.0) -> None:
+                 poll_seconds: float = 1.0, memory_budget: int | None = None,
+                 bytes_per_cell: int = 64) -> None:
         if mode not in MODES:
             raise ValueError(f"JOB_RUNNER must be one of {MODES}, not {mode!r}")
+        #: Bytes the running analyses may need together (None: no limit but ``workers``).
+        self.memory_budget = None if memory_budget is None else max(1, int(memory_budget))
+        self.bytes_per_cell = max(1, int(bytes_per_cell))
+        self._need: dict[int, int] = {}  # run id -> its memory estimate, while it runs
         self.db_path = Path(db_path)
         self.data_dir = Path(data_dir)
         self.mode = mode
@@ -116,6 +173,7 @@ class JobRunner:
         self._lock = threading.Lock()
         self._active: dict[int, object] = {}
         self._thread: threading.Thread | None = None
+        self._closing = False
         self._ctx = multiprocessing.get_context("spawn")
 
     # -- life cycle -------------------------------------------------------
@@ -132,20 +190,22 @@ class JobRunner:
         """Stop supervising; worker processes still running are ended and their runs queued again."""
         self._stop.set()
         self._wake.set()
-        if self._thread is not None:
-            self._thread.join(timeout)
         with self._lock:
+            # From here on _launch starts no process: the list below is complete.
+            self._closing = True
             active = [(rid, proc) for rid, proc in self._active.items()
                       if isinstance(proc, multiprocessing.process.BaseProcess) and proc.is_alive()]
-        if not active:
-            return
         # Queue them again first, so the watcher of a process ended here does not
-        # record a failure: the next start runs them from the beginning.
-        requeued = self._requeue([rid for rid, _ in active])
+        # record a failure: the next start runs them from the beginning. This comes
+        # before the supervisor thread ends, because a worker process ends with the
+        # thread that started it (see end_with_parent).
+        requeued = self._requeue([rid for rid, _ in active]) if active else []
         for _, proc in active:
             proc.terminate()
         for _, proc in active:
             proc.join(timeout)
+        if self._thread is not None:
+            self._thread.join(timeout)
         self._discard(requeued)
 
     def _requeue(self, run_ids: list[int]) -> list[tuple[int, int]]:
@@ -214,15 +274,35 @@ class JobRunner:
         finally:
             conn.close()
 
-    def _next_queued(self) -> int | None:
+    def _next_queued(self) -> tuple[int, int] | None:
+        """The oldest queued run and its memory estimate in bytes (cells × bytes per cell)."""
         conn = db.connect(self.db_path)
         try:
             row = conn.execute(
-                "SELECT id FROM runs WHERE status = ? ORDER BY id LIMIT 1", (db.QUEUED,)
+                "SELECT r.id, s.dem_info FROM runs r JOIN sites s ON s.id = r.site_id "
+                "WHERE r.status = ? ORDER BY r.id LIMIT 1", (db.QUEUED,)
             ).fetchone()
-            return None if row is None else int(row["id"])
+            if row is None:
+                return None
+            info = db.loads(row["dem_info"], {}) or {}
+            cells = int(info.get("cells") or 0)
+            return int(row["id"]), cells * self.bytes_per_cell
         finally:
             conn.close()
+
+    def _fits(self, need: int) -> bool:
+        """Whether a run needing ``need`` bytes may start beside those running now.
+
+        Runs start in the order they were queued: a large run at the head of the
+        queue waits for memory rather than being overtaken for ever by small ones.
+        A run larger than the whole budget starts when nothing else runs.
+        """
+        if self.memory_budget is None:
+            return True
+        with self._lock:
+            if not self._active:
+                return True
+            return sum(self._need.values()) + need <= self.memory_budget
 
     def _loop(self) -> None:
         while not self._stop.is_set():
@@ -231,9 +311,14 @@ class JobRunner:
                 with self._lock:
                     free = self.workers - len(self._active)
                 while free > 0 and not self._stop.is_set():
-                    run_id = self._next_queued()
-                    if run_id is None or not self._claim(run_id):
+                    head = self._next_queued()
+                    if head is None or not self._fits(head[1]):
+                        break  # nothing queued, or the next run waits for memory
+                    run_id, need = head
+                    if not self._claim(run_id):
                         break
+                    with self._lock:
+                        self._need[run_id] = need
                     self._launch(run_id)
                     free -= 1
             except Exception:  # pragma: no cover - keep supervising whatever happens
@@ -244,9 +329,14 @@ class JobRunner:
     def _launch(self, run_id: int) -> None:
         args = (str(self.db_path), str(self.data_dir), run_id)
         if self.mode == "process":
-            proc = self._ctx.Process(target=_process_main, args=args, name=f"sillmark-run-{run_id}",
-                                     daemon=True)
-            proc.start()
+            proc = self._ctx.Process(target=_process_main, args=(*args, os.getpid()),
+                                     name=f"sillmark-run-{run_id}", daemon=True)
+            with self._lock:
+                if self._closing:  # stop() has begun: the next server runs it
+                    self._requeue([run_id])
+                    self._need.pop(run_id, None)
+                    return
+                proc.start()
             db_conn = db.connect(self.db_path)
             try:
                 db.update_run(db_conn, run_id, worker_pid=proc.pid)
@@ -269,6 +359,7 @@ class JobRunner:
             # (it would otherwise queue the killed run again instead).
             with self._lock:
                 self._active.pop(run_id, None)
+                self._need.pop(run_id, None)
             self._wake.set()
 
     def _record_end(self, run_id: int, code: int | None) -> None:

@@ -33,10 +33,10 @@ import shapely.geometry
 
 from sillmark import SCREENING_CAUTION
 from sillmark.engine.flood import OUTLET_CODE, SpillResult
-from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
+from sillmark.errors import InvalidDEM, InvalidParameter, LocationOutsideDEM, SillmarkError
 from sillmark.grid.crs import crs_label
 from sillmark.grid.crs import LonLatTransformer
-from sillmark.grid.dem import nodata_as_json, read_dem
+from sillmark.grid.dem import DEM, nodata_as_json, read_dem, read_dem_grid
 from sillmark.grid.outlets import build_outlets
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets, raise_sill, read_assets
@@ -74,15 +74,20 @@ class UnknownSite(SillmarkError, LookupError):
 
 
 def dem_info(dem, *, file_bytes: int | None = None) -> dict:
-    """What the upload page shows about a DEM it read."""
+    """What the upload page shows about a DEM it read.
 
-    valid = dem.valid
+    ``dem`` is a :class:`~sillmark.grid.dem.DEM`, or a
+    :class:`~sillmark.grid.dem.DEMGrid` (its header only) for a DEM too large to
+    read in a request: the elevation range and nodata share are then None until
+    an analysis has read the cells (see :meth:`Registry.describe`).
+    """
+
     total = dem.rows * dem.cols
     dx, dy = dem.cell_size
     h = dem.horizontal_crs
     unit_name = h.axis_info[0].unit_name if h.axis_info else ""
     epsg = h.to_epsg()
-    z = dem.elevation
+    z = getattr(dem, "elevation", None)
     return {
         "rows": dem.rows,
         "cols": dem.cols,
@@ -96,9 +101,9 @@ def dem_info(dem, *, file_bytes: int | None = None) -> dict:
         "vertical_unit_source": dem.vertical_unit_source,
         "vertical_unit_certain": dem.vertical_unit_source in ("crs", "band-unit"),
         "nodata_value": nodata_as_json(dem.nodata),
-        "nodata_share": float(1.0 - np.count_nonzero(valid) / total),
-        "elevation_min": float(np.nanmin(z)),
-        "elevation_max": float(np.nanmax(z)),
+        "nodata_share": None if z is None else float(1.0 - np.count_nonzero(dem.valid) / total),
+        "elevation_min": None if z is None else float(np.nanmin(z)),
+        "elevation_max": None if z is None else float(np.nanmax(z)),
         "source_dtype": dem.source_dtype,
         "file_bytes": file_bytes,
     }
@@ -150,6 +155,13 @@ class Registry:
         latest = db.latest_run(conn, row["id"])
         current = db.get_run(conn, row["current_run"]) if row["current_run"] else None
         info = db.loads(row["dem_info"], {})
+        summary = db.loads(current["summary"]) if current is not None else None
+        if info.get("elevation_min") is None and summary:
+            # A DEM too large to read in the upload request: its analysis has read it.
+            info["elevation_min"] = summary.get("elevation_min")
+            info["elevation_max"] = summary.get("elevation_max")
+            if summary.get("valid_cells") is not None and info.get("cells"):
+                info["nodata_share"] = 1.0 - summary["valid_cells"] / info["cells"]
         return {
             "id": row["id"],
             "name": row["name"],
@@ -162,7 +174,7 @@ class Registry:
             "connectivity": row["connectivity"],
             "dem": info,
             "current_run": row["current_run"],
-            "summary": db.loads(current["summary"]) if current is not None else None,
+            "summary": summary,
             "latest_run": run_dict(latest) if latest is not None else None,
             "state": site_state(row, latest),
         }
@@ -174,9 +186,11 @@ class Registry:
 
         The file is read first (``InvalidDEM`` and friends propagate, and the
         caller deletes the temporary file); only a readable DEM becomes a site.
+        A DEM of more than ``UPLOAD_READ_CELLS`` cells is read from its header
+        only (see :meth:`_dem_for_request`).
         """
 
-        dem = read_dem(tmp_path, max_cells=int(self.config["MAX_DEM_CELLS"]))
+        dem = self._dem_for_request(tmp_path)
         info = dem_info(dem, file_bytes=os.path.getsize(tmp_path))
         suffix = Path(original_name).suffix.lower()
         stored = "dem/" + layout.new_name(suffix if suffix in (".tif", ".tiff", ".img", ".asc") else ".tif")
@@ -193,6 +207,30 @@ class Registry:
             target.parent.mkdir(parents=True, exist_ok=True)
             os.replace(tmp_path, target)
         return site_id
+
+    def _dem_for_request(self, path: Path, vertical_unit: VerticalUnit | None = None):
+        """The DEM at ``path`` as far as a request may read it.
+
+        Its header is checked first (``MAX_DEM_CELLS`` among the rest). Up to
+        ``UPLOAD_READ_CELLS`` cells it is read whole (a :class:`DEM`: the page
+        shows its elevation range and nodata share, and a DEM with no usable
+        cell is refused at once); beyond, only its header (a :class:`DEMGrid`):
+        a compressed file of tens of millions of cells takes a few hundred KB
+        to send but gigabytes to read, so its cells are read by the analysis
+        worker, which is admitted by its memory estimate (see
+        :class:`sillmark.web.jobs.JobRunner`).
+        """
+        grid = read_dem_grid(path, vertical_unit=vertical_unit)
+        limit = int(self.config["MAX_DEM_CELLS"])
+        cells = grid.rows * grid.cols
+        if cells > limit:
+            raise InvalidDEM(
+                f"'{Path(path).name}' has {grid.rows:,} × {grid.cols:,} = {cells:,} cells, more "
+                f"than the limit of {limit:,}; crop it to the site or resample it to coarser cells"
+            )
+        if cells > int(self.config["UPLOAD_READ_CELLS"]):
+            return grid
+        return read_dem(path, vertical_unit=vertical_unit, max_cells=limit)
 
     def configure(self, conn: sqlite3.Connection, site_id: int, *, name: str | None,
                   vertical_unit: str, outlets: list[str], connectivity: Any,
@@ -225,8 +263,7 @@ class Registry:
                 "give at least one outlet: the DEM edge, the cells next to nodata, or a water body"
             )
         folder = layout.site_dir(self.data, site_id)
-        dem = read_dem(folder / row["dem_file"], vertical_unit=unit,
-                       max_cells=int(self.config["MAX_DEM_CELLS"]))
+        dem = self._dem_for_request(folder / row["dem_file"], unit)
         specs: list = []
         spec_files: list = []
         for k in ("edge", "nodata"):
@@ -243,7 +280,8 @@ class Registry:
             else:
                 specs.append(str(folder / kept_file["file"]))
                 spec_files.append(dict(kept_file))
-        build_outlets(dem, tuple(specs), connectivity=conn_value)  # raises with the engine's message
+        if isinstance(dem, DEM):  # a large DEM's outlets are checked by its analysis
+            build_outlets(dem, tuple(specs), connectivity=conn_value)  # raises with the engine's message
         settings = {
             "dem_file": row["dem_file"],
             "vertical_unit": unit.value,
