@@ -5,7 +5,7 @@ VENV ?= .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.sillmark-installed
 
-.PHONY: serve test browser bench demo clean
+.PHONY: serve test test-fast browser bench demo clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -34,6 +34,10 @@ test: $(STAMP) browser
 	@rc=0; $(BIN)/python -m pytest || rc=$$?; \
 	if [ $$rc -eq 5 ]; then echo "make test: pytest collected no tests" >&2; fi; \
 	exit $$rc
+
+# The fast subset for development: no slow, cluster or browser tests (a few minutes).
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -m "not slow and not cluster and not browser"
 
 bench: $(STAMP)
 	$(BIN)/python bench/bench_engine.py

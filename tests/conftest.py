@@ -55,3 +55,18 @@ def site_tif(write_tif) -> Path:
     z = np.arange(30, dtype=np.float32).reshape(5, 6) / 4.0
     z[4, 5] = -9999.0
     return write_tif("site.tif", z, nodata=-9999.0)
+
+
+#: Fixtures that start a Dask cluster of worker processes on loopback.
+CLUSTER_FIXTURES = {"cluster_map", "cluster_address"}
+
+
+def pytest_collection_modifyitems(config, items):
+    """Markers from what a test uses: ``browser`` on the tests that drive Chromium,
+    ``cluster`` on those that start a loopback Dask cluster, so a developer may
+    leave either out (``-m "not browser and not cluster"``)."""
+    for item in items:
+        if item.path.name == "test_web_browser.py":
+            item.add_marker(pytest.mark.browser)
+        if CLUSTER_FIXTURES & set(getattr(item, "fixturenames", ())):
+            item.add_marker(pytest.mark.cluster)

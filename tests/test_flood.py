@@ -413,6 +413,7 @@ def test_onset_stage_equals_textbook_minimax_dijkstra(case):
     assert np.array_equal(r.onset_stage, expected, equal_nan=True)
 
 
+@pytest.mark.slow
 @settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(small_dems())
 def test_invariants_of_the_flood(case):
@@ -581,6 +582,7 @@ def test_equals_scikit_image_reconstruction(seed, connectivity):
     assert np.array_equal(r.onset_stage, skimage_fill(z, connectivity))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("seed", range(3))
 def test_equals_pysheds_fill_depressions(seed):
     # pysheds 0.5 Grid.fill_depressions (D8 neighbourhood, raster edge as outlet).

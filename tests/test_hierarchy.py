@@ -478,6 +478,7 @@ def small_sites(draw):
     return z, outlets, connectivity, areas, unit
 
 
+@pytest.mark.slow
 @settings(max_examples=250, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(small_sites())
 def test_random_sites_against_the_references(case):

@@ -16,6 +16,8 @@ import sys
 import textwrap
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parents[1]
 
 SCRIPT = textwrap.dedent(
@@ -64,6 +66,7 @@ SCRIPT = textwrap.dedent(
 )
 
 
+@pytest.mark.slow
 def test_kernels_run_clean_with_bounds_checking(tmp_path):
     env = dict(os.environ)
     env["NUMBA_BOUNDSCHECK"] = "1"

@@ -148,6 +148,7 @@ def dem_and_levels(draw):
     return z, levels, draw(st.sampled_from([4, 8]))
 
 
+@pytest.mark.slow
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(dem_and_levels())
 def test_stage_table_equals_one_map_per_level(case):

@@ -149,6 +149,7 @@ def coast_tif(tmp_path_factory):
     return write_raster(tmp_path_factory.mktemp("coast") / "coast.tif", z, nodata=-9999.0)
 
 
+@pytest.mark.slow
 def test_synthetic_terrain_equals_in_memory_for_many_tile_sizes(terrain_tif, tmp_path):
     # 16 and 37 do not divide 150 x 170; 512 is one tile; 5 gives tiles of a few cells.
     whole = in_memory(terrain_tif)[2]
@@ -281,6 +282,7 @@ def test_integer_dem_with_many_ties(tmp_path):
         check(path, tmp_path, tile=tile, connectivity=conn, routes=300)
 
 
+@pytest.mark.slow
 def test_random_small_dems_and_tiles(tmp_path):
     rng = np.random.default_rng(12)
     for k in range(40):
@@ -299,6 +301,7 @@ def test_random_small_dems_and_tiles(tmp_path):
         assert_tile_free(run, out, dem, whole)
 
 
+@pytest.mark.slow
 def test_tied_spill_points_do_not_depend_on_the_tile_size(tmp_path):
     # Whole-metre heights: tied rims and flat saddles everywhere. Tiles of 1 to
     # 7 cells (dividing the grid or not) give the one-tile table and sills.

@@ -379,6 +379,7 @@ print("bounds ok")
 """
 
 
+@pytest.mark.slow
 def test_stage_kernel_runs_clean_with_bounds_checking(tmp_path):
     # As tests/test_kernels_boundscheck.py: a fresh interpreter, an empty numba
     # cache and NUMBA_BOUNDSCHECK=1, so a stray index raises IndexError.

@@ -31,6 +31,8 @@ from tests.web_support import ASSETS_CSV, Client, analysed_site, confirm, make_a
 from sillmark.web import db, layout
 from sillmark.web.jobs import INTERRUPTED_PHASE, REQUEUED_PHASE, JobRunner, _pid_alive
 
+pytestmark = pytest.mark.slow
+
 ROOT = Path(__file__).resolve().parent.parent
 SLOW_SIDE = 1600
 #: The phase in which the worker is killed: several result files are written then.

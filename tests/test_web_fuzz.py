@@ -34,6 +34,8 @@ from hypothesis import strategies as st
 from tests.web_support import ASSETS_CSV, Client, analysed_site, make_app, upload_dem, write_lowbank
 from sillmark.web import layout
 
+pytestmark = pytest.mark.slow
+
 FUZZ = dict(deadline=None, derandomize=bool(os.environ.get("CI")),
             suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 

@@ -14,6 +14,8 @@ import pytest
 from tests.web_support import Client, analysed_site, make_app
 from sillmark.web import render
 
+pytestmark = pytest.mark.slow
+
 ROOT = Path(__file__).resolve().parent.parent
 
 
