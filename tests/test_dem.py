@@ -150,9 +150,9 @@ def test_float32_nodata_written_as_rounded_text_still_matches(write_tif):
         dst.nodata = float(lowest)
     dem = read_dem(path)
     assert dem.valid.tolist() == [[False, True]]
-    from sillmark.grid.dem import _nodata_mask
+    from sillmark.grid.elevations import nodata_mask
 
-    assert _nodata_mask(z, -3.4028235e38).tolist() == [[True, False]]
+    assert nodata_mask(z, -3.4028235e38).tolist() == [[True, False]]
 
 
 def test_band_scale_and_offset_are_applied(write_tif):

@@ -591,7 +591,7 @@ def test_a_raster_that_names_another_file_is_refused(tmp_path):
     """The files GDAL reads for a dataset must be the file itself or its own sidecars."""
     import rasterio
 
-    from sillmark.grid.dem import _check_own_files
+    from sillmark.grid.raster_files import check_own_files
     from sillmark.errors import InvalidDEM
 
     (tmp_path / "secret_key").write_bytes(np.arange(16, dtype=np.float32).tobytes())
@@ -605,7 +605,7 @@ def test_a_raster_that_names_another_file_is_refused(tmp_path):
         with rasterio.open(label, driver="PDS") as src:
             assert len(src.files) == 2  # GDAL would read the other file
             with pytest.raises(InvalidDEM, match="read together with other files it names"):
-                _check_own_files(src, str(label), InvalidDEM, "the DEM")
+                check_own_files(src, str(label), InvalidDEM, "the DEM")
     lowbank = write_lowbank(tmp_path / "own.tif")
     with rasterio.open(lowbank) as src:
-        _check_own_files(src, str(lowbank), InvalidDEM, "the DEM")  # a GeoTIFF alone passes
+        check_own_files(src, str(lowbank), InvalidDEM, "the DEM")  # a GeoTIFF alone passes

@@ -71,15 +71,26 @@ def crs_unit_suffix(crs: pyproj.CRS) -> str:
     return _CRS_UNIT_SUFFIX.get(name, "".join(ch if ch.isalnum() else "_" for ch in name))
 
 
-def crs_text(crs: pyproj.CRS) -> str:
+def crs_text(crs: Any) -> str:
     """A CRS as people read it: its EPSG code and name, or its name alone.
+
+    ``crs`` is a :class:`pyproj.CRS`, a :class:`rasterio.crs.CRS` or anything
+    :meth:`pyproj.CRS.from_user_input` reads; one that cannot be read at all is
+    "a custom CRS".
 
     Examples
     --------
     >>> crs_text(pyproj.CRS("EPSG:32633"))
     'EPSG:32633 (WGS 84 / UTM zone 33N)'
+    >>> crs_text("EPSG:4326")
+    'EPSG:4326 (WGS 84)'
     """
-    epsg = crs.to_epsg()
+    try:
+        if not isinstance(crs, pyproj.CRS):
+            crs = pyproj.CRS.from_user_input(crs.to_wkt() if hasattr(crs, "to_wkt") else crs)
+        epsg = crs.to_epsg()
+    except (pyproj.exceptions.CRSError, ValueError, TypeError):
+        return "a custom CRS"
     return f"EPSG:{epsg} ({crs.name})" if epsg else f"{crs.name} (no EPSG code)"
 
 

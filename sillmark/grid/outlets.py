@@ -27,17 +27,16 @@ from rasterio.errors import RasterioError
 from rasterio.features import rasterize
 from shapely.geometry import shape as shapely_shape
 
-from sillmark.grid.dem import (
-    DEM,
-    _gdal_reason,
-    _horizontal_part,
-    _local_file,
-    _to_pyproj,
+from sillmark.errors import InvalidOutlets, InvalidParameter
+from sillmark.grid.dem import DEM
+from sillmark.grid.geojson import geojson_crs
+from sillmark.grid.georeference import horizontal_part, to_pyproj
+from sillmark.grid.raster_files import (
     crs_name_refusal,
+    gdal_reason,
+    local_file,
     open_local_raster,
 )
-from sillmark.errors import InvalidOutlets, InvalidParameter
-from sillmark.grid.geojson import geojson_crs
 
 __all__ = [
     "OutletPlan",
@@ -271,7 +270,7 @@ def outlets_from_raster(dem: DEM, path: str | os.PathLike[str]) -> np.ndarray:
         except (RasterioError, CPLE_BaseError, OSError) as exc:
             raise InvalidOutlets(
                 f"the outlet mask '{name}' opens but its pixels cannot be read "
-                f"({_gdal_reason(exc, path)}); export it again"
+                f"({gdal_reason(exc, path)}); export it again"
             ) from None
     marked = _marked(data, hidden, nodata)
     if not marked.any():
@@ -283,7 +282,7 @@ def outlets_from_raster(dem: DEM, path: str | os.PathLike[str]) -> np.ndarray:
 
 
 def _mask_path(path: str | os.PathLike[str]) -> tuple[str, str]:
-    path = _local_file(path, InvalidOutlets, "the outlet mask")
+    path = local_file(path, InvalidOutlets, "the outlet mask")
     return path, os.path.basename(path)
 
 
@@ -331,7 +330,7 @@ def _check_mask_raster(src: Any, dem: Any, name: str) -> float | None:
             "give a mask with the DEM's cell size and origin"
         )
     if src.crs:
-        mask_h = _horizontal_part(_to_pyproj(src.crs), f"the outlet mask '{name}'")
+        mask_h = horizontal_part(to_pyproj(src.crs), f"the outlet mask '{name}'")
         if not mask_h.equals(dem.horizontal_crs, ignore_axis_order=True):
             raise InvalidOutlets(
                 f"the outlet mask '{name}' is in {mask_h.name!r} but the DEM is in "
@@ -695,7 +694,7 @@ def _mask_window(path: str, nodata: float | None, row0: int, row1: int, col0: in
         except (RasterioError, CPLE_BaseError, OSError) as exc:
             raise InvalidOutlets(
                 f"the outlet mask '{os.path.basename(path)}' opens but its pixels cannot be "
-                f"read ({_gdal_reason(exc, path)}); export it again"
+                f"read ({gdal_reason(exc, path)}); export it again"
             ) from None
     return _marked(data, hidden, nodata)
 
@@ -712,7 +711,7 @@ def _load_geojson(source: Any) -> tuple[Any, str]:
     if isinstance(source, str) and source.lstrip().startswith(("{", "[")):
         return _parse_json(source, "the GeoJSON text"), "the GeoJSON text"
     if isinstance(source, (str, os.PathLike)):
-        path = _local_file(source, InvalidOutlets, "the GeoJSON file")
+        path = local_file(source, InvalidOutlets, "the GeoJSON file")
         label = f"the GeoJSON '{os.path.basename(path)}'"
         try:
             with open(path, "rb") as fh:

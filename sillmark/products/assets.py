@@ -36,9 +36,10 @@ from scipy import ndimage
 from sillmark.engine.flood import OUTLET_CODE, SpillResult, priority_flood
 from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from sillmark.grid.crs import LonLatTransformer
-from sillmark.grid.dem import MAX_ABS_ELEVATION, crs_name_refusal, gdal_path_refusal
+from sillmark.grid.elevations import MAX_ABS_ELEVATION
 from sillmark.grid.geojson import CRS84, geojson_crs
 from sillmark.grid.outlets import Outlets
+from sillmark.grid.raster_files import crs_name_refusal, gdal_path_refusal
 from sillmark.products.stage import checked_level
 from sillmark.units import VerticalUnit
 

@@ -19,8 +19,8 @@ from flask import Flask, current_app, g, jsonify, render_template, request, sess
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
 from sillmark import SCREENING_CAUTION
-from sillmark.grid.dem import forbid_remote_access
 from sillmark.errors import LocationOutsideDEM, SillmarkError
+from sillmark.grid.raster_files import forbid_remote_access
 from sillmark.units import VerticalUnit
 from sillmark.web import config as _config
 from sillmark.web import db, layout
@@ -28,7 +28,13 @@ from sillmark.web.exports import ExportCache, ExportSpaceError
 from sillmark.web.jobs import JobRunner
 from sillmark.web.mapview import online_base_layer
 from sillmark.web.render import TileIndexCache
-from sillmark.web.sites import Registry, SiteCache, SiteNotReady, UnknownSite, parse_level
+from sillmark.web.sites import (
+    Registry,
+    SiteCache,
+    SiteNotReady,
+    UnknownSite,
+    parse_level,
+)
 
 log = logging.getLogger("sillmark.web")
 

@@ -23,8 +23,9 @@ import numpy as np
 from affine import Affine
 from rasterio.crs import CRS
 
-from sillmark.grid.dem import DEM, nodata_as_json, nodata_from_json
 from sillmark.engine.flood import DepressionTable, SpillResult
+from sillmark.grid.dem import DEM
+from sillmark.grid.elevations import nodata_as_json, nodata_from_json
 from sillmark.units import VerticalUnit
 
 META = "meta.json"

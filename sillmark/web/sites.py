@@ -33,10 +33,15 @@ import shapely.geometry
 
 from sillmark import SCREENING_CAUTION
 from sillmark.engine.flood import OUTLET_CODE, SpillResult
-from sillmark.errors import InvalidDEM, InvalidParameter, LocationOutsideDEM, SillmarkError
-from sillmark.grid.crs import crs_label
-from sillmark.grid.crs import LonLatTransformer
-from sillmark.grid.dem import DEM, nodata_as_json, read_dem, read_dem_grid
+from sillmark.errors import (
+    InvalidDEM,
+    InvalidParameter,
+    LocationOutsideDEM,
+    SillmarkError,
+)
+from sillmark.grid.crs import LonLatTransformer, crs_label
+from sillmark.grid.dem import DEM, read_dem, read_dem_grid
+from sillmark.grid.elevations import nodata_as_json
 from sillmark.grid.outlets import build_outlets
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets, raise_sill, read_assets
