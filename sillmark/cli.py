@@ -616,7 +616,7 @@ def _xy_text(dem, x: float, y: float, stream: TextIO) -> str:
 
 def _assets_line(assets, asset_levels) -> str:
     """How many assets were read and how many have no figures, once for all levels."""
-    from sillmark.products.assets import STATUS_OK
+    from sillmark.grid.assets import STATUS_OK
 
     source = assets.source
     if not asset_levels:
@@ -1031,9 +1031,9 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     hierarchy files in windows of depressions on the same cluster."""
     import types
 
+    from sillmark.io.results_folder import add_depression_outlines
     from sillmark.io.summary import FILE_NAMES
     from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
-    from sillmark.io.results_folder import add_depression_outlines
 
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
@@ -1166,7 +1166,7 @@ def _run_stage(args: argparse.Namespace) -> int:
                                         start=args.table_from, stop=args.table_to)
         assets = what_if = None
         if args.assets is not None:
-            from sillmark.products.assets import read_assets
+            from sillmark.grid.assets import read_assets
 
             assets = read_assets(args.assets, dem)
             if args.raise_sill is not None:
@@ -1309,8 +1309,9 @@ class _WhatIfRun:
 
 def _what_if_rows(result, dem, outlets, assets, height: float) -> _WhatIfRun:
     """Raise every distinct controlling sill of the assets once; keep light rows only."""
+    from sillmark.grid.assets import STATUS_OK
     from sillmark.io.asset_files import what_if_row
-    from sillmark.products.assets import STATUS_OK, raise_sills
+    from sillmark.products.what_if import raise_sills
 
     behind: dict[tuple[int, int], int] = {}
     own = no_figures = 0

@@ -37,15 +37,9 @@ from sillmark.io.asset_files import (
     write_assets_csv,
     write_assets_geojson,
 )
-from sillmark.products.assets import (
-    Assets,
-    InvalidAssets,
-    assess_assets,
-    assets_from_points,
-    raise_sill,
-    read_assets,
-    sill_crest,
-)
+from sillmark.grid.assets import Assets, InvalidAssets, assets_from_points, read_assets
+from sillmark.products.assets import assess_assets
+from sillmark.products.what_if import raise_sill, sill_crest
 from sillmark.grid.dem import dem_from_array, read_dem
 from sillmark.errors import InvalidParameter, LocationOutsideDEM, SillmarkError
 from sillmark.engine.flood import analyse_site

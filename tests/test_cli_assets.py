@@ -140,16 +140,16 @@ def basin_assets(tmp_path: Path) -> Path:
 
 def test_raising_the_lower_gap_lets_the_higher_one_control(capsys, monkeypatch, ridge_tif,
                                                            basin_assets, tmp_path):
-    import sillmark.products.assets
+    import sillmark.products.what_if
 
     floods = []
-    original = sillmark.products.assets.priority_flood
+    original = sillmark.products.what_if.priority_flood
 
     def counted(*args, **kwargs):
         floods.append(1)
         return original(*args, **kwargs)
 
-    monkeypatch.setattr(sillmark.products.assets, "priority_flood", counted)
+    monkeypatch.setattr(sillmark.products.what_if, "priority_flood", counted)
     out_dir = tmp_path / "s"
     code, out, err = run_cli(capsys, "stage", str(ridge_tif), "--level", "2.8", "--assets",
                              str(basin_assets), "--raise-sill", "2", "--out", str(out_dir))

@@ -79,7 +79,8 @@ def test_behind_the_bank_is_shielded_below_the_notch_and_floods_at_it(ready):
 
 
 def test_assets_wet_count_follows_the_onset_stage(ready, reference, tmp_path):
-    from sillmark.products.assets import assess_assets, read_assets
+    from sillmark.products.assets import assess_assets
+    from sillmark.grid.assets import read_assets
     from tests.web_support import ASSETS_CSV
 
     dem, _, result = reference

@@ -37,7 +37,8 @@ from sillmark.io.atomic import atomic_output
 from sillmark.io.csv_tables import spreadsheet_safe
 from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
-from sillmark.products.assets import STATE_FLOODED, AssetTable, WhatIf
+from sillmark.products.assets import STATE_FLOODED, AssetTable
+from sillmark.products.what_if import WhatIf
 from sillmark.units import VerticalUnit, unit_name, unit_suffix
 
 __all__ = [

@@ -39,12 +39,13 @@ from sillmark.errors import (
     LocationOutsideDEM,
     SillmarkError,
 )
+from sillmark.grid.assets import read_assets
 from sillmark.grid.crs import LonLatTransformer, crs_label
 from sillmark.grid.dem import DEM, read_dem, read_dem_grid
 from sillmark.grid.elevations import nodata_as_json
 from sillmark.grid.outlets import build_outlets
 from sillmark.io import geojson as geojson_files
-from sillmark.products.assets import assess_assets, raise_sill, read_assets
+from sillmark.products.assets import assess_assets
 from sillmark.products.hierarchy import site_hierarchy
 from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
@@ -55,6 +56,7 @@ from sillmark.products.stage import (
     stage_table,
     water_level_map,
 )
+from sillmark.products.what_if import raise_sill
 from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 from sillmark.web import arrays, db, layout, render
 from sillmark.web.tiled_run import engine_settings

@@ -24,9 +24,9 @@ from flask import Blueprint, current_app, jsonify, request, url_for
 from werkzeug.exceptions import RequestEntityTooLarge
 
 from sillmark.errors import InvalidDEM, InvalidParameter, SillmarkError
+from sillmark.grid.assets import InvalidAssets, read_assets
 from sillmark.grid.crs import crs_label
 from sillmark.grid.dem import read_dem_grid
-from sillmark.products.assets import InvalidAssets, read_assets
 from sillmark.web import get_db, layout, services
 from sillmark.web.access import site_row
 from sillmark.web.db import StorageError
