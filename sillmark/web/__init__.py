@@ -28,13 +28,8 @@ from sillmark.web.exports import ExportCache, ExportSpaceError
 from sillmark.web.jobs import JobRunner
 from sillmark.web.mapview import online_base_layer
 from sillmark.web.render import TileIndexCache
-from sillmark.web.sites import (
-    Registry,
-    SiteCache,
-    SiteNotReady,
-    UnknownSite,
-    parse_level,
-)
+from sillmark.web.site_data import SiteCache, parse_level
+from sillmark.web.sites import Registry, SiteNotReady, UnknownSite
 
 log = logging.getLogger("sillmark.web")
 

@@ -7,7 +7,8 @@ exist (404) or is not ready yet (409), through the SillmarkError handlers.
 from __future__ import annotations
 
 from sillmark.web import get_db, layout, services
-from sillmark.web.sites import SiteData, SiteNotReady
+from sillmark.web.site_data import SiteData
+from sillmark.web.sites import SiteNotReady
 
 
 def site_row(site_id: int):

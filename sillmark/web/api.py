@@ -19,7 +19,6 @@ from flask import Blueprint, abort, jsonify, request, send_file, url_for
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
 from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
-from sillmark.products.source import ArraySource
 from sillmark.io.stage_files import (
     level_file_names,
     level_label,
@@ -27,9 +26,11 @@ from sillmark.io.stage_files import (
     write_stage_table_csv,
 )
 from sillmark.io.summary import FILE_NAMES
+from sillmark.products.source import ArraySource
 from sillmark.web import db, exports, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
-from sillmark.web.sites import parse_level, run_dict
+from sillmark.web.site_data import parse_level
+from sillmark.web.sites import run_dict
 
 bp = Blueprint("api", __name__, url_prefix="/api")
 

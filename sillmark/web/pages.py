@@ -12,7 +12,8 @@ from sillmark.errors import InvalidParameter
 from sillmark.web import get_db, render, services
 from sillmark.web.access import open_site, site_row
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
-from sillmark.web.sites import UNIT_SOURCE_TEXT, SiteNotReady, parse_level
+from sillmark.web.site_data import parse_level
+from sillmark.web.sites import UNIT_SOURCE_TEXT, SiteNotReady
 from sillmark.web.tiles import warm
 
 bp = Blueprint("pages", __name__)

@@ -20,7 +20,6 @@ No Flask in this module: the analysis worker imports it for the hillshade.
 
 from __future__ import annotations
 
-import collections
 import math
 import struct
 import threading
@@ -29,6 +28,8 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyproj
+
+from sillmark.web.caches import LockedLRU
 
 TILE = 256
 #: Half the side of the Web Mercator square, in metres (EPSG:3857).
@@ -312,11 +313,17 @@ class TileIndexCache:
 
     def __init__(self, capacity: int) -> None:
         self.capacity = max(1, int(capacity))
-        self._entries: collections.OrderedDict = collections.OrderedDict()
+        self._entries = LockedLRU(self.capacity)
         self._projectors: dict = {}
         self._lock = threading.Lock()
-        self.hits = 0
-        self.misses = 0
+
+    @property
+    def hits(self) -> int:
+        return self._entries.hits
+
+    @property
+    def misses(self) -> int:
+        return self._entries.misses
 
     def projector(self, grid: Grid) -> GridProjector:
         with self._lock:
@@ -329,78 +336,37 @@ class TileIndexCache:
 
     def get(self, grid: Grid, z: int, x: int, y: int) -> np.ndarray | None:
         key = (grid.key, z, x, y)
-        with self._lock:
-            if key in self._entries:
-                self._entries.move_to_end(key)
-                self.hits += 1
-                return self._entries[key]
-            self.misses += 1
+        missing = object()
+        index = self._entries.get(key, missing)
+        if index is not missing:
+            return index
         index = self.projector(grid).tile_index(z, x, y)
-        with self._lock:
-            self._entries[key] = index
-            self._entries.move_to_end(key)
-            while len(self._entries) > self.capacity:
-                self._entries.popitem(last=False)
+        self._entries.put(key, index)
         return index
 
     def __contains__(self, key: tuple) -> bool:
         grid, z, x, y = key
-        with self._lock:
-            return (grid.key, z, x, y) in self._entries
+        return (grid.key, z, x, y) in self._entries
 
     def __len__(self) -> int:
-        with self._lock:
-            return len(self._entries)
+        return len(self._entries)
 
 
-class ImageCache:
+class ImageCache(LockedLRU):
     """LRU of encoded tile images (PNG bytes), bounded by their total size; thread-safe.
 
-    One per open site run (see :class:`sillmark.web.sites.SiteData`): the hillshade
+    One per open site run (see :class:`sillmark.web.site_data.SiteData`): the hillshade
     is the same for every viewer and every level, and a water-level tile is the
     same for everyone at that level, so each is drawn and encoded once.
     """
 
     def __init__(self, max_bytes: int) -> None:
-        self.max_bytes = max(0, int(max_bytes))
-        self._entries: collections.OrderedDict = collections.OrderedDict()
-        self._bytes = 0
-        self._lock = threading.Lock()
-        self.hits = 0
-        self.misses = 0
-
-    def get(self, key) -> bytes | None:
-        with self._lock:
-            body = self._entries.get(key)
-            if body is None:
-                self.misses += 1
-                return None
-            self._entries.move_to_end(key)
-            self.hits += 1
-            return body
-
-    def put(self, key, body: bytes) -> None:
-        size = len(body)
-        if size > self.max_bytes:
-            return
-        with self._lock:
-            old = self._entries.pop(key, None)
-            if old is not None:
-                self._bytes -= len(old)
-            self._entries[key] = body
-            self._bytes += size
-            while self._bytes > self.max_bytes:
-                _, dropped = self._entries.popitem(last=False)
-                self._bytes -= len(dropped)
+        super().__init__(max(0, int(max_bytes)), getsizeof=len)
+        self.max_bytes = self.maxsize
 
     @property
     def size_bytes(self) -> int:
-        with self._lock:
-            return self._bytes
-
-    def __len__(self) -> int:
-        with self._lock:
-            return len(self._entries)
+        return self.currsize
 
 
 # --------------------------------------------------------------------------- drawing

@@ -18,7 +18,7 @@ from flask import Blueprint, Response, abort, current_app, request
 
 from sillmark.web import render, services
 from sillmark.web.access import open_site
-from sillmark.web.sites import parse_level
+from sillmark.web.site_data import parse_level
 
 bp = Blueprint("tiles", __name__, url_prefix="/tiles")
 
