@@ -19,8 +19,6 @@ fields (CSV) or null values (GeoJSON) and their status.
 
 from __future__ import annotations
 
-import csv
-import json
 import math
 import os
 from collections.abc import Iterator
@@ -33,8 +31,7 @@ import numpy as np
 from sillmark import SCREENING_CAUTION, __version__
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import crs_label, horizontal_unit_suffix
-from sillmark.io.atomic import atomic_output
-from sillmark.io.csv_tables import spreadsheet_safe
+from sillmark.io.csv_tables import write_table_csv
 from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
 from sillmark.products.assets import STATE_FLOODED, AssetTable
@@ -179,20 +176,6 @@ def _floats64(a: np.ndarray) -> list:
     return [float(v) if math.isfinite(v) else None for v in a]
 
 
-def _csv_text(value: Any) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, float):
-        return np.format_float_positional(value, unique=True, trim="-")
-    if isinstance(value, (dict, list)):
-        return spreadsheet_safe(json.dumps(value, ensure_ascii=False))
-    if isinstance(value, (int, np.integer, np.floating)):
-        return str(value)
-    return spreadsheet_safe(str(value))
-
-
 def _level_text(table: AssetTable) -> str:
     return np.format_float_positional(np.float32(table.level), unique=True, trim="-")
 
@@ -209,40 +192,24 @@ def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
     columns = asset_columns(table)
     unit = table.unit
     v = unit_suffix(unit)
-    final = Path(path)
-    n = len(table)
-    with atomic_output(final) as tmp:
-        with open(tmp, "x", newline="", encoding="utf-8") as f:
-            f.write(f"# Sillmark {__version__} asset table\n")
-            f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
-            f.write(f"# water level: {_level_text(table)} {unit.symbol} ({unit_name(unit)})\n")
-            f.write(f"# vertical unit: {unit.value} ({unit_name(unit)})\n")
-            f.write(f"# CRS: {crs_label(table.dem)}\n")
-            f.write(f"# connectivity: {table.connectivity}\n")
-            f.write(
-                "# state: flooded = onset stage <= water level; shielded = ground below the "
-                "level but no surface path reaches it yet (still at risk); dry = neither\n"
-            )
-            f.write(
-                f"# depth_{v}: level - ground when flooded, else 0; depth_if_reached_{v}: "
-                f"level - ground wherever the ground is below the level; freeboard_{v}: "
-                "onset stage - level (negative once flooded)\n"
-            )
-            f.write(
-                "# sill_*: the controlling sill, the highest cell on the route from the outlets; "
-                "sill_is_own_cell = the asset's own ground controls\n"
-            )
-            f.write(
-                "# status: ok, outside DEM, on nodata, not reached; other than ok leaves the "
-                "figures empty\n"
-            )
-            f.write("# row, col, sill_row, sill_col: 0-based cell indices, rows from the top\n")
-            writer = csv.writer(f, lineterminator="\n")
-            writer.writerow(spreadsheet_safe(str(name)) for name in columns)
-            values = list(columns.values())
-            for k in range(n):
-                writer.writerow(_csv_text(col[k]) for col in values)
-    return final
+    comments = [
+        f"Sillmark {__version__} asset table",
+        f"CAUTION: {SCREENING_CAUTION}",
+        f"water level: {_level_text(table)} {unit.symbol} ({unit_name(unit)})",
+        f"vertical unit: {unit.value} ({unit_name(unit)})",
+        f"CRS: {crs_label(table.dem)}",
+        f"connectivity: {table.connectivity}",
+        "state: flooded = onset stage <= water level; shielded = ground below the "
+        "level but no surface path reaches it yet (still at risk); dry = neither",
+        f"depth_{v}: level - ground when flooded, else 0; depth_if_reached_{v}: "
+        f"level - ground wherever the ground is below the level; freeboard_{v}: "
+        "onset stage - level (negative once flooded)",
+        "sill_*: the controlling sill, the highest cell on the route from the outlets; "
+        "sill_is_own_cell = the asset's own ground controls",
+        "status: ok, outside DEM, on nodata, not reached; other than ok leaves the figures empty",
+        "row, col, sill_row, sill_col: 0-based cell indices, rows from the top",
+    ]
+    return write_table_csv(path, comments, _object_columns(columns, len(table)))
 
 
 def write_assets_geojson(
@@ -465,33 +432,36 @@ def write_what_if_csv(
     for row in rows:
         if list(row) != header:
             raise InvalidParameter("the what-if rows differ in their columns; build them all with what_if_row()")
-    final = Path(path)
-    with atomic_output(final) as tmp:
-        with open(tmp, "x", newline="", encoding="utf-8") as f:
-            f.write(f"# Sillmark {__version__} what-if: controlling sills raised\n")
-            f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
-            f.write(f"# height: each controlling sill raised by {_short(height)} {unit.symbol} "
-                    f"({unit_name(unit)}), one sill at a time, the site flooded again for each\n")
-            f.write(f"# vertical unit: {unit.value} ({unit_name(unit)})\n")
-            f.write(f"# CRS: {crs_label(dem)}\n")
-            f.write(
-                f"# onset_before_{v}, onset_after_{v}: outlet water level at which surface water first "
-                f"reaches the asset now and with the raised sill; gain_{v} = after - before "
-                f"(between 0 and the height)\n"
-            )
-            f.write(
-                "# sill_before_*: the controlling sill now (the cell raised); sill_after_*: the "
-                "controlling sill with it raised (raised_cell_controls = it is still the raised cell)\n"
-            )
-            f.write("# assets_behind_sill: assets sharing the raised sill (one recompute serves them all)\n")
-            f.write("# row, col, sill_*_row, sill_*_col: 0-based cell indices, rows from the top\n")
-            for note in notes:
-                f.write(f"# {note}\n")
-            writer = csv.writer(f, lineterminator="\n")
-            writer.writerow(header)
-            for row in rows:
-                writer.writerow(_csv_text(value) for value in row.values())
-    return final
+    comments = [
+        f"Sillmark {__version__} what-if: controlling sills raised",
+        f"CAUTION: {SCREENING_CAUTION}",
+        f"height: each controlling sill raised by {_short(height)} {unit.symbol} "
+        f"({unit_name(unit)}), one sill at a time, the site flooded again for each",
+        f"vertical unit: {unit.value} ({unit_name(unit)})",
+        f"CRS: {crs_label(dem)}",
+        f"onset_before_{v}, onset_after_{v}: outlet water level at which surface water first "
+        f"reaches the asset now and with the raised sill; gain_{v} = after - before "
+        "(between 0 and the height)",
+        "sill_before_*: the controlling sill now (the cell raised); sill_after_*: the "
+        "controlling sill with it raised (raised_cell_controls = it is still the raised cell)",
+        "assets_behind_sill: assets sharing the raised sill (one recompute serves them all)",
+        "row, col, sill_*_row, sill_*_col: 0-based cell indices, rows from the top",
+        *notes,
+    ]
+    columns = {name: [row[name] for row in rows] for name in header}
+    return write_table_csv(path, comments, _object_columns(columns, len(rows)))
+
+
+def _object_columns(columns: dict, n: int) -> dict[str, np.ndarray]:
+    """Every column as an object array, so each value is written as it is
+    (:func:`sillmark.io.csv_tables.cell_text`: booleans as true/false, lists as JSON)."""
+    out = {}
+    for name, values in columns.items():
+        array = np.empty(n, dtype=object)
+        for k, value in enumerate(values):  # one by one: a value may itself be a list
+            array[k] = value
+        out[name] = array
+    return out
 
 
 def _what_if_header(v: str, h: str) -> tuple[str, ...]:

@@ -5,6 +5,7 @@ as the same float32 or float64, empty where a value does not exist.
 from __future__ import annotations
 
 import csv
+import json
 import os
 from collections.abc import Iterator
 from pathlib import Path
@@ -29,16 +30,33 @@ if TYPE_CHECKING:  # pragma: no cover
     from sillmark.grid.dem import DEM
 
 
-def _text(value: Any) -> str:
+def cell_text(value: Any) -> str:
+    """One value of a mixed (object) column as its CSV text.
+
+    None is empty; booleans ``true``/``false``; floats their shortest round-trip
+    decimal without an exponent; lists and dicts their JSON; text made safe
+    for spreadsheets (:func:`spreadsheet_safe`).
+
+    Examples
+    --------
+    >>> [cell_text(v) for v in (None, True, 0.1, 47.0, 3, [1, 2], "=1+1")]
+    ['', 'true', '0.1', '47', '3', '[1, 2]', "'=1+1"]
+    """
     if value is None:
         return ""
-    if isinstance(value, float):
-        return np.format_float_positional(value, unique=True, trim="-")
-    return str(value)
+    if isinstance(value, (bool, np.bool_)):
+        return "true" if value else "false"
+    if isinstance(value, (float, np.floating)):
+        return np.format_float_positional(value, unique=True, trim="-") if np.isfinite(value) else ""
+    if isinstance(value, (int, np.integer)):
+        return str(value)
+    if isinstance(value, (dict, list)):
+        return spreadsheet_safe(json.dumps(value, ensure_ascii=False))
+    return spreadsheet_safe(str(value))
 
 
 def float_texts(values: np.ndarray) -> list[str]:
-    """``_text(json_value(values, k))`` for every k of a float32 or float64 array, fast.
+    """The shortest round-trip text of every value of a float32 or float64 array, fast.
 
     The per-value route (``format_float_positional`` on each number) costs about
     a microsecond a number, and tables of hundreds of thousands of depressions
@@ -108,7 +126,9 @@ def column_texts(values: np.ndarray) -> list[str]:
     """Every entry of a table column as its CSV text (see :func:`write_table_csv`)."""
     values = np.asarray(values)
     kind = values.dtype.kind
-    if kind in "USO":
+    if kind == "O":
+        return [cell_text(v) for v in values.tolist()]
+    if kind in "US":
         return [spreadsheet_safe(str(v)) for v in values.tolist()]
     if kind in "iu":
         return list(map(str, values.tolist()))
@@ -136,27 +156,24 @@ def write_depressions_csv(result: "SpillResult", dem: "DEM", path: str | os.Path
 
 def write_depression_table_csv(table, dem: "DEM", path: str | os.PathLike, *, connectivity: int) -> Path:
     """:func:`write_depressions_csv` from a :class:`~sillmark.engine.flood.DepressionTable` itself."""
-    columns = table_columns(table, dem)
     unit = unit_of(dem)
     crs = horizontal_crs(dem)
-    final = Path(path)
-    with atomic_output(final) as tmp:
-        with open(tmp, "x", newline="", encoding="utf-8") as f:
-            f.write(f"# Sillmark {__version__} depression table\n")
-            f.write(f"# CAUTION: {SCREENING_CAUTION}\n")
-            f.write(f"# vertical unit: {unit.value} ({unit_name(unit)})\n")
-            f.write(f"# CRS: {crs_label(dem)}\n")
-            if crs.is_geographic:
-                f.write(f"# spill_x_{crs_unit_suffix(crs)}, spill_y_{crs_unit_suffix(crs)}: "
-                        "longitude and latitude in the DEM's CRS\n")
-            f.write("# spill_lon_deg, spill_lat_deg: the spill point in WGS84 degrees\n")
-            f.write(f"# connectivity: {connectivity}\n")
-            f.write("# pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top\n")
-            f.write("# spills_to: id of the depression the overflow reaches next; 0 = an outlet\n")
-            writer = csv.writer(f, lineterminator="\n")
-            writer.writerow(columns)
-            writer.writerows(zip(*(column_texts(a) for a in columns.values())))
-    return final
+    comments = [
+        f"Sillmark {__version__} depression table",
+        f"CAUTION: {SCREENING_CAUTION}",
+        f"vertical unit: {unit.value} ({unit_name(unit)})",
+        f"CRS: {crs_label(dem)}",
+    ]
+    if crs.is_geographic:
+        comments.append(f"spill_x_{crs_unit_suffix(crs)}, spill_y_{crs_unit_suffix(crs)}: "
+                        "longitude and latitude in the DEM's CRS")
+    comments += [
+        "spill_lon_deg, spill_lat_deg: the spill point in WGS84 degrees",
+        f"connectivity: {connectivity}",
+        "pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top",
+        "spills_to: id of the depression the overflow reaches next; 0 = an outlet",
+    ]
+    return write_table_csv(path, comments, table_columns(table, dem))
 
 
 def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[str, np.ndarray]) -> Path:
@@ -166,7 +183,9 @@ def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[
     screening caution among them. ``columns`` maps each header to a numpy array
     (all of one length); numbers are written as in ``depressions.csv`` (the
     shortest text that reads back as the same float32 or float64, empty for
-    NaN), string columns as they are.
+    NaN), text made safe for spreadsheets, mixed columns (dtype object) cell by
+    cell (:func:`cell_text`). The header too is made safe for spreadsheets: it
+    may hold names a user chose.
     """
     final = Path(path)
     arrays = {name: np.asarray(values) for name, values in columns.items()}
@@ -178,7 +197,7 @@ def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[
             for line in comments:
                 f.write(f"# {line}\n")
             writer = csv.writer(f, lineterminator="\n")
-            writer.writerow(arrays)
+            writer.writerow(spreadsheet_safe(str(name)) for name in arrays)
             if arrays and lengths.pop():
                 writer.writerows(zip(*(column_texts(a) for a in arrays.values())))
     return final
