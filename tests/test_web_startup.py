@@ -15,17 +15,16 @@ from __future__ import annotations
 import json
 import math
 import os
-import signal
 import subprocess
 import sys
 import textwrap
 import threading
-import time
 import urllib.request
 from pathlib import Path
 
 import pytest
 
+from tests.servers import serving
 from tests.web_support import Client, analysed_site, cell_centre, lonlat, make_app
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -91,29 +90,6 @@ def test_serving_requests_imports_no_module_of_sillmark(tmp_path, lowbank_tif):
     assert all(s == 200 for s in found["statuses"]), dict(zip(urls, found["statuses"]))
 
 
-def _free_port() -> int:
-    import socket
-
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def _wait_until_listening(port: int, server: subprocess.Popen, timeout: float = 60.0) -> None:
-    deadline = time.monotonic() + timeout
-    import socket
-
-    while time.monotonic() < deadline:
-        if server.poll() is not None:
-            raise AssertionError(f"the server exited early: {server.stderr.read().decode()[-2000:]}")
-        with socket.socket() as s:
-            s.settimeout(0.2)
-            if s.connect_ex(("127.0.0.1", port)) == 0:
-                return
-        time.sleep(0.05)
-    raise AssertionError("the server did not start listening")
-
-
 def _burst(base: str, urls: list[str]) -> dict[str, int]:
     """Every URL at the same instant, one thread each; their statuses."""
     gate = threading.Barrier(len(urls))
@@ -143,22 +119,10 @@ def test_a_fresh_server_answers_simultaneous_first_requests(tmp_path, lowbank_ti
     site_id = analysed_site(client, lowbank_tif)
     (data / "config.py").write_text("REGISTER_DEMO = False\n")
     urls = first_request_urls(site_id)
+    env = {**os.environ, "PYTHONDONTWRITEBYTECODE": "1"}
     for attempt in range(3):  # the race showed on about half of the restarts
-        port = _free_port()
-        server = subprocess.Popen(
-            [sys.executable, "-m", "sillmark", "serve", "--data", str(data), "--port", str(port)],
-            cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, start_new_session=True,
-            env={**os.environ, "PYTHONDONTWRITEBYTECODE": "1"})
-        try:
-            _wait_until_listening(port, server)
-            statuses = _burst(f"http://127.0.0.1:{port}", urls)
+        with serving(data, env=env) as base:
+            statuses = _burst(base, urls)
             assert statuses == {u: 200 for u in urls}, (attempt, statuses)
-            again = _burst(f"http://127.0.0.1:{port}", urls[:6])
+            again = _burst(base, urls[:6])
             assert set(again.values()) == {200}, (attempt, again)
-        finally:
-            os.killpg(server.pid, signal.SIGTERM)
-            try:
-                server.wait(20)
-            except subprocess.TimeoutExpired:  # pragma: no cover - only if it hangs
-                os.killpg(server.pid, signal.SIGKILL)
-            server.stderr.close()

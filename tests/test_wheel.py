@@ -14,17 +14,15 @@ from __future__ import annotations
 import json
 import os
 import shutil
-import signal
-import socket
 import subprocess
 import sys
 import sysconfig
-import time
 import urllib.request
 from pathlib import Path
 
 import pytest
 
+from tests.servers import serving
 from tests.web_support import write_lowbank
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -96,46 +94,21 @@ def test_the_installed_command_analyses_a_dem(installed, tmp_path):
     assert (out / "onset_stage.tif").stat().st_size > 0
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def _get(url: str) -> tuple[int, str, bytes]:
     with urllib.request.urlopen(url, timeout=30) as r:
         return r.status, r.headers.get("Content-Type", ""), r.read()
 
 
 def test_the_installed_server_serves_its_pages_and_static_files(installed, tmp_path):
-    data = tmp_path / "data"
-    port = _free_port()
-    server = subprocess.Popen([str(installed / "sillmark"), "serve", "--data", str(data), "--port", str(port)],
-                              cwd=tmp_path, env=_outside(tmp_path), stdout=subprocess.DEVNULL,
-                              stderr=subprocess.PIPE, start_new_session=True)
-    try:
-        deadline = time.monotonic() + 60
-        while True:
-            assert server.poll() is None, server.stderr.read().decode()[-3000:]
-            try:
-                status, kind, body = _get(f"http://127.0.0.1:{port}/")
-                break
-            except OSError:
-                assert time.monotonic() < deadline, "the installed server did not answer"
-                time.sleep(0.2)
+    with serving(tmp_path / "data", command=[str(installed / "sillmark")], cwd=tmp_path,
+                 env=_outside(tmp_path)) as base:
+        status, kind, body = _get(f"{base}/")
         assert status == 200 and kind.startswith("text/html")
         assert b"Sillmark" in body and b"screening analysis" in body.lower()
-        status, kind, body = _get(f"http://127.0.0.1:{port}/sites/new")
+        status, kind, body = _get(f"{base}/sites/new")
         assert status == 200 and b"<form" in body
         for path, expected in [("/static/css/sillmark.css", "text/css"),
                                ("/static/js/site.js", "javascript"),
                                ("/static/vendor/leaflet/leaflet.js", "javascript")]:
-            status, kind, body = _get(f"http://127.0.0.1:{port}{path}")
+            status, kind, body = _get(f"{base}{path}")
             assert status == 200 and expected in kind and len(body) > 500, path
-    finally:
-        os.killpg(server.pid, signal.SIGTERM)
-        try:
-            server.wait(20)
-        except subprocess.TimeoutExpired:  # pragma: no cover - only if it hangs
-            os.killpg(server.pid, signal.SIGKILL)
-        server.stderr.close()
