@@ -273,3 +273,44 @@ def test_fractal_survey_lists_no_depression_the_noise_made_alone():
     assert s.cell_ids(h)[96, 96] > 0
     assert np.array_equal(before[0], t.elevation)
     assert np.array_equal(before[1], noisy.onset_stage, equal_nan=True)
+
+
+def test_a_site_without_depressions_lists_none():
+    z = np.add.outer(np.arange(5), np.arange(6)).astype(np.float32)
+    h = depression_hierarchy(priority_flood(z, _edge(z.shape)))
+    s = significance(h)
+    assert len(h) == 0 and len(s) == 0
+    assert s.node_to_significant.tolist() == [0]
+    assert s.depression_to_significant.tolist() == [0]
+    assert not s.cell_ids(h).any()
+
+
+@pytest.mark.slow
+def test_kernel_runs_with_bounds_checking(tmp_path):
+    """The compiled loop, compiled afresh with numba's bounds checks on, on a
+    hierarchy with nesting, several trees and nodes in no significant one."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    script = (
+        "import numpy as np\n"
+        "from sillmark.engine.flood import priority_flood\n"
+        "from sillmark.products.hierarchy import depression_hierarchy\n"
+        "from sillmark.products.significance import significance, site_minimum\n"
+        "rng = np.random.default_rng(3)\n"
+        "z = rng.integers(0, 9, (25, 30)).astype(np.float32)\n"
+        "e = np.zeros(z.shape, bool); e[0] = e[-1] = True; e[:, 0] = e[:, -1] = True\n"
+        "h = depression_hierarchy(priority_flood(z, e))\n"
+        "for d in (0.0, 1.0, 3.0, 100.0):\n"
+        "    s = significance(h, site_minimum(min_depth=d))\n"
+        "    s.cell_ids(h)\n"
+        "print('ok', len(h))\n"
+    )
+    env = {**os.environ, "NUMBA_BOUNDSCHECK": "1", "NUMBA_CACHE_DIR": str(tmp_path)}
+    done = subprocess.run([sys.executable, "-c", script], cwd=root, env=env,
+                          capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert done.stdout.startswith("ok")
