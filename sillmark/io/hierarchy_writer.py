@@ -24,7 +24,9 @@ Steps
    in a scratch file. Back go counts only.
 3. **Format each batch** (one task per batch): with the node and depression
    offsets of the batches before it, the batch's rows of the three files are
-   written as text into scratch part files.
+   written as text into scratch part files. Without ``map`` the batches run in
+   order in this process, so each is formatted as soon as it is built, its
+   tables never written to scratch.
 4. **Concatenate** (this process): each file is its head (comments, header;
    for the JSON the node count) and the batches' parts in order, written
    atomically. The scratch folder ``.sillmark-hierarchy-*`` inside the output
@@ -151,11 +153,11 @@ def _task_layers(source: "ResultSource") -> Any:
 # --------------------------------------------------------------------------- tasks
 
 
-def _hierarchy_task(job: _Job, k: int, first: int, last: int, window: tuple[int, int, int, int],
-                    areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
-                    spill_col: np.ndarray, cell_count: np.ndarray) -> dict:
-    """Step 2: the hierarchy of depressions ``first..last`` in their window, to scratch."""
-    t0 = time.perf_counter()
+def _built(job: _Job, first: int, last: int, window: tuple[int, int, int, int],
+           areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
+           spill_col: np.ndarray, cell_count: np.ndarray):
+    """The hierarchy of depressions ``first..last`` in their window: its node table,
+    its curve rows and its counts."""
     unit = VerticalUnit.parse(job.unit)
     hierarchy = batch_hierarchy(
         job.layers, first, last, window, areas=areas, spill_elevation=spill_elevation,
@@ -165,13 +167,24 @@ def _hierarchy_task(job: _Job, k: int, first: int, last: int, window: tuple[int,
     t = hierarchy.nodes
     curves = hx.curve_part_columns(hierarchy, unit, max_points=job.max_points,
                                    step_rows=job.step_rows)
+    counts = {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
+              "depth": tree_depth(t.parent)}
+    return t, curves, counts
+
+
+def _hierarchy_task(job: _Job, k: int, first: int, last: int, window: tuple[int, int, int, int],
+                    areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
+                    spill_col: np.ndarray, cell_count: np.ndarray) -> dict:
+    """Step 2 on a ``map``: the batch's hierarchy, its tables kept in a scratch file."""
+    t0 = time.perf_counter()
+    t, curves, counts = _built(job, first, last, window, areas, spill_elevation, spill_row,
+                               spill_col, cell_count)
     saved = {f"node_{name}": getattr(t, name) for name in _NODE_FIELDS}
     saved.update({f"curve_{j}": np.asarray(values, dtype=str if values.dtype == object else None)
                   for j, values in enumerate(curves.values())})
     with open(job.part(k, "tables.npz"), "wb") as f:
         np.savez(f, **saved)
-    return {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
-            "depth": tree_depth(t.parent), "task_s": time.perf_counter() - t0}
+    return {**counts, "task_s": time.perf_counter() - t0}
 
 
 def _shifted(t: HierarchyTable, node_offset: int, depression_offset: int) -> HierarchyTable:
@@ -185,25 +198,47 @@ def _shifted(t: HierarchyTable, node_offset: int, depression_offset: int) -> Hie
     )
 
 
-def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, grid: Any) -> dict:
+def _write_parts(job: _Job, k: int, table: HierarchyTable, curves: dict, node_offset: int,
+                 depression_offset: int, placed: Any) -> None:
     """Step 3: the batch's rows of the three files as text, with the site's ids."""
-    t0 = time.perf_counter()
     unit = VerticalUnit.parse(job.unit)
-    with np.load(job.part(k, "tables.npz"), allow_pickle=False) as saved:
-        table = HierarchyTable(**{name: saved[f"node_{name}"] for name in _NODE_FIELDS})
-        curves = {name: saved[f"curve_{j}"] for j, name in enumerate(job.curve_names)}
     table = _shifted(table, node_offset, depression_offset)
+    curves = dict(curves)
     curves["node_id"] = (curves["node_id"] + node_offset).astype(np.int32)
     curves["depression"] = (curves["depression"] + depression_offset).astype(np.int32)
     for what, text in (
-        ("nodes.csv", hx.csv_rows(hx.node_table_columns(table, unit, grid))),
+        ("nodes.csv", hx.csv_rows(hx.node_table_columns(table, unit, placed))),
         ("nodes.json", ",".join(hx.json_node_texts(table))),
         ("curves.csv", hx.csv_rows(curves)),
     ):
         with open(job.part(k, what), "w", encoding="utf-8", newline="") as f:
             f.write(text)
+
+
+def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, placed: Any) -> dict:
+    """Step 3 on a ``map``: the batch's parts from its scratch tables."""
+    t0 = time.perf_counter()
+    with np.load(job.part(k, "tables.npz"), allow_pickle=False) as saved:
+        table = HierarchyTable(**{name: saved[f"node_{name}"] for name in _NODE_FIELDS})
+        curves = {name: saved[f"curve_{j}"] for j, name in enumerate(job.curve_names)}
+    _write_parts(job, k, table, curves, node_offset, depression_offset, placed)
     os.remove(job.part(k, "tables.npz"))
     return {"task_s": time.perf_counter() - t0}
+
+
+def _serial_batches(job: _Job, calls: list, placed: Any, report) -> list[dict]:
+    """Steps 2 and 3 in this process, batch after batch: each batch is formatted as
+    soon as it is built (the node offset is known), without scratch tables."""
+    done, nodes = [], 0
+    report("hierarchy", 0, len(calls))
+    for job_, k, first, *rest in calls:
+        t0 = time.perf_counter()
+        t, curves, counts = _built(job_, first, *rest)
+        _write_parts(job_, k, t, curves, nodes, first - 1, placed)
+        nodes += counts["nodes"]
+        done.append({**counts, "task_s": time.perf_counter() - t0})
+        report("hierarchy", len(done), len(calls))
+    return done
 
 
 def _empty_hierarchy(job: _Job):
@@ -252,8 +287,9 @@ def write_hierarchy_files(
     progress : callable, optional, keyword-only
         ``progress(step, done, total)``: step ``"hierarchy"`` counts batches
         (after each batch when ``map`` is None, else before and after the
-        whole map), ``"hierarchy_files"`` the batches formatted, the same
-        way, and ``"hierarchy_write"`` the three files written.
+        whole map), ``"hierarchy_files"`` the batches formatted (before and
+        after; without ``map`` they are formatted with the ``"hierarchy"``
+        step), and ``"hierarchy_write"`` the three files written.
     window_cells : int, optional, keyword-only
         Cell budget of a batch's window. Default: the whole grid for an
         :class:`~sillmark.products.source.ArraySource` (one batch), else
@@ -324,16 +360,9 @@ def write_hierarchy_files(
             progress(step, done, total)
 
     def run_tasks(step: str, fn, calls: list) -> list:
-        total = len(calls)
-        report(step, 0, total)
-        if map is None:
-            results = []
-            for args in calls:
-                results.append(fn(*args))
-                report(step, len(results), total)
-        else:
-            results = list(map(fn, calls))
-            report(step, len(calls), total)
+        report(step, 0, len(calls))
+        results = list(map(fn, calls))
+        report(step, len(calls), len(calls))
         return results
 
     t0 = time.perf_counter()
@@ -346,6 +375,7 @@ def write_hierarchy_files(
                step_rows=hx.STEP_ROWS)
     empty = _empty_hierarchy(job)
     job = dataclasses.replace(job, curve_names=tuple(hx.curve_part_columns(empty, unit)))
+    placed = _Placed(grid.crs)
     try:
         t0 = time.perf_counter()
         calls = []
@@ -353,26 +383,32 @@ def write_hierarchy_files(
             sl = slice(first - 1, last)
             calls.append((job, k, first, last, (r0, r1, c0, c1), row_areas[r0:r1],
                           spill_elevation[sl], spill_row[sl], spill_col[sl], cell_count[sl]))
-        built = run_tasks("hierarchy", _hierarchy_task, calls)
-        times["batches"] = time.perf_counter() - t0
+        if map is None:
+            built = _serial_batches(job, calls, placed, report)
+            times["batches"] = time.perf_counter() - t0
+            report("hierarchy_files", 0, len(built))  # formatted along the way
+            report("hierarchy_files", len(built), len(built))
+        else:
+            built = run_tasks("hierarchy", _hierarchy_task, calls)
+            times["batches"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            offsets = np.cumsum([0] + [b["nodes"] for b in built])
+            run_tasks("hierarchy_files", _format_task,
+                      [(job, k, int(offsets[k]), int(batches[k, 0]) - 1, placed)
+                       for k in range(len(built))])
+            times["format"] = time.perf_counter() - t0
         times["batch_tasks"] = sum(b["task_s"] for b in built)
+        nodes = sum(b["nodes"] for b in built)
 
         t0 = time.perf_counter()
-        node_offsets = np.concatenate(([0], np.cumsum([b["nodes"] for b in built]))).astype(int)
-        calls = [(job, k, int(node_offsets[k]), int(batches[k, 0]) - 1, _Placed(grid.crs))
-                 for k in range(len(built))]
-        run_tasks("hierarchy_files", _format_task, calls)
-        times["format"] = time.perf_counter() - t0
-
-        t0 = time.perf_counter()
-        files = _concatenate(out, job, grid, len(built), int(node_offsets[-1]), empty, report)
+        files = _concatenate(out, job, grid, len(built), nodes, empty, report)
         times["write"] = time.perf_counter() - t0
     finally:
         if not keep_scratch:
             shutil.rmtree(scratch, ignore_errors=True)
     windows = (batches[:, 3] - batches[:, 2]) * (batches[:, 5] - batches[:, 4])
     return HierarchyFiles(
-        files=files, nodes=int(node_offsets[-1]), pits=sum(b["pits"] for b in built),
+        files=files, nodes=nodes, pits=sum(b["pits"] for b in built),
         depth=max((b["depth"] for b in built), default=0), batches=len(built),
         window_cells=int(windows.max(initial=0)), seconds=times,
     )
