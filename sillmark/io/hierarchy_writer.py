@@ -110,7 +110,9 @@ class HierarchyFiles:
     window_cells : int
         Cells of the largest window read.
     seconds : dict
-        Wall time of each step (``bounds``, ``batches``, ``format``, ``write``).
+        Wall time of each step: ``bounds``, ``batches`` (with the formatting when
+        ``map`` is None), ``batch_tasks`` (summed over the tasks), ``format``
+        (with a ``map`` only) and ``write``.
     """
 
     files: list
