@@ -11,7 +11,7 @@
    task arguments sent, results gathered and the workers' own outgoing bytes.
    Then, as ``sillmark analyse --tiles`` does, the depression outlines
    (:func:`sillmark.io.results_folder.add_depression_outlines`, in this process)
-   and the three hierarchy files (:func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy`
+   and the three hierarchy files (:func:`sillmark.io.results_folder.add_hierarchy_files`
    on the same cluster), timed apart: the engine's rate is the issue's target,
    the rate over all eleven files is what a user of the command waits for.
 3. Crops CROP x CROP cells from the terrain and checks that the tiled engine on
@@ -202,15 +202,14 @@ def all_files(run, dem_path: Path, out: Path, run_map, engine_wall: float) -> di
     """The outlines and the hierarchy files after the engine, as ``analyse --tiles``
     writes them; times, sizes and the rate over everything."""
     from sillmark.grid.dem import read_dem_grid
-    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
-    from sillmark.io.results_folder import add_depression_outlines
+    from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 
     grid = read_dem_grid(dem_path)
     t0 = time.perf_counter()
     files = add_depression_outlines(run, grid, out)
     outlines = time.perf_counter() - t0
     t0 = time.perf_counter()
-    hierarchy = write_tiled_hierarchy(out, map=run_map, grid=grid)
+    hierarchy = add_hierarchy_files(out, map=run_map, grid=grid)
     tree = time.perf_counter() - t0
     wall = engine_wall + outlines + tree
     sizes = {p.name: p.stat().st_size for p in [*files, *hierarchy.files]}

@@ -5,12 +5,13 @@
 Writes the terrain of bench/bench_tiled.py (size x size float32) to a temporary
 folder, runs the tiled engine on it once, then in fresh processes:
 
-- out of core: :func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy` on the
+- out of core: :func:`sillmark.io.results_folder.add_hierarchy_files` on the
   folder (serial, one batch after another; the DEM check of the folder is
-  timed apart);
-- in memory: read the DEM, flood it, then :func:`sillmark.products.hierarchy.site_hierarchy`
-  and the three writers of :mod:`sillmark.io.hierarchy_files` (only these two
-  timed).
+  skipped by giving the grid);
+- in memory: read the DEM, flood it, then
+  :func:`sillmark.io.hierarchy_writer.write_hierarchy_files` on the result as an
+  :class:`~sillmark.products.source.ArraySource` (only this timed; the time of
+  :func:`sillmark.products.hierarchy.site_hierarchy` alone is printed beside it).
 
 Prints wall times, each process's peak resident memory (VmHWM) and whether the
 three files are the same bytes.
@@ -41,34 +42,33 @@ def _peak_mib() -> float:
 def out_of_core(folder: str, window_cells: int) -> dict:
     from sillmark.grid.dem import read_dem_grid
     from sillmark.io.summary import read_summary
-    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
+    from sillmark.io.results_folder import add_hierarchy_files
 
     grid = read_dem_grid(read_summary(folder).dem)
     t0 = time.perf_counter()
-    run = write_tiled_hierarchy(folder, grid=grid, window_cells=window_cells)
+    run = add_hierarchy_files(folder, grid=grid, window_cells=window_cells)
     return {"seconds": time.perf_counter() - t0, "steps": run.seconds, "batches": run.batches,
             "nodes": run.nodes, "largest_window": run.window_cells, "peak_mib": _peak_mib()}
 
 
 def in_memory(dem_path: str, out: str) -> dict:
-    from sillmark.io import hierarchy_files as hx
     from sillmark.grid.dem import read_dem
     from sillmark.engine.flood import analyse_site
+    from sillmark.io.hierarchy_writer import write_hierarchy_files
     from sillmark.products.hierarchy import site_hierarchy
+    from sillmark.products.source import ArraySource
     from sillmark.grid.outlets import build_outlets
 
     dem = read_dem(dem_path)
     result = analyse_site(dem, build_outlets(dem, ["edge"]))
     Path(out).mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
-    h = site_hierarchy(dem, result)
+    written = write_hierarchy_files(ArraySource(dem, result), out)
     t1 = time.perf_counter()
-    for name, write in zip(hx.HIERARCHY_FILE_NAMES,
-                           (hx.write_hierarchy_csv, hx.write_hierarchy_json, hx.write_curves_csv)):
-        write(h, dem, Path(out) / name)
+    site_hierarchy(dem, result)
     t2 = time.perf_counter()
-    return {"hierarchy_s": t1 - t0, "writers_s": t2 - t1, "seconds": t2 - t0,
-            "nodes": len(h), "peak_mib": _peak_mib()}
+    return {"seconds": t1 - t0, "steps": written.seconds, "hierarchy_s": t2 - t1,
+            "nodes": written.nodes, "peak_mib": _peak_mib()}
 
 
 def _child(*args: str) -> dict:
@@ -109,9 +109,10 @@ def main() -> None:
     steps = ", ".join(f"{k} {v:.2f} s" for k, v in tiled["steps"].items())
     print(f"out of core: {tiled['seconds']:.2f} s ({steps}); {tiled['batches']} batches, largest "
           f"window {tiled['largest_window']:,} cells; peak {tiled['peak_mib']:.0f} MiB")
-    print(f"in memory:   {memory['seconds']:.2f} s (site_hierarchy {memory['hierarchy_s']:.2f} s, "
-          f"writers {memory['writers_s']:.2f} s); peak {memory['peak_mib']:.0f} MiB (process, "
-          "with the DEM and the flood)")
+    steps = ", ".join(f"{k} {v:.2f} s" for k, v in memory["steps"].items())
+    print(f"in memory:   {memory['seconds']:.2f} s ({steps}; site_hierarchy alone "
+          f"{memory['hierarchy_s']:.2f} s); peak {memory['peak_mib']:.0f} MiB (process, with "
+          "the DEM and the flood)")
 
 
 if __name__ == "__main__":

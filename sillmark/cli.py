@@ -525,7 +525,7 @@ def _summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], strea
 
 def _hierarchy_line(hierarchy) -> str:
     """Nodes, pits and nesting depth of the depression hierarchy (in memory, or the
-    counts of sillmark.products.tiled_hierarchy.TiledHierarchy)."""
+    counts of sillmark.io.hierarchy_writer.HierarchyFiles)."""
     if hasattr(hierarchy, "depth"):
         nodes, pits, levels = hierarchy.nodes, hierarchy.pits, hierarchy.depth
     else:
@@ -964,7 +964,7 @@ def _run_analyse(args: argparse.Namespace) -> int:
         out_dir = Path(args.out)
         hierarchy = site_hierarchy(dem, result)
         with _staged_output(out_dir) as staging:
-            written = write_results(result, dem, outlets, staging, hierarchy=hierarchy, progress=progress.file)
+            written = write_results(result, dem, outlets, staging, progress=progress.file)
         files = [out_dir / p.name for p in written]
         progress.done()
     finally:
@@ -976,7 +976,7 @@ def _run_analyse(args: argparse.Namespace) -> int:
 
 _TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
                  "join": "join depressions", "write": "write"}
-#: Steps of sillmark.products.tiled_hierarchy.write_tiled_hierarchy (``analyse --tiles``).
+#: Steps of sillmark.io.hierarchy_writer.write_hierarchy_files (``analyse --tiles``).
 _HIERARCHY_STEPS = {"hierarchy": "depression hierarchy", "hierarchy_files": "format hierarchy",
                     "hierarchy_write": "write hierarchy files"}
 
@@ -1031,9 +1031,8 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     hierarchy files in windows of depressions on the same cluster."""
     import types
 
-    from sillmark.io.results_folder import add_depression_outlines
+    from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
     from sillmark.io.summary import FILE_NAMES
-    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
 
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
@@ -1044,7 +1043,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
         files = add_depression_outlines(run, grid, folder)
         progress.done()
         # After the outlines: their summary.json is the one the hierarchy adds to.
-        hierarchy = write_tiled_hierarchy(folder, map=run_map, progress=step, grid=grid)
+        hierarchy = add_hierarchy_files(folder, map=run_map, progress=step, grid=grid)
         by_name = {p.name: p for p in [*files, *hierarchy.files]}
         return [by_name[n] for n in FILE_NAMES if n in by_name], hierarchy
 

@@ -15,8 +15,10 @@ from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidParameter
 from sillmark.io.summary import FILE_NAMES
 from sillmark.io.export import write_results
+from sillmark.io.hierarchy_writer import write_hierarchy_files
 from sillmark.engine.flood import analyse_site
 from sillmark.products.hierarchy import site_hierarchy
+from sillmark.products.source import ArraySource
 from sillmark.grid.outlets import build_outlets
 from sillmark.units import ACRE_FOOT_M3
 from tests.rasters import grid
@@ -42,6 +44,14 @@ def site(z: np.ndarray, *, unit: str = "m", cell: float = 2.0):
     return dem, site_hierarchy(dem, result)
 
 
+def write_files(z: np.ndarray, out: Path, *, unit: str = "m", cell: float = 2.0):
+    """The site's hierarchy and its three files written into ``out`` by the one writer."""
+    dem = dem_from_array(z, transform=grid(cell), vertical_unit=unit)
+    result = analyse_site(dem, build_outlets(dem, ("edge",)))
+    written = write_hierarchy_files(ArraySource(dem, result), out)
+    return dem, site_hierarchy(dem, result), dict(zip(("csv", "json", "curves"), written.files))
+
+
 @pytest.fixture(scope="module")
 def nested():
     return site(nested_elevation())
@@ -49,13 +59,9 @@ def nested():
 
 @pytest.fixture(scope="module")
 def files(nested, tmp_path_factory):
-    dem, h = nested
     out = tmp_path_factory.mktemp("hierarchy")
-    paths = {
-        "csv": he.write_hierarchy_csv(h, dem, out / he.HIERARCHY_CSV),
-        "json": he.write_hierarchy_json(h, dem, out / he.HIERARCHY_JSON),
-        "curves": he.write_curves_csv(h, dem, out / he.CURVES_CSV),
-    }
+    _, h, paths = write_files(nested_elevation(), out)
+    assert [p.name for p in paths.values()] == list(he.HIERARCHY_FILE_NAMES)
     return out, paths
 
 
@@ -194,9 +200,8 @@ def test_a_large_unrounded_depression_keeps_the_file_small(tmp_path):
     rng = np.random.default_rng(7)
     z = np.full((62, 62), 30.0, dtype=np.float32)
     z[1:-1, 1:-1] = (10.0 + 5.0 * rng.random((60, 60))).astype(np.float32)
-    dem, h = site(z, cell=1.0)
-    path = he.write_curves_csv(h, dem, tmp_path / he.CURVES_CSV)
-    _, rows = read_table(path)
+    dem, h, paths = write_files(z, tmp_path, cell=1.0)
+    _, rows = read_table(paths["curves"])
     per_node: dict[int, list] = {}
     for r in rows:
         per_node.setdefault(int(r["node_id"]), []).append(r)
@@ -219,35 +224,47 @@ def test_feet_site_names_its_units_and_adds_acre_feet(tmp_path):
     np.testing.assert_allclose(cols["storage_acre_ft"], cols["storage_m3"] / ACRE_FOOT_M3)
     table = he.hierarchy_columns(h, dem)
     assert "spill_elevation_ft" in table and "volume_acre_ft" in table
-    doc = json.loads(he.write_hierarchy_json(h, dem, tmp_path / "h.json").read_text())
+    _, _, paths = write_files(nested_elevation(), tmp_path, unit="ft")
+    doc = json.loads(paths["json"].read_text())
     assert doc["units"]["pit_elevation"] == "ft" and doc["vertical_unit"] == "ft"
+    _, rows = read_table(paths["curves"])
+    assert "storage_acre_ft" in rows[0] and "elevation_ft" in rows[0]
 
 
 def test_a_site_without_depressions_writes_empty_files(tmp_path):
-    dem, h = site(np.arange(48, dtype=np.float32).reshape(6, 8))
+    dem, h, paths = write_files(np.arange(48, dtype=np.float32).reshape(6, 8), tmp_path)
     assert len(h) == 0
-    for writer, name in ((he.write_hierarchy_csv, he.HIERARCHY_CSV), (he.write_curves_csv, he.CURVES_CSV)):
-        comments, rows = read_table(writer(h, dem, tmp_path / name))
+    for path in (paths["csv"], paths["curves"]):
+        comments, rows = read_table(path)
         assert rows == [] and f"# CAUTION: {SCREENING_CAUTION}" in comments
-    doc = json.loads(he.write_hierarchy_json(h, dem, tmp_path / he.HIERARCHY_JSON).read_text())
+    doc = json.loads(paths["json"].read_text())
     assert doc["nodes"] == [] and doc["caution"] == SCREENING_CAUTION
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # scratch removed
 
 
 def test_a_hierarchy_of_another_dem_is_refused(nested, tmp_path):
-    _, h = nested
+    dem, h = nested
     other = dem_from_array(np.zeros((3, 3), dtype=np.float32))
     with pytest.raises(InvalidParameter, match="compute it from a result on this DEM"):
-        he.write_hierarchy_csv(h, other, tmp_path / "x.csv")
+        he.hierarchy_columns(h, other)
     feet = dem_from_array(nested_elevation(), transform=grid(2.0), vertical_unit="ft")
     with pytest.raises(InvalidParameter, match="vertical unit"):
-        he.write_curves_csv(h, feet, tmp_path / "x.csv")
+        he.curve_columns(h, feet)
+    # The writer is given a result and its DEM together: a result of another grid is refused.
+    result = analyse_site(dem, build_outlets(dem, ("edge",)))
+    with pytest.raises(InvalidParameter, match="computed on this DEM"):
+        write_hierarchy_files(ArraySource(other, result), tmp_path)
+    with pytest.raises(InvalidParameter, match="window_cells"):
+        write_hierarchy_files(ArraySource(dem, result), tmp_path, window_cells=0)
+    with pytest.raises(InvalidParameter, match="give a folder"):
+        write_hierarchy_files(ArraySource(dem, result), tmp_path / "missing")
     assert list(tmp_path.iterdir()) == []
 
 
 # --------------------------------------------------------------------------- with the other results
 
 
-def test_write_results_adds_the_three_files_before_the_summary(nested, tmp_path):
+def test_write_results_adds_the_three_files_before_the_summary(nested, files, tmp_path):
     dem, h = nested
     result = analyse_site(dem, build_outlets(dem, ("edge",)))
     outlets = build_outlets(dem, ("edge",))
@@ -255,10 +272,10 @@ def test_write_results_adds_the_three_files_before_the_summary(nested, tmp_path)
     names = [p.name for p in paths]
     assert names[-4:] == [*he.HIERARCHY_FILE_NAMES, "summary.json"] and names == list(FILE_NAMES)
     assert json.loads((tmp_path / "a" / "summary.json").read_text())["files"] == names
-    # A hierarchy the caller already has gives the same files.
-    write_results(result, dem, outlets, tmp_path / "b", hierarchy=h)
+    # The files of the one hierarchy writer, whose contents the tests above read.
     for name in he.HIERARCHY_FILE_NAMES:
-        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
+        assert (tmp_path / "a" / name).read_bytes() == (files[0] / name).read_bytes()
+    assert not [p for p in (tmp_path / "a").iterdir() if p.name.startswith(".")]
 
 
 # --------------------------------------------------------------------------- row texts

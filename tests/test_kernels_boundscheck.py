@@ -50,7 +50,7 @@ SCRIPT = textwrap.dedent(
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.
     import tempfile
     from sillmark.engine.tiled import analyse_tiled
-    from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
+    from sillmark.io.results_folder import add_hierarchy_files
     from tests.rasters import write_raster
     with tempfile.TemporaryDirectory() as tmp:
         z = rng.integers(0, 6, (13, 11)).astype(np.float32)
@@ -60,7 +60,7 @@ SCRIPT = textwrap.dedent(
         for conn, tile in ((8, 3), (4, 4)):
             analyse_tiled(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
                           connectivity=conn, tile_size=tile)
-            write_tiled_hierarchy(Path(tmp) / f"out{conn}", window_cells=6)
+            add_hierarchy_files(Path(tmp) / f"out{conn}", window_cells=6)
     print("bounds ok")
     """
 )

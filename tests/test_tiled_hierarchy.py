@@ -1,19 +1,22 @@
-"""The hierarchy files out of core (sillmark.products.tiled_hierarchy) against the in-memory files.
+"""The hierarchy files of a results folder (read by windows) against those of the result in memory.
 
 The reference is Sillmark's own in-memory path on the same DEM and outlets:
-:func:`sillmark.engine.flood.priority_flood`, :func:`sillmark.products.hierarchy.site_hierarchy`
-and the writers of :mod:`sillmark.io.hierarchy_files` (the in-memory hierarchy is
-checked elsewhere against hand-worked DEMs, a separate basin construction after
-Barnes, Callaghan & Wickert 2020, and closed-form volumes). The three files
-written from a tiled folder, window of depressions by window, must be the same
-bytes, for any tile size and any batch budget: these files hold no creation time.
+:func:`sillmark.engine.flood.priority_flood` and
+:func:`sillmark.io.hierarchy_writer.write_hierarchy_files` on an
+:class:`~sillmark.products.source.ArraySource`, one window of the whole grid,
+whose hierarchy is :func:`sillmark.products.hierarchy.site_hierarchy` (checked
+elsewhere against hand-worked DEMs, a separate basin construction after Barnes,
+Callaghan & Wickert 2020, and closed-form volumes; its JSON against
+``to_json`` below). The three files written from a tiled folder, window of
+depressions by window (in this process or on a Dask cluster), must be the same
+bytes, for any tile size and any batch budget, and so must the files of the
+array source cut into small batches: these files hold no creation time.
 """
 
 from __future__ import annotations
 
 import json
 import shutil
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -21,31 +24,38 @@ import rasterio
 from affine import Affine
 
 from sillmark.io import hierarchy_files as hx
+from sillmark.io.hierarchy_writer import write_hierarchy_files
+from sillmark.io.results_folder import add_hierarchy_files, open_result_folder
 from sillmark.grid.dem import read_dem
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.engine.flood import priority_flood
 from sillmark.products.hierarchy import site_hierarchy
 from sillmark.grid.outlets import build_outlets
 from sillmark.engine.tiled import analyse_tiled
-from sillmark.products.tiled_hierarchy import hierarchy_batches, write_tiled_hierarchy
+from sillmark.products.hierarchy_windows import hierarchy_batches
+from sillmark.products.source import ArraySource
 from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
 from tests.test_flood import synthetic_terrain
 from tests.test_hierarchy import THREE_LEVELS
 
-WRITERS = (hx.write_hierarchy_csv, hx.write_hierarchy_json, hx.write_curves_csv)
-
-
-def reference_files(path, folder, *, specs=("edge",), connectivity=8):
-    """The three files of the in-memory path, in ``folder``; returns the hierarchy."""
+def in_memory(path, *, specs=("edge",), connectivity=8):
+    """The DEM and the in-memory result as an array source."""
     dem = read_dem(path)
     outlets = build_outlets(dem, list(specs), connectivity=connectivity)
     r = priority_flood(dem.elevation, outlets.mask, connectivity=connectivity,
                        row_areas=dem.row_areas, transform=dem.transform)
-    h = site_hierarchy(dem, r)
+    return ArraySource(dem, r)
+
+
+def reference_files(path, folder, *, specs=("edge",), connectivity=8):
+    """The three files of the in-memory path, in ``folder``; returns the hierarchy."""
+    source = in_memory(path, specs=specs, connectivity=connectivity)
+    h = site_hierarchy(source.dem, source.result)
     folder.mkdir(parents=True, exist_ok=True)
-    for name, write in zip(hx.HIERARCHY_FILE_NAMES, WRITERS):
-        write(h, dem, folder / name)
+    written = write_hierarchy_files(source, folder)
+    assert written.batches == min(1, len(h))  # the whole grid fits the default budget
+    assert (written.nodes, written.pits) == (len(h), len(h.leaves))
     return h
 
 
@@ -68,13 +78,19 @@ def check(path, tmp_path, *, specs=("edge",), connectivity=8, tiles=(16,), budge
     in-memory hierarchy."""
     ref = tmp_path / f"ref_{connectivity}"
     h = reference_files(path, ref, specs=specs, connectivity=connectivity)
+    source = in_memory(path, specs=specs, connectivity=connectivity)
+    for budget in budgets:  # the array source cut into batches too
+        cut = tmp_path / f"memory_{connectivity}_{budget}"
+        cut.mkdir(exist_ok=True)
+        write_hierarchy_files(source, cut, window_cells=budget)
+        assert_same_files(cut, ref)
     for tile in tiles:
         out = tiled_folder(path, tmp_path / f"tiled_{tile}_{connectivity}", specs=specs,
                            connectivity=connectivity, tile=tile, map=map)
         for budget in budgets:
             for name in hx.HIERARCHY_FILE_NAMES:
                 (out / name).unlink(missing_ok=True)
-            run = write_tiled_hierarchy(out, window_cells=budget, map=map)
+            run = add_hierarchy_files(out, window_cells=budget, map=map)
             assert_same_files(out, ref)
             assert (run.nodes, run.pits) == (len(h), len(h.leaves))
             assert not [p for p in out.iterdir() if p.name.startswith(".")]  # scratch removed
@@ -201,7 +217,7 @@ def test_summary_lists_the_files_and_progress_counts_batches(terrain_tif, tmp_pa
     out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=32)
     before = json.loads((out / "summary.json").read_text())
     seen = []
-    run = write_tiled_hierarchy(out, window_cells=3000,
+    run = add_hierarchy_files(out, window_cells=3000,
                                 progress=lambda step, done, total: seen.append((step, done, total)))
     after = json.loads((out / "summary.json").read_text())
     assert after["files"] == ["onset_stage.tif", "fill_depth.tif", "depression_id.tif",
@@ -220,8 +236,9 @@ def test_batches_are_runs_of_consecutive_ids_covering_their_depressions(terrain_
     with rasterio.open(out / "depression_id.tif") as ds:
         ids = ds.read(1)
     count = int(ids.max())
+    folder = open_result_folder(out)
     for budget in (1, 900, 5000):
-        b = hierarchy_batches(out / "depression_id.tif", count, window_cells=budget)
+        b = hierarchy_batches(folder, window_cells=budget)
         assert b[0, 0] == 1 and b[-1, 1] == count and np.array_equal(b[1:, 0], b[:-1, 1] + 1)
         for first, last, r0, r1, c0, c1 in b.tolist():
             inside = np.zeros_like(ids, dtype=bool)
@@ -239,11 +256,11 @@ def test_files_that_do_not_belong_together_are_refused(terrain_tif, tmp_path):
                          tmp_path / "other", tile=32)
     shutil.copy(other / "depressions.csv", out / "depressions.csv")
     with pytest.raises(InvalidParameter, match="do not belong together|cell counts"):
-        write_tiled_hierarchy(out, grid=_grid(terrain_tif))
+        add_hierarchy_files(out, grid=_grid(terrain_tif))
     assert not (out / hx.HIERARCHY_CSV).exists()
     assert not [p for p in out.iterdir() if p.name.startswith(".")]
     with pytest.raises(InvalidParameter, match="window_cells"):
-        write_tiled_hierarchy(other, window_cells=0)
+        add_hierarchy_files(other, window_cells=0)
 
 
 def test_a_changed_dem_is_refused(tmp_path):
@@ -252,7 +269,7 @@ def test_a_changed_dem_is_refused(tmp_path):
     out = tiled_folder(path, tmp_path / "tiled", tile=16)
     write_raster(path, z + 0.5)
     with pytest.raises(InvalidDEM, match="changed"):
-        write_tiled_hierarchy(out)
+        add_hierarchy_files(out)
     assert not (out / hx.HIERARCHY_CSV).exists()
 
 
@@ -314,20 +331,48 @@ def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_addre
     assert not [p for p in tiled.iterdir() if p.name.startswith(".")]
 
 
+def test_a_folder_in_small_windows_on_a_cluster_gives_the_in_memory_files(cluster_address,
+                                                                          terrain_tif, tmp_path):
+    # The tiled engine and the hierarchy batches on a two-worker cluster, with a
+    # budget that cuts the depressions into many windows; each task is sent a
+    # reader of the folder (path and DEM grid) and its batch's rows only, never
+    # the depression table or a raster.
+    import pickle
+
+    from sillmark.engine.tiled import DaskMap
+    from distributed import Client
+
+    ref = tmp_path / "ref"
+    reference_files(terrain_tif, ref)
+    with Client(cluster_address) as client:
+        run_map = DaskMap(client)
+        out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=40, map=run_map)
+        table_bytes = len(pickle.dumps(open_result_folder(out).depressions))
+        before = run_map.sent_bytes
+        run = add_hierarchy_files(out, map=run_map, window_cells=2000)
+        sent = run_map.sent_bytes - before
+    assert_same_files(out, ref)
+    assert run.batches > 10
+    per_task = sent / (2 * run.batches)  # a hierarchy task and a format task per batch
+    assert per_task < 16_000 and per_task < table_bytes / 4, (per_task, table_bytes)
+    assert not [p for p in out.iterdir() if p.name.startswith(".")]
+
+
 def test_batch_kernels_compiled_and_plain_python_agree(terrain_tif, tmp_path):
     # The compiled batch cutter against its own plain-Python loop (the same source
     # run by the interpreter). tests/test_kernels_boundscheck.py runs both kernels
-    # of sillmark.products._tiled_hierarchy_kernels once more with numba's index checks on.
-    from sillmark.products import _tiled_hierarchy_kernels as kernels
-    from sillmark.products.tiled_hierarchy import _bounding_boxes
+    # of sillmark.products._hierarchy_windows_kernels once more with numba's index checks on.
+    from sillmark.products import _hierarchy_windows_kernels as kernels
+    from sillmark.products.hierarchy_windows import bounding_boxes
 
     out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=64)
     ids_path = out / "depression_id.tif"
     with rasterio.open(ids_path) as ds:
         ids = ds.read(1)
-    count, shape = int(ids.max()), ids.shape
-    expected = hierarchy_batches(ids_path, count, window_cells=900)
-    bounds = _bounding_boxes(ids_path, count, shape)
+    count = int(ids.max())
+    folder = open_result_folder(out)
+    expected = hierarchy_batches(folder, window_cells=900)
+    bounds = bounding_boxes(folder, count)
     assert np.array_equal(kernels.batches.py_func(*bounds, 900), expected)
     # Each depression's box, the direct way.
     for d in (1, count // 2, count):

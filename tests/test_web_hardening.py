@@ -17,8 +17,7 @@ import pytest
 from affine import Affine
 
 from tests.rasters import write_raster
-from tests.web_support import (TRANSFORM, Client, analysed_site, confirm, lowbank_elevation, make_app,
-                               upload_dem)
+from tests.web_support import (TRANSFORM, analysed_site, confirm, lowbank_elevation, upload_dem)
 
 
 def strict_json(text: str):

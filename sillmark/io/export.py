@@ -11,7 +11,8 @@
 ``depressions.geojson``     one (Multi)Polygon per depression, WGS84 lon/lat
 ``spill_points.geojson``    one Point per depression at its spill cell centre, WGS84
 ``depression_hierarchy.*``  the nested depressions, ``.csv`` and ``.json`` (see
-                            :mod:`sillmark.io.hierarchy_files`)
+                            :mod:`sillmark.io.hierarchy_files`, written by
+                            :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`)
 ``depression_curves.csv``   stage–area and stage–storage of every hierarchy node
 ``summary.json``            grid, outlets, totals, version, time and the list of files
 ==========================  ==========================================================
@@ -38,7 +39,8 @@ from typing import TYPE_CHECKING
 
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_crs
-from sillmark.io import hierarchy_files
+from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
+from sillmark.io.hierarchy_writer import write_hierarchy_files
 from sillmark.io.csv_tables import write_depressions_csv
 from sillmark.io.geojson import write_depressions_geojson, write_spill_points_geojson
 from sillmark.io.geotiff import (
@@ -50,7 +52,6 @@ from sillmark.io.geotiff import (
     write_onset_stage,
 )
 from sillmark.io.summary import FILE_NAMES, write_summary
-from sillmark.products.hierarchy import site_hierarchy
 from sillmark.products.source import ArraySource
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -187,7 +188,6 @@ def write_results(
     outlets: "Outlets",
     out_dir: str | os.PathLike,
     *,
-    hierarchy=None,
     progress: Progress | None = None,
 ) -> list[Path]:
     """Write every result file of one site run into ``out_dir``; return their paths.
@@ -203,10 +203,6 @@ def write_results(
     dem : DEM
     outlets : Outlets
     out_dir : path
-    hierarchy : DepressionHierarchy, optional, keyword-only
-        :func:`sillmark.products.hierarchy.site_hierarchy` of ``dem`` and ``result``, if the
-        caller has it already; computed here otherwise (a fraction of a second
-        for a few million cells).
     progress : callable, optional, keyword-only
         ``progress(file_name, done, total)``, see :data:`Progress`.
 
@@ -228,8 +224,8 @@ def write_results(
     -----
     Memory: one block of :data:`BLOCK_ROWS` rows per raster, a boolean mask of
     the grid while outlining depressions, and the outlines themselves; the
-    depression hierarchy when it is computed here (see
-    :func:`sillmark.products.hierarchy.depression_hierarchy`).
+    depression hierarchy, built in one window of the grid (see
+    :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`).
     """
     check_result_grid(result, dem)
     horizontal_crs(dem)  # fail before writing anything if there is no CRS
@@ -255,15 +251,19 @@ def write_results(
         step(FILE_NAMES[5], lambda: write_depressions_geojson(ArraySource(dem, result), out / FILE_NAMES[5])),
         step(FILE_NAMES[6], lambda: write_spill_points_geojson(result, dem, out / FILE_NAMES[6])),
     ]
-    if hierarchy is None:
-        hierarchy = site_hierarchy(dem, result)
-    writers = (
-        hierarchy_files.write_hierarchy_csv,
-        hierarchy_files.write_hierarchy_json,
-        hierarchy_files.write_curves_csv,
-    )
-    for name, writer in zip(hierarchy_files.HIERARCHY_FILE_NAMES, writers):
-        paths.append(step(name, lambda w=writer, n=name: w(hierarchy, dem, out / n)))
+    names = HIERARCHY_FILE_NAMES
+
+    def hierarchy_step(step: str, done: int, total: int) -> None:
+        # One file after another, as for the other files.
+        if progress is None or step != "hierarchy_write":
+            return
+        if done > 0:
+            progress(names[done - 1], 1, 1)
+        if done < total:
+            progress(names[done], 0, 1)
+
+    written = write_hierarchy_files(ArraySource(dem, result), out, progress=hierarchy_step)
+    paths.extend(written.files)
     summary_name = FILE_NAMES[-1]
     paths.append(
         step(

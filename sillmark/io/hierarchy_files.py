@@ -10,13 +10,13 @@
 =============================  ==========================================================
 
 The files follow the conventions of :mod:`sillmark.io.export` (``# `` comment lines
-before a CSV header, the screening caution in every file, atomic writes) and are
-written by :func:`sillmark.io.export.write_results` next to ``depressions.csv``;
-the ``depression`` column of the node table is the ``id`` of that file. Each
-file is a head and runs of rows (:func:`csv_head`, :func:`csv_rows`,
-:func:`hierarchy_json_head`, :func:`json_node_texts`), so that
-:mod:`sillmark.products.tiled_hierarchy` writes the same bytes from windows of
-depressions out of core.
+before a CSV header, the screening caution in every file, atomic writes) and lie
+next to ``depressions.csv``; the ``depression`` column of the node table is the
+``id`` of that file. This module holds the formats only: each file is a head and
+runs of rows (:func:`csv_head`, :func:`csv_rows`, :func:`hierarchy_json_head`,
+:func:`json_node_texts`), and :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`
+writes them, for a result in memory or a results folder, from windows of
+depressions.
 
 Curves
 ------
@@ -90,9 +90,6 @@ __all__ = [
     "json_node_texts",
     "node_table_columns",
     "write_csv_parts",
-    "write_curves_csv",
-    "write_hierarchy_csv",
-    "write_hierarchy_json",
     "write_json_parts",
 ]
 
@@ -175,8 +172,8 @@ def hierarchy_columns(hierarchy: DepressionHierarchy, dem: "DEM") -> dict[str, n
 def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dict[str, np.ndarray]:
     """:func:`hierarchy_columns` of a node table (or a run of its rows) in ``unit``.
 
-    Row by row the same values whatever rows the table holds, so the out-of-core
-    writer (:mod:`sillmark.products.tiled_hierarchy`) gives the file of the whole table
+    Row by row the same values whatever rows the table holds, so the writer
+    (:mod:`sillmark.io.hierarchy_writer`) gives the file of the whole table
     from its pieces. ``dem`` may be a :class:`~sillmark.grid.dem.DEMGrid`.
     """
     v = unit_suffix(unit)
@@ -222,17 +219,6 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dic
     return cols
 
 
-def write_hierarchy_csv(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
-    """Write ``depression_hierarchy.csv``: ``# `` comment lines, a header, one row per node.
-
-    Columns are those of :func:`hierarchy_columns`. Empty fields are values that
-    do not exist (a pit's merge elevation, a pit's children).
-    """
-    cols = hierarchy_columns(hierarchy, dem)
-    comments = hierarchy_csv_comments(hierarchy.unit, hierarchy.connectivity, dem)
-    return write_csv_parts(path, csv_head(comments, cols), [cols])
-
-
 def hierarchy_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM") -> list[str]:
     """The ``# `` comment lines of ``depression_hierarchy.csv``."""
     v = unit_suffix(unit)
@@ -250,19 +236,6 @@ def hierarchy_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM") ->
         "pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top; "
         "spill_lon_deg, spill_lat_deg: the spill cell in WGS84 degrees",
     ]
-
-
-def write_hierarchy_json(hierarchy: DepressionHierarchy, dem: "DEM", path: str | os.PathLike) -> Path:
-    """Write ``depression_hierarchy.json``: the flat :meth:`~sillmark.products.hierarchy.DepressionHierarchy.to_json`
-    document, with a ``name``, the Sillmark version, the CRS and a ``units``
-    member giving the unit of every node field that has one.
-
-    The float32 fields (elevations, depth) are written as the shortest decimals
-    that read back as the same float32 values; NaN (a pit's merge elevation) is null.
-    """
-    unit = _check(hierarchy, dem)
-    head = hierarchy_json_head(unit, hierarchy.connectivity, dem, len(hierarchy))
-    return write_json_parts(path, head, [json_node_texts(hierarchy.nodes)])
 
 
 def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_count: int) -> str:
@@ -308,9 +281,8 @@ def json_text(value) -> str:
 
 # --------------------------------------------------------------------------- streamed files
 #
-# Each file is a head, then its body in runs of rows (or nodes); the in-memory
-# writers pass the whole body as one run, the out-of-core writer one run (or a
-# part file) per window of depressions, so both give the same bytes.
+# Each file is a head, then its body in runs of rows (or nodes): one run (a part
+# file) per window of depressions, so any cut into windows gives the same bytes.
 
 
 def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
@@ -555,22 +527,6 @@ def curve_part_columns(
     if unit.is_feet:
         cols["storage_acre_ft"] = storage / ACRE_FOOT_M3
     return cols
-
-
-def write_curves_csv(
-    hierarchy: DepressionHierarchy,
-    dem: "DEM",
-    path: str | os.PathLike,
-    *,
-    max_points: int = MAX_CURVE_POINTS,
-    step_rows: int = STEP_ROWS,
-) -> Path:
-    """Write ``depression_curves.csv``: the columns of :func:`curve_columns`, after
-    ``# `` comment lines that say how to read between rows."""
-    cols = curve_columns(hierarchy, dem, max_points=max_points, step_rows=step_rows)
-    comments = curves_csv_comments(hierarchy.unit, hierarchy.connectivity, dem,
-                                   max_points=max_points, step_rows=step_rows)
-    return write_csv_parts(path, csv_head(comments, cols), [cols])
 
 
 def curves_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM", *,

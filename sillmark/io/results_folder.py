@@ -20,7 +20,7 @@ import decimal
 import json
 import math
 import os
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -32,6 +32,9 @@ from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.grid.dem import DEMGrid, read_dem_grid
 from sillmark.io.geojson import write_depressions_geojson
 from sillmark.io.geotiff import BLOCK_ROWS
+from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
+from sillmark.io.hierarchy_writer import DEFAULT_WINDOW_CELLS, HierarchyFiles, write_hierarchy_files
+from sillmark.io.json_values import write_json
 from sillmark.io.summary import FILE_NAMES, read_summary, write_table_summary
 from sillmark.products.inventory import table_columns
 from sillmark.products.outlines import DEFAULT_WINDOW
@@ -41,7 +44,14 @@ from sillmark.units import VerticalUnit, unit_suffix
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.tiled import TiledRun
 
-__all__ = ["ResultFolder", "add_depression_outlines", "open_result_folder", "read_depression_columns"]
+__all__ = [
+    "FolderLayers",
+    "ResultFolder",
+    "add_depression_outlines",
+    "add_hierarchy_files",
+    "open_result_folder",
+    "read_depression_columns",
+]
 
 # Columns of depressions.csv (sillmark.products.inventory.table_columns) held as float32:
 # the elevations and depths, stored as float32 by the engine.
@@ -96,6 +106,27 @@ def read_depression_columns(path: str | os.PathLike) -> dict[str, np.ndarray]:
         else:
             out[name] = np.array([float(t) if t else math.nan for t in texts], dtype=np.float64)
     return out
+
+
+@dataclasses.dataclass(frozen=True)
+class FolderLayers:
+    """The layers of a results folder, read window by window, without its depression table.
+
+    What a task on another process gets to read windows through (it pickles
+    small: the folder's path and the DEM's grid, no cells).
+    """
+
+    folder: Path
+    grid: DEMGrid
+
+    def window(self, layer: str, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        """``layer`` over rows ``r0:r1`` and columns ``c0:c1``, read from the folder's files."""
+        if layer == "elevation":
+            return self.grid.read_window(r0, r1, c0, c1)
+        if layer not in LAYER_FILES:
+            raise ValueError(f"unknown layer {layer!r}; a source has {', '.join(LAYERS)}")
+        with rasterio.open(self.folder / LAYER_FILES[layer]) as ds:
+            return ds.read(1, window=rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0))
 
 
 @dataclasses.dataclass(frozen=True)
@@ -157,14 +188,14 @@ class ResultFolder:
         """Blocks of :data:`BLOCK_ROWS` rows, top to bottom."""
         return _strips(self.grid.rows)
 
+    @property
+    def layers(self) -> FolderLayers:
+        """The folder's layers without the depression table (for tasks elsewhere)."""
+        return FolderLayers(self.folder, self.grid)
+
     def window(self, layer: str, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
         """``layer`` over rows ``r0:r1`` and columns ``c0:c1``, read from the folder's files."""
-        if layer == "elevation":
-            return self.grid.read_window(r0, r1, c0, c1)
-        if layer not in LAYER_FILES:
-            raise ValueError(f"unknown layer {layer!r}; a source has {', '.join(LAYERS)}")
-        with rasterio.open(self.folder / LAYER_FILES[layer]) as ds:
-            return ds.read(1, window=rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0))
+        return self.layers.window(layer, r0, r1, c0, c1)
 
 
 def _strips(rows: int) -> Iterator[tuple[int, int]]:
@@ -278,3 +309,77 @@ def add_depression_outlines(run: "TiledRun", grid: DEMGrid, out_dir: str | os.Pa
         files=[p.name for p in files], engine=engine,
     )
     return files + [summary]
+
+
+def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = None,
+                        band: int | None = None, map: Callable | None = None,
+                        progress: Callable[[str, int, int], None] | None = None,
+                        window_cells: int = DEFAULT_WINDOW_CELLS) -> HierarchyFiles:
+    """Write the three depression-hierarchy files into a folder ``sillmark analyse`` wrote.
+
+    The files come from :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`
+    on the folder as a result source (the depression hierarchy of Barnes,
+    Callaghan & Wickert 2020, built in windows of depressions), the same bytes
+    as for the result in memory. Then ``summary.json`` is written again,
+    listing them among its files (every other member kept).
+
+    Parameters
+    ----------
+    out_dir : path
+        The folder: ``summary.json``, ``depression_id.tif``, ``depressions.csv``
+        and the DEM the summary names are read.
+    grid : DEMGrid, optional, keyword-only
+        The DEM the folder was computed from, when the caller has it open
+        (right after the analysis). Without it the folder is opened with
+        :func:`open_result_folder`, which checks the DEM against the folder's
+        fill depth block by block.
+    band : int, optional, keyword-only
+        Band of the DEM, without ``grid``.
+    map, progress, window_cells
+        As for :func:`~sillmark.io.hierarchy_writer.write_hierarchy_files`.
+
+    Returns
+    -------
+    HierarchyFiles
+
+    Raises
+    ------
+    InvalidParameter
+        The folder lacks a file, or its files do not belong together.
+    InvalidDEM
+        The DEM is missing or changed since the analysis.
+    """
+    out = Path(out_dir)
+    if grid is None:
+        source = open_result_folder(out, band=band)
+    else:
+        summary = read_summary(out)
+        for name in (LAYER_FILES["depression_id"], "depressions.csv"):
+            if not (out / name).is_file():
+                raise InvalidParameter(
+                    f"the folder {out} lacks {name}; give a folder written by 'sillmark analyse' "
+                    "(run it again if it was interrupted)"
+                )
+        if not summary.same_grid(grid.shape, grid.transform):
+            raise InvalidDEM(f"the DEM {grid.path} does not have the grid of the analysis in {out}")
+        source = ResultFolder(
+            folder=out, grid=grid, connectivity=summary.connectivity,
+            outlet_sources=summary.outlet_sources, outlet_count=summary.outlet_cells,
+            depressions=read_depression_columns(out / "depressions.csv"),
+            elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
+        )
+    written = write_hierarchy_files(source, out, map=map, progress=progress,
+                                    window_cells=window_cells)
+    _list_in_summary(out, list(HIERARCHY_FILE_NAMES))
+    return written
+
+
+def _list_in_summary(out: Path, names: list[str]) -> None:
+    """Write ``summary.json`` again with ``names`` among its files, in the order of
+    :data:`sillmark.io.summary.FILE_NAMES`; every other member is kept as it was."""
+    path = out / "summary.json"
+    summary = json.loads(path.read_text(encoding="utf-8"))
+    listed = set(summary.get("files", [])) | set(names)
+    order = {name: k for k, name in enumerate(FILE_NAMES)}
+    summary["files"] = sorted(listed, key=lambda n: (order.get(n, len(order)), n))
+    write_json(path, summary)

@@ -578,7 +578,7 @@ def _hierarchy_of_cells(
     row and column in the grid: pit and spill cells and their x, y are given in
     grid coordinates (the same numbers as for the whole grid); the regions,
     ``shape`` and ``row_areas`` stay the window's. For
-    :mod:`sillmark.products.tiled_hierarchy`, which runs it window by window.
+    :mod:`sillmark.products.hierarchy_windows`, which runs it window by window.
     """
     rows, cols = z.shape
     row0, col0 = int(origin[0]), int(origin[1])

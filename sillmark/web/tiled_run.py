@@ -5,8 +5,8 @@ is read. For a DEM of more than ``TILED_ABOVE_CELLS`` cells (see
 :mod:`sillmark.web.config`; the value travels with the run's settings) it runs
 :func:`sillmark.engine.tiled.analyse_tiled` on the DEM file instead of the in-memory
 engine, adds the depression outlines (:func:`sillmark.io.results_folder.add_depression_outlines`) and the
-three depression-hierarchy files (:mod:`sillmark.products.tiled_hierarchy`, in windows
-of depressions), and reads the written GeoTIFFs back into the
+three depression-hierarchy files (:func:`sillmark.io.results_folder.add_hierarchy_files`,
+in windows of depressions), and reads the written GeoTIFFs back into the
 :class:`~sillmark.engine.flood.SpillResult` the viewer stores
 (:func:`sillmark.web.arrays.save`). The run's phase shows the tiles done
 (``flooding tiles: 3 of 12 tiles done``) and then the hierarchy's batches.
@@ -35,8 +35,7 @@ import rasterio
 from sillmark.grid.dem import read_dem_grid
 from sillmark.engine.flood import SpillResult
 from sillmark.engine.tiled import analyse_tiled
-from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
-from sillmark.io.results_folder import add_depression_outlines
+from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.web import db
 from sillmark.web.config import DEFAULTS
 
@@ -155,7 +154,7 @@ def analyse_if_large(dem, dem_path: Path, specs: tuple, settings: dict, results:
     add_depression_outlines(run, grid, results)
     tracker.show("outlines", 1, 1)
     # After the outlines, whose summary.json it lists the three files in.
-    write_tiled_hierarchy(results, map=tracker.map, progress=tracker.step, grid=grid)
+    add_hierarchy_files(results, map=tracker.map, progress=tracker.step, grid=grid)
     ids = _read_band(results / "depression_id.tif")
     np.maximum(ids, 0, out=ids)  # the file's -1 (nodata, unreached) is 0 in a SpillResult
     result = SpillResult(

@@ -1,7 +1,7 @@
-"""Compiled loops of the out-of-core depression hierarchy (private; see
-:mod:`sillmark.products.tiled_hierarchy`).
+"""Compiled loops of the depression hierarchy in windows (private; see
+:mod:`sillmark.products.hierarchy_windows`).
 
-The kernels trust their inputs: :func:`sillmark.products.tiled_hierarchy.write_tiled_hierarchy`
+The kernels trust their inputs: :func:`sillmark.products.hierarchy_windows.hierarchy_batches`
 reads the blocks, sizes the arrays and checks the results. Each loop is a plain
 Python function compiled once at the bottom of the module, so the same code
 runs with ``NUMBA_DISABLE_JIT=1`` (or through ``.py_func``).

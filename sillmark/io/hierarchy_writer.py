@@ -1,0 +1,446 @@
+"""The depression hierarchy files, written once from a result source, in windows of depressions.
+
+:func:`write_hierarchy_files` writes ``depression_hierarchy.csv``,
+``depression_hierarchy.json`` and ``depression_curves.csv`` (the formats of
+:mod:`sillmark.io.hierarchy_files`) for a result in memory
+(:class:`sillmark.products.source.ArraySource`) or a results folder on disk
+(:class:`sillmark.io.results_folder.ResultFolder`), with the same bytes for
+both: the hierarchy (Barnes, Callaghan & Wickert 2020) is built in batches of
+consecutive depressions (:mod:`sillmark.products.hierarchy_windows`), and the
+site's files are the concatenation of the batches' rows.
+
+Steps
+-----
+1. **Batches** (this process): bounding boxes from the source's
+   ``depression_id`` blocks, cut into batches within ``window_cells``
+   (:func:`sillmark.products.hierarchy_windows.hierarchy_batches`). A result in
+   memory is, by default, one batch.
+2. **Hierarchy of each batch** (one task per batch, through ``map(fn,
+   calls)``, e.g. :func:`sillmark.engine.tiled.serial_map` or a
+   :class:`sillmark.engine.tiled.DaskMap`): the task reads the batch's
+   ``elevation`` and ``depression_id`` windows, builds its hierarchy
+   (:func:`sillmark.products.hierarchy_windows.batch_hierarchy`) and keeps the
+   node table and curve rows (:func:`sillmark.io.hierarchy_files.curve_part_columns`)
+   in a scratch file. Back go counts only.
+3. **Format each batch** (one task per batch): with the node and depression
+   offsets of the batches before it, the batch's rows of the three files are
+   written as text into scratch part files. Without ``map`` the batches run in
+   order in this process, so each is formatted as soon as it is built, its
+   tables never written to scratch.
+4. **Concatenate** (this process): each file is its head (comments, header;
+   for the JSON the node count) and the batches' parts in order, written
+   atomically. The scratch folder ``.sillmark-hierarchy-*`` inside the output
+   folder is removed.
+
+A task's arguments are small: a reader of the source's windows (for a results
+folder, its path and DEM grid, without the depression table), the batch's
+window, its rows of the depression table and of the row areas. With ``map``
+None the tasks run in this process, one after another, and nothing is pickled,
+so an :class:`~sillmark.products.source.ArraySource` is read in place.
+
+Memory
+------
+A batch task holds its window and its hierarchy (see
+:mod:`sillmark.products.hierarchy_windows`: about 13 bytes per window cell and
+130 per depression cell, 2.4 GB at worst for the default 16 Mi-cell budget of
+a folder), and its curve rows. This process holds the depression table, the
+bounding boxes (32 bytes a depression) and the batches' counts.
+
+References
+----------
+Barnes, R., Callaghan, K. L., Wickert, A. D. (2020). Computing water flow
+through complex landscapes – Part 2: Finding hierarchies in depressions and
+morphological segmentations. Earth Surface Dynamics 8, 431–445.
+doi:10.5194/esurf-8-431-2020
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import shutil
+import time
+import uuid
+from collections.abc import Callable
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from sillmark.errors import InvalidParameter
+from sillmark.grid.crs import horizontal_crs
+from sillmark.io import hierarchy_files as hx
+from sillmark.products.hierarchy import HierarchyTable, _hierarchy_of_cells
+from sillmark.products.hierarchy_windows import (
+    DEFAULT_WINDOW_CELLS,
+    batch_hierarchy,
+    checked_window_cells,
+    hierarchy_batches,
+    tree_depth,
+)
+from sillmark.products.source import ArraySource
+from sillmark.units import VerticalUnit, unit_suffix
+
+if TYPE_CHECKING:  # pragma: no cover
+    from affine import Affine
+
+    from sillmark.products.source import ResultSource
+
+__all__ = ["DEFAULT_WINDOW_CELLS", "HierarchyFiles", "write_hierarchy_files"]
+
+_SCRATCH_PREFIX = ".sillmark-hierarchy-"
+#: Fields of HierarchyTable kept per batch in the scratch files.
+_NODE_FIELDS = tuple(f.name for f in dataclasses.fields(HierarchyTable))
+
+
+@dataclasses.dataclass(frozen=True)
+class HierarchyFiles:
+    """What :func:`write_hierarchy_files` wrote.
+
+    Attributes
+    ----------
+    files : list of Path
+        The three files, in the order of :data:`sillmark.io.hierarchy_files.HIERARCHY_FILE_NAMES`.
+    nodes, pits : int
+        Nodes of the hierarchy, and how many are leaves (pits).
+    depth : int
+        Most nesting levels of one tree (0 without depressions).
+    batches : int
+        Windows the depressions were cut into.
+    window_cells : int
+        Cells of the largest window read.
+    seconds : dict
+        Wall time of each step: ``bounds``, ``batches`` (with the formatting when
+        ``map`` is None), ``batch_tasks`` (summed over the tasks), ``format``
+        (with a ``map`` only) and ``write``.
+    """
+
+    files: list
+    nodes: int
+    pits: int
+    depth: int
+    batches: int
+    window_cells: int
+    seconds: dict
+
+    def __len__(self) -> int:
+        return self.nodes
+
+
+@dataclasses.dataclass(frozen=True)
+class _Job:
+    """What every batch task needs; pickled into each task when ``map`` is given."""
+
+    layers: Any
+    transform: "Affine | None"
+    scratch: str
+    connectivity: int
+    unit: str
+    max_points: int
+    step_rows: int
+    curve_names: tuple = ()
+
+    def part(self, k: int, what: str) -> str:
+        return os.path.join(self.scratch, f"batch{k:06d}_{what}")
+
+
+def _task_layers(source: "ResultSource") -> Any:
+    """What the tasks read windows through: the source in memory, or the small
+    reader of its layers that a results folder offers (``layers``)."""
+    if isinstance(source, ArraySource):
+        return source
+    return getattr(source, "layers", source)
+
+
+# --------------------------------------------------------------------------- tasks
+
+
+def _built(job: _Job, first: int, last: int, window: tuple[int, int, int, int],
+           areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
+           spill_col: np.ndarray, cell_count: np.ndarray):
+    """The hierarchy of depressions ``first..last`` in their window: its node table,
+    its curve rows and its counts."""
+    unit = VerticalUnit.parse(job.unit)
+    hierarchy = batch_hierarchy(
+        job.layers, first, last, window, areas=areas, spill_elevation=spill_elevation,
+        spill_row=spill_row, spill_col=spill_col, cell_count=cell_count,
+        connectivity=job.connectivity, unit=unit, transform=job.transform,
+    )
+    t = hierarchy.nodes
+    curves = hx.curve_part_columns(hierarchy, unit, max_points=job.max_points,
+                                   step_rows=job.step_rows)
+    counts = {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
+              "depth": tree_depth(t.parent)}
+    return t, curves, counts
+
+
+def _hierarchy_task(job: _Job, k: int, first: int, last: int, window: tuple[int, int, int, int],
+                    areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
+                    spill_col: np.ndarray, cell_count: np.ndarray) -> dict:
+    """Step 2 on a ``map``: the batch's hierarchy, its tables kept in a scratch file."""
+    t0 = time.perf_counter()
+    t, curves, counts = _built(job, first, last, window, areas, spill_elevation, spill_row,
+                               spill_col, cell_count)
+    saved = {f"node_{name}": getattr(t, name) for name in _NODE_FIELDS}
+    saved.update({f"curve_{j}": np.asarray(values, dtype=str if values.dtype == object else None)
+                  for j, values in enumerate(curves.values())})
+    with open(job.part(k, "tables.npz"), "wb") as f:
+        np.savez(f, **saved)
+    return {**counts, "task_s": time.perf_counter() - t0}
+
+
+def _shifted(t: HierarchyTable, node_offset: int, depression_offset: int) -> HierarchyTable:
+    """The node table with the site's node and depression ids."""
+    return dataclasses.replace(
+        t,
+        id=(t.id + node_offset).astype(np.int32),
+        parent=np.where(t.parent > 0, t.parent + node_offset, 0).astype(np.int32),
+        depression=(t.depression + depression_offset).astype(np.int32),
+        children_ids=(t.children_ids + node_offset).astype(np.int32),
+    )
+
+
+def _write_parts(job: _Job, k: int, table: HierarchyTable, curves: dict, node_offset: int,
+                 depression_offset: int, placed: Any) -> None:
+    """Step 3: the batch's rows of the three files as text, with the site's ids."""
+    unit = VerticalUnit.parse(job.unit)
+    table = _shifted(table, node_offset, depression_offset)
+    curves = dict(curves)
+    curves["node_id"] = (curves["node_id"] + node_offset).astype(np.int32)
+    curves["depression"] = (curves["depression"] + depression_offset).astype(np.int32)
+    for what, text in (
+        ("nodes.csv", hx.csv_rows(hx.node_table_columns(table, unit, placed))),
+        ("nodes.json", ",".join(hx.json_node_texts(table))),
+        ("curves.csv", hx.csv_rows(curves)),
+    ):
+        with open(job.part(k, what), "w", encoding="utf-8", newline="") as f:
+            f.write(text)
+
+
+def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, placed: Any) -> dict:
+    """Step 3 on a ``map``: the batch's parts from its scratch tables."""
+    t0 = time.perf_counter()
+    with np.load(job.part(k, "tables.npz"), allow_pickle=False) as saved:
+        table = HierarchyTable(**{name: saved[f"node_{name}"] for name in _NODE_FIELDS})
+        curves = {name: saved[f"curve_{j}"] for j, name in enumerate(job.curve_names)}
+    _write_parts(job, k, table, curves, node_offset, depression_offset, placed)
+    os.remove(job.part(k, "tables.npz"))
+    return {"task_s": time.perf_counter() - t0}
+
+
+def _serial_batches(job: _Job, calls: list, placed: Any, report) -> list[dict]:
+    """Steps 2 and 3 in this process, batch after batch: each batch is formatted as
+    soon as it is built (the node offset is known), without scratch tables."""
+    done, nodes = [], 0
+    report("hierarchy", 0, len(calls))
+    for job_, k, first, *rest in calls:
+        t0 = time.perf_counter()
+        t, curves, counts = _built(job_, first, *rest)
+        _write_parts(job_, k, t, curves, nodes, first - 1, placed)
+        nodes += counts["nodes"]
+        done.append({**counts, "task_s": time.perf_counter() - t0})
+        report("hierarchy", len(done), len(calls))
+    return done
+
+
+def _empty_hierarchy(job: _Job):
+    """The hierarchy of a window without depressions (for the files' headers)."""
+    empty = np.empty(0, dtype=np.int64)
+    return _hierarchy_of_cells(
+        np.zeros((1, 1), np.float32), np.zeros((1, 1), np.int32), np.empty(0, np.float32),
+        empty, empty, connectivity=job.connectivity, areas=np.ones(1),
+        unit=VerticalUnit.parse(job.unit), transform=job.transform,
+    )
+
+
+@dataclasses.dataclass(frozen=True)
+class _Placed:
+    """All of the grid the format tasks read: its CRS (a DEM's cells are not shipped)."""
+
+    crs: Any
+
+
+# --------------------------------------------------------------------------- the files
+
+
+def write_hierarchy_files(
+    source: "ResultSource",
+    out_dir: str | os.PathLike,
+    *,
+    map: Callable | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
+    window_cells: int | None = None,
+    keep_scratch: bool = False,
+) -> HierarchyFiles:
+    """Write the three depression-hierarchy files of a result into ``out_dir``.
+
+    Parameters
+    ----------
+    source : ResultSource
+        A result in memory (:class:`sillmark.products.source.ArraySource`) or a
+        results folder (:func:`sillmark.io.results_folder.open_result_folder`).
+    out_dir : path
+        An existing folder; the files are replaced. Tasks run elsewhere must be
+        able to write into it (scratch files).
+    map : callable, optional, keyword-only
+        ``map(fn, calls)`` running the batch tasks, as for
+        :func:`sillmark.engine.tiled.analyse_tiled` (e.g. a Dask map). Default:
+        in this process, one batch after another, nothing pickled.
+    progress : callable, optional, keyword-only
+        ``progress(step, done, total)``: step ``"hierarchy"`` counts batches
+        (after each batch when ``map`` is None, else before and after the
+        whole map), ``"hierarchy_files"`` the batches formatted (before and
+        after; without ``map`` they are formatted with the ``"hierarchy"``
+        step), and ``"hierarchy_write"`` the three files written.
+    window_cells : int, optional, keyword-only
+        Cell budget of a batch's window. Default: the whole grid for an
+        :class:`~sillmark.products.source.ArraySource` (one batch), else
+        :data:`DEFAULT_WINDOW_CELLS`.
+    keep_scratch : bool, keyword-only
+        Keep the scratch folder (for debugging).
+
+    Returns
+    -------
+    HierarchyFiles
+
+    Raises
+    ------
+    InvalidDEM
+        The DEM has no CRS, or changed since the analysis.
+    InvalidParameter
+        ``out_dir`` is not a folder, ``window_cells`` is not a positive whole
+        number, or the source's layers and depression table do not belong
+        together.
+
+    Notes
+    -----
+    The files do not depend on the batches (any budget, any engine tile size
+    gives the same bytes): see :mod:`sillmark.products.hierarchy_windows`.
+    Memory: see the module docstring.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> import numpy as np
+    >>> from sillmark.engine.flood import analyse_site
+    >>> from sillmark.grid.dem import dem_from_array
+    >>> from sillmark.grid.outlets import build_outlets
+    >>> from affine import Affine
+    >>> z = np.full((3, 7), 9, np.float32); z[1] = [9, 1, 4, 2, 7, 0, 9]
+    >>> dem = dem_from_array(z, transform=Affine(2, 0, 500000, 0, -2, 5000000), crs="EPSG:32633")
+    >>> result = analyse_site(dem, build_outlets(dem, ("edge",)))
+    >>> with tempfile.TemporaryDirectory() as out:
+    ...     written = write_hierarchy_files(ArraySource(dem, result), out)
+    ...     names = [p.name for p in written.files]
+    >>> names
+    ['depression_hierarchy.csv', 'depression_hierarchy.json', 'depression_curves.csv']
+    >>> written.nodes, written.pits, written.depth, written.batches
+    (5, 3, 3, 1)
+    """
+    times: dict[str, float] = {}
+    grid = source.grid
+    if window_cells is None:
+        window_cells = grid.shape[0] * grid.shape[1] if isinstance(source, ArraySource) else DEFAULT_WINDOW_CELLS
+    budget = checked_window_cells(window_cells)
+    out = Path(out_dir)
+    if not out.is_dir():
+        raise InvalidParameter(f"the output folder {out} does not exist or is a file; give a folder")
+    unit = source.unit
+    horizontal_crs(grid)  # InvalidDEM before anything is written if there is no CRS
+    connectivity = int(source.connectivity)
+    table = source.depression_columns
+    count = int(table["id"].shape[0])
+    if not np.array_equal(table["id"], np.arange(1, count + 1)):
+        raise InvalidParameter("the depression table does not number its depressions 1..n; "
+                               "run the analysis again")
+    spill_elevation = np.asarray(table[f"spill_elevation_{unit_suffix(unit)}"], dtype=np.float32)
+    spill_row, spill_col, cell_count = table["spill_row"], table["spill_col"], table["cell_count"]
+    row_areas = np.asarray(grid.row_areas, dtype=np.float64)
+
+    def report(step: str, done: int, total: int) -> None:
+        if progress is not None:
+            progress(step, done, total)
+
+    def run_tasks(step: str, fn, calls: list) -> list:
+        report(step, 0, len(calls))
+        results = list(map(fn, calls))
+        report(step, len(calls), len(calls))
+        return results
+
+    t0 = time.perf_counter()
+    batches = hierarchy_batches(source, window_cells=budget, count=count)
+    times["bounds"] = time.perf_counter() - t0
+    scratch = out / f"{_SCRATCH_PREFIX}{uuid.uuid4().hex[:12]}"
+    scratch.mkdir()
+    job = _Job(layers=_task_layers(source), transform=grid.transform, scratch=str(scratch),
+               connectivity=connectivity, unit=unit.value, max_points=hx.MAX_CURVE_POINTS,
+               step_rows=hx.STEP_ROWS)
+    empty = _empty_hierarchy(job)
+    job = dataclasses.replace(job, curve_names=tuple(hx.curve_part_columns(empty, unit)))
+    placed = _Placed(grid.crs)
+    try:
+        t0 = time.perf_counter()
+        calls = []
+        for k, (first, last, r0, r1, c0, c1) in enumerate(batches.tolist()):
+            sl = slice(first - 1, last)
+            calls.append((job, k, first, last, (r0, r1, c0, c1), row_areas[r0:r1],
+                          spill_elevation[sl], spill_row[sl], spill_col[sl], cell_count[sl]))
+        if map is None:
+            built = _serial_batches(job, calls, placed, report)
+            times["batches"] = time.perf_counter() - t0
+            report("hierarchy_files", 0, len(built))  # formatted along the way
+            report("hierarchy_files", len(built), len(built))
+        else:
+            built = run_tasks("hierarchy", _hierarchy_task, calls)
+            times["batches"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            offsets = np.cumsum([0] + [b["nodes"] for b in built])
+            run_tasks("hierarchy_files", _format_task,
+                      [(job, k, int(offsets[k]), int(batches[k, 0]) - 1, placed)
+                       for k in range(len(built))])
+            times["format"] = time.perf_counter() - t0
+        times["batch_tasks"] = sum(b["task_s"] for b in built)
+        nodes = sum(b["nodes"] for b in built)
+
+        t0 = time.perf_counter()
+        files = _concatenate(out, job, grid, len(built), nodes, empty, report)
+        times["write"] = time.perf_counter() - t0
+    finally:
+        if not keep_scratch:
+            shutil.rmtree(scratch, ignore_errors=True)
+    windows = (batches[:, 3] - batches[:, 2]) * (batches[:, 5] - batches[:, 4])
+    return HierarchyFiles(
+        files=files, nodes=nodes, pits=sum(b["pits"] for b in built),
+        depth=max((b["depth"] for b in built), default=0), batches=len(built),
+        window_cells=int(windows.max(initial=0)), seconds=times,
+    )
+
+
+def _concatenate(out: Path, job: _Job, grid: Any, batches: int, nodes: int, empty,
+                 report: Callable[[str, int, int], None]) -> list[Path]:
+    """Step 4: each file's head, then the batches' parts in order."""
+    unit = VerticalUnit.parse(job.unit)
+    connectivity = job.connectivity
+    parts = range(batches)
+    total = len(hx.HIERARCHY_FILE_NAMES)
+    report("hierarchy_write", 0, total)
+    csv_path = hx.write_csv_parts(
+        out / hx.HIERARCHY_CSV,
+        hx.csv_head(hx.hierarchy_csv_comments(unit, connectivity, grid),
+                    hx.node_table_columns(empty.nodes, unit, grid)),
+        [job.part(k, "nodes.csv") for k in parts],
+    )
+    report("hierarchy_write", 1, total)
+    json_path = hx.write_json_parts(
+        out / hx.HIERARCHY_JSON, hx.hierarchy_json_head(unit, connectivity, grid, nodes),
+        [job.part(k, "nodes.json") for k in parts],
+    )
+    report("hierarchy_write", 2, total)
+    curves_path = hx.write_csv_parts(
+        out / hx.CURVES_CSV,
+        hx.csv_head(hx.curves_csv_comments(unit, connectivity, grid),
+                    hx.curve_part_columns(empty, unit)),
+        [job.part(k, "curves.csv") for k in parts],
+    )
+    report("hierarchy_write", 3, total)
+    return [csv_path, json_path, curves_path]
