@@ -45,7 +45,7 @@ SCRIPT = textwrap.dedent(
 
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.
     import tempfile
-    from sillmark.engine.tiled import analyse_tiled
+    from tests.loopback import analyse_on_tiles
     from sillmark.products.tiled_hierarchy import write_tiled_hierarchy
     from tests.rasters import write_raster
     with tempfile.TemporaryDirectory() as tmp:
@@ -54,8 +54,8 @@ SCRIPT = textwrap.dedent(
         z[0, 0] = 1.0
         path = write_raster(Path(tmp) / "z.tif", z, nodata=-9999.0)
         for conn, tile in ((8, 3), (4, 4)):
-            analyse_tiled(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
-                          connectivity=conn, tile_size=tile)
+            analyse_on_tiles(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
+                             connectivity=conn, tile_size=tile)
             write_tiled_hierarchy(Path(tmp) / f"out{conn}", window_cells=6)
     print("bounds ok")
     """

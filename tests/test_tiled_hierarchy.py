@@ -26,7 +26,7 @@ from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.engine.flood import priority_flood
 from sillmark.products.hierarchy import site_hierarchy
 from sillmark.grid.outlets import build_outlets
-from sillmark.engine.tiled import analyse_tiled
+from tests.loopback import analyse_on_tiles
 from sillmark.products.tiled_hierarchy import hierarchy_batches, write_tiled_hierarchy
 from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
@@ -52,8 +52,8 @@ def reference_files(path, folder, *, specs=("edge",), connectivity=8):
 def tiled_folder(path, out, *, specs=("edge",), connectivity=8, tile=16, map=None):
     if out.exists():
         shutil.rmtree(out)
-    analyse_tiled(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile,
-                  map=map)
+    analyse_on_tiles(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile,
+                     executor=map)
     return out
 
 

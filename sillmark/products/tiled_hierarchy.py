@@ -96,7 +96,7 @@ from sillmark.io import hierarchy_files as hx
 from sillmark.grid.dem import DEMGrid
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.products.hierarchy import HierarchyTable, _hierarchy_of_cells
-from sillmark.engine.tiled import serial_map
+from sillmark.engine.executors import serial_map
 from sillmark.products.tiled_stage import open_result_folder, read_depression_columns
 from sillmark.units import VerticalUnit
 

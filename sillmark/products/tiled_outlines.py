@@ -71,7 +71,6 @@ from sillmark.units import VerticalUnit
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.grid.dem import DEMGrid
     from sillmark.engine.flood import DepressionTable
-    from sillmark.engine.tiled import TiledRun
 
 __all__ = [
     "DEFAULT_WINDOW",
@@ -238,9 +237,11 @@ def write_depressions_geojson_tiled(
     return write_feature_collection(path, members, features())
 
 
-def add_depression_outlines(run: "TiledRun", grid: "DEMGrid", out_dir: str | os.PathLike, *,
+def add_depression_outlines(run, grid: "DEMGrid", out_dir: str | os.PathLike, *,
                             window: int = DEFAULT_WINDOW) -> list[Path]:
-    """Write ``depressions.geojson`` into a folder of :func:`sillmark.engine.tiled.analyse_tiled`.
+    """Write ``depressions.geojson`` into a folder of a tiled :func:`sillmark.run.analyse`.
+
+    ``run`` is the run's :class:`sillmark.run.Analysis` (its table, counts and files).
 
     Then writes ``summary.json`` again, last, listing the outlines among the
     files (its ``engine`` member kept). Returns every file of the folder's run
