@@ -161,6 +161,8 @@ class FloodedTile:
     Meetings are label pairs ``a < b`` (``meet_a``, ``meet_b``) at a level,
     with the cell on each side as a global padded index (width ``cols + 2``).
     The perimeter arrays are in perimeter order (:mod:`sillmark.engine.plan`).
+    Outlet and valid cells are counted for a window of a file only (0 for
+    arrays the caller has checked).
     """
 
     n_seeds: int
@@ -261,15 +263,18 @@ def flood_step(job: TileJob, k: int) -> FloodedTile:
     lw = w + 2
     width = plan.cols + 2
     pidx = plan.perimeter(k)
-    valid = ~np.isnan(z)
+    if tile.outlet_counts is None:  # arrays the caller has checked: nothing to count
+        outlet_cells = valid_cells = 0
+    else:  # a window of a file: its outlets lie on valid data already
+        outlet_cells = int(np.count_nonzero(tile.mask))
+        valid_cells = int(np.count_nonzero(~np.isnan(z)))
     return FloodedTile(
         n_seeds=int(seeds.shape[0] - 1), meet_a=ea, meet_b=eb, meet_level=elevel,
         meet_cell_a=(r0 + la // lw) * width + c0 + la % lw,
         meet_cell_b=(r0 + lb // lw) * width + c0 + lb % lw,
         perimeter_state=lstate[pidx], perimeter_level=lz[pidx], perimeter_label=llab[pidx],
         heap_pops=int(pops), outlet_counts=tile.outlet_counts,
-        outlet_cells=int(np.count_nonzero(tile.mask[tile.r0:tile.r1, tile.c0:tile.c1] & valid)),
-        valid_cells=int(np.count_nonzero(valid)),
+        outlet_cells=outlet_cells, valid_cells=valid_cells,
         seconds=time.perf_counter() - started,
     )
 
@@ -481,7 +486,10 @@ class TiledFlood:
     store : TileStore
         Where the tiles' arrays are (close it when done with the layers).
     joined : JoinedDepressions
-    valid_cells, unreached_cells, outlet_cells, heap_pops : int
+    valid_cells, unreached_cells, heap_pops : int
+    outlet_cells : int
+        Outlet cells on valid data, counted for a :class:`RasterSource` (0 for
+        an :class:`ArraySource`, whose caller holds the mask).
     outlet_counts : int64 array or None
         Per outlet source of a :class:`RasterSource`, cells marked and cells on
         valid data (None for an :class:`ArraySource`).
@@ -489,8 +497,7 @@ class TiledFlood:
         Wall time of each step; ``flood_tasks``, ``finish_tasks``: time the
         tile items took in all.
     whole : dict
-        Layers already read whole (an in-memory store lets go of its tile
-        arrays once they are).
+        Layers the store holds whole (views of an in-memory store's arrays).
     """
 
     depressions: DepressionTable
@@ -546,9 +553,9 @@ _STORED = {"elevation": ("z", np.float32), "onset_stage": ("level", np.float32),
            "depression_id": ("label", np.int32), "flood_tree": ("state", np.uint8)}
 
 
-def _read_layer(plan: TilePlan, store, joined: JoinedDepressions, layer: str, r0: int, r1: int,
-                release: bool = False) -> np.ndarray:
-    """Rows ``r0:r1`` of a layer, across the tiles; ``release`` lets go of each tile after."""
+def _read_layer(plan: TilePlan, store, joined: JoinedDepressions, layer: str, r0: int,
+                r1: int) -> np.ndarray:
+    """Rows ``r0:r1`` of a layer, copied from the tiles."""
     name, dtype = _STORED[layer]
     out = np.empty((r1 - r0, plan.cols), dtype=dtype)
     t = plan.tile
@@ -562,8 +569,6 @@ def _read_layer(plan: TilePlan, store, joined: JoinedDepressions, layer: str, r0
             if layer == "depression_id":
                 part = joined.tile_ids(k)[part]
             out[a0 - r0:a1 - r0, c0:c1] = part
-            if release:
-                store.discard(k, name)
     if layer == "flood_tree":
         out[out == _tile_kernels.BLOCKED] = 0
     return out
@@ -583,8 +588,9 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     executor : Executor
         Runs steps 1 and 3 (one item per tile).
     store : TileStore
-        Keeps the tiles' arrays; a :class:`~sillmark.engine.stores.MemoryStore`
-        is read whole at the end and emptied.
+        Keeps the tiles' arrays; the layers of a
+        :class:`~sillmark.engine.stores.MemoryStore` are turned into the
+        result in place at the end (views, no copies).
     tile_size : int
     connectivity : {8, 4}
     row_areas : (rows,) float64 array, optional
@@ -610,6 +616,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     plan = TilePlan(rows=rows, cols=cols, tile=tile_size)
     dirs = directions(connectivity)
     job = TileJob(plan=plan, source=source, store=store, connectivity=int(connectivity))
+    store.start(plan)
     areas = np.ones(rows) if row_areas is None else np.asarray(row_areas, dtype=np.float64)
     times: dict[str, float] = {}
 
@@ -624,7 +631,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     times["flood"] = time.perf_counter() - t0
     times["flood_tasks"] = sum(f.seconds for f in floods)
     valid_cells = sum(f.valid_cells for f in floods)
-    if valid_cells == 0:
+    if valid_cells == 0 and floods[0].outlet_counts is not None:
         raise InvalidDEM(f"every cell of {getattr(source, 'label', 'the DEM')} is nodata; give "
                          "a DEM with at least one elevation (check the declared nodata value)")
     counts = None
@@ -654,6 +661,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     report("join", 0, 1)
     joined = join_pieces(plan, finished, dirs)
     unreached = sum(f.unreached_cells for f in finished)
+    valid_cells = sum(f.valid_cells for f in finished)
     del finished
     report("join", 1, 1)
     times["join"] = time.perf_counter() - t0
@@ -668,20 +676,28 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     area = np.zeros(n + 1, dtype=np.float64)
     volume = np.zeros(n + 1, dtype=np.float64)
     whole: dict[str, np.ndarray] = {}
-    keep = len(blocks) == 1  # one band is the whole grid: keep it, let go of the tiles
+    grids = {name: store.whole(name) for name in ("level", "state", "label")}
+    if all(g is not None for g in grids.values()):
+        # The store holds the whole grid: turn its pieces into ids and its
+        # states into flood-tree codes in place; the layers are views.
+        label = grids["label"]
+        for k in range(plan.tiles):
+            r0, r1, c0, c1 = plan.bounds(k)
+            region = label[r0 + 1:r1 + 1, c0 + 1:c1 + 1]
+            region[...] = joined.tile_ids(k)[region]
+        state = grids["state"]
+        state[state == _tile_kernels.BLOCKED] = 0
+        whole = {"onset_stage": grids["level"][1:-1, 1:-1], "depression_id": label[1:-1, 1:-1],
+                 "flood_tree": state[1:-1, 1:-1]}
+        if isinstance(source, ArraySource):
+            whole["elevation"] = source.elevation
+        blocks = [(0, rows)]
     for b, (r0, r1) in enumerate(blocks):
-        s = _read_layer(plan, store, joined, "onset_stage", r0, r1, release=keep)
-        ids = _read_layer(plan, store, joined, "depression_id", r0, r1, release=keep)
-        if isinstance(source, ArraySource):  # the tiles' elevations are views of it
-            z = source.elevation[r0:r1]
-        else:
-            z = _read_layer(plan, store, joined, "elevation", r0, r1, release=keep)
+        s, ids, z = (whole[layer][r0:r1] if layer in whole
+                     else _read_layer(plan, store, joined, layer, r0, r1)
+                     for layer in ("onset_stage", "depression_id", "elevation"))
         _tiled_kernels.accumulate(ids, s, z, areas[r0:r1], count, area, volume)
         report("totals", b + 1, len(blocks))
-    if keep:
-        whole = {"onset_stage": s, "depression_id": ids, "elevation": z,
-                 "flood_tree": _read_layer(plan, store, joined, "flood_tree", 0, rows,
-                                           release=True)}
     times["totals"] = time.perf_counter() - t0
 
     spill = joined.spill[1:]

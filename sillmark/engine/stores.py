@@ -6,12 +6,14 @@ padded ``"level"``, ``"state"`` and ``"label"`` (flat, ``(h + 2) * (w + 2)``,
 the layout of :mod:`sillmark.engine._tile_kernels`). A store has three methods:
 
 - ``put(k, name, array)`` and ``get(k, name)``: one tile's array, whole;
-- ``rows(k, name, a0, a1)``: rows ``a0:a1`` (tile-local) of it, without the
+- ``rows(k, name, a0, a1, w)``: rows ``a0:a1`` (tile-local) of it, without the
   padding, as a ``(a1 - a0) x w`` array; layers of the whole grid are read
-  this way, a band of rows at a time.
+  this way, a band of rows at a time;
+- ``start(plan)`` before the first tile, ``whole(name)`` (the whole padded
+  grid, if the store holds one) and ``close()``.
 
-:class:`MemoryStore` keeps the arrays themselves (no copy: what a step puts is
-what the next one gets, and the rows read are views). :class:`FileStore` keeps
+:class:`MemoryStore` keeps the tiles in whole-grid arrays, so the layers of
+the result are views of them, not copies. :class:`FileStore` keeps
 them as ``.npy`` files in a scratch folder, which every worker of a cluster
 must be able to reach; it reads just the rows asked for. Either way the
 pipeline's arithmetic is the same, so the results are the same bits
@@ -34,7 +36,7 @@ from typing import Protocol
 
 import numpy as np
 
-__all__ = ["FileStore", "MemoryStore", "TileStore", "padded_rows"]
+__all__ = ["FileStore", "MemoryStore", "TileStore"]
 
 #: Names of the arrays kept per tile; all but ``"z"`` are padded by one cell.
 TILE_ARRAYS = ("z", "level", "state", "label")
@@ -47,52 +49,88 @@ class TileStore(Protocol):
     #: Rows of the whole grid worth reading at once (None: all of them).
     block_rows: int | None
 
+    def start(self, plan) -> None: ...
+
     def put(self, k: int, name: str, array: np.ndarray) -> None: ...
+
+    def whole(self, name: str) -> np.ndarray | None: ...
 
     def get(self, k: int, name: str) -> np.ndarray: ...
 
     def rows(self, k: int, name: str, a0: int, a1: int, w: int) -> np.ndarray: ...
 
-    def discard(self, k: int, name: str) -> None: ...
-
     def close(self) -> None: ...
 
 
-def padded_rows(array: np.ndarray, name: str, a0: int, a1: int, w: int) -> np.ndarray:
-    """Rows ``a0:a1`` of a tile array of width ``w`` (padding dropped), as a view."""
-    if name == "z":
-        return array[a0:a1]
-    lw = w + 2
-    return array[(a0 + 1) * lw:(a1 + 1) * lw].reshape(a1 - a0, lw)[:, 1:-1]
-
-
 class MemoryStore:
-    """Tile arrays held in this process, as they are (no copies).
+    """Tile arrays held in this process, in three whole-grid arrays.
 
-    For the in-memory engine on threads or in one process; it does not travel
+    :meth:`start` allocates the level, state and label of the whole grid,
+    padded by one cell (``(rows + 2) x (cols + 2)``); a tile put is copied
+    into its place there and a tile got is copied out of it (with the padding
+    a freshly flooded tile has: NaN, blocked, -1), so only the tiles in flight
+    exist twice. The layers of the whole grid are then views of these arrays
+    (:meth:`whole`), never copies; a tile's elevations are kept as the view
+    given. For the engine on threads or in one process; it does not travel
     to other processes.
+
+    Notes
+    -----
+    Memory: 9 bytes per cell of the padded grid, plus 9 bytes per cell of
+    each tile being worked on.
     """
 
     block_rows = None
+    _PAD = {"level": np.nan, "state": 255, "label": -1}
+    _DTYPE = {"level": np.float32, "state": np.uint8, "label": np.int32}
 
     def __init__(self) -> None:
-        self._arrays: dict[tuple[int, str], np.ndarray] = {}
+        self._plan = None
+        self._grids: dict[str, np.ndarray] = {}
+        self._z: dict[int, np.ndarray] = {}
+
+    def start(self, plan) -> None:
+        """Make room for the tiles of ``plan`` (a :class:`sillmark.engine.plan.TilePlan`)."""
+        self._plan = plan
+        shape = (plan.rows + 2, plan.cols + 2)
+        self._grids = {name: np.full(shape, self._PAD[name], dtype=self._DTYPE[name])
+                       for name in self._PAD}
+        self._z = {}
+
+    def _region(self, k: int, name: str) -> np.ndarray:
+        r0, r1, c0, c1 = self._plan.bounds(k)
+        return self._grids[name][r0 + 1:r1 + 1, c0 + 1:c1 + 1]
 
     def put(self, k: int, name: str, array: np.ndarray) -> None:
-        self._arrays[(k, name)] = array
+        if name == "z":
+            self._z[k] = array
+            return
+        region = self._region(k, name)
+        h, w = region.shape
+        region[...] = array.reshape(h + 2, w + 2)[1:-1, 1:-1]
 
     def get(self, k: int, name: str) -> np.ndarray:
-        return self._arrays[(k, name)]
+        if name == "z":
+            return self._z[k]
+        region = self._region(k, name)
+        h, w = region.shape
+        out = np.full((h + 2, w + 2), self._PAD[name], dtype=self._DTYPE[name])
+        out[1:-1, 1:-1] = region
+        return out.reshape(-1)
 
     def rows(self, k: int, name: str, a0: int, a1: int, w: int) -> np.ndarray:
-        return padded_rows(self._arrays[(k, name)], name, a0, a1, w)
+        if name == "z":
+            return self._z[k][a0:a1]
+        return self._region(k, name)[a0:a1]
 
-    def discard(self, k: int, name: str) -> None:
-        """Let go of one tile array (once a whole-grid layer holds its cells)."""
-        self._arrays.pop((k, name), None)
+    def whole(self, name: str) -> np.ndarray | None:
+        """The padded whole-grid array of ``"level"``, ``"state"`` or ``"label"`` itself."""
+        return self._grids.get(name)
 
     def close(self) -> None:
-        self._arrays.clear()
+        """Let go of the arrays (views taken of them stay valid)."""
+        self._grids = {}
+        self._z = {}
 
     def __getstate__(self):
         raise TypeError("a MemoryStore stays in its process; use a FileStore on a cluster")
@@ -120,6 +158,13 @@ class FileStore:
         path.mkdir(parents=True)
         self.folder = str(path)
         self._layout: dict[tuple[int, str], tuple[int, np.dtype]] = {}
+
+    def start(self, plan) -> None:
+        """Nothing to prepare: each tile is a file of its own."""
+
+    def whole(self, name: str) -> None:
+        """No whole-grid arrays: layers are read by rows."""
+        return None
 
     def __getstate__(self):
         return {"folder": self.folder}
@@ -157,9 +202,6 @@ class FileStore:
             f.seek(offset + first * lw * dtype.itemsize)
             data = np.fromfile(f, dtype=dtype, count=(a1 - a0) * lw).reshape(a1 - a0, lw)
         return data[:, 1:-1] if padded else data
-
-    def discard(self, k: int, name: str) -> None:
-        """Keep the file: a layer may be read again from it."""
 
     def close(self) -> None:
         shutil.rmtree(self.folder, ignore_errors=True)
