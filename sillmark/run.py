@@ -48,7 +48,8 @@ from sillmark.engine.depressions import DepressionTable, directions
 from sillmark.engine.executors import Executor, ThreadExecutor
 from sillmark.engine.flood import DEFAULT_TILE_SIZE as MEMORY_TILE_SIZE
 from sillmark.engine.flood import SpillResult, priority_flood
-from sillmark.engine.pipeline import RasterSource, TiledFlood, run_pipeline
+from sillmark.engine.pipeline import TiledFlood, run_pipeline
+from sillmark.engine.sources import RasterSource
 from sillmark.engine.plan import TilePlan
 from sillmark.engine.stores import FileStore, MemoryStore
 from sillmark.errors import InvalidParameter

@@ -18,7 +18,8 @@ import pytest
 
 from sillmark.engine.executors import SerialExecutor, ThreadExecutor, dask_executor
 from sillmark.engine.flood import priority_flood
-from sillmark.engine.pipeline import ArraySource, run_pipeline
+from sillmark.engine.pipeline import run_pipeline
+from sillmark.engine.sources import ArraySource
 from sillmark.engine.stores import FileStore, MemoryStore
 from sillmark.errors import InvalidParameter
 from tests.loopback import loopback_cluster

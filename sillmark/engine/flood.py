@@ -92,7 +92,8 @@ from sillmark.engine.depressions import (  # noqa: F401  (public through this mo
     directions,
 )
 from sillmark.engine.executors import Executor, ThreadExecutor
-from sillmark.engine.pipeline import ArraySource, run_pipeline
+from sillmark.engine.pipeline import run_pipeline
+from sillmark.engine.sources import ArraySource
 from sillmark.engine.plan import MAX_TILE_SIZE
 from sillmark.engine.stores import MemoryStore
 from sillmark.errors import (
