@@ -3,7 +3,7 @@
 1. Writes a SIZE x SIZE float32 terrain (default 20 000 x 20 000, 1.6 GB, an
    uncompressed tiled GeoTIFF) window by window: the generator never holds more
    than one band of rows, so the DEM may be larger than memory.
-2. Analyses it with :func:`sillmark.engine.tiled.analyse_tiled` on a LocalCluster of
+2. Analyses it with :func:`sillmark.run.analyse` (tiles in scratch files) on a LocalCluster of
    WORKERS worker processes (1 thread each, MEMORY per worker, on 127.0.0.1),
    tiles of TILE cells, and prints the wall time of each step, the aggregate
    Mcells/s, the peak resident memory of every process (this one, which also
@@ -33,7 +33,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import shutil
 import subprocess
 import sys
@@ -132,8 +131,8 @@ def _process_peaks() -> dict[str, float]:
 
 def _in_memory_child(path: str, tile: int | None) -> None:
     """In a fresh process: the in-memory engine on a DEM file; print time and peak RSS."""
-    from sillmark.grid.dem import read_dem
     from sillmark.engine.flood import analyse_site, priority_flood
+    from sillmark.grid.dem import read_dem
     from sillmark.grid.outlets import build_outlets
 
     dem = read_dem(path, max_cells=2**40)
@@ -162,12 +161,13 @@ def check_crop(crop_path: Path, out: Path, run_map, tile: int) -> dict:
     """Tiled (on the cluster) against in-memory on the crop: every cell and every row."""
     import rasterio
 
-    from sillmark.grid.dem import read_dem
     from sillmark.engine.flood import priority_flood
+    from sillmark.grid.dem import read_dem
     from sillmark.grid.outlets import build_outlets
-    from sillmark.engine.tiled import analyse_tiled
+    from sillmark.run import analyse
 
-    run = analyse_tiled(crop_path, out, tile_size=tile, map=run_map)
+    run = analyse(crop_path, ("edge",), out, executor=run_map, store="files", tile_size=tile,
+                  derived=False)
     dem = read_dem(crop_path)
     mask = build_outlets(dem, ["edge"]).mask
     same = priority_flood(dem.elevation, mask, row_areas=dem.row_areas, transform=dem.transform,
@@ -244,7 +244,8 @@ def main(argv=None) -> int:
         _in_memory_child(args.in_memory_child, None)
         return 0
 
-    from sillmark.engine.tiled import analyse_tiled, dask_map
+    from sillmark.engine.executors import dask_executor as dask_map
+    from sillmark.run import analyse
 
     work = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="sillmark-bench-"))
     work.mkdir(parents=True, exist_ok=True)
@@ -261,11 +262,13 @@ def main(argv=None) -> int:
         write_terrain(crop, args.size, window=(0, args.crop, 0, args.crop))
         with dask_map(workers=args.workers, memory_limit=args.memory) as run_map:
             # Warm the workers (imports, compiled kernels from numba's cache) off the clock.
-            analyse_tiled(crop, work / "warm", tile_size=1000, map=run_map)
+            analyse(crop, ("edge",), work / "warm", executor=run_map, store="files",
+                    tile_size=1000, derived=False)
             run_map.sent_bytes = run_map.received_bytes = 0
             out_before = run_map.worker_outgoing_bytes()
             t0 = time.perf_counter()
-            run = analyse_tiled(dem, work / "out", tile_size=args.tile, map=run_map)
+            run = analyse(dem, ("edge",), work / "out", executor=run_map, store="files",
+                          tile_size=args.tile, derived=False)
             wall = time.perf_counter() - t0
             report.update({
                 "wall_s": wall,

@@ -90,7 +90,8 @@ def main() -> None:
         return
 
     from sillmark.io import hierarchy_files as hx
-    from sillmark.engine.tiled import analyse_tiled
+    from sillmark.engine.executors import SerialExecutor
+    from sillmark.run import analyse
     sys.path.insert(0, str(ROOT / "bench"))
     from bench_tiled import write_terrain
 
@@ -98,7 +99,8 @@ def main() -> None:
         tmp = Path(tmp)
         dem = write_terrain(tmp / "terrain.tif", args.size)
         t0 = time.perf_counter()
-        analyse_tiled(dem, tmp / "tiled", tile_size=2048)
+        analyse(dem, ("edge",), tmp / "tiled", executor=SerialExecutor(), store="files",
+                tile_size=2048, derived=False)
         print(f"terrain {args.size} x {args.size}; tiled engine {time.perf_counter() - t0:.1f} s")
         tiled = _child("--child", "tiled", str(tmp / "tiled"), str(args.window_cells))
         memory = _child("--child", "memory", str(dem), str(tmp / "memory"))

@@ -193,7 +193,7 @@ def _positive_int(text: str) -> int:
 
 
 def _tile_cells(text: str) -> int:
-    from sillmark.engine.tiled import MAX_TILE_SIZE
+    from sillmark.engine.plan import MAX_TILE_SIZE
 
     value = _positive_int(text)
     if value > MAX_TILE_SIZE:
@@ -791,12 +791,22 @@ class _Progress:
 
 
 def _site_from_dem(dem_path: str, args: argparse.Namespace, progress: _Progress):
-    """Read a DEM, mark its outlets and run the spill engine: the start of every command.
+    """Read a DEM, mark its outlets and run the spill engine: the start of every command."""
+    from sillmark.engine.flood import analyse_site
+
+    dem, outlets, connectivity = _read_site(dem_path, args, progress)
+    progress.start("flood")
+    result = analyse_site(dem, outlets, connectivity=connectivity)
+    progress.done()
+    return dem, outlets, result
+
+
+def _read_site(dem_path: str, args: argparse.Namespace, progress: _Progress):
+    """Read a DEM and mark its outlets; return them and the connectivity.
 
     The DEM is read by its absolute path, so that ``summary.json`` records a path
     that still leads to it from another working folder.
     """
-    from sillmark.engine.flood import analyse_site
     from sillmark.grid.dem import read_dem
     from sillmark.grid.outlets import build_outlets
 
@@ -811,10 +821,7 @@ def _site_from_dem(dem_path: str, args: argparse.Namespace, progress: _Progress)
     progress.start("outlets")
     outlets = build_outlets(dem, tuple(args.outlets or ("edge",)), connectivity=connectivity)
     progress.done()
-    progress.start("flood")
-    result = analyse_site(dem, outlets, connectivity=connectivity)
-    progress.done()
-    return dem, outlets, result
+    return dem, outlets, connectivity
 
 
 def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progress):
@@ -946,8 +953,7 @@ def _move_results(staging: Path, out_dir: Path) -> None:
 
 
 def _run_analyse(args: argparse.Namespace) -> int:
-    from sillmark.io.export import write_results
-    from sillmark.products.hierarchy import site_hierarchy
+    from sillmark.run import analyse
 
     if args.tiles is not None:
         return _run_analyse_tiled(args)
@@ -958,104 +964,93 @@ def _run_analyse(args: argparse.Namespace) -> int:
         raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show)
+    writing = []
+
+    def step(name: str, done: int, total: int) -> None:
+        # The in-memory run reports the files it writes, after the flood.
+        if not writing:
+            writing.append(name)
+            progress.done()
+            progress.start("export")
+        progress.file(name, done, total)
+
     try:
-        dem, outlets, result = _site_from_dem(args.dem, args, progress)
-        progress.start("export")
+        dem, outlets, connectivity = _read_site(args.dem, args, progress)
+        progress.start("flood")
         out_dir = Path(args.out)
-        hierarchy = site_hierarchy(dem, result)
-        with _staged_output(out_dir) as staging:
-            written = write_results(result, dem, outlets, staging, progress=progress.file)
-        files = [out_dir / p.name for p in written]
+        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step)
         progress.done()
     finally:
         progress.close()
-    for line in _summary_lines(result, dem, outlets, out_dir, files, sys.stdout, hierarchy):
+    for line in _summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
+                               run.hierarchy):
         print(line)
     return EXIT_OK
 
 
 _TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
-                 "join": "join depressions", "write": "write"}
-#: Steps of sillmark.io.hierarchy_writer.write_hierarchy_files (``analyse --tiles``).
+                 "join": "join depressions", "totals": "depression totals", "write": "write"}
+#: Steps of sillmark.io.results_folder.add_hierarchy_files (``analyse --tiles``).
 _HIERARCHY_STEPS = {"hierarchy": "depression hierarchy", "hierarchy_files": "format hierarchy",
                     "hierarchy_write": "write hierarchy files"}
 
 
 def _tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progress: _Progress,
-                  then=None):
-    """Run :func:`sillmark.engine.tiled.analyse_tiled` on the cluster the options name; return
+                  *, derived: bool = False):
+    """Run :func:`sillmark.run.analyse` tile by tile on the cluster the options name; return
     the run, the DEM's grid and a line naming the engine.
 
-    ``then(run, grid, run_map, step)``, if given, runs next on the same cluster
-    (``step`` is the progress callback of the tiled steps); its result is returned
-    fourth."""
-    from sillmark.engine.tiled import analyse_tiled, dask_map
+    ``derived``: also write the depression outlines and the hierarchy files (on
+    the same cluster)."""
+    from sillmark.engine.executors import dask_executor
     from sillmark.errors import InvalidParameter
-    from sillmark.grid.dem import read_dem_grid
+    from sillmark.run import analyse
 
     if args.max_cells is not None:
         raise InvalidParameter("--max-cells guards the memory of the in-memory engine; the tiled "
                                "engine (--tiles) holds one tile at a time: drop --max-cells")
     connectivity = 8 if args.connectivity is None else args.connectivity
+    names = {**_TILED_STEPS, "outlines": "outline depressions", **_HIERARCHY_STEPS}
 
     def step(name: str, done: int, total: int) -> None:
         if name in _HIERARCHY_STEPS:
             progress.file(_HIERARCHY_STEPS[name], done, total)  # batches done
         if done == 0:
-            progress.start(_TILED_STEPS.get(name) or _HIERARCHY_STEPS[name])
+            progress.start(names[name])
         elif done == total:
             progress.done()
 
     workers = args.workers if args.workers is not None else (os.cpu_count() or 1)
-    with dask_map(scheduler=args.scheduler, workers=None if args.scheduler else workers) as run_map:
-        n_workers = len(run_map.client.scheduler_info().get("workers", {}))
-        run = analyse_tiled(
-            os.path.abspath(dem_path), out_dir, outlets=tuple(args.outlets or ("edge",)),
-            connectivity=connectivity, tile_size=args.tiles, map=run_map, band=args.band,
-            vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
+    with dask_executor(scheduler=args.scheduler,
+                       workers=None if args.scheduler else workers) as executor:
+        n_workers = executor.worker_count()
+        run = analyse(
+            os.path.abspath(dem_path), tuple(args.outlets or ("edge",)), out_dir,
+            executor=executor, store="files", tile_size=args.tiles, connectivity=connectivity,
+            band=args.band, vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
+            derived=derived,
         )
-        grid = read_dem_grid(os.path.abspath(dem_path), band=args.band,
-                             vertical_unit=args.vertical_unit, crs=args.crs)
-        after = None if then is None else then(run, grid, run_map, step)
     where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
     engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
               f"{run.tile_size:,} cells on {where} ({n_workers} workers)")
-    if then is None:
-        return run, grid, engine
-    return run, grid, engine, after
+    return run, run.grid, engine
 
 
 def _run_analyse_tiled(args: argparse.Namespace) -> int:
-    """``analyse --tiles N``: the out-of-core engine on a Dask cluster (local or given),
+    """``analyse --tiles N``: the pipeline tile by tile on a Dask cluster (local or given),
     then the depression outlines from depression_id.tif window by window, then the
     hierarchy files in windows of depressions on the same cluster."""
     import types
 
-    from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
-    from sillmark.io.summary import FILE_NAMES
-
     show = not args.quiet and sys.stderr.isatty()
     progress = _Progress(show, phases=(*_TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
     out_dir = Path(args.out)
-
-    def outlines_and_hierarchy(run, grid, run_map, step, folder):
-        progress.start("outline depressions")
-        files = add_depression_outlines(run, grid, folder)
-        progress.done()
-        # After the outlines: their summary.json is the one the hierarchy adds to.
-        hierarchy = add_hierarchy_files(folder, map=run_map, progress=step, grid=grid)
-        by_name = {p.name: p for p in [*files, *hierarchy.files]}
-        return [by_name[n] for n in FILE_NAMES if n in by_name], hierarchy
-
     try:
-        with _staged_output(out_dir) as staging:
-            run, grid, engine, (files, hierarchy) = _tiled_engine(
-                args, args.dem, staging, progress, then=lambda *a: outlines_and_hierarchy(*a, staging))
-        files = [out_dir / p.name for p in files]
+        run, grid, engine = _tiled_engine(args, args.dem, out_dir, progress, derived=True)
     finally:
         progress.close()
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
-    lines = _summary_lines(run, grid, outlets, out_dir, files, sys.stdout, hierarchy)
+    lines = _summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout, run.hierarchy)
     lines.insert(2, engine)
     for line in lines:
         print(line)

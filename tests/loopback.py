@@ -19,3 +19,16 @@ def loopback_cluster(n_workers: int):
         yield cluster
     finally:
         cluster.close()
+
+
+def analyse_on_tiles(dem_path, out, *, outlets=("edge",), executor=None, derived=False,
+                     **options):
+    """:func:`sillmark.run.analyse` on a DEM file read tile by tile, the tiles in
+    scratch files, one after another unless an executor is given; by default
+    only the engine's files (:data:`sillmark.run.TILED_FILE_NAMES`), which the
+    tests of the outlines and the hierarchy add to."""
+    from sillmark.engine.executors import SerialExecutor
+    from sillmark.run import analyse
+
+    return analyse(dem_path, outlets, out, executor=SerialExecutor() if executor is None
+                   else executor, store="files", derived=derived, **options)

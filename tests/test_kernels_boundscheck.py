@@ -49,7 +49,7 @@ SCRIPT = textwrap.dedent(
 
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.
     import tempfile
-    from sillmark.engine.tiled import analyse_tiled
+    from tests.loopback import analyse_on_tiles
     from sillmark.io.results_folder import add_hierarchy_files
     from tests.rasters import write_raster
     with tempfile.TemporaryDirectory() as tmp:
@@ -58,7 +58,7 @@ SCRIPT = textwrap.dedent(
         z[0, 0] = 1.0
         path = write_raster(Path(tmp) / "z.tif", z, nodata=-9999.0)
         for conn, tile in ((8, 3), (4, 4)):
-            analyse_tiled(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
+            analyse_on_tiles(path, Path(tmp) / f"out{conn}", outlets=["edge", "nodata"],
                           connectivity=conn, tile_size=tile)
             add_hierarchy_files(Path(tmp) / f"out{conn}", window_cells=6)
     print("bounds ok")

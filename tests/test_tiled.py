@@ -1,4 +1,4 @@
-"""Tests of the out-of-core tiled engine (sillmark.engine.tiled) against the in-memory engine.
+"""Tests of the out-of-core tiled engine (sillmark.run.analyse on a DEM file, sillmark.engine.pipeline) against the in-memory engine.
 
 The reference for every check is Sillmark's own in-memory engine
 (:func:`sillmark.engine.flood.priority_flood`), which the suite checks elsewhere against
@@ -9,7 +9,7 @@ controlling sill) and the result files. The tile-independent part (onset stage,
 ids, pits, counts, areas, volumes, spill elevations) must also equal the
 in-memory engine at its default tile size.
 
-Most runs use :func:`sillmark.engine.tiled.serial_map`; the last tests run the same
+Most runs use :func:`sillmark.engine.executors.serial_map`; the last tests run the same
 cases on a dask.distributed LocalCluster of two worker processes on 127.0.0.1.
 """
 
@@ -30,7 +30,9 @@ from sillmark.io.csv_tables import write_depressions_csv
 from sillmark.io.geojson import write_spill_points_geojson
 from sillmark.engine.flood import SpillResult, priority_flood
 from sillmark.grid.outlets import build_outlets
-from sillmark.engine.tiled import TILED_FILE_NAMES, analyse_tiled, serial_map
+from sillmark.engine.executors import serial_map
+from sillmark.run import TILED_FILE_NAMES
+from tests.loopback import analyse_on_tiles
 from tests.loopback import loopback_cluster
 from tests.rasters import write_raster
 from tests.test_flood import TWIN_BOWLS, synthetic_terrain
@@ -116,8 +118,8 @@ def assert_tile_free(run, folder, dem, whole):
 def run_tiled(path, out, *, specs=("edge",), connectivity=8, tile=16, map=None):
     if out.exists():
         shutil.rmtree(out)
-    return analyse_tiled(path, out, outlets=list(specs), connectivity=connectivity,
-                         tile_size=tile, map=map)
+    return analyse_on_tiles(path, out, outlets=list(specs), connectivity=connectivity,
+                            tile_size=tile, executor=map)
 
 
 def check(path, tmp_path, *, specs=("edge",), connectivity=8, tile=16, map=None, routes=400):
@@ -319,17 +321,17 @@ def test_tied_spill_points_do_not_depend_on_the_tile_size(tmp_path):
 def test_bad_input_gets_the_in_memory_errors(tmp_path):
     allnan = write_raster(tmp_path / "nan.tif", np.full((6, 6), -9999.0, np.float32), nodata=-9999.0)
     with pytest.raises(InvalidDEM, match="every cell"):
-        analyse_tiled(allnan, tmp_path / "o1", tile_size=4)
+        analyse_on_tiles(allnan, tmp_path / "o1", tile_size=4)
     flat = write_raster(tmp_path / "flat.tif", np.zeros((6, 6), np.float32))
     far = {"type": "Point", "coordinates": [10.0, 10.0]}
     with pytest.raises(InvalidOutlets, match="misses the grid"):
-        analyse_tiled(flat, tmp_path / "o2", outlets=[far], tile_size=4)
+        analyse_on_tiles(flat, tmp_path / "o2", outlets=[far], tile_size=4)
     with pytest.raises(InvalidOutlets, match="no nodata"):
-        analyse_tiled(flat, tmp_path / "o3", outlets=["nodata"], tile_size=4)
+        analyse_on_tiles(flat, tmp_path / "o3", outlets=["nodata"], tile_size=4)
     with pytest.raises(InvalidParameter, match="tile_size"):
-        analyse_tiled(flat, tmp_path / "o4", tile_size=0)
+        analyse_on_tiles(flat, tmp_path / "o4", tile_size=0)
     with pytest.raises(InvalidParameter, match="4 or 8"):
-        analyse_tiled(flat, tmp_path / "o5", connectivity=6)
+        analyse_on_tiles(flat, tmp_path / "o5", connectivity=6)
     # Nothing half-done is left behind.
     for name in ("o1", "o2", "o3"):
         assert not list((tmp_path / name).iterdir())
@@ -341,9 +343,9 @@ def test_bad_input_gets_the_in_memory_errors(tmp_path):
 @pytest.fixture(scope="module")
 def cluster_map():
     """A dask.distributed LocalCluster: 2 worker processes, 1 thread each, on 127.0.0.1."""
-    from sillmark.engine.tiled import dask_map
+    from sillmark.engine.executors import dask_executor
 
-    with loopback_cluster(2) as cluster, dask_map(scheduler=cluster.scheduler_address) as run_map:
+    with loopback_cluster(2) as cluster, dask_executor(scheduler=cluster.scheduler_address) as run_map:
         yield run_map
 
 

@@ -31,7 +31,7 @@ from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.engine.flood import priority_flood
 from sillmark.products.hierarchy import site_hierarchy
 from sillmark.grid.outlets import build_outlets
-from sillmark.engine.tiled import analyse_tiled
+from tests.loopback import analyse_on_tiles
 from sillmark.products.hierarchy_windows import hierarchy_batches
 from sillmark.products.source import ArraySource
 from tests.loopback import loopback_cluster
@@ -62,8 +62,8 @@ def reference_files(path, folder, *, specs=("edge",), connectivity=8):
 def tiled_folder(path, out, *, specs=("edge",), connectivity=8, tile=16, map=None):
     if out.exists():
         shutil.rmtree(out)
-    analyse_tiled(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile,
-                  map=map)
+    analyse_on_tiles(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile,
+                     executor=map)
     return out
 
 

@@ -3,7 +3,7 @@
 The depression outlines (:mod:`sillmark.products.outlines`) and the water-level
 exports and stage table (:mod:`sillmark.io.stage_files`) are written once, against a
 result source. Here they are built from the folder
-:func:`sillmark.engine.tiled.analyse_tiled` writes, read window by window
+:func:`sillmark.run.analyse` writes on tiles, read window by window
 (:mod:`sillmark.io.results_folder`), and compared with the same writers on
 Sillmark's own in-memory path on the same DEM: the engine with the same tile
 size (:func:`sillmark.engine.flood.priority_flood` with ``tile_size``, so that the
@@ -32,7 +32,7 @@ from sillmark.products.outlines import depression_polygons
 from sillmark.io.geojson import write_depressions_geojson
 from sillmark.products.stage import stage_levels
 from sillmark.io.stage_files import write_stage_results
-from sillmark.engine.tiled import analyse_tiled
+from tests.loopback import analyse_on_tiles
 from sillmark.io.results_folder import _float32_from_text, open_result_folder
 from sillmark.products.outlines import depression_outlines
 from sillmark.products.source import ArraySource
@@ -45,7 +45,7 @@ from tests.test_tiled import in_memory
 def run_tiled(path, out, *, specs=("edge",), connectivity=8, tile=16):
     if out.exists():
         shutil.rmtree(out)
-    return analyse_tiled(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile)
+    return analyse_on_tiles(path, out, outlets=list(specs), connectivity=connectivity, tile_size=tile)
 
 
 def vertex_set(geom) -> set:
@@ -224,7 +224,7 @@ def test_stage_files_in_feet_on_a_geographic_grid(tmp_path):
     geo = Affine(0.001, 0.0, 15.0, 0.0, -0.001, 46.0)
     path = write_raster(tmp_path / "geo.tif", z, crs="EPSG:4326", transform=geo)
     out = tmp_path / "out"
-    analyse_tiled(path, out, tile_size=9, vertical_unit="ft")
+    analyse_on_tiles(path, out, tile_size=9, vertical_unit="ft")
     dem = read_dem(path, vertical_unit="ft")
     from sillmark.grid.outlets import build_outlets
     from sillmark.engine.flood import priority_flood
@@ -358,7 +358,7 @@ BOUNDS_SCRIPT = """
 import tempfile
 from pathlib import Path
 import numpy as np
-from sillmark.engine.tiled import analyse_tiled
+from tests.loopback import analyse_on_tiles
 from sillmark.io.results_folder import open_result_folder
 from sillmark.io.stage_files import write_stage_results
 from sillmark.products.stage import stage_table
@@ -371,7 +371,7 @@ with tempfile.TemporaryDirectory() as tmp:
         z[0, 0] = 1.0
         path = write_raster(Path(tmp) / "z.tif", z, nodata=-9999.0)
         out = Path(tmp) / f"out{shape[0]}"
-        analyse_tiled(path, out, outlets=["edge"], tile_size=4)
+        analyse_on_tiles(path, out, outlets=["edge"], tile_size=4)
         site = open_result_folder(out)
         stage_table(site, np.arange(-1, 7, 0.5))
         write_stage_results(site, Path(tmp) / f"stage{shape[0]}", levels=[2.5])

@@ -18,10 +18,9 @@ through a small graph over their perimeter cells, after Barnes (2016):
    cell back to it reversed, so that it leads out through the meeting.
 
 Step 1 works on tile-local arrays (:func:`_flood_tile_arrays` returns the
-tile's own padded level, state and label arrays); :func:`_flood_tile` copies
-them into the shared padded arrays of :mod:`sillmark.engine._flood_kernels`
-(``level``, ``state``, ``label``; width ``width``) for the in-memory engine,
-while the out-of-core engine (:mod:`sillmark.engine.tiled`) keeps them per tile. Step
+tile's own padded level, state and label arrays), which the pipeline
+(:mod:`sillmark.engine.pipeline`) hands to its tile store; :func:`_flood_tile`
+copies them into shared padded arrays of width ``width`` instead. Step
 3 (:func:`_finish_tile`) takes either: the shared arrays with the tile's bounds,
 or a tile's own arrays with bounds ``0:h, 0:w`` and width ``w + 2``. The kernels
 trust their inputs. Per-tile kernels release the GIL so tiles run on several

@@ -1,15 +1,14 @@
-"""Compiled loops of the out-of-core tiled engine (private; see :mod:`sillmark.engine.tiled`).
+"""Compiled loops of the tile pipeline's later steps (private; see :mod:`sillmark.engine.pipeline`).
 
-The tiled engine floods every tile with :func:`sillmark.engine._tile_kernels.flood_tile_arrays`
+The pipeline floods every tile with :func:`sillmark.engine._tile_kernels.flood_tile_arrays`
 and finishes it with :func:`sillmark.engine._tile_kernels.finish_tile`, both on the
 tile's own padded arrays (width ``lw = w + 2``, local index
 ``li = (lr + 1) * lw + lc + 1``). The loops here do the rest:
 
 - (the *perimeter* of a tile, its cells in a fixed order, which is all the
   client ever sees of a tile, is laid out by :mod:`sillmark.engine.plan`);
-- the links between touching perimeter cells of neighbouring tiles, in the very
-  order the in-memory engine lists them (so both solve the same graph the same
-  way);
+- the links between touching perimeter cells of neighbouring tiles, in
+  perimeter order (the graph solved, and so the results, depend on it);
 - per tile, after finishing: the pieces of depressions inside the tile
   (connected components of ``s > z``, numbered in the tile's raster order);
 - on the client: the union of pieces across tile edges and the depression
@@ -28,7 +27,7 @@ import numpy as np
 from numba import njit
 
 from sillmark.engine._flood_kernels import BLOCKED, UNVISITED, _find, _grow_int32
-from sillmark.engine.plan import (  # noqa: F401  (perimeter_cells: used by sillmark.engine.tiled)
+from sillmark.engine.plan import (  # noqa: F401  (perimeter_cells: re-exported)
     _across_tiles,
     _grid_perimeters,
     _perimeter_index,

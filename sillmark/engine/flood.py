@@ -53,9 +53,10 @@ engine's connectivity, and both engines compute this definition:
   that cell's lowest neighbour and then down the flood tree to an outlet.
 
 The onset stage, the depression ids and every column of the depression table
-are thus the same for every tile size, in this engine and in
-:mod:`sillmark.engine.tiled`; only the flood tree (and route cells below the spill
-elevation) may differ where routes tie.
+are thus the same for every tile size, executor and store (the engine is the
+one pipeline of :mod:`sillmark.engine.pipeline`, tiled after Barnes 2016); only
+the flood tree (and route cells below the spill elevation) may differ where
+routes tie, and only between tile sizes.
 
 References
 ----------
@@ -65,6 +66,9 @@ models. Computers & Geosciences 62, 117-127. doi:10.1016/j.cageo.2013.04.024
 Zhou, G., Sun, Z., Fu, S. (2016). An efficient variant of the Priority-Flood
 algorithm for filling depressions in raster digital elevation models.
 Computers & Geosciences 90, 87-96. doi:10.1016/j.cageo.2016.02.021
+Barnes, R. (2016). Parallel priority-flood depression filling for trillion cell
+digital elevation models on desktops or clusters. Computers & Geosciences 96,
+56-68. doi:10.1016/j.cageo.2016.07.001
 Moore, E. F. (1959). The shortest path through a maze. Proceedings of an
 International Symposium on the Theory of Switching, Harvard University Press,
 285-292.
@@ -73,15 +77,25 @@ International Symposium on the Theory of Switching, Harvard University Press,
 from __future__ import annotations
 
 import dataclasses
-import os
-import threading
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from sillmark.engine import _flood_kernels
-from sillmark.engine import _spill_kernels as _s
-from sillmark.engine import _tile_kernels as _t
+from sillmark.engine import _flood_kernels, _spill_kernels
+from sillmark.engine.depressions import (  # noqa: F401  (public through this module)
+    DIRECTION_COL,
+    DIRECTION_ROW,
+    NO_PARENT_CODE,
+    OUTLET_CODE,
+    DepressionTable,
+    depression_table,
+    directions,
+)
+from sillmark.engine.executors import Executor, ThreadExecutor
+from sillmark.engine.pipeline import run_pipeline
+from sillmark.engine.sources import ArraySource
+from sillmark.engine.plan import MAX_TILE_SIZE
+from sillmark.engine.stores import MemoryStore
 from sillmark.errors import (
     InvalidDEM,
     InvalidOutlets,
@@ -95,86 +109,12 @@ if TYPE_CHECKING:  # pragma: no cover
     from sillmark.grid.dem import DEM
     from sillmark.grid.outlets import Outlets
 
-#: Flood-tree code of an outlet cell (the root of the tree).
-OUTLET_CODE = _flood_kernels.OUTLET
-#: Flood-tree code of a nodata cell or of a cell no outlet reaches.
-NO_PARENT_CODE = 0
-#: Row and column steps of flood-tree codes 1..8 (NW, N, NE, W, E, SW, S, SE).
-DIRECTION_ROW = np.array([-1, -1, -1, 0, 0, 1, 1, 1], dtype=np.int64)
-DIRECTION_COL = np.array([-1, 0, 1, -1, 1, -1, 0, 1], dtype=np.int64)
-_FOUR = np.array([1, 3, 4, 6])  # N, W, E, S among the eight directions
-
 #: Largest padded grid the packed 32-bit heap index can address.
 MAX_PADDED_CELLS = 2**32 - 1
 #: Side of the square tiles the flood is cut into, in cells. Tiles of this size
 #: keep a tile's working arrays within the processor caches and give the
 #: threads enough tiles to share.
 DEFAULT_TILE_SIZE = 512
-
-
-@dataclasses.dataclass(frozen=True)
-class DepressionTable:
-    """One row per depression (ids 1..n); columns are numpy arrays.
-
-    Attributes
-    ----------
-    id : int32
-        Depression id, as in :attr:`SpillResult.depression_id`.
-    pit_row, pit_col : int64
-        Lowest cell (first in row-major order on ties).
-    pit_elevation : float32
-        Its elevation, in the site's vertical unit.
-    spill_row, spill_col : int64
-        Spill point: the rim cell at the spill elevation the overflow leaves
-        through (first in raster order among those one hop nearer a way out;
-        see the module docstring).
-    spill_x, spill_y : float64
-        Spill point cell centre in the DEM's CRS (NaN without a transform).
-    spill_elevation : float32
-        Water level at which the depression starts to overflow.
-    spills_to : int32
-        Id of the depression the overflow reaches next, or 0 for an outlet (see
-        the module docstring).
-    max_depth : float32
-        ``spill_elevation - pit_elevation``.
-    cell_count : int64
-    area_m2 : float64
-        Plan area of the depression's cells.
-    volume_m2_vu : float64
-        Storage at the spill elevation, in m² times the vertical unit (sum over
-        cells of area times depth). Convert with the vertical unit to m³.
-    """
-
-    id: np.ndarray
-    pit_row: np.ndarray
-    pit_col: np.ndarray
-    pit_elevation: np.ndarray
-    spill_row: np.ndarray
-    spill_col: np.ndarray
-    spill_x: np.ndarray
-    spill_y: np.ndarray
-    spill_elevation: np.ndarray
-    spills_to: np.ndarray
-    max_depth: np.ndarray
-    cell_count: np.ndarray
-    area_m2: np.ndarray
-    volume_m2_vu: np.ndarray
-
-    def __len__(self) -> int:
-        return int(self.id.shape[0])
-
-    @property
-    def columns(self) -> tuple[str, ...]:
-        return tuple(f.name for f in dataclasses.fields(self))
-
-    def row(self, depression_id: int) -> dict:
-        """All columns of one depression as plain Python values."""
-        k = int(depression_id) - 1
-        if not 0 <= k < len(self):
-            raise InvalidParameter(
-                f"no depression with id {depression_id}; ids run from 1 to {len(self)}"
-            )
-        return {name: getattr(self, name)[k].item() for name in self.columns}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -265,10 +205,10 @@ class SpillResult:
                     f"cell ({row}, {col}) carries depression id {dep} but the table has "
                     f"{len(t)} rows; pass the table computed with these rasters"
                 )
-            path_r, path_c, k = _s.route_through_sill(
+            path_r, path_c, k = _spill_kernels.route_through_sill(
                 self.onset_stage, self.depression_id, self.flood_tree, np.int64(row),
                 np.int64(col), np.int64(t.spill_row[dep - 1]), np.int64(t.spill_col[dep - 1]),
-                DIRECTION_ROW, DIRECTION_COL, _directions(self.connectivity),
+                DIRECTION_ROW, DIRECTION_COL, directions(self.connectivity),
                 np.int64(rows * cols + 1),
             )
             if k < 0:
@@ -292,95 +232,6 @@ class SpillResult:
             sill_elevation=float(self.elevation[path_r[k], path_c[k]]),
             reaches_outlet=reaches,
         )
-
-
-def _directions(connectivity: int) -> np.ndarray:
-    """Indices (into NW, N, NE, W, E, SW, S, SE) of the neighbours used."""
-    if connectivity == 8:
-        return np.arange(8, dtype=np.int64)
-    if connectivity == 4:
-        return _FOUR.astype(np.int64)
-    raise InvalidParameter(f"connectivity must be 4 or 8, not {connectivity!r}")
-
-
-def _on_threads(fn, items, workers: int) -> list:
-    """``[fn(x) for x in items]`` on ``workers`` threads (x taken in turn).
-
-    The compiled tile kernels release the GIL, so the threads run at once.
-    Plain threads rather than an executor: one hand-off per thread, not per tile.
-    """
-    items = list(items)
-    results = [None] * len(items)
-    errors = []
-
-    def run(start):
-        try:
-            for k in range(start, len(items), workers):
-                results[k] = fn(items[k])
-        except BaseException as exc:  # re-raised in the caller's thread
-            errors.append(exc)
-
-    threads = [threading.Thread(target=run, args=(w,)) for w in range(1, workers)]
-    for th in threads:
-        th.start()
-    run(0)
-    for th in threads:
-        th.join()
-    if errors:
-        raise errors[0]
-    return results
-
-
-def _tiled_flood(z, mask, dirs, tile, level, tree, label, width) -> int:
-    """Onset stage and flood tree by the tiled Priority-Flood (see _tile_kernels).
-
-    Tiles are flooded, and later finished, on several threads (the kernels
-    release the GIL); the graph between tiles is solved in between.
-    """
-    rows, cols = z.shape
-    tile_rows = -(-rows // tile)
-    tile_cols = -(-cols // tile)
-    bounds = [
-        (ti * tile, min(rows, (ti + 1) * tile), tj * tile, min(cols, (tj + 1) * tile))
-        for ti in range(tile_rows)
-        for tj in range(tile_cols)
-    ]
-
-    def flood_one(b):
-        return _t.flood_tile(
-            z, mask, np.int64(b[0]), np.int64(b[1]), np.int64(b[2]), np.int64(b[3]),
-            DIRECTION_ROW, DIRECTION_COL, dirs, level, tree, label, np.int64(width),
-        )
-
-    workers = min(len(bounds), os.cpu_count() or 1)
-    floods = _on_threads(flood_one, bounds, workers)
-    seed_counts = np.array([len(f[0]) - 1 for f in floods], dtype=np.int64)
-    base = np.concatenate([[0], np.cumsum(seed_counts)[:-1]]).astype(np.int64)
-    n_nodes = int(seed_counts.sum()) + 1
-    parts = [_t.links(level, tree, label, base, np.int64(tile_rows), np.int64(tile_cols),
-                      np.int64(tile), np.int64(rows), np.int64(cols), np.int64(width),
-                      DIRECTION_ROW, DIRECTION_COL, dirs)]
-    for t, f in enumerate(floods):
-        _, ea, eb, elevel, ecell_a, ecell_b, _ = f
-        eu = np.where(ea == 0, 0, base[t] + ea)
-        ev = np.where(eb == 0, 0, base[t] + eb)
-        parts.append((eu, ev, elevel, ecell_a, ecell_b))
-    eu, ev, elevel, ecu, ecv = (np.concatenate([p[k] for p in parts]) for k in range(5))
-    lam, own_cell, other_cell = _t.solve_graph(
-        np.int64(n_nodes), eu.astype(np.int64), ev.astype(np.int64),
-        elevel.astype(np.float32), ecu.astype(np.int64), ecv.astype(np.int64),
-    )
-
-    def finish_one(k):
-        r0, r1, c0, c1 = bounds[k]
-        _t.finish_tile(
-            np.int64(r0), np.int64(r1), np.int64(c0), np.int64(c1), level, tree, label,
-            base[k], lam, floods[k][0], own_cell, other_cell,
-            DIRECTION_ROW, DIRECTION_COL, np.int64(width),
-        )
-
-    _on_threads(finish_one, range(len(bounds)), workers)
-    return int(sum(f[6] for f in floods))
 
 
 def _validated_elevation(elevation) -> np.ndarray:
@@ -418,6 +269,8 @@ def priority_flood(
     row_areas=None,
     transform: "Affine | None" = None,
     tile_size: int | None = None,
+    executor: Executor | None = None,
+    store=None,
 ) -> SpillResult:
     """Onset stage, flood tree and depression inventory of a DEM.
 
@@ -441,6 +294,13 @@ def priority_flood(
         :data:`DEFAULT_TILE_SIZE`). The onset stage, depression ids, the
         whole table and every route's controlling sill do not depend on it;
         the flood tree may differ where routes tie.
+    executor : Executor, optional
+        Runs the tile steps (:mod:`sillmark.engine.executors`); default a
+        :class:`~sillmark.engine.executors.ThreadExecutor`, one thread per core.
+    store : TileStore, optional
+        Keeps the tiles between the steps (:mod:`sillmark.engine.stores`);
+        default a :class:`~sillmark.engine.stores.MemoryStore`. It is closed
+        at the end. Every executor and store gives the same bits.
 
     Returns
     -------
@@ -452,10 +312,16 @@ def priority_flood(
 
     Notes
     -----
+    This is the pipeline of :mod:`sillmark.engine.pipeline` on the arrays
+    (:class:`~sillmark.engine.pipeline.ArraySource`), by default on threads with
+    the tiles kept in memory.
+
     Memory: the result holds 9 bytes per cell (float32 onset stage, uint8 flood
-    tree, int32 depression id), allocated once on a grid padded by one cell; the
-    queues hold only the moving frontier (8 bytes per cell on it). Runs in
-    O(n log m) for n cells and a frontier of m cells.
+    tree, int32 depression id); the tiles' working arrays, 9 bytes per cell,
+    are let go of layer by layer as the result is read from them, so the peak
+    stays near 13 bytes per cell beyond the DEM; the queues hold only the
+    moving frontier (8 bytes per cell on it). Runs in O(n log m) for n cells
+    and a frontier of m cells.
 
     Examples
     --------
@@ -490,6 +356,8 @@ def priority_flood(
     tile = DEFAULT_TILE_SIZE if tile_size is None else int(tile_size)
     if tile < 1:
         raise InvalidParameter(f"tile_size must be a positive number of cells, not {tile_size!r}")
+    # A tile larger than the grid is the grid: one tile either way.
+    tile = min(tile, max(rows, cols), MAX_TILE_SIZE)
     infinite, valid_outlets = _flood_kernels.scan_inputs(z, mask)
     if infinite:
         z = np.where(np.isinf(z), np.float32(np.nan), z)
@@ -498,176 +366,27 @@ def priority_flood(
             "no outlet cell lies on valid data; mark at least one cell with an "
             "elevation as an outlet (the DEM edge, cells next to nodata, or a water body)"
         )
-    dirs = _directions(connectivity)
-    width = cols + 2
-    level_pad = np.empty((rows + 2, width), dtype=np.float32)
-    tree_pad = np.empty((rows + 2, width), dtype=np.uint8)
-    label_pad = np.empty((rows + 2, width), dtype=np.int32)
-    _flood_kernels.pad_grids(level_pad, tree_pad, label_pad)
-    level, tree, label = level_pad.reshape(-1), tree_pad.reshape(-1), label_pad.reshape(-1)
-
-    heap_pops = _tiled_flood(z, mask, dirs, tile, level, tree, label, width)
-
-    steps = DIRECTION_ROW[dirs] * width + DIRECTION_COL[dirs]
-    back = steps[steps < 0].astype(np.int64)
-    count, area, volume, pit_elevation, pit_cell, unreached = _flood_kernels.label_depressions(
-        level, tree, label, z, areas, back, np.int64(width)
-    )
-    spill_cell, spills_to = _spill_points(level, tree, label, len(count) - 1, dirs, rows, cols)
-
-    table = _depression_table(
-        level, width, cols, count, area, volume, pit_elevation, pit_cell, spill_cell,
-        spills_to, transform,
-    )
+    directions(connectivity)  # refuse a wrong connectivity before any work
+    store = MemoryStore() if store is None else store
+    try:
+        flood = run_pipeline(
+            ArraySource(z, mask), executor=ThreadExecutor() if executor is None else executor,
+            store=store, tile_size=tile, connectivity=connectivity, row_areas=areas,
+            transform=transform,
+        )
+        onset, tree, ids = (flood.read(layer, 0, rows)
+                            for layer in ("onset_stage", "flood_tree", "depression_id"))
+    finally:
+        store.close()
     return SpillResult(
         elevation=z,
-        onset_stage=level_pad[1:-1, 1:-1],
-        flood_tree=tree_pad[1:-1, 1:-1],
-        depression_id=label_pad[1:-1, 1:-1],
-        depressions=table,
+        onset_stage=onset,
+        flood_tree=tree,
+        depression_id=ids,
+        depressions=flood.depressions,
         connectivity=connectivity,
-        unreached_cells=int(unreached),
-        heap_pops=int(heap_pops),
-    )
-
-
-def _spill_points(level, tree, label, n, dirs, rows, cols):
-    """Canonical spill cells (flat ``row * cols + col``) and ``spills_to`` of depressions 1..n.
-
-    The whole padded grid is summarised as one tile (no perimeter to share),
-    then the graph solved (see the module docstring and
-    :mod:`sillmark.engine._spill_kernels`). The summary labels dry areas with
-    negative numbers in ``label``; they are cleared afterwards.
-    """
-    width = cols + 2
-    offs = (DIRECTION_ROW[dirs] * width + DIRECTION_COL[dirs]).astype(np.int64)
-    none = np.empty(0, dtype=np.int64)
-    summary = _s.summarise_tile(level, tree, label, np.int64(rows), np.int64(cols), offs, dirs,
-                                np.int64(n), False, none, np.int64(0), np.int64(0),
-                                np.int64(cols))
-    np.maximum(label, 0, out=label)
-    parts = _spill_parts(summary, np.arange(n + 1, dtype=np.int32), 0)
-    empty_f, empty_i, empty_b = (np.empty(0, np.float32), np.empty(0, np.int32),
-                                 np.empty(0, np.bool_))
-    return _resolve_spill_parts(
-        n, parts, p_level=empty_f, p_dep=empty_i, p_outlet=empty_b,
-        poff=np.zeros(2, np.int64), tile=max(rows, cols), rows=rows, cols=cols, dirs=dirs,
-    )
-
-
-def _spill_parts(summary, piece_ids: np.ndarray, area_base: int) -> dict:
-    """One tile's spill summary in global numbers (for :func:`_resolve_spill_parts`).
-
-    ``piece_ids[k]`` is the depression id of the tile's depression piece ``k``
-    (``piece_ids[0] == 0``); the tile's reported dry areas 1..m become global
-    areas ``area_base .. area_base + m - 1`` (-1 for none).
-    """
-    (a_level, a_exit, a_kind, a_val, adj_area, adj_dep, adj_cell,
-     p_area, p_low_level, p_low_dir, p_low_kind, p_low_val) = summary
-
-    def targets(kind, val):
-        out = val.copy()
-        dep = kind == _s.KIND_DEPRESSION
-        out[dep] = piece_ids[val[dep]]
-        area = kind == _s.KIND_AREA
-        out[area] = area_base + val[area] - 1
-        return out
-
-    return {
-        "a_level": a_level, "a_exit": a_exit, "a_kind": a_kind, "a_val": targets(a_kind, a_val),
-        "adj_area": (area_base + adj_area.astype(np.int64) - 1), "adj_dep": piece_ids[adj_dep],
-        "adj_cell": adj_cell,
-        "p_area": np.where(p_area > 0, area_base + p_area.astype(np.int64) - 1, -1),
-        "p_low_level": p_low_level, "p_low_dir": p_low_dir, "p_low_kind": p_low_kind,
-        "p_low_val": targets(p_low_kind, p_low_val),
-    }
-
-
-def _resolve_spill_parts(n, parts, *, p_level, p_dep, p_outlet, poff, tile, rows, cols, dirs):
-    """Spill cells and ``spills_to`` of depressions 1..n from the tiles' summaries.
-
-    ``parts`` holds the :func:`_spill_parts` of every tile concatenated (same
-    keys); ``p_level``, ``p_dep`` (depression id or 0) and ``p_outlet`` are the
-    tiles' perimeters in perimeter order, tile ``t`` from ``poff[t]``.
-    Returns two arrays indexed by id (entry 0 unused): the spill cell as
-    ``row * cols + col`` and ``spills_to``.
-    """
-    tile_rows = -(-rows // tile)
-    tile_cols = -(-cols // tile)
-    return _s.resolve_spills(
-        np.int64(n), parts["a_level"].astype(np.float32), parts["a_exit"].astype(np.int64),
-        parts["a_kind"].astype(np.int8), parts["a_val"].astype(np.int64),
-        parts["adj_area"].astype(np.int64), parts["adj_dep"].astype(np.int32),
-        parts["adj_cell"].astype(np.int64), p_level.astype(np.float32), p_dep.astype(np.int32),
-        parts["p_area"].astype(np.int64), p_outlet.astype(np.bool_),
-        parts["p_low_level"].astype(np.float32), parts["p_low_dir"].astype(np.int64),
-        parts["p_low_kind"].astype(np.int8), parts["p_low_val"].astype(np.int64),
-        poff.astype(np.int64), np.int64(tile), np.int64(tile_rows), np.int64(tile_cols),
-        np.int64(rows), np.int64(cols), DIRECTION_ROW, DIRECTION_COL, dirs.astype(np.int64),
-    )
-
-
-def _depression_table(
-    level, width, cols, count, area, volume, pit_elevation, pit_cell, spill_cell, spills_to,
-    transform,
-) -> DepressionTable:
-    spill = spill_cell[1:]
-    return depression_table(
-        pit_row=pit_cell[1:] // width - 1,
-        pit_col=pit_cell[1:] % width - 1,
-        pit_elevation=pit_elevation[1:],
-        spill_row=spill // cols,
-        spill_col=spill % cols,
-        spill_elevation=level[pit_cell[1:]],
-        spills_to=spills_to[1:],
-        cell_count=count[1:],
-        area_m2=area[1:],
-        volume_m2_vu=volume[1:],
-        transform=transform,
-    )
-
-
-def depression_table(
-    *, pit_row, pit_col, pit_elevation, spill_row, spill_col, spill_elevation, spills_to,
-    cell_count, area_m2, volume_m2_vu, transform=None,
-) -> DepressionTable:
-    """A :class:`DepressionTable` from its cell-level columns (ids 1..n in the given order).
-
-    Fills in ``id``, ``spill_x``/``spill_y`` (cell centres through ``transform``,
-    NaN without one) and ``max_depth`` (``spill_elevation - pit_elevation`` in
-    float32), as :func:`priority_flood` does; for engines that compute the
-    depressions elsewhere (:mod:`sillmark.engine.tiled`).
-    """
-    pit_row = np.asarray(pit_row, dtype=np.int64)
-    pit_col = np.asarray(pit_col, dtype=np.int64)
-    spill_row = np.asarray(spill_row, dtype=np.int64)
-    spill_col = np.asarray(spill_col, dtype=np.int64)
-    spill_elevation = np.asarray(spill_elevation).astype(np.float32)
-    n = pit_row.shape[0]
-    if transform is not None:
-        t = transform
-        cx, cy = spill_col + 0.5, spill_row + 0.5
-        spill_x = (t.a * cx + t.b * cy + t.c).astype(np.float64)
-        spill_y = (t.d * cx + t.e * cy + t.f).astype(np.float64)
-    else:
-        spill_x = np.full(n, np.nan)
-        spill_y = np.full(n, np.nan)
-    pit_z = np.asarray(pit_elevation).astype(np.float32)
-    return DepressionTable(
-        id=np.arange(1, n + 1, dtype=np.int32),
-        pit_row=pit_row,
-        pit_col=pit_col,
-        pit_elevation=pit_z,
-        spill_row=spill_row,
-        spill_col=spill_col,
-        spill_x=spill_x,
-        spill_y=spill_y,
-        spill_elevation=spill_elevation,
-        spills_to=np.asarray(spills_to).astype(np.int32),
-        max_depth=(spill_elevation - pit_z).astype(np.float32),
-        cell_count=np.asarray(cell_count, dtype=np.int64),
-        area_m2=np.asarray(area_m2, dtype=np.float64),
-        volume_m2_vu=np.asarray(volume_m2_vu, dtype=np.float64),
+        unreached_cells=flood.unreached_cells,
+        heap_pops=flood.heap_pops,
     )
 
 

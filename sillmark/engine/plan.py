@@ -1,6 +1,6 @@
-"""Where tiles and their perimeters lie on a grid cut into square tiles (private helpers).
+"""The tile plan: where tiles and their perimeters lie on a grid cut into square tiles.
 
-Both tiled engines cut a ``rows x cols`` grid into tiles of ``tile x tile``
+The Priority-Flood pipeline (:mod:`sillmark.engine.pipeline`) cuts a ``rows x cols`` grid into tiles of ``tile x tile``
 cells (the last row and column of tiles may be smaller), numbered
 ``t = ti * tile_cols + tj`` in raster order. The tiled Priority-Flood of
 Barnes (2016) joins tiles only through their *perimeters*: a tile's cells on
@@ -9,12 +9,12 @@ and last cell of every middle row, then its last row left to right; a tile one
 column wide lists each middle cell once). The perimeters of all tiles are
 concatenated in tile order, tile ``t``'s from ``poff[t]``.
 
-The helpers here are shared by the in-memory tiled flood
-(:mod:`sillmark.engine._tile_kernels`), the out-of-core engine
-(:mod:`sillmark.engine._tiled_kernels`) and the spill-point kernels
-(:mod:`sillmark.engine._spill_kernels`), so that every one of them walks the tile
-edges in the same order: the graph they solve, and so the results, depend on
-that order. Global cells are addressed by ``g = row * cols + col``.
+:class:`TilePlan` answers these questions for Python code; the compiled helpers
+below it answer them inside the kernels (:mod:`sillmark.engine._tile_kernels`,
+:mod:`sillmark.engine._tiled_kernels`, :mod:`sillmark.engine._spill_kernels`),
+so that every step walks the tile edges in the same order: the graph they
+solve, and so the results, depend on that order. Global cells are addressed by
+``g = row * cols + col``.
 
 Reference: Barnes, R. (2016). Parallel priority-flood depression filling for
 trillion cell digital elevation models on desktops or clusters. Computers &
@@ -23,8 +23,75 @@ Geosciences 96, 56-68. doi:10.1016/j.cageo.2016.07.001
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 from numba import njit
+
+from sillmark.errors import InvalidParameter
+
+#: Largest tile side: a tile's padded cells must fit the 32-bit heap index.
+MAX_TILE_SIZE = 65533
+
+
+@dataclasses.dataclass(frozen=True)
+class TilePlan:
+    """A ``rows x cols`` grid cut into square tiles of ``tile`` cells, in raster order.
+
+    Tile ``k = ti * tile_cols + tj`` covers rows ``ti * tile`` up to (not
+    including) ``min(rows, (ti + 1) * tile)`` and the matching columns.
+
+    Examples
+    --------
+    >>> plan = TilePlan(rows=5, cols=7, tile=4)
+    >>> plan.tiles, plan.bounds(1)
+    (4, (0, 4, 4, 7))
+    """
+
+    rows: int
+    cols: int
+    tile: int
+
+    def __post_init__(self) -> None:
+        tile = self.tile
+        if isinstance(tile, bool) or not isinstance(tile, (int, np.integer)):
+            raise InvalidParameter(f"tile_size must be a whole number of cells, not {tile!r}")
+        if not 1 <= int(tile) <= MAX_TILE_SIZE:
+            raise InvalidParameter(
+                f"tile_size must be between 1 and {MAX_TILE_SIZE} cells, not {tile}"
+            )
+        object.__setattr__(self, "tile", int(tile))
+        object.__setattr__(self, "rows", int(self.rows))
+        object.__setattr__(self, "cols", int(self.cols))
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.rows, self.cols
+
+    @property
+    def tile_rows(self) -> int:
+        return -(-self.rows // self.tile)
+
+    @property
+    def tile_cols(self) -> int:
+        return -(-self.cols // self.tile)
+
+    @property
+    def tiles(self) -> int:
+        return self.tile_rows * self.tile_cols
+
+    def bounds(self, k: int) -> tuple[int, int, int, int]:
+        """``(r0, r1, c0, c1)`` of tile ``k``."""
+        ti, tj = divmod(int(k), self.tile_cols)
+        t = self.tile
+        return ti * t, min(self.rows, (ti + 1) * t), tj * t, min(self.cols, (tj + 1) * t)
+
+    def perimeter(self, k: int) -> np.ndarray:
+        """Local padded indices (width ``w + 2``) of tile ``k``'s perimeter, in perimeter order."""
+        r0, r1, c0, c1 = self.bounds(k)
+        h, w = r1 - r0, c1 - c0
+        pr, pc = perimeter_cells(h, w)
+        return (pr + 1) * (w + 2) + pc + 1
 
 
 def _perimeter_count(h, w):

@@ -32,6 +32,7 @@ atomically (:mod:`sillmark.io.atomic`).
 
 from __future__ import annotations
 
+import dataclasses
 import os
 from collections.abc import Callable
 from pathlib import Path
@@ -39,8 +40,6 @@ from typing import TYPE_CHECKING
 
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_crs
-from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
-from sillmark.io.hierarchy_writer import write_hierarchy_files
 from sillmark.io.csv_tables import write_depressions_csv
 from sillmark.io.geojson import write_depressions_geojson, write_spill_points_geojson
 from sillmark.io.geotiff import (
@@ -51,6 +50,8 @@ from sillmark.io.geotiff import (
     write_flood_tree,
     write_onset_stage,
 )
+from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
+from sillmark.io.hierarchy_writer import HierarchyFiles, write_hierarchy_files
 from sillmark.io.summary import FILE_NAMES, write_summary
 from sillmark.products.source import ArraySource
 
@@ -59,7 +60,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from sillmark.grid.dem import DEM
     from sillmark.grid.outlets import Outlets
 
-__all__ = ["write_results"]
+__all__ = ["ResultFiles", "write_result_files", "write_results"]
 
 
 
@@ -182,6 +183,15 @@ __all__ = ["write_results"]
 # --------------------------------------------------------------------------- all
 
 
+@dataclasses.dataclass(frozen=True)
+class ResultFiles:
+    """What :func:`write_result_files` wrote: the paths in the order of
+    :data:`FILE_NAMES`, and the counts of the depression hierarchy it wrote."""
+
+    paths: list
+    hierarchy: HierarchyFiles
+
+
 def write_results(
     result: "SpillResult",
     dem: "DEM",
@@ -190,7 +200,19 @@ def write_results(
     *,
     progress: Progress | None = None,
 ) -> list[Path]:
-    """Write every result file of one site run into ``out_dir``; return their paths.
+    """:func:`write_result_files`, returning the paths only."""
+    return write_result_files(result, dem, outlets, out_dir, progress=progress).paths
+
+
+def write_result_files(
+    result: "SpillResult",
+    dem: "DEM",
+    outlets: "Outlets",
+    out_dir: str | os.PathLike,
+    *,
+    progress: Progress | None = None,
+) -> ResultFiles:
+    """Write every result file of one site run into ``out_dir``.
 
     The folder is created if missing. Files of the names in :data:`FILE_NAMES`
     are replaced; nothing else in the folder is touched. ``summary.json`` comes
@@ -208,8 +230,8 @@ def write_results(
 
     Returns
     -------
-    list of Path
-        In the order of :data:`FILE_NAMES`.
+    ResultFiles
+        The paths in the order of :data:`FILE_NAMES`, and the hierarchy's counts.
 
     Raises
     ------
@@ -271,35 +293,6 @@ def write_results(
             lambda: write_summary(result, dem, outlets, out / summary_name, files=[p.name for p in paths]),
         )
     )
-    return paths
-
-
-# --------------------------------------------------------------------------- shared with other writers
-#
-# Small public entry points to the conventions above, for modules that write
-# further result files (water-level maps, stage tables): the same GeoTIFF
-# profile and tags, the same CSV number format, the same GeoJSON geometry.
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
+    return ResultFiles(paths=paths, hierarchy=written)
 
 

@@ -16,8 +16,8 @@ Steps
    (:func:`sillmark.products.hierarchy_windows.hierarchy_batches`). A result in
    memory is, by default, one batch.
 2. **Hierarchy of each batch** (one task per batch, through ``map(fn,
-   calls)``, e.g. :func:`sillmark.engine.tiled.serial_map` or a
-   :class:`sillmark.engine.tiled.DaskMap`): the task reads the batch's
+   calls)``, e.g. :func:`sillmark.engine.executors.serial_map` or a
+   :class:`sillmark.engine.executors.DaskExecutor`): the task reads the batch's
    ``elevation`` and ``depression_id`` windows, builds its hierarchy
    (:func:`sillmark.products.hierarchy_windows.batch_hierarchy`) and keeps the
    node table and curve rows (:func:`sillmark.io.hierarchy_files.curve_part_columns`)
@@ -284,7 +284,7 @@ def write_hierarchy_files(
         able to write into it (scratch files).
     map : callable, optional, keyword-only
         ``map(fn, calls)`` running the batch tasks, as for
-        :func:`sillmark.engine.tiled.analyse_tiled` (e.g. a Dask map). Default:
+        :func:`sillmark.run.analyse` (e.g. a Dask executor). Default:
         in this process, one batch after another, nothing pickled.
     progress : callable, optional, keyword-only
         ``progress(step, done, total)``: step ``"hierarchy"`` counts batches

@@ -22,7 +22,7 @@ import math
 import os
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import Any
 
 import numpy as np
 import rasterio
@@ -33,16 +33,17 @@ from sillmark.grid.dem import DEMGrid, read_dem_grid
 from sillmark.io.geojson import write_depressions_geojson
 from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
-from sillmark.io.hierarchy_writer import DEFAULT_WINDOW_CELLS, HierarchyFiles, write_hierarchy_files
+from sillmark.io.hierarchy_writer import (
+    DEFAULT_WINDOW_CELLS,
+    HierarchyFiles,
+    write_hierarchy_files,
+)
 from sillmark.io.json_values import write_json
 from sillmark.io.summary import FILE_NAMES, read_summary, write_table_summary
 from sillmark.products.inventory import table_columns
 from sillmark.products.outlines import DEFAULT_WINDOW
 from sillmark.products.source import LAYERS
 from sillmark.units import VerticalUnit, unit_suffix
-
-if TYPE_CHECKING:  # pragma: no cover
-    from sillmark.engine.tiled import TiledRun
 
 __all__ = [
     "FolderLayers",
@@ -279,9 +280,12 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
     )
 
 
-def add_depression_outlines(run: "TiledRun", grid: DEMGrid, out_dir: str | os.PathLike, *,
+def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike, *,
                             window: int = DEFAULT_WINDOW) -> list[Path]:
-    """Write ``depressions.geojson`` into a folder of :func:`sillmark.engine.tiled.analyse_tiled`.
+    """Write ``depressions.geojson`` into a folder :func:`sillmark.run.analyse` wrote tile by tile.
+
+    ``run`` is that call's :class:`sillmark.run.Analysis` (its depressions,
+    connectivity, cell counts, outlets and files).
 
     The outlines are traced from the folder's ``depression_id.tif`` window by
     window (:func:`sillmark.io.geojson.write_depressions_geojson`). Then

@@ -36,7 +36,7 @@ DEFAULTS: dict = {
     # Largest DEM read, in cells (sillmark.grid.dem.read_dem's max_cells).
     "MAX_DEM_CELLS": 60_000_000,
     # DEMs of more cells than this are analysed by the tiled engine
-    # (sillmark.engine.tiled, tile by tile in the worker process; see sillmark.web.tiled_run),
+    # (sillmark.run.analyse with a file store, tile by tile in the worker process; see sillmark.web.tiled_run),
     # in tiles of TILED_TILE_SIZE x TILED_TILE_SIZE cells.
     "TILED_ABOVE_CELLS": 40_000_000,
     "TILED_TILE_SIZE": 2048,

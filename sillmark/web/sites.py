@@ -22,7 +22,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import pyproj
 
 from sillmark.errors import (
     InvalidDEM,

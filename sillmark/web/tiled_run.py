@@ -3,15 +3,15 @@
 :func:`analyse_if_large` is called by :func:`sillmark.web.worker._run` after the DEM
 is read. For a DEM of more than ``TILED_ABOVE_CELLS`` cells (see
 :mod:`sillmark.web.config`; the value travels with the run's settings) it runs
-:func:`sillmark.engine.tiled.analyse_tiled` on the DEM file instead of the in-memory
-engine, adds the depression outlines (:func:`sillmark.io.results_folder.add_depression_outlines`) and the
-three depression-hierarchy files (:func:`sillmark.io.results_folder.add_hierarchy_files`,
-in windows of depressions), and reads the written GeoTIFFs back into the
+:func:`sillmark.run.analyse` on the DEM file, tile by tile with the tiles in
+scratch files, instead of on the DEM in memory (it writes the same files, the
+outlines and the hierarchy window by window), and reads the written GeoTIFFs
+back into the
 :class:`~sillmark.engine.flood.SpillResult` the viewer stores
 (:func:`sillmark.web.arrays.save`). The run's phase shows the tiles done
 (``flooding tiles: 3 of 12 tiles done``) and then the hierarchy's batches.
 
-The tiles run one after another in the worker process (:func:`sillmark.engine.tiled.serial_map`),
+The tiles run one after another in the worker process (a serial executor),
 not on a local Dask cluster: the worker is already a process of its own per
 run, a cluster would add a scheduler and worker processes (about half a
 gigabyte and seconds of start-up) on a laptop that also serves the app, and
@@ -32,28 +32,28 @@ from pathlib import Path
 import numpy as np
 import rasterio
 
-from sillmark.grid.dem import read_dem_grid
+from sillmark.engine.executors import SerialExecutor
 from sillmark.engine.flood import SpillResult
-from sillmark.engine.tiled import analyse_tiled
-from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
+from sillmark.run import analyse
 from sillmark.web import db
 from sillmark.web.config import DEFAULTS
 
 __all__ = ["analyse_if_large", "engine_settings"]
 
-# Percent of the whole run at which each step of the tiled engine starts; they
+# Percent of the whole run at which each step of the tiled run starts; they
 # fill the worker's "marking outlets" and "flooding from the outlets" phases
-# (4 % to 55 %), before the hillshade.
+# (8 % to 62 %), after the hillshade.
 _STEPS = {
-    "flood": ("flooding tiles", 4.0, 38.0),
-    "graph": ("solving the seed graph between tiles", 38.0, 40.0),
-    "finish": ("finishing tiles", 40.0, 48.0),
-    "join": ("joining depressions across tiles", 48.0, 49.0),
-    "write": ("writing the tiled result files", 49.0, 52.0),
-    "outlines": ("outlining depressions window by window", 52.0, 53.0),
-    "hierarchy": ("building the depression hierarchy", 53.0, 54.4),
-    "hierarchy_files": ("formatting the depression hierarchy", 54.4, 54.8),
-    "hierarchy_write": ("writing the depression hierarchy files", 54.8, 55.0),
+    "flood": ("flooding tiles", 8.0, 40.0),
+    "graph": ("solving the seed graph between tiles", 40.0, 42.0),
+    "finish": ("finishing tiles", 42.0, 50.0),
+    "join": ("joining depressions across tiles", 50.0, 51.0),
+    "totals": ("totalling depressions", 51.0, 52.0),
+    "write": ("writing the tiled result files", 52.0, 57.0),
+    "outlines": ("outlining depressions window by window", 57.0, 59.0),
+    "hierarchy": ("building the depression hierarchy", 59.0, 61.0),
+    "hierarchy_files": ("formatting the depression hierarchy", 61.0, 61.5),
+    "hierarchy_write": ("writing the depression hierarchy files", 61.5, 62.0),
 }
 #: What the done / total of a step counts (steps not named here show no count).
 _COUNTED = {"flood": "tiles", "finish": "tiles", "write": "files", "hierarchy": "batches",
@@ -66,12 +66,12 @@ def engine_settings(config) -> dict:
             "tile_size": int(config["TILED_TILE_SIZE"])}
 
 
-class _TileProgress:
+class _TileProgress(SerialExecutor):
     """Phase text and percent of the tiled steps, written to the run's row.
 
-    ``step`` is the ``progress`` of :func:`sillmark.engine.tiled.analyse_tiled` (called
-    before and after each step); ``map`` runs the step's tasks one by one and
-    reports each one done.
+    ``step`` is the ``progress`` of :func:`sillmark.run.analyse` (called before
+    and after each step); as an executor it runs the step's items one by one
+    and reports each one done.
     """
 
     def __init__(self, progress) -> None:
@@ -99,12 +99,12 @@ class _TileProgress:
         self.step_name = name
         self.show(name, done, total)
 
-    def map(self, fn, calls) -> list:
-        calls = list(calls)
+    def map(self, fn, items) -> list:
+        items = list(items)
         out = []
-        for k, args in enumerate(calls):
-            out.append(fn(*args))
-            self.show(self.step_name, k + 1, len(calls))
+        for k, item in enumerate(items):
+            out.append(fn(item))
+            self.show(self.step_name, k + 1, len(items))
         return out
 
 
@@ -146,15 +146,9 @@ def analyse_if_large(dem, dem_path: Path, specs: tuple, settings: dict, results:
     tile = int(settings.get("tile_size") or DEFAULTS["TILED_TILE_SIZE"])
     connectivity = int(settings["connectivity"])
     tracker = _TileProgress(progress)
-    run = analyse_tiled(dem_path, results, outlets=specs, connectivity=connectivity,
-                        tile_size=tile, map=tracker.map, vertical_unit=settings["vertical_unit"],
-                        progress=tracker.step)
-    tracker.show("outlines", 0, 1)
-    grid = read_dem_grid(dem_path, vertical_unit=settings["vertical_unit"])
-    add_depression_outlines(run, grid, results)
-    tracker.show("outlines", 1, 1)
-    # After the outlines, whose summary.json it lists the three files in.
-    add_hierarchy_files(results, map=tracker.map, progress=tracker.step, grid=grid)
+    run = analyse(dem_path, specs, results, executor=tracker, store="files", tile_size=tile,
+                  connectivity=connectivity, vertical_unit=settings["vertical_unit"],
+                  progress=tracker.step)
     ids = _read_band(results / "depression_id.tif")
     np.maximum(ids, 0, out=ids)  # the file's -1 (nodata, unreached) is 0 in a SpillResult
     result = SpillResult(

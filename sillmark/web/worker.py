@@ -32,12 +32,11 @@ from pathlib import Path
 import numpy as np
 import pyproj
 
-from sillmark.engine.flood import analyse_site
-from sillmark.errors import SillmarkError
 from sillmark.grid.dem import read_dem
+from sillmark.errors import SillmarkError
+from sillmark.io.export import FILE_NAMES
 from sillmark.grid.outlets import build_outlets
-from sillmark.io.export import write_results
-from sillmark.io.summary import FILE_NAMES
+from sillmark.run import analyse
 from sillmark.web import arrays, db, layout, render, tiled_run
 
 log = logging.getLogger("sillmark.worker")
@@ -45,9 +44,9 @@ log = logging.getLogger("sillmark.worker")
 # Where each phase starts, in percent of the whole run.
 PHASES = (
     ("reading the DEM", 0),
-    ("marking outlets", 4),
-    ("flooding from the outlets", 8),
-    ("drawing the hillshade", 55),
+    ("drawing the hillshade", 4),
+    ("marking outlets", 8),
+    ("flooding from the outlets", 12),
     ("writing result files", 62),
     ("storing arrays for the map", 92),
     ("finishing", 98),
@@ -313,17 +312,9 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     dem = read_dem(site_folder / settings["dem_file"], vertical_unit=settings["vertical_unit"],
                    max_cells=int(settings.get("max_cells") or 400_000_000))
     connectivity = int(settings["connectivity"])
-    tiled = tiled_run.analyse_if_large(dem, site_folder / settings["dem_file"], _specs(
-        site_folder, settings["outlets"]), settings, folder / "results", progress)
-    if tiled is None:
-        progress.start("marking outlets")
-        outlets = build_outlets(dem, _specs(site_folder, settings["outlets"]), connectivity=connectivity)
-        progress.start("flooding from the outlets")
-        result = analyse_site(dem, outlets, connectivity=connectivity)
-    else:
-        outlets, result = tiled
-    log.info("flood done in %.2f s", time.perf_counter() - t0)
 
+    # The hillshade needs only the DEM: drawn first, so that the engine run and
+    # the writing of its files follow each other as one call.
     progress.start("drawing the hillshade")
     dx_m, dy_m = _cell_metres(dem)
     shade = render.hillshade(dem.elevation, dx_m=dx_m, dy_m=dy_m, z_metres=dem.vertical_unit.metres)
@@ -331,17 +322,30 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     z_lo, z_hi = float(np.nanmin(dem.elevation)), float(np.nanmax(dem.elevation))
     tints = render.shade_pyramid(render.tint_classes(dem.elevation, z_lo, z_hi))
 
-    progress.start("writing result files")
-    names: list[str] = []
-
-    def file_progress(name: str, done: int, total: int) -> None:
-        if name not in names:
-            names.append(name)
-        progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
-
     results = folder / "results"
-    if tiled is None:  # the tiled engine wrote its files as it went
-        write_results(result, dem, outlets, results, progress=file_progress)
+    specs = _specs(site_folder, settings["outlets"])
+    tiled = tiled_run.analyse_if_large(dem, site_folder / settings["dem_file"], specs, settings,
+                                       results, progress)
+    if tiled is None:
+        progress.start("marking outlets")
+        outlets = build_outlets(dem, specs, connectivity=connectivity)
+        progress.start("flooding from the outlets")
+        names: list[str] = []
+
+        def file_progress(name: str, done: int, total: int) -> None:
+            if not names:
+                progress.start("writing result files")
+            if name not in names:
+                names.append(name)
+            progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
+
+        # The engine, then every result file, moved into place together.
+        result = analyse(dem, outlets, results, connectivity=connectivity,
+                         progress=file_progress).result
+    else:
+        outlets, result = tiled
+        progress.start("writing result files")  # written already, tile by tile
+    log.info("flood and result files done in %.2f s", time.perf_counter() - t0)
 
     progress.start("storing arrays for the map")
     z = dem.elevation
