@@ -17,7 +17,6 @@ Exit status: 0 on success, 2 on a usage or input error, 130 when interrupted.
 from __future__ import annotations
 
 import argparse
-import contextlib
 import json
 import math
 import os
@@ -903,53 +902,6 @@ def _site_from_folder(folder: Path, args: argparse.Namespace, progress: _Progres
         )
     progress.done()
     return dem, outlets, result
-
-
-@contextlib.contextmanager
-def _staged_output(out_dir: Path):
-    """Yield a hidden sibling of ``out_dir`` to write into; move its files into ``out_dir`` at the end.
-
-    When the body fails (a bad DEM found late, a full disk, Ctrl-C) the staging
-    folder is removed and ``out_dir`` is left exactly as it was: no half set
-    of results without ``summary.json``. On success a missing or empty
-    ``out_dir`` is replaced by the staging folder in one rename; otherwise the
-    files are moved in one by one, ``summary.json`` last.
-    """
-    import secrets
-    import shutil
-
-    from sillmark.errors import InvalidParameter
-
-    out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InvalidParameter(f"--out {out_dir} is a file; give a folder (new or existing) for the results")
-    out_dir.parent.mkdir(parents=True, exist_ok=True)
-    staging = out_dir.parent / f".{out_dir.name}.{secrets.token_hex(6)}.partial"
-    staging.mkdir()
-    try:
-        yield staging
-        _move_results(staging, out_dir)
-    finally:
-        shutil.rmtree(staging, ignore_errors=True)
-
-
-def _move_results(staging: Path, out_dir: Path) -> None:
-    """Move every file of ``staging`` into ``out_dir`` (one rename when ``out_dir`` is new or empty)."""
-    if out_dir.is_dir() and not any(out_dir.iterdir()):
-        out_dir.rmdir()
-    if not out_dir.exists():
-        os.replace(staging, out_dir)
-        return
-    from sillmark.errors import InvalidParameter
-
-    names = sorted(p.name for p in staging.iterdir())
-    blocked = [n for n in names if (out_dir / n).is_dir()]
-    if blocked:
-        raise InvalidParameter(
-            f"{out_dir} holds a folder named {blocked[0]}, where a result file goes; move it "
-            "away or give another --out (nothing was written)")
-    for name in [n for n in names if n != "summary.json"] + [n for n in names if n == "summary.json"]:
-        os.replace(staging / name, out_dir / name)
 
 
 def _run_analyse(args: argparse.Namespace) -> int:

