@@ -112,3 +112,90 @@ def unit_suffix(unit: VerticalUnit | str) -> str:
 def unit_name(unit: VerticalUnit | str) -> str:
     """Long name of a vertical unit as written in GeoTIFF band units and CSV comments."""
     return _UNIT_NAME[VerticalUnit.parse(unit)]
+
+
+# What people read: plural names, never the internal codes (``us-ft``).
+_UNIT_WORDS = {
+    VerticalUnit.METRE: "metres",
+    VerticalUnit.FOOT: "international feet",
+    VerticalUnit.US_SURVEY_FOOT: "US survey feet",
+}
+
+
+def unit_words(unit: VerticalUnit | str) -> str:
+    """A vertical unit as pages and messages name it: ``metres``, ``international
+    feet`` or ``US survey feet``.
+
+    Examples
+    --------
+    >>> unit_words("us-ft")
+    'US survey feet'
+    """
+    return _UNIT_WORDS[VerticalUnit.parse(unit)]
+
+
+#: Longest vertical datum name kept (a name, not a document).
+DATUM_MAX_CHARS = 80
+#: What is shown beside a level when the user gave no vertical datum.
+NO_DATUM = "datum not stated"
+
+
+def clean_datum(text: str | None) -> str | None:
+    """The vertical datum as the user named it (e.g. ``NAVD88``, ``Ordnance Datum
+    Newlyn``), trimmed; None when blank.
+
+    Raises
+    ------
+    InvalidParameter
+        The name is longer than :data:`DATUM_MAX_CHARS` characters or holds
+        control characters.
+
+    Examples
+    --------
+    >>> clean_datum("  NAVD88 ")
+    'NAVD88'
+    >>> clean_datum("") is None
+    True
+    """
+    if text is None:
+        return None
+    name = " ".join(str(text).split())
+    if not name:
+        return None
+    if any(not ch.isprintable() for ch in name):
+        raise InvalidParameter(
+            "the vertical datum holds control characters; give its name in plain text, "
+            "e.g. NAVD88 or Ordnance Datum Newlyn"
+        )
+    if len(name) > DATUM_MAX_CHARS:
+        raise InvalidParameter(
+            f"the vertical datum is {len(name)} characters long; give its name in at most "
+            f"{DATUM_MAX_CHARS} characters, e.g. NAVD88 or Ordnance Datum Newlyn"
+        )
+    return name
+
+
+def datum_phrase(datum: str | None) -> str:
+    """What follows a level: ``above NAVD88``, or ``datum not stated``.
+
+    Examples
+    --------
+    >>> datum_phrase("NAVD88"), datum_phrase(None)
+    ('above NAVD88', 'datum not stated')
+    """
+    return f"above {datum}" if datum else NO_DATUM
+
+
+def level_text(value: float, unit: VerticalUnit | str, datum: str | None) -> str:
+    """A level as people read it: ``47.60 m above NAVD88`` or ``47.60 m, datum not stated``.
+
+    Examples
+    --------
+    >>> level_text(47.6, "m", "NAVD88")
+    '47.60 m above NAVD88'
+    >>> level_text(12.0, "us-ft", None)
+    '12.00 US ft, datum not stated'
+    """
+    symbol = VerticalUnit.parse(unit).symbol
+    sep = " " if datum else ", "
+    return f"{value:.2f} {symbol}{sep}{datum_phrase(datum)}"

@@ -396,7 +396,7 @@ def test_bad_download_requests(ready, url, status):
 
 def test_print_page_has_level_unit_date_scale_north_legend_and_caution(ready):
     html = get(ready, "/sites/{site}/print?level=10.5").get_data(as_text=True)
-    assert "Outlet water level <strong>10.50 m</strong>" in html
+    assert 'Outlet water level <strong id="print-level">10.50 m, datum not stated</strong>' in html
     assert "(metres)" in html and "printed 2" in html
     assert "L.control.scale()" in html  # the scale bar
     assert "North arrow" in html

@@ -97,7 +97,10 @@ def keep_token(client: Client) -> None:
 
 
 def leftovers(app) -> list[str]:
-    return sorted(p.name for p in layout.uploads_dir(app.extensions["sillmark"].data_dir).iterdir())
+    """Files left in the uploads folder; a DEM waiting for its CRS or band is kept on
+    purpose in ``pending/`` (for a day), so that folder is not a leftover."""
+    return sorted(p.name for p in layout.uploads_dir(app.extensions["sillmark"].data_dir).iterdir()
+                  if p.name != "pending")
 
 
 # --------------------------------------------------------------------------- values

@@ -56,7 +56,10 @@ def stored_state(app) -> dict:
 
 
 def leftovers(app) -> list[str]:
-    return sorted(p.name for p in layout.uploads_dir(app.extensions["sillmark"].data_dir).iterdir())
+    """Files left in the uploads folder; a DEM waiting for its CRS or band is kept on
+    purpose in ``pending/`` (for a day), so that folder is not a leftover."""
+    return sorted(p.name for p in layout.uploads_dir(app.extensions["sillmark"].data_dir).iterdir()
+                  if p.name != "pending")
 
 
 def message_of(response) -> str:

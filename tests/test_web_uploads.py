@@ -69,7 +69,7 @@ def test_draft_site_page_asks_to_confirm_the_settings(fresh, lowbank_tif):
     html = client.get(f"/sites/{site_id}").get_data(as_text=True)
     assert "Check what was read" in html
     assert "40 rows × 50 columns" in html
-    assert "Sillmark assumed m. Please confirm." in html
+    assert "Sillmark assumed metres. Please confirm." in html
     assert "1.50 % of the cells" in html
 
 

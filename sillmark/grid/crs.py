@@ -7,12 +7,16 @@ CRS's unit (``m``, ``ft``, ``us_ft``, ``deg``).
 
 from __future__ import annotations
 
+import dataclasses
+import functools
 from typing import Any
 
 import numpy as np
 import pyproj
+import pyproj.database
+import pyproj.enums
 
-from sillmark.errors import InvalidDEM
+from sillmark.errors import InvalidDEM, InvalidParameter
 
 #: WGS 84 latitude/longitude; with ``always_xy`` transformers give lon, lat.
 WGS84 = "EPSG:4326"
@@ -144,3 +148,121 @@ def to_wgs84(crs: pyproj.CRS) -> LonLatTransformer:
 def wgs84_transformer(grid: Any) -> LonLatTransformer:
     """Transformer from the grid's horizontal CRS to WGS 84 lon/lat (``always_xy``)."""
     return to_wgs84(horizontal_crs(grid))
+
+
+# --------------------------------------------------------------------------- choosing a CRS
+
+#: Kinds of CRS a DEM may be given: projected, lon/lat, and those with heights too.
+_CHOOSABLE = (
+    pyproj.enums.PJType.PROJECTED_CRS,
+    pyproj.enums.PJType.GEOGRAPHIC_2D_CRS,
+    pyproj.enums.PJType.COMPOUND_CRS,
+)
+_KIND_WORDS = {
+    pyproj.enums.PJType.PROJECTED_CRS: "projected",
+    pyproj.enums.PJType.GEOGRAPHIC_2D_CRS: "longitude/latitude",
+    pyproj.enums.PJType.COMPOUND_CRS: "with heights",
+}
+#: Names of the geodetic frames most site DEMs come in (common practice), listed first.
+_COMMON_FRAMES = ("WGS 84", "ETRS89", "NAD83 /", "NAD83(2011)", "GDA2020", "OSGB36", "NZGD2000")
+#: Most matches one search returns.
+SEARCH_MAX = 25
+
+
+@dataclasses.dataclass(frozen=True)
+class CRSChoice:
+    """One CRS of the EPSG registry that a search found."""
+
+    code: str  # "EPSG:32633"
+    name: str
+    kind: str  # projected, longitude/latitude, with heights
+    area: str  # where it is meant for, as the registry says
+
+
+@functools.lru_cache(maxsize=1)
+def _epsg_catalogue() -> tuple[tuple[CRSChoice, str], ...]:
+    """Every current EPSG CRS a DEM may be given, with a lower-case search text (cached)."""
+    found = pyproj.database.query_crs_info(auth_name="EPSG", pj_types=list(_CHOOSABLE),
+                                           allow_deprecated=False)
+    out = []
+    for info in found:
+        area = info.area_of_use.name if info.area_of_use is not None else ""
+        choice = CRSChoice(code=f"EPSG:{info.code}", name=info.name,
+                           kind=_KIND_WORDS.get(info.type, "other"), area=area)
+        out.append((choice, f"{info.code} {info.name} {area}".lower()))
+    out.sort(key=lambda pair: int(pair[0].code[5:]))
+    return tuple(out)
+
+
+def search_crs(text: str, *, limit: int = 10) -> list[CRSChoice]:
+    """CRSs of the EPSG registry (from PROJ's own database) matching ``text``.
+
+    A number matches codes that start with it (an exact code first); words
+    match names and areas of use that contain every one of them, e.g.
+    ``utm 33n`` or ``british national grid``. At most ``limit`` (capped at
+    :data:`SEARCH_MAX`) results.
+
+    Raises
+    ------
+    InvalidParameter
+        ``text`` is empty or longer than 80 characters, or ``limit`` is not 1 to
+        :data:`SEARCH_MAX`.
+
+    Examples
+    --------
+    >>> [c.code for c in search_crs("32633")]
+    ['EPSG:32633']
+    >>> search_crs("utm zone 33n", limit=50)[0].name  # doctest: +SKIP
+    'WGS 84 / UTM zone 33N'
+    """
+    query = " ".join(str(text).split()).lower()
+    if query.upper().startswith("EPSG:"):
+        query = query[5:].strip()
+    if not query or len(query) > 80:
+        raise InvalidParameter(
+            "give a CRS search of 1 to 80 characters: an EPSG code such as 32633, or words "
+            "of its name such as 'UTM zone 33N'"
+        )
+    if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= SEARCH_MAX:
+        raise InvalidParameter(f"limit must be a whole number from 1 to {SEARCH_MAX}")
+    catalogue = _epsg_catalogue()
+    if query.isdigit():
+        exact = [c for c, _ in catalogue if c.code[5:] == query]
+        rest = [c for c, _ in catalogue if c.code[5:].startswith(query) and c.code[5:] != query]
+        return (exact + rest)[:limit]
+    words = query.split()
+    hits = [c for c, hay in catalogue if all(w in hay for w in words)]
+    # Names that hold the words come before matches on the area of use only.
+    # and among those, the world-wide and continental frames people use most first.
+    hits.sort(key=lambda c: (not all(w in c.name.lower() for w in words),
+                             not c.name.startswith(_COMMON_FRAMES), len(c.name)))
+    return hits[:limit]
+
+
+def epsg_crs(text: Any) -> pyproj.CRS:
+    """The EPSG CRS a person chose: ``EPSG:32633`` or ``32633``.
+
+    Raises
+    ------
+    InvalidParameter
+        Not an EPSG code, or a code PROJ's registry does not hold.
+
+    Examples
+    --------
+    >>> epsg_crs("EPSG:32633").name
+    'WGS 84 / UTM zone 33N'
+    """
+    raw = str(text).strip()
+    code = raw[5:].strip() if raw.upper().startswith("EPSG:") else raw
+    if not code.isdigit() or len(code) > 9:
+        raise InvalidParameter(
+            f"the CRS must be an EPSG code such as EPSG:32633 or 32633, not {raw[:40]!r}; "
+            "search the list by code or name to find it"
+        )
+    try:
+        return pyproj.CRS.from_epsg(int(code))
+    except pyproj.exceptions.CRSError:
+        raise InvalidParameter(
+            f"EPSG:{int(code)} is not a CRS in the EPSG registry; search the list by code or "
+            "name to find the right one"
+        ) from None

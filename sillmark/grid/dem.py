@@ -877,3 +877,37 @@ def _short(a: np.ndarray) -> str:
     if a.ndim == 0:
         return str(a.item())
     return np.array2string(a.ravel()[:5], separator=", ") + ("..." if a.size > 5 else "")
+
+
+@dataclasses.dataclass(frozen=True)
+class RasterOutline:
+    """What a person must choose before a raster file can be read as a DEM.
+
+    Attributes
+    ----------
+    bands : int
+        Number of bands in the file (a DEM needs one chosen when more than 1).
+    has_crs : bool
+        Whether the file states its CRS (without one, a CRS must be given).
+    band_names : tuple of str
+        The bands' own descriptions ('' where the file gives none).
+    """
+
+    bands: int
+    has_crs: bool
+    band_names: tuple[str, ...]
+
+
+def raster_outline(path: str | os.PathLike[str]) -> RasterOutline:
+    """Band count and CRS presence of a local raster file, read from its header.
+
+    Raises
+    ------
+    InvalidDEM
+        As :func:`read_dem` for files that are not local, self-contained rasters.
+    """
+    path = local_file(path, InvalidDEM, "the DEM")
+    with open_local_raster(path, InvalidDEM, "the DEM") as src:
+        names = tuple("".join(ch for ch in (d or "") if ch.isprintable())[:60]
+                      for d in src.descriptions)
+        return RasterOutline(bands=int(src.count), has_crs=bool(src.crs), band_names=names)

@@ -24,11 +24,11 @@ from sillmark import SCREENING_CAUTION, __version__
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import check_layers_on_grid
 from sillmark.io.atomic import atomic_output
-from sillmark.units import unit_name, unit_of
+from sillmark.units import NO_DATUM, unit_name, unit_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
-    from sillmark.grid.dem import DEM
+    from sillmark.grid.dem import DEM, DEMGrid
 
 
 #: Nodata of the float32 rasters (onset stage, fill depth).
@@ -281,3 +281,39 @@ def read_window(path: str | os.PathLike, r0: int, r1: int, c0: int, c1: int) -> 
     """Rows ``r0:r1`` and columns ``c0:c1`` of band 1 of a GeoTIFF."""
     with rasterio.open(path) as ds:
         return ds.read(1, window=rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0))
+
+
+def write_dem_copy(path: str | os.PathLike, grid: "DEMGrid", *,
+                   vertical_datum: str | None = None) -> Path:
+    """Write the chosen band of a DEM file, with the CRS it was given, as a GeoTIFF.
+
+    For a file without a CRS or with several bands: the copy holds the band
+    ``grid`` reads, as float32 with NaN nodata (the values :func:`read_dem`
+    gives, read block by block, so the memory is one block of rows) and
+    ``grid``'s CRS, so any reader finds the same DEM without being told the
+    band or the CRS again. Tags as :func:`write_geotiff`, plus
+    ``VERTICAL_DATUM`` when one is named.
+    """
+    cols = grid.cols
+    tags = {"SOURCE_BAND": str(grid.band)}
+    if vertical_datum:
+        tags["VERTICAL_DATUM"] = vertical_datum
+    return write_geotiff(
+        path, grid, dtype="float32", nodata=FLOAT_NODATA,
+        block=lambda r0, r1: grid.read_window(r0, r1, 0, cols),
+        layer="dem", description="ground elevation", band_unit=unit_name(unit_of(grid)),
+        extra_tags=tags,
+    )
+
+
+def tag_vertical_datum(paths, vertical_datum: str | None) -> None:
+    """Add the ``VERTICAL_DATUM`` tag to GeoTIFFs already written (others are skipped).
+
+    ``datum not stated`` is written when no datum was named, so a reader of the
+    file knows the levels have no stated reference rather than a lost one.
+    """
+    for path in paths:
+        if Path(path).suffix.lower() not in (".tif", ".tiff"):
+            continue
+        with rasterio.open(path, "r+") as ds:
+            ds.update_tags(VERTICAL_DATUM=vertical_datum or NO_DATUM)

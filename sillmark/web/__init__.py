@@ -21,7 +21,7 @@ from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import LocationOutsideDEM, SillmarkError
 from sillmark.grid.raster_files import forbid_remote_access
-from sillmark.units import VerticalUnit
+from sillmark.units import VerticalUnit, datum_phrase, unit_words
 from sillmark.web import config as _config
 from sillmark.web import db, layout
 from sillmark.web.exports import ExportCache, ExportSpaceError
@@ -181,7 +181,10 @@ def _install_handlers(app: Flask) -> None:
 
     @app.context_processor
     def globals_for_templates():
-        return {"caution": SCREENING_CAUTION, "csrf_token": csrf_token}
+        return {"caution": SCREENING_CAUTION, "csrf_token": csrf_token,
+                "datum_phrase": datum_phrase}
+
+    app.add_template_filter(unit_words, "unit_words")
 
     @app.before_request
     def check_csrf():
@@ -222,7 +225,8 @@ def _install_handlers(app: Flask) -> None:
 
     @app.errorhandler(SillmarkError)
     def sillmark_error(exc: SillmarkError):
-        return _error(error_status(exc), " ".join(str(exc).split()))
+        return _error(error_status(exc), " ".join(str(exc).split()),
+                      getattr(exc, "details", None))
 
     @app.errorhandler(RequestEntityTooLarge)
     def too_large(_exc):
@@ -240,9 +244,9 @@ def _install_handlers(app: Flask) -> None:
         return _error(500, "something went wrong inside Sillmark; the details are in the server log")
 
 
-def _error(status: int, message: str):
+def _error(status: int, message: str, details: dict | None = None):
     if wants_json():
-        response = jsonify({"error": message, "status": status})
+        response = jsonify({**(details or {}), "error": message, "status": status})
         response.status_code = status
         return response
     return render_template("error.html", status=status, message=message), status

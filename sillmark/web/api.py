@@ -18,6 +18,7 @@ from flask import Blueprint, abort, jsonify, request, send_file, url_for
 
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
+from sillmark.grid.crs import SEARCH_MAX, search_crs
 from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
 from sillmark.io.stage_files import (
     level_file_names,
@@ -25,8 +26,10 @@ from sillmark.io.stage_files import (
     write_level,
     write_stage_table_csv,
 )
+from sillmark.io.geotiff import tag_vertical_datum
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.source import ArraySource
+from sillmark.units import datum_phrase
 from sillmark.web import db, exports, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.site_data import parse_level
@@ -95,6 +98,22 @@ def rerun(site_id: int):
     return response
 
 
+@bp.get("/crs")
+def crs_search():
+    """CRSs of the EPSG registry matching ``?q=`` (a code or words of a name), at most
+    ``?limit=`` (default 10, at most 25): what the upload page's CRS chooser lists."""
+    text = request.args.get("q", "")
+    limit_text = request.args.get("limit", "10")
+    if not limit_text.isdigit() or len(limit_text) > 3:
+        raise InvalidParameter(f"limit must be a whole number from 1 to {SEARCH_MAX}")
+    found = search_crs(text, limit=int(limit_text))
+    response = jsonify({"query": text[:80], "results": [
+        {"code": c.code, "name": c.name, "kind": c.kind,
+         "area": c.area if len(c.area) <= 90 else c.area[:89] + "…"} for c in found]})
+    response.headers["Cache-Control"] = "max-age=3600"
+    return response
+
+
 # --------------------------------------------------------------------------- the map's numbers
 
 
@@ -102,15 +121,20 @@ def rerun(site_id: int):
 def stage(site_id: int):
     """Flooded and shielded totals, depression states and assets wet at ``?level=``."""
     level = _level_arg()
-    _, data = open_site(site_id)
+    row, data = open_site(site_id)
     key, assets = site_assets(site_id, data)
-    return jsonify(data.figures(level, key, assets))
+    return jsonify({**data.figures(level, key, assets), **_datum(row)})
+
+
+def _datum(row) -> dict:
+    """The vertical datum every answer with levels carries (None: not stated)."""
+    return {"vertical_datum": row["vertical_datum"], "datum_phrase": datum_phrase(row["vertical_datum"])}
 
 
 @bp.get("/sites/<int:site_id>/stage_table")
 def stage_table(site_id: int):
-    _, data = open_site(site_id)
-    return jsonify(data.stage_chart)
+    row, data = open_site(site_id)
+    return jsonify({**data.stage_chart, **_datum(row)})
 
 
 @bp.get("/sites/<int:site_id>/legend")
@@ -121,9 +145,9 @@ def legend(site_id: int):
 
 @bp.get("/sites/<int:site_id>/depressions")
 def depressions(site_id: int):
-    _, data = open_site(site_id)
+    row, data = open_site(site_id)
     return jsonify({"unit": data.unit.value, "unit_symbol": data.unit.symbol,
-                    "depressions": data.depression_list, "caution": SCREENING_CAUTION})
+                    "depressions": data.depression_list, "caution": SCREENING_CAUTION, **_datum(row)})
 
 
 @bp.get("/sites/<int:site_id>/depressions/<int:depression_id>/curve")
@@ -155,8 +179,8 @@ def cell(site_id: int):
     level = _level_arg()
     lon = _float_arg("lon")
     lat = _float_arg("lat")
-    _, data = open_site(site_id)
-    return jsonify(data.cell_report(lon, lat, level))
+    row, data = open_site(site_id)
+    return jsonify({**data.cell_report(lon, lat, level), **_datum(row)})
 
 
 def _float_arg(name: str) -> float:
@@ -256,9 +280,12 @@ def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
         with _lock_for((site_id, data.run_id, label, tag)):
             if not cache.known(folder):
 
+                datum = site_row(site_id)["vertical_datum"]
+
                 def write(tmp: Path) -> None:
                     with data._engine_lock:
-                        write_level(ArraySource(data.dem, data.result), level, tmp)
+                        written = write_level(ArraySource(data.dem, data.result), level, tmp)
+                    tag_vertical_datum(written.paths, datum)
                     if placed is not None:
                         table = data.asset_table(key, placed, level)
                         write_assets_csv(table, tmp / f"assets_{label}.csv")

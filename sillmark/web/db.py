@@ -23,7 +23,7 @@ from typing import Any
 from sillmark.errors import SillmarkError
 
 DB_NAME = "sillmark.sqlite3"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 
 # Run states.
 QUEUED = "queued"
@@ -48,7 +48,11 @@ CREATE TABLE IF NOT EXISTS sites (
     connectivity      INTEGER,
     confirmed         INTEGER NOT NULL DEFAULT 0,
     current_run       INTEGER,         -- the run whose results are shown
-    is_demo           INTEGER NOT NULL DEFAULT 0
+    is_demo           INTEGER NOT NULL DEFAULT 0,
+    vertical_datum    TEXT,            -- named by the user (NULL: not stated)
+    dem_crs           TEXT,            -- CRS the user gave a DEM without one ("EPSG:n")
+    dem_band          INTEGER,         -- band the user chose in a file of several
+    dem_source        TEXT             -- the file as uploaded, when dem_file is a copy
 );
 CREATE TABLE IF NOT EXISTS runs (
     id            INTEGER PRIMARY KEY,
@@ -76,6 +80,16 @@ CREATE TABLE IF NOT EXISTS asset_sets (
     active         INTEGER NOT NULL DEFAULT 1
 );
 """
+
+
+#: Columns added to ``sites`` after schema version 1: (name, declaration). A database
+#: made by an earlier version gets them on start (see :func:`initialise`).
+_SITE_COLUMNS_V2 = (
+    ("vertical_datum", "TEXT"),
+    ("dem_crs", "TEXT"),
+    ("dem_band", "INTEGER"),
+    ("dem_source", "TEXT"),
+)
 
 
 class StorageError(SillmarkError, OSError):
@@ -163,14 +177,29 @@ def initialise(path: str | Path) -> None:
             for statement in _SCHEMA.split(";"):
                 if statement.strip():
                     conn.execute(statement)
+            _migrate(conn)
             conn.execute(
-                "INSERT OR IGNORE INTO settings(key, value) VALUES ('schema_version', ?)",
+                "INSERT INTO settings(key, value) VALUES ('schema_version', ?) "
+                "ON CONFLICT(key) DO UPDATE SET value = excluded.value",
                 (str(SCHEMA_VERSION),),
             )
     except sqlite3.OperationalError as exc:
         raise (storage_error(exc, path) or exc) from exc
     finally:
         conn.close()
+
+
+def _migrate(conn: sqlite3.Connection) -> None:
+    """Bring a database of an earlier schema up to :data:`SCHEMA_VERSION` (in a transaction).
+
+    Version 2 adds the vertical datum and the DEM's chosen CRS and band to
+    ``sites``; existing sites keep NULL there (datum not stated; the file's own
+    CRS and its single band).
+    """
+    have = {row["name"] for row in conn.execute("PRAGMA table_info(sites)").fetchall()}
+    for name, declaration in _SITE_COLUMNS_V2:
+        if name not in have:
+            conn.execute(f"ALTER TABLE sites ADD COLUMN {name} {declaration}")
 
 
 def get_setting(conn: sqlite3.Connection, key: str, default: str | None = None) -> str | None:

@@ -9,6 +9,7 @@ import threading
 from flask import Blueprint, current_app, render_template, request, url_for
 
 from sillmark.errors import InvalidParameter
+from sillmark.units import unit_words
 from sillmark.web import get_db, render, services
 from sillmark.web.access import open_site, site_row
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
@@ -63,6 +64,8 @@ def site(site_id: int):
         "run_id": data.run_id,
         "unit": data.unit.value,
         "unit_symbol": data.unit.symbol,
+        "unit_words": unit_words(data.unit),
+        "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
         "range": rng,
         "level": level,
@@ -74,6 +77,7 @@ def site(site_id: int):
             "url": url_for("uploads.settings", site_id=site_id),
             "name": described["name"],
             "vertical_unit": described["vertical_unit"],
+            "vertical_datum": described["vertical_datum"] or "",
             "outlets": sorted({o["kind"] for o in described["outlets"]} - {"file"}),
             "connectivity": described["connectivity"],
         },
@@ -108,6 +112,8 @@ def print_map(site_id: int):
         "run_id": data.run_id,
         "unit": data.unit.value,
         "unit_symbol": data.unit.symbol,
+        "unit_words": unit_words(data.unit),
+        "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
         "level": level,
         "names": parts.names,

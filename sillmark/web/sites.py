@@ -29,11 +29,12 @@ from sillmark.errors import (
     SillmarkError,
 )
 from sillmark.grid.assets import read_assets
-from sillmark.grid.crs import crs_label
-from sillmark.grid.dem import DEM, read_dem, read_dem_grid
+from sillmark.grid.crs import crs_label, epsg_crs, full_crs
+from sillmark.grid.dem import DEM, raster_outline, read_dem, read_dem_grid
 from sillmark.grid.elevations import nodata_as_json
 from sillmark.grid.outlets import build_outlets
-from sillmark.units import VerticalUnit
+from sillmark.io.geotiff import write_dem_copy
+from sillmark.units import VerticalUnit, clean_datum, datum_phrase, unit_words
 from sillmark.web import db, layout
 from sillmark.web.tiled_run import engine_settings
 
@@ -48,7 +49,48 @@ class UnknownSite(SillmarkError, LookupError):
     """No site with that id."""
 
 
+class ChoiceNeeded(InvalidDEM):
+    """The DEM file reads only once the user has chosen its CRS or its band.
+
+    ``details`` go into the JSON answer beside the message, so the upload page
+    can open the chooser that is needed: ``needs`` (``["crs"]``, ``["band"]``
+    or both), ``bands`` (the band choices) and ``pending`` (the token under
+    which the received file waits, so it need not be sent again).
+    """
+
+    def __init__(self, message: str, *, needs: list[str], bands: list[dict]) -> None:
+        super().__init__(message)
+        self.details: dict = {"needs": needs, "bands": bands}
+
+
 # --------------------------------------------------------------------------- DEM description
+
+
+def _cell_size_metres(dem) -> list[float] | None:
+    """Width and height in metres of a cell at the middle of a lon/lat DEM, on its ellipsoid."""
+    if not dem.is_geographic:
+        return None
+    t = dem.transform
+    lon = t.c + t.a * dem.cols / 2.0
+    lat = t.f + t.e * dem.rows / 2.0
+    geod = dem.horizontal_crs.get_geod() or pyproj.Geod(ellps="WGS84")
+    dx, dy = dem.cell_size
+    lat = min(max(lat, -89.0), 89.0)
+    width = geod.inv(lon - dx / 2.0, lat, lon + dx / 2.0, lat)[2]
+    height = geod.inv(lon, lat - dy / 2.0, lon, lat + dy / 2.0)[2]
+    return [float(width), float(height)]
+
+
+def _datum_of_crs(dem) -> str | None:
+    """The vertical datum a compound CRS names (e.g. ``North American Vertical Datum 1988``)."""
+    try:
+        crs = full_crs(dem)
+    except (pyproj.exceptions.CRSError, AttributeError):  # pragma: no cover
+        return None
+    for part in crs.sub_crs_list if crs.is_compound else []:
+        if part.is_vertical and part.datum is not None:
+            return part.datum.name
+    return None
 
 
 def dem_info(dem, *, file_bytes: int | None = None) -> dict:
@@ -84,6 +126,8 @@ def dem_info(dem, *, file_bytes: int | None = None) -> dict:
         "elevation_max": None if z is None else float(np.nanmax(z)),
         "source_dtype": dem.source_dtype,
         "file_bytes": file_bytes,
+        "cell_size_m": _cell_size_metres(dem),
+        "vertical_datum_from_crs": _datum_of_crs(dem),
     }
 
 
@@ -148,6 +192,11 @@ class Registry:
             "confirmed": bool(row["confirmed"]),
             "is_demo": bool(row["is_demo"]),
             "vertical_unit": row["vertical_unit"] or info.get("vertical_unit"),
+            "vertical_unit_label": unit_words(row["vertical_unit"] or info.get("vertical_unit") or "m"),
+            "vertical_datum": row["vertical_datum"],
+            "datum_phrase": datum_phrase(row["vertical_datum"]),
+            "dem_crs": row["dem_crs"],
+            "dem_band": row["dem_band"],
             "outlets": db.loads(row["outlets"], []),
             "connectivity": row["connectivity"],
             "dem": info,
@@ -159,34 +208,60 @@ class Registry:
 
     # -- new sites ------------------------------------------------------------
 
-    def register_upload(self, conn: sqlite3.Connection, tmp_path: Path, original_name: str) -> int:
+    def register_upload(self, conn: sqlite3.Connection, tmp_path: Path, original_name: str,
+                        *, crs: str | None = None, band: Any = None) -> int:
         """Read an uploaded DEM and keep it as a new draft site; return its id.
 
         The file is read first (``InvalidDEM`` and friends propagate, and the
         caller deletes the temporary file); only a readable DEM becomes a site.
         A DEM of more than ``UPLOAD_READ_CELLS`` cells is read from its header
         only (see :meth:`_dem_for_request`).
+
+        ``crs`` (an EPSG code) is used when the file states none, ``band`` when
+        it has several; without the one it needs, :class:`ChoiceNeeded` says
+        which. The file is then kept as uploaded (``dem_source``) and the site
+        reads a GeoTIFF copy of the chosen band with the given CRS
+        (``dem_file``), so the analysis worker needs no further telling.
         """
 
-        dem = self._dem_for_request(tmp_path)
+        outline = raster_outline(tmp_path)
+        chosen_crs, chosen_band = dem_choices(outline, Path(original_name).name, crs, band)
+        dem = self._dem_for_request(tmp_path, crs=chosen_crs, band=chosen_band)
         info = dem_info(dem, file_bytes=os.path.getsize(tmp_path))
+        info["band_count"] = outline.bands
+        info["bands"] = _band_choices(outline)
+        info["band"] = chosen_band or 1
+        info["crs_source"] = "you" if chosen_crs is not None else "file"
         suffix = Path(original_name).suffix.lower()
         stored = "dem/" + layout.new_name(suffix if suffix in (".tif", ".tiff", ".img", ".asc") else ".tif")
+        copy = "dem/" + layout.new_name(".tif") if (chosen_crs or chosen_band) else None
         name = _site_name(original_name)
+        datum = info.get("vertical_datum_from_crs")
         with db.transaction(conn):
             cur = conn.execute(
                 "INSERT INTO sites(name, created_utc, dem_file, original_name, dem_info, "
-                "vertical_unit, outlets, connectivity, confirmed) VALUES (?, ?, ?, ?, ?, ?, ?, ?, 0)",
-                (name, db.utc_now(), stored, _clean_name(original_name), db.dumps(info),
-                 info["vertical_unit"], db.dumps([{"kind": "edge"}]), 8),
+                "vertical_unit, outlets, connectivity, confirmed, vertical_datum, dem_crs, "
+                "dem_band, dem_source) VALUES (?, ?, ?, ?, ?, ?, ?, ?, 0, ?, ?, ?, ?)",
+                (name, db.utc_now(), copy or stored, _clean_name(original_name), db.dumps(info),
+                 info["vertical_unit"], db.dumps([{"kind": "edge"}]), 8, datum,
+                 _crs_code(chosen_crs), chosen_band, stored if copy else None),
             )
             site_id = int(cur.lastrowid)
-            target = layout.site_dir(self.data, site_id) / stored
+            folder = layout.site_dir(self.data, site_id)
+            target = folder / stored
             target.parent.mkdir(parents=True, exist_ok=True)
             os.replace(tmp_path, target)
+            if copy:
+                self._write_copy(target, folder / copy, chosen_crs, chosen_band, None, datum)
         return site_id
 
-    def _dem_for_request(self, path: Path, vertical_unit: VerticalUnit | None = None):
+    def _write_copy(self, source: Path, target: Path, crs, band, unit, datum) -> None:
+        """The GeoTIFF the site reads: ``band`` of ``source`` with ``crs`` (see register_upload)."""
+        grid = read_dem_grid(source, crs=crs, band=band, vertical_unit=unit)
+        write_dem_copy(target, grid, vertical_datum=datum)
+
+    def _dem_for_request(self, path: Path, vertical_unit: VerticalUnit | None = None, *,
+                         crs: Any = None, band: int | None = None):
         """The DEM at ``path`` as far as a request may read it.
 
         Its header is checked first (``MAX_DEM_CELLS`` among the rest). Up to
@@ -198,7 +273,7 @@ class Registry:
         worker, which is admitted by its memory estimate (see
         :class:`sillmark.web.jobs.JobRunner`).
         """
-        grid = read_dem_grid(path, vertical_unit=vertical_unit)
+        grid = read_dem_grid(path, vertical_unit=vertical_unit, crs=crs, band=band)
         limit = int(self.config["MAX_DEM_CELLS"])
         cells = grid.rows * grid.cols
         if cells > limit:
@@ -208,11 +283,13 @@ class Registry:
             )
         if cells > int(self.config["UPLOAD_READ_CELLS"]):
             return grid
-        return read_dem(path, vertical_unit=vertical_unit, max_cells=limit)
+        return read_dem(path, vertical_unit=vertical_unit, crs=crs, band=band, max_cells=limit)
 
     def configure(self, conn: sqlite3.Connection, site_id: int, *, name: str | None,
                   vertical_unit: str, outlets: list[str], connectivity: Any,
-                  water_file: Path | None, water_name: str | None) -> int:
+                  water_file: Path | None, water_name: str | None,
+                  vertical_datum: str | None = None, crs: str | None = None,
+                  band: Any = None) -> int:
         """Check and store a site's settings, queue an analysis run; return the run id.
 
         Everything is checked against the DEM before anything is stored: the
@@ -221,7 +298,15 @@ class Registry:
         """
 
         row = self.site(conn, site_id)
-        unit = VerticalUnit.parse(vertical_unit)
+        unit = _unit_from_form(vertical_unit)
+        # A form without the field keeps the datum; an empty field clears it.
+        datum = row["vertical_datum"] if vertical_datum is None else clean_datum(vertical_datum)
+        info = db.loads(row["dem_info"], {})
+        if info.get("vertical_unit_source") == "crs" and unit.value != info.get("vertical_unit"):
+            raise InvalidParameter(
+                f"the DEM's CRS states its heights in {unit_words(info['vertical_unit'])}; "
+                f"choose {unit_words(info['vertical_unit'])} as the vertical unit"
+            )
         conn_value = _connectivity(connectivity)
         kinds = [k for k in outlets if k]
         unknown = [k for k in kinds if k not in OUTLET_KINDS]
@@ -241,7 +326,26 @@ class Registry:
                 "give at least one outlet: the DEM edge, the cells next to nodata, or a water body"
             )
         folder = layout.site_dir(self.data, site_id)
-        dem = self._dem_for_request(folder / row["dem_file"], unit)
+        source_rel = row["dem_source"] or row["dem_file"]
+        outline = raster_outline(folder / source_rel)
+        new_crs, new_band = dem_choices(
+            outline, row["original_name"],
+            crs if (crs or "").strip() else row["dem_crs"],
+            band if str(band or "").strip() else row["dem_band"])
+        dem_rel = row["dem_file"]
+        new_copy = None
+        if (_crs_code(new_crs), new_band) != (row["dem_crs"], row["dem_band"]):
+            # Another CRS or band: a new copy, made before anything is stored (the
+            # current results keep reading the one they were made from).
+            new_copy = "dem/" + layout.new_name(".tif")
+            dem = self._dem_for_request(folder / source_rel, unit, crs=new_crs, band=new_band)
+            fresh = dem_info(dem, file_bytes=info.get("file_bytes"))
+            fresh.update(band_count=outline.bands, band=new_band or 1, bands=_band_choices(outline),
+                         crs_source="you" if new_crs is not None else "file")
+            info = fresh
+            dem_rel = new_copy
+        else:
+            dem = self._dem_for_request(folder / dem_rel, unit)
         specs: list = []
         spec_files: list = []
         for k in ("edge", "nodata"):
@@ -261,21 +365,29 @@ class Registry:
         if isinstance(dem, DEM):  # a large DEM's outlets are checked by its analysis
             build_outlets(dem, tuple(specs), connectivity=conn_value)  # raises with the engine's message
         settings = {
-            "dem_file": row["dem_file"],
+            "dem_file": dem_rel,
             "vertical_unit": unit.value,
+            "vertical_datum": datum,
+            "crs": _crs_code(new_crs),
+            "band": new_band,
             "outlets": spec_files,
             "connectivity": conn_value,
             "max_cells": int(self.config["MAX_DEM_CELLS"]),
             **engine_settings(self.config),
         }
-        info = db.loads(row["dem_info"], {})
         new_name = _site_name(name) if name and name.strip() else row["name"]
         with db.transaction(conn):
             conn.execute(
                 "UPDATE sites SET name = ?, vertical_unit = ?, outlets = ?, connectivity = ?, "
-                "confirmed = 1 WHERE id = ?",
-                (new_name, unit.value, db.dumps(spec_files), conn_value, site_id),
+                "confirmed = 1, vertical_datum = ? WHERE id = ?",
+                (new_name, unit.value, db.dumps(spec_files), conn_value, datum, site_id),
             )
+            if new_copy is not None:
+                self._write_copy(folder / source_rel, folder / new_copy, new_crs, new_band, unit, datum)
+                conn.execute(
+                    "UPDATE sites SET dem_file = ?, dem_source = ?, dem_crs = ?, dem_band = ?, "
+                    "dem_info = ? WHERE id = ?",
+                    (new_copy, source_rel, _crs_code(new_crs), new_band, db.dumps(info), site_id))
             if info.get("vertical_unit") != unit.value:
                 info["vertical_unit"] = unit.value
                 info["vertical_unit_source"] = "argument"
@@ -349,6 +461,8 @@ class Registry:
         if not row["confirmed"]:
             raise SiteNotReady("confirm the site's settings first")
         settings = {"dem_file": row["dem_file"], "vertical_unit": row["vertical_unit"],
+                    "vertical_datum": row["vertical_datum"], "crs": row["dem_crs"],
+                    "band": row["dem_band"],
                     "outlets": db.loads(row["outlets"], []), "connectivity": row["connectivity"],
                     "max_cells": int(self.config["MAX_DEM_CELLS"]), **engine_settings(self.config)}
         latest = db.latest_run(conn, site_id)
@@ -403,6 +517,68 @@ class Registry:
 def _starts_with_brace(path: Path) -> bool:
     with open(path, "rb") as fh:
         return fh.read(64).lstrip().startswith(b"{")
+
+
+def _unit_from_form(text: Any) -> VerticalUnit:
+    """The vertical unit a form sent; refused in words a person reads (no internal codes)."""
+    try:
+        return VerticalUnit.parse(text or "")
+    except InvalidParameter:
+        shown = "".join(ch for ch in str(text) if ch.isprintable())[:20]
+        raise InvalidParameter(
+            f"unknown vertical unit {shown!r}; choose metres, international feet or US survey feet"
+        ) from None
+
+
+def _crs_code(crs) -> str | None:
+    """``EPSG:n`` of a chosen CRS (None when none was chosen)."""
+    if crs is None:
+        return None
+    epsg = crs.to_epsg()
+    return f"EPSG:{epsg}" if epsg else crs.to_string()
+
+
+def _band_choices(outline) -> list[dict]:
+    return [{"band": i + 1, "name": outline.band_names[i] if i < len(outline.band_names) else ""}
+            for i in range(outline.bands)]
+
+
+def dem_choices(outline, name: str, crs: Any, band: Any):
+    """(CRS, band) to read the file with, from what the user chose and what the file needs.
+
+    A CRS is used only for a file that states none (a file's own CRS wins, and
+    the page shows it); a band only for a file of several. Raises
+    :class:`ChoiceNeeded` when the file needs a choice the user has not made.
+    """
+    shown = os.path.basename(str(name).replace("\\", "/"))
+    needs, parts = [], []
+    chosen_band = None
+    if outline.bands > 1:
+        text = str(band if band is not None else "").strip()
+        if not text:
+            needs.append("band")
+            parts.append(f"has {outline.bands} bands; choose the band that holds the ground "
+                         f"elevations (1 to {outline.bands}) under 'Band'")
+        elif not text.isdigit() or not 1 <= int(text) <= outline.bands:
+            raise InvalidParameter(
+                f"band {text[:12]!r} is not in '{shown}', which has {outline.bands} bands; "
+                f"choose a band from 1 to {outline.bands}")
+        else:
+            chosen_band = int(text)
+    chosen_crs = None
+    if not outline.has_crs:
+        text = str(crs if crs is not None else "").strip()
+        if not text:
+            needs.append("crs")
+            parts.append("has no CRS; choose it under 'CRS of the DEM' "
+                         "(search by EPSG code or name)")
+        else:
+            chosen_crs = epsg_crs(text)
+    if needs:
+        raise ChoiceNeeded(f"'{shown}' " + " and ".join(parts)
+                           + "; the file is kept until you choose, so it need not be sent again",
+                           needs=needs, bands=_band_choices(outline))
+    return chosen_crs, chosen_band
 
 
 def _connectivity(value: Any) -> int:

@@ -17,6 +17,8 @@ import contextlib
 import errno
 import os
 import re
+import secrets
+import time
 from pathlib import Path
 from urllib.parse import unquote
 
@@ -26,11 +28,11 @@ from werkzeug.exceptions import RequestEntityTooLarge
 from sillmark.errors import InvalidDEM, InvalidParameter, SillmarkError
 from sillmark.grid.assets import InvalidAssets, read_assets
 from sillmark.grid.crs import crs_label
-from sillmark.grid.dem import read_dem_grid
+from sillmark.grid.dem import raster_outline, read_dem_grid
 from sillmark.web import get_db, layout, services
 from sillmark.web.access import site_row
 from sillmark.web.db import StorageError
-from sillmark.web.sites import SiteNotReady
+from sillmark.web.sites import ChoiceNeeded, SiteNotReady, dem_choices
 
 bp = Blueprint("uploads", __name__, url_prefix="/uploads")
 
@@ -148,10 +150,16 @@ def _with_suffix(path: Path, name: str, allowed: tuple[str, ...], default: str) 
 MIN_SITE_SIDE = 2
 
 
-def _check_map_size(path: Path) -> None:
+def _check_map_size_or_needs(path: Path, name: str, crs, band) -> None:
+    """:func:`_check_map_size` with the CRS and band the file needs (ChoiceNeeded without)."""
+    chosen_crs, chosen_band = dem_choices(raster_outline(path), name, crs, band)
+    _check_map_size(path, crs=chosen_crs, band=chosen_band)
+
+
+def _check_map_size(path: Path, *, crs=None, band=None) -> None:
     """Refuse a DEM too narrow to map (read from its header; no pixels are read)."""
 
-    grid = read_dem_grid(path)
+    grid = read_dem_grid(path, crs=crs, band=band)
     if grid.rows < MIN_SITE_SIDE or grid.cols < MIN_SITE_SIDE:
         raise InvalidDEM(
             f"'{path.name}' is {grid.rows} × {grid.cols} cells; a site needs at least "
@@ -160,13 +168,89 @@ def _check_map_size(path: Path) -> None:
         )
 
 
+#: A DEM waiting for its CRS or band is kept this long (seconds) under ``uploads/pending/``.
+PENDING_SECONDS = 24 * 3600
+_PENDING_TOKEN = re.compile(r"^[0-9a-f]{32}$")
+
+
+def _pending_dir() -> Path:
+    return layout.uploads_dir(services().data_dir) / "pending"
+
+
+def _drop_stale_pending(now: float) -> None:
+    folder = _pending_dir()
+    if not folder.is_dir():
+        return
+    for entry in folder.iterdir():
+        with contextlib.suppress(OSError):
+            if now - entry.stat().st_mtime > PENDING_SECONDS:
+                entry.unlink()
+
+
+def _keep_pending(path: Path, name: str) -> str:
+    """Keep a received DEM that needs a choice; the token that names it again."""
+    token = secrets.token_hex(16)
+    folder = _pending_dir()
+    folder.mkdir(parents=True, exist_ok=True)
+    os.replace(path, folder / token)
+    (folder / (token + ".name")).write_text(_shown(name)[:120], encoding="utf-8")
+    return token
+
+
+@contextlib.contextmanager
+def _pending(token: str):
+    """Yield (path, original name) of a DEM kept by :func:`_keep_pending`, removed after use
+    unless it still needs a choice."""
+    if not _PENDING_TOKEN.match(token or ""):
+        raise InvalidParameter("the kept upload is named by a token of 32 hex digits; "
+                               "choose the DEM file again")
+    folder = _pending_dir()
+    path, label = folder / token, folder / (token + ".name")
+    if not path.is_file():
+        raise InvalidParameter("the kept upload is no longer here (it is kept for a day); "
+                               "choose the DEM file again")
+    name = label.read_text(encoding="utf-8") if label.is_file() else "upload.tif"
+    # The readers go by the extension (an ESRI ASCII grid, say): a named link gives it one.
+    work = folder / (token + "-" + layout.new_name(Path(name).suffix.lower() or ".tif"))
+    os.link(path, work)
+    keep = False
+    try:
+        yield work, name
+    except ChoiceNeeded:
+        keep = True
+        raise
+    finally:
+        work.unlink(missing_ok=True)
+        if not keep:
+            path.unlink(missing_ok=True)
+            label.unlink(missing_ok=True)
+
+
 @bp.post("/dem")
 def dem():
-    """A new DEM: read it, keep it as a draft site, say what was found (201)."""
+    """A new DEM: read it, keep it as a draft site, say what was found (201).
+
+    ``?crs=EPSG:n`` gives the CRS of a file that states none, ``?band=N`` picks
+    the band of a file of several. A file that needs one of them is answered
+    400 with ``needs``, ``bands`` and a ``pending`` token; sending
+    ``?pending=TOKEN`` with the choices (and no body) goes on with the kept file.
+    """
     svc = services()
-    with _received("dem", limit=int(current_app.config["MAX_UPLOAD_BYTES"])) as (path, name):
-        _check_map_size(path)
-        site_id = svc.registry.register_upload(get_db(), path, name)
+    _drop_stale_pending(time.time())
+    crs, band = request.args.get("crs"), request.args.get("band")
+    token = request.args.get("pending")
+    if token is not None:
+        with _pending(token) as (path, name):
+            _check_map_size_or_needs(path, name, crs, band)
+            site_id = svc.registry.register_upload(get_db(), path, name, crs=crs, band=band)
+    else:
+        with _received("dem", limit=int(current_app.config["MAX_UPLOAD_BYTES"])) as (path, name):
+            try:
+                _check_map_size_or_needs(path, name, crs, band)
+                site_id = svc.registry.register_upload(get_db(), path, name, crs=crs, band=band)
+            except ChoiceNeeded as exc:
+                exc.details["pending"] = _keep_pending(path, name)
+                raise
     row = svc.registry.site(get_db(), site_id)
     described = svc.registry.describe(get_db(), row)
     response = jsonify({
@@ -198,6 +282,9 @@ def settings(site_id: int):
             connectivity=form.get("connectivity", "8"),
             water_file=water,
             water_name=water_name,
+            vertical_datum=form.get("vertical_datum"),
+            crs=form.get("crs"),
+            band=form.get("band"),
         )
     svc.runner.submit(run_id)
     response = jsonify({"run_id": run_id, "site_url": url_for("pages.site", site_id=site_id),

@@ -41,6 +41,10 @@
 
   /* A level or elevation with its unit symbol. */
   function level(v, unit) { return fixed(v, 2) + "\u202f" + unit; }
+  /* A level with its vertical datum: "47.60 m above NAVD88", or "47.60 m, datum not stated". */
+  function levelAt(v, unit, datum) {
+    return level(v, unit) + (datum ? " above " + datum : ", datum not stated");
+  }
 
   /* An area: ha (2 decimals) with m² for small ones. */
   function area(m2) {
@@ -127,7 +131,7 @@
   }
 
   window.Sillmark = {
-    token: token, getJSON: getJSON, fixed: fixed, level: level, area: area, volume: volume,
+    token: token, getJSON: getJSON, fixed: fixed, level: level, levelAt: levelAt, area: area, volume: volume,
     el: el, show: show, legend: legend, outlets: outlets,
   };
 })();

@@ -11,6 +11,9 @@
     assets: window[N.assets], route: window[N.route],
   };
   var unit = config.unit_symbol;
+  var datum = config.datum || "";
+  /* Levels (not depths) carry the vertical datum. */
+  var at = function (v) { return S.levelAt(v, unit, datum); };
   var base = "/api/sites/" + config.site_id;
   var level = config.level;
   var range = config.range;
@@ -46,6 +49,7 @@
     history.replaceState(null, "", "#level=" + levelText(v));
     $("print-link").href = "/sites/" + config.site_id + "/print?level=" + encodeURIComponent(levelText(v));
     document.querySelectorAll(".level-echo").forEach(function (n) { n.textContent = S.level(v, unit); });
+    $("level-datum").textContent = at(v);
     if (chart) { chart.setMarker(v); }
     later("water", source === "slider" ? 60 : 0, function () { showWater(v); });
     later("figures", source === "slider" ? 90 : 0, function () { loadFigures(v); });
@@ -126,7 +130,7 @@
   S.getJSON(base + "/stage_table").then(function (t) {
     var ha = function (a) { return a.map(function (v) { return v / 1e4; }); };
     chart = new window.SillmarkChart.LineChart($("stage-chart"), {
-      xLabel: "outlet water level (" + unit + ")",
+      xLabel: "outlet water level (" + unit + (datum ? " above " + datum : ", datum not stated") + ")",
       left: { label: "area (ha)" },
       right: { label: "volume (m³)" },
       series: [
@@ -225,8 +229,8 @@
   function depressionPopup(d) {
     var st = depressionState(d);
     var rows = [
-      ["Lowest ground", S.level(d.pit_elevation, unit)],
-      ["Spill elevation", S.level(d.spill_elevation, unit)],
+      ["Lowest ground", at(d.pit_elevation)],
+      ["Spill elevation", at(d.spill_elevation)],
       ["Deepest water when full", S.level(d.max_depth, unit).replace(/^/, "")],
       ["Area when full", S.area(d.area_m2)],
       ["Storage when full", S.volume(d.volume_m3) + (d.volume_acre_ft !== undefined ? " (" + S.fixed(d.volume_acre_ft, 1) + " acre-ft)" : "")],
@@ -301,7 +305,7 @@
       var m = L.circleMarker([d.spill_lat, d.spill_lon], {
         radius: 5, color: "#2b2118", weight: 1.5, fillColor: "#e0b043", fillOpacity: 1, className: "spill-point",
       });
-      m.bindTooltip("spill " + S.level(d.spill_elevation, unit), { direction: "top", offset: [0, -4] });
+      m.bindTooltip("spill " + at(d.spill_elevation), { direction: "top", offset: [0, -4] });
       m.bindPopup(function () { return depressionPopup(d); }, { maxWidth: 320 });
       m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectDepression(d.id, false); m.openPopup(); });
       groups.spills.addLayer(m);
@@ -319,14 +323,14 @@
   var assetRows = sortable($("assets-table"), function () { return assets; }, renderAssetTable);
 
   function assetPopup(a) {
-    var rows = [["Kind", a.kind || "–"], ["Ground", S.level(a.ground_elevation, unit)],
-      ["Onset stage", S.level(a.onset_stage, unit)]];
+    var rows = [["Kind", a.kind || "–"], ["Ground", at(a.ground_elevation)],
+      ["Onset stage", at(a.onset_stage)]];
     if (a.state === "flooded") { rows.push(["Depth at " + S.level(level, unit), S.level(a.depth, unit)]); }
     else if (a.state === "shielded") { rows.push(["Below the level by", S.level(a.depth_if_reached, unit) + " (shielded)"]); }
     else if (a.status === "ok") { rows.push(["Freeboard", S.level(a.freeboard, unit)]); }
     if (a.status !== "ok") { rows.push(["Placement", a.status]); }
     else {
-      rows.push(["Controlling sill", a.sill_is_own_cell ? "its own ground" : S.level(a.sill_elevation, unit)]);
+      rows.push(["Controlling sill", a.sill_is_own_cell ? "its own ground" : at(a.sill_elevation)]);
     }
     var extra = a.status === "ok" ? '<p><a href="#" class="whatif-link" data-index="' + a.index + '">What if the sill were higher…</a></p>' : "";
     return popupTable(a.name, rows, extra);
@@ -472,15 +476,15 @@
         L.geoJSON(c.route, { style: { color: "#ffffff", weight: 1.2, opacity: 0.9, dashArray: "2 6" } }).addTo(groups.route);
       }
       L.circleMarker([c.lat, c.lon], { radius: 4, color: "#14232c", weight: 2, fillColor: "#fff", fillOpacity: 1 }).addTo(groups.route);
-      addSill(c.sill, c.sill.is_own_cell ? "its own ground controls (" + S.level(c.sill.elevation, unit) + ")"
-        : "controlling sill " + S.level(c.sill.elevation, unit));
+      addSill(c.sill, c.sill.is_own_cell ? "its own ground controls (" + at(c.sill.elevation) + ")"
+        : "controlling sill " + at(c.sill.elevation));
       var rows = [
-        ["Elevation", S.level(c.elevation, unit)],
-        ["Onset stage", S.level(c.onset_stage, unit)],
-        ["At " + S.level(c.level, unit), c.state === "flooded" ? "flooded, " + S.level(c.depth, unit) + " deep"
+        ["Elevation", at(c.elevation)],
+        ["Onset stage", at(c.onset_stage)],
+        ["At " + at(c.level), c.state === "flooded" ? "flooded, " + S.level(c.depth, unit) + " deep"
           : c.state === "shielded" ? "shielded: " + S.level(c.depth_if_reached, unit) + " below the level, no path yet"
             : "dry, " + S.level(c.freeboard, unit) + " to spare"],
-        ["Controlling sill", c.sill.is_own_cell ? "the point itself" : S.level(c.sill.elevation, unit)],
+        ["Controlling sill", c.sill.is_own_cell ? "the point itself" : at(c.sill.elevation)],
         ["Route", c.route_cells + " cells from " + (c.reaches_outlet ? "an outlet" : "the edge of the data")],
         ["In depression", c.depression_id ? String(c.depression_id) : "none"],
       ];

@@ -4,11 +4,54 @@
   var S = window.Sillmark;
   var $ = function (id) { return document.getElementById(id); };
 
+  /* The CRS chooser: search the EPSG registry on the server, pick one. */
+  var chooser = $("crs-chooser");
+  if (chooser) {
+    var search = $("crs-search"), results = $("crs-results"), code = $("crs-code"), picked = $("crs-picked");
+    var timer = null, asked = 0;
+    var pick = function (c) {
+      code.value = c.code;
+      picked.textContent = "Chosen: " + c.code + " (" + c.name + ")";
+      results.hidden = true;
+      search.value = "";
+    };
+    var list = function (found) {
+      results.textContent = "";
+      found.forEach(function (c) {
+        var li = S.el("li", { role: "option", tabindex: "0", "class": "crs-option" }, [
+          S.el("strong", { text: c.code }), " " + c.name,
+          S.el("span", { "class": "muted small", text: " · " + c.kind + (c.area ? " · " + c.area : "") })]);
+        li.dataset.code = c.code;
+        li.addEventListener("click", function () { pick(c); });
+        li.addEventListener("keydown", function (ev) { if (ev.key === "Enter") { ev.preventDefault(); pick(c); } });
+        results.appendChild(li);
+      });
+      if (!found.length) { results.appendChild(S.el("li", { "class": "muted", text: "No CRS matches; try the EPSG code." })); }
+      results.hidden = false;
+    };
+    search.addEventListener("input", function () {
+      clearTimeout(timer);
+      var q = search.value.trim();
+      if (!q) { results.hidden = true; return; }
+      timer = setTimeout(function () {
+        var mine = ++asked;
+        S.getJSON(chooser.dataset.searchUrl + "?limit=12&q=" + encodeURIComponent(q)).then(function (res) {
+          if (mine === asked) { list(res.results); }
+        }).catch(function (err) {
+          results.textContent = "";
+          results.appendChild(S.el("li", { "class": "muted", text: err.message }));
+          results.hidden = false;
+        });
+      }, 200);
+    });
+  }
+
   var demForm = $("dem-form");
   if (demForm) {
     var input = $("dem-file");
     var zone = demForm.querySelector(".dropzone");
     input.addEventListener("change", function () {
+      $("pending-token").value = "";
       $("dem-chosen").textContent = input.files[0] ? input.files[0].name + " · " +
         S.fixed(input.files[0].size / 1048576, 1) + " MiB" : "";
     });
@@ -25,15 +68,21 @@
     demForm.addEventListener("submit", function (ev) {
       ev.preventDefault();
       var file = input.files[0];
-      if (!file) { S.show($("upload-error"), "Choose a DEM file first."); return; }
+      var pending = $("pending-token").value;
+      if (!file && !pending) { S.show($("upload-error"), "Choose a DEM file first."); return; }
+      var query = [];
+      if ($("crs-code").value) { query.push("crs=" + encodeURIComponent($("crs-code").value)); }
+      if ($("band-select").value) { query.push("band=" + encodeURIComponent($("band-select").value)); }
+      if (pending) { query.push("pending=" + encodeURIComponent(pending)); }
+      var target = demForm.action + (query.length ? "?" + query.join("&") : "");
       S.show($("upload-error"), "");
       var bar = $("upload-bar"), text = $("upload-text");
       $("upload-progress").hidden = false;
       $("upload-button").disabled = true;
       var xhr = new XMLHttpRequest();
-      xhr.open("POST", demForm.action);
+      xhr.open("POST", target);
       xhr.setRequestHeader("X-Sillmark-Token", S.token());
-      xhr.setRequestHeader("X-File-Name", encodeURIComponent(file.name));
+      if (!pending) { xhr.setRequestHeader("X-File-Name", encodeURIComponent(file.name)); }
       xhr.setRequestHeader("Content-Type", "application/octet-stream");
       xhr.setRequestHeader("Accept", "application/json");
       xhr.upload.addEventListener("progress", function (e) {
@@ -49,12 +98,26 @@
         $("upload-button").disabled = false;
         $("upload-progress").hidden = true;
         S.show($("upload-error"), (body && body.error) || "The upload failed (status " + xhr.status + ").");
+        if (body && body.needs) {
+          // The server keeps the file: choose, then press the button again.
+          $("pending-token").value = body.pending || "";
+          $("dem-choices").open = true;
+          if (body.needs.indexOf("band") >= 0) {
+            var sel = $("band-select");
+            sel.textContent = "";
+            body.bands.forEach(function (b) {
+              sel.appendChild(S.el("option", { value: String(b.band), text: "band " + b.band + (b.name ? " — " + b.name : "") }));
+            });
+          }
+          if (body.needs.indexOf("crs") >= 0) { $("crs-search").focus(); }
+          $("upload-button").textContent = "Read it with these choices";
+        }
       });
       xhr.addEventListener("error", function () {
         $("upload-button").disabled = false;
         S.show($("upload-error"), "The connection to the server was lost during the upload.");
       });
-      xhr.send(file);
+      xhr.send(pending ? null : file);
     });
   }
 

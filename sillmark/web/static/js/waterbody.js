@@ -84,6 +84,7 @@
     var form = new FormData();
     form.append("name", st.name);
     form.append("vertical_unit", st.vertical_unit);
+    form.append("vertical_datum", st.vertical_datum || "");
     st.outlets.forEach(function (k) { form.append("outlet", k); });
     form.append("outlet", "file");
     form.append("connectivity", String(st.connectivity));
