@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pyproj
 
 from sillmark.errors import (
     InvalidDEM,
