@@ -123,28 +123,6 @@ def _find(parent, a):
     return a
 
 
-def _pad_grids(level, state, label):
-    """Write the padding of the three padded grids, rows in parallel.
-
-    Writing in parallel also spreads the first touch of the fresh pages (the
-    page faults) over the threads; the tile kernels touch the rest.
-    """
-    rows, width = level.shape
-    for r in prange(rows):
-        if r == 0 or r == rows - 1:
-            for c in range(width):
-                level[r, c] = np.nan
-                state[r, c] = BLOCKED
-                label[r, c] = 0
-        else:
-            level[r, 0] = np.nan
-            level[r, width - 1] = np.nan
-            state[r, 0] = BLOCKED
-            state[r, width - 1] = BLOCKED
-            label[r, 0] = 0
-            label[r, width - 1] = 0
-
-
 def _scan_inputs(elevation, outlet_mask):
     """Count infinite elevations and outlet cells on valid data, rows in parallel."""
     rows, cols = elevation.shape
@@ -158,89 +136,6 @@ def _scan_inputs(elevation, outlet_mask):
             elif outlet_mask[r, c] and not np.isnan(v):
                 outlets += 1
     return infinite, outlets
-
-
-def _label_depressions(level, state, label, elevation, row_areas, back, width):
-    """Depression ids and totals: connected components of ``s > z``.
-
-    Two-pass connected-component labelling with union-find (Rosenfeld & Pfaltz
-    1966): the first raster pass gives provisional labels from the neighbours
-    already visited (``back`` offsets) and joins touching labels, always keeping
-    the smaller as root; the second pass numbers components 1..n in order of
-    their first cell in raster order and totals each: cell count, area, volume
-    below the spill level, and the pit (lowest cell, first in raster order on
-    ties). Nodata cells get flood-tree code 0; unreached cells are counted.
-    """
-    rows, cols = elevation.shape
-    n_back = back.shape[0]
-    forest = np.empty(1024, dtype=np.int32)
-    forest[0] = 0
-    labels = 0
-    unreached = 0
-    for r in range(rows):
-        base = (r + 1) * width + 1
-        for c in range(cols):
-            i = base + c
-            t = state[i]
-            if t == BLOCKED:
-                state[i] = 0
-                continue
-            if t == UNVISITED:
-                unreached += 1
-                continue
-            if not (level[i] > elevation[r, c]):
-                continue
-            mine = 0
-            for k in range(n_back):
-                other = label[i + back[k]]
-                if other > 0:
-                    other = _find(forest, other)
-                    if mine == 0:
-                        mine = other
-                    elif other != mine:
-                        if other < mine:
-                            forest[mine] = other
-                            mine = other
-                        else:
-                            forest[other] = mine
-            if mine == 0:
-                labels += 1
-                forest = _grow_int32(forest, labels)
-                forest[labels] = labels
-                mine = labels
-            label[i] = mine
-
-    final_of = np.zeros(labels + 1, dtype=np.int32)
-    count = np.zeros(labels + 1, dtype=np.int64)
-    area = np.zeros(labels + 1, dtype=np.float64)
-    volume = np.zeros(labels + 1, dtype=np.float64)
-    pit_elevation = np.full(labels + 1, np.inf, dtype=np.float32)
-    pit_cell = np.zeros(labels + 1, dtype=np.int64)
-    n_final = 0
-    for r in range(rows):
-        a = row_areas[r]
-        base = (r + 1) * width + 1
-        for c in range(cols):
-            i = base + c
-            lab = label[i]
-            if lab == 0:
-                continue
-            root = _find(forest, lab)
-            f = final_of[root]
-            if f == 0:
-                n_final += 1
-                f = n_final
-                final_of[root] = f
-            z = elevation[r, c]
-            count[f] += 1
-            area[f] += a
-            volume[f] += (np.float64(level[i]) - np.float64(z)) * a
-            if z < pit_elevation[f]:
-                pit_elevation[f] = z
-                pit_cell[f] = i
-            label[i] = f
-    m = n_final + 1
-    return count[:m], area[:m], volume[:m], pit_elevation[:m], pit_cell[:m], unreached
 
 
 def _walk_route(tree, row, col, drow, dcol, limit):
@@ -272,7 +167,5 @@ _grow_int64 = njit(cache=True)(_grow_int64)
 _grow_int32 = njit(cache=True)(_grow_int32)
 _ring_unrolled = njit(cache=True)(_ring_unrolled)
 _find = njit(cache=True)(_find)
-pad_grids = njit(parallel=True, cache=True)(_pad_grids)
 scan_inputs = njit(parallel=True, cache=True)(_scan_inputs)
-label_depressions = njit(cache=True)(_label_depressions)
 walk_route = njit(cache=True)(_walk_route)

@@ -289,7 +289,6 @@ def _summarise_tile(level, state, label, h, w, offs, dirs, n_dep, tiled, perimet
     +inf for none; direction code, -1) and where entering it leads (kind, value).
     """
     lw = w + 2
-    n_dirs = offs.shape[0]
     pieces = np.empty((64, _PIECE_COLUMNS), dtype=np.int64)
     n_pieces = 0
     stack = np.empty(256, dtype=np.uint32)

@@ -19,11 +19,10 @@ through a small graph over their perimeter cells, after Barnes (2016):
 
 Step 1 works on tile-local arrays (:func:`_flood_tile_arrays` returns the
 tile's own padded level, state and label arrays), which the pipeline
-(:mod:`sillmark.engine.pipeline`) hands to its tile store; :func:`_flood_tile`
-copies them into shared padded arrays of width ``width`` instead. Step
-3 (:func:`_finish_tile`) takes either: the shared arrays with the tile's bounds,
-or a tile's own arrays with bounds ``0:h, 0:w`` and width ``w + 2``. The kernels
-trust their inputs. Per-tile kernels release the GIL so tiles run on several
+(:mod:`sillmark.engine.pipeline`) hands to its tile store. Step 3
+(:func:`_finish_tile`) takes arrays with a tile's bounds and their width:
+shared padded arrays of the whole grid, or a tile's own arrays with bounds
+``0:h, 0:w`` and width ``w + 2``. The kernels trust their inputs. Per-tile kernels release the GIL so tiles run on several
 threads.
 
 References
@@ -42,14 +41,12 @@ from sillmark.engine._flood_kernels import (
     BLOCKED,
     OUTLET,
     UNVISITED,
-    _find,
     _grow_uint64,
     _heap_pop,
     _heap_sift_up,
     _ordered_key,
     _ring_unrolled,
 )
-from sillmark.engine.plan import _across_tiles, _grid_perimeters, _push_link
 
 #: Flood-tree state of a tile seed until step 3 gives it a parent.
 SEED = 12
@@ -233,46 +230,6 @@ def _flood_tile_arrays(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs)
     return lz, lstate, llab, seeds, ea, eb, elevel, ecell_a, ecell_b, heap_pops
 
 
-def _flood_tile(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs,
-                level, state, label, width):
-    """Step 1 for one tile of the shared padded grids (the in-memory engine).
-
-    Runs :func:`_flood_tile_arrays` and copies the tile's cells into ``level``
-    (local level), ``state`` and ``label``. Returns the global padded index of
-    every seed (index = label, entry 0 unused), the meetings (label a < label
-    b, level, cell on a's side, cell on b's side, as global padded indices) and
-    the number of priority-queue pops.
-    """
-    lz, lstate, llab, lseeds, ea, eb, elevel, la, lb, heap_pops = _flood_tile_arrays(
-        elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs
-    )
-    h = r1 - r0
-    w = c1 - c0
-    lw = w + 2
-    for lr in range(h):
-        gbase = (r0 + lr + 1) * width + c0 + 1
-        lbase = (lr + 1) * lw + 1
-        for lc in range(w):
-            level[gbase + lc] = lz[lbase + lc]
-            state[gbase + lc] = lstate[lbase + lc]
-            label[gbase + lc] = llab[lbase + lc]
-    seeds = np.zeros(lseeds.shape[0], dtype=np.int64)
-    for k in range(1, lseeds.shape[0]):
-        seeds[k] = _local_to_global(lseeds[k], lw, r0, c0, width)
-    ecell_a = np.empty(la.shape[0], dtype=np.int64)
-    ecell_b = np.empty(lb.shape[0], dtype=np.int64)
-    for m in range(la.shape[0]):
-        ecell_a[m] = _local_to_global(la[m], lw, r0, c0, width)
-        ecell_b[m] = _local_to_global(lb[m], lw, r0, c0, width)
-    return seeds, ea, eb, elevel, ecell_a, ecell_b, heap_pops
-
-
-def _local_to_global(li, lw, r0, c0, width):
-    lr = li // lw  # padded local row = tile row + 1
-    lc = li % lw
-    return (r0 + lr) * width + c0 + lc
-
-
 def _rehash(hkey, hlevel, hcell_a, hcell_b, table_bits):
     size = 1 << table_bits
     mask = size - 1
@@ -291,52 +248,6 @@ def _rehash(hkey, hlevel, hcell_a, hcell_b, table_bits):
         na[slot] = hcell_a[s]
         nb[slot] = hcell_b[s]
     return nkey, nlevel, na, nb
-
-
-def _links(level, state, label, node_base, tile_rows, tile_cols, tile_size,
-           rows, cols, width, drow, dcol, dirs):
-    """Edges between touching perimeter cells of different tiles.
-
-    The level of such an edge is the higher of the two cells' elevations (a
-    perimeter cell's local level is its elevation). Each pair is listed once,
-    perimeter cells in the order of :func:`sillmark.engine.plan._grid_perimeters`.
-    """
-    n_dirs = dirs.shape[0]
-    eu = np.empty(1024, dtype=np.int64)
-    ev = np.empty(1024, dtype=np.int64)
-    elevel = np.empty(1024, dtype=np.float32)
-    ecu = np.empty(1024, dtype=np.int64)
-    ecv = np.empty(1024, dtype=np.int64)
-    m = 0
-    cells, tiles = _grid_perimeters(tile_size, tile_rows, tile_cols, rows, cols)
-    for j in range(cells.shape[0]):
-        r = cells[j] // cols
-        c = cells[j] - r * cols
-        p = (r + 1) * width + c + 1
-        tp = state[p]
-        if tp == BLOCKED or tp == UNVISITED:
-            continue
-        for k in range(n_dirs):
-            d = dirs[k]
-            rr, cc = _across_tiles(r, c, d, tile_size, rows, cols, drow, dcol)
-            if rr < 0:
-                continue
-            q = p + drow[d] * width + dcol[d]
-            if q < p:
-                continue  # listed from the other side
-            tq = state[q]
-            if tq == BLOCKED or tq == UNVISITED:
-                continue
-            lp = label[p]
-            lq = label[q]
-            zp = level[p]
-            zq = level[q]
-            eu, ev, elevel, ecu, ecv = _push_link(
-                m, eu, ev, elevel, ecu, ecv, 0 if lp == 0 else node_base[tiles[j]] + lp,
-                0 if lq == 0 else node_base[(rr // tile_size) * tile_cols + cc // tile_size] + lq, zp if zp > zq else zq, p, q,
-            )
-            m += 1
-    return eu[:m], ev[:m], elevel[:m], ecu[:m], ecv[:m]
 
 
 def _solve_graph(n_nodes, eu, ev, elevel, ecu, ecv):
@@ -448,11 +359,8 @@ def _finish_tile(r0, r1, c0, c1, level, state, label, base, lam, seeds, own_cell
 
 
 _is_perimeter = njit(inline="always", cache=True)(_is_perimeter)
-_local_to_global = njit(inline="always", cache=True)(_local_to_global)
 _rehash = njit(cache=True)(_rehash)
 flood_tile_arrays = njit(nogil=True, cache=True)(_flood_tile_arrays)
 _flood_tile_arrays = flood_tile_arrays
-flood_tile = njit(nogil=True, cache=True)(_flood_tile)
-links = njit(cache=True)(_links)
 solve_graph = njit(cache=True)(_solve_graph)
 finish_tile = njit(nogil=True, cache=True)(_finish_tile)

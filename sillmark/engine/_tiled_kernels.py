@@ -86,8 +86,8 @@ def _perimeter_links(pstate, plevel, plabel, poff, node_base, tile_rows, tile_co
 def _label_tile(level, state, label, elevation, h, w, back):
     """Pieces of depressions in one finished tile: components of ``s > z`` inside it.
 
-    Two-pass labelling with union-find, as
-    :func:`sillmark.engine._flood_kernels._label_depressions` does on the whole grid,
+    Two-pass labelling with union-find (connected components of the cells
+    whose onset stage is above their ground, 8- or 4-connected as the flood),
     numbered 1..m in order of their first cell in the tile's raster order and
     written into ``label`` (0 elsewhere). Returns per piece (index 1..m) its
     first cell, its pit (lowest cell, first in raster order on ties) and the
@@ -210,9 +210,8 @@ def _roots(forest):
 def _accumulate(ids, level, elevation, row_areas, count, area, volume):
     """Depression totals over a block of rows, cell by cell in raster order.
 
-    The same additions in the same order as the second pass of
-    :func:`sillmark.engine._flood_kernels._label_depressions`, so the sums are the same
-    bits when the blocks are given top to bottom.
+    Cells are added in raster order, so the sums are the same bits however the
+    grid is cut into blocks, as long as the blocks are given top to bottom.
     """
     rows, cols = ids.shape
     for r in range(rows):

@@ -181,7 +181,7 @@ def flood_step(job: TileJob, k: int) -> FloodedTile:
     started = time.perf_counter()
     plan = job.plan
     r0, r1, c0, c1 = plan.bounds(k)
-    h, w = r1 - r0, c1 - c0
+    w = c1 - c0
     tile = job.source.window(r0, r1, c0, c1)
     lz, lstate, llab, seeds, ea, eb, elevel, la, lb, pops = _tile_kernels.flood_tile_arrays(
         tile.z, tile.mask, np.int64(tile.r0), np.int64(tile.r1), np.int64(tile.c0),
