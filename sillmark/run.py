@@ -54,7 +54,7 @@ from sillmark.engine.flood import DEFAULT_TILE_SIZE as MEMORY_TILE_SIZE
 from sillmark.engine.flood import SpillResult, priority_flood
 from sillmark.engine.pipeline import TiledFlood, run_pipeline
 from sillmark.engine.plan import TilePlan
-from sillmark.engine.sources import RasterSource
+from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.engine.stores import FileStore, MemoryStore
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import DEM, read_dem_grid
@@ -273,7 +273,7 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
     directions(connectivity)
     grid = read_dem_grid(dem_path, band=band, vertical_unit=vertical_unit, crs=crs)
     plan = plan_outlets(grid, outlets, connectivity=connectivity)
-    flood = run_pipeline(RasterSource(grid, plan), executor=executor, store=tiles,
+    flood = run_pipeline(RasterTiles(grid, plan), executor=executor, store=tiles,
                          tile_size=tile, connectivity=connectivity, row_areas=grid.row_areas,
                          transform=grid.transform, progress=progress,
                          check_outlets=lambda counts, all_valid: plan.check(

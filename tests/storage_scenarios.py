@@ -1,4 +1,4 @@
-"""Storage scenarios of tests/test_web_crash.py: a full disk and a read-only data folder.
+"""Storage scenarios of tests/web/test_web_crash.py: a full disk and a read-only data folder.
 
 Each scenario mounts a real file system in a private mount namespace (the test
 runs this module under ``unshare -m --propagation private``, so the mounts

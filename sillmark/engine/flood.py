@@ -93,7 +93,7 @@ from sillmark.engine.depressions import (  # noqa: F401  (public through this mo
 )
 from sillmark.engine.executors import Executor, ThreadExecutor
 from sillmark.engine.pipeline import run_pipeline
-from sillmark.engine.sources import ArraySource
+from sillmark.engine.tile_inputs import ArrayTiles
 from sillmark.engine.plan import MAX_TILE_SIZE
 from sillmark.engine.stores import MemoryStore
 from sillmark.errors import (
@@ -313,7 +313,7 @@ def priority_flood(
     Notes
     -----
     This is the pipeline of :mod:`sillmark.engine.pipeline` on the arrays
-    (:class:`~sillmark.engine.pipeline.ArraySource`), by default on threads with
+    (:class:`~sillmark.engine.pipeline.ArrayTiles`), by default on threads with
     the tiles kept in memory.
 
     Memory: the result holds 9 bytes per cell (float32 onset stage, uint8 flood
@@ -370,7 +370,7 @@ def priority_flood(
     store = MemoryStore() if store is None else store
     try:
         flood = run_pipeline(
-            ArraySource(z, mask), executor=ThreadExecutor() if executor is None else executor,
+            ArrayTiles(z, mask), executor=ThreadExecutor() if executor is None else executor,
             store=store, tile_size=tile, connectivity=connectivity, row_areas=areas,
             transform=transform,
         )

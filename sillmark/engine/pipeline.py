@@ -5,8 +5,8 @@ is computed by a Priority-Flood (Barnes, Lehman & Mulla 2014) cut into square
 tiles after Barnes (2016), whatever runs the tiles and wherever they are kept:
 
 1. **Flood each tile** (:func:`flood_step`, one item per tile). The tile's
-   elevations and outlets come from a *source* (:class:`ArraySource`: arrays
-   in memory; :class:`RasterSource`: a DEM file read window by window, its
+   elevations and outlets come from a *source* (:class:`ArrayTiles`: arrays
+   in memory; :class:`RasterTiles`: a DEM file read window by window, its
    outlets marked per window). The tile is flooded from its own perimeter,
    every perimeter cell a seed with a label of its own; its arrays go to the
    store, and back comes a :class:`FloodedTile`: the seed count, the label
@@ -62,11 +62,11 @@ from sillmark.engine.depressions import (
 )
 from sillmark.engine.executors import Executor
 from sillmark.engine.plan import TilePlan
-from sillmark.engine.sources import ArraySource, RasterSource, TileInput  # noqa: F401
+from sillmark.engine.tile_inputs import ArrayTiles, RasterTiles, TileInput  # noqa: F401
 from sillmark.engine.stores import TileStore
 from sillmark.errors import InvalidDEM
 
-__all__ = ["ArraySource", "RasterSource", "TiledFlood", "run_pipeline"]
+__all__ = ["ArrayTiles", "RasterTiles", "TiledFlood", "run_pipeline"]
 
 #: ``progress(step, done, total)``; steps are "flood", "graph", "finish", "join", "totals".
 Progress = Callable[[str, int, int], None]
@@ -421,11 +421,11 @@ class TiledFlood:
     joined : JoinedDepressions
     valid_cells, unreached_cells, heap_pops : int
     outlet_cells : int
-        Outlet cells on valid data, counted for a :class:`RasterSource` (0 for
-        an :class:`ArraySource`, whose caller holds the mask).
+        Outlet cells on valid data, counted for a :class:`RasterTiles` (0 for
+        an :class:`ArrayTiles`, whose caller holds the mask).
     outlet_counts : int64 array or None
-        Per outlet source of a :class:`RasterSource`, cells marked and cells on
-        valid data (None for an :class:`ArraySource`).
+        Per outlet source of a :class:`RasterTiles`, cells marked and cells on
+        valid data (None for an :class:`ArrayTiles`).
     seconds : dict
         Wall time of each step; ``flood_tasks``, ``finish_tasks``: time the
         tile items took in all.
@@ -517,7 +517,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
 
     Parameters
     ----------
-    source : ArraySource or RasterSource
+    source : ArrayTiles or RasterTiles
     executor : Executor
         Runs steps 1 and 3 (one item per tile).
     store : TileStore
@@ -534,7 +534,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
         ``progress(step, done, total)``.
     check_outlets : callable, optional
         ``check_outlets(counts, all_valid)`` after step 1, with the summed
-        outlet counts of a :class:`RasterSource`.
+        outlet counts of a :class:`RasterTiles`.
 
     Returns
     -------
@@ -622,7 +622,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
         state[state == _tile_kernels.BLOCKED] = 0
         whole = {"onset_stage": grids["level"][1:-1, 1:-1], "depression_id": label[1:-1, 1:-1],
                  "flood_tree": state[1:-1, 1:-1]}
-        if isinstance(source, ArraySource):
+        if isinstance(source, ArrayTiles):
             whole["elevation"] = source.elevation
         blocks = [(0, rows)]
     for b, (r0, r1) in enumerate(blocks):

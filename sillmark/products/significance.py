@@ -78,7 +78,7 @@ DEFAULT_VERTICAL_ACCURACY_M = 0.10
 #: flat 200 x 200 sites with 3 cm noise, runs made while writing this module
 #: found 4 to 17 pools of 3 to 4 standard deviations each. Where the noise is
 #: close to the stated accuracy, an area threshold (``min_area_m2``) removes
-#: them (tests/test_significance.py shows it).
+#: them (tests/products/test_significance.py shows it).
 DEPTH_PER_ACCURACY = 3.0
 
 

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 
 from sillmark import SCREENING_CAUTION
-from tests.test_cli import assert_one_line_error, run_cli, write_dem
+from tests.cli.test_cli import assert_one_line_error, run_cli, write_dem
 
-# The grid of tests.test_cli: 5 m cells, north-west corner at (500000, 5000000),
+# The grid of tests.cli.test_cli: 5 m cells, north-west corner at (500000, 5000000),
 # so the centre of cell (row, col) is x = 500002.5 + 5 col, y = 4999997.5 - 5 row.
 
 

@@ -19,11 +19,11 @@ import pytest
 from sillmark.engine.executors import SerialExecutor, ThreadExecutor, dask_executor
 from sillmark.engine.flood import priority_flood
 from sillmark.engine.pipeline import run_pipeline
-from sillmark.engine.sources import ArraySource
+from sillmark.engine.tile_inputs import ArrayTiles
 from sillmark.engine.stores import FileStore, MemoryStore
 from sillmark.errors import InvalidParameter
 from tests.loopback import loopback_cluster
-from tests.test_flood import synthetic_terrain
+from tests.engine.test_flood import synthetic_terrain
 from tests.textbook_flood import minimax_stage
 
 TILE = 7
@@ -105,7 +105,7 @@ def test_layers_read_by_rows_from_a_file_store_equal_the_whole_result(site, tmp_
     whole = flood(site, SerialExecutor(), MemoryStore())
     store = FileStore(tmp_path)
     try:
-        result = run_pipeline(ArraySource(z, mask), executor=SerialExecutor(), store=store,
+        result = run_pipeline(ArrayTiles(z, mask), executor=SerialExecutor(), store=store,
                               tile_size=TILE)
         for layer, expected in (("onset_stage", whole.onset_stage),
                                 ("flood_tree", whole.flood_tree),

@@ -294,7 +294,7 @@ def test_kernel_runs_with_bounds_checking(tmp_path):
     import sys
     from pathlib import Path
 
-    root = Path(__file__).resolve().parents[1]
+    root = Path(__file__).resolve().parents[2]
     script = (
         "import numpy as np\n"
         "from sillmark.engine.flood import priority_flood\n"

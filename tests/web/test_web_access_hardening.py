@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import pytest
 
-from tests.test_web_access import EDITOR_SECRET, VIEWER_SECRET, Visitor
+from tests.web.test_web_access import EDITOR_SECRET, VIEWER_SECRET, Visitor
 from tests.web_support import analysed_site, make_app, write_lowbank
 
 

@@ -403,7 +403,7 @@ def test_print_page_has_level_unit_date_scale_north_legend_and_caution(ready):
     assert 'id="legend"' in html
     assert html.count(SCREENING_CAUTION) >= 1 and "sheet-caution" in html
     assert "print.css" in html
-    css = (__import__("pathlib").Path(__file__).resolve().parents[1] / "sillmark/web/static/css/print.css").read_text()
+    css = (__import__("pathlib").Path(__file__).resolve().parents[2] / "sillmark/web/static/css/print.css").read_text()
     assert "@media print" in css and "size: A4 landscape" in css
 
 

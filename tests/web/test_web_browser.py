@@ -22,7 +22,7 @@ import pytest
 
 from tests.web_support import make_app
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 ARTIFACTS = ROOT / "test-artifacts"
 CHROMIUM = "/usr/bin/chromium"
 LAUNCH_ARGS = [

@@ -1,5 +1,5 @@
 """The CRS chooser and the vertical datum in a real browser (Playwright driving Debian's
-Chromium, as in tests/test_web_browser.py): a DEM without a CRS is given one by
+Chromium, as in tests/web/test_web_browser.py): a DEM without a CRS is given one by
 searching, uploaded, confirmed with a datum, and the map page shows levels above it."""
 
 from __future__ import annotations
@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 
 from tests.rasters import write_raster
-from tests.test_web_browser import CHROMIUM, LAUNCH_ARGS, sync_playwright
+from tests.web.test_web_browser import CHROMIUM, LAUNCH_ARGS, sync_playwright
 from tests.web_support import TRANSFORM, lowbank_elevation, make_app
 
 pytestmark = [pytest.mark.browser]

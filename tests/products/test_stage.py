@@ -26,7 +26,7 @@ from sillmark.products.stage import (
 from sillmark.grid.dem import dem_from_array
 from sillmark.products.source import ArraySource
 from sillmark.units import VerticalUnit
-from tests.test_flood import edge_mask, grid
+from tests.engine.test_flood import edge_mask, grid
 
 #: A lon/lat grid of 0.001 degree cells near 50 N: true cell areas, which differ row by row.
 LONLAT = Affine(0.001, 0.0, 10.0, 0.0, -0.001, 50.0)
@@ -37,7 +37,7 @@ def lonlat_source(result) -> ArraySource:
     return ArraySource(dem_from_array(result.elevation, transform=LONLAT, crs="EPSG:4326"), result)
 
 # River (edge cells at 1, left) | ridge at 6 (col 3) | low ground at 2-3, as in
-# tests/test_flood.py.
+# tests/engine/test_flood.py.
 RIDGE = [
     [9, 9, 9, 9, 9, 9, 9],
     [1, 1, 1, 6, 3, 3, 9],

@@ -15,7 +15,7 @@ from sillmark import SCREENING_CAUTION
 from tests.web_support import external_references, make_app
 from sillmark.web import CONTENT_SECURITY_POLICY, config as web_config
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def test_config_is_defaults_then_instance_file_then_test_dict(tmp_path):

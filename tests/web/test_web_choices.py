@@ -3,7 +3,6 @@ vertical datum kept with the site and shown beside every level, unit names in wo
 
 from __future__ import annotations
 
-import io
 import re
 import sqlite3
 

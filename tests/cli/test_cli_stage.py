@@ -11,7 +11,7 @@ import rasterio
 
 from sillmark import SCREENING_CAUTION
 from sillmark.products.stage import water_level_map
-from tests.test_cli import SITE, assert_one_line_error, run_cli, write_dem
+from tests.cli.test_cli import SITE, assert_one_line_error, run_cli, write_dem
 
 #: Files of one level, with {h} the level's label.
 LEVEL_FILES = ("depth_{h}.tif", "water_state_{h}.tif", "flood_extent_{h}.geojson",

@@ -18,7 +18,7 @@ from sillmark import __version__
 from sillmark.cli import main
 
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 #: 5 m cells in UTM zone 33N (invented site).
 SITE = Affine(5.0, 0.0, 500_000.0, 0.0, -5.0, 5_000_000.0)
 

@@ -46,7 +46,7 @@ from sillmark.engine.flood import analyse_site
 from sillmark.grid.outlets import Outlets, build_outlets
 from tests.textbook_flood import minimax_stage
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 DEMO = REPO / "demo_dem"
 UTM33 = "EPSG:32633"
 

@@ -16,7 +16,7 @@ from sillmark.web import render
 
 pytestmark = pytest.mark.slow
 
-ROOT = Path(__file__).resolve().parent.parent
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def load_bench():

@@ -36,8 +36,8 @@ from sillmark.products.hierarchy_windows import hierarchy_batches
 from sillmark.products.source import ArraySource
 from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
-from tests.test_flood import synthetic_terrain
-from tests.test_hierarchy import THREE_LEVELS
+from tests.engine.test_flood import synthetic_terrain
+from tests.products.test_hierarchy import THREE_LEVELS
 
 def in_memory(path, *, specs=("edge",), connectivity=8):
     """The DEM and the in-memory result as an array source."""
@@ -122,7 +122,7 @@ def test_four_neighbour_connectivity(terrain_tif, tmp_path):
 
 @pytest.mark.parametrize("connectivity", [8, 4])
 def test_hand_worked_three_levels_of_nesting(tmp_path, connectivity):
-    # tests/test_hierarchy.py works this DEM by hand: pits A, B meet at 4 (AB),
+    # tests/products/test_hierarchy.py works this DEM by hand: pits A, B meet at 4 (AB),
     # AB and C meet at 6, the top spills over (2, 7) at 7, volumes 6, 2, 17, 4, 29.
     path = write_raster(tmp_path / "three.tif", np.array(THREE_LEVELS, dtype=np.float32))
     check(path, tmp_path, connectivity=connectivity, tiles=(1, 2, 3), budgets=(1, 1 << 24))
@@ -135,7 +135,7 @@ def test_hand_worked_three_levels_of_nesting(tmp_path, connectivity):
 
 
 def test_several_hand_worked_sites_side_by_side(tmp_path):
-    # Three trenches of tests/test_hierarchy.py in one DEM, apart from each other:
+    # Three trenches of tests/products/test_hierarchy.py in one DEM, apart from each other:
     # three pools meeting at one level (one node with three children), a plateau pit
     # and a flat saddle, and the three-level nest; small budgets cut them apart.
     # Each trench ends in its low outlet on the right edge of the grid.
@@ -362,7 +362,7 @@ def test_a_folder_in_small_windows_on_a_cluster_gives_the_in_memory_files(cluste
 
 def test_batch_kernels_compiled_and_plain_python_agree(terrain_tif, tmp_path):
     # The compiled batch cutter against its own plain-Python loop (the same source
-    # run by the interpreter). tests/test_kernels_boundscheck.py runs both kernels
+    # run by the interpreter). tests/engine/test_kernels_boundscheck.py runs both kernels
     # of sillmark.products._hierarchy_windows_kernels once more with numba's index checks on.
     from sillmark.products import _hierarchy_windows_kernels as kernels
     from sillmark.products.hierarchy_windows import bounding_boxes

@@ -35,7 +35,7 @@ from sillmark.run import TILED_FILE_NAMES
 from tests.loopback import analyse_on_tiles
 from tests.loopback import loopback_cluster
 from tests.rasters import write_raster
-from tests.test_flood import TWIN_BOWLS, synthetic_terrain
+from tests.engine.test_flood import TWIN_BOWLS, synthetic_terrain
 
 UTM33_MEMBER = {"type": "name", "properties": {"name": "EPSG:32633"}}
 #: Columns of the depression table that do not depend on the tile size.

@@ -38,8 +38,8 @@ from sillmark.products.outlines import depression_outlines
 from sillmark.products.source import ArraySource
 from tests.loopback import loopback_cluster
 from tests.rasters import grid, write_raster
-from tests.test_flood import synthetic_terrain
-from tests.test_tiled import in_memory
+from tests.engine.test_flood import synthetic_terrain
+from tests.engine.test_tiled import in_memory
 
 
 def run_tiled(path, out, *, specs=("edge",), connectivity=8, tile=16):
@@ -381,14 +381,14 @@ print("bounds ok")
 
 @pytest.mark.slow
 def test_stage_kernel_runs_clean_with_bounds_checking(tmp_path):
-    # As tests/test_kernels_boundscheck.py: a fresh interpreter, an empty numba
+    # As tests/engine/test_kernels_boundscheck.py: a fresh interpreter, an empty numba
     # cache and NUMBA_BOUNDSCHECK=1, so a stray index raises IndexError.
     import os
     import subprocess
     import sys
     from pathlib import Path
 
-    root = Path(__file__).resolve().parents[1]
+    root = Path(__file__).resolve().parents[2]
     env = dict(os.environ)
     env["NUMBA_BOUNDSCHECK"] = "1"
     env["NUMBA_CACHE_DIR"] = str(tmp_path / "numba-cache")

@@ -1,7 +1,7 @@
 """More hostile cases: each gets a clear 4xx, no traceback and no server path in
 the answer, the server keeps answering, and the stored site is unchanged.
 
-Uses the shared analysed Lowbank site of tests/test_web_hostile.py (invented).
+Uses the shared analysed Lowbank site of tests/web/test_web_hostile.py (invented).
 """
 
 from __future__ import annotations
@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from affine import Affine
 
-from tests.test_web_hostile import (baseline, check_refusal, leftovers, stored_state,  # noqa: F401
+from tests.web.test_web_hostile import (baseline, check_refusal, leftovers, stored_state,  # noqa: F401
                                     still_serving, tif_bytes, world)
-from tests.test_web_hardening import LOCAL_GRID
+from tests.web.test_web_hardening import LOCAL_GRID
 
 
 def raw_upload(client, body: bytes, name: str):

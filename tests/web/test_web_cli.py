@@ -15,7 +15,7 @@ from sillmark.cli import main
 from tests.web_support import Client, cell_centre, lonlat, write_lowbank
 from sillmark.web import config as web_config
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def test_serve_help_lists_host_port_and_data(capsys):
@@ -78,7 +78,7 @@ def test_serve_starts_waitress_on_localhost_with_the_demo(monkeypatch, capsys, t
 
 
 def test_serve_warns_when_listening_beyond_this_machine(monkeypatch, capsys, tmp_path):
-    """With an editor secret it starts (the refusal without one: tests/test_web_access.py)."""
+    """With an editor secret it starts (the refusal without one: tests/web/test_web_access.py)."""
     import waitress
 
     monkeypatch.setattr(waitress, "serve", lambda app, **o: None)

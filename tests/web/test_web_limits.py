@@ -5,7 +5,7 @@ processes that outlive their server.
 Sites are the small invented ones of tests/web_support.py, and a large
 invented one written here (a flat 60-million-cell plain that compresses to a
 few hundred KB); the full disk is a small tmpfs in a private mount namespace
-(tests/storage_scenarios.py, as in tests/test_web_crash.py).
+(tests/storage_scenarios.py, as in tests/web/test_web_crash.py).
 """
 
 from __future__ import annotations
@@ -22,14 +22,14 @@ from pathlib import Path
 
 import pytest
 
-from tests.test_web_crash import (KILL_PHASE, free_port, harrowmere_tif, needs_mounts, run_row,  # noqa: F401
+from tests.web.test_web_crash import (KILL_PHASE, free_port, harrowmere_tif, needs_mounts, run_row,  # noqa: F401
                                    scenario, wait_for)
 from tests.web_support import Client, analysed_site, make_app
 from sillmark.web import db, layout
 from sillmark.web.jobs import REQUEUED_PHASE, _pid_alive
 from sillmark.web.exports import folder_bytes
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 # --------------------------------------------------------------------------- level exports on disk

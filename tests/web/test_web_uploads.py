@@ -206,7 +206,7 @@ def test_asset_upload_replaces_the_active_set_and_a_bad_one_keeps_it(fresh, lowb
     assert listed["source"]["name"] == "assets.csv" and len(listed["assets"]) == 4
     geo = {"type": "FeatureCollection", "features": [
         {"type": "Feature", "properties": {"name": "Gauge"},
-         # On the DEM (a table none of whose points is on it is refused: tests/test_web_hostile.py).
+         # On the DEM (a table none of whose points is on it is refused: tests/web/test_web_hostile.py).
          "geometry": {"type": "Point", "coordinates": [15.00116, 45.15338]}}]}
     r = client.post(url, data=json.dumps(geo).encode(), headers={
         "Content-Type": "application/octet-stream", "X-File-Name": "gauges.geojson"})

@@ -27,7 +27,7 @@ import pytest
 from tests.servers import serving
 from tests.web_support import Client, analysed_site, cell_centre, lonlat, make_app
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 #: What the site page asks for as soon as it opens, plus the other data endpoints.
 FIRST_REQUESTS = (

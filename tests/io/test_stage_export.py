@@ -38,9 +38,9 @@ from sillmark.products.stage import (
 )
 from sillmark.units import ACRE_FOOT_M3
 from sillmark import __version__
-from tests.test_export import UTM33, polygons_of, read_csv, run, signed_area, site_elevation
+from tests.io.test_export import UTM33, polygons_of, read_csv, run, signed_area, site_elevation
 
-#: Levels on the invented site of tests/test_export.py (edge at 15 m, plateau 20 m,
+#: Levels on the invented site of tests/io/test_export.py (edge at 15 m, plateau 20 m,
 #: a 12 m bowl round a 25 m island, a pair of 10 m corner cells, an 18 m pit):
 #: 14 m floods nothing (below the edge) but two depressions hold shielded ground;
 #: 18.5 m floods the edge ring and leaves all three depressions cut off;
@@ -233,7 +233,7 @@ def test_outline_properties_carry_level_unit_class_totals_and_caution(site, writ
 def test_outline_areas_on_the_ellipsoid_match_the_map(site, written):
     """Geodesic area of each outline against the map's (grid) area.
 
-    The same reasoning as tests/test_export.py,
+    The same reasoning as tests/io/test_export.py,
     ``test_polygon_areas_on_the_ellipsoid_match_the_table``: on this UTM site,
     near the central meridian, ellipsoidal area = grid area / k0² (Transverse
     Mercator is conformal, area scale = k²; Snyder 1987, USGS Professional Paper
@@ -265,7 +265,7 @@ def test_outline_areas_on_the_ellipsoid_match_the_map(site, written):
 
 def test_outline_areas_match_the_map_on_a_geographic_dem(tmp_path):
     """Lon/lat DEM: the map's cell areas and the outline areas are both on the
-    WGS84 ellipsoid; as in tests/test_export.py they agree to 1e-6."""
+    WGS84 ellipsoid; as in tests/io/test_export.py they agree to 1e-6."""
     transform = Affine(1e-4, 0.0, 15.0, 0.0, -1e-4, 45.0)
     dem, _, result = run(site_elevation(), transform=transform, crs="EPSG:4326")
     m = water_level_map(result, 18.5, row_areas=dem.row_areas)

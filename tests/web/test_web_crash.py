@@ -33,7 +33,7 @@ from sillmark.web.jobs import INTERRUPTED_PHASE, REQUEUED_PHASE, JobRunner, _pid
 
 pytestmark = pytest.mark.slow
 
-ROOT = Path(__file__).resolve().parent.parent
+ROOT = Path(__file__).resolve().parents[2]
 SLOW_SIDE = 1600
 #: The phase in which the worker is killed: several result files are written then.
 KILL_PHASE = "writing result files"

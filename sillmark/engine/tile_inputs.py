@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["ArraySource", "RasterSource", "TileInput"]
+__all__ = ["ArrayTiles", "RasterTiles", "TileInput"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -44,7 +44,7 @@ class TileInput:
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
-class ArraySource:
+class ArrayTiles:
     """Elevations (float32, NaN nodata) and a boolean outlet mask held in memory.
 
     The caller has validated both (:func:`sillmark.engine.flood.priority_flood`);
@@ -63,7 +63,7 @@ class ArraySource:
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
-class RasterSource:
+class RasterTiles:
     """A DEM file read window by window, its outlets marked per window.
 
     ``grid`` is a :class:`sillmark.grid.dem.DEMGrid` and ``outlets`` an
