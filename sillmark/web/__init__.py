@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+import re
 import secrets
 from pathlib import Path
 
@@ -225,8 +226,8 @@ def _install_handlers(app: Flask) -> None:
 
     @app.errorhandler(SillmarkError)
     def sillmark_error(exc: SillmarkError):
-        return _error(error_status(exc), " ".join(str(exc).split()),
-                      getattr(exc, "details", None))
+        message = without_server_paths(" ".join(str(exc).split()), services().data_dir)
+        return _error(error_status(exc), message, getattr(exc, "details", None))
 
     @app.errorhandler(RequestEntityTooLarge)
     def too_large(_exc):
@@ -242,6 +243,27 @@ def _install_handlers(app: Flask) -> None:
     def internal_error(exc: Exception):  # pragma: no cover - exercised only by bugs
         log.exception("unhandled error on %s", request.path)
         return _error(500, "something went wrong inside Sillmark; the details are in the server log")
+
+
+def without_server_paths(message: str, data_dir: Path) -> str:
+    """``message`` with the server's own folders named in words, never as paths.
+
+    The command line names the data folder so that an operator can find it;
+    a web answer must not tell a visitor how the server's disk is laid out.
+
+    Examples
+    --------
+    >>> without_server_paths("the disk holding Sillmark's data folder (/srv) is full", Path("/srv/data"))
+    "the disk holding Sillmark's data folder is full"
+    >>> without_server_paths("cannot write to /srv/data/sites/3", Path("/srv/data"))
+    'cannot write to the data folder'
+    """
+    folder, parent = str(Path(data_dir).resolve()), str(Path(data_dir).resolve().parent)
+    for path in (folder, str(data_dir), parent, str(Path(data_dir).parent)):
+        if len(path) > 1:
+            message = message.replace(f" ({path})", "")
+            message = re.sub(re.escape(path) + r"[^\s'\"),;]*", "the data folder", message)
+    return message
 
 
 def _error(status: int, message: str, details: dict | None = None):

@@ -512,6 +512,7 @@ def test_an_upload_to_a_full_disk_is_refused_with_a_message(tmp_path):
     got = scenario("full-disk-upload", tmp_path)
     assert got["left_in_uploads"] == []
     assert got["status"] < 500 and "full" in got["error"], got
+    assert str(tmp_path) not in got["error"] and "/" not in got["error"], got  # no server path
 
 
 @needs_mounts
