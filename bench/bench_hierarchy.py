@@ -4,7 +4,7 @@ On the synthetic terrain of bench/bench_engine.py, times, in one process:
 - the spill engine (sillmark.engine.flood.priority_flood: onset stage, flood tree,
   depression table);
 - the depression hierarchy with the stage curves of every node
-  (sillmark.products.hierarchy.depression_hierarchy), from the engine's result;
+  (sillmark.products.hierarchy_sweep.depression_hierarchy), from the engine's result;
 - evaluating every node's curve at its spill and merge levels (curve_at);
 and prints the best times and the ratio hierarchy / engine.
 
@@ -40,7 +40,7 @@ def best_of(repeat: int, run):
 
 def main(argv=None) -> int:
     from sillmark.engine.flood import priority_flood
-    from sillmark.products.hierarchy import depression_hierarchy
+    from sillmark.products.hierarchy_sweep import depression_hierarchy
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--size", type=int, default=2000, help="terrain is SIZE x SIZE cells")

@@ -2,7 +2,7 @@
 
 On fractal relief with centimetre noise (bench/terrain.py), times, in one process:
 - the spill engine (sillmark.engine.flood.priority_flood);
-- the depression hierarchy (sillmark.products.hierarchy.depression_hierarchy);
+- the depression hierarchy (sillmark.products.hierarchy_sweep.depression_hierarchy);
 - significance (sillmark.products.significance.significance) and its cell raster;
 and prints the node counts with and without the noise, how many depressions are
 significant, and the ratio of the significance step to the engine.
@@ -50,7 +50,7 @@ def main(argv=None) -> None:
     a = p.parse_args(argv)
 
     from sillmark.engine.flood import priority_flood
-    from sillmark.products.hierarchy import depression_hierarchy
+    from sillmark.products.hierarchy_sweep import depression_hierarchy
     from sillmark.products.significance import significance, site_minimum
 
     n = a.size

@@ -73,14 +73,14 @@ def main(argv=None) -> int:
 
     curves_s = None
     try:
-        from sillmark.products import hierarchy
+        from sillmark.products import hierarchy, hierarchy_sweep
     except ImportError:
         hierarchy = None
     if hierarchy is not None and hasattr(hierarchy, "depression_hierarchy"):
-        hierarchy.depression_hierarchy(r_small)
+        hierarchy_sweep.depression_hierarchy(r_small)
         curves_s, _ = best_of(
             max(1, args.repeat // 2),
-            lambda: hierarchy.depression_hierarchy(result, row_areas=areas),
+            lambda: hierarchy_sweep.depression_hierarchy(result, row_areas=areas),
         )
 
     print(f"terrain {args.size} x {args.size} ({z.size / 1e6:.1f} Mcells), "

@@ -11,7 +11,7 @@ folder, runs the tiled engine on it once, then in fresh processes:
 - in memory: read the DEM, flood it, then
   :func:`sillmark.io.hierarchy_writer.write_hierarchy_files` on the result as an
   :class:`~sillmark.products.source.ArraySource` (only this timed; the time of
-  :func:`sillmark.products.hierarchy.site_hierarchy` alone is printed beside it).
+  :func:`sillmark.products.hierarchy_sweep.site_hierarchy` alone is printed beside it).
 
 Prints wall times, each process's peak resident memory (VmHWM) and whether the
 three files are the same bytes.
@@ -55,7 +55,7 @@ def in_memory(dem_path: str, out: str) -> dict:
     from sillmark.grid.dem import read_dem
     from sillmark.engine.flood import analyse_site
     from sillmark.io.hierarchy_writer import write_hierarchy_files
-    from sillmark.products.hierarchy import site_hierarchy
+    from sillmark.products.hierarchy_sweep import site_hierarchy
     from sillmark.products.source import ArraySource
     from sillmark.grid.outlets import build_outlets
 

@@ -123,7 +123,7 @@ _FLOAT32_FIELDS = ("pit_elevation", "merge_elevation", "spill_elevation", "max_d
 def _check(hierarchy: DepressionHierarchy, dem: "DEM") -> VerticalUnit:
     if not isinstance(hierarchy, DepressionHierarchy):
         raise InvalidParameter(
-            f"expected a DepressionHierarchy from sillmark.products.hierarchy.site_hierarchy(), not "
+            f"expected a DepressionHierarchy from sillmark.products.hierarchy_sweep.site_hierarchy(), not "
             f"{type(hierarchy).__name__}"
         )
     if tuple(hierarchy.shape) != tuple(dem.shape):

@@ -70,7 +70,8 @@ import numpy as np
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_crs
 from sillmark.io import hierarchy_files as hx
-from sillmark.products.hierarchy import HierarchyTable, _hierarchy_of_cells
+from sillmark.products.hierarchy import HierarchyTable
+from sillmark.products.hierarchy_sweep import hierarchy_of_cells
 from sillmark.products.hierarchy_windows import (
     DEFAULT_WINDOW_CELLS,
     batch_hierarchy,
@@ -246,7 +247,7 @@ def _serial_batches(job: _Job, calls: list, placed: Any, report) -> list[dict]:
 def _empty_hierarchy(job: _Job):
     """The hierarchy of a window without depressions (for the files' headers)."""
     empty = np.empty(0, dtype=np.int64)
-    return _hierarchy_of_cells(
+    return hierarchy_of_cells(
         np.zeros((1, 1), np.float32), np.zeros((1, 1), np.int32), np.empty(0, np.float32),
         empty, empty, connectivity=job.connectivity, areas=np.ones(1),
         unit=VerticalUnit.parse(job.unit), transform=job.transform,

@@ -1,6 +1,6 @@
 """Compiled loops of the depression hierarchy (private; see :mod:`sillmark.products.hierarchy`).
 
-The kernels trust their inputs: :func:`sillmark.products.hierarchy.depression_hierarchy`
+The kernels trust their inputs: :func:`sillmark.products.hierarchy_sweep.depression_hierarchy`
 selects the depression cells, sorts them, pads the grid and checks every
 precondition before calling them. Each loop is a plain Python function compiled
 once at the bottom of the module, so the same code runs with

@@ -1,7 +1,7 @@
 """The depression hierarchy in windows of consecutive depressions, read from a result source.
 
 The hierarchy (Barnes, Callaghan & Wickert 2020; built by
-:func:`sillmark.products.hierarchy.depression_hierarchy`) is a forest with one
+:func:`sillmark.products.hierarchy_sweep.depression_hierarchy`) is a forest with one
 tree per depression of the spill engine, and each tree depends on that
 depression's cells only: the sweep visits the cells of each depression on
 their own (ascending elevation, then row-major order), two pools merge where
@@ -24,7 +24,7 @@ So the hierarchy of a site is built in *batches*:
    depressions' cells set to 0, the batch's renumbered 1..k in order).
 
 A result in memory whose depressions fit the budget is one batch: one window,
-the same arrays the whole-grid :func:`~sillmark.products.hierarchy.site_hierarchy`
+the same arrays the whole-grid :func:`~sillmark.products.hierarchy_sweep.site_hierarchy`
 reads. :mod:`sillmark.io.hierarchy_writer` writes the files from the batches.
 
 Memory
@@ -32,7 +32,7 @@ Memory
 A batch holds its window: about 13 bytes per window cell (elevation, ids, a
 mask, the sweep's 4-byte rank per cell) plus about 130 bytes per depression
 cell while its hierarchy is built (see
-:func:`sillmark.products.hierarchy.depression_hierarchy`). A single
+:func:`sillmark.products.hierarchy_sweep.depression_hierarchy`). A single
 depression whose bounding box is larger than the budget is one batch anyway:
 its whole box must fit in one process (about 143 bytes per cell of the box at
 worst). The bounding boxes take 32 bytes a depression.
@@ -56,7 +56,8 @@ import numpy as np
 
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.products import _hierarchy_windows_kernels
-from sillmark.products.hierarchy import DepressionHierarchy, _hierarchy_of_cells
+from sillmark.products.hierarchy import DepressionHierarchy
+from sillmark.products.hierarchy_sweep import hierarchy_of_cells
 from sillmark.units import VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -208,7 +209,7 @@ def batch_hierarchy(
             "the analysis; run the analysis again"
         )
     del mine
-    hierarchy = _hierarchy_of_cells(
+    hierarchy = hierarchy_of_cells(
         z, local, np.asarray(spill_elevation, dtype=np.float32), spill_row, spill_col,
         connectivity=int(connectivity), areas=np.ascontiguousarray(areas, dtype=np.float64),
         unit=unit, transform=transform, origin=(r0, c0),

@@ -300,8 +300,8 @@ def significance(
     Parameters
     ----------
     hierarchy : DepressionHierarchy
-        From :func:`sillmark.products.hierarchy.depression_hierarchy` or
-        :func:`~sillmark.products.hierarchy.site_hierarchy`.
+        From :func:`sillmark.products.hierarchy_sweep.depression_hierarchy` or
+        :func:`~sillmark.products.hierarchy_sweep.site_hierarchy`.
     minimum : SiteMinimum, optional
         From :func:`site_minimum`; default ``site_minimum(unit=hierarchy.unit)``
         (the default vertical accuracy). Its unit must be the hierarchy's.
@@ -331,7 +331,7 @@ def significance(
 
     >>> import numpy as np
     >>> from sillmark.engine.flood import priority_flood
-    >>> from sillmark.products.hierarchy import depression_hierarchy
+    >>> from sillmark.products.hierarchy_sweep import depression_hierarchy
     >>> z = np.full((3, 7), 9, np.float32); z[1] = [9, 0, 5, 4.9, 7, 1, 9]
     >>> edge = np.zeros(z.shape, bool); edge[1, 5] = True
     >>> h = depression_hierarchy(priority_flood(z, edge))
@@ -344,7 +344,7 @@ def significance(
     if not isinstance(hierarchy, DepressionHierarchy):
         raise InvalidParameter(
             f"expected a DepressionHierarchy, not {type(hierarchy).__name__}; "
-            "run sillmark.products.hierarchy.depression_hierarchy first"
+            "run sillmark.products.hierarchy_sweep.depression_hierarchy first"
         )
     if minimum is None:
         minimum = site_minimum(unit=hierarchy.unit)

@@ -31,7 +31,7 @@ from sillmark.grid.assets import read_assets
 from sillmark.grid.crs import LonLatTransformer
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets
-from sillmark.products.hierarchy import site_hierarchy
+from sillmark.products.hierarchy_sweep import site_hierarchy
 from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
     DEPRESSION_CUT_OFF,

@@ -28,7 +28,7 @@ SCRIPT = textwrap.dedent(
     from sillmark.grid.dem import dem_from_array
     from sillmark.products.source import ArraySource
     from sillmark.products.stage import stage_table, water_level_map
-    from sillmark.products.hierarchy import depression_hierarchy
+    from sillmark.products.hierarchy_sweep import depression_hierarchy
 
     rng = np.random.default_rng(5)
     for shape, conn, tile in [((23, 31), 8, 4), ((17, 9), 4, 3), ((1, 12), 8, 5), ((9, 1), 4, 2)]:

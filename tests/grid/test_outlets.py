@@ -14,8 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidOutlets, InvalidParameter
+from sillmark.grid.dem import dem_from_array
 from sillmark.grid.outlets import (
     Outlets,
     build_outlets,
@@ -24,7 +24,7 @@ from sillmark.grid.outlets import (
     outlets_from_geojson,
     outlets_from_raster,
 )
-from tests.rasters import NORTH, UTM33, WEST, grid
+from tests.rasters import NORTH, WEST, grid
 
 UTM33_MEMBER = {"type": "name", "properties": {"name": "EPSG:32633"}}
 

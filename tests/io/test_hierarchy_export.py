@@ -17,7 +17,7 @@ from sillmark.io.summary import FILE_NAMES
 from sillmark.io.export import write_results
 from sillmark.io.hierarchy_writer import write_hierarchy_files
 from sillmark.engine.flood import analyse_site
-from sillmark.products.hierarchy import site_hierarchy
+from sillmark.products.hierarchy_sweep import site_hierarchy
 from sillmark.products.source import ArraySource
 from sillmark.grid.outlets import build_outlets
 from sillmark.units import ACRE_FOOT_M3

@@ -4,7 +4,7 @@ The reference is Sillmark's own in-memory path on the same DEM and outlets:
 :func:`sillmark.engine.flood.priority_flood` and
 :func:`sillmark.io.hierarchy_writer.write_hierarchy_files` on an
 :class:`~sillmark.products.source.ArraySource`, one window of the whole grid,
-whose hierarchy is :func:`sillmark.products.hierarchy.site_hierarchy` (checked
+whose hierarchy is :func:`sillmark.products.hierarchy_sweep.site_hierarchy` (checked
 elsewhere against hand-worked DEMs, a separate basin construction after Barnes,
 Callaghan & Wickert 2020, and closed-form volumes; its JSON against
 ``to_json`` below). The three files written from a tiled folder, window of
@@ -29,7 +29,7 @@ from sillmark.io.results_folder import add_hierarchy_files, open_result_folder
 from sillmark.grid.dem import read_dem
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.engine.flood import priority_flood
-from sillmark.products.hierarchy import site_hierarchy
+from sillmark.products.hierarchy_sweep import site_hierarchy
 from sillmark.grid.outlets import build_outlets
 from tests.loopback import analyse_on_tiles
 from sillmark.products.hierarchy_windows import hierarchy_batches

@@ -38,7 +38,7 @@ from sillmark.products import _hierarchy_kernels as kernels
 from sillmark.grid.dem import dem_from_array
 from sillmark.errors import InvalidParameter, SillmarkError
 from sillmark.engine.flood import priority_flood
-from sillmark.products.hierarchy import depression_hierarchy, site_hierarchy
+from sillmark.products.hierarchy_sweep import depression_hierarchy, site_hierarchy
 from sillmark.units import VerticalUnit
 from tests.textbook_flood import EIGHT, FOUR, components
 

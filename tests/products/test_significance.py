@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from bench.terrain import carve_bowl, survey_terrain
 from sillmark.engine.flood import priority_flood
 from sillmark.errors import InvalidParameter, SillmarkError
-from sillmark.products.hierarchy import depression_hierarchy
+from sillmark.products.hierarchy_sweep import depression_hierarchy
 from sillmark.products.significance import (
     DEFAULT_VERTICAL_ACCURACY_M,
     DEPTH_PER_ACCURACY,
