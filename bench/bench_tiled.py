@@ -201,7 +201,7 @@ def check_crop(crop_path: Path, out: Path, run_map, tile: int) -> dict:
 def all_files(run, dem_path: Path, out: Path, run_map, engine_wall: float) -> dict:
     """The outlines and the hierarchy files after the engine, as ``analyse --tiles``
     writes them; times, sizes and the rate over everything."""
-    from sillmark.grid.dem import read_dem_grid
+    from sillmark.grid.dem_grid import read_dem_grid
     from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 
     grid = read_dem_grid(dem_path)

@@ -40,7 +40,7 @@ def _peak_mib() -> float:
 
 
 def out_of_core(folder: str, window_cells: int) -> dict:
-    from sillmark.grid.dem import read_dem_grid
+    from sillmark.grid.dem_grid import read_dem_grid
     from sillmark.io.summary import read_summary
     from sillmark.io.results_folder import add_hierarchy_files
 

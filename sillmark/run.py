@@ -57,7 +57,8 @@ from sillmark.engine.plan import TilePlan
 from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.engine.stores import FileStore, MemoryStore
 from sillmark.errors import InvalidParameter
-from sillmark.grid.dem import DEM, read_dem_grid
+from sillmark.grid.dem import DEM
+from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.grid.outlets import Outlets, build_outlets, plan_outlets
 from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
@@ -174,7 +175,7 @@ def analyse(
         DEM file).
     connectivity : {8, 4}
     band, vertical_unit, crs
-        For a DEM file, as for :func:`sillmark.grid.dem.read_dem_grid`.
+        For a DEM file, as for :func:`sillmark.grid.dem_grid.read_dem_grid`.
     progress : callable, optional
         ``progress(step, done, total)``.
     derived : bool

@@ -66,7 +66,7 @@ class ArrayTiles:
 class RasterTiles:
     """A DEM file read window by window, its outlets marked per window.
 
-    ``grid`` is a :class:`sillmark.grid.dem.DEMGrid` and ``outlets`` an
+    ``grid`` is a :class:`sillmark.grid.dem_grid.DEMGrid` and ``outlets`` an
     :class:`sillmark.grid.outlets.OutletPlan`; both pickle small, so cluster
     tasks read their own windows. Each window is read with a one-cell halo
     (for outlets next to nodata).

@@ -21,47 +21,34 @@ import os
 from typing import Any
 
 import numpy as np
-import pyproj
-import rasterio
-import rasterio.windows
 from affine import Affine
 from rasterio._err import CPLE_BaseError
 from rasterio.crs import CRS
-from rasterio.enums import MaskFlags
 from rasterio.errors import RasterioError
-from rasterio.io import DatasetReader
 
 from sillmark.errors import (
     InvalidDEM,
     InvalidParameter,
-    LocationOutsideDEM,
 )
-from sillmark.grid.crs import crs_text
+from sillmark.grid.dem_grid import DEMGrid, band_header
 from sillmark.grid.elevations import check_plausible_heights, to_float32_elevation
 from sillmark.grid.georeference import (
     UNIT_FROM_ARGUMENT,
+    Georeferenced,
     check_geographic_extent,
     check_projected_on_earth,
-    choose_crs,
-    degrees_per_angular_unit,
-    geod_for,
-    geographic_row_areas,
-    horizontal_part,
-    linear_unit_metres,
     parse_crs,
     resolve_vertical_unit,
-    to_pyproj,
 )
 from sillmark.grid.raster_files import (
     check_north_up,
-    file_transform,
     gdal_reason,
     local_file,
     open_local_raster,
 )
 from sillmark.units import VerticalUnit
 
-__all__ = ["DEFAULT_MAX_CELLS", "DEM", "DEMGrid", "dem_from_array", "read_dem", "read_dem_grid"]
+__all__ = ["DEFAULT_MAX_CELLS", "DEM", "dem_from_array", "read_dem"]
 
 #: Largest grid :func:`read_dem` accepts unless told otherwise (20 000 × 20 000).
 DEFAULT_MAX_CELLS = 400_000_000
@@ -73,218 +60,8 @@ DEFAULT_TRANSFORM = Affine(1.0, 0.0, 500_000.0, 0.0, -1.0, 5_000_000.0)
 
 
 
-
-
-class _Georeferenced:
-    """Georeferencing shared by :class:`DEM` and :class:`DEMGrid`.
-
-    Needs ``shape``, ``transform`` and ``crs`` on the instance. The cached values
-    live in the instance ``__dict__`` (see :class:`DEM`).
-    """
-
-    @property
-    def rows(self) -> int:
-        return self.shape[0]
-
-    @property
-    def cols(self) -> int:
-        return self.shape[1]
-
-    def __setstate__(self, state: dict) -> None:
-        # Unpickling bypasses __post_init__: keep the arrays read-only.
-        self.__dict__.update(state)
-        for key in ("elevation", "valid", "row_areas"):
-            arr = state.get(key)
-            if isinstance(arr, np.ndarray):
-                arr.flags.writeable = False
-
-    # -- georeferencing --------------------------------------------------
-
-    @functools.cached_property
-    def _pyproj_crs(self) -> pyproj.CRS:
-        return to_pyproj(self.crs)
-
-    @functools.cached_property
-    def _horizontal(self) -> pyproj.CRS:
-        return horizontal_part(self._pyproj_crs, "the DEM")
-
-    @functools.cached_property
-    def _degrees_per_unit(self) -> float:
-        return degrees_per_angular_unit(self._horizontal)
-
-    @property
-    def horizontal_crs(self) -> pyproj.CRS:
-        """The horizontal part of :attr:`crs` as a :class:`pyproj.CRS` (2-D)."""
-        return self._horizontal
-
-    @functools.cached_property
-    def is_geographic(self) -> bool:
-        """True when the grid is in longitude/latitude."""
-        return bool(self._horizontal.is_geographic)
-
-    @property
-    def cell_size(self) -> tuple[float, float]:
-        """``(dx, dy)``: cell width and height in CRS units, both positive."""
-        return abs(self.transform.a), abs(self.transform.e)
-
-    @property
-    def bounds(self) -> tuple[float, float, float, float]:
-        """``(left, bottom, right, top)`` of the grid in CRS units."""
-        t = self.transform
-        left, top = t.c, t.f
-        return left, top + t.e * self.rows, left + t.a * self.cols, top
-
-    @functools.cached_property
-    def row_areas(self) -> np.ndarray:
-        """True area of one cell in each row, in m² (float64, shape ``(rows,)``, read-only).
-
-        Projected grids: ``|a · e|`` times the square of the CRS's linear unit in
-        metres (so US-survey-foot grids come out in m²); every row is the same.
-        The map projection's own scale error is not corrected (grid area, as is
-        common practice for site-sized DEMs).
-
-        Geographic grids: the area on the CRS's ellipsoid (WGS 84 if the CRS
-        names none) of the cell bounded by two meridians and two parallels,
-        computed with :meth:`pyproj.Geod.polygon_area_perimeter` (Karney 2013).
-        The parallel edges are split into pieces at most 0.001° wide so the
-        geodesic edges follow the parallels to about 1e-10 of the cell area.
-
-        References
-        ----------
-        C. F. F. Karney (2013), "Algorithms for geodesics", Journal of Geodesy
-        87, 43–55. https://doi.org/10.1007/s00190-012-0578-z
-        """
-        if self.is_geographic:
-            areas = geographic_row_areas(
-                self.transform, self.rows, self._degrees_per_unit, geod_for(self._horizontal)
-            )
-        else:
-            metres = linear_unit_metres(self._horizontal)
-            areas = np.full(self.rows, abs(self.transform.a * self.transform.e) * metres**2)
-        areas.flags.writeable = False
-        return areas
-
-    # -- coordinates -----------------------------------------------------
-
-    def xy(self, row: Any, col: Any) -> tuple[Any, Any]:
-        """Map coordinates of the centre of cell ``(row, col)``.
-
-        Parameters
-        ----------
-        row, col : int or array_like of int
-            Cell indices (numpy arrays broadcast together).
-
-        Returns
-        -------
-        x, y : float or numpy.ndarray
-            Floats for scalar input, float64 arrays otherwise.
-
-        Raises
-        ------
-        LocationOutsideDEM
-            If an index lies outside the grid.
-
-        Examples
-        --------
-        >>> dem = dem_from_array(np.zeros((2, 3), dtype=np.float32))
-        >>> dem.xy(0, 0)
-        (500000.5, 4999999.5)
-        """
-        r = np.asarray(row)
-        c = np.asarray(col)
-        for name, idx, size in (("row", r, self.rows), ("col", c, self.cols)):
-            integral = idx.dtype.kind in "iu" or (
-                idx.dtype.kind == "f" and bool(np.all(np.isfinite(idx) & (idx == np.floor(idx))))
-            )
-            if not integral:
-                raise InvalidParameter(f"{name} must be an integer cell index, got {_short(idx)}")
-            if np.any((idx < 0) | (idx >= size)):
-                raise LocationOutsideDEM(
-                    f"cell index {name}={_short(idx)} lies outside the DEM, which has "
-                    f"{self.rows} rows and {self.cols} columns; use 0 to {size - 1}"
-                )
-        t = self.transform
-        x = t.c + (c.astype(np.float64) + 0.5) * t.a
-        y = t.f + (r.astype(np.float64) + 0.5) * t.e
-        if x.ndim == 0 and y.ndim == 0:
-            return float(x), float(y)
-        xb, yb = np.broadcast_arrays(x, y)
-        return xb.copy(), yb.copy()
-
-    def wrapped_x(self, x: Any) -> Any:
-        """``x`` with longitudes brought into the grid's own 360° turn.
-
-        On a geographic grid a longitude and the same longitude plus or minus
-        360° are one place: a grid stored with 0–360° longitudes holds the
-        point given as -170° at 190°. Other grids get ``x`` unchanged.
-
-        Examples
-        --------
-        >>> from affine import Affine
-        >>> dem = dem_from_array(np.zeros((2, 4), np.float32), crs=4326,
-        ...                      transform=Affine(1, 0, 180, 0, -1, 10))
-        >>> float(dem.wrapped_x(-178.5))
-        181.5
-        """
-        if not self.is_geographic:
-            return x
-        turn = 360.0 / self._degrees_per_unit
-        west = self.transform.c
-        with np.errstate(invalid="ignore"):
-            return west + np.mod(np.asarray(x, dtype=np.float64) - west, turn)
-
-    def rowcol(self, x: Any, y: Any) -> tuple[Any, Any]:
-        """The cell ``(row, col)`` holding map point ``(x, y)``.
-
-        A point on a cell boundary belongs to the cell to its east and south
-        (indices are floored); the east and south edges of the grid are outside.
-
-        Parameters
-        ----------
-        x, y : float or array_like
-            Map coordinates in the DEM's CRS.
-
-        Returns
-        -------
-        row, col : int or numpy.ndarray of int64
-
-        Raises
-        ------
-        LocationOutsideDEM
-            If a point lies outside the grid (or is NaN).
-
-        Examples
-        --------
-        >>> dem = dem_from_array(np.zeros((2, 3), dtype=np.float32))
-        >>> dem.rowcol(500002.9, 4999998.1)
-        (1, 2)
-        """
-        xs = self.wrapped_x(np.asarray(x, dtype=np.float64))
-        ys = np.asarray(y, dtype=np.float64)
-        t = self.transform
-        with np.errstate(invalid="ignore"):
-            colf = np.floor((xs - t.c) / t.a)
-            rowf = np.floor((ys - t.f) / t.e)
-            inside = (colf >= 0) & (colf < self.cols) & (rowf >= 0) & (rowf < self.rows)
-        if not np.all(inside):
-            left, bottom, right, top = self.bounds
-            bad = np.broadcast_arrays(xs, ys, inside)
-            k = np.flatnonzero(~bad[2])[0]
-            raise LocationOutsideDEM(
-                f"point ({bad[0].flat[k]:.10g}, {bad[1].flat[k]:.10g}) lies outside the DEM; "
-                f"give x in [{left:.10g}, {right:.10g}) and y in ({bottom:.10g}, {top:.10g}] "
-                f"({crs_text(self.crs)})"
-            )
-        rows = rowf.astype(np.int64)
-        cols = colf.astype(np.int64)
-        if rows.ndim == 0 and cols.ndim == 0:
-            return int(rows), int(cols)
-        rows, cols = np.broadcast_arrays(rows, cols)
-        return rows.copy(), cols.copy()
-
-
 @dataclasses.dataclass(frozen=True, eq=False)
-class DEM(_Georeferenced):
+class DEM(Georeferenced):
     """A site DEM: float32 elevations on a north-up grid, with CRS and vertical unit.
 
     Build one with :func:`read_dem` or :func:`dem_from_array`, which check and
@@ -480,7 +257,7 @@ def read_dem(
                 f"the limit of {int(max_cells):,}; crop it to the site or resample it to "
                 "coarser cells (or raise max_cells if the machine has the memory)"
             )
-        head = _band_header(src, path, band, crs_arg, unit_arg)
+        head = band_header(src, path, band, crs_arg, unit_arg)
         try:
             raw = src.read(head.band)
             hidden = src.read_masks(head.band) == 0 if head.masked else None
@@ -507,168 +284,10 @@ def read_dem(
     )
 
 
-def _band_header(src: DatasetReader, path: str, band: int | None, crs_arg: CRS | None,
-                 unit_arg: VerticalUnit | None) -> "DEMGrid":
-    """Checks of an open raster that need no pixels; the band's grid and value rules."""
-    name = os.path.basename(path)
-    if band is None:
-        if src.count != 1:
-            raise InvalidDEM(
-                f"'{name}' has {src.count} bands and Sillmark needs one band of "
-                f"elevations; pass band=N (1 to {src.count}) to pick one"
-            )
-        band = 1
-    elif band > src.count:
-        raise InvalidParameter(
-            f"band={band} but '{name}' has {src.count} band"
-            f"{'s' if src.count != 1 else ''}; use 1 to {src.count}"
-        )
-    band = int(band)
-    dtype = np.dtype(src.dtypes[band - 1])
-    if dtype.kind not in "iuf":
-        raise InvalidDEM(
-            f"band {band} of '{name}' holds {dtype.name} values, not elevations; "
-            "give a band of integer or floating-point heights"
-        )
-    transform = file_transform(src, name)
-    file_crs = src.crs if src.crs else None
-    dem_crs = choose_crs(file_crs, crs_arg, name)
-    band_unit = (src.units[band - 1] or "") if src.units else ""
-    nodata = src.nodatavals[band - 1]
-    flags = src.mask_flag_enums[band - 1]
-    unit, unit_source = resolve_vertical_unit(dem_crs, unit_arg, band_unit)
-    return DEMGrid(
-        shape=(int(src.height), int(src.width)),
-        transform=transform,
-        crs=dem_crs,
-        vertical_unit=unit,
-        nodata=None if nodata is None else float(nodata),
-        source_dtype=dtype.name,
-        path=path,
-        vertical_unit_source=unit_source,
-        band=band,
-        scale=float(src.scales[band - 1]) if src.scales else 1.0,
-        offset=float(src.offsets[band - 1]) if src.offsets else 0.0,
-        masked=MaskFlags.per_dataset in flags or MaskFlags.alpha in flags,
-    )
 
 
-@dataclasses.dataclass(frozen=True, eq=False)
-class DEMGrid(_Georeferenced):
-    """The grid of a DEM file, without its cells: for reading it window by window.
-
-    Made by :func:`read_dem_grid`, with the checks of :func:`read_dem` that need
-    no pixels. It has the georeferencing of :class:`DEM` (``shape``, ``rows``,
-    ``cols``, ``transform``, ``crs``, ``vertical_unit``, ``row_areas``, ``xy``,
-    ``rowcol``, ...) and reads any window with :meth:`read_window`, converting
-    the values exactly as :func:`read_dem` does, so that a window equals the same
-    cells of ``read_dem(path).elevation``. It pickles small (no pixels), so a
-    task on another machine can read its own windows of a shared file.
-
-    Attributes
-    ----------
-    shape : (int, int)
-    transform, crs, vertical_unit, nodata, source_dtype, path, vertical_unit_source
-        As in :class:`DEM`.
-    band : int
-        1-based band of the elevations.
-    scale, offset : float
-        The band's declared scale and offset (1 and 0 when none).
-    masked : bool
-        Whether the file's own mask (internal mask or alpha band) hides cells.
-    """
-
-    shape: tuple[int, int]
-    transform: Affine
-    crs: CRS
-    vertical_unit: VerticalUnit
-    nodata: float | None
-    source_dtype: str
-    path: str
-    vertical_unit_source: str
-    band: int
-    scale: float = 1.0
-    offset: float = 0.0
-    masked: bool = False
-
-    def __post_init__(self) -> None:
-        if self._horizontal.is_geographic:
-            check_geographic_extent(self.transform, self.shape, self._degrees_per_unit)
-        else:
-            check_projected_on_earth(self._horizontal, self.transform, self.shape)
-
-    def read_window(self, row0: int, row1: int, col0: int, col1: int) -> np.ndarray:
-        """Elevations of rows ``row0:row1`` and columns ``col0:col1`` (float32, NaN nodata).
-
-        Parts of the window outside the grid are NaN. The file is opened for each
-        call, so windows may be read from several processes at once.
-
-        Raises
-        ------
-        InvalidDEM
-            The pixels cannot be read, or the window holds values :func:`read_dem`
-            refuses (integers float32 cannot store exactly, floats beyond float32).
-        """
-        rows, cols = self.shape
-        out = np.full((row1 - row0, col1 - col0), np.nan, dtype=np.float32)
-        r0, r1 = max(row0, 0), min(row1, rows)
-        c0, c1 = max(col0, 0), min(col1, cols)
-        if r0 >= r1 or c0 >= c1:
-            return out
-        name = os.path.basename(self.path)
-        window = rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0)
-        with open_local_raster(self.path, InvalidDEM, "the DEM") as src:
-            try:
-                raw = src.read(self.band, window=window)
-                hidden = src.read_masks(self.band, window=window) == 0 if self.masked else None
-            except (RasterioError, CPLE_BaseError, OSError) as exc:
-                raise InvalidDEM(
-                    f"'{name}' opens but its pixels cannot be read "
-                    f"({gdal_reason(exc, self.path)}); the file may be truncated or damaged: "
-                    "copy or export it again"
-                ) from None
-        out[r0 - row0 : r1 - row0, c0 - col0 : c1 - col0] = to_float32_elevation(
-            raw, self.nodata, scale=self.scale, offset=self.offset, hidden=hidden, owned=True,
-            label=f"'{name}'", allow_empty=True,
-        )
-        return out
 
 
-def read_dem_grid(
-    path: str | os.PathLike[str],
-    *,
-    band: int | None = None,
-    vertical_unit: str | VerticalUnit | None = None,
-    crs: Any = None,
-) -> DEMGrid:
-    """Open a DEM file for reading window by window: :class:`DEMGrid`.
-
-    The same checks as :func:`read_dem` that need no pixels (a local single-band
-    raster or a chosen band, north-up, a CRS, a vertical unit), and no limit on
-    the number of cells: nothing of the grid is read here. The checks on values
-    (nodata everywhere, integers beyond float32) are made window by window, by
-    :meth:`DEMGrid.read_window`, and by the caller for "all nodata".
-
-    Raises
-    ------
-    InvalidDEM, InvalidParameter
-        As :func:`read_dem`.
-    """
-    path = local_file(path, InvalidDEM, "the DEM")
-    name = os.path.basename(path)
-    if band is not None and (
-        isinstance(band, bool) or not isinstance(band, (int, np.integer)) or band < 1
-    ):
-        raise InvalidParameter(f"band must be a band number 1, 2, ..., got {band!r}")
-    unit_arg = None if vertical_unit is None else VerticalUnit.parse(vertical_unit)
-    crs_arg = None if crs is None else parse_crs(crs, InvalidParameter, "crs")
-    with open_local_raster(path, InvalidDEM, "the DEM") as src:
-        if src.width == 0 or src.height == 0:
-            raise InvalidDEM(
-                f"'{name}' has zero width or height ({src.width} × {src.height} cells); "
-                "give a raster with at least one cell"
-            )
-        return _band_header(src, path, band, crs_arg, unit_arg)
 
 
 def dem_from_array(
@@ -762,94 +381,8 @@ def dem_from_array(
     )
 
 
-
-
-
-
-# ---------------------------------------------------------------------------
-# opening files (shared with sillmark.grid.outlets)
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-# ---------------------------------------------------------------------------
-# CRS and vertical unit
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-# ---------------------------------------------------------------------------
-# values
-
-
-
-
-
-
-
-
-
-
-
-
 # ---------------------------------------------------------------------------
 # geometry helpers
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
 
 
 def check_layers_on_grid(dem: "DEM | DEMGrid", **layers: np.ndarray) -> None:
@@ -873,41 +406,3 @@ def check_layers_on_grid(dem: "DEM | DEMGrid", **layers: np.ndarray) -> None:
                 f"{shape[0]} x {shape[1]}; export a result computed on this DEM"
             )
 
-def _short(a: np.ndarray) -> str:
-    if a.ndim == 0:
-        return str(a.item())
-    return np.array2string(a.ravel()[:5], separator=", ") + ("..." if a.size > 5 else "")
-
-
-@dataclasses.dataclass(frozen=True)
-class RasterOutline:
-    """What a person must choose before a raster file can be read as a DEM.
-
-    Attributes
-    ----------
-    bands : int
-        Number of bands in the file (a DEM needs one chosen when more than 1).
-    has_crs : bool
-        Whether the file states its CRS (without one, a CRS must be given).
-    band_names : tuple of str
-        The bands' own descriptions ('' where the file gives none).
-    """
-
-    bands: int
-    has_crs: bool
-    band_names: tuple[str, ...]
-
-
-def raster_outline(path: str | os.PathLike[str]) -> RasterOutline:
-    """Band count and CRS presence of a local raster file, read from its header.
-
-    Raises
-    ------
-    InvalidDEM
-        As :func:`read_dem` for files that are not local, self-contained rasters.
-    """
-    path = local_file(path, InvalidDEM, "the DEM")
-    with open_local_raster(path, InvalidDEM, "the DEM") as src:
-        names = tuple("".join(ch for ch in (d or "") if ch.isprintable())[:60]
-                      for d in src.descriptions)
-        return RasterOutline(bands=int(src.count), has_crs=bool(src.crs), band_names=names)

@@ -22,6 +22,7 @@ from rasterio.errors import CRSError
 from sillmark.errors import (
     InvalidDEM,
     InvalidParameter,
+    LocationOutsideDEM,
     SillmarkError,
 )
 from sillmark.grid.crs import crs_text
@@ -189,7 +190,6 @@ def choose_crs(file_crs: CRS | None, argument: CRS | None, name: str) -> CRS:
     return file_crs
 
 
-
 def check_geographic_extent(t: Affine, shape: tuple[int, int], deg_per_unit: float) -> None:
     rows, cols = shape
     top = t.f * deg_per_unit
@@ -296,3 +296,224 @@ def geographic_row_areas(t: Affine, rows: int, deg_per_unit: float, geod: pyproj
         area, _ = geod.polygon_area_perimeter(ring_lons, ring_lats)
         areas[r] = abs(area)
     return areas
+
+
+
+
+class Georeferenced:
+    """Georeferencing shared by :class:`DEM` and :class:`DEMGrid`.
+
+    Needs ``shape``, ``transform`` and ``crs`` on the instance. The cached values
+    live in the instance ``__dict__`` (see :class:`DEM`).
+    """
+
+    @property
+    def rows(self) -> int:
+        return self.shape[0]
+
+    @property
+    def cols(self) -> int:
+        return self.shape[1]
+
+    def __setstate__(self, state: dict) -> None:
+        # Unpickling bypasses __post_init__: keep the arrays read-only.
+        self.__dict__.update(state)
+        for key in ("elevation", "valid", "row_areas"):
+            arr = state.get(key)
+            if isinstance(arr, np.ndarray):
+                arr.flags.writeable = False
+
+    # -- georeferencing --------------------------------------------------
+
+    @functools.cached_property
+    def _pyproj_crs(self) -> pyproj.CRS:
+        return to_pyproj(self.crs)
+
+    @functools.cached_property
+    def _horizontal(self) -> pyproj.CRS:
+        return horizontal_part(self._pyproj_crs, "the DEM")
+
+    @functools.cached_property
+    def _degrees_per_unit(self) -> float:
+        return degrees_per_angular_unit(self._horizontal)
+
+    @property
+    def horizontal_crs(self) -> pyproj.CRS:
+        """The horizontal part of :attr:`crs` as a :class:`pyproj.CRS` (2-D)."""
+        return self._horizontal
+
+    @functools.cached_property
+    def is_geographic(self) -> bool:
+        """True when the grid is in longitude/latitude."""
+        return bool(self._horizontal.is_geographic)
+
+    @property
+    def cell_size(self) -> tuple[float, float]:
+        """``(dx, dy)``: cell width and height in CRS units, both positive."""
+        return abs(self.transform.a), abs(self.transform.e)
+
+    @property
+    def bounds(self) -> tuple[float, float, float, float]:
+        """``(left, bottom, right, top)`` of the grid in CRS units."""
+        t = self.transform
+        left, top = t.c, t.f
+        return left, top + t.e * self.rows, left + t.a * self.cols, top
+
+    @functools.cached_property
+    def row_areas(self) -> np.ndarray:
+        """True area of one cell in each row, in m² (float64, shape ``(rows,)``, read-only).
+
+        Projected grids: ``|a · e|`` times the square of the CRS's linear unit in
+        metres (so US-survey-foot grids come out in m²); every row is the same.
+        The map projection's own scale error is not corrected (grid area, as is
+        common practice for site-sized DEMs).
+
+        Geographic grids: the area on the CRS's ellipsoid (WGS 84 if the CRS
+        names none) of the cell bounded by two meridians and two parallels,
+        computed with :meth:`pyproj.Geod.polygon_area_perimeter` (Karney 2013).
+        The parallel edges are split into pieces at most 0.001° wide so the
+        geodesic edges follow the parallels to about 1e-10 of the cell area.
+
+        References
+        ----------
+        C. F. F. Karney (2013), "Algorithms for geodesics", Journal of Geodesy
+        87, 43–55. https://doi.org/10.1007/s00190-012-0578-z
+        """
+        if self.is_geographic:
+            areas = geographic_row_areas(
+                self.transform, self.rows, self._degrees_per_unit, geod_for(self._horizontal)
+            )
+        else:
+            metres = linear_unit_metres(self._horizontal)
+            areas = np.full(self.rows, abs(self.transform.a * self.transform.e) * metres**2)
+        areas.flags.writeable = False
+        return areas
+
+    # -- coordinates -----------------------------------------------------
+
+    def xy(self, row: Any, col: Any) -> tuple[Any, Any]:
+        """Map coordinates of the centre of cell ``(row, col)``.
+
+        Parameters
+        ----------
+        row, col : int or array_like of int
+            Cell indices (numpy arrays broadcast together).
+
+        Returns
+        -------
+        x, y : float or numpy.ndarray
+            Floats for scalar input, float64 arrays otherwise.
+
+        Raises
+        ------
+        LocationOutsideDEM
+            If an index lies outside the grid.
+
+        Examples
+        --------
+
+        >>> from sillmark.grid.dem import dem_from_array
+        >>> dem = dem_from_array(np.zeros((2, 3), dtype=np.float32))
+        >>> dem.xy(0, 0)
+        (500000.5, 4999999.5)
+        """
+        r = np.asarray(row)
+        c = np.asarray(col)
+        for name, idx, size in (("row", r, self.rows), ("col", c, self.cols)):
+            integral = idx.dtype.kind in "iu" or (
+                idx.dtype.kind == "f" and bool(np.all(np.isfinite(idx) & (idx == np.floor(idx))))
+            )
+            if not integral:
+                raise InvalidParameter(f"{name} must be an integer cell index, got {_short(idx)}")
+            if np.any((idx < 0) | (idx >= size)):
+                raise LocationOutsideDEM(
+                    f"cell index {name}={_short(idx)} lies outside the DEM, which has "
+                    f"{self.rows} rows and {self.cols} columns; use 0 to {size - 1}"
+                )
+        t = self.transform
+        x = t.c + (c.astype(np.float64) + 0.5) * t.a
+        y = t.f + (r.astype(np.float64) + 0.5) * t.e
+        if x.ndim == 0 and y.ndim == 0:
+            return float(x), float(y)
+        xb, yb = np.broadcast_arrays(x, y)
+        return xb.copy(), yb.copy()
+
+    def wrapped_x(self, x: Any) -> Any:
+        """``x`` with longitudes brought into the grid's own 360° turn.
+
+        On a geographic grid a longitude and the same longitude plus or minus
+        360° are one place: a grid stored with 0–360° longitudes holds the
+        point given as -170° at 190°. Other grids get ``x`` unchanged.
+
+        Examples
+        --------
+
+        >>> from sillmark.grid.dem import dem_from_array
+        >>> from affine import Affine
+        >>> dem = dem_from_array(np.zeros((2, 4), np.float32), crs=4326,
+        ...                      transform=Affine(1, 0, 180, 0, -1, 10))
+        >>> float(dem.wrapped_x(-178.5))
+        181.5
+        """
+        if not self.is_geographic:
+            return x
+        turn = 360.0 / self._degrees_per_unit
+        west = self.transform.c
+        with np.errstate(invalid="ignore"):
+            return west + np.mod(np.asarray(x, dtype=np.float64) - west, turn)
+
+    def rowcol(self, x: Any, y: Any) -> tuple[Any, Any]:
+        """The cell ``(row, col)`` holding map point ``(x, y)``.
+
+        A point on a cell boundary belongs to the cell to its east and south
+        (indices are floored); the east and south edges of the grid are outside.
+
+        Parameters
+        ----------
+        x, y : float or array_like
+            Map coordinates in the DEM's CRS.
+
+        Returns
+        -------
+        row, col : int or numpy.ndarray of int64
+
+        Raises
+        ------
+        LocationOutsideDEM
+            If a point lies outside the grid (or is NaN).
+
+        Examples
+        --------
+
+        >>> from sillmark.grid.dem import dem_from_array
+        >>> dem = dem_from_array(np.zeros((2, 3), dtype=np.float32))
+        >>> dem.rowcol(500002.9, 4999998.1)
+        (1, 2)
+        """
+        xs = self.wrapped_x(np.asarray(x, dtype=np.float64))
+        ys = np.asarray(y, dtype=np.float64)
+        t = self.transform
+        with np.errstate(invalid="ignore"):
+            colf = np.floor((xs - t.c) / t.a)
+            rowf = np.floor((ys - t.f) / t.e)
+            inside = (colf >= 0) & (colf < self.cols) & (rowf >= 0) & (rowf < self.rows)
+        if not np.all(inside):
+            left, bottom, right, top = self.bounds
+            bad = np.broadcast_arrays(xs, ys, inside)
+            k = np.flatnonzero(~bad[2])[0]
+            raise LocationOutsideDEM(
+                f"point ({bad[0].flat[k]:.10g}, {bad[1].flat[k]:.10g}) lies outside the DEM; "
+                f"give x in [{left:.10g}, {right:.10g}) and y in ({bottom:.10g}, {top:.10g}] "
+                f"({crs_text(self.crs)})"
+            )
+        rows = rowf.astype(np.int64)
+        cols = colf.astype(np.int64)
+        if rows.ndim == 0 and cols.ndim == 0:
+            return int(rows), int(cols)
+        rows, cols = np.broadcast_arrays(rows, cols)
+        return rows.copy(), cols.copy()
+
+def _short(a: np.ndarray) -> str:
+    if a.ndim == 0:
+        return str(a.item())
+    return np.array2string(a.ravel()[:5], separator=", ") + ("..." if a.size > 5 else "")

@@ -10,6 +10,7 @@ clear message, and :func:`forbid_remote_access` turns GDAL's network access off.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import functools
 import math
 import os
@@ -304,3 +305,39 @@ def check_north_up(t: Affine, label: str) -> None:
             f"{label} is not north-up (cell width {t.a:g}, cell height {t.e:g}; needs a "
             "positive width and a negative height): warp it first (e.g. gdalwarp)"
         )
+
+
+
+
+@dataclasses.dataclass(frozen=True)
+class RasterOutline:
+    """What a person must choose before a raster file can be read as a DEM.
+
+    Attributes
+    ----------
+    bands : int
+        Number of bands in the file (a DEM needs one chosen when more than 1).
+    has_crs : bool
+        Whether the file states its CRS (without one, a CRS must be given).
+    band_names : tuple of str
+        The bands' own descriptions ('' where the file gives none).
+    """
+
+    bands: int
+    has_crs: bool
+    band_names: tuple[str, ...]
+
+
+def raster_outline(path: str | os.PathLike[str]) -> RasterOutline:
+    """Band count and CRS presence of a local raster file, read from its header.
+
+    Raises
+    ------
+    InvalidDEM
+        As :func:`read_dem` for files that are not local, self-contained rasters.
+    """
+    path = local_file(path, InvalidDEM, "the DEM")
+    with open_local_raster(path, InvalidDEM, "the DEM") as src:
+        names = tuple("".join(ch for ch in (d or "") if ch.isprintable())[:60]
+                      for d in src.descriptions)
+        return RasterOutline(bands=int(src.count), has_crs=bool(src.crs), band_names=names)

@@ -28,7 +28,8 @@ from sillmark.units import NO_DATUM, unit_name, unit_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
-    from sillmark.grid.dem import DEM, DEMGrid
+    from sillmark.grid.dem import DEM
+    from sillmark.grid.dem_grid import DEMGrid
 
 
 #: Nodata of the float32 rasters (onset stage, fill depth).
@@ -204,7 +205,7 @@ def write_result_layer(
 
     ``block(r0, r1)`` returns rows ``r0:r1`` of the layer as it is stored (NaN,
     -1 or 0 on nodata); ``dem`` may be a :class:`~sillmark.grid.dem.DEM` or a
-    :class:`~sillmark.grid.dem.DEMGrid`. ``depression_count`` is needed for
+    :class:`~sillmark.grid.dem_grid.DEMGrid`. ``depression_count`` is needed for
     ``depression_id`` (tag ``DEPRESSION_COUNT``). The files are those of
     :func:`write_onset_stage` and its siblings, whoever computed the blocks
     (DEFLATE level :data:`RESULT_DEFLATE_LEVEL`, compressed on

@@ -174,7 +174,7 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dic
 
     Row by row the same values whatever rows the table holds, so the writer
     (:mod:`sillmark.io.hierarchy_writer`) gives the file of the whole table
-    from its pieces. ``dem`` may be a :class:`~sillmark.grid.dem.DEMGrid`.
+    from its pieces. ``dem`` may be a :class:`~sillmark.grid.dem_grid.DEMGrid`.
     """
     v = unit_suffix(unit)
     h = horizontal_unit_suffix(dem)

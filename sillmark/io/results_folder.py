@@ -29,7 +29,7 @@ import rasterio
 import rasterio.windows
 
 from sillmark.errors import InvalidDEM, InvalidParameter
-from sillmark.grid.dem import DEMGrid, read_dem_grid
+from sillmark.grid.dem_grid import DEMGrid, read_dem_grid
 from sillmark.io.geojson import write_depressions_geojson
 from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
@@ -213,7 +213,7 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
 
     Reads ``summary.json`` (DEM path, vertical unit, CRS, grid, outlets,
     connectivity) and ``depressions.csv``, opens the DEM with
-    :func:`sillmark.grid.dem.read_dem_grid`, and passes once over the DEM,
+    :func:`sillmark.grid.dem_grid.read_dem_grid`, and passes once over the DEM,
     ``onset_stage.tif`` and ``fill_depth.tif`` block by block: every cell's
     ``onset_stage - elevation`` must be the stored fill depth, or the DEM has
     changed since the analysis.

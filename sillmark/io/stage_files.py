@@ -207,7 +207,7 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
                            connectivity: int, outline) -> Path:
     """Write one water class at a level (flooded or shielded) as a GeoJSON FeatureCollection.
 
-    ``grid`` is the DEM or a :class:`~sillmark.grid.dem.DEMGrid` (CRS, vertical unit);
+    ``grid`` is the DEM or a :class:`~sillmark.grid.dem_grid.DEMGrid` (CRS, vertical unit);
     ``totals`` the class's area (m²) and volume (m³); ``outline()`` gives its
     (Multi)Polygon in the DEM's CRS or None when no cell has the class (it is
     called after the CRS is checked, so a grid without one fails before any work).

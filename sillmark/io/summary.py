@@ -42,7 +42,6 @@ FILE_NAMES = (
 )
 
 
-
 def _summary(result: "SpillResult", dem: "DEM", outlets: "Outlets", files: list[str]) -> dict:
     return _summary_payload(
         result.depressions, dem, connectivity=result.connectivity,

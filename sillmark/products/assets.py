@@ -37,7 +37,6 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = ["AssetTable", "Sill", "assess_assets"]
 
 
-
 #: State of an asset at a water level (:attr:`AssetTable.state`); "" without figures.
 STATE_FLOODED = "flooded"
 STATE_SHIELDED = "shielded"
@@ -45,15 +44,7 @@ STATE_DRY = "dry"
 STATE_NONE = ""
 
 
-
-
-
-
 # --------------------------------------------------------------------------- records
-
-
-
-
 
 
 @dataclasses.dataclass(frozen=True)
@@ -231,50 +222,6 @@ class AssetTable:
         return _to_wgs84(self.dem)
 
 
-
-
-# --------------------------------------------------------------------------- reading
-
-
-
-
-
-
-
-
-
-
-
-
-# --------------------------------------------------------------------------- CSV
-
-
-
-
-
-
-
-
-
-
-
-
-# --------------------------------------------------------------------------- GeoJSON
-
-
-
-
-
-
-
-
-
-
-# --------------------------------------------------------------------------- placing
-
-
-
-
 # --------------------------------------------------------------------------- assessing
 
 
@@ -420,24 +367,6 @@ def _check_result(dem: "DEM", result: SpillResult) -> None:
 
 
 # --------------------------------------------------------------------------- what-if
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
 
 
 def _to_wgs84(dem: "DEM") -> pyproj.Transformer:

@@ -31,7 +31,9 @@ from sillmark.errors import (
 )
 from sillmark.grid.assets import read_assets
 from sillmark.grid.crs import crs_label, epsg_crs, full_crs
-from sillmark.grid.dem import DEM, raster_outline, read_dem, read_dem_grid
+from sillmark.grid.dem import DEM, read_dem
+from sillmark.grid.raster_files import raster_outline
+from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.grid.elevations import nodata_as_json
 from sillmark.grid.outlets import build_outlets
 from sillmark.io.geotiff import write_dem_copy
@@ -98,7 +100,7 @@ def dem_info(dem, *, file_bytes: int | None = None) -> dict:
     """What the upload page shows about a DEM it read.
 
     ``dem`` is a :class:`~sillmark.grid.dem.DEM`, or a
-    :class:`~sillmark.grid.dem.DEMGrid` (its header only) for a DEM too large to
+    :class:`~sillmark.grid.dem_grid.DEMGrid` (its header only) for a DEM too large to
     read in a request: the elevation range and nodata share are then None until
     an analysis has read the cells (see :meth:`Registry.describe`).
     """
@@ -626,22 +628,5 @@ def site_state(row: sqlite3.Row, latest: sqlite3.Row | None) -> str:
     if latest is None:
         return "draft"
     return {db.QUEUED: "queued", db.RUNNING: "running", db.FAILED: "failed"}.get(latest["status"], "ready")
-
-
-# --------------------------------------------------------------------------- open sites
-
-
-
-
-
-
-
-
-
-
-
-
-
-
 
 

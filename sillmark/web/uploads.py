@@ -28,7 +28,8 @@ from werkzeug.exceptions import RequestEntityTooLarge
 from sillmark.errors import InvalidDEM, InvalidParameter, SillmarkError
 from sillmark.grid.assets import InvalidAssets, read_assets
 from sillmark.grid.crs import crs_label
-from sillmark.grid.dem import raster_outline, read_dem_grid
+from sillmark.grid.raster_files import raster_outline
+from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.web import get_db, layout, services
 from sillmark.web.access import site_row
 from sillmark.web.db import StorageError

@@ -274,7 +274,7 @@ def test_a_changed_dem_is_refused(tmp_path):
 
 
 def _grid(path):
-    from sillmark.grid.dem import read_dem_grid
+    from sillmark.grid.dem_grid import read_dem_grid
 
     return read_dem_grid(path)
 

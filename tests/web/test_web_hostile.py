@@ -537,7 +537,8 @@ REMOTE_OR_VIRTUAL = ["/vsicurl/http://127.0.0.1:9/x.tif", "/VSIZIP//tmp/site.zip
 @pytest.mark.parametrize("path", REMOTE_OR_VIRTUAL)
 def test_gdal_virtual_and_remote_paths_are_refused_by_every_reader(path):
     from sillmark.grid.assets import InvalidAssets, read_assets
-    from sillmark.grid.dem import dem_from_array, read_dem, read_dem_grid
+    from sillmark.grid.dem import dem_from_array, read_dem
+    from sillmark.grid.dem_grid import read_dem_grid
     from sillmark.errors import InvalidDEM, InvalidOutlets
     from sillmark.grid.outlets import outlets_from_geojson, outlets_from_raster
 
