@@ -59,7 +59,8 @@ from sillmark.engine.stores import FileStore, MemoryStore
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import DEM
 from sillmark.grid.dem_grid import read_dem_grid
-from sillmark.grid.outlets import Outlets, build_outlets, plan_outlets
+from sillmark.grid.outlets import Outlets, build_outlets
+from sillmark.grid.outlet_plan import plan_outlets
 from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table

@@ -67,7 +67,7 @@ class RasterTiles:
     """A DEM file read window by window, its outlets marked per window.
 
     ``grid`` is a :class:`sillmark.grid.dem_grid.DEMGrid` and ``outlets`` an
-    :class:`sillmark.grid.outlets.OutletPlan`; both pickle small, so cluster
+    :class:`sillmark.grid.outlet_plan.OutletPlan`; both pickle small, so cluster
     tasks read their own windows. Each window is read with a one-cell halo
     (for outlets next to nodata).
     """

@@ -16,14 +16,7 @@ from hypothesis.extra.numpy import arrays
 
 from sillmark.errors import InvalidOutlets, InvalidParameter
 from sillmark.grid.dem import dem_from_array
-from sillmark.grid.outlets import (
-    Outlets,
-    build_outlets,
-    edge_outlets,
-    nodata_outlets,
-    outlets_from_geojson,
-    outlets_from_raster,
-)
+from sillmark.grid.outlets import Outlets, build_outlets, edge_outlets, nodata_outlets, outlets_from_geojson, outlets_from_raster
 from tests.rasters import NORTH, WEST, grid
 
 UTM33_MEMBER = {"type": "name", "properties": {"name": "EPSG:32633"}}
