@@ -34,6 +34,7 @@ from sillmark.grid.outlets import (
     mask_path,
     neighbour_offsets,
     one_source_refusal,
+    outlet_specs,
 )
 from sillmark.grid.raster_files import (
     gdal_reason,
@@ -172,20 +173,7 @@ def plan_outlets(grid: Any, specs: Any = ("edge",), *, connectivity: int = 8) ->
     InvalidOutlets, InvalidParameter
         As :func:`build_outlets`, for what can be told without the cells.
     """
-    neighbour_offsets(connectivity)
-    if isinstance(specs, (str, bytes, os.PathLike, dict)):
-        specs = (specs,)
-    try:
-        items = list(specs)
-    except TypeError:
-        raise InvalidOutlets(
-            f"outlets must be a list of sources, got {type(specs).__name__}; "
-            "e.g. ['edge'] or ['nodata', 'river.geojson']"
-        ) from None
-    if not items:
-        raise InvalidOutlets(
-            "no outlet sources given; use 'edge', 'nodata', a GeoJSON file or a mask raster"
-        )
+    items = outlet_specs(specs, connectivity)
     sources, kinds, messages = [], [], []
     half = 0.5 * max(grid.cell_size)
     for spec in items:

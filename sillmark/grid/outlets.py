@@ -375,20 +375,7 @@ def build_outlets(
     >>> out.count, out.sources
     (12, ('edge', 'nodata'))
     """
-    neighbour_offsets(connectivity)
-    if isinstance(specs, (str, bytes, os.PathLike, dict)):
-        specs = (specs,)
-    try:
-        items = list(specs)
-    except TypeError:
-        raise InvalidOutlets(
-            f"outlets must be a list of sources, got {type(specs).__name__}; "
-            "e.g. ['edge'] or ['nodata', 'river.geojson']"
-        ) from None
-    if not items:
-        raise InvalidOutlets(
-            "no outlet sources given; use 'edge', 'nodata', a GeoJSON file or a mask raster"
-        )
+    items = outlet_specs(specs, connectivity)
     mask = np.zeros(dem.shape, dtype=bool)
     sources: list[str] = []
     for spec in items:
@@ -483,3 +470,23 @@ def one_source_refusal(spec: str, ext: str, name: str):
         f"unknown outlet source {spec!r}; use 'edge', 'nodata', a GeoJSON file (.geojson, "
         ".json) or a mask raster (.tif, .tiff, .img)"
     )
+
+
+def outlet_specs(specs: Any, connectivity: Any) -> list:
+    """The outlet sources as a list (one source may be given alone), after checking
+    the connectivity; :class:`InvalidOutlets` for something that is no list, or an empty one."""
+    neighbour_offsets(connectivity)
+    if isinstance(specs, (str, bytes, os.PathLike, dict)):
+        specs = (specs,)
+    try:
+        items = list(specs)
+    except TypeError:
+        raise InvalidOutlets(
+            f"outlets must be a list of sources, got {type(specs).__name__}; "
+            "e.g. ['edge'] or ['nodata', 'river.geojson']"
+        ) from None
+    if not items:
+        raise InvalidOutlets(
+            "no outlet sources given; use 'edge', 'nodata', a GeoJSON file or a mask raster"
+        )
+    return items
