@@ -298,7 +298,7 @@ def test_kernel_runs_with_bounds_checking(tmp_path):
     script = (
         "import numpy as np\n"
         "from sillmark.engine.flood import priority_flood\n"
-        "from sillmark.products.hierarchy import depression_hierarchy\n"
+        "from sillmark.products.hierarchy_sweep import depression_hierarchy\n"
         "from sillmark.products.significance import significance, site_minimum\n"
         "rng = np.random.default_rng(3)\n"
         "z = rng.integers(0, 9, (25, 30)).astype(np.float32)\n"
