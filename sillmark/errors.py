@@ -19,6 +19,10 @@ class InvalidOutlets(SillmarkError, ValueError):
     """The outlet specification is unusable (unknown kind, misses the grid, empty)."""
 
 
+class InvalidEdits(SillmarkError, ValueError):
+    """An edits file is unusable (unknown kind, missing property, off the DEM, on nodata)."""
+
+
 class InvalidParameter(SillmarkError, ValueError):
     """A parameter is out of range or of the wrong kind (connectivity, unit, location)."""
 
