@@ -25,6 +25,7 @@ from numba.typed import Dict
 from sillmark.engine._flood_kernels import OUTLET
 from sillmark.engine._spill_kernels import _grown
 
+
 def _route_through_sill(stage, ids, tree, row, col, sill_row, sill_col, drow, dcol, dirs,
                         limit):
     """Cells of the route from ``(row, col)``, inside a depression, through its spill cell.

@@ -34,6 +34,7 @@ from sillmark.engine._spill_kernels import (
 )
 from sillmark.engine.plan import _across_tiles, _grid_perimeters, _perimeter_index
 
+
 def _exit_target(a, exit_cell, exit_src, a_kind, a_val, p_dep, p_area, p_outlet, p_low_level,
                  p_low_dir, p_low_kind, p_low_val, cross_level, cross_dir, poff, tile,
                  tile_cols, rows, cols, drow, dcol):

@@ -82,6 +82,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from sillmark.engine import _flood_kernels, _route_kernels
+from sillmark.engine.culverts import CULVERT_CODE, CulvertEdges
 from sillmark.engine.depressions import (  # noqa: F401  (public through this module)
     DIRECTION_COL,
     DIRECTION_ROW,
@@ -91,12 +92,11 @@ from sillmark.engine.depressions import (  # noqa: F401  (public through this mo
     depression_table,
     directions,
 )
-from sillmark.engine.culverts import CULVERT_CODE, CulvertEdges
 from sillmark.engine.executors import Executor, ThreadExecutor
 from sillmark.engine.pipeline import run_pipeline
-from sillmark.engine.tile_inputs import ArrayTiles
 from sillmark.engine.plan import MAX_TILE_SIZE
 from sillmark.engine.stores import MemoryStore
+from sillmark.engine.tile_inputs import ArrayTiles
 from sillmark.errors import (
     InvalidDEM,
     InvalidOutlets,
@@ -204,9 +204,9 @@ class SpillResult:
             raise LocationOutsideDEM(f"cell ({row}, {col}) is {what}; pick a cell with data")
         dep = int(self.depression_id[row, col])
         t = self.depressions
-        if dep > 0 and 0 < dep <= len(t) and self.flood_tree[
-                t.spill_row[dep - 1], t.spill_col[dep - 1]] == CULVERT_CODE:
-            # Drained through a culvert: the flood tree leads to its end, the spill point.
+        if dep > 0 and 0 < dep <= len(t) and self._on_culvert(
+                int(t.spill_row[dep - 1]), int(t.spill_col[dep - 1])):
+            # Drained through a culvert: the flood tree leads through it.
             path_r, path_c = self._walk(row, col)
             sr, sc = int(t.spill_row[dep - 1]), int(t.spill_col[dep - 1])
             return Route(rows=path_r, cols=path_c, sill_row=sr, sill_col=sc,
@@ -246,6 +246,12 @@ class SpillResult:
             reaches_outlet=reaches,
         )
 
+
+    def _on_culvert(self, row: int, col: int) -> bool:
+        """Whether a culvert ends at ``(row, col)``."""
+        if self.culverts is None:
+            return False
+        return bool(np.any(self.culverts.ends == row * self.onset_stage.shape[1] + col))
 
     def _walk(self, row: int, col: int) -> tuple[np.ndarray, np.ndarray]:
         """The flood tree from ``(row, col)`` to an outlet, through culverts."""

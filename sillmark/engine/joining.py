@@ -24,6 +24,7 @@ from sillmark.engine.depressions import DIRECTION_COL, DIRECTION_ROW
 from sillmark.engine.messages import FinishedTile, JoinedDepressions
 from sillmark.engine.plan import TilePlan
 
+
 def join_pieces(plan: TilePlan, finished: list[FinishedTile], dirs: np.ndarray,
                 culverts=None) -> JoinedDepressions:
     """Step 4: depressions from pieces, numbered in raster order; pits; spill points.
@@ -142,7 +143,9 @@ def _culvert_spills(culverts, end_dep: np.ndarray, end_level: np.ndarray, dep_le
     Such a depression drains through a culvert: its spill point is the first
     end (raster order) inside it whose culvert carries water out of it (both
     ways, or from its first end) no higher than its spill elevation, and it
-    spills to the depression at the other end (0 for none). Failing that, the
+    spills to the depression at the other end (0 for none). Failing that
+    (a flap valve lets outlet water in but none out), the first such end
+    whatever the culvert's direction. Failing that, the
     first culvert end outside any depression at its spill elevation (water
     leaves through a culvert from the dry ground around it), spilling to 0;
     failing that, its pit. The choice uses the ends' depressions and levels
@@ -158,8 +161,9 @@ def _culvert_spills(culverts, end_dep: np.ndarray, end_level: np.ndarray, dep_le
     for d in np.flatnonzero(spill < 0):
         if d == 0:
             continue
-        inside = np.flatnonzero((end_dep == d) & (end_dep[other] != d) & out_ok
-                                & (crossing <= dep_level[d]))
+        inside = (end_dep == d) & (end_dep[other] != d) & (crossing <= dep_level[d])
+        inside = np.flatnonzero(inside & out_ok) if np.any(inside & out_ok) else np.flatnonzero(
+            inside)
         if inside.size:
             j = inside[np.lexsort((inside, ends[inside]))[0]]
             spill[d] = ends[j]

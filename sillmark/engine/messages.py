@@ -27,6 +27,7 @@ import numpy as np
 from sillmark.engine.plan import TilePlan
 from sillmark.engine.stores import TileStore
 
+
 @dataclasses.dataclass(frozen=True)
 class TileJob:
     """What every tile step needs (no cells: it travels to every worker once)."""

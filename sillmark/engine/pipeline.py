@@ -53,6 +53,14 @@ from typing import Any
 import numpy as np
 
 from sillmark.engine import _spill_kernels, _tile_kernels, _tiled_kernels
+from sillmark.engine.depressions import (
+    DIRECTION_COL,
+    DIRECTION_ROW,
+    DepressionTable,
+    depression_table,
+    directions,
+)
+from sillmark.engine.executors import Executor
 from sillmark.engine.joining import join_pieces
 from sillmark.engine.messages import (
     FinishedTile,
@@ -62,17 +70,9 @@ from sillmark.engine.messages import (
     TileJob,
     ends_in_tile,
 )
-from sillmark.engine.depressions import (
-    DIRECTION_COL,
-    DIRECTION_ROW,
-    DepressionTable,
-    depression_table,
-    directions,
-)
-from sillmark.engine.executors import Executor
 from sillmark.engine.plan import TilePlan
-from sillmark.engine.tile_inputs import ArrayTiles, RasterTiles, TileInput  # noqa: F401
 from sillmark.engine.stores import TileStore
+from sillmark.engine.tile_inputs import ArrayTiles, RasterTiles, TileInput  # noqa: F401
 from sillmark.errors import InvalidDEM
 
 __all__ = ["ArrayTiles", "RasterTiles", "TiledFlood", "run_pipeline"]
@@ -141,6 +141,9 @@ def finish_step(job: TileJob, seeds: SeedLevels) -> FinishedTile:
     on_seed = lstate[pidx] == _tile_kernels.SEED
     seed_cells = np.zeros(seeds.lam.shape[0], dtype=np.int64)
     seed_cells[llab[pidx[on_seed]]] = pidx[on_seed]
+    end_index, end_local = ends_in_tile(job.culverts, plan, k)
+    on_end = lstate[end_local] == _tile_kernels.SEED  # culvert ends inside the tile
+    seed_cells[llab[end_local[on_end]]] = end_local[on_end]
     _tile_kernels.finish_tile(
         np.int64(0), np.int64(h), np.int64(0), np.int64(w), lz, lstate, llab, np.int64(0),
         seeds.lam, seed_cells, seeds.own, seeds.other, DIRECTION_ROW, DIRECTION_COL,
@@ -152,7 +155,6 @@ def finish_step(job: TileJob, seeds: SeedLevels) -> FinishedTile:
     first, pit_cell, pit_z, piece_level, _count, valid, unreached = _tiled_kernels.label_tile(
         lz, lstate, llab, z, np.int64(h), np.int64(w), back
     )
-    end_index, end_local = ends_in_tile(job.culverts, plan, k)
     end_piece, end_level = llab[end_local].copy(), lz[end_local].copy()
     store.put(k, "level", lz)
     store.put(k, "state", lstate)

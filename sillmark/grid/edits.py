@@ -306,8 +306,12 @@ def _edit(feature: Any, index: int, label: str, crs: pyproj.CRS, grid: Any) -> E
 
 def _fractional(grid: Any, xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Fractional (column, row) positions of points in the grid's CRS."""
-    inverse = ~grid.transform
-    cols, rows = inverse * (xy[:, 0], xy[:, 1])
+    t = grid.transform
+    x = xy[:, 0] - t.c
+    y = xy[:, 1] - t.f
+    det = t.a * t.e - t.b * t.d
+    cols = (t.e * x - t.b * y) / det
+    rows = (t.a * y - t.d * x) / det
     return np.asarray(cols, dtype=np.float64), np.asarray(rows, dtype=np.float64)
 
 
