@@ -10,6 +10,7 @@ It writes, next to this file:
     riverbend_assets.csv     points of concern: name,kind,x,y in the DEM CRS
     riverbend_assets.geojson the same points in WGS84 (RFC 7946)
     river.geojson            the river centreline in WGS84, to mark as an outlet
+    ford_road_culvert.geojson  an edits file: a culvert under Ford Road (WGS84)
 
 Everything here is made up for the demo: the town, the river, the terrain and the
 assets. The coordinates only place the grid in a real projected CRS; the DEM does
@@ -96,6 +97,12 @@ ROAD_POINTS = [  # (col, row, crest elevation); None = the brook sag sets it
 ]
 ROAD_LOW = 48.00  # crest where Ford Road dips over Kiln Brook: no culvert
 ROAD_SAG_LENGTH = 30.0  # m from the low spot at which the crest is 1 m higher
+# A culvert the DEM does not show, for the edits file: under the road's low spot
+# from the brook bed behind the road (south, first end) to the bed on the river
+# side (north, last end), (col, row) of cell centres; invert just below the
+# southern bed.
+FORD_CULVERT = ((1505.5, 1292.5), (1505.5, 1273.5))
+FORD_CULVERT_INVERT = 47.20
 ROAD_CREST_HALF_WIDTH, ROAD_SIDE_SLOPE = 3.5, 0.5
 
 # ---------------------------------------------------- Torvey Mill gravel pit lake
@@ -535,6 +542,16 @@ def write_vectors() -> None:
     }]}
     _write_text(HERE / "river.geojson", json.dumps(river) + "\n")
 
+    ends = [to_wgs84.transform(*xy_of(c, r)) for c, r in FORD_CULVERT]
+    culvert = {"type": "FeatureCollection", "features": [{
+        "type": "Feature",
+        "properties": {"kind": "culvert", "name": "Ford Road culvert",
+                       "invert": FORD_CULVERT_INVERT},
+        "geometry": {"type": "LineString",
+                     "coordinates": [[round(lon, 7), round(lat, 7)] for lon, lat in ends]},
+    }]}
+    _write_text(HERE / "ford_road_culvert.geojson", json.dumps(culvert, indent=1) + "\n")
+
 
 def main() -> None:
     rng = np.random.default_rng(SEED)
@@ -569,7 +586,8 @@ def main() -> None:
     print(f"  flood bank notch {LEVEE_NOTCH:.2f} m at col {nc:.0f}, row {nr:.0f}; "
           f"Ford Road low spot {ROAD_LOW:.2f} m at col {lc:.0f}, row {lr:.0f}")
     print(f"  Hollows: saddles {HOLLOWS_SADDLE_WM:.2f} / {HOLLOWS_SADDLE_ME:.2f} m, sill {HOLLOWS_SILL:.2f} m")
-    print(f"  wrote riverbend_assets.csv/.geojson ({len(ASSETS)} assets) and river.geojson")
+    print(f"  wrote riverbend_assets.csv/.geojson ({len(ASSETS)} assets), river.geojson "
+          "and ford_road_culvert.geojson")
 
 
 if __name__ == "__main__":

@@ -48,25 +48,27 @@ from typing import Any
 
 import numpy as np
 
+from sillmark.engine.culverts import CulvertEdges, culvert_edges
 from sillmark.engine.depressions import DepressionTable, directions
 from sillmark.engine.executors import Executor, ThreadExecutor
 from sillmark.engine.flood import DEFAULT_TILE_SIZE as MEMORY_TILE_SIZE
 from sillmark.engine.flood import SpillResult, priority_flood
 from sillmark.engine.pipeline import TiledFlood, run_pipeline
 from sillmark.engine.plan import TilePlan
-from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.engine.stores import FileStore, MemoryStore
+from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import DEM
 from sillmark.grid.dem_grid import read_dem_grid
-from sillmark.grid.outlets import Outlets, build_outlets
+from sillmark.grid.edits import Edits, read_edits
 from sillmark.grid.outlet_plan import plan_outlets
+from sillmark.grid.outlets import Outlets, build_outlets
 from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
-from sillmark.io.summary import FILE_NAMES, write_table_summary
+from sillmark.io.summary import FILE_NAMES, add_summary_member, write_table_summary
 
 __all__ = ["STORES", "TILED_FILE_NAMES", "TILED_TILE_SIZE", "Analysis", "analyse"]
 
@@ -118,7 +120,11 @@ class Analysis:
     hierarchy : object
         The depression hierarchy written (in memory, or the tiled summary of it).
     grid : DEM or DEMGrid
-        The grid the files describe.
+        The grid the files describe (with the edits in place, for a DEM in memory).
+    edits : Edits or None
+        The edits the DEM was analysed with.
+    edit_changes : list of int or None
+        Per edit, the cells it changed (0 for a culvert).
     """
 
     depressions: DepressionTable
@@ -136,6 +142,8 @@ class Analysis:
     result: SpillResult | None
     hierarchy: Any
     grid: Any
+    edits: Edits | None = None
+    edit_changes: list | None = None
 
 
 def analyse(
@@ -152,6 +160,7 @@ def analyse(
     crs: Any = None,
     progress: Progress | None = None,
     derived: bool = True,
+    edits: Any = None,
 ) -> Analysis:
     """Analyse a DEM and write every result file into ``out``.
 
@@ -185,6 +194,12 @@ def analyse(
         :data:`TILED_FILE_NAMES`, to which
         :func:`sillmark.io.results_folder.add_depression_outlines` and
         :func:`sillmark.io.results_folder.add_hierarchy_files` add.
+    edits : path, GeoJSON text, dict or Edits, optional
+        Culverts, flap valves, barriers and breaches
+        (:func:`sillmark.grid.edits.read_edits`). Barriers and breaches change
+        a copy of the elevations, which the result files describe; culverts
+        are extra edges of the flood graph. ``summary.json`` records them
+        under ``edits``. A DEM file read tile by tile takes culverts only.
 
     Returns
     -------
@@ -211,12 +226,15 @@ def analyse(
         try:
             if isinstance(dem, DEM):
                 run = _analyse_in_memory(dem, outlets, temporary, executor, tiles, tile_size,
-                                         connectivity, progress)
+                                         connectivity, progress, edits)
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
-                                        connectivity, band, vertical_unit, crs, progress)
+                                        connectivity, band, vertical_unit, crs, progress, edits)
                 if derived:
                     run = _add_derived(run, temporary, executor, progress)
+            if run.edits is not None:  # after every writer of summary.json
+                add_summary_member(temporary / FILE_NAMES[-1], "edits",
+                                   _edits_member(run.edits, run.edit_changes))
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
@@ -243,15 +261,42 @@ def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Pa
     return [target / name for name in names]
 
 
+def _placed_edits(edits: Any, grid: Any) -> Edits | None:
+    if edits is None or isinstance(edits, Edits):
+        if edits is not None and tuple(edits.shape) != tuple(grid.shape):
+            raise InvalidParameter(f"the edits were placed on a grid of {edits.shape[0]} x "
+                                   f"{edits.shape[1]} cells, not this DEM's")
+        return edits
+    return read_edits(edits, grid)
+
+
+def _culverts(placed: Edits, shape, elevation=None) -> CulvertEdges | None:
+    """The culverts of placed edits as extra edges of the flood graph (None without any)."""
+    if not placed.culverts:
+        return None
+    return culvert_edges(shape, **placed.culvert_ends(), elevation=elevation)
+
+
+def _edits_member(placed: Edits, changes: list[int] | None) -> dict:
+    return {"source": placed.source, "features": placed.summary(changes)}
+
+
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,
-                       progress) -> Analysis:
+                       progress, edits=None) -> Analysis:
     if not isinstance(outlets, Outlets):
         outlets = build_outlets(dem, tuple(outlets), connectivity=connectivity)
+    placed = _placed_edits(edits, dem)
+    culverts = changes = None
+    if placed is not None:
+        # The engine and every file see the edited copy; the caller's DEM stays as it was.
+        edited, changes = placed.apply(dem.elevation)
+        culverts = _culverts(placed, dem.shape, edited)
+        dem = dataclasses.replace(dem, elevation=edited)
     tile = MEMORY_TILE_SIZE if tile_size is None else tile_size
     t0 = time.perf_counter()
     result = priority_flood(dem.elevation, outlets.mask, connectivity=connectivity,
                             row_areas=dem.row_areas, transform=dem.transform, tile_size=tile,
-                            executor=executor, store=tiles)
+                            executor=executor, store=tiles, culverts=culverts)
     seconds = {"engine": time.perf_counter() - t0}
     t0 = time.perf_counter()
     written = write_result_files(result, dem, outlets, folder, progress=progress)
@@ -264,22 +309,30 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
         valid_cells=int(np.count_nonzero(dem.valid)), unreached_cells=result.unreached_cells,
         outlet_cells=int(outlets.count), outlet_sources=tuple(outlets.sources),
         heap_pops=result.heap_pops, files=files, seconds=seconds, result=result,
-        hierarchy=hierarchy, grid=dem,
+        hierarchy=hierarchy, grid=dem, edits=placed, edit_changes=changes,
     )
 
 
 def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, connectivity, band,
-                      vertical_unit, crs, progress) -> Analysis:
+                      vertical_unit, crs, progress, edits=None) -> Analysis:
     tile = TILED_TILE_SIZE if tile_size is None else tile_size
     TilePlan(rows=1, cols=1, tile=tile)  # refuse a bad tile size and connectivity first
     directions(connectivity)
     grid = read_dem_grid(dem_path, band=band, vertical_unit=vertical_unit, crs=crs)
+    placed = _placed_edits(edits, grid)
+    if placed is not None and len(placed.culverts) < len(placed):
+        ground = next(e for e in placed.items if e.kind != "culvert")
+        raise InvalidParameter(
+            f"{placed.source}: {ground.label}: barriers and breaches change the elevations, "
+            "which the tiled engine's outlines and hierarchy read from the DEM file; run "
+            "without --tiles, or write the edited DEM first (nothing was written)")
     plan = plan_outlets(grid, outlets, connectivity=connectivity)
     flood = run_pipeline(RasterTiles(grid, plan), executor=executor, store=tiles,
                          tile_size=tile, connectivity=connectivity, row_areas=grid.row_areas,
                          transform=grid.transform, progress=progress,
                          check_outlets=lambda counts, all_valid: plan.check(
-                             counts, all_valid=all_valid))
+                             counts, all_valid=all_valid),
+                         culverts=None if placed is None else _culverts(placed, grid.shape))
     seconds = dict(flood.seconds)
 
     def report(step: str, done: int, total: int) -> None:
@@ -307,7 +360,8 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
         tile_size=flood.tile_size, tiles=flood.tiles, valid_cells=flood.valid_cells,
         unreached_cells=flood.unreached_cells, outlet_cells=flood.outlet_cells,
         outlet_sources=plan.sources, heap_pops=flood.heap_pops, files=files, seconds=seconds,
-        result=None, hierarchy=None, grid=grid,
+        result=None, hierarchy=None, grid=grid, edits=placed,
+        edit_changes=None if placed is None else [0] * len(placed),
     )
 
 

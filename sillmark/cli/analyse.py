@@ -154,14 +154,25 @@ def run_analyse(args: argparse.Namespace) -> int:
         dem, outlets, connectivity = _read_site(args.dem, args, progress)
         progress.start("flood")
         out_dir = Path(args.out)
-        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step)
+        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step,
+                      edits=args.edits)
         progress.done()
     finally:
         progress.close()
-    for line in summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
-                               run.hierarchy):
+    lines = summary_lines(run.result, run.grid, outlets, out_dir, run.files, sys.stdout,
+                          run.hierarchy)
+    for line in lines[:2] + edit_lines(run) + lines[2:]:
         print(line)
     return EXIT_OK
+
+
+def edit_lines(run) -> list[str]:
+    """What each edit of a run was and the cells it touched (nothing without edits)."""
+    if run.edits is None:
+        return []
+    head = f"Edits: {len(run.edits)} from {run.edits.source}"
+    return [head] + ["  " + line for line in run.edits.describe(
+        run.grid.vertical_unit, None, run.edit_changes)]
 
 
 TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
@@ -206,7 +217,7 @@ def tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progres
             os.path.abspath(dem_path), tuple(args.outlets or ("edge",)), out_dir,
             executor=executor, store="files", tile_size=args.tiles, connectivity=connectivity,
             band=args.band, vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
-            derived=derived,
+            derived=derived, edits=getattr(args, "edits", None),
         )
     where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
     engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
@@ -229,7 +240,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
         progress.close()
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
     lines = summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout, run.hierarchy)
-    lines.insert(2, engine)
+    lines[2:2] = [engine] + edit_lines(run)
     for line in lines:
         print(line)
     return EXIT_OK

@@ -249,6 +249,12 @@ def build_parser() -> argparse.ArgumentParser:
         "--out", required=True, metavar="DIR",
         help="folder for the result files; created if missing, Sillmark's own file names replaced",
     )
+    analyse.add_argument(
+        "--edits", metavar="FILE",
+        help="a GeoJSON of edits to the ground water sees: features with 'kind' culvert "
+             "(LineString, 'invert', optional 'one_way'), barrier (LineString, 'crest') or "
+             "breach (LineString or Polygon, 'level'); RFC 7946 lon/lat or a named 'crs'",
+    )
     _add_site_options(analyse, connectivity_default=8)
     _add_tiled_options(analyse, "analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; "
                        "the same files as without --tiles (the hierarchy files from "

@@ -8,7 +8,7 @@ Each feature carries a ``kind`` property:
     A LineString whose first and last vertices are the two ends, with an
     ``invert`` level (the site's vertical unit). The cells under the line are
     not changed: the culvert is one extra edge of the flood graph between the
-    two end cells (:mod:`sillmark.engine.culverts`). ``one_way: true`` makes
+    two end cells (the engine's ``culverts``). ``one_way: true`` makes
     it a flap valve, passing water from the first vertex to the last only.
 ``barrier``
     A LineString with a ``crest`` level. Every cell the line crosses is raised
@@ -45,10 +45,10 @@ import pyproj
 import shapely
 from shapely.geometry import shape as shapely_shape
 
-from sillmark.engine.culverts import CulvertEdges, culvert_edges
-from sillmark.errors import InvalidEdits, InvalidOutlets, SillmarkError
+from sillmark.errors import InvalidEdits, InvalidOutlets
 from sillmark.grid.georeference import linear_unit_metres
 from sillmark.grid.outlet_geojson import burn, load_geojson, outlets_crs, reproject
+from sillmark.units import level_text
 
 __all__ = ["EDIT_KINDS", "Edit", "Edits", "read_edits"]
 
@@ -142,32 +142,33 @@ class Edits:
             z[r, c] = new
         return z, changed
 
-    def culvert_edges(self, elevation: np.ndarray | None = None) -> CulvertEdges | None:
-        """The culverts as edges of the flood graph (None without culverts)."""
-        found = self.culverts
-        if not found:
-            return None
-        try:
-            return culvert_edges(
-                self.shape, [e.rows[0] for e in found], [e.cols[0] for e in found],
-                [e.rows[1] for e in found], [e.cols[1] for e in found],
-                [e.level for e in found], [e.one_way for e in found], elevation=elevation)
-        except SillmarkError as exc:  # numbered among culverts: name the feature instead
-            text = str(exc)
-            k = int(text.split(":")[0].split()[-1]) if text.startswith("culvert ") else 0
-            raise InvalidEdits(f"{self.source}: {found[k].label}: "
-                               f"{text.split(': ', 1)[-1]}") from None
+    def culvert_ends(self) -> dict[str, np.ndarray]:
+        """The culverts as plain arrays: both ends' rows and columns, inverts, one-way flags.
 
-    def describe(self, unit_symbol: str, datum: str, changed: list[int] | None = None) -> list[str]:
-        """One line per edit, as the command line prints it."""
+        What :func:`sillmark.engine.culverts.culvert_edges` takes (``a_rows``,
+        ``a_cols``, ``b_rows``, ``b_cols``, ``invert``, ``one_way``).
+        """
+        found = self.culverts
+        return {
+            "a_rows": np.array([e.rows[0] for e in found], dtype=np.int64),
+            "a_cols": np.array([e.cols[0] for e in found], dtype=np.int64),
+            "b_rows": np.array([e.rows[1] for e in found], dtype=np.int64),
+            "b_cols": np.array([e.cols[1] for e in found], dtype=np.int64),
+            "invert": np.array([e.level for e in found], dtype=np.float64),
+            "one_way": np.array([e.one_way for e in found], dtype=bool),
+        }
+
+    def describe(self, unit: Any, datum: str | None = None,
+                 changed: list[int] | None = None) -> list[str]:
+        """One line per edit, as the command line prints it (levels with their datum)."""
         lines = []
         for k, e in enumerate(self.items):
-            level = f"{e.level:.2f} {unit_symbol} {datum}"
+            level = level_text(e.level, unit, datum)
             if e.kind == "culvert":
-                way = "first to last end only" if e.one_way else "both ways"
+                way = "from the first end to the last only" if e.one_way else "both ways"
                 lines.append(
-                    f"{e.label}: invert {level}, ends at ({e.x[0]:.2f}, {e.y[0]:.2f}) and "
-                    f"({e.x[1]:.2f}, {e.y[1]:.2f}), water passes {way}; 2 cells joined")
+                    f"{e.label}: invert {level}; joins the cells at ({e.x[0]:.2f}, "
+                    f"{e.y[0]:.2f}) and ({e.x[1]:.2f}, {e.y[1]:.2f}), water passing {way}")
                 continue
             verb = "raised to" if e.kind == "barrier" else "lowered to"
             what = "crest" if e.kind == "barrier" else "level"

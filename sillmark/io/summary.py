@@ -9,7 +9,7 @@ import datetime
 import json
 import os
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -145,6 +145,14 @@ def write_summary(
     if final.name not in names:
         names.append(final.name)
     return write_json(final, _summary(result, dem, outlets, names))
+
+
+def add_summary_member(path: str | os.PathLike, name: str, value: Any) -> Path:
+    """Add (or replace) one top-level member of a written ``summary.json``, atomically."""
+    final = Path(path)
+    payload = json.loads(final.read_text(encoding="utf-8"))
+    payload[name] = value
+    return write_json(final, payload)
 
 
 @dataclasses.dataclass(frozen=True)

@@ -12,6 +12,7 @@ import numpy as np
 import pyproj
 import pytest
 
+from sillmark.engine.culverts import culvert_edges
 from sillmark.engine.flood import priority_flood
 from sillmark.errors import InvalidEdits
 from sillmark.grid.dem import dem_from_array
@@ -57,7 +58,8 @@ AROUND_MIDDLE = [[[X0 + 3.2, Y0 - 2.8], [X0 + 3.8, Y0 - 2.8], [X0 + 3.8, Y0 - 2.
 
 def flood_with(edits, dem):
     z, changed = edits.apply(dem.elevation)
-    return priority_flood(z, RIVER, culverts=edits.culvert_edges(z)), changed
+    culverts = culvert_edges(z.shape, **edits.culvert_ends()) if edits.culverts else None
+    return priority_flood(z, RIVER, culverts=culverts), changed
 
 
 def test_the_levee_alone_holds_the_land_to_its_crest():
@@ -136,8 +138,8 @@ def test_a_culvert_given_in_lon_lat_joins_the_cells_of_its_ends():
     assert (e.rows.tolist(), e.cols.tolist()) == ([2, 2], [1, 5])
     r, _ = flood_with(edits, dem)
     assert np.all(r.onset_stage[LAND] == 3.0)
-    lines = edits.describe("m", "datum not stated")
-    assert "culvert 'C1'" in lines[0] and "invert 2.50 m" in lines[0]
+    lines = edits.describe("m")
+    assert "culvert 'C1'" in lines[0] and "invert 2.50 m, datum not stated" in lines[0]
 
 
 @pytest.mark.parametrize(("bad", "words"), [
