@@ -5,6 +5,7 @@ result file once (:func:`sillmark.run.analyse`), in memory or tile by tile on Da
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 from pathlib import Path
@@ -80,6 +81,11 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
     from sillmark.io.summary import read_summary
 
     summary = read_summary(folder)
+    if "edits" in json.loads((folder / "summary.json").read_text(encoding="utf-8")):
+        raise InvalidParameter(
+            f"the analysis in {folder} was made with edits (see 'edits' in its summary.json), "
+            "which this command does not re-apply yet; give the DEM file as SOURCE to work "
+            "on the ground as it is")
     rows, cols = summary.shape
     dem_text = summary.dem_file(instead="give the DEM file as SOURCE")
     unit, crs, sources = summary.vertical_unit, summary.crs, list(summary.outlet_sources)

@@ -119,3 +119,19 @@ def test_a_dem_read_by_tiles_takes_culverts_across_tile_edges_but_not_barriers(t
         analyse(str(dem), ["edge"], tmp_path / "refused", edits=write_edits(tmp_path, wall),
                 tile_size=3, executor=SerialExecutor())
     assert not (tmp_path / "refused" / "summary.json").exists()
+
+
+def test_stage_refuses_a_folder_analysed_with_edits(tmp_path, capsys):
+    # Re-running the engine on the bare DEM would not give the folder's onset
+    # stage; the command says so instead of reporting a changed DEM.
+    dem = basin(tmp_path)
+    edits = write_edits(
+        tmp_path,
+        {"type": "Feature", "properties": {"kind": "culvert", "invert": 3.0},
+         "geometry": {"type": "LineString", "coordinates": [centre(4, 4), centre(4, 0)]}})
+    code, _, err = run_cli(capsys, "analyse", str(dem), "--edits", str(edits),
+                           "--out", str(tmp_path / "edited"))
+    assert code == 0, err
+    code, out, err = run_cli(capsys, "stage", str(tmp_path / "edited"), "--level", "5",
+                             "--out", str(tmp_path / "stage"))
+    assert_one_line_error(code, out, err, "was made with edits")
