@@ -253,6 +253,19 @@ def build_parser() -> argparse.ArgumentParser:
     _add_tiled_options(analyse, "analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; "
                        "the same files as without --tiles (the hierarchy files from "
                        "windows of depressions)")
+    reach = analyse.add_argument_group("a sloped river and places cut off")
+    reach.add_argument(
+        "--profile", default=None, metavar="FILE",
+        help="GeoJSON of the river's centreline (one LineString, also an outlet) and two or "
+        "more stations (Points with a 'level'): add onset_offset.tif (rise of the whole "
+        "profile at which each cell gets wet) and profile_level.tif")
+    reach.add_argument(
+        "--refuge", default=None, metavar="FILE",
+        help="GeoJSON points or polygons of refuges (rest centres, high ground): add "
+        "cutoff_stage.tif, the level at which each place's last dry route to a refuge goes under")
+    reach.add_argument(
+        "--roads", default=None, metavar="FILE",
+        help="with --refuge: GeoJSON lines of the roads; routes to a refuge keep to them")
     analyse.set_defaults(run=run_analyse)
 
     stage = commands.add_parser(
@@ -269,6 +282,11 @@ def build_parser() -> argparse.ArgumentParser:
     stage.add_argument(
         "--level", dest="levels", type=_water_level, action="append", metavar="H",
         help=f"outlet water level in the site's vertical unit (repeatable, at most {MAX_LEVELS})",
+    )
+    stage.add_argument(
+        "--offset", dest="offsets", type=_water_level, action="append", metavar="D",
+        help="for a folder analysed with --profile: the files for the water-surface profile "
+        "raised by D (0 is the design profile; repeatable, instead of --level)",
     )
     stage.add_argument(
         "--table-step", type=_level_step, default=None, metavar="STEP",

@@ -16,6 +16,7 @@ from sillmark.cli.analyse import (
     site_from_folder,
     tiled_engine,
 )
+from sillmark import SCREENING_CAUTION as SCREENING
 from sillmark.cli.common import EXIT_OK, MAX_LEVELS, WRONG_UNIT_FACTOR
 from sillmark.cli.reports import Progress, stage_lines
 
@@ -24,6 +25,16 @@ def _stage_request(args: argparse.Namespace) -> None:
     """Checks of the stage options that need no DEM, made before anything is read."""
     from sillmark.errors import InvalidParameter
 
+    if args.offsets:
+        if args.levels:
+            raise InvalidParameter("give water levels (--level) or offsets of the profile "
+                                   "(--offset), not both in one call")
+        if args.assets is not None or args.raise_sill is not None:
+            raise InvalidParameter("--assets and --raise-sill work on water levels; drop them "
+                                   "with --offset")
+        if len(args.offsets) > MAX_LEVELS:
+            raise InvalidParameter(f"{len(args.offsets)} offsets given; at most {MAX_LEVELS} per call")
+        return
     levels = args.levels or []
     if len(levels) > MAX_LEVELS:
         raise InvalidParameter(
@@ -100,6 +111,8 @@ def run_stage(args: argparse.Namespace) -> int:
 
     _stage_request(args)
     source = Path(args.source)
+    if args.offsets:
+        return _run_stage_offsets(args)
     if args.tiles is not None or _tiled_folder(source):
         return _run_stage_tiled(args)
     if args.scheduler is not None or args.workers is not None:
@@ -301,3 +314,62 @@ def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress)
     path = write_what_if_csv(run.rows, dem, out_dir / name, height=height, notes=notes)
     progress(name, 1, 1)
     return path
+
+
+def _run_stage_offsets(args: argparse.Namespace) -> int:
+    """``stage FOLDER --offset D``: the water-level files of the profile raised by D,
+    read block by block from a folder analysed with ``--profile``."""
+    from functools import partial
+
+    from sillmark.errors import InvalidParameter
+    from sillmark.io.geotiff import read_window
+    from sillmark.io.reach_files import OFFSET_FILES
+    from sillmark.io.results_folder import open_result_folder
+    from sillmark.io.stage_files import level_text, write_stage_results
+    from sillmark.products.profile import OffsetSource
+    from sillmark.products.stage import stage_levels
+
+    folder = Path(args.source)
+    missing = [n for n in OFFSET_FILES if not (folder / n).is_file()]
+    if not folder.is_dir() or missing:
+        raise InvalidParameter(
+            f"--offset raises a river's water-surface profile; give the folder of 'sillmark "
+            f"analyse DEM --profile FILE' as SOURCE ({folder} "
+            f"{'is no folder' if not folder.is_dir() else 'lacks ' + ', '.join(missing)})")
+    given = [option for option, value in (
+        ("--outlet", args.outlets), ("--connectivity", args.connectivity),
+        ("--vertical-unit", args.vertical_unit), ("--crs", args.crs), ("--tiles", args.tiles),
+    ) if value is not None]
+    if given:
+        raise InvalidParameter(f"{', '.join(given)} cannot change the analysis in {folder}; drop them")
+    show = not args.quiet and sys.stderr.isatty()
+    progress = Progress(show, phases=("read", "export"))
+    out_dir = Path(args.out)
+    try:
+        progress.start("read")
+        site = open_result_folder(folder, band=args.band)
+        source = OffsetSource(base=site, offset_window=partial(read_window, folder / OFFSET_FILES[0]),
+                              reference_window=partial(read_window, folder / OFFSET_FILES[1]))
+        progress.done()
+        table_levels = None
+        if args.table_step is not None:
+            table_levels = stage_levels(source, step=args.table_step, start=args.table_from,
+                                        stop=args.table_to)
+        progress.start("export")
+        written = write_stage_results(source, out_dir, levels=args.offsets,
+                                      table_levels=table_levels, progress=progress.file)
+        progress.done()
+    finally:
+        progress.close()
+    sym = source.unit.symbol
+    low, high = source.onset_range
+    print(f"Profile offsets from {folder}: the design water-surface profile raised by each "
+          f"offset (cells get wet from offset {level_text(low)} to {level_text(high)} {sym})")
+    for level in written.levels:
+        print(f"  offset {level_text(level.level)} {sym}: flooded {level.flooded_area_m2 / 1e4:,.2f} ha, "
+              f"{level.flooded_volume_m3:,.0f} m3; shielded low ground "
+              f"{level.shielded_area_m2 / 1e4:,.2f} ha")
+    for path in written.paths:
+        print(f"  wrote {path}")
+    print(f"Caution: {SCREENING}")
+    return EXIT_OK

@@ -68,6 +68,7 @@ class Profile:
     length: float
     label: str
     scale_x: float
+    source_line: dict = dataclasses.field(default_factory=dict)
 
     def level_at(self, chainage: np.ndarray) -> np.ndarray:
         """The reference level at ``chainage``, linear between stations, flat beyond."""
@@ -77,9 +78,10 @@ class Profile:
         """The cells the centreline passes through (an outlet mask)."""
         return burn([self.line], dem)
 
-    def as_geojson(self) -> dict:
-        """The centreline as a GeoJSON geometry in the DEM's CRS (for outlet specs)."""
-        return shapely.geometry.mapping(self.line)
+    def as_outlet(self) -> dict:
+        """The centreline alone as GeoJSON in the file's own CRS: an outlet source
+        (:func:`sillmark.grid.outlets.build_outlets`)."""
+        return self.source_line
 
 
 def _feature_list(obj: Any, label: str) -> list[dict]:
@@ -127,6 +129,7 @@ def read_profile(source: str | os.PathLike | dict, dem: Any) -> Profile:
         kind = geometry.get("type") if isinstance(geometry, dict) else None
         if kind == "LineString":
             lines.append(_shape(geometry, where))
+            line_feature = {"type": "Feature", "properties": {}, "geometry": geometry}
         elif kind == "Point":
             level = props.get("level") if isinstance(props, dict) else None
             if isinstance(level, bool) or not isinstance(level, (int, float)) or not math.isfinite(level):
@@ -175,8 +178,11 @@ def read_profile(source: str | os.PathLike | dict, dem: Any) -> Profile:
         raise InvalidProfile(
             f"{label}: stations {a!r} and {b!r} fall at the same chainage with different "
             "levels; move one of them along the river")
+    source_line = {"type": "FeatureCollection", "features": [line_feature],
+                   **({"crs": obj["crs"]} if "crs" in obj else {})}
     return Profile(line=line, chainage=chainage, level=level, names=names,
-                   length=float(scaled.length), label=label, scale_x=scale_x)
+                   length=float(scaled.length), label=label, scale_x=scale_x,
+                   source_line=source_line)
 
 
 def _shape(geometry: dict, where: str) -> Any:

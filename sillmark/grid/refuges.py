@@ -16,7 +16,13 @@ from typing import Any
 import numpy as np
 
 from sillmark.errors import InvalidOutlets, InvalidRefuges
-from sillmark.grid.outlet_geojson import burn, collect_geometries, load_geojson, outlets_crs, reproject
+from sillmark.grid.outlet_geojson import (
+    burn,
+    collect_geometries,
+    load_geojson,
+    outlets_crs,
+    reproject,
+)
 
 __all__ = ["read_refuges", "read_roads"]
 

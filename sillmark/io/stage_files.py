@@ -142,13 +142,19 @@ class LevelFileNames:
         return iter(dataclasses.astuple(self))
 
 
-def level_file_names(level, unit: VerticalUnit | str) -> LevelFileNames:
+def level_file_names(level, unit: VerticalUnit | str, *, kind: str = "") -> LevelFileNames:
     """Names of the five files :func:`write_level` writes for ``level``.
+
+    ``kind`` names what the level is when it is not one water level across the
+    site: ``"offset"`` for a rise of a water-surface profile
+    (:class:`sillmark.products.profile.OffsetSource`).
 
     >>> list(level_file_names(47.6, "m"))[:2]
     ['depth_47.60m.tif', 'water_state_47.60m.tif']
+    >>> level_file_names(0.5, "m", kind="offset").depth
+    'depth_offset_0.50m.tif'
     """
-    h = level_label(level, unit)
+    h = f"{kind}_{level_label(level, unit)}" if kind else level_label(level, unit)
     return LevelFileNames(
         depth=f"depth_{h}.tif",
         water_state=f"water_state_{h}.tif",
@@ -161,9 +167,13 @@ def level_file_names(level, unit: VerticalUnit | str) -> LevelFileNames:
 # --------------------------------------------------------------------------- one level
 
 
-def _level_tags(level, unit: VerticalUnit, connectivity: int) -> dict[str, str]:
-    return {"WATER_LEVEL": level_text(level), "WATER_LEVEL_UNIT": unit.value,
+def _level_tags(level, unit: VerticalUnit, connectivity: int, kind: str = "") -> dict[str, str]:
+    tags = {"WATER_LEVEL": level_text(level), "WATER_LEVEL_UNIT": unit.value,
             "CONNECTIVITY": str(connectivity)}
+    if kind == "offset":
+        tags["WATER_LEVEL_MEANING"] = ("offset: rise of the whole water-surface profile; the water "
+                                       "surface is the profile level plus this offset")
+    return tags
 
 
 def _write_depth(source: "ResultSource", blocks: LevelBlocks, path: Path,
@@ -176,7 +186,8 @@ def _write_depth(source: "ResultSource", blocks: LevelBlocks, path: Path,
         layer="depth",
         description=f"depth of water reached from the outlets at water level "
         f"{level_text(blocks.level)} {unit.symbol} ({unit.symbol})",
-        band_unit=units.unit_name(unit), extra_tags=_level_tags(blocks.level, unit, source.connectivity),
+        band_unit=units.unit_name(unit), extra_tags=_level_tags(blocks.level, unit, source.connectivity,
+                                                               getattr(source, "level_kind", "")),
         progress=progress,
     )
 
@@ -190,7 +201,7 @@ def _write_water_state(source: "ResultSource", blocks: LevelBlocks, path: Path,
     explains them.
     """
     unit = source.unit
-    tags = _level_tags(blocks.level, unit, source.connectivity)
+    tags = _level_tags(blocks.level, unit, source.connectivity, getattr(source, "level_kind", ""))
     tags["WATER_STATE_CLASSES"] = _STATE_CODES
     tags.update({f"CLASS_{code}": CLASS_NAMES[code] for code in (NODATA, DRY, FLOODED, SHIELDED)})
     tags["WATER_STATE_MEANING"] = _STATE_MEANING
@@ -422,7 +433,8 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
     unit = source.unit
     h = checked_level(level)
     folder = _out_folder(out_dir)
-    names = level_file_names(h, unit)
+    kind = getattr(source, "level_kind", "")
+    names = level_file_names(h, unit, kind=kind)
     blocks = level_blocks(source, h)
     depth_path = _write_depth(source, blocks, folder / names.depth, progress)
     state_path = _write_water_state(source, blocks, folder / names.water_state, progress)
@@ -446,8 +458,10 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
         step(names.shielded, lambda: _write_class_geojson(
             source, float(h), (shielded_area, shielded_volume), state_path,
             folder / names.shielded, SHIELDED, "shielded", size)),
-        step(names.depressions, lambda: write_depressions_at_csv(source, float(h), folder / names.depressions)),
     )
+    if not kind:  # depressions belong to one water level across the site
+        paths += (step(names.depressions, lambda: write_depressions_at_csv(
+            source, float(h), folder / names.depressions)),)
     states, _ = depression_states(source, h)
     return LevelFiles(
         level=float(h), unit=unit, paths=paths,

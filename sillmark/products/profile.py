@@ -123,7 +123,7 @@ class ProfileTiles:
     def window(self, r0: int, r1: int, c0: int, c1: int) -> TileInput:
         z = np.ascontiguousarray(self.grid.read_window(r0, r1, c0, c1), dtype=np.float32)
         reference = reference_level(self.profile, self.grid, r0, r1, c0, c1)
-        transform = self.grid.transform * Affine.translation(c0, r0)
+        transform = self.grid.transform @ Affine.translation(c0, r0)
         seeds = rasterize_parts([], [self.profile.line], z.shape, transform) & ~np.isnan(z)
         return TileInput(z - reference, seeds, 0, r1 - r0, 0, c1 - c0, None)
 
@@ -142,6 +142,8 @@ class OffsetSource:
     base: Any
     offset_window: Any
     reference_window: Any
+    #: Levels of this source are offsets: file names and tags say so.
+    level_kind = "offset"
 
     @property
     def grid(self) -> Any:
