@@ -69,6 +69,7 @@ from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
 from sillmark.io.reach_files import (
     add_to_summary,
+    keep_input,
     write_cutoff_raster,
     write_offset_rasters,
 )
@@ -401,12 +402,15 @@ class _Reach:
     profile: Profile | None
     refuges: tuple[np.ndarray, str] | None
     roads: tuple[np.ndarray, str] | None
+    sources: dict
 
 
 def _read_reach(dem: DEM, profile, refuges, roads) -> _Reach:
+    sources = {k: v for k, v in (("profile", profile), ("refuges", refuges), ("roads", roads))
+               if v is not None}
     return _Reach(profile=None if profile is None else read_profile(profile, dem),
                   refuges=None if refuges is None else read_refuges(refuges, dem),
-                  roads=None if roads is None else read_roads(roads, dem))
+                  roads=None if roads is None else read_roads(roads, dem), sources=sources)
 
 
 def _with_centreline(dem: DEM, outlets, profile: Profile, connectivity: int) -> Outlets:
@@ -474,6 +478,7 @@ def _add_reach_layers(run: Analysis, reach: _Reach | None, folder: Path, executo
             "files": ["cutoff_stage.tif"],
         }
         seconds["cutoff"] = time.perf_counter() - t0
+    files += [keep_input(source, folder, what) for what, source in reach.sources.items()]
     summary = folder / FILE_NAMES[-1]
     add_to_summary(summary, [p.name for p in files], **members)
     listed = [p for p in run.files if p.name != summary.name]
@@ -497,6 +502,7 @@ def _add_tiled_offset(run: Analysis, profile_source, folder: Path, executor, sto
             grid, folder, offset=lambda r0, r1: flood.read("onset_stage", r0, r1),
             reference=lambda r0, r1: _reference_rows(profile, grid, r0, r1),
             profile_label=profile.label)
+        files.append(keep_input(profile_source, folder, "profile"))
     finally:
         tiles.close()
     member = _profile_member(profile, grid.vertical_unit, flood.outlet_cells, None)

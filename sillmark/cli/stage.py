@@ -10,13 +10,13 @@ import json
 import sys
 from pathlib import Path
 
+from sillmark import SCREENING_CAUTION as SCREENING
 from sillmark.cli.analyse import (
     TILED_STEPS,
     site_from_dem,
     site_from_folder,
     tiled_engine,
 )
-from sillmark import SCREENING_CAUTION as SCREENING
 from sillmark.cli.common import EXIT_OK, MAX_LEVELS, WRONG_UNIT_FACTOR
 from sillmark.cli.reports import Progress, stage_lines
 
@@ -134,6 +134,7 @@ def run_stage(args: argparse.Namespace) -> int:
         if args.table_step is not None:
             table_levels = stage_levels(ArraySource(dem, result), step=args.table_step,
                                         start=args.table_from, stop=args.table_to)
+        cut = _site_cutoff(source, dem, result) if source.is_dir() else None
         assets = what_if = None
         if args.assets is not None:
             from sillmark.grid.assets import read_assets
@@ -150,7 +151,12 @@ def run_stage(args: argparse.Namespace) -> int:
                                       table_levels=table_levels, progress=progress.file)
         asset_levels = []
         if assets is not None:
-            asset_levels = _write_asset_levels(result, dem, assets, written, out_dir, progress.file)
+            asset_levels = _write_asset_levels(result, dem, assets, written, out_dir, progress.file,
+                                               cutoff=cut)
+        if cut is not None:
+            written = _with_cutoff_ground(written, dem, out_dir, result.connectivity, progress.file,
+                                          cutoff_rows=lambda r0, r1: cut.stage[r0:r1],
+                                          onset_rows=lambda r0, r1: result.onset_stage[r0:r1])
         what_if_path = None
         if what_if is not None:
             what_if_path = _write_what_if(dem, what_if, args.raise_sill, out_dir, progress.file)
@@ -227,6 +233,16 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
         progress.start("export")
         written = write_stage_results(site, out_dir, levels=args.levels or [],
                                       table_levels=table_levels, progress=progress.file)
+        if (folder / "cutoff_stage.tif").is_file():
+            from functools import partial
+
+            from sillmark.io.geotiff import read_window
+
+            cols = site.grid.shape[1]
+            written = _with_cutoff_ground(
+                written, site.grid, out_dir, site.connectivity, progress.file,
+                cutoff_rows=lambda r0, r1: read_window(folder / "cutoff_stage.tif", r0, r1, 0, cols),
+                onset_rows=partial(_rows, site, "onset_stage"))
         progress.done()
     finally:
         progress.close()
@@ -239,7 +255,8 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -> list:
+def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress, *,
+                        cutoff=None) -> list:
     """Assess the assets at every written level and write their two files; return the tables."""
     from sillmark.io.asset_files import (
         asset_file_names,
@@ -250,7 +267,7 @@ def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -
 
     tables = []
     for level in written.levels:
-        table = assess_assets(assets, dem, result, level.level)
+        table = assess_assets(assets, dem, result, level.level, cutoff=cutoff)
         csv_name, geojson_name = asset_file_names(level.level, dem.vertical_unit)
         for name, write in ((csv_name, write_assets_csv), (geojson_name, write_assets_geojson)):
             progress(name, 0, 1)
@@ -373,3 +390,56 @@ def _run_stage_offsets(args: argparse.Namespace) -> int:
         print(f"  wrote {path}")
     print(f"Caution: {SCREENING}")
     return EXIT_OK
+
+
+def _rows(site, layer: str, r0: int, r1: int):
+    return site.window(layer, r0, r1, 0, site.grid.shape[1])
+
+
+def _site_cutoff(folder: Path, dem, result):
+    """The cut-off stage of a folder analysed with ``--refuge`` (recomputed from the
+    refuges and roads kept in it, and checked against ``cutoff_stage.tif``), or None."""
+    import numpy as np
+    import rasterio
+
+    from sillmark.errors import InvalidParameter
+    from sillmark.grid.refuges import read_refuges, read_roads
+    from sillmark.io.reach_files import CUTOFF_FILE, INPUT_COPIES
+    from sillmark.products.cutoff import cutoff_stage
+
+    if not (folder / CUTOFF_FILE).is_file():
+        return None
+    refuges, roads = folder / INPUT_COPIES["refuges"], folder / INPUT_COPIES["roads"]
+    if not refuges.is_file():
+        raise InvalidParameter(f"{folder} holds {CUTOFF_FILE} but not {refuges.name}; run "
+                               "'sillmark analyse' with --refuge again")
+    cut = cutoff_stage(result.onset_stage, read_refuges(refuges, dem)[0], valid=dem.valid,
+                       passable=read_roads(roads, dem)[0] if roads.is_file() else None,
+                       connectivity=result.connectivity)
+    with rasterio.open(folder / CUTOFF_FILE) as ds:
+        stored = ds.read(1)
+    if not np.array_equal(stored, cut.stage, equal_nan=True):
+        raise InvalidParameter(f"{folder / CUTOFF_FILE} no longer matches the refuges and roads "
+                               "kept beside it; run 'sillmark analyse' again")
+    return cut
+
+
+def _with_cutoff_ground(written, grid, out_dir: Path, connectivity: int, progress, *,
+                        cutoff_rows, onset_rows):
+    """Write the ground cut off at each level beside the level's files; return the
+    written set with those paths added to each level."""
+    import dataclasses
+
+    from sillmark.io.reach_files import cutoff_level_names, write_cutoff_level
+
+    levels = []
+    for level in written.levels:
+        names = cutoff_level_names(level.level, grid.vertical_unit)
+        for name in names:
+            progress(name, 0, 1)
+        paths = write_cutoff_level(grid, out_dir, level.level, cutoff_rows=cutoff_rows,
+                                   onset_rows=onset_rows, connectivity=connectivity)
+        for name in names:
+            progress(name, 1, 1)
+        levels.append(dataclasses.replace(level, paths=(*level.paths, *paths)))
+    return dataclasses.replace(written, levels=tuple(levels))

@@ -133,6 +133,8 @@ def asset_columns(table: AssetTable) -> dict[str, list]:
         "sill_is_own_cell": [bool(table.sill_is_own_cell[k]) if has[k] else None for k in range(n)],
         "route_cells": [int(c.shape[0]) if has[k] else None for k, c in enumerate(table.route_cells)],
     }
+    if table.cutoff is not None:
+        cols.update(_cutoff_columns(table, v, h))
     taken = {c.lower() for c in cols}
     keys: list[str] = []
     for asset in table.assets:
@@ -180,6 +182,36 @@ def _level_text(table: AssetTable) -> str:
     return np.format_float_positional(np.float32(table.level), unique=True, trim="-")
 
 
+def _bound_text(value: float) -> Any:
+    """A cut-off bound as a table holds it: a number, or words for the infinities."""
+    if math.isnan(value):
+        return None
+    if value == math.inf:
+        return "never"
+    if value == -math.inf:
+        return "always"
+    return float(np.float32(value))
+
+
+def _cutoff_columns(table: AssetTable, v: str, h: str) -> dict[str, list]:
+    """Cut-off stage, island window and the cell where the last route goes under first."""
+    cut = table.cutoff
+    n = len(table)
+    where = np.full((2, n), np.nan)
+    found = cut.cut_row >= 0
+    if found.any():
+        where[0, found], where[1, found] = table.dem.xy(cut.cut_row[found], cut.cut_col[found])
+    known = ~np.isnan(cut.stage)
+    return {
+        f"cutoff_stage_{v}": [_bound_text(x) for x in cut.stage],
+        f"island_from_{v}": [_bound_text(x) for x in cut.island_from],
+        f"island_to_{v}": [_bound_text(x) for x in cut.island_to],
+        "island_now": [bool(cut.is_island[k]) if known[k] else None for k in range(n)],
+        f"cut_at_x_{h}": _floats64(where[0]),
+        f"cut_at_y_{h}": _floats64(where[1]),
+    }
+
+
 def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
     """Write the asset table as CSV: ``# `` comment lines, a header, one row per asset.
 
@@ -209,6 +241,11 @@ def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
         "status: ok, outside DEM, on nodata, not reached; other than ok leaves the figures empty",
         "row, col, sill_row, sill_col: 0-based cell indices, rows from the top",
     ]
+    if table.cutoff is not None:
+        comments.append(
+            f"cutoff_stage_{v}: the level at which the asset's last dry route to a refuge goes "
+            f"under ('never', or 'always' when it has none); island_from_{v} to island_to_{v}: "
+            "the levels at which it is dry but cut off; cut_at_x/y: where that route goes under first")
     return write_table_csv(path, comments, _object_columns(columns, len(table)))
 
 

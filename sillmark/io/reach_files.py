@@ -82,3 +82,113 @@ def add_to_summary(path: str | os.PathLike, files: list[str], **members) -> Path
     payload["files"] = listed + [path.name]
     payload.update(members)
     return write_json(path, payload)
+
+
+def cutoff_level_names(level, unit) -> tuple[str, str]:
+    """Names of the cut-off ground files at one level.
+
+    >>> cutoff_level_names(47.6, "m")
+    ('cut_off_47.60m.tif', 'cut_off_47.60m.geojson')
+    """
+    from sillmark.io.stage_files import level_label
+
+    h = level_label(level, unit)
+    return f"cut_off_{h}.tif", f"cut_off_{h}.geojson"
+
+
+#: Codes of ``cut_off_{h}.tif``.
+CUT_OFF_CODES = "0 = not cut off (flooded, or a dry route to a refuge remains), 1 = cut off: " \
+    "dry but every route to a refuge is under water, 255 = nodata or off the routes allowed"
+
+
+def write_cutoff_level(grid, out_dir: str | os.PathLike, level, *,
+                       cutoff_rows: Callable[[int, int], np.ndarray],
+                       onset_rows: Callable[[int, int], np.ndarray],
+                       connectivity: int, window: int | None = None) -> list[Path]:
+    """Write the ground cut off at ``level``: ``cut_off_{h}.tif`` and ``cut_off_{h}.geojson``.
+
+    A cell is cut off when its cut-off stage ``k`` and onset stage ``s``
+    satisfy ``k <= h < s``: still dry, but its last dry route to a refuge is
+    under water (:mod:`sillmark.products.cutoff`). ``cutoff_rows(r0, r1)`` and
+    ``onset_rows(r0, r1)`` give rows of the two rasters (in memory or read from
+    a folder). Memory: one block of rows, then one outline window.
+    """
+    from functools import partial
+
+    from sillmark import SCREENING_CAUTION
+    from sillmark.grid import crs
+    from sillmark.io import geojson as geojson_files
+    from sillmark.io.geotiff import read_window
+    from sillmark.io.json_values import json_number
+    from sillmark.products.outlines import DEFAULT_WINDOW, label_outlines
+    from sillmark.products.stage import checked_level
+
+    h = checked_level(level)
+    unit = unit_of(grid)
+    tif_name, geojson_name = cutoff_level_names(h, unit)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    transformer = crs.wgs84_transformer(grid)  # fails before writing if there is no CRS
+    areas = np.asarray(grid.row_areas, dtype=np.float64)
+    total = [0.0]
+
+    def block(r0: int, r1: int) -> np.ndarray:
+        k = cutoff_rows(r0, r1)
+        s = onset_rows(r0, r1)
+        wet_at = np.where(np.isnan(s), np.float32(np.inf), s)
+        island = (k <= h) & (h < wet_at)
+        code = np.where(np.isnan(k), np.uint8(255), island.astype(np.uint8))
+        total[0] += float(np.count_nonzero(island, axis=1) @ areas[r0:r1])
+        return code
+
+    from sillmark.io.stage_files import level_text
+
+    tif = write_geotiff(out / tif_name, grid, dtype="uint8", nodata=255, block=block,
+                        layer="cut_off", band_unit="",
+                        description=f"ground cut off at water level {level_text(h)} {unit.symbol}: "
+                        + CUT_OFF_CODES,
+                        extra_tags={"WATER_LEVEL": level_text(h), "WATER_LEVEL_UNIT": unit.value,
+                                    "CUT_OFF_CODES": CUT_OFF_CODES})
+
+    def select(values: np.ndarray):
+        return values == 1, values.astype(np.int32)
+
+    size = window or min(max(grid.shape), DEFAULT_WINDOW)
+    found = label_outlines(partial(read_window, tif), tuple(grid.shape), grid.transform, select,
+                           window=size)
+    polygon = found.get(1)
+    properties = {"level": json_number(np.float32(h)), "unit": unit.value, "class": "cut off",
+                  "area_m2": json_number(total[0]), "area_ha": json_number(total[0] / 1e4),
+                  "caution": SCREENING_CAUTION}
+
+    def features():
+        if polygon is not None:
+            yield {"type": "Feature", "id": "cut off", "properties": properties,
+                   "geometry": geojson_files.wgs84_geometry(polygon, grid, transformer=transformer)}
+
+    path = geojson_files.write_feature_collection(out / geojson_name,
+                                                  {"name": "cut_off", **properties}, features())
+    return [tif, path]
+
+
+#: Copies of the inputs kept beside the results, so that later commands can use them.
+INPUT_COPIES = {"profile": "profile_input.geojson", "refuges": "refuges_input.geojson",
+                "roads": "roads_input.geojson"}
+
+
+def keep_input(source, folder: str | os.PathLike, what: str) -> Path:
+    """Copy an input GeoJSON (path, text or dict) into the folder as :data:`INPUT_COPIES`[what]."""
+    import shutil
+
+    from sillmark.io.atomic import atomic_output
+
+    path = Path(folder) / INPUT_COPIES[what]
+    if isinstance(source, dict):
+        return write_json(path, source)
+    if isinstance(source, str) and source.lstrip().startswith("{"):
+        with atomic_output(path) as tmp:
+            Path(tmp).write_text(source, encoding="utf-8")
+        return path
+    with atomic_output(path) as tmp:
+        shutil.copyfile(os.fspath(source), tmp)
+    return path

@@ -44,7 +44,7 @@ import numpy as np
 from sillmark.engine.flood import SpillResult, priority_flood
 from sillmark.errors import InvalidRefuges, LocationOutsideDEM
 
-__all__ = ["CutOff", "IslandWindow", "cutoff_stage", "island_window"]
+__all__ = ["AssetCutOff", "CutOff", "IslandWindow", "asset_cutoff", "cutoff_stage", "island_window"]
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -172,3 +172,69 @@ def island_window(cut: CutOff, row: int, col: int) -> IslandWindow:
     s = float(cut.onset_stage[row, col])
     end = math.inf if math.isnan(s) else s
     return IslandWindow(start=k, end=end, cut_at=cut.cut_cell(row, col))
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class AssetCutOff:
+    """The cut-off stage and island window of each asset, at one water level.
+
+    One entry per asset; NaN (and -1 in cell indices) for assets without
+    figures. With a road network, an asset reaches the roads at its nearest
+    road cell (``access_row``, ``access_col``); its cut-off stage is that
+    cell's, but never above the asset's own onset stage.
+
+    Attributes
+    ----------
+    stage : float64
+        The cut-off stage (``+inf`` never, ``-inf`` no route at any level).
+    island_from, island_to : float64
+        The island window ``island_from <= h < island_to`` (equal when empty).
+    is_island : bool
+        Whether the asset is an island at this level.
+    cut_row, cut_col : int64
+        The cell where its last route goes under first (-1 if none).
+    access_row, access_col : int64
+        The cell its routes start from.
+    """
+
+    stage: np.ndarray
+    island_from: np.ndarray
+    island_to: np.ndarray
+    is_island: np.ndarray
+    cut_row: np.ndarray
+    cut_col: np.ndarray
+    access_row: np.ndarray
+    access_col: np.ndarray
+
+
+def asset_cutoff(cut: CutOff, rows: np.ndarray, cols: np.ndarray, level: float) -> AssetCutOff:
+    """The cut-off figures of the assets at cells ``(rows, cols)`` (-1 for none) at ``level``."""
+    from scipy import ndimage
+
+    n = len(rows)
+    _, (near_r, near_c) = ndimage.distance_transform_edt(~cut.passable, return_indices=True)
+    out = {name: np.full(n, np.nan) for name in ("stage", "island_from", "island_to")}
+    ints = {name: np.full(n, -1, np.int64) for name in ("cut_row", "cut_col", "access_row", "access_col")}
+    island = np.zeros(n, bool)
+    h = np.float32(level)
+    for k in range(n):
+        r, c = int(rows[k]), int(cols[k])
+        if r < 0 or c < 0 or not cut.passable.any():
+            continue
+        ar, ac = (r, c) if cut.passable[r, c] else (int(near_r[r, c]), int(near_c[r, c]))
+        own = float(cut.onset_stage[r, c])
+        own = math.inf if math.isnan(own) else own
+        k_here = min(float(cut.stage[ar, ac]), own)
+        out["stage"][k] = k_here
+        out["island_from"][k] = k_here
+        out["island_to"][k] = own
+        island[k] = k_here <= h < own
+        ints["access_row"][k], ints["access_col"][k] = ar, ac
+        if math.isfinite(k_here):
+            if k_here == own and own < float(cut.stage[ar, ac]):
+                ints["cut_row"][k], ints["cut_col"][k] = r, c  # its own ground goes under first
+            else:
+                found = cut.cut_cell(ar, ac)
+                if found is not None:
+                    ints["cut_row"][k], ints["cut_col"][k] = found
+    return AssetCutOff(is_island=island, **out, **ints)

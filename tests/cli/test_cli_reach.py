@@ -7,6 +7,7 @@ a mound whose only road dips through a hollow); the working is shown there.
 
 from __future__ import annotations
 
+import csv
 import json
 from pathlib import Path
 
@@ -127,6 +128,24 @@ def test_cutoff_stage_along_the_roads(tmp_path, capsys):
     assert summary["cutoff"]["road_cells"] == 5 and "cutoff_stage.tif" in summary["files"]
     assert main(["analyse", str(dem), "--roads", str(roads), "--out", str(tmp_path / "x")]) != 0
     assert "refuges" in capsys.readouterr().err
+    # At level 4 the hollow (onset 3) is under water; the road beyond it (onset 6)
+    # and the village (onset 8) are dry but cut off: island window 3 <= h < 8.
+    assets = write_json(tmp_path / "assets.geojson", {"type": "FeatureCollection", "crs": UTM,
+        "features": [{"type": "Feature", "properties": {"name": "Mound Farm"},
+                      "geometry": {"type": "Point", "coordinates": [WEST + 4.5, y]}}]})
+    staged = tmp_path / "staged"
+    assert main(["stage", str(out), "--level", "4", "--assets", str(assets), "--out", str(staged),
+                 "-q"]) == 0
+    ground = read(staged / "cut_off_4.00m.tif")
+    assert ground[1].tolist() == [0, 0, 0, 1, 1, 255] and (ground[0] == 255).all()
+    outline = json.loads((staged / "cut_off_4.00m.geojson").read_text())
+    assert outline["area_m2"] == 2.0 and outline["caution"] == SCREENING_CAUTION
+    rows = [line for line in (staged / "assets_4.00m.csv").read_text().splitlines()
+            if not line.startswith("#")]
+    farm = next(csv.DictReader(rows))
+    figures = [float(farm[k]) for k in ("cutoff_stage_m", "island_from_m", "island_to_m",
+                                        "cut_at_x_m", "cut_at_y_m")]
+    assert figures == [3, 3, 8, WEST + 2.5, y] and farm["island_now"] == "true"
 
 
 def test_tiled_onset_offset_equals_in_memory(tmp_path):
