@@ -166,9 +166,29 @@ def run_stage(args: argparse.Namespace) -> int:
     lines = stage_lines(result, dem, outlets, out_dir, written, notes, origin, sys.stdout,
                          assets=assets, asset_levels=asset_levels, what_if=what_if,
                          what_if_path=what_if_path)
+    lines[-1:-1] = _island_lines(asset_levels)
     for line in lines:
         print(line)
     return EXIT_OK
+
+
+def _island_lines(asset_levels) -> list[str]:
+    """Assets that are islands (dry but cut off from every refuge) at each level."""
+    from sillmark.io.stage_files import level_text
+
+    out = []
+    for table, _paths in asset_levels:
+        cut = table.cutoff
+        if cut is None:
+            continue
+        sym = table.unit.symbol
+        names = [f"{table.name[k]} (cut off from {level_text(cut.island_from[k])} {sym}, "
+                 f"wet from {level_text(cut.island_to[k])} {sym})"
+                 for k in range(len(table)) if cut.is_island[k]]
+        head = f"Islands at {level_text(table.level)} {sym}"
+        out.append(f"{head}: {'; '.join(names)}" if names else
+                   f"{head}: none (no asset is dry but cut off from every refuge)")
+    return out
 
 
 def _tiled_folder(source: Path) -> bool:

@@ -190,7 +190,7 @@ def _bound_text(value: float) -> Any:
         return "never"
     if value == -math.inf:
         return "always"
-    return float(np.float32(value))
+    return np.format_float_positional(np.float32(value), unique=True, trim="-")
 
 
 def _cutoff_columns(table: AssetTable, v: str, h: str) -> dict[str, list]:
