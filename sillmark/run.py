@@ -65,8 +65,11 @@ from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
+from sillmark.io.readme import write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.summary import FILE_NAMES, write_table_summary
+from sillmark.io.vector_layers import vector_suffix
+from sillmark.products.significance import SiteMinimum
 
 __all__ = ["STORES", "TILED_FILE_NAMES", "TILED_TILE_SIZE", "Analysis", "analyse"]
 
@@ -119,6 +122,9 @@ class Analysis:
         The depression hierarchy written (in memory, or the tiled summary of it).
     grid : DEM or DEMGrid
         The grid the files describe.
+    significance : dict or None
+        The ``significance`` member of ``summary.json`` (minimum, source,
+        counts); None when every depression was listed without a minimum.
     """
 
     depressions: DepressionTable
@@ -136,6 +142,7 @@ class Analysis:
     result: SpillResult | None
     hierarchy: Any
     grid: Any
+    significance: dict | None = None
 
 
 def analyse(
@@ -152,6 +159,10 @@ def analyse(
     crs: Any = None,
     progress: Progress | None = None,
     derived: bool = True,
+    minimum: SiteMinimum | None = None,
+    accuracy_stated: bool = False,
+    full_inventory: bool = False,
+    vector_format: str = "geojson",
 ) -> Analysis:
     """Analyse a DEM and write every result file into ``out``.
 
@@ -185,6 +196,20 @@ def analyse(
         :data:`TILED_FILE_NAMES`, to which
         :func:`sillmark.io.results_folder.add_depression_outlines` and
         :func:`sillmark.io.results_folder.add_hierarchy_files` add.
+    minimum : SiteMinimum, optional
+        The significance minimum (:func:`sillmark.products.significance.site_minimum`):
+        depressions below it are not listed or mapped on their own, and only the
+        significant nodes get curves (a DEM in memory only). None lists every
+        depression.
+    accuracy_stated : bool
+        The minimum's vertical accuracy was given by the user, not the default.
+    full_inventory : bool
+        With a minimum: list and map every depression still, marked ``significant``.
+    vector_format : {"geojson", "gpkg", "auto"}
+        Of the depression outlines and spill points of a DEM in memory
+        (:mod:`sillmark.io.vector_layers`); the tiled path writes GeoJSON.
+
+    Every run also writes ``README.txt`` (:mod:`sillmark.io.readme`).
 
     Returns
     -------
@@ -199,6 +224,11 @@ def analyse(
     """
     if store not in STORES:
         raise InvalidParameter(f"store must be one of {', '.join(STORES)}, not {store!r}")
+    vector_suffix(vector_format, 0)  # refuse an unknown format before any work
+    if minimum is not None and not isinstance(dem, DEM):
+        raise InvalidParameter(
+            "the significance minimum needs the DEM in memory; the tiled engine lists every "
+            "depression (full inventory)")
     executor = ThreadExecutor() if executor is None else executor
     target = Path(out)
     if target.exists() and not target.is_dir():
@@ -211,12 +241,16 @@ def analyse(
         try:
             if isinstance(dem, DEM):
                 run = _analyse_in_memory(dem, outlets, temporary, executor, tiles, tile_size,
-                                         connectivity, progress)
+                                         connectivity, progress,
+                                         dict(minimum=minimum, accuracy_stated=accuracy_stated,
+                                              full_inventory=full_inventory,
+                                              vector_format=vector_format))
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
                                         connectivity, band, vertical_unit, crs, progress)
                 if derived:
                     run = _add_derived(run, temporary, executor, progress)
+                run = _with_readme(run, temporary)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
@@ -243,8 +277,20 @@ def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Pa
     return [target / name for name in names]
 
 
+def _with_readme(run: Analysis, folder: Path) -> Analysis:
+    """The tiled run's files with ``README.txt`` before ``summary.json``."""
+    names = [p.name for p in run.files]
+    readme = write_readme(folder, names, grid=run.grid,
+                          title=f"analysis of {getattr(run.grid, 'path', None) or 'a DEM'} "
+                                "(tiled engine, every depression listed)",
+                          connectivity=run.connectivity)
+    files = [p for p in run.files if p.name != FILE_NAMES[-1]] + [readme] + \
+        [p for p in run.files if p.name == FILE_NAMES[-1]]
+    return dataclasses.replace(run, files=files)
+
+
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,
-                       progress) -> Analysis:
+                       progress, listing: dict) -> Analysis:
     if not isinstance(outlets, Outlets):
         outlets = build_outlets(dem, tuple(outlets), connectivity=connectivity)
     tile = MEMORY_TILE_SIZE if tile_size is None else tile_size
@@ -254,7 +300,7 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
                             executor=executor, store=tiles)
     seconds = {"engine": time.perf_counter() - t0}
     t0 = time.perf_counter()
-    written = write_result_files(result, dem, outlets, folder, progress=progress)
+    written = write_result_files(result, dem, outlets, folder, progress=progress, **listing)
     files, hierarchy = written.paths, written.hierarchy
     seconds["write"] = time.perf_counter() - t0
     rows, cols = dem.shape
@@ -264,7 +310,7 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
         valid_cells=int(np.count_nonzero(dem.valid)), unreached_cells=result.unreached_cells,
         outlet_cells=int(outlets.count), outlet_sources=tuple(outlets.sources),
         heap_pops=result.heap_pops, files=files, seconds=seconds, result=result,
-        hierarchy=hierarchy, grid=dem,
+        hierarchy=hierarchy, grid=dem, significance=written.significance,
     )
 
 
@@ -347,7 +393,6 @@ def _write_file(flood: TiledFlood, grid, folder: str, what: str) -> list[str]:
                                                       if what == "depression_id" else None)))]
     if what == "depression_id":
         paths.append(str(write_depression_table_csv(flood.depressions, grid,
-                                                    out / "depressions.csv",
-                                                    connectivity=flood.connectivity)))
+                                                    out / "depressions.csv")))
     return paths
 
