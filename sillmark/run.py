@@ -281,8 +281,8 @@ def _with_readme(run: Analysis, folder: Path) -> Analysis:
     """The tiled run's files with ``README.txt`` before ``summary.json``."""
     names = [p.name for p in run.files]
     readme = write_readme(folder, names, grid=run.grid,
-                          title=f"analysis of {getattr(run.grid, 'path', None) or 'a DEM'} "
-                                "(tiled engine, every depression listed)",
+                          title=f"analysis of {Path(str(run.grid.path)).name} (tiled engine, "
+                                "every depression listed)",
                           connectivity=run.connectivity)
     files = [p for p in run.files if p.name != FILE_NAMES[-1]] + [readme] + \
         [p for p in run.files if p.name == FILE_NAMES[-1]]

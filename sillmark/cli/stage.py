@@ -300,7 +300,7 @@ def _stage_readme(out_dir: Path, paths, grid, connectivity: int, args: argparse.
     from sillmark.io.readme import write_readme
 
     return write_readme(out_dir, [Path(p).name for p in paths], grid=grid,
-                        title=f"water levels of {args.source}", connectivity=connectivity,
+                        title="the site at given outlet water levels", connectivity=connectivity,
                         notes=notes)
 
 

@@ -228,7 +228,7 @@ def write_result_files(
     summary_name = FILE_NAMES[-1]
     paths.append(step(README_NAME, lambda: write_readme(
         out, [p.name for p in paths] + [summary_name], grid=dem,
-        title=f"analysis of {getattr(dem, 'path', None) or 'a DEM'}",
+        title=f"analysis of {Path(dem.path).name if getattr(dem, 'path', None) else 'a DEM'}",
         connectivity=result.connectivity, significance=member)))
     paths.append(
         step(

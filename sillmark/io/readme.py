@@ -14,7 +14,6 @@ atomically.
 
 from __future__ import annotations
 
-import datetime
 import os
 import re
 import textwrap
@@ -123,7 +122,6 @@ def readme_text(
     connectivity: int | None = None,
     significance: Mapping[str, Any] | None = None,
     notes: Iterable[str] = (),
-    created_utc: str | None = None,
 ) -> str:
     """The text of ``README.txt`` for a folder (or ZIP) holding ``files``.
 
@@ -144,13 +142,13 @@ def readme_text(
         source and the counts.
     notes : iterable of str
         Further lines (e.g. which assets a what-if passed over).
-    created_utc : str, optional
-        Time stamp; default now.
+
+    The text holds no clock time, so the same results give the same guide
+    (``summary.json`` says when a run was made).
     """
     unit = VerticalUnit.parse(grid.vertical_unit)
     datum = (vertical_datum or "").strip() or NO_DATUM_TEXT
-    when = created_utc or datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-    out: list[str] = [f"Sillmark {__version__}: {title}", f"Written {when}.", ""]
+    out: list[str] = [f"Sillmark {__version__}: {title}", ""]
     out += _wrapped(f"CAUTION: {SCREENING_CAUTION}")
     out += ["", "Units"]
     out += _wrapped(f"Elevations, levels and depths are in {unit_name(unit)} ({unit.value}), "
