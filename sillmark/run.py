@@ -73,10 +73,13 @@ from sillmark.io.reach_files import (
     write_cutoff_raster,
     write_offset_rasters,
 )
+from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.summary import FILE_NAMES, write_table_summary
+from sillmark.io.vector_layers import vector_suffix
 from sillmark.products.cutoff import cutoff_stage
 from sillmark.products.profile import ProfileTiles, offset_flood
+from sillmark.products.significance import SiteMinimum
 
 __all__ = ["STORES", "TILED_FILE_NAMES", "TILED_TILE_SIZE", "Analysis", "analyse"]
 
@@ -132,6 +135,9 @@ class Analysis:
     reach : object or None
         With a profile or refuges: ``profile`` (what summary.json records of
         it) and ``cutoff`` (the :class:`~sillmark.products.cutoff.CutOff`, in memory).
+    significance : dict or None
+        The ``significance`` member of ``summary.json`` (minimum, source,
+        counts); None when every depression was listed without a minimum.
     """
 
     depressions: DepressionTable
@@ -150,6 +156,7 @@ class Analysis:
     hierarchy: Any
     grid: Any
     reach: Any = None
+    significance: dict | None = None
 
 
 def analyse(
@@ -166,6 +173,10 @@ def analyse(
     crs: Any = None,
     progress: Progress | None = None,
     derived: bool = True,
+    minimum: SiteMinimum | None = None,
+    accuracy_stated: bool = False,
+    full_inventory: bool = False,
+    vector_format: str = "geojson",
     profile: Any = None,
     refuges: Any = None,
     roads: Any = None,
@@ -210,6 +221,20 @@ def analyse(
         Refuges (points, polygons) add ``cutoff_stage.tif``
         (:mod:`sillmark.products.cutoff`); roads (lines) keep the routes to
         them on the road cells. A DEM held in memory only.
+    minimum : SiteMinimum, optional
+        The significance minimum (:func:`sillmark.products.significance.site_minimum`):
+        depressions below it are not listed or mapped on their own, and only the
+        significant nodes get curves (a DEM in memory only). None lists every
+        depression.
+    accuracy_stated : bool
+        The minimum's vertical accuracy was given by the user, not the default.
+    full_inventory : bool
+        With a minimum: list and map every depression still, marked ``significant``.
+    vector_format : {"geojson", "gpkg", "auto"}
+        Of the depression outlines and spill points of a DEM in memory
+        (:mod:`sillmark.io.vector_layers`); the tiled path writes GeoJSON.
+
+    Every run also writes ``README.txt`` (:mod:`sillmark.io.readme`).
 
     Returns
     -------
@@ -224,6 +249,11 @@ def analyse(
     """
     if store not in STORES:
         raise InvalidParameter(f"store must be one of {', '.join(STORES)}, not {store!r}")
+    vector_suffix(vector_format, 0)  # refuse an unknown format before any work
+    if minimum is not None and not isinstance(dem, DEM):
+        raise InvalidParameter(
+            "the significance minimum needs the DEM in memory; the tiled engine lists every "
+            "depression (full inventory)")
     executor = ThreadExecutor() if executor is None else executor
     if roads is not None and refuges is None:
         raise InvalidParameter("roads limit the routes to refuges; give the refuges with them")
@@ -246,7 +276,10 @@ def analyse(
         try:
             if isinstance(dem, DEM):
                 run = _analyse_in_memory(dem, outlets, temporary, executor, tiles, tile_size,
-                                         connectivity, progress)
+                                         connectivity, progress,
+                                         dict(minimum=minimum, accuracy_stated=accuracy_stated,
+                                              full_inventory=full_inventory,
+                                              vector_format=vector_format))
                 run = _add_reach_layers(run, reach, temporary, executor, progress)
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
@@ -257,6 +290,7 @@ def analyse(
                 if profile is not None:
                     run = _add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
+                run = _with_readme(run, temporary)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
@@ -283,8 +317,20 @@ def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Pa
     return [target / name for name in names]
 
 
+def _with_readme(run: Analysis, folder: Path) -> Analysis:
+    """The tiled run's files with ``README.txt`` before ``summary.json``."""
+    names = [p.name for p in run.files]
+    readme = write_readme(folder, names, grid=run.grid,
+                          title=f"analysis of {Path(str(run.grid.path)).name} (tiled engine, "
+                                "every depression listed)",
+                          connectivity=run.connectivity)
+    files = [p for p in run.files if p.name != FILE_NAMES[-1]] + [readme] + \
+        [p for p in run.files if p.name == FILE_NAMES[-1]]
+    return dataclasses.replace(run, files=files)
+
+
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,
-                       progress) -> Analysis:
+                       progress, listing: dict) -> Analysis:
     if not isinstance(outlets, Outlets):
         outlets = build_outlets(dem, tuple(outlets), connectivity=connectivity)
     tile = MEMORY_TILE_SIZE if tile_size is None else tile_size
@@ -294,7 +340,7 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
                             executor=executor, store=tiles)
     seconds = {"engine": time.perf_counter() - t0}
     t0 = time.perf_counter()
-    written = write_result_files(result, dem, outlets, folder, progress=progress)
+    written = write_result_files(result, dem, outlets, folder, progress=progress, **listing)
     files, hierarchy = written.paths, written.hierarchy
     seconds["write"] = time.perf_counter() - t0
     rows, cols = dem.shape
@@ -304,7 +350,7 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
         valid_cells=int(np.count_nonzero(dem.valid)), unreached_cells=result.unreached_cells,
         outlet_cells=int(outlets.count), outlet_sources=tuple(outlets.sources),
         heap_pops=result.heap_pops, files=files, seconds=seconds, result=result,
-        hierarchy=hierarchy, grid=dem,
+        hierarchy=hierarchy, grid=dem, significance=written.significance,
     )
 
 
@@ -389,8 +435,7 @@ def _write_file(flood: TiledFlood, grid, folder: str, what: str) -> list[str]:
                                                       if what == "depression_id" else None)))]
     if what == "depression_id":
         paths.append(str(write_depression_table_csv(flood.depressions, grid,
-                                                    out / "depressions.csv",
-                                                    connectivity=flood.connectivity)))
+                                                    out / "depressions.csv")))
     return paths
 
 
@@ -482,6 +527,11 @@ def _add_reach_layers(run: Analysis, reach: _Reach | None, folder: Path, executo
     summary = folder / FILE_NAMES[-1]
     add_to_summary(summary, [p.name for p in files], **members)
     listed = [p for p in run.files if p.name != summary.name]
+    if any(p.name == README_NAME for p in listed):  # describe the added files too
+        name = Path(dem.path).name if getattr(dem, "path", None) else "a DEM"
+        write_readme(folder, [p.name for p in [*listed, *files, summary]], grid=dem,
+                     title=f"analysis of {name}", connectivity=run.connectivity,
+                     significance=run.significance)
     return dataclasses.replace(run, files=[*listed, *files, summary], seconds=seconds,
                                reach=_ReachResult(profile=members.get("profile"),
                                                   cutoff=cut if reach.refuges is not None else None))

@@ -129,13 +129,17 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
 
 
 def run_analyse(args: argparse.Namespace) -> int:
+    from sillmark.errors import InvalidParameter
+    from sillmark.products.significance import site_minimum
     from sillmark.run import analyse
 
     if args.tiles is not None:
+        if args.vertical_accuracy is not None or args.full_inventory:
+            option = "--vertical-accuracy" if args.vertical_accuracy is not None else "--full-inventory"
+            raise InvalidParameter(f"{option} applies to the in-memory engine; the tiled engine "
+                                   "(--tiles) lists every depression: drop one of them")
         return _run_analyse_tiled(args)
     if args.scheduler is not None or args.workers is not None:
-        from sillmark.errors import InvalidParameter
-
         option = "--scheduler" if args.scheduler is not None else "--workers"
         raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
     show = not args.quiet and sys.stderr.isatty()
@@ -152,14 +156,18 @@ def run_analyse(args: argparse.Namespace) -> int:
 
     try:
         dem, outlets, connectivity = _read_site(args.dem, args, progress)
+        minimum = site_minimum(vertical_accuracy=args.vertical_accuracy, unit=dem.vertical_unit)
         progress.start("flood")
         out_dir = Path(args.out)
         run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step,
+                      minimum=minimum, accuracy_stated=args.vertical_accuracy is not None,
+                      full_inventory=args.full_inventory, vector_format=args.vector_format,
                       profile=args.profile, refuges=args.refuge, roads=args.roads)
         progress.done()
     finally:
         progress.close()
-    lines = summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout, run.hierarchy)
+    lines = summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
+                          run.hierarchy, significance=run.significance)
     for line in lines[:-1] + reach_lines(run, dem) + lines[-1:]:
         print(line)
     return EXIT_OK

@@ -148,7 +148,8 @@ def run_stage(args: argparse.Namespace) -> int:
         progress.start("export")
         out_dir = Path(args.out)
         written = write_stage_results(ArraySource(dem, result), out_dir, levels=args.levels or [],
-                                      table_levels=table_levels, progress=progress.file)
+                                      table_levels=table_levels, progress=progress.file,
+                                      vector_format=args.vector_format)
         asset_levels = []
         if assets is not None:
             asset_levels = _write_asset_levels(result, dem, assets, written, out_dir, progress.file,
@@ -158,8 +159,13 @@ def run_stage(args: argparse.Namespace) -> int:
                                           cutoff_rows=lambda r0, r1: cut.stage[r0:r1],
                                           onset_rows=lambda r0, r1: result.onset_stage[r0:r1])
         what_if_path = None
+        readme_notes = []
         if what_if is not None:
             what_if_path = _write_what_if(dem, what_if, args.raise_sill, out_dir, progress.file)
+            readme_notes = _what_if_notes(what_if)
+        files = [*written.paths, *(p for _, paths in asset_levels for p in paths),
+                 *([what_if_path] if what_if_path else [])]
+        _stage_readme(out_dir, files, dem, result.connectivity, args, readme_notes)
         progress.done()
     finally:
         progress.close()
@@ -252,7 +258,8 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
                                         stop=args.table_to)
         progress.start("export")
         written = write_stage_results(site, out_dir, levels=args.levels or [],
-                                      table_levels=table_levels, progress=progress.file)
+                                      table_levels=table_levels, progress=progress.file,
+                                      vector_format=args.vector_format)
         if (folder / "cutoff_stage.tif").is_file():
             from functools import partial
 
@@ -263,6 +270,7 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
                 written, site.grid, out_dir, site.connectivity, progress.file,
                 cutoff_rows=lambda r0, r1: read_window(folder / "cutoff_stage.tif", r0, r1, 0, cols),
                 onset_rows=partial(_rows, site, "onset_stage"))
+        _stage_readme(out_dir, written.paths, site.grid, site.connectivity, args, [])
         progress.done()
     finally:
         progress.close()
@@ -336,10 +344,18 @@ def _what_if_rows(result, dem, outlets, assets, height: float) -> _WhatIfRun:
                       sills=list(sills.values()), own=own, no_figures=no_figures)
 
 
-def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress) -> Path:
-    from sillmark.io.asset_files import what_if_file_name, write_what_if_csv
+def _stage_readme(out_dir: Path, paths, grid, connectivity: int, args: argparse.Namespace,
+                  notes: list[str]) -> Path:
+    """``README.txt`` of a stage folder: the files just written, units, caution, notes."""
+    from sillmark.io.readme import write_readme
 
-    name = what_if_file_name(height, dem.vertical_unit)
+    return write_readme(out_dir, [Path(p).name for p in paths], grid=grid,
+                        title="the site at given outlet water levels", connectivity=connectivity,
+                        notes=notes)
+
+
+def _what_if_notes(run: _WhatIfRun) -> list[str]:
+    """What the what-if table leaves out, and why (said in the folder's README)."""
     notes = []
     if run.own:
         notes.append(f"not listed: {run.own} asset(s) whose own ground is the controlling point "
@@ -347,8 +363,15 @@ def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress)
     if run.no_figures:
         notes.append(f"not listed: {run.no_figures} asset(s) without figures (outside the DEM, "
                      "on nodata, or not reached by any outlet)")
+    return notes
+
+
+def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress) -> Path:
+    from sillmark.io.asset_files import what_if_file_name, write_what_if_csv
+
+    name = what_if_file_name(height, dem.vertical_unit)
     progress(name, 0, 1)
-    path = write_what_if_csv(run.rows, dem, out_dir / name, height=height, notes=notes)
+    path = write_what_if_csv(run.rows, dem, out_dir / name, height=height)
     progress(name, 1, 1)
     return path
 
@@ -394,7 +417,9 @@ def _run_stage_offsets(args: argparse.Namespace) -> int:
                                         stop=args.table_to)
         progress.start("export")
         written = write_stage_results(source, out_dir, levels=args.offsets,
-                                      table_levels=table_levels, progress=progress.file)
+                                      table_levels=table_levels, progress=progress.file,
+                                      vector_format=args.vector_format)
+        _stage_readme(out_dir, written.paths, site.grid, site.connectivity, args, [])
         progress.done()
     finally:
         progress.close()

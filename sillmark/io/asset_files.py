@@ -1,8 +1,8 @@
 """Asset files: the asset table as CSV and as GeoJSON points with their routes.
 
 ===========================  =============================================================
-``assets.csv``               one row per asset: ``# `` comment lines (caution, water level,
-                             unit, CRS), a header with units in the column names, the rows
+``assets.csv``               one row per asset: a header with units in the column names
+                             (the first line), the rows
 ``assets.geojson``           RFC 7946 (WGS 84 lon/lat): a Point per asset, and optionally
                              the route of each as a LineString and its controlling sill
                              as a Point; ``feature_kind`` tells them apart
@@ -28,15 +28,15 @@ from typing import Any
 
 import numpy as np
 
-from sillmark import SCREENING_CAUTION, __version__
+from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
-from sillmark.grid.crs import crs_label, horizontal_unit_suffix
+from sillmark.grid.crs import horizontal_unit_suffix
 from sillmark.io.csv_tables import write_table_csv
 from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
 from sillmark.products.assets import STATE_FLOODED, AssetTable
 from sillmark.products.what_if import WhatIf
-from sillmark.units import VerticalUnit, unit_name, unit_suffix
+from sillmark.units import VerticalUnit, unit_suffix
 
 __all__ = [
     "FEATURE_ASSET",
@@ -213,40 +213,15 @@ def _cutoff_columns(table: AssetTable, v: str, h: str) -> dict[str, list]:
 
 
 def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
-    """Write the asset table as CSV: ``# `` comment lines, a header, one row per asset.
+    """Write the asset table as CSV: the header on the first line, one row per asset.
 
-    The comment lines hold the screening caution, the water level with its
-    unit, the vertical unit, the CRS, the connectivity and what the columns
-    mean. Read it with e.g. ``csv.reader`` after skipping lines that start with
-    ``#``. Empty fields are values that do not exist (no figures).
+    Empty fields are values that do not exist (no figures). The water level is
+    in the file name; the caution, the units and what the columns mean are in
+    the folder's ``README.txt`` (:mod:`sillmark.io.readme`).
     """
     _check(table)
     columns = asset_columns(table)
-    unit = table.unit
-    v = unit_suffix(unit)
-    comments = [
-        f"Sillmark {__version__} asset table",
-        f"CAUTION: {SCREENING_CAUTION}",
-        f"water level: {_level_text(table)} {unit.symbol} ({unit_name(unit)})",
-        f"vertical unit: {unit.value} ({unit_name(unit)})",
-        f"CRS: {crs_label(table.dem)}",
-        f"connectivity: {table.connectivity}",
-        "state: flooded = onset stage <= water level; shielded = ground below the "
-        "level but no surface path reaches it yet (still at risk); dry = neither",
-        f"depth_{v}: level - ground when flooded, else 0; depth_if_reached_{v}: "
-        f"level - ground wherever the ground is below the level; freeboard_{v}: "
-        "onset stage - level (negative once flooded)",
-        "sill_*: the controlling sill, the highest cell on the route from the outlets; "
-        "sill_is_own_cell = the asset's own ground controls",
-        "status: ok, outside DEM, on nodata, not reached; other than ok leaves the figures empty",
-        "row, col, sill_row, sill_col: 0-based cell indices, rows from the top",
-    ]
-    if table.cutoff is not None:
-        comments.append(
-            f"cutoff_stage_{v}: the level at which the asset's last dry route to a refuge goes "
-            f"under ('never', or 'always' when it has none); island_from_{v} to island_to_{v}: "
-            "the levels at which it is dry but cut off; cut_at_x/y: where that route goes under first")
-    return write_table_csv(path, comments, _object_columns(columns, len(table)))
+    return write_table_csv(path, _object_columns(columns, len(table)))
 
 
 def write_assets_geojson(
@@ -453,13 +428,12 @@ def write_what_if_csv(
     path: str | os.PathLike,
     *,
     height: Any,
-    notes: tuple[str, ...] | list[str] = (),
 ) -> Path:
     """Write ``what_if_raise_{H}.csv`` from rows of :func:`what_if_row`, in the order given.
 
-    ``# `` comment lines hold the caution, the height, the unit, the CRS, what
-    the columns mean and ``notes`` (e.g. which assets were passed over and
-    why); then a header and the rows. With no rows the header is still written.
+    The header on the first line, then the rows; with no rows the header is
+    still written. The height is in the file name; the caution and what the
+    columns mean are in the folder's ``README.txt``.
     """
 
     unit = VerticalUnit.parse(dem.vertical_unit)
@@ -469,24 +443,8 @@ def write_what_if_csv(
     for row in rows:
         if list(row) != header:
             raise InvalidParameter("the what-if rows differ in their columns; build them all with what_if_row()")
-    comments = [
-        f"Sillmark {__version__} what-if: controlling sills raised",
-        f"CAUTION: {SCREENING_CAUTION}",
-        f"height: each controlling sill raised by {_short(height)} {unit.symbol} "
-        f"({unit_name(unit)}), one sill at a time, the site flooded again for each",
-        f"vertical unit: {unit.value} ({unit_name(unit)})",
-        f"CRS: {crs_label(dem)}",
-        f"onset_before_{v}, onset_after_{v}: outlet water level at which surface water first "
-        f"reaches the asset now and with the raised sill; gain_{v} = after - before "
-        "(between 0 and the height)",
-        "sill_before_*: the controlling sill now (the cell raised); sill_after_*: the "
-        "controlling sill with it raised (raised_cell_controls = it is still the raised cell)",
-        "assets_behind_sill: assets sharing the raised sill (one recompute serves them all)",
-        "row, col, sill_*_row, sill_*_col: 0-based cell indices, rows from the top",
-        *notes,
-    ]
     columns = {name: [row[name] for row in rows] for name in header}
-    return write_table_csv(path, comments, _object_columns(columns, len(rows)))
+    return write_table_csv(path, _object_columns(columns, len(rows)))
 
 
 def _object_columns(columns: dict, n: int) -> dict[str, np.ndarray]:
