@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from sillmark import SCREENING_CAUTION
+from sillmark.grid.assets import STATUS_OUTSIDE
 from sillmark.units import ACRE_FOOT_M3, ACRE_M2, VerticalUnit, datum_phrase, level_text, unit_words
 
 #: Spill points drawn on the paper at most (the largest depressions first); more
@@ -138,8 +139,8 @@ def _assets(data, table, unit: VerticalUnit, datum: str | None) -> tuple[list[di
             "position": _coordinate_text(rec["x"], rec["y"], geographic)
             if rec["x"] is not None and rec["y"] is not None else "–",
         })
-        if rec["lon"] is None or rec["lat"] is None:
-            continue
+        if rec["lon"] is None or rec["lat"] is None or rec["status"] == STATUS_OUTSIDE:
+            continue  # an asset off the DEM is off the printed map too; the table still lists it
         item: dict[str, Any] = {"name": rec["name"], "state": state, "lon": rec["lon"], "lat": rec["lat"]}
         if has and len(drawn) < MAX_ROUTES:
             route = thin_route(table.route_lonlat(k))
@@ -200,7 +201,7 @@ def print_report(data, described: dict, run: dict | None, level: float, table=No
     Returns
     -------
     dict
-        ``level_text``, ``figures`` (label, value pairs), ``assets`` (table rows),
+        ``level_text``, ``figures`` (key, label, value), ``assets`` (table rows),
         ``map`` (what the page's script draws: assets with routes and sills,
         spill points), ``dem`` and ``run`` (label, value pairs), ``caution``.
     """
@@ -208,17 +209,17 @@ def print_report(data, described: dict, run: dict | None, level: float, table=No
     datum = described.get("vertical_datum")
     f = data.figures(np.float32(level))
     figures = [
-        ("Flooded area", area_text(f["flooded_area_m2"], unit)),
-        ("Water volume", volume_text(f["flooded_volume_m3"], unit)),
-        ("Shielded low ground", area_text(f["shielded_area_m2"], unit)),
-        ("Depressions overtopped", f"{f['depressions']['overtopped']} of {f['depressions']['total']}"),
+        ("flooded-area", "Flooded area", area_text(f["flooded_area_m2"], unit)),
+        ("flooded-volume", "Water volume", volume_text(f["flooded_volume_m3"], unit)),
+        ("shielded-area", "Shielded low ground", area_text(f["shielded_area_m2"], unit)),
+        ("depressions", "Depressions overtopped", f"{f['depressions']['overtopped']} of {f['depressions']['total']}"),
     ]
     rows: list[dict] = []
     drawn: list[dict] = []
     if table is not None:
         rows, drawn = _assets(data, table, unit, datum)
         states = [r["state"] for r in rows]
-        figures.append(("Assets wet", f"{states.count('flooded')} of {len(rows)} flooded, "
+        figures.append(("assets", "Assets wet", f"{states.count('flooded')} of {len(rows)} flooded, "
                                       f"{states.count('shielded')} shielded"))
     spills, not_drawn = _spill_points(data, unit, datum)
     summary = data.summary or {}
