@@ -23,7 +23,14 @@ import numpy as np
 
 from sillmark import SCREENING_CAUTION
 from sillmark.grid.assets import STATUS_OUTSIDE
-from sillmark.units import ACRE_FOOT_M3, ACRE_M2, VerticalUnit, datum_phrase, level_text, unit_words
+from sillmark.units import (
+    ACRE_FOOT_M3,
+    ACRE_M2,
+    VerticalUnit,
+    datum_phrase,
+    level_text,
+    unit_words,
+)
 
 #: Spill points drawn on the paper at most (the largest depressions first); more
 #: would hide the map under their symbols.

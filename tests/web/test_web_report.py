@@ -30,7 +30,15 @@ import pytest
 from sillmark import SCREENING_CAUTION
 from sillmark.units import VerticalUnit
 from sillmark.web.report import area_text, thin_route, volume_text
-from tests.web_support import NOTCH, Client, cell_centre, confirm, lonlat, make_app, upload_dem
+from tests.web_support import (
+    NOTCH,
+    Client,
+    cell_centre,
+    confirm,
+    lonlat,
+    make_app,
+    upload_dem,
+)
 
 ROOT = Path(__file__).resolve().parents[2]
 
