@@ -90,10 +90,11 @@ def _number(value: float | None) -> str:
     return "–" if value is None or not math.isfinite(value) else f"{value:.2f}"
 
 
-def _coordinate_text(x: float, y: float, geographic: bool) -> str:
+def _coordinate_lines(x: float, y: float, geographic: bool) -> list[str]:
+    """A position as two short lines: easting and northing, or latitude and longitude."""
     if geographic:
-        return f"{y:.6f}, {x:.6f}"
-    return f"{x:,.1f} E, {y:,.1f} N"
+        return [f"lat {y:.6f}", f"lon {x:.6f}"]
+    return [f"{x:,.1f} E", f"{y:,.1f} N"]
 
 
 def thin_route(lonlat: np.ndarray) -> np.ndarray:
@@ -129,9 +130,9 @@ def _assets(data, table, unit: VerticalUnit, datum: str | None) -> tuple[list[di
         if state == "flooded":
             depth = _depth_text(rec["depth"], unit)
         elif state == "shielded":
-            depth = f"{_depth_text(rec['depth_if_reached'], unit)} below the level, not reached"
+            depth = f"{_depth_text(rec['depth_if_reached'], unit)} below, not reached"
         elif state == "dry":
-            depth = f"dry, {_depth_text(rec['freeboard'], unit)} to spare"
+            depth = f"{_depth_text(rec['freeboard'], unit)} to spare"
         else:
             depth = "no figures (" + str(rec["status"]).replace("_", " ") + ")"
         has = table.has_figures(k)
@@ -143,8 +144,8 @@ def _assets(data, table, unit: VerticalUnit, datum: str | None) -> tuple[list[di
             "ground": _number(rec["ground_elevation"]) if has else "–",
             "onset": _number(rec["onset_stage"]) if has else "–",
             "sill": ("own ground" if rec["sill_is_own_cell"] else _number(rec["sill_elevation"])) if has else "–",
-            "position": _coordinate_text(rec["x"], rec["y"], geographic)
-            if rec["x"] is not None and rec["y"] is not None else "–",
+            "position": _coordinate_lines(rec["x"], rec["y"], geographic)
+            if rec["x"] is not None and rec["y"] is not None else ["–"],
         })
         if rec["lon"] is None or rec["lat"] is None or rec["status"] == STATUS_OUTSIDE:
             continue  # an asset off the DEM is off the printed map too; the table still lists it

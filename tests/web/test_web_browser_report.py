@@ -119,7 +119,7 @@ def test_printed_report_pdf_has_two_pages_with_assets_datum_chart_and_caution(pa
     assert f"at 11.00 m above {DATUM}" in second
     for name in ("Basin school", "Hill farm", "West pump", "Far away"):  # the asset table
         assert name in second
-    assert "2.00 m" in second and "0.90 m" in second and "dry, 1.25 m to spare" in second
+    assert "2.00 m" in second and "0.90 m" in second and "1.25 m to spare" in second
     assert f"Ground (m above {DATUM})" in second
     assert "Site stage chart" in second and "Method and its limits" in second
     assert "lowbank.tif" in second and "Connectivity 8 neighbours (D8)" in second

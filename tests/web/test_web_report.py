@@ -121,9 +121,9 @@ def test_printed_asset_table_gives_each_assets_state_and_depth(ready):
     at_11 = asset_rows(get(client, f"/sites/{site_id}/print?level=11.0"))
     assert set(at_11) == {"Basin school", "Hill farm", "West pump", "Far away"}
     # columns: asset, position, state, depth, ground, onset stage, controlling sill (see the module docstring)
-    assert at_10_5["Basin school"][2:] == ["shielded", "1.50 m below the level, not reached", "9.00", "11.00", "11.00"]
+    assert at_10_5["Basin school"][2:] == ["shielded", "1.50 m below, not reached", "9.00", "11.00", "11.00"]
     assert at_11["Basin school"][2:] == ["flooded", "2.00 m", "9.00", "11.00", "11.00"]
-    assert at_11["Hill farm"][2:] == ["dry", "dry, 1.25 m to spare", "12.25", "12.25", "own ground"]
+    assert at_11["Hill farm"][2:] == ["dry", "1.25 m to spare", "12.25", "12.25", "own ground"]
     assert at_11["West pump"][2:4] == ["flooded", "0.90 m"]
     assert at_11["Far away"][2] == "no figures"
     # Positions are coordinates in the DEM's CRS, not rows and columns: the school's cell centre.
