@@ -243,7 +243,8 @@ def print_report(data, described: dict, run: dict | None, level: float, table=No
     ]
     settings = (run or {}).get("settings") or {}
     run_rows = [
-        ("Run", f"{(run or {}).get('id', data.run_id)}, finished {_date((run or {}).get('finished_utc'))}"),
+        ("Run", f"number {(run or {}).get('id', data.run_id)}"),
+        ("Finished", _date((run or {}).get("finished_utc"))),
         *_settings_text(settings, summary),
     ]
     return {

@@ -140,7 +140,7 @@ def test_printed_report_states_datum_source_run_figures_and_caution(ready, refer
     assert "at 11.00 m, datum not stated" in text
     assert "Ground (m, datum not stated)" in text
     assert "Source file lowbank.tif" in text and "Uploaded 20" in text
-    assert re.search(r"Run \d+, finished 20\d\d-\d\d-\d\d \d\d:\d\d UTC", text)
+    assert re.search(r"Run number \d+ Finished 20\d\d-\d\d-\d\d \d\d:\d\d UTC", text)
     assert "Connectivity 8 neighbours (D8)" in text
     assert "Method and its limits" in text and "Priority-Flood" in text
     assert "Site stage chart" in text and 'id="print-chart"' in page
