@@ -9,7 +9,7 @@ import threading
 from flask import Blueprint, current_app, render_template, request, url_for
 
 from sillmark.errors import InvalidParameter
-from sillmark.units import unit_words
+from sillmark.units import area_units, unit_words
 from sillmark.web import get_db, render, services
 from sillmark.web.access import open_site, site_row
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
@@ -68,9 +68,10 @@ def site(site_id: int):
         "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
         "range": rng,
+        "areas": area_units(data.unit).as_dict(),
         "level": level,
         "names": parts.names,
-        "legend": render.legend(data.unit.value, data.unit.symbol),
+        "legend": render.legend(data.unit.value, data.unit.symbol, ground=_ground(data)),
         "bounds": data.summary.get("lonlat_bounds"),
         # What a traced water body is submitted with (the site's other settings, unchanged).
         "settings": {
@@ -124,6 +125,12 @@ def print_map(site_id: int):
     now = _dt.datetime.now().astimezone()
     return render_template("print.html", site=described, parts=parts, config=config, level=level,
                            printed=now.strftime("%Y-%m-%d %H:%M %Z").strip(), summary=data.summary)
+
+
+def _ground(data) -> tuple | None:
+    """The site's lowest and highest ground (what the relief tint spans), or None."""
+    lo, hi = data.summary.get("elevation_min"), data.summary.get("elevation_max")
+    return None if lo is None or hi is None else (float(lo), float(hi))
 
 
 def _warm(data) -> None:
