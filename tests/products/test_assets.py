@@ -689,6 +689,11 @@ def test_straight_runs_of_a_route_become_one_segment(tmp_path):
     fc = json.loads(write_assets_geojson(table, tmp_path / "r.geojson").read_text(encoding="utf-8"))
     assert len(fc["features"][1]["geometry"]["coordinates"]) == 2
     assert fc["features"][1]["properties"]["route_cells"] == 10
+    # Ten cells in a straight line: nine side steps of one cell (1 m here) = 9 m
+    # on the ground, in the asset's row and on its route feature.
+    cell = dem.cell_size[1]
+    assert fc["features"][0]["properties"]["route_length_m"] == pytest.approx(9 * cell)
+    assert fc["features"][1]["properties"]["route_length_m"] == pytest.approx(9 * cell)
 
 
 def test_a_failed_write_keeps_the_old_file(tmp_path, bowl_table):
