@@ -320,3 +320,50 @@ def test_chart_tick_labels_never_touch_the_axis_titles(served, chromium, width):
             assert b[0] >= 0 and b[1] >= 0 and b[0] + b[2] <= canvas[0] + 0.5 and b[1] + b[3] <= canvas[1] + 0.5
     finally:
         context.close()
+
+
+def test_no_light_lines_along_tile_boundaries_on_a_high_density_screen(served, chromium):
+    """At a device pixel ratio of 2, zoomed into Lowbank's flooded west strip (one
+    depth class over one hillshade shade: the same colour on both sides of each
+    tile boundary), the screen rows along each tile boundary must match the rows
+    a few pixels away. With Leaflet's plus-lighter tile blending, Chromium drew
+    them about 6 levels lighter (measured while writing this test)."""
+    import io
+    import json
+
+    import numpy as np
+    from PIL import Image
+
+    origin, _, metric, _ = served
+    context = chromium.new_context(viewport={"width": 1200, "height": 800}, device_scale_factor=2)
+    try:
+        page = context.new_page()
+        page.goto(f"{origin}/sites/{metric}#level=10.50")
+        page.wait_for_selector('body[data-water-level="10.50"]', timeout=30_000)
+        names = json.loads(page.locator("#site-config").text_content())["names"]
+        lon, lat = lonlat(*cell_centre(20, 6))
+        page.evaluate("([n, lat, lon]) => window[n].setView([lat, lon], 21, {animate: false})",
+                      [names["map"], lat, lon])
+        page.wait_for_load_state("networkidle")
+        page.wait_for_timeout(500)
+        page.evaluate("() => { document.getElementById('legend').style.visibility = 'hidden';"
+                      " document.getElementById('map-hint').style.visibility = 'hidden'; }")
+        tops = page.evaluate("() => Array.from(document.querySelectorAll('img.leaflet-tile-loaded'))"
+                             ".map(t => t.getBoundingClientRect().top)")
+        m = page.locator(".folium-map").bounding_box()
+        shot = np.asarray(Image.open(io.BytesIO(page.screenshot())).convert("L")).astype(float)
+        checked = 0
+        for top in sorted(set(tops)):
+            row = int(round(top * 2))
+            if not (m["y"] * 2 + 8 < row < (m["y"] + m["height"]) * 2 - 8):
+                continue
+            above, below = shot[row - 5], shot[row + 5]
+            flat = np.abs(above - below) < 0.5  # columns of one colour across the boundary
+            if flat.sum() < 200:
+                continue
+            for r in (row - 1, row, row + 1):
+                assert np.abs(shot[r][flat] - above[flat]).mean() < 1.0, (top, r)
+            checked += 1
+        assert checked >= 1
+    finally:
+        context.close()

@@ -235,12 +235,12 @@
       var range = (r.low !== null && r.low !== undefined && r.high !== null && r.high !== undefined)
         ? " from " + fixed(r.low, 1) + " to " + fixed(r.high, 1) + "\u202f" + spec.unit_symbol : "";
       out.push(el("li", { class: "legend-relief" }, [ramp,
-        "Ground tint: the DEM's height" + range + ", low green to high pale stone, shaded by the hillshade (light from the north-west)"]));
+        "Ground tint: the DEM's height" + range + ", green low to pale stone high, lit from the north-west by the hillshade"]));
     }
     var gap = el("span", { class: "swatch nodata" });
     if (spec.nodata_colour) { gap.style.background = spec.nodata_colour; }
     out.push(el("li", { class: "legend-nodata" }, [gap,
-      "Plain grey gaps: no elevation in the DEM (nodata, e.g. open water or a hole in the survey); not analysed"]));
+      "Grey gaps: no elevation in the DEM (nodata, e.g. open water); not analysed"]));
     return out;
   }
 
