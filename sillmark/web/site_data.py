@@ -406,6 +406,8 @@ class SiteData:
         with self._engine_lock:
             curve = h.curve_at(node, levels)
         children = [int(c) for c in h.children(node)]
+        own = own_unit_columns(self.unit, area_m2=curve.area_m2, volume_m3=curve.storage_m3,
+                               volume_name="storage")
         return {
             "id": depression_id,
             "unit": self.unit.value,
@@ -414,6 +416,7 @@ class SiteData:
             "level": [float(v) for v in curve.elevation],
             "area_m2": [_finite(v) for v in curve.area_m2],
             "storage_m3": [_finite(v) for v in curve.storage_m3],
+            **{k: [_finite(v) for v in values] for k, values in own.items()},
             "nested_pools": len(h.subtree(node)) - 1,
             "children": len(children),
             "pit_elevation": pit,
