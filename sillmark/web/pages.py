@@ -116,9 +116,10 @@ def print_map(site_id: int):
         "unit_words": unit_words(data.unit),
         "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
+        "areas": area_units(data.unit).as_dict(),
         "level": level,
         "names": parts.names,
-        "legend": render.legend(data.unit.value, data.unit.symbol),
+        "legend": render.legend(data.unit.value, data.unit.symbol, ground=_ground(data)),
         "bounds": data.summary.get("lonlat_bounds"),
         "print": True,
     }

@@ -515,7 +515,7 @@
   function positionRows(c) {
     var sep = c.xy_unit === "°" ? "" : "\u202f";
     return [
-      ["Position (" + c.crs + ")", "x " + c.x.toFixed(c.xy_decimals) + sep + c.xy_unit + ", y " +
+      ["Position, " + c.crs, "x " + c.x.toFixed(c.xy_decimals) + sep + c.xy_unit + ", y " +
         c.y.toFixed(c.xy_decimals) + sep + c.xy_unit],
       ["Longitude, latitude (WGS 84)", S.fixed(c.lon, 6) + "°, " + S.fixed(c.lat, 6) + "°"],
     ];
