@@ -239,8 +239,8 @@ def _asset_level_lines(table, dem, stream: TextIO) -> list[str]:
         if bool(table.sill_is_own_cell[k]):
             where = "no sill, its own ground controls"
         else:
-            where = (f"controlling sill {level_text(sill.elevation)} {sym} at row {sill.row}, "
-                     f"col {sill.col} ({_xy_text(dem, sill.x, sill.y, stream)})")
+            where = (f"controlling sill {level_text(sill.elevation)} {sym} at "
+                     f"{_xy_text(dem, sill.x, sill.y, stream)}")
         freeboard = float(np.float32(table.onset_stage[k]) - np.float32(table.level))
         lines.append(
             f"    next to flood: {_asset_name(table, k, state[k])}: onset stage "
@@ -292,7 +292,7 @@ def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
                      else f"{min(gains):.2f} to {max(gains):.2f} {sym}")
         xy = _xy_text(dem, first[f"sill_before_x_{h}"], first[f"sill_before_y_{h}"], stream)
         lines.append(
-            f"  sill at row {first['sill_before_row']}, col {first['sill_before_col']} ({xy}) "
+            f"  sill at {xy} "
             f"({first['raised_cells']:,} crest cell{'s' if first['raised_cells'] != 1 else ''}) "
             f"raised from {level_text(first[f'sill_before_elevation_{v}'])} to "
             f"{level_text(first[f'raised_elevation_{v}'])} {sym}: {len(members):,} "
@@ -303,8 +303,7 @@ def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
             lines.append("    the raised cell still controls")
         else:
             moved = next(m for m in members if not m["raised_cell_controls"])
-            there = (f"row {moved['sill_after_row']}, col {moved['sill_after_col']} "
-                     f"({_xy_text(dem, moved[f'sill_after_x_{h}'], moved[f'sill_after_y_{h}'], stream)})")
+            there = _xy_text(dem, moved[f'sill_after_x_{h}'], moved[f'sill_after_y_{h}'], stream)
             if max(gains) == 0:
                 lines.append(
                     f"    no gain: another way in at the same elevation remains, over {there} at "

@@ -69,6 +69,22 @@ def ground_unit_suffix(grid: Any) -> str:
     return {"m": "m", "ft": "ft", "US ft": "us_ft"}.get(symbol, f"{metres:g}m")
 
 
+def position_text(grid: Any, x: float, y: float) -> str:
+    """A map position as people read it: ``x 500041.0 m, y 4999957.0 m`` in the
+    grid's CRS, or ``lon 15.000522°, lat 45.153090°`` on a lon/lat grid.
+
+    Examples
+    --------
+    >>> from sillmark.grid.dem import dem_from_array
+    >>> position_text(dem_from_array(np.zeros((2, 2), np.float32)), 500000.5, 4999999.5)
+    'x 500000.5 m, y 4999999.5 m'
+    """
+    if grid.is_geographic:
+        return f"lon {x:.6f}°, lat {y:.6f}°"
+    symbol, _ = ground_unit(grid)
+    return f"x {x:.1f} {symbol}, y {y:.1f} {symbol}"
+
+
 def path_length(grid: Any, rows: Any, cols: Any) -> GroundLength:
     """Length on the ground of the path through the centres of cells ``(rows, cols)``.
 

@@ -137,7 +137,10 @@ def test_raising_the_lower_gap_by_more_than_the_difference_hands_control_to_the_
     assert not w.raised_cell_controls and not w.own_sill
     assert GAP_B in [tuple(c) for c in w.route_after]
     assert GAP_A not in [tuple(c) for c in w.route_after]
-    assert "row 2, col 5" in w.explanation and "now controls" in w.explanation
+    # The explanation names gap B by its coordinates (cell centre), never by row and column.
+    gx, gy = dem.xy(*GAP_B)
+    assert f"x {gx:.1f} m, y {gy:.1f} m" in w.explanation and "now controls" in w.explanation
+    assert "row" not in w.explanation
     # The recomputed flood is the whole site: the basin fills to 6 m everywhere.
     assert np.all(w.result.onset_stage[3:, :] == 6)
 
