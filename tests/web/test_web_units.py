@@ -8,7 +8,15 @@ import pytest
 
 from sillmark.grid.ground import path_length
 from sillmark.units import ACRE_FOOT_M3, ACRE_M2
-from tests.web_support import Client, analysed_site, cell_centre, confirm, lonlat, make_app, upload_dem
+from tests.web_support import (
+    Client,
+    analysed_site,
+    cell_centre,
+    confirm,
+    lonlat,
+    make_app,
+    upload_dem,
+)
 
 
 @pytest.fixture(scope="module")
