@@ -10,7 +10,7 @@ import numpy as np
 from flask import Blueprint, current_app, render_template, request, url_for
 
 from sillmark.errors import InvalidParameter
-from sillmark.units import unit_words
+from sillmark.units import area_units, unit_words
 from sillmark.web import db, get_db, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
@@ -70,9 +70,10 @@ def site(site_id: int):
         "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
         "range": rng,
+        "areas": area_units(data.unit).as_dict(),
         "level": level,
         "names": parts.names,
-        "legend": render.legend(data.unit.value, data.unit.symbol),
+        "legend": render.legend(data.unit.value, data.unit.symbol, ground=_ground(data)),
         "bounds": data.summary.get("lonlat_bounds"),
         # What a traced water body is submitted with (the site's other settings, unchanged).
         "settings": {
@@ -125,9 +126,10 @@ def print_map(site_id: int):
         "unit_words": unit_words(data.unit),
         "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
+        "areas": area_units(data.unit).as_dict(),
         "level": level,
         "names": parts.names,
-        "legend": render.legend(data.unit.value, data.unit.symbol),
+        "legend": render.legend(data.unit.value, data.unit.symbol, ground=_ground(data)),
         "bounds": data.summary.get("lonlat_bounds"),
         "draw": paper["map"],
         "print": True,
@@ -142,6 +144,12 @@ def print_map(site_id: int):
 def method():
     """What the analysis computes, what it leaves out, and when to ask an engineer."""
     return render_template("method.html")
+
+
+def _ground(data) -> tuple | None:
+    """The site's lowest and highest ground (what the relief tint spans), or None."""
+    lo, hi = data.summary.get("elevation_min"), data.summary.get("elevation_max")
+    return None if lo is None or hi is None else (float(lo), float(hi))
 
 
 def _warm(data) -> None:
