@@ -30,6 +30,7 @@ network with power estimation. Soviet Mathematics Doklady 11, 1277-1280.
 from __future__ import annotations
 
 import dataclasses
+from typing import Any
 
 import numpy as np
 from scipy import ndimage, sparse
@@ -38,8 +39,9 @@ from scipy.sparse.csgraph import maximum_flow
 from sillmark.engine.depressions import DIRECTION_COL, DIRECTION_ROW, directions
 from sillmark.errors import InvalidParameter
 from sillmark.grid.edits import Edit, Edits
+from sillmark.grid.ground import GroundLength, ground_unit, path_length
 
-__all__ = ["BarrierPlan", "plan_barrier"]
+__all__ = ["BarrierPlan", "barrier_pieces", "plan_barrier"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -71,9 +73,46 @@ class BarrierPlan:
         return int(self.rows.shape[0])
 
     @property
+    def pieces(self) -> tuple[tuple[np.ndarray, np.ndarray], ...]:
+        """The barrier's cells as lines: see :func:`barrier_pieces`."""
+        return barrier_pieces(self.rows, self.cols)
+
+    @property
     def length(self) -> float:
-        """Length of the barrier in ground units: its cells times the cell size."""
-        return self.cells * self.cell_size
+        """Length of the barrier in ground units on square cells of :attr:`cell_size`.
+
+        Each piece is the line through its cell centres, a side step one cell
+        and a corner step √2 cells long, carried on half a step at each end so
+        that the wall spans its end cells (a one-cell plug is one cell long).
+        A straight run of ``n`` cells is therefore ``n`` cells long. For a
+        georeferenced grid (lon/lat or cells that are not square) use
+        :meth:`ground_length`.
+        """
+        total = 0.0
+        for r, c in self.pieces:
+            steps = np.hypot(np.diff(r), np.diff(c))
+            total += 1.0 if steps.size == 0 else float(steps.sum() + 0.5 * (steps[0] + steps[-1]))
+        return total * self.cell_size
+
+    def ground_length(self, grid: Any) -> GroundLength:
+        """Length of the barrier on the ground of ``grid`` (a DEM or DEM grid).
+
+        The same line as :attr:`length`, measured step by step with
+        :func:`sillmark.grid.ground.path_length` (planar in the CRS's linear
+        unit, geodesic on a lon/lat grid); a one-cell piece counts one cell
+        width, measured west to east.
+        """
+        total = 0.0
+        symbol, metres = ground_unit(grid)
+        for r, c in self.pieces:
+            if r.size == 1:
+                nb = c[0] + 1 if c[0] + 1 < grid.shape[1] else c[0] - 1
+                total += path_length(grid, [r[0], r[0]], [c[0], nb]).value
+                continue
+            total += path_length(grid, r, c).value
+            total += 0.5 * path_length(grid, r[:2], c[:2]).value
+            total += 0.5 * path_length(grid, r[-2:], c[-2:]).value
+        return GroundLength(total, symbol, total * metres)
 
     def as_edits(self, shape: tuple[int, int]) -> Edits:
         """The barrier as an edit (cells raised to at least :attr:`level`)."""
@@ -195,3 +234,55 @@ def plan_barrier(elevation, outlet_mask, place_mask, level: float, *, connectivi
     cut = np.flatnonzero(side[2 * np.arange(n)] & ~side[2 * np.arange(n) + 1])
     order = np.argsort(cells[cut], kind="stable")
     return plan(True, "", r[cut][order].astype(np.int64), c[cut][order].astype(np.int64))
+
+
+def barrier_pieces(rows, cols) -> tuple[tuple[np.ndarray, np.ndarray], ...]:
+    """Order a set of cells into lines of neighbouring cells (8-neighbour steps).
+
+    A barrier's cells form one or more chains (a wall across each gap). Each
+    piece starts at a cell with the fewest neighbours left in the set (an end
+    of a chain; among those, the fewest side neighbours, so that a corner is
+    walked round by its side steps) and walks on to an unvisited neighbour, a
+    side neighbour before a corner one, until none is left; cells a walk leaves behind (a branch)
+    start further pieces. Every cell lands in exactly one piece.
+
+    Parameters
+    ----------
+    rows, cols : array_like of int
+
+    Returns
+    -------
+    tuple of (rows, cols) int64 array pairs, in walking order.
+
+    Examples
+    --------
+    >>> [(r.tolist(), c.tolist()) for r, c in barrier_pieces([2, 0, 1], [2, 0, 1])]
+    [([0, 1, 2], [0, 1, 2])]
+    """
+    r = np.asarray(rows, dtype=np.int64).reshape(-1)
+    c = np.asarray(cols, dtype=np.int64).reshape(-1)
+    left = {(int(a), int(b)) for a, b in zip(r, c)}
+    side = ((0, 1), (1, 0), (0, -1), (-1, 0))
+    corner = ((1, 1), (1, -1), (-1, 1), (-1, -1))
+
+    def neighbours(cell, steps=side + corner):
+        return [(cell[0] + dr, cell[1] + dc) for dr, dc in steps
+                if (cell[0] + dr, cell[1] + dc) in left]
+
+    pieces = []
+    while left:
+        start = min(left, key=lambda cell: (len(neighbours(cell)), len(neighbours(cell, side)),
+                                            cell))
+        walk = [start]
+        left.discard(start)
+        while True:
+            nxt = neighbours(walk[-1], side) or neighbours(walk[-1], corner)
+            if not nxt:
+                break
+            # The neighbour with the fewest onward neighbours keeps the walk on the chain.
+            step = min(nxt, key=lambda cell: (len(neighbours(cell)), cell))
+            walk.append(step)
+            left.discard(step)
+        a = np.array(walk, dtype=np.int64).reshape(-1, 2)
+        pieces.append((a[:, 0].copy(), a[:, 1].copy()))
+    return tuple(pieces)

@@ -32,7 +32,7 @@ from sillmark.io.geotiff import tag_vertical_datum
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.source import ArraySource
 from sillmark.units import datum_phrase
-from sillmark.web import db, exports, get_db, layout, render, services
+from sillmark.web import barriers, db, exports, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.site_data import parse_level
 from sillmark.web.sites import run_dict
@@ -218,23 +218,18 @@ def assets(site_id: int):
     })
 
 
-@bp.post("/sites/<int:site_id>/whatif")
-def what_if(site_id: int):
-    """Raise an asset's controlling sill by a height and report its new onset stage."""
+@bp.post("/sites/<int:site_id>/barrier")
+def barrier(site_id: int):
+    """The shortest barrier keeping an asset (``asset``) or a location (``lon``, ``lat``)
+    dry up to ``level``: its line, length and cells, or why none can."""
     body = request.get_json(silent=True) if request.is_json else None
     values = body if isinstance(body, dict) else request.form
-    try:
-        index = int(str(values.get("asset", "")).strip())
-    except ValueError:
-        raise InvalidParameter("give the asset as its index in the asset table (asset=0, 1, ...)") from None
-    height = values.get("height")
-    if height is None or str(height).strip() == "":
-        raise InvalidParameter("give the height to raise the sill by, in the site's vertical unit")
-    _, data = open_site(site_id)
-    key, placed = site_assets(site_id, data)
-    if placed is None:
-        raise InvalidParameter("this site has no assets; upload an asset table first")
-    return jsonify(data.what_if(key, placed, index, height))
+    if values.get("level") is None:
+        raise InvalidParameter("give the target level, e.g. level=11.5 (in the site's vertical unit)")
+    level = parse_level(values.get("level"))
+    row, data = open_site(site_id)
+    _, placed = site_assets(site_id, data)
+    return jsonify(barriers.barrier_report(data, placed, values, level, row["vertical_datum"]))
 
 
 # --------------------------------------------------------------------------- downloads

@@ -8,7 +8,7 @@ folder's ``config.py`` or as ``$SILLMARK_EDITOR_SECRET`` /
 - a **viewer** (viewer secret) may read: pages, numbers, tiles, downloads
   (GET, HEAD, OPTIONS);
 - an **editor** (editor secret) may also change things: upload, settings,
-  re-run, what-if, assets: every other method.
+  re-run, barrier planning, assets: every other method.
 
 The role is kept in Flask's signed session cookie together with a fingerprint
 of the secret it was granted with, so changing a secret signs out everyone who

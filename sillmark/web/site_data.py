@@ -42,7 +42,6 @@ from sillmark.products.stage import (
     stage_table,
     water_level_map,
 )
-from sillmark.products.what_if import raise_sill
 from sillmark.units import VerticalUnit, area_units, own_unit_columns
 from sillmark.web import arrays, layout, render
 from sillmark.web.caches import LockedLRU
@@ -145,9 +144,10 @@ class SiteData:
         self.images = render.ImageCache(TILE_IMAGE_BYTES)
         self._asset_tables = LockedLRU(64)
         self._routed = RememberingRoutes.of(self.result)
-        self._what_ifs = LockedLRU(32)
+        self.barrier_plans = LockedLRU(32)  # see sillmark.web.barriers
         self._lock = threading.RLock()
         self._engine_lock = threading.Lock()
+        self.engine_lock = self._engine_lock
         self._buffers: tuple | None = None
 
         self._to_lonlat = LonLatTransformer(self.dem.horizontal_crs)
@@ -531,49 +531,6 @@ class SiteData:
                 "sill_lon": _finite(slon[k]), "sill_lat": _finite(slat[k]),
             })
         return rows
-
-    def what_if(self, key: Any, assets, index: int, height: Any) -> dict:
-        """Raise the controlling sill of asset ``index`` by ``height`` and flood again."""
-
-        if not 0 <= index < len(assets):
-            raise InvalidParameter(f"there is no asset {index}; indices run from 0 to {len(assets) - 1}")
-        cache_key = (key, index, str(height).strip())
-        hit = self._what_ifs.get(cache_key)
-        if hit is not None:
-            return hit
-        mask = (self.result.flood_tree == OUTLET_CODE) & self.dem.valid
-        with self._engine_lock:  # a full flood: one at a time
-            w = raise_sill(self.dem, mask, self.result, assets[index], height)
-        cells = w.route_after
-        keep = _turns(cells[:, 0], cells[:, 1])
-        x, y = self.dem.xy(cells[keep, 0].astype(np.int64), cells[keep, 1].astype(np.int64))
-        lon, lat = self.lonlat(x, y)
-
-        def sill(s) -> dict:
-            a, b = self.lonlat(s.x, s.y)
-            return {"row": s.row, "col": s.col, "lon": float(a), "lat": float(b), "elevation": s.elevation}
-
-        out = {
-            "asset": index,
-            "name": w.name,
-            "unit": self.unit.value,
-            "unit_symbol": self.unit.symbol,
-            "height": w.height,
-            "raised": sill(w.raised),
-            "raised_elevation": w.raised_elevation,
-            "own_sill": w.own_sill,
-            "onset_before": w.onset_before,
-            "onset_after": w.onset_after,
-            "gain": w.gain,
-            "sill_after": sill(w.sill_after),
-            "raised_cell_controls": w.raised_cell_controls,
-            "route_after": {"type": "LineString",
-                            "coordinates": [[round(float(a), 8), round(float(b), 8)] for a, b in zip(lon, lat)]},
-            "explanation": w.explanation,
-            "caution": SCREENING_CAUTION,
-        }
-        self._what_ifs.put(cache_key, out)
-        return out
 
 
 def _turns(rows: np.ndarray, cols: np.ndarray) -> np.ndarray:

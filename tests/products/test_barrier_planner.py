@@ -118,3 +118,44 @@ def test_no_barrier_when_an_outlet_touches_the_place_or_none_is_needed():
     assert not plan.possible and "touches the place" in plan.reason
     high = plan_barrier(z + 5, outlets, place, 1.0)
     assert high.possible and high.cells == 0 and "no barrier is needed" in high.reason
+
+
+def test_a_diagonal_barrier_is_measured_along_its_steps_not_by_its_cells():
+    # Hand-worked: cells (0, 0), (1, 1), (2, 2) given out of order, plus a lone
+    # cell (0, 4). On 2 m cells the diagonal piece runs 2 corner steps of
+    # 2·√2 m between centres, plus half a corner step (√2 m) at each end:
+    # 6·√2 ≈ 8.485 m; the lone cell spans one cell width, 2 m. Together
+    # 6·√2 + 2 m, where cells × cell size would give 8 m.
+    from affine import Affine
+
+    from sillmark.grid.dem import dem_from_array
+    from sillmark.products.barrier_planner import BarrierPlan, barrier_pieces
+
+    rows, cols = np.array([2, 0, 0, 1]), np.array([2, 4, 0, 1])
+    pieces = barrier_pieces(rows, cols)
+    assert [(r.tolist(), c.tolist()) for r, c in pieces] == [([0], [4]), ([0, 1, 2], [0, 1, 2])]
+    plan = BarrierPlan(level=1.0, possible=True, reason="", rows=rows, cols=cols, cell_size=2.0)
+    assert plan.length == pytest.approx(6 * np.sqrt(2) + 2)
+    dem = dem_from_array(np.zeros((4, 6), np.float32), transform=Affine(2, 0, 500000, 0, -2, 5000000))
+    ground = plan.ground_length(dem)
+    assert ground.unit == "m" and ground.value == pytest.approx(6 * np.sqrt(2) + 2)
+
+
+def test_an_l_shaped_wall_round_a_corner_place_walks_its_side_steps():
+    # Hand-worked: flat ground at 0 m on 5 × 5 cells, outlets on the west column
+    # and the north row, the place in the south-east corner (4, 4), level 1 m.
+    # Under 8-connectivity the place's three neighbours (3, 3), (3, 4), (4, 3)
+    # are the only 3-cell cut (any ring further out is longer); as a line it
+    # is (3, 4) → (3, 3) → (4, 3): two side steps plus half a step at each
+    # end, 3 cells long.
+    z = np.zeros((5, 5), np.float32)
+    outlets = np.zeros(z.shape, bool)
+    outlets[:, 0] = outlets[0, :] = True
+    place = np.zeros(z.shape, bool)
+    place[4, 4] = True
+    plan = plan_barrier(z, outlets, place, 1.0, cell_size=3.0)
+    assert plan.cells == 3 == networkx_cut_size(z, outlets, place, 1.0, 8)
+    ((r, c),) = plan.pieces
+    assert {(int(a), int(b)) for a, b in zip(r, c)} == {(3, 3), (3, 4), (4, 3)}
+    assert (int(r[1]), int(c[1])) == (3, 3)  # the corner cell sits in the middle of the line
+    assert plan.length == pytest.approx(9.0)

@@ -248,37 +248,29 @@ def test_asset_table_at_a_level(ready):
     assert assets["Far away"]["status"] == "outside DEM" and assets["Far away"]["onset_stage"] is None
 
 
-def test_what_if_raising_the_notch(ready):
+def test_barrier_for_the_basin_school_plugs_the_notch(ready, reference):
+    from sillmark.grid.edits import read_edits
+
+    # Lowbank (tests/web_support.py): at 11.5 m the bank (12.00 m) stands above the
+    # level everywhere but the notch (11.00 m), so the notch cell alone closes the
+    # basin: one cell, one cell width (2 m) long.
     _, client, site_id = ready
     index = [a["name"] for a in client.get(f"/api/sites/{site_id}/assets?level=10.5").get_json()["assets"]].index(
         "Basin school")
-    r = client.post(f"/api/sites/{site_id}/whatif", json={"asset": index, "height": 0.5})
+    r = client.post(f"/api/sites/{site_id}/barrier", json={"asset": index, "level": 11.5})
     assert r.status_code == 200, r.get_json()
-    w = r.get_json()
-    assert w["onset_before"] == pytest.approx(SPILL)
-    assert w["onset_before"] <= w["onset_after"] <= w["onset_before"] + 0.5 + 1e-6
-    assert w["onset_after"] == pytest.approx(11.5)  # the notch raised to 11.5 m still controls (bank 12 m)
-    assert (w["raised"]["row"], w["raised"]["col"]) == NOTCH
-    assert w["raised_cell_controls"] and w["explanation"]
-    assert w["route_after"]["type"] == "LineString"
+    b = r.get_json()
+    assert b["onset_stage"] == pytest.approx(SPILL) and b["possible"] and b["needed"]
+    assert b["cells"] == 1
+    (edit,) = read_edits(b["edits"], reference[0]).items
+    assert list(zip(edit.rows.tolist(), edit.cols.tolist())) == [NOTCH]
+    assert b["length"] == pytest.approx(2.0) and b["length_unit"] == "m"
+    assert b["edits"]["features"][0]["properties"] == {
+        "kind": "barrier", "crest": 11.5, "name": "planned barrier", "planned_cells": 1}
+    assert b["caution"] == SCREENING_CAUTION
 
 
-@pytest.mark.parametrize("body,fragment", [
-    ({"asset": 0, "height": -1}, "positive"),
-    ({"asset": 0, "height": "tall"}, "must be a number"),
-    ({"asset": 0}, "give the height"),
-    ({"asset": "first", "height": 1}, "index in the asset table"),
-    ({"asset": 99, "height": 1}, "there is no asset 99"),
-    ({"asset": 3, "height": 1}, "outside DEM"),
-])
-def test_what_if_refuses_bad_requests(ready, body, fragment):
-    _, client, site_id = ready
-    r = client.post(f"/api/sites/{site_id}/whatif", json=body)
-    assert r.status_code == 400
-    assert fragment in r.get_json()["error"]
-
-
-def test_site_without_assets_lists_none_and_refuses_the_what_if(fresh, lowbank_tif):
+def test_site_without_assets_lists_none_and_refuses_an_asset_barrier(fresh, lowbank_tif):
     from tests.web_support import analysed_site
 
     _, client = fresh
@@ -287,7 +279,7 @@ def test_site_without_assets_lists_none_and_refuses_the_what_if(fresh, lowbank_t
     assert body["assets"] == [] and body["source"] is None
     f = client.get(f"/api/sites/{site_id}/stage?level=10").get_json()
     assert f["assets"] is None
-    r = client.post(f"/api/sites/{site_id}/whatif", json={"asset": 0, "height": 1})
+    r = client.post(f"/api/sites/{site_id}/barrier", json={"asset": 0, "level": 11.5})
     assert r.status_code == 400 and "no assets" in r.get_json()["error"]
 
 

@@ -134,7 +134,7 @@ def test_changes_without_the_form_token_are_refused(ready, lowbank_tif):
     app, client, site_id = ready
     raw = app.test_client()
     for url in ("/uploads/dem", f"/uploads/sites/{site_id}/settings", f"/api/sites/{site_id}/rerun",
-                f"/api/sites/{site_id}/whatif"):
+                f"/api/sites/{site_id}/barrier"):
         r = raw.post(url, data=b"x", headers={"Accept": "application/json"})
         assert r.status_code == 403, url
         assert "token" in r.get_json()["error"]

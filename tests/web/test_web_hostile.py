@@ -403,14 +403,13 @@ def other_cases(site_id: int) -> dict[str, tuple[str, str, dict | None, int, str
     lon, lat = _lowbank_lonlat(18, 25)
     s = f"/api/sites/{site_id}"
     return {
-        "what-if-height-nan": ("POST", f"{s}/whatif", {"asset": 0, "height": "nan"}, 400, "positive finite"),
-        "what-if-height-inf": ("POST", f"{s}/whatif", {"asset": 0, "height": "inf"}, 400, "positive finite"),
-        "what-if-height-1e30": ("POST", f"{s}/whatif", {"asset": 0, "height": 1e30}, 400, "more than any sill"),
-        "what-if-height-negative": ("POST", f"{s}/whatif", {"asset": 0, "height": -1}, 400, "positive finite"),
-        "what-if-height-text": ("POST", f"{s}/whatif", {"asset": 0, "height": "half a metre"}, 400, "a number"),
-        "what-if-height-empty": ("POST", f"{s}/whatif", {"asset": 0, "height": ""}, 400, "give the height"),
-        "what-if-asset-unknown": ("POST", f"{s}/whatif", {"asset": 99, "height": 0.5}, 400, "there is no asset 99"),
-        "what-if-asset-text": ("POST", f"{s}/whatif", {"asset": "school", "height": 0.5}, 400, "index"),
+        "barrier-level-nan": ("POST", f"{s}/barrier", {"asset": 0, "level": "nan"}, 400, "finite number"),
+        "barrier-level-inf": ("POST", f"{s}/barrier", {"asset": 0, "level": "inf"}, 400, "finite number"),
+        "barrier-level-text": ("POST", f"{s}/barrier", {"asset": 0, "level": "half a metre"}, 400, "finite number"),
+        "barrier-level-missing": ("POST", f"{s}/barrier", {"asset": 0}, 400, "give the target level"),
+        "barrier-asset-unknown": ("POST", f"{s}/barrier", {"asset": 99, "level": 11.5}, 400, "there is no asset 99"),
+        "barrier-asset-text": ("POST", f"{s}/barrier", {"asset": "school", "level": 11.5}, 400, "index"),
+        "barrier-lon-nan": ("POST", f"{s}/barrier", {"lon": "nan", "lat": lat, "level": 11.5}, 400, "finite number of degrees"),
         "cell-lon-nan": ("GET", f"{s}/cell?lon=nan&lat={lat}&level=10.5", None, 400, "finite number of degrees"),
         "cell-lat-1e30": ("GET", f"{s}/cell?lon={lon}&lat=1e30&level=10.5", None, 400, "lat in [-90, 90]"),
         "cell-lon-text": ("GET", f"{s}/cell?lon=east&lat={lat}&level=10.5", None, 400, "number of degrees"),

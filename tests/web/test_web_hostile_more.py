@@ -69,9 +69,9 @@ def cases(site_id: int, folder) -> dict:
         "tile-negative-y": (lambda c: c.get(f"/tiles/{site_id}/hillshade/3/1/-1.png"), "not found"),
         "tile-unknown-layer": (lambda c: c.get(f"/tiles/{site_id}/passwd/3/1/1.png"), "level"),
         "curve-of-depression-0": (lambda c: c.get(f"{s}/depressions/0/curve"), "no depression 0"),
-        "whatif-body-not-json": (lambda c: c.post(f"{s}/whatif", data="height=1",
-                                                  headers={"Accept": "application/json"}), "asset"),
-        "whatif-height-as-list": (lambda c: c.post(f"{s}/whatif", json={"asset": 0, "height": [1]},
+        "barrier-body-not-json": (lambda c: c.post(f"{s}/barrier", data="level=11",
+                                                   headers={"Accept": "application/json"}), "asset"),
+        "barrier-level-as-list": (lambda c: c.post(f"{s}/barrier", json={"asset": 0, "level": [1]},
                                                    headers={"Accept": "application/json"}), "number"),
         "cell-lat-beyond-pole": (lambda c: c.get(f"{s}/cell?lon=15&lat=91&level=10.5"), "lat in [-90, 90]"),
     }

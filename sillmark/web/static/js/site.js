@@ -369,7 +369,7 @@
     else {
       rows.push(["Controlling sill", a.sill_is_own_cell ? "its own ground" : at(a.sill_elevation)]);
     }
-    var extra = a.status === "ok" ? '<p><a href="#" class="whatif-link" data-index="' + a.index + '">What if the sill were higher…</a></p>' : "";
+    var extra = a.status === "ok" ? '<p><a href="#" class="barrier-link" data-index="' + a.index + '">Plan a barrier…</a></p>' : "";
     return popupTable(a.name, rows, extra);
   }
 
@@ -422,47 +422,15 @@
     renderAssetTable();
     if (zoom && a.lat !== null) { map.setView([a.lat, a.lon], Math.max(map.getZoom(), 17)); }
     if (assetMarkers[index]) { assetMarkers[index].openPopup(); }
-    var box = $("whatif");
-    box.hidden = a.status !== "ok";
-    $("whatif-asset").textContent = a.name + ": onset stage " + S.level(a.onset_stage, unit) +
-      (a.sill_is_own_cell ? " (its own ground controls: raising it means a pad or a wall round it)."
-        : ", controlled by a sill at " + S.level(a.sill_elevation, unit) + ".");
-    S.show($("whatif-error"), "");
-    $("whatif-result").hidden = true;
+    if (S.onAssetChosen) { S.onAssetChosen(a); }  // the barrier planner (barrier.js)
   }
 
   document.addEventListener("click", function (ev) {
-    var link = ev.target.closest && ev.target.closest(".whatif-link");
+    var link = ev.target.closest && ev.target.closest(".barrier-link");
     if (!link) { return; }
     ev.preventDefault();
     openTab("tab-assets");
     selectAsset(parseInt(link.dataset.index, 10), false);
-  });
-
-  $("whatif-form").addEventListener("submit", function (ev) {
-    ev.preventDefault();
-    if (selectedAsset === null) { return; }
-    var height = $("whatif-height").value;
-    S.show($("whatif-error"), "");
-    var out = $("whatif-result");
-    out.hidden = false;
-    out.textContent = "Flooding the site again with the raised sill…";
-    S.getJSON(base + "/whatif", {
-      method: "POST", headers: { "Content-Type": "application/json" },
-      body: JSON.stringify({ asset: selectedAsset, height: height }),
-    }).then(function (w) {
-      out.innerHTML = "";
-      out.appendChild(S.el("p", { class: "whatif-numbers" }, [
-        "Onset stage ", S.el("strong", { text: S.level(w.onset_before, unit) }), " → ",
-        S.el("strong", { text: S.level(w.onset_after, unit) }), " (+" + S.fixed(w.gain, 2) + "\u202f" + unit + ")",
-      ]));
-      out.appendChild(S.el("p", { class: "small", text: w.explanation }));
-      groups.route.clearLayers();
-      L.geoJSON(w.route_after, { style: { color: "#6a3d9a", weight: 3, dashArray: "6 5" } }).addTo(groups.route);
-      addSill(w.sill_after, "controlling sill after raising: " + S.level(w.sill_after.elevation, unit));
-      L.circleMarker([w.raised.lat, w.raised.lon], { radius: 6, color: "#6a3d9a", weight: 2, fillColor: "#fff", fillOpacity: 1 })
-        .bindTooltip("raised cell (was " + S.level(w.raised.elevation, unit) + ")").addTo(groups.route);
-    }).catch(function (err) { out.hidden = true; S.show($("whatif-error"), err.message); });
   });
 
   $("assets-form").addEventListener("submit", function (ev) {

@@ -1,0 +1,171 @@
+"""The barrier planner in the browser app: the shortest wall keeping a place dry up to a level.
+
+For an asset, or a location clicked on the map, and a target outlet water
+level ``L``, :func:`barrier_report` asks
+:func:`sillmark.products.barrier_planner.plan_barrier` for the fewest cells to
+raise to ``L`` (a minimum vertex cut between the place and the outlets in the
+graph of cells below ``L``) and serialises the answer for the map: the wall as
+lines in WGS 84, its length on the ground in the site's ground unit and its
+cell count, or, where no wall can do it, why, in words. The wall also comes as
+an edits file (one ``barrier`` feature per piece, crest ``L``) that
+``sillmark analyse --edits`` reads.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from sillmark import SCREENING_CAUTION
+from sillmark.engine.flood import OUTLET_CODE
+from sillmark.errors import InvalidParameter, LocationOutsideDEM
+from sillmark.grid.edits import read_edits
+from sillmark.grid.ground import ground_unit, position_text
+from sillmark.products.barrier_planner import plan_barrier
+from sillmark.units import level_text
+
+__all__ = ["barrier_report"]
+
+
+def _place(data, assets, values: dict) -> tuple[int, int, str]:
+    """(row, col, name) of the place a request names: ``asset`` index, or ``lon`` and ``lat``."""
+    asset = values.get("asset")
+    if asset is not None and str(asset).strip() != "":
+        if assets is None:
+            raise InvalidParameter("this site has no assets; upload an asset table first, or "
+                                   "give a location as lon and lat")
+        try:
+            index = int(str(asset).strip())
+        except ValueError:
+            raise InvalidParameter("give the asset as its index in the asset table "
+                                   "(asset=0, 1, ...)") from None
+        if not 0 <= index < len(assets):
+            raise InvalidParameter(f"there is no asset {index}; indices run from 0 to "
+                                   f"{len(assets) - 1}")
+        a = assets[index]
+        if a.status != "ok":
+            raise InvalidParameter(f"asset {a.name!r} has no place on the DEM ({a.status})")
+        return int(a.row), int(a.col), a.name
+    lon, lat = values.get("lon"), values.get("lat")
+    if lon is None or lat is None:
+        raise InvalidParameter("give the place as an asset index (asset=0) or as a location "
+                               "(lon and lat in WGS 84 degrees)")
+    try:
+        lon, lat = float(lon), float(lat)
+    except (TypeError, ValueError):
+        raise InvalidParameter("lon and lat must be numbers of degrees") from None
+    row, col = data.cell_at(lon, lat)
+    x, y = data.dem.xy(row, col)
+    return row, col, f"the location at {position_text(data.dem, float(x), float(y))}"
+
+
+def barrier_report(data, assets, values: dict, level: np.float32, datum: str | None = None) -> dict:
+    """Plan the shortest barrier for the place in ``values`` at ``level``, as the map draws it.
+
+    Parameters
+    ----------
+    data : sillmark.web.site_data.SiteData
+    assets : Assets or None
+        The site's placed assets (for ``values["asset"]``).
+    values : dict
+        ``asset`` (an index) or ``lon`` and ``lat`` (WGS 84 degrees).
+    level : float32
+        Target outlet water level, in the site's vertical unit.
+    datum : str or None
+        The site's vertical datum, for the words.
+
+    Returns
+    -------
+    dict
+        ``possible``, ``needed``, ``message`` (the answer in words), and for a
+        wall: ``cells``, ``length`` with ``length_unit``, ``line`` (GeoJSON
+        MultiLineString in WGS 84) and ``edits`` (the edits file).
+    """
+    row, col, name = _place(data, assets, values)
+    z = float(data.dem.elevation[row, col])
+    if not math.isfinite(z):
+        raise LocationOutsideDEM("there is no elevation at that place (nodata)")
+    onset = float(data.result.onset_stage[row, col])
+    unit = data.unit
+    key = (row, col, float(level), datum)
+    out = data.barrier_plans.get(key)
+    if out is not None:
+        return {**out, "name": name}
+    base = {
+        "row": row, "col": col,
+        "level": float(level), "onset_stage": onset if math.isfinite(onset) else None,
+        "ground_elevation": z,
+        "unit": unit.value, "unit_symbol": unit.symbol,
+        "cells": 0, "length": 0.0, "length_unit": ground_unit(data.dem)[0], "length_m": 0.0,
+        "line": None, "edits": None, "caution": SCREENING_CAUTION,
+    }
+    at = level_text(float(level), unit, datum)
+    if not math.isfinite(onset):
+        out = {**base, "possible": True, "needed": False,
+               "message": "No outlet reaches this place at any level: no barrier is needed."}
+    elif float(level) <= onset:
+        out = {**base, "possible": True, "needed": False,
+               "message": f"Its onset stage is {level_text(onset, unit, datum)}: it stays dry below "
+                          f"{at} without a barrier. Choose a level above its onset stage."}
+    else:
+        place = np.zeros(data.dem.shape, dtype=bool)
+        place[row, col] = True
+        outlets = data.result.flood_tree == OUTLET_CODE
+        with data.engine_lock:  # one heavy computation at a time per site
+            plan = plan_barrier(data.dem.elevation, outlets, place, float(level),
+                                connectivity=int(data.result.connectivity))
+        out = _wall(data, base, plan, at, datum)
+    data.barrier_plans.put(key, out)
+    return {**out, "name": name}
+
+
+def _wall(data, base: dict, plan, at: str, datum: str | None) -> dict:
+    if not plan.possible:
+        reason = plan.reason.split(":")[0]
+        return {**base, "possible": False, "needed": True,
+                "message": f"No barrier can keep it dry up to {at}: {reason}. Water stands "
+                           "against it straight from an outlet, so a wall would have to be "
+                           "built on the place itself."}
+    if plan.cells == 0:
+        return {**base, "possible": True, "needed": False,
+                "message": f"No barrier is needed up to {at}: {plan.reason.split(':')[0]}."}
+    length = plan.ground_length(data.dem)
+    pieces = plan.pieces
+    lines, features = [], []
+    for k, (r, c) in enumerate(pieces):
+        x, y = data.dem.xy(r, c)
+        x, y = np.atleast_1d(x).astype(float), np.atleast_1d(y).astype(float)
+        if x.size == 1:  # a one-cell plug: a short line across its cell, west to east
+            half = abs(data.dem.transform.a) / 4
+            x, y = np.array([x[0] - half, x[0] + half]), np.array([y[0], y[0]])
+        lon, lat = data.lonlat(x, y)
+        coords = [[round(float(a), 9), round(float(b), 9)] for a, b in zip(lon, lat)]
+        lines.append(coords)
+        features.append({
+            "type": "Feature",
+            "properties": {"kind": "barrier", "crest": float(plan.level),
+                           "name": f"planned barrier {k + 1}" if len(pieces) > 1 else "planned barrier",
+                           "planned_cells": int(r.size)},
+            "geometry": {"type": "LineString", "coordinates": coords},
+        })
+    edits = {
+        "type": "FeatureCollection",
+        "name": "planned barrier",
+        "description": (f"Shortest barrier with crest {at} found by the barrier planner; "
+                        "feed it to sillmark analyse --edits."),
+        "caution": SCREENING_CAUTION,
+        "features": features,
+    }
+    touched = sum(len(e.rows) for e in read_edits(edits, data.dem).items)
+    words = "piece" if len(pieces) == 1 else "pieces"
+    return {
+        **base, "possible": True, "needed": True,
+        "cells": plan.cells, "pieces": len(pieces),
+        "length": length.value, "length_unit": length.unit, "length_m": length.metres,
+        "edit_cells": int(touched),
+        "line": {"type": "MultiLineString", "coordinates": lines},
+        "edits": edits,
+        "message": (f"Raise {plan.cells} cells to a crest of {at}: a barrier "
+                    f"{length.text()} long in {len(pieces)} {words} keeps it dry up to that level."),
+    }

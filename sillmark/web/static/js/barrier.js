@@ -1,0 +1,114 @@
+/* Sillmark: the barrier planner on the site map.
+ *
+ * For the asset chosen in the table (site.js calls Sillmark.onAssetChosen) or the
+ * last point clicked on the map, and a target level, asks the server for the
+ * shortest barrier that keeps the place dry up to that level, draws it as a line
+ * labelled with its length on the ground and its cell count, says in words when no
+ * barrier can do it, and offers the barrier as an edits file (GeoJSON) for
+ * `sillmark analyse --edits`. Talks only to this server. */
+(function () {
+  "use strict";
+  var S = window.Sillmark;
+  var config = JSON.parse(document.getElementById("site-config").textContent);
+  var map = window[config.names.map];
+  var $ = function (id) { return document.getElementById(id); };
+  var unit = config.unit_symbol;
+  var datum = config.datum || "";
+  var base = "/api/sites/" + config.site_id;
+  var layer = L.layerGroup().addTo(map);
+  var place = null;   // {asset: index} or {lon:, lat:}
+  var seq = 0;
+
+  var levelInput = $("barrier-level");
+  if (levelInput && !levelInput.value && isFinite(config.level)) {
+    levelInput.value = (Math.round(config.level * 100) / 100).toFixed(2);
+  }
+
+  function choose(what, words, suggested) {
+    place = what;
+    $("barrier-place").textContent = words;
+    $("barrier-submit").disabled = false;
+    if (suggested !== null && isFinite(suggested)) { levelInput.value = suggested.toFixed(2); }
+    S.show($("barrier-error"), "");
+    $("barrier-result").hidden = true;
+    layer.clearLayers();
+    delete document.body.dataset.barrierState;
+  }
+
+  S.onAssetChosen = function (a) {
+    if (a.status !== "ok") {
+      place = null;
+      $("barrier-submit").disabled = true;
+      $("barrier-place").textContent = a.name + " has no place on the DEM (" + a.status + ").";
+      return;
+    }
+    var step = unit === "m" ? 0.5 : 1.5;
+    choose({ asset: a.index }, a.name + ": onset stage " + S.levelAt(a.onset_stage, unit, datum) + ".",
+      a.onset_stage === null ? null : a.onset_stage + step);
+  };
+
+  map.on("click", function (ev) {
+    if (S.tracing) { return; }
+    var ll = ev.latlng.wrap();
+    choose({ lon: ll.lng, lat: ll.lat },
+      "The point clicked at " + S.fixed(ll.lat, 6) + "°, " + S.fixed(ll.lng, 6) + "° (WGS 84).", null);
+  });
+
+  function download(edits) {
+    var blob = new Blob([JSON.stringify(edits, null, 1)], { type: "application/geo+json" });
+    var a = document.createElement("a");
+    a.href = URL.createObjectURL(blob);
+    a.download = "planned-barrier.geojson";
+    document.body.appendChild(a);
+    a.click();
+    setTimeout(function () { URL.revokeObjectURL(a.href); a.remove(); }, 0);
+  }
+
+  function show(b) {
+    var out = $("barrier-result");
+    out.innerHTML = "";
+    out.hidden = false;
+    layer.clearLayers();
+    out.appendChild(S.el("p", { class: "whatif-numbers", text: b.message }));
+    document.body.dataset.barrierState = !b.possible ? "impossible" : b.needed ? "planned" : "not-needed";
+    if (!b.line) { return; }
+    var label = S.length(b.length, b.length_unit) + ", " + b.cells + " cells at crest " +
+      S.levelAt(b.level, unit, datum);
+    var drawn = L.geoJSON(b.line, { style: { color: "#3b1f0e", weight: 6, opacity: 0.95, lineCap: "square",
+      className: "barrier-line" } }).addTo(layer);
+    L.geoJSON(b.line, { style: { color: "#f4d35e", weight: 2, opacity: 1, dashArray: "4 4" } }).addTo(layer);
+    drawn.bindTooltip(label, { permanent: true, direction: "top", className: "barrier-label" }).openTooltip();
+    document.body.dataset.barrierLength = String(b.length);
+    document.body.dataset.barrierCells = String(b.cells);
+    out.appendChild(S.el("p", { class: "small" }, [
+      "Cells raised: " + b.cells + "; the edits file touches " + b.edit_cells +
+      " cells (corner steps add the cell beside them, so water cannot slip past diagonally)."]));
+    var button = S.el("button", { class: "button", type: "button", id: "barrier-export",
+      text: "Download as an edits file (GeoJSON)" });
+    button.addEventListener("click", function () { download(b.edits); });
+    out.appendChild(button);
+  }
+
+  $("barrier-form").addEventListener("submit", function (ev) {
+    ev.preventDefault();
+    if (!place) { return; }
+    var mine = ++seq;
+    S.show($("barrier-error"), "");
+    var out = $("barrier-result");
+    out.hidden = false;
+    out.textContent = "Searching for the shortest barrier…";
+    document.body.dataset.barrierState = "loading";
+    var body = Object.assign({ level: levelInput.value }, place);
+    S.getJSON(base + "/barrier", {
+      method: "POST", headers: { "Content-Type": "application/json" }, body: JSON.stringify(body),
+    }).then(function (b) {
+      if (mine !== seq) { return; }
+      show(b);
+    }).catch(function (err) {
+      if (mine !== seq) { return; }
+      out.hidden = true;
+      document.body.dataset.barrierState = "failed";
+      S.show($("barrier-error"), err.message);
+    });
+  });
+})();
