@@ -58,9 +58,8 @@ def polder_elevation() -> np.ndarray:
     return z
 
 
-@pytest.fixture(scope="module")
-def polder(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("polder")
+def polder_site(folder):
+    """(app, client, site_id, tif): the Gapford polder analysed, with its two assets."""
     tif = write_raster(folder / "gapford.tif", polder_elevation(),
                        transform=Affine(CELL, 0, WEST, 0, -CELL, NORTH), nodata=-9999.0)
     app = make_app(folder / "data")
@@ -76,6 +75,12 @@ def polder(tmp_path_factory):
                     data={"assets": (io.BytesIO(csv.encode()), "assets.csv")},
                     content_type="multipart/form-data")
     assert r.status_code == 201, r.get_data(as_text=True)
+    return app, client, site_id, tif
+
+
+@pytest.fixture(scope="module")
+def polder(tmp_path_factory):
+    _, client, site_id, tif = polder_site(tmp_path_factory.mktemp("polder"))
     return client, site_id, tif
 
 

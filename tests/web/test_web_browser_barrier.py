@@ -1,0 +1,71 @@
+"""The barrier planner on the site page in a real browser (Playwright driving Debian's
+Chromium, as in tests/web/test_web_browser.py).
+
+The site is the Gapford polder of tests/web/test_web_barrier.py: a levee at
+13.00 m round a polder at 9.00 m with a 3-cell gap at 11.00 m in its east wall.
+Choosing the "Polder barn" in the asset table and asking to keep it dry up to
+12.00 m must draw the gap's three cells as a barrier line labelled with its
+ground length, 6.0 m (worked in that module's docstring), and offer the edits
+file for download.
+"""
+
+from __future__ import annotations
+
+import json
+import threading
+from pathlib import Path
+
+import pytest
+
+from tests.web.test_web_barrier import polder_site
+from tests.web.test_web_browser import CHROMIUM, LAUNCH_ARGS, sync_playwright
+
+pytestmark = [pytest.mark.browser]
+if sync_playwright is None or not Path(CHROMIUM).is_file():
+    pytestmark.append(pytest.mark.skip(reason="BROWSER TESTS SKIPPED: playwright or Chromium missing"))
+
+
+@pytest.fixture(scope="module")
+def served(tmp_path_factory):
+    """(origin, site_id): waitress serving the analysed polder site."""
+    import waitress
+
+    app, _, site_id, _ = polder_site(tmp_path_factory.mktemp("barrier-browser"))
+    srv = waitress.create_server(app, host="127.0.0.1", port=0, threads=4)
+    threading.Thread(target=srv.run, daemon=True).start()
+    yield f"http://127.0.0.1:{srv.effective_port}", site_id
+    srv.close()
+    app.extensions["sillmark"].runner.stop()
+
+
+def test_the_planned_barrier_is_drawn_with_its_length_and_exported(served):
+    origin, site_id = served
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, args=LAUNCH_ARGS)
+        try:
+            context = browser.new_context(viewport={"width": 1440, "height": 900}, accept_downloads=True)
+            page = context.new_page()
+            errors: list[str] = []
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(f"{origin}/sites/{site_id}")
+            page.wait_for_selector("body[data-figures-level]", timeout=30_000)
+            page.click("button[data-tab=tab-assets]")
+            page.locator("#assets-table tbody tr", has_text="Polder barn").click()
+            assert "Polder barn" in page.locator("#barrier-place").inner_text()
+            page.fill("#barrier-level", "12.00")
+            page.click("#barrier-submit")
+            page.wait_for_selector('body[data-barrier-state="planned"]', timeout=60_000)
+            assert float(page.evaluate("document.body.dataset.barrierLength")) == pytest.approx(6.0)
+            assert page.evaluate("document.body.dataset.barrierCells") == "3"
+            assert page.locator(".barrier-line").count() == 1
+            label = page.locator(".barrier-label").inner_text().replace("\u202f", " ")
+            assert "6.0 m" in label and "3 cells" in label
+            with page.expect_download() as got:
+                page.click("#barrier-export")
+            edits = json.loads(Path(got.value.path()).read_text())
+            (feature,) = edits["features"]
+            assert feature["properties"]["kind"] == "barrier" and feature["properties"]["crest"] == 12.0
+            assert errors == []
+            context.close()
+        finally:
+            browser.close()
