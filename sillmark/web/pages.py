@@ -12,9 +12,10 @@ from sillmark.errors import InvalidParameter
 from sillmark.units import unit_words
 from sillmark.web import get_db, render, services
 from sillmark.web.access import open_site, site_row
+from sillmark.web.dem_description import UNIT_SOURCE_TEXT
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
 from sillmark.web.site_data import parse_level
-from sillmark.web.sites import UNIT_SOURCE_TEXT, SiteNotReady
+from sillmark.web.sites import SiteNotReady
 from sillmark.web.tiles import warm
 
 bp = Blueprint("pages", __name__)
