@@ -152,6 +152,7 @@ def analyse(
     crs: Any = None,
     progress: Progress | None = None,
     derived: bool = True,
+    window_cells: int | None = None,
 ) -> Analysis:
     """Analyse a DEM and write every result file into ``out``.
 
@@ -185,6 +186,11 @@ def analyse(
         :data:`TILED_FILE_NAMES`, to which
         :func:`sillmark.io.results_folder.add_depression_outlines` and
         :func:`sillmark.io.results_folder.add_hierarchy_files` add.
+    window_cells : int, optional
+        For a DEM file: the most cells of one window of depressions the
+        hierarchy is built in (default
+        :data:`sillmark.products.hierarchy_windows.DEFAULT_WINDOW_CELLS`); the
+        hierarchy's memory grows with it, not with the DEM.
 
     Returns
     -------
@@ -216,7 +222,7 @@ def analyse(
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
                                         connectivity, band, vertical_unit, crs, progress)
                 if derived:
-                    run = _add_derived(run, temporary, executor, progress)
+                    run = _add_derived(run, temporary, executor, progress, window_cells)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
@@ -311,7 +317,8 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
     )
 
 
-def _add_derived(run: Analysis, folder: Path, executor, progress) -> Analysis:
+def _add_derived(run: Analysis, folder: Path, executor, progress,
+                 window_cells: int | None) -> Analysis:
     """The outlines, then the hierarchy, from the folder window by window."""
     t0 = time.perf_counter()
     if progress is not None:
@@ -319,7 +326,9 @@ def _add_derived(run: Analysis, folder: Path, executor, progress) -> Analysis:
     files = add_depression_outlines(run, run.grid, folder)
     if progress is not None:
         progress("outlines", 1, 1)
-    hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=run.grid)
+    windows = {} if window_cells is None else {"window_cells": int(window_cells)}
+    hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=run.grid,
+                                    **windows)
     names = {p.name: p for p in [*files, *hierarchy.files]}
     seconds = {**run.seconds, "outlines_hierarchy": time.perf_counter() - t0}
     return dataclasses.replace(run, files=[names[n] for n in FILE_NAMES if n in names],

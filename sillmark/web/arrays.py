@@ -40,7 +40,7 @@ class StaleArrays(Exception):
 
 #: Cells per block when an array is written row block by row block: at most
 #: this many cells of any one array are held in memory at a time.
-BLOCK_CELLS = 1 << 20
+BLOCK_CELLS = 1 << 18
 
 
 def block_rows(cols: int, *, limit: int | None = None) -> int:

@@ -60,7 +60,8 @@ _COUNTED = {"flood": "tiles", "finish": "tiles", "write": "files", "hierarchy": 
 def engine_settings(config) -> dict:
     """The run settings that choose the engine, from the app's configuration."""
     return {"tiled_above_cells": int(config["TILED_ABOVE_CELLS"]),
-            "tile_size": int(config["TILED_TILE_SIZE"])}
+            "tile_size": int(config["TILED_TILE_SIZE"]),
+            "window_cells": int(config["TILED_WINDOW_CELLS"])}
 
 
 class _TileProgress(SerialExecutor):
@@ -123,8 +124,9 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
     specs : tuple
         Outlet sources, as for :func:`sillmark.grid.outlets.build_outlets`.
     settings : dict
-        The run's settings (``connectivity``, ``vertical_unit``, ``tile_size``;
-        the default of :data:`sillmark.web.config.DEFAULTS` where a run predates it).
+        The run's settings (``connectivity``, ``vertical_unit``, ``tile_size``,
+        ``window_cells``; the defaults of :data:`sillmark.web.config.DEFAULTS`
+        where a run predates them).
     results : Path
         The run's ``results/`` folder.
     progress : sillmark.web.worker._Progress
@@ -135,10 +137,12 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
         Its ``result`` is None: the rasters are in ``results`` (see :func:`result_rows`).
     """
     tile = int(settings.get("tile_size") or DEFAULTS["TILED_TILE_SIZE"])
+    window = int(settings.get("window_cells") or DEFAULTS["TILED_WINDOW_CELLS"])
     tracker = _TileProgress(progress)
     return analyse(dem_path, specs, results, executor=tracker, store="files", tile_size=tile,
                    connectivity=int(settings["connectivity"]),
-                   vertical_unit=settings["vertical_unit"], progress=tracker.step)
+                   vertical_unit=settings["vertical_unit"], progress=tracker.step,
+                   window_cells=window)
 
 
 def _depression_ids(path: Path, cols: int, r0: int, r1: int) -> np.ndarray:
