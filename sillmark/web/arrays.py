@@ -63,10 +63,12 @@ Rows = Callable[[int, int], np.ndarray]
 class ArrayWriter:
     """Builds a run's ``arrays/`` folder under a temporary name, one array at a time.
 
-    Every grid-sized array is an ``.npy`` file made with
-    :func:`numpy.lib.format.open_memmap` and filled block by block
-    (:meth:`write_rows`), so writing it holds one block in memory, never the
-    array. :meth:`commit` writes ``meta.json`` and renames the folder into
+    Every grid-sized array is an ``.npy`` file written block by block in row
+    order (:meth:`write_rows`: the ``.npy`` header, then each block's bytes),
+    so writing it holds one block in memory, never the array. The blocks are
+    written to the file, not through a writable memory map: on a full disk a
+    write then fails with ``ENOSPC``, which the worker reports, where a page of
+    a memory map would kill the process with ``SIGBUS``. :meth:`commit` writes ``meta.json`` and renames the folder into
     place (an earlier folder of that name is replaced whole); until then
     nothing is visible under the final name, and :meth:`discard` removes the
     temporary folder.
@@ -93,24 +95,24 @@ class ArrayWriter:
         The dtype is that of the first block. ``progress(fraction)`` after each block.
         """
         n_rows, n_cols = int(shape[0]), int(shape[1])
-        out = None
-        for r0 in range(0, n_rows, rows):
-            r1 = min(n_rows, r0 + rows)
-            data = np.asarray(block(r0, r1))
-            if data.shape != (r1 - r0, n_cols):
-                raise ValueError(f"rows {r0}:{r1} of {name} came as {data.shape}, "
-                                 f"not {(r1 - r0, n_cols)}")
-            if out is None:
-                out = np.lib.format.open_memmap(self.path(name), mode="w+", dtype=data.dtype,
-                                                shape=(n_rows, n_cols))
-            out[r0:r1] = data
-            if progress is not None:
-                progress(r1 / n_rows)
-        if out is None:  # no rows: an empty array of the declared shape
+        with open(self.path(name), "wb") as fh:
+            dtype = None
+            for r0 in range(0, n_rows, rows):
+                r1 = min(n_rows, r0 + rows)
+                data = np.asarray(block(r0, r1))
+                if data.shape != (r1 - r0, n_cols):
+                    raise ValueError(f"rows {r0}:{r1} of {name} came as {data.shape}, "
+                                     f"not {(r1 - r0, n_cols)}")
+                if dtype is None:
+                    dtype = data.dtype
+                    np.lib.format.write_array_header_1_0(fh, {
+                        "descr": np.lib.format.dtype_to_descr(dtype),
+                        "fortran_order": False, "shape": (n_rows, n_cols)})
+                fh.write(np.ascontiguousarray(data, dtype=dtype).tobytes())
+                if progress is not None:
+                    progress(r1 / n_rows)
+        if dtype is None:  # no rows: an empty array of the declared shape
             np.save(self.path(name), np.zeros((n_rows, n_cols), np.float32), allow_pickle=False)
-        else:
-            out.flush()
-            del out
         self.shapes[name] = (n_rows, n_cols)
 
     def read(self, name: str) -> np.ndarray:
