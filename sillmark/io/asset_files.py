@@ -31,6 +31,7 @@ import numpy as np
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_unit_suffix
+from sillmark.grid.ground import ground_unit_suffix, path_length
 from sillmark.io.csv_tables import write_table_csv
 from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
@@ -66,7 +67,9 @@ def asset_columns(table: AssetTable) -> dict[str, list]:
     Elevations, depths and freeboard get the vertical-unit suffix (``_m``,
     ``_ft``, ``_us_ft``), map coordinates the CRS's unit (``x_m``, or ``x_deg``
     on a lon/lat DEM); ``lon_deg``/``lat_deg`` are WGS 84. ``route_cells`` is
-    the number of cells on the route. Then come the input's own columns or
+    the number of cells on the route and ``route_length_m`` (``_ft``,
+    ``_us_ft``: the CRS's ground unit; metres on a lon/lat DEM) its length on
+    the ground from the outlet to the asset (:func:`sillmark.grid.ground.path_length`). Then come the input's own columns or
     properties (a name already taken gets the prefix ``input_``).
 
     Values are plain Python (str, int, float, bool, JSON values of GeoJSON
@@ -79,6 +82,7 @@ def asset_columns(table: AssetTable) -> dict[str, list]:
     dem = table.dem
     v = unit_suffix(table.unit)
     h = horizontal_unit_suffix(dem)
+    g = ground_unit_suffix(dem)
     n = len(table)
     sill_lon = np.full(n, np.nan)
     sill_lat = np.full(n, np.nan)
@@ -132,6 +136,8 @@ def asset_columns(table: AssetTable) -> dict[str, list]:
         f"sill_elevation_{v}": _floats32(table.sill_elevation),
         "sill_is_own_cell": [bool(table.sill_is_own_cell[k]) if has[k] else None for k in range(n)],
         "route_cells": [int(c.shape[0]) if has[k] else None for k, c in enumerate(table.route_cells)],
+        f"route_length_{g}": [_route_length(dem, c) if has[k] else None
+                              for k, c in enumerate(table.route_cells)],
     }
     if table.cutoff is not None:
         cols.update(_cutoff_columns(table, v, h))
@@ -250,6 +256,7 @@ def write_assets_geojson(
     final = Path(path)
     columns = asset_columns(table)
     v = unit_suffix(table.unit)
+    g = ground_unit_suffix(table.dem)
     n = len(table)
     names = list(columns)
     values = list(columns.values())
@@ -290,6 +297,7 @@ def write_assets_geojson(
                         "feature_kind": FEATURE_ROUTE,
                         **common,
                         "route_cells": int(table.route_cells[k].shape[0]),
+                        f"route_length_{g}": columns[f"route_length_{g}"][k],
                         "direction": "outlet to asset",
                         "caution": SCREENING_CAUTION,
                     },
@@ -326,6 +334,11 @@ def _route_line(table: AssetTable, k: int) -> np.ndarray:
     x, y = table.dem.xy(kept[:, 0], kept[:, 1])
     lon, lat = table._wgs84.transform(x, y)
     return np.column_stack([lon, lat])
+
+
+def _route_length(dem, cells: np.ndarray) -> float:
+    """Ground length of a route given as (n, 2) cells, rounded to a millimetre-ish 4 decimals."""
+    return round(path_length(dem, cells[:, 0], cells[:, 1]).value, 4)
 
 
 def _corner_index(cells: np.ndarray) -> np.ndarray:

@@ -100,7 +100,8 @@ _DESCRIPTIONS: tuple[tuple[str, str], ...] = (
     (r"assets_.+\.csv", "One row per asset at that level: state (dry, flooded, shielded), "
      "depth_{v}, onset stage, freeboard_{v}, and the controlling sill (the highest point "
      "of the route from the outlets). Empty figures: outside the DEM, on nodata or not "
-     "reached (see status). With refuges: cutoff_stage_{v}, the island window island_from_{v} "
+     "reached (see status). route_length: the route's length on the ground (diagonal "
+     "steps count the cell diagonal; true distance on a lon/lat DEM). With refuges: cutoff_stage_{v}, the island window island_from_{v} "
      "to island_to_{v} (dry but cut off from every refuge), island_now, and cut_at_x/y, where "
      "the last route goes under first."),
     (r"assets_.+\.geojson", "The assets as points (WGS 84), with their routes from the "

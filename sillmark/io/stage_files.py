@@ -65,7 +65,7 @@ from sillmark.products.stage import (
     level_blocks,
     stage_table,
 )
-from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark.units import VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.products.source import ResultSource
@@ -229,8 +229,8 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
 
     RFC 7946 as ``depressions.geojson`` (lon/lat, counterclockwise exteriors,
     clockwise holes, coordinates rounded). Properties: ``level``, ``unit``,
-    ``class``, ``area_m2``, ``area_ha``, ``volume_m3`` (plus ``volume_acre_ft``
-    for sites in feet), ``connectivity`` and ``caution``; the same (but
+    ``class``, ``area_m2``, ``area_ha``, ``volume_m3`` (plus ``area_ft2``,
+    ``area_acres`` and ``volume_acre_ft`` for sites in feet), ``connectivity`` and ``caution``; the same (but
     connectivity) are members of the collection, so the totals stay readable
     when no cell has the class and the collection holds no feature.
     """
@@ -245,8 +245,8 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
         "area_ha": json_values.json_number(area / 1e4),
         "volume_m3": json_values.json_number(volume),
     }
-    if unit.is_feet:
-        properties["volume_acre_ft"] = json_values.json_number(volume / ACRE_FOOT_M3)
+    for key, value in units.own_unit_columns(unit, area_m2=area, volume_m3=volume).items():
+        properties[key] = json_values.json_number(value)
     properties["connectivity"] = int(connectivity)
     properties["caution"] = SCREENING_CAUTION
     polygon = outline()
@@ -312,8 +312,9 @@ def stage_table_columns(table: StageTable) -> dict[str, np.ndarray]:
     """The stage table with units in the column names, in file order.
 
     ``level_{u}`` (float32, the vertical unit's suffix), flooded and shielded
-    area in m² and ha and volume in m³; for sites in feet each volume also in
-    acre-feet (43 560 international cubic feet, :data:`sillmark.units.ACRE_FOOT_M3`).
+    area in m² and ha and volume in m³; for sites in feet each area also in ft²
+    and acres and each volume in acre-feet (43 560 international cubic feet,
+    :data:`sillmark.units.ACRE_FOOT_M3`; :func:`sillmark.units.own_unit_columns`).
     """
     unit = VerticalUnit.parse(table.unit)
     cols: dict[str, np.ndarray] = {f"level_{units.unit_suffix(unit)}": np.asarray(table.level, np.float32)}
@@ -326,8 +327,8 @@ def stage_table_columns(table: StageTable) -> dict[str, np.ndarray]:
         cols[f"{prefix}_area_m2"] = area
         cols[f"{prefix}_area_ha"] = area / 1e4
         cols[f"{prefix}_volume_m3"] = volume
-        if unit.is_feet:
-            cols[f"{prefix}_volume_acre_ft"] = volume / ACRE_FOOT_M3
+        cols.update(units.own_unit_columns(unit, area_m2=area, volume_m3=volume,
+                                           area_name=f"{prefix}_area", volume_name=f"{prefix}_volume"))
     return cols
 
 
@@ -356,7 +357,8 @@ def write_depressions_at_csv(source: "ResultSource", level, path: str | os.PathL
     ``pit_elevation_{u}``, ``spill_elevation_{u}``, ``max_depth_{u}``,
     ``spills_to``, ``spill_lon_deg``, ``spill_lat_deg``, ``area_m2``,
     ``area_ha``, ``volume_m3`` (storage at the spill elevation; plus
-    ``volume_acre_ft`` for sites in feet), as in ``depressions.csv``.
+    ``area_ft2``, ``area_acres`` and ``volume_acre_ft`` for sites in feet), as
+    in ``depressions.csv``.
     """
     unit = source.unit
     v = units.unit_suffix(unit)
@@ -368,7 +370,8 @@ def write_depressions_at_csv(source: "ResultSource", level, path: str | os.PathL
         f"freeboard_{v}": freeboard,
     }
     for name in (f"pit_elevation_{v}", f"spill_elevation_{v}", f"max_depth_{v}", "spills_to",
-                 "spill_lon_deg", "spill_lat_deg", "area_m2", "area_ha", "volume_m3", "volume_acre_ft"):
+                 "spill_lon_deg", "spill_lat_deg", "area_m2", "area_ha", "volume_m3",
+                 "area_ft2", "area_acres", "volume_acre_ft"):
         if name in table:
             cols[name] = table[name]
     return csv_tables.write_table_csv(path, cols)

@@ -18,7 +18,7 @@ from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import crs_unit_name, full_crs, horizontal_crs
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, FLOOD_TREE_NODATA
 from sillmark.io.json_values import shortest_float32, write_json
-from sillmark.units import ACRE_FOOT_M3, unit_of
+from sillmark.units import own_unit_columns, unit_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
@@ -129,8 +129,8 @@ def _summary_payload(table, dem: "DEM", *, connectivity: int, unreached_cells: i
         "total_volume_m3": volume_m3,
         "highest_spill_elevation": highest,
     }
-    if unit.is_feet:
-        depressions["total_volume_acre_ft"] = volume_m3 / ACRE_FOOT_M3
+    depressions.update(own_unit_columns(unit, area_m2=area_m2, volume_m3=volume_m3,
+                                        area_name="total_area", volume_name="total_volume"))
     return {
         "sillmark_version": __version__,
         "created_utc": datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),

@@ -3,7 +3,9 @@
 Views are short: parse the request, ask :mod:`sillmark.web.sites` (which calls
 :mod:`sillmark`), serialise. Errors come back as ``{"error": message}`` with a
 4xx status (see :func:`sillmark.web.create_app`). Levels are in the site's vertical
-unit; areas in m² and ha, volumes in m³ (and acre-ft for sites in feet).
+unit; areas in m² and ha and volumes in m³ on every site, and for sites in feet
+also in ft², acres and acre-ft (``*_ft2``, ``*_acres``, ``*_acre_ft``; the
+``areas`` member names the units a page shows, :func:`sillmark.units.area_units`).
 """
 
 from __future__ import annotations

@@ -82,8 +82,15 @@ def depth_bounds(unit_value: str) -> tuple[float, ...]:
     return DEPTH_BOUNDS_M if unit_value == "m" else DEPTH_BOUNDS_FT
 
 
-def legend(unit_value: str, unit_symbol: str) -> dict:
-    """What the legend shows: depth classes with colours, and the shielded style."""
+#: What shows through where a tile has no DEM cell (nodata): the map's own
+#: background (``.leaflet-container`` in static/css/sillmark.css).
+NODATA_BACKGROUND = "#e9ecea"
+
+
+def legend(unit_value: str, unit_symbol: str, *, ground: tuple | None = None) -> dict:
+    """What the legend shows: depth classes with colours, the shielded style, the
+    relief tint under the hillshade (with the site's lowest and highest ground,
+    ``ground``, when known) and the colour of the nodata gaps."""
     bounds = depth_bounds(unit_value)
     classes = []
     lower = 0.0
@@ -105,6 +112,12 @@ def legend(unit_value: str, unit_symbol: str) -> dict:
             "stripe": "#%02x%02x%02x" % SHIELDED_STRIPE[:3],
             "wash": "#%02x%02x%02x" % SHIELDED_WASH[:3],
         },
+        "relief": {
+            "stops": [[p, "#%02x%02x%02x" % c] for p, c in TINT_STOPS],
+            "low": None if ground is None else ground[0],
+            "high": None if ground is None else ground[1],
+        },
+        "nodata_colour": NODATA_BACKGROUND,
     }
 
 

@@ -179,6 +179,35 @@ def test_feet_site_reports_acre_feet_and_names_files_in_feet(capsys, tmp_path):
     assert "depth_4.50ft.tif" in names_in(tmp_path / "s")
 
 
+def test_feet_site_reports_and_exports_areas_in_acres_and_square_feet(capsys, tmp_path):
+    # The same walled basin, heights in feet on a 5 m UTM grid: at 4.5 ft the
+    # basin's 12 cells of 25 m² (300 m²) are shielded. 300 m² / 4046.8564224 m²
+    # per acre = 0.0741 acres; / 0.09290304 m² per ft² = 3,229 ft² (NIST
+    # Handbook 44, Appendix C). Flooded: the 40 edge cells, 1000 m² = 0.25 acres.
+    z = np.full((10, 12), 6.0, dtype=np.float32)
+    z[0, :] = z[-1, :] = z[:, 0] = z[:, -1] = 4.0
+    z[3:6, 3:7] = 2.0
+    dem = write_dem(tmp_path / "feet.tif", z)
+    code, out, _ = run_cli(capsys, "stage", str(dem), "--vertical-unit", "ft", "--level", "4.5",
+                           "--table-step", "0.5", "--table-from", "4", "--table-to", "6",
+                           "--out", str(tmp_path / "s"))
+    assert code == 0
+    assert "Shielded low ground: 0.07 acres (3,229 ft²)" in out
+    assert "Flooded: 0.25 acres (10,764 ft²)" in out
+    assert " ha " not in out and "m³" not in out
+    header = [line for line in (tmp_path / "s" / "depressions_at_4.50ft.csv").read_text().splitlines()
+              if not line.startswith("#")][0].split(",")
+    assert {"area_ft2", "area_acres", "volume_acre_ft"} <= set(header)
+    table = [line for line in (tmp_path / "s" / "stage_table.csv").read_text().splitlines()
+             if not line.startswith("#")]
+    columns = table[0].split(",")
+    assert {"flooded_area_acres", "flooded_area_ft2", "shielded_area_acres", "flooded_volume_acre_ft"} <= set(columns)
+    row = dict(zip(columns, table[2].split(",")))  # the 4.5 ft row
+    assert float(row["level_ft"]) == 4.5
+    assert float(row["shielded_area_acres"]) == pytest.approx(300 / 4046.8564224)
+    assert float(row["shielded_area_ft2"]) == pytest.approx(300 / 0.3048**2)
+
+
 # --------------------------------------------------------------------------- errors
 
 

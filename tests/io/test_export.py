@@ -263,8 +263,13 @@ def test_csv_in_feet_converts_volume_and_adds_acre_feet(tmp_path):
     comments, header, rows = read_csv(tmp_path / "d.csv")
     assert comments == []
     assert "pit_elevation_ft" in header and "max_depth_ft" in header
-    assert header[-2:] == ["volume_m3", "volume_acre_ft"]
+    # The feet site's own units follow the SI columns, each named in its header.
+    assert header[-4:] == ["volume_m3", "area_ft2", "area_acres", "volume_acre_ft"]
     bowl = next(r for r in rows if int(r["cell_count"]) == 24)
+    # 2400 m² = 2400 / 0.3048² ft² = 25 833.4 ft²; / 4046.8564224 m² per acre
+    # = 0.593 acres (NIST Handbook 44, Appendix C).
+    assert float(bowl["area_ft2"]) == pytest.approx(2400.0 / 0.3048**2, rel=1e-12)
+    assert float(bowl["area_acres"]) == pytest.approx(2400.0 / 4046.8564224, rel=1e-12)
     # 2400 m² × 8 ft; 1 ft = 0.3048 m exactly (NIST Handbook 44, Appendix C).
     assert float(bowl["volume_m3"]) == pytest.approx(2400.0 * 8.0 * 0.3048, rel=1e-12)
     # 1 acre-ft = 43 560 ft³ (NIST Handbook 44, Appendix C) = 1233.48183754752 m³.
