@@ -60,6 +60,9 @@ _START = dict(PHASES)
 _NEXT = {name: (PHASES[k + 1][1] if k + 1 < len(PHASES) else 100) for k, (name, _) in enumerate(PHASES)}
 
 
+#: Files an in-memory analysis writes: every result file and the folder's README.txt.
+_FILES_WRITTEN = len(FILE_NAMES) + 1
+
 #: Least time between two progress writes within a phase, in seconds.
 PROGRESS_INTERVAL = 0.25
 
@@ -389,7 +392,7 @@ def _run(conn, data: Path, run, folder: Path) -> None:
                 progress.start("writing result files")
             if name not in names:
                 names.append(name)
-            progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
+            progress.within((len(names) - 1 + (done / total if total else 1.0)) / _FILES_WRITTEN)
 
         # The engine, then every result file, moved into place together.
         analysis = analyse(dem, outlets, results, connectivity=connectivity,
