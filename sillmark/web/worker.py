@@ -442,7 +442,10 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     writer.commit(grid, depressions=t, pyramid_levels=levels, extra={"summary": summary},
                   scalars={"connectivity": analysis.connectivity,
                            "unreached_cells": analysis.unreached_cells,
-                           "heap_pops": analysis.heap_pops})
+                           "heap_pops": analysis.heap_pops,
+                           # The web app analyses without edits, so no culverts; were
+                           # there any, commit would refuse the object, not drop it.
+                           "culverts": None if analysis.result is None else analysis.result.culverts})
 
     progress.start("finishing")
     summary["seconds"] = round(time.perf_counter() - t0, 2)
