@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 
 from tests.web.test_web_barrier import polder_site
-from tests.web.test_web_browser import CHROMIUM, LAUNCH_ARGS, sync_playwright
+from tests.web.test_web_browser import ARTIFACTS, CHROMIUM, LAUNCH_ARGS, sync_playwright
 
 pytestmark = [pytest.mark.browser]
 if sync_playwright is None or not Path(CHROMIUM).is_file():
@@ -60,6 +60,8 @@ def test_the_planned_barrier_is_drawn_with_its_length_and_exported(served):
             assert page.locator(".barrier-line").count() == 1
             label = page.locator(".barrier-label").inner_text().replace("\u202f", " ")
             assert "6.0 m" in label and "3 cells" in label
+            ARTIFACTS.mkdir(exist_ok=True)
+            page.screenshot(path=str(ARTIFACTS / "browser_barrier_planned.png"))
             with page.expect_download() as got:
                 page.click("#barrier-export")
             edits = json.loads(Path(got.value.path()).read_text())

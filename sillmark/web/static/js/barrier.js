@@ -77,6 +77,8 @@
     var drawn = L.geoJSON(b.line, { style: { color: "#3b1f0e", weight: 6, opacity: 0.95, lineCap: "square",
       className: "barrier-line" } }).addTo(layer);
     L.geoJSON(b.line, { style: { color: "#f4d35e", weight: 2, opacity: 1, dashArray: "4 4" } }).addTo(layer);
+    map.closePopup();  // an asset's popup would hide the label
+    if (!map.getBounds().contains(drawn.getBounds())) { map.fitBounds(drawn.getBounds().pad(2)); }
     drawn.bindTooltip(label, { permanent: true, direction: "top", className: "barrier-label" }).openTooltip();
     document.body.dataset.barrierLength = String(b.length);
     document.body.dataset.barrierCells = String(b.cells);
