@@ -292,7 +292,7 @@ def _write_class_geojson(source: "ResultSource", level: float, totals: tuple[flo
                   "area_m2": [float(area)], "area_ha": [float(area) / 1e4],
                   "volume_m3": [float(volume)]}
     if unit.is_feet:
-        attributes["volume_acre_ft"] = [float(volume) / ACRE_FOOT_M3]
+        attributes["volume_acre_ft"] = [float(volume) / units.ACRE_FOOT_M3]
     shapes = [] if polygon is None else [polygon]
     if polygon is None:
         attributes = {k: v[:0] for k, v in attributes.items()}

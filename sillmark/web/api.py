@@ -39,6 +39,18 @@ from sillmark.web.sites import run_dict
 
 bp = Blueprint("api", __name__, url_prefix="/api")
 
+#: The response header that carries the caution with every file download: a CSV
+#: starts with its header row and has no place for it of its own.
+CAUTION_HEADER = "X-Sillmark-Caution"
+
+
+@bp.after_request
+def _caution_on_downloads(response):
+    """Every file sent as a download carries the screening caution in a header."""
+    if response.headers.get("Content-Disposition", "").startswith("attachment"):
+        response.headers[CAUTION_HEADER] = SCREENING_CAUTION
+    return response
+
 _export_locks: dict = {}
 _export_guard = threading.Lock()
 
