@@ -37,7 +37,7 @@ from sillmark.errors import SillmarkError
 from sillmark.io.export import FILE_NAMES
 from sillmark.grid.outlets import build_outlets
 from sillmark.run import analyse
-from sillmark.web import arrays, db, layout, render, tiled_run
+from sillmark.web import arrays, db, layout, reach_inputs, render, tiled_run
 
 log = logging.getLogger("sillmark.worker")
 
@@ -340,8 +340,8 @@ def _run(conn, data: Path, run, folder: Path) -> None:
             progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
 
         # The engine, then every result file, moved into place together.
-        result = analyse(dem, outlets, results, connectivity=connectivity,
-                         progress=file_progress).result
+        result = analyse(dem, outlets, results, connectivity=connectivity, progress=file_progress,
+                         **reach_inputs.analyse_inputs(site_folder, settings)).result
     else:
         outlets, result = tiled
         progress.start("writing result files")  # written already, tile by tile
