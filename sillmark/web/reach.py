@@ -44,7 +44,6 @@ from sillmark.products.cutoff import asset_cutoff, cutoff_stage
 from sillmark.units import datum_phrase
 from sillmark.web import db, get_db, layout, reach_inputs, render, services
 from sillmark.web.access import open_site, site_assets, site_row
-from sillmark.web.caches import LockedLRU
 from sillmark.web.site_data import parse_level
 from sillmark.web.sites import SiteNotReady
 from sillmark.web.tiles import _check_tile, _tile
@@ -118,21 +117,18 @@ def _read(path: Path) -> np.ndarray:
         return ds.read(1, masked=True).filled(np.nan).astype(np.float32)
 
 
-_OPEN = LockedLRU(8)
 _OPEN_LOCK = threading.Lock()
 
 
 def reach_of(data) -> ReachData:
-    """The :class:`ReachData` of an open site run (kept while the run is among the last few)."""
-    key = (data.site_id, data.run_id)
-    found = _OPEN.get(key)
+    """The :class:`ReachData` of an open site run, kept with it (and dropped with it)."""
+    found = getattr(data, "_reach_data", None)
     if found is None:
         with _OPEN_LOCK:
-            found = _OPEN.get(key)
+            found = getattr(data, "_reach_data", None)
             if found is None:
                 found = ReachData(data)
-                _OPEN.discard_where(lambda k: k[0] == key[0])
-                _OPEN.put(key, found)
+                data._reach_data = found
     return found
 
 
@@ -201,7 +197,7 @@ def assets(site_id: int):
                 stage = float(figures.stage[k])
                 cut_at = None
                 if figures.cut_row[k] >= 0:
-                    x, y = data.dem.transform * (int(figures.cut_col[k]) + 0.5,
+                    x, y = data.dem.transform @ (int(figures.cut_col[k]) + 0.5,
                                                  int(figures.cut_row[k]) + 0.5)
                     lon, lat = data.lonlat(x, y)
                     cut_at = {"x": float(x), "y": float(y), "lon": float(lon), "lat": float(lat)}
