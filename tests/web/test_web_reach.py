@@ -12,6 +12,7 @@ from __future__ import annotations
 import io
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pyproj
@@ -67,10 +68,9 @@ PROFILE = collection(("LineString", [centre(0, 0), centre(0, 5)], {}),
 CHANNEL_ASSETS = f"name,kind,x,y\nBowl cottage,house,{centre(2, 3)[0]},{centre(2, 3)[1]}\n"
 
 
-def _site(tmp_path, z, outlets, water, assets, reach):
-    app = make_app(tmp_path / "data")
-    client = Client(app)
-    tif = write_raster(tmp_path / "site.tif", z, transform=Affine(CELL, 0, WEST, 0, -CELL, NORTH))
+def site_with_reach(client, tmp_path, z, outlets, water, assets, reach):
+    """Upload, confirm and analyse a site with assets and its reach inputs; (site id, results folder)."""
+    tif = write_raster(tmp_path / f"site{len(list(tmp_path.glob('site*.tif')))}.tif", z, transform=Affine(CELL, 0, WEST, 0, -CELL, NORTH))
     site_id = upload_dem(client, tif).get_json()["site_id"]
     r = confirm(client, site_id, outlets=outlets, water=water)
     assert r.status_code == 202, r.get_data(as_text=True)
@@ -83,20 +83,32 @@ def _site(tmp_path, z, outlets, water, assets, reach):
     assert r.status_code == 202, r.get_data(as_text=True)
     assert client.get(f"/api/sites/{site_id}/status").get_json()["state"] == "ready"
     run_id = client.get(f"/api/sites/{site_id}").get_json()["current_run"]
-    results = layout.results_dir(tmp_path / "data", site_id, run_id)
-    return client, site_id, results
+    results = layout.results_dir(Path(client.app.config["DATA_DIR"]), site_id, run_id)
+    return site_id, results
+
+
+def village_site(client, tmp_path):
+    return site_with_reach(client, tmp_path, VILLAGE, ("file",), (RIVER, "river.geojson"),
+                           VILLAGE_ASSETS, {"refuges": REFUGES, "roads": ROADS})
+
+
+def channel_site(client, tmp_path):
+    return site_with_reach(client, tmp_path, CHANNEL, ("edge",), None, CHANNEL_ASSETS,
+                           {"profile": PROFILE})
 
 
 @pytest.fixture(scope="module")
 def village(tmp_path_factory):
-    return _site(tmp_path_factory.mktemp("village"), VILLAGE, ("file",), (RIVER, "river.geojson"),
-                 VILLAGE_ASSETS, {"refuges": REFUGES, "roads": ROADS})
+    folder = tmp_path_factory.mktemp("village")
+    client = Client(make_app(folder / "data"))
+    return (client, *village_site(client, folder))
 
 
 @pytest.fixture(scope="module")
 def channel(tmp_path_factory):
-    return _site(tmp_path_factory.mktemp("channel"), CHANNEL, ("edge",), None, CHANNEL_ASSETS,
-                 {"profile": PROFILE})
+    folder = tmp_path_factory.mktemp("channel")
+    client = Client(make_app(folder / "data"))
+    return (client, *channel_site(client, folder))
 
 
 def _read(path):
@@ -214,3 +226,32 @@ def test_bad_reach_files_are_refused_in_words(village, channel):
     assert r.status_code == 400 and "refuges" in r.get_json()["error"]
     r = client.get(f"/tiles/{site_id}/cutoff/5/19/0/0.png")
     assert r.status_code == 409
+
+
+def test_demo_site_is_registered_with_the_demo_roads_and_refuges(tmp_path):
+    from sillmark.web import db
+
+    app = make_app(tmp_path / "data")  # the demo is not registered on start here
+    svc = app.extensions["sillmark"]
+    demo = Path(app.config["DEMO_DIR"])
+    if not (demo / "riverbend.tif").is_file():
+        pytest.skip("demo_dem/riverbend.tif is missing")
+    conn = db.connect(svc.db_path)
+    try:
+        run_id = svc.registry.register_demo(conn)
+        settings = db.loads(db.get_run(conn, run_id)["settings"])
+    finally:
+        conn.close()
+    assert set(settings["reach"]) == {"refuges", "roads"}
+    folder = layout.site_dir(svc.data_dir, 1)
+    for kind, entry in settings["reach"].items():
+        assert (folder / entry["file"]).read_bytes() == (demo / f"{kind}.geojson").read_bytes()
+
+
+def test_settings_page_offers_the_reach_form_and_names_the_files_in_use(village):
+    client, site_id, _ = village
+    html = client.get(f"/sites/{site_id}/settings").get_data(as_text=True)
+    assert 'id="reach-form"' in html and f"/uploads/sites/{site_id}/reach" in html
+    assert "Drop the refuges file in use (refuges.geojson)" in html
+    assert "Drop the roads file in use (roads.geojson)" in html
+    assert "Drop the profile file" not in html

@@ -13,6 +13,9 @@
   var level = config.level, info = null, figures = {}, markers = {};
   var cutLayer = null, offsetLayer = null, offsetMode = false, offset = 0, chart = null;
   if (!panel || !map) { return; }
+  // site.js may have set the level (from the address) before this script ran.
+  var shown = parseFloat((document.getElementById("level-number") || {}).value);
+  if (isFinite(shown)) { level = shown; }
 
   function fmt(v) { return v === null || v === undefined ? "–" : v.toFixed(2); }
   function signed(v) { return (v >= 0 ? "+" : "−") + Math.abs(v).toFixed(2) + " " + unit; }
