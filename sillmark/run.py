@@ -181,6 +181,7 @@ def analyse(
     crs: Any = None,
     progress: Progress | None = None,
     derived: bool = True,
+    window_cells: int | None = None,
     minimum: SiteMinimum | None = None,
     accuracy_stated: bool = False,
     full_inventory: bool = False,
@@ -222,6 +223,11 @@ def analyse(
         :data:`TILED_FILE_NAMES`, to which
         :func:`sillmark.io.results_folder.add_depression_outlines` and
         :func:`sillmark.io.results_folder.add_hierarchy_files` add.
+    window_cells : int, optional
+        For a DEM file: the most cells of one window of depressions the
+        hierarchy is built in (default
+        :data:`sillmark.products.hierarchy_windows.DEFAULT_WINDOW_CELLS`); the
+        hierarchy's memory grows with it, not with the DEM.
     profile : path or GeoJSON dict, optional
         A river's water-surface profile (:mod:`sillmark.grid.profiles`): its
         centreline also serves as an outlet, and ``onset_offset.tif`` and
@@ -303,7 +309,7 @@ def analyse(
                                         connectivity, band, vertical_unit, crs, progress,
                                         profile=profile, edits=edits)
                 if derived:
-                    run = _add_derived(run, temporary, executor, progress)
+                    run = _add_derived(run, temporary, executor, progress, window_cells)
                 if profile is not None:
                     run = _add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
@@ -459,7 +465,8 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
     )
 
 
-def _add_derived(run: Analysis, folder: Path, executor, progress) -> Analysis:
+def _add_derived(run: Analysis, folder: Path, executor, progress,
+                 window_cells: int | None) -> Analysis:
     """The outlines, then the hierarchy, from the folder window by window."""
     t0 = time.perf_counter()
     if progress is not None:
@@ -467,7 +474,9 @@ def _add_derived(run: Analysis, folder: Path, executor, progress) -> Analysis:
     files = add_depression_outlines(run, run.grid, folder)
     if progress is not None:
         progress("outlines", 1, 1)
-    hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=run.grid)
+    windows = {} if window_cells is None else {"window_cells": int(window_cells)}
+    hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=run.grid,
+                                    **windows)
     names = {p.name: p for p in [*files, *hierarchy.files]}
     seconds = {**run.seconds, "outlines_hierarchy": time.perf_counter() - t0}
     return dataclasses.replace(run, files=[names[n] for n in FILE_NAMES if n in names],

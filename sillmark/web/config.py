@@ -40,6 +40,10 @@ DEFAULTS: dict = {
     # in tiles of TILED_TILE_SIZE x TILED_TILE_SIZE cells.
     "TILED_ABOVE_CELLS": 40_000_000,
     "TILED_TILE_SIZE": 2048,
+    # Most cells of one window of depressions the tiled run builds the
+    # depression hierarchy in (sillmark.run.analyse's window_cells): the
+    # hierarchy's memory grows with it, not with the DEM.
+    "TILED_WINDOW_CELLS": 1 << 24,
     # How analyses run: "process" (a separate worker process per analysis,
     # supervised by a thread), "thread" (a thread in the server process) or
     # "inline" (inside the request; for tests).

@@ -13,10 +13,11 @@ from sillmark.errors import InvalidParameter
 from sillmark.units import area_units, unit_words
 from sillmark.web import db, get_db, reach_inputs, render, services
 from sillmark.web.access import open_site, site_assets, site_row
+from sillmark.web.dem_description import UNIT_SOURCE_TEXT
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
 from sillmark.web.report import print_report
 from sillmark.web.site_data import parse_level
-from sillmark.web.sites import UNIT_SOURCE_TEXT, SiteNotReady, run_dict
+from sillmark.web.sites import SiteNotReady, run_dict
 from sillmark.web.tiles import warm
 
 bp = Blueprint("pages", __name__)

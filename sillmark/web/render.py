@@ -485,20 +485,40 @@ def hillshade(elevation: np.ndarray, *, dx_m: np.ndarray | float, dy_m: float,
     return out
 
 
+def halve(level: np.ndarray) -> np.ndarray:
+    """One pyramid step: the 2 × 2 averages of the non-zero values of ``level`` (uint8).
+
+    A last odd row or column is dropped; a 2 × 2 group with no non-zero value
+    (all nodata) stays 0. Rows ``2k:2k+2`` of ``level`` make row ``k`` of the
+    result alone, so a level may be halved in blocks of an even number of rows
+    (see :mod:`sillmark.web.relief`).
+    """
+    r, c = level.shape[0] // 2 * 2, level.shape[1] // 2 * 2
+    block = level[:r, :c].astype(np.float32).reshape(r // 2, 2, c // 2, 2)
+    valid = (block > 0).sum(axis=(1, 3))
+    total = block.sum(axis=(1, 3))
+    nxt = np.zeros((r // 2, c // 2), dtype=np.uint8)
+    ok = valid > 0
+    nxt[ok] = np.clip(np.round(total[ok] / valid[ok]), 1, 255).astype(np.uint8)
+    return nxt
+
+
+def pyramid_continues(shape: tuple[int, int]) -> bool:
+    """Whether a pyramid level of ``shape`` gets a coarser level below it."""
+    return max(shape) > TILE and min(shape) >= 2
+
+
 def shade_pyramid(shade: np.ndarray) -> list[np.ndarray]:
-    """``shade`` and its 2 × 2 averages down to one tile's size (nodata kept as 0)."""
+    """``shade`` and its 2 × 2 averages down to one tile's size (nodata kept as 0).
+
+    The whole pyramid in memory; :func:`sillmark.web.relief.write_relief`
+    writes the same levels block by block.
+    """
     levels = [shade]
     cur = shade
-    while max(cur.shape) > TILE and min(cur.shape) >= 2:
-        r, c = cur.shape[0] // 2 * 2, cur.shape[1] // 2 * 2
-        block = cur[:r, :c].astype(np.float32).reshape(r // 2, 2, c // 2, 2)
-        valid = (block > 0).sum(axis=(1, 3))
-        total = block.sum(axis=(1, 3))
-        nxt = np.zeros((r // 2, c // 2), dtype=np.uint8)
-        ok = valid > 0
-        nxt[ok] = np.clip(np.round(total[ok] / valid[ok]), 1, 255).astype(np.uint8)
-        levels.append(nxt)
-        cur = nxt
+    while pyramid_continues(cur.shape):
+        cur = halve(cur)
+        levels.append(cur)
     return levels
 
 

@@ -1,15 +1,14 @@
 """The tiled engine inside a web analysis run, for DEMs above a size threshold.
 
-:func:`analyse_if_large` is called by :func:`sillmark.web.worker._run` after the DEM
-is read. For a DEM of more than ``TILED_ABOVE_CELLS`` cells (see
-:mod:`sillmark.web.config`; the value travels with the run's settings) it runs
+:func:`sillmark.web.worker._run` asks :func:`is_large` whether a DEM has more
+than ``TILED_ABOVE_CELLS`` cells (see :mod:`sillmark.web.config`; the value
+travels with the run's settings). If so, :func:`analyse_tiled` runs
 :func:`sillmark.run.analyse` on the DEM file, tile by tile with the tiles in
-scratch files, instead of on the DEM in memory (it writes the same files, the
-outlines and the hierarchy window by window), and reads the written GeoTIFFs
-back into the
-:class:`~sillmark.engine.flood.SpillResult` the viewer stores
-(:func:`sillmark.web.arrays.save`). The run's phase shows the tiles done
-(``flooding tiles: 3 of 12 tiles done``) and then the hierarchy's batches.
+scratch files (the DEM is read by windows, never whole), and
+:func:`result_rows` reads the written GeoTIFFs back block by block for the
+arrays the map server maps (:class:`sillmark.web.arrays.ArrayWriter`). The
+run's phase shows the tiles done (``flooding tiles: 3 of 12 tiles done``) and
+then the hierarchy's batches.
 
 The tiles run one after another in the worker process (a serial executor),
 not on a local Dask cluster: the worker is already a process of its own per
@@ -26,19 +25,17 @@ Like :mod:`sillmark.web.worker`, this module imports no Flask.
 from __future__ import annotations
 
 import time
-import types
 from pathlib import Path
 
 import numpy as np
-import rasterio
 
 from sillmark.engine.executors import SerialExecutor
-from sillmark.engine.flood import SpillResult
-from sillmark.run import analyse
+from sillmark.io.geotiff import read_window
+from sillmark.run import Analysis, analyse
 from sillmark.web import db
 from sillmark.web.config import DEFAULTS
 
-__all__ = ["analyse_if_large", "engine_settings"]
+__all__ = ["analyse_tiled", "engine_settings", "is_large", "result_rows"]
 
 # Percent of the whole run at which each step of the tiled run starts; they
 # fill the worker's "marking outlets" and "flooding from the outlets" phases
@@ -63,7 +60,8 @@ _COUNTED = {"flood": "tiles", "finish": "tiles", "write": "files", "hierarchy": 
 def engine_settings(config) -> dict:
     """The run settings that choose the engine, from the app's configuration."""
     return {"tiled_above_cells": int(config["TILED_ABOVE_CELLS"]),
-            "tile_size": int(config["TILED_TILE_SIZE"])}
+            "tile_size": int(config["TILED_TILE_SIZE"]),
+            "window_cells": int(config["TILED_WINDOW_CELLS"])}
 
 
 class _TileProgress(SerialExecutor):
@@ -108,58 +106,67 @@ class _TileProgress(SerialExecutor):
         return out
 
 
-def _read_band(path: Path) -> np.ndarray:
-    with rasterio.open(path) as ds:
-        return ds.read(1)
+def is_large(shape: tuple[int, int], settings: dict) -> bool:
+    """Whether a DEM of ``shape`` goes to the tiled engine under the run's ``settings``."""
+    threshold = settings.get("tiled_above_cells")
+    threshold = int(DEFAULTS["TILED_ABOVE_CELLS"] if threshold is None else threshold)
+    return int(shape[0]) * int(shape[1]) > threshold
 
 
-def analyse_if_large(dem, dem_path: Path, specs: tuple, settings: dict, results: Path, progress):
-    """Run the tiled engine when the DEM has more cells than the run's threshold.
+def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
+                  progress) -> Analysis:
+    """Analyse the DEM file tile by tile into ``results``, reporting the steps.
 
     Parameters
     ----------
-    dem : sillmark.grid.dem.DEM
-        The DEM as the worker read it (its cells are the viewer's elevation).
     dem_path : Path
-        The same DEM's file, read again tile by tile.
+        The DEM file, read window by window.
     specs : tuple
         Outlet sources, as for :func:`sillmark.grid.outlets.build_outlets`.
     settings : dict
-        The run's settings (``connectivity``, ``vertical_unit``,
-        ``tiled_above_cells``, ``tile_size``; the defaults of
-        :data:`sillmark.web.config.DEFAULTS` where a run predates them).
+        The run's settings (``connectivity``, ``vertical_unit``, ``tile_size``,
+        ``window_cells``; the defaults of :data:`sillmark.web.config.DEFAULTS`
+        where a run predates them).
     results : Path
         The run's ``results/`` folder.
     progress : sillmark.web.worker._Progress
 
     Returns
     -------
-    None, when the DEM is small enough for the in-memory engine; otherwise
-    ``(outlets, result)``: an object with the outlet ``count`` and ``sources``,
-    and the :class:`~sillmark.engine.flood.SpillResult` read back from the files.
+    sillmark.run.Analysis
+        Its ``result`` is None: the rasters are in ``results`` (see :func:`result_rows`).
     """
-    threshold = settings.get("tiled_above_cells")
-    threshold = int(DEFAULTS["TILED_ABOVE_CELLS"] if threshold is None else threshold)
-    if dem.rows * dem.cols <= threshold:
-        return None
-
     tile = int(settings.get("tile_size") or DEFAULTS["TILED_TILE_SIZE"])
-    connectivity = int(settings["connectivity"])
+    window = int(settings.get("window_cells") or DEFAULTS["TILED_WINDOW_CELLS"])
     tracker = _TileProgress(progress)
-    run = analyse(dem_path, specs, results, executor=tracker, store="files", tile_size=tile,
-                  connectivity=connectivity, vertical_unit=settings["vertical_unit"],
-                  progress=tracker.step)
-    ids = _read_band(results / "depression_id.tif")
+    return analyse(dem_path, specs, results, executor=tracker, store="files", tile_size=tile,
+                   connectivity=int(settings["connectivity"]),
+                   vertical_unit=settings["vertical_unit"], progress=tracker.step,
+                   window_cells=window)
+
+
+def _depression_ids(path: Path, cols: int, r0: int, r1: int) -> np.ndarray:
+    ids = read_window(path, r0, r1, 0, cols)
     np.maximum(ids, 0, out=ids)  # the file's -1 (nodata, unreached) is 0 in a SpillResult
-    result = SpillResult(
-        elevation=dem.elevation,
-        onset_stage=_read_band(results / "onset_stage.tif"),
-        flood_tree=_read_band(results / "flood_tree.tif"),
-        depression_id=ids,
-        depressions=run.depressions,
-        connectivity=run.connectivity,
-        unreached_cells=run.unreached_cells,
-        heap_pops=run.heap_pops,
-    )
-    outlets = types.SimpleNamespace(count=run.outlet_cells, sources=run.outlet_sources)
-    return outlets, result
+    return ids
+
+
+def result_rows(results: Path, cols: int) -> dict:
+    """Block readers of the result arrays the map server keeps, from the GeoTIFFs.
+
+    Returns ``{field: rows}`` for the ``onset_stage``, ``flood_tree`` and
+    ``depression_id`` fields of :class:`~sillmark.engine.flood.SpillResult`,
+    where ``rows(r0, r1)`` reads rows ``r0:r1`` of the field as the in-memory
+    engine holds it (depression id 0, not the file's -1, on nodata).
+    """
+    results = Path(results)
+
+    def layer(name: str):
+        path = results / f"{name}.tif"
+        return lambda r0, r1: read_window(path, r0, r1, 0, cols)
+
+    return {
+        "onset_stage": layer("onset_stage"),
+        "flood_tree": layer("flood_tree"),
+        "depression_id": lambda r0, r1: _depression_ids(results / "depression_id.tif", cols, r0, r1),
+    }

@@ -28,12 +28,13 @@ from werkzeug.exceptions import RequestEntityTooLarge
 from sillmark.errors import InvalidDEM, InvalidParameter, SillmarkError
 from sillmark.grid.assets import InvalidAssets, read_assets
 from sillmark.grid.crs import crs_label
-from sillmark.grid.raster_files import raster_outline
 from sillmark.grid.dem_grid import read_dem_grid
+from sillmark.grid.raster_files import raster_outline
 from sillmark.web import get_db, layout, services
 from sillmark.web.access import site_row
 from sillmark.web.db import StorageError
-from sillmark.web.sites import ChoiceNeeded, SiteNotReady, dem_choices
+from sillmark.web.dem_description import ChoiceNeeded, dem_choices
+from sillmark.web.sites import SiteNotReady
 
 bp = Blueprint("uploads", __name__, url_prefix="/uploads")
 

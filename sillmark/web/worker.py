@@ -1,9 +1,12 @@
 """The body of one analysis run, as executed by the background worker.
 
-:func:`run_job` reads the DEM, marks the outlets, runs the spill engine, draws
-the hillshade, writes the result files (the same as ``sillmark analyse``) and
-the memory-mappable arrays, recording its phase and percent in SQLite as it
-goes. It runs in a separate process (see :mod:`sillmark.web.jobs`), so it imports no
+:func:`run_job` reads the DEM, draws the hillshade, runs
+:func:`sillmark.run.analyse` (the same files as ``sillmark analyse``; a DEM
+above the tiled threshold tile by tile, see :mod:`sillmark.web.tiled_run`) and
+writes the memory-mappable arrays the map server reads, recording its phase and
+percent in SQLite as it goes. Every grid-sized array is written block by block
+(:class:`sillmark.web.arrays.ArrayWriter`, :mod:`sillmark.web.relief`); a large
+DEM is read by windows, so no whole-grid array exists in the worker. It runs in a separate process (see :mod:`sillmark.web.jobs`), so it imports no
 Flask and talks to the server only through the database and the files.
 
 A run never touches the results of an earlier run: it writes into its own
@@ -32,12 +35,14 @@ from pathlib import Path
 import numpy as np
 import pyproj
 
+from sillmark.errors import InvalidDEM, SillmarkError
 from sillmark.grid.dem import read_dem
-from sillmark.errors import SillmarkError
-from sillmark.io.export import FILE_NAMES
+from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.grid.outlets import build_outlets
+from sillmark.io.export import FILE_NAMES
+from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.run import analyse
-from sillmark.web import arrays, db, layout, reach_inputs, render, tiled_run
+from sillmark.web import arrays, db, layout, reach_inputs, relief, tiled_run
 
 log = logging.getLogger("sillmark.worker")
 
@@ -54,6 +59,9 @@ PHASES = (
 _START = dict(PHASES)
 _NEXT = {name: (PHASES[k + 1][1] if k + 1 < len(PHASES) else 100) for k, (name, _) in enumerate(PHASES)}
 
+
+#: Files an in-memory analysis writes: every result file and the folder's README.txt.
+_FILES_WRITTEN = len(FILE_NAMES) + 1
 
 #: Least time between two progress writes within a phase, in seconds.
 PROGRESS_INTERVAL = 0.25
@@ -297,6 +305,27 @@ def failure_message(exc: BaseException, folder: Path | None = None) -> str:
             "worker.log in the data folder")
 
 
+def _read_grid(path: Path, settings: dict):
+    """The DEM's grid from its header, refused when it has more cells than the run allows."""
+    grid = read_dem_grid(path, vertical_unit=settings["vertical_unit"])
+    limit = int(settings.get("max_cells") or 400_000_000)
+    cells = grid.rows * grid.cols
+    if cells > limit:
+        raise InvalidDEM(
+            f"'{path.name}' has {grid.rows:,} × {grid.cols:,} = {cells:,} cells, more than "
+            f"the limit of {limit:,}; crop it to the site or resample it to coarser cells")
+    return grid
+
+
+def _finite_range(values: np.ndarray, lo_hi: list) -> None:
+    """Widen ``lo_hi`` ([low, high, count]) by the finite values of one block."""
+    v = values[np.isfinite(values)]
+    if v.size:
+        lo_hi[0] = min(lo_hi[0], float(v.min()))
+        lo_hi[1] = max(lo_hi[1], float(v.max()))
+        lo_hi[2] += int(v.size)
+
+
 def _run(conn, data: Path, run, folder: Path) -> None:
     run_id = run["id"]
     settings = db.loads(run["settings"])
@@ -308,25 +337,51 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     log.info("run %s started in process %s", run_id, os.getpid())
     t0 = time.perf_counter()
 
+    # A DEM above the tiled threshold is never read whole: its cells are read by
+    # windows, here for the map's arrays and by the engine tile by tile.
     progress.start("reading the DEM")
-    dem = read_dem(site_folder / settings["dem_file"], vertical_unit=settings["vertical_unit"],
-                   max_cells=int(settings.get("max_cells") or 400_000_000))
+    dem_path = site_folder / settings["dem_file"]
+    grid = _read_grid(dem_path, settings)
     connectivity = int(settings["connectivity"])
+    large = tiled_run.is_large(grid.shape, settings)
+    dem = None
+    if not large:
+        dem = read_dem(dem_path, vertical_unit=settings["vertical_unit"],
+                       max_cells=int(settings.get("max_cells") or 400_000_000))
+        grid = dem
+    rows, cols = grid.shape
 
-    # The hillshade needs only the DEM: drawn first, so that the engine run and
-    # the writing of its files follow each other as one call.
+    writer = arrays.ArrayWriter(folder / "arrays")
+    # The elevations for the map, then the relief drawn from them: both need
+    # only the DEM, so they come first and the engine run and the writing of
+    # its files follow each other as one call.
     progress.start("drawing the hillshade")
-    dx_m, dy_m = _cell_metres(dem)
-    shade = render.hillshade(dem.elevation, dx_m=dx_m, dy_m=dy_m, z_metres=dem.vertical_unit.metres)
-    pyramid = render.shade_pyramid(shade)
-    z_lo, z_hi = float(np.nanmin(dem.elevation)), float(np.nanmax(dem.elevation))
-    tints = render.shade_pyramid(render.tint_classes(dem.elevation, z_lo, z_hi))
+    z_range = [math.inf, -math.inf, 0]
+
+    def elevation_rows(r0: int, r1: int) -> np.ndarray:
+        block = dem.elevation[r0:r1] if dem is not None else grid.read_window(r0, r1, 0, cols)
+        _finite_range(block, z_range)
+        return block
+
+    writer.write_rows("elevation", grid.shape, elevation_rows,
+                      rows=arrays.block_rows(cols, limit=BLOCK_ROWS),
+                      progress=lambda f: progress.within(0.3 * f))
+    if not z_range[2]:
+        raise InvalidDEM(f"'{dem_path.name}' holds only nodata cells; give a DEM with elevations")
+    elevation = writer.read("elevation")
+    dx_m, dy_m = _cell_metres(grid)
+    levels = relief.write_relief(
+        writer, lambda r0, r1: np.asarray(elevation[r0:r1]), grid.shape, dx_m=dx_m, dy_m=dy_m,
+        z_metres=grid.vertical_unit.metres, z_range=(z_range[0], z_range[1]),
+        progress=lambda f: progress.within(0.3 + 0.7 * f))
 
     results = folder / "results"
     specs = _specs(site_folder, settings["outlets"])
-    tiled = tiled_run.analyse_if_large(dem, site_folder / settings["dem_file"], specs, settings,
-                                       results, progress)
-    if tiled is None:
+    if large:
+        analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress)
+        progress.start("writing result files")  # written already, tile by tile
+        sources = tiled_run.result_rows(results, cols)
+    else:
         progress.start("marking outlets")
         outlets = build_outlets(dem, specs, connectivity=connectivity)
         progress.start("flooding from the outlets")
@@ -337,44 +392,58 @@ def _run(conn, data: Path, run, folder: Path) -> None:
                 progress.start("writing result files")
             if name not in names:
                 names.append(name)
-            progress.within((len(names) - 1 + (done / total if total else 1.0)) / len(FILE_NAMES))
+            progress.within((len(names) - 1 + (done / total if total else 1.0)) / _FILES_WRITTEN)
 
         # The engine, then every result file, moved into place together.
-        result = analyse(dem, outlets, results, connectivity=connectivity, progress=file_progress,
-                         **reach_inputs.analyse_inputs(site_folder, settings)).result
-    else:
-        outlets, result = tiled
-        progress.start("writing result files")  # written already, tile by tile
+        analysis = analyse(dem, outlets, results, connectivity=connectivity,
+                           progress=file_progress,
+                           **reach_inputs.analyse_inputs(site_folder, settings))
+        result = analysis.result
+        sources = {name: (lambda r0, r1, a=getattr(result, name): a[r0:r1])
+                   for name in ("onset_stage", "flood_tree", "depression_id")}
     log.info("flood and result files done in %.2f s", time.perf_counter() - t0)
 
     progress.start("storing arrays for the map")
-    z = dem.elevation
-    valid = dem.valid
-    finite_s = result.onset_stage[np.isfinite(result.onset_stage)]
-    t = result.depressions
+    onset_range = [math.inf, -math.inf, 0]
+    read_onset = sources["onset_stage"]
+
+    def onset_rows(r0: int, r1: int) -> np.ndarray:
+        block = read_onset(r0, r1)
+        _finite_range(block, onset_range)
+        return block
+
+    sources["onset_stage"] = onset_rows
+    step = arrays.block_rows(cols, limit=BLOCK_ROWS)
+    for k, (name, source) in enumerate(sources.items()):
+        writer.write_rows(name, grid.shape, source, rows=step,
+                          progress=lambda f, k=k: progress.within((k + f) / len(sources)))
+    t = analysis.depressions
     summary = {
-        "rows": dem.rows,
-        "cols": dem.cols,
-        "valid_cells": int(np.count_nonzero(valid)),
-        "outlet_cells": int(outlets.count),
+        "rows": rows,
+        "cols": cols,
+        "valid_cells": int(analysis.valid_cells),
+        "outlet_cells": int(analysis.outlet_cells),
         "outlet_sources": [o.get("name", o["kind"]) for o in settings["outlets"]],
         "connectivity": connectivity,
-        "vertical_unit": dem.vertical_unit.value,
-        "elevation_min": float(np.nanmin(z)),
-        "elevation_max": float(np.nanmax(z)),
-        "onset_min": float(finite_s.min()) if finite_s.size else None,
-        "onset_max": float(finite_s.max()) if finite_s.size else None,
+        "vertical_unit": grid.vertical_unit.value,
+        "elevation_min": z_range[0],
+        "elevation_max": z_range[1],
+        "onset_min": onset_range[0] if onset_range[2] else None,
+        "onset_max": onset_range[1] if onset_range[2] else None,
         "depressions": len(t),
         "highest_spill": float(t.spill_elevation.max()) if len(t) else None,
-        "unreached_cells": int(result.unreached_cells),
-        "lonlat_bounds": lonlat_bounds(dem),
+        "unreached_cells": int(analysis.unreached_cells),
+        "lonlat_bounds": lonlat_bounds(grid),
         "cell_metres": float(min(np.min(dx_m), dy_m)),
         "seconds": None,
     }
     for key in ("elevation_min", "elevation_max", "onset_min", "onset_max", "highest_spill"):
         if summary[key] is not None and not math.isfinite(summary[key]):
             summary[key] = None
-    arrays.save(folder / "arrays", dem, result, pyramid, tints, {"summary": summary})
+    writer.commit(grid, depressions=t, pyramid_levels=levels, extra={"summary": summary},
+                  scalars={"connectivity": analysis.connectivity,
+                           "unreached_cells": analysis.unreached_cells,
+                           "heap_pops": analysis.heap_pops})
 
     progress.start("finishing")
     summary["seconds"] = round(time.perf_counter() - t0, 2)

@@ -174,10 +174,11 @@ def test_a_worker_process_gets_the_threshold_with_the_run(tmp_path, lowbank_tif)
 
 
 def test_in_memory_file_progress_spreads_over_every_result_file(fresh, lowbank_tif, monkeypatch):
-    # write_results writes the 11 files of sillmark.io.summary.FILE_NAMES; the phase
-    # "writing result files" runs from 62 % to 92 %, so each file's start is its
-    # own step of 30/11 % and 92 % is reached only when summary.json is done
-    # (dividing by a fixed 8 would reach 92 % after the eighth file and stay there).
+    # write_results writes the 11 files of sillmark.io.summary.FILE_NAMES and the
+    # folder's README.txt; the phase "writing result files" runs from 62 % to 92 %,
+    # so each file's start is its own step of 30/12 % and 92 % is reached only when
+    # summary.json is done (dividing by the 11 result files alone reached 92 % at
+    # README.txt and stayed there).
     from sillmark.io.summary import FILE_NAMES
     from sillmark.web import worker
 
@@ -194,6 +195,31 @@ def test_in_memory_file_progress_spreads_over_every_result_file(fresh, lowbank_t
     _, client = fresh
     analysed_site(client, lowbank_tif, assets=False)
     assert len(FILE_NAMES) == 11
+    files = len(FILE_NAMES) + 1  # and README.txt
     assert seen == sorted(seen) and seen[-1] == 92.0 and seen.count(92.0) == 1
-    starts = {round(62 + 30 * k / len(FILE_NAMES), 1) for k in range(len(FILE_NAMES))}
+    starts = {round(62 + 30 * k / files, 1) for k in range(files)}
     assert starts <= set(seen)
+
+
+def test_served_map_tiles_equal_the_in_memory_site(tiled_site, in_memory_site):
+    """The tiled run's arrays are streamed from its GeoTIFFs and its relief drawn in
+    blocks; the map tiles served from them are the in-memory site's, byte for byte."""
+    from sillmark.web import render
+
+    t_app, t_client, t_site, _ = tiled_site
+    m_app, m_client, m_site = in_memory_site
+    t_stored = arrays.load(run_folder(t_app, t_site) / "arrays")
+    m_stored = arrays.load(run_folder(m_app, m_site) / "arrays")
+    for a, b in zip(t_stored.pyramid + t_stored.tints, m_stored.pyramid + m_stored.tints, strict=True):
+        assert np.array_equal(a, b)
+    lon, lat = lonlat(*cell_centre(18, 25))
+    seen = 0
+    for z in (17, 18, 19):
+        x, y = render.lonlat_to_tile(lon, lat, z)
+        for kind in ("hillshade", *LEVELS):
+            a = t_client.get(f"/tiles/{t_site}/{kind}/{z}/{x}/{y}.png")
+            b = m_client.get(f"/tiles/{m_site}/{kind}/{z}/{x}/{y}.png")
+            assert a.status_code == b.status_code == 200
+            assert a.get_data() == b.get_data(), (kind, z)
+            seen += a.get_data() != render.BLANK_PNG
+    assert seen >= 9  # the tiles compared show the site, not blank ground
