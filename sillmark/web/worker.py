@@ -443,7 +443,9 @@ def _run(conn, data: Path, run, folder: Path) -> None:
     writer.commit(grid, depressions=t, pyramid_levels=levels, extra={"summary": summary},
                   scalars={"connectivity": analysis.connectivity,
                            "unreached_cells": analysis.unreached_cells,
-                           "heap_pops": analysis.heap_pops})
+                           "heap_pops": analysis.heap_pops,
+                           # The web app gives no edits, so no culverts; any would be refused.
+                           "culverts": getattr(analysis, "culverts", None)})
 
     progress.start("finishing")
     summary["seconds"] = round(time.perf_counter() - t0, 2)
