@@ -66,7 +66,9 @@ from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
-from sillmark.io.summary import FILE_NAMES, write_table_summary
+from sillmark.io.styles import write_styles
+from sillmark.io.summary import FILE_NAMES, RUN_FOLDER_PREFIX, write_table_summary
+from sillmark.units import unit_of
 
 __all__ = ["STORES", "TILED_FILE_NAMES", "TILED_TILE_SIZE", "Analysis", "analyse"]
 
@@ -87,7 +89,7 @@ TILED_FILE_NAMES = (
     "spill_points.geojson",
     "summary.json",
 )
-_TEMPORARY_PREFIX = ".sillmark-run-"
+_TEMPORARY_PREFIX = RUN_FOLDER_PREFIX
 _LAYER_FILES = dict(zip(RESULT_LAYERS, FILE_NAMES[:4]))
 
 #: ``progress(step, done, total)``: engine steps "flood", "graph", "finish",
@@ -217,12 +219,22 @@ def analyse(
                                         connectivity, band, vertical_unit, crs, progress)
                 if derived:
                     run = _add_derived(run, temporary, executor, progress)
+            run = _add_styles(run)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
     finally:
         shutil.rmtree(temporary, ignore_errors=True)
     return dataclasses.replace(run, files=files)
+
+
+def _add_styles(run: Analysis) -> Analysis:
+    """An SLD style beside every raster and vector layer (:mod:`sillmark.io.styles`),
+    listed before ``summary.json`` so the summary still comes last."""
+    styles = write_styles(run.files, unit_of(run.grid))
+    summary = [p for p in run.files if p.name == FILE_NAMES[-1]]
+    others = [p for p in run.files if p.name != FILE_NAMES[-1]]
+    return dataclasses.replace(run, files=[*others, *styles, *summary])
 
 
 def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Path]:

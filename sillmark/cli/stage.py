@@ -233,6 +233,7 @@ def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -
         write_assets_csv,
         write_assets_geojson,
     )
+    from sillmark.io.styles import write_styles
     from sillmark.products.assets import assess_assets
 
     tables = []
@@ -243,6 +244,7 @@ def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -
             progress(name, 0, 1)
             write(table, out_dir / name)
             progress(name, 1, 1)
+        write_styles([out_dir / geojson_name], dem.vertical_unit)
         tables.append((table, (out_dir / csv_name, out_dir / geojson_name)))
     return tables
 

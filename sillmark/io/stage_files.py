@@ -12,15 +12,16 @@ writes, with ``{h}`` the :func:`level_label` of the level (``47.60m``,
 ``depressions_at_{h}.csv``      every depression with its state and freeboard at ``h``
 ==============================  ======================================================
 
-and :func:`write_stage_table_csv` writes ``stage_table.csv``, flooded and
+with an OGC SLD style beside each of the first four (``depth_{h}.sld``, ...;
+:mod:`sillmark.io.styles`), and :func:`write_stage_table_csv` writes ``stage_table.csv``, flooded and
 shielded area and volume against level. :func:`write_stage_results` writes the
 lot for several levels into one folder.
 
 Every function takes a result source (:mod:`sillmark.products.source`): a result
 in memory, or a results folder on disk read block by block, with the same files.
 The files follow the conventions of :mod:`sillmark.io.geotiff`, :mod:`sillmark.io.csv_tables`
-and :mod:`sillmark.io.geojson`: GeoTIFFs tiled and
-compressed with the CRS kept, GeoJSON after RFC 7946, CSV with ``# `` comment
+and :mod:`sillmark.io.geojson`: Cloud-Optimized GeoTIFFs (tiled, with
+overviews, compressed) with the CRS kept, GeoJSON after RFC 7946, CSV with ``# `` comment
 lines before the header; every file carries :data:`sillmark.SCREENING_CAUTION`
 and is written atomically (temporary name, then rename). The files hold nothing
 about how the result was obtained (no paths, no clock time), so the same site and
@@ -41,7 +42,7 @@ import numpy as np
 from sillmark import SCREENING_CAUTION, __version__, units
 from sillmark.errors import InvalidParameter
 from sillmark.grid import crs
-from sillmark.io import csv_tables, geotiff, json_values
+from sillmark.io import csv_tables, geotiff, json_values, styles
 from sillmark.io import geojson as geojson_files
 from sillmark.products.outlines import DEFAULT_WINDOW, label_outlines
 from sillmark.products.source import ArraySource
@@ -393,7 +394,8 @@ def _outline_window(source: "ResultSource", window: int | None) -> int:
 
 def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
                 window: int | None = None, progress: geotiff.Progress | None = None) -> LevelFiles:
-    """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`).
+    """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`),
+    and an SLD style beside each map layer (:mod:`sillmark.io.styles`).
 
     Parameters
     ----------
@@ -448,6 +450,7 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
             folder / names.shielded, SHIELDED, "shielded", size)),
         step(names.depressions, lambda: write_depressions_at_csv(source, float(h), folder / names.depressions)),
     )
+    paths = (*paths, *styles.write_styles(paths, unit))
     states, _ = depression_states(source, h)
     return LevelFiles(
         level=float(h), unit=unit, paths=paths,

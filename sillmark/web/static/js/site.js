@@ -302,8 +302,10 @@
     }).addTo(groups.depressions);
     depressions.forEach(function (d) {
       if (d.spill_lat === null) { return; }
+      var sym = config.legend.symbols.spill_point;  // shared with the SLD styles of the files
       var m = L.circleMarker([d.spill_lat, d.spill_lon], {
-        radius: 5, color: "#2b2118", weight: 1.5, fillColor: "#e0b043", fillOpacity: 1, className: "spill-point",
+        radius: sym.radius, color: sym.stroke, weight: sym.weight, fillColor: sym.fill, fillOpacity: 1,
+        className: "spill-point",
       });
       m.bindTooltip("spill " + at(d.spill_elevation), { direction: "top", offset: [0, -4] });
       m.bindPopup(function () { return depressionPopup(d); }, { maxWidth: 320 });
@@ -354,7 +356,7 @@
     });
   }
 
-  var STATE_FILL = { flooded: "#2f6fa3", shielded: "#d98a1c", dry: "#6f8f5a" };
+  var STATE_FILL = config.legend.symbols.asset.fill_by_state;  // shared with the SLD styles
 
   function loadAssets(v) {
     var seq = ++assetSeq;
