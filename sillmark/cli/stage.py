@@ -227,7 +227,8 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
 
 
 def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -> list:
-    """Assess the assets at every written level and write their two files; return the tables."""
+    """Assess the assets at every written level and write their two files and the map style
+    of the GeoJSON; return the tables."""
     from sillmark.io.asset_files import (
         asset_file_names,
         write_assets_csv,
@@ -244,8 +245,8 @@ def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -
             progress(name, 0, 1)
             write(table, out_dir / name)
             progress(name, 1, 1)
-        write_styles([out_dir / geojson_name], dem.vertical_unit)
-        tables.append((table, (out_dir / csv_name, out_dir / geojson_name)))
+        styles = write_styles([out_dir / geojson_name], dem.vertical_unit)
+        tables.append((table, (out_dir / csv_name, out_dir / geojson_name, *styles)))
     return tables
 
 

@@ -450,7 +450,9 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
             folder / names.shielded, SHIELDED, "shielded", size)),
         step(names.depressions, lambda: write_depressions_at_csv(source, float(h), folder / names.depressions)),
     )
-    paths = (*paths, *styles.write_styles(paths, unit))
+    styled = [p for p in paths if styles.layer_kind(p.name) is not None]
+    paths = (*paths, *(step(styles.style_path(p).name, lambda p=p: styles.write_style(p, unit))
+                       for p in styled))
     states, _ = depression_states(source, h)
     return LevelFiles(
         level=float(h), unit=unit, paths=paths,

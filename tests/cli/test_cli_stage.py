@@ -89,7 +89,7 @@ def test_stage_on_a_dem_writes_the_files_and_reports_with_units(capsys, dem_tif,
     assert "depth_4.50m.tif" in block
     assert "Depressions: 2 overtopped, 0 cut off below the level, 0 dry (of 2)" in out
     assert "Stage table:" in out and "stage_table.csv" in out
-    assert f"Results: 11 files in {out_dir}" in out
+    assert f"Results: 19 files in {out_dir}" in out  # (5 + 4 SLD) per level + the table
     assert SCREENING_CAUTION in out
 
 
