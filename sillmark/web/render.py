@@ -35,7 +35,7 @@ from sillmark.products.map_style import (
     SHIELDED_STRIPE,
     SHIELDED_WASH,
     TINT_STOPS,
-    depth_bounds,
+    depth_bounds,  # noqa: F401  (re-exported: render.depth_bounds)
     depth_classes,
     hex_colour,
     point_symbols,

@@ -17,7 +17,15 @@ import sqlite3
 import uuid
 from pathlib import Path
 
-from flask import Blueprint, jsonify, redirect, render_template, request, send_file, url_for
+from flask import (
+    Blueprint,
+    jsonify,
+    redirect,
+    render_template,
+    request,
+    send_file,
+    url_for,
+)
 
 from sillmark.errors import InvalidParameter
 from sillmark.web import db, get_db, layout, services, wants_json

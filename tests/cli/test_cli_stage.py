@@ -15,7 +15,9 @@ from tests.cli.test_cli import SITE, assert_one_line_error, run_cli, write_dem
 
 #: Files of one level, with {h} the level's label.
 LEVEL_FILES = ("depth_{h}.tif", "water_state_{h}.tif", "flood_extent_{h}.geojson",
-               "shielded_{h}.geojson", "depressions_at_{h}.csv")
+               "shielded_{h}.geojson", "depressions_at_{h}.csv",
+               # the map style (OGC SLD) beside each of the four map layers
+               "depth_{h}.sld", "water_state_{h}.sld", "flood_extent_{h}.sld", "shielded_{h}.sld")
 
 
 def level_files(label: str) -> list[str]:
@@ -279,7 +281,7 @@ def test_analyse_records_the_dem_path_so_other_folders_can_use_it(capsys, dem_ti
     monkeypatch.chdir(dem_tif.parent)
     assert run_cli(capsys, "analyse", dem_tif.name, "--out", str(tmp_path / "an"))[0] == 0
     summary = json.loads((tmp_path / "an" / "summary.json").read_text())
-    assert summary["dem"] == str(dem_tif)
+    assert summary["dem"] == "../site.tif"  # from the folder "an", beside the DEM
     monkeypatch.chdir(tmp_path / "an")
     code, _, err = run_cli(capsys, "stage", ".", "--level", "5", "--out", str(tmp_path / "s"))
     assert code == 0, err
