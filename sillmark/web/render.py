@@ -29,8 +29,10 @@ from dataclasses import dataclass
 import numpy as np
 import pyproj
 
-from sillmark.products.map_style import (
+from sillmark.products.map_style import (  # the names below stay reachable as render.X
     DEPTH_ALPHA,
+    DEPTH_BOUNDS_FT,  # noqa: F401
+    DEPTH_BOUNDS_M,  # noqa: F401
     DEPTH_COLOURS,
     SHIELDED_STRIPE,
     SHIELDED_WASH,

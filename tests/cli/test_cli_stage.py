@@ -102,7 +102,7 @@ def test_stage_from_an_analysis_folder_gives_identical_files(capsys, dem_tif, an
     assert code == 0, err
     assert f"Analysis: {analysed}" in out
     assert names_in(tmp_path / "a") == names_in(tmp_path / "b")
-    assert len(names_in(tmp_path / "a")) == 16
+    assert len(names_in(tmp_path / "a")) == 28  # 3 levels of (5 files + 4 SLD styles), the table
     for name in names_in(tmp_path / "a"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
 
