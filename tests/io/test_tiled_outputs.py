@@ -325,7 +325,7 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     assert figures(out_tiled) == figures(out_whole) == figures(out_dem)
     assert any(line.startswith("  Shielded low ground:") for line in figures(out_tiled))
     names = sorted(p.name for p in (tmp_path / "s_whole").iterdir())
-    assert len(names) == 11  # five per level and the table
+    assert len(names) == 19  # five per level, four SLD styles per level, and the table
     for folder in ("s_tiled", "s_dem"):
         assert sorted(p.name for p in (tmp_path / folder).iterdir()) == names  # scratch removed
         for name in names:
