@@ -17,17 +17,18 @@ serve: $(STAMP)
 	$(BIN)/sillmark serve
 
 # Headless Chromium for the browser tests, from Debian's packages (the tests
-# drive it through Playwright; no browser is downloaded). Skipped, loudly, where
-# it cannot be installed; the browser tests then skip with the reason.
+# drive it through Playwright; no browser is downloaded), and poppler-utils
+# (pdftotext, pdfinfo) to read the printed report's PDF. Skipped, loudly, where
+# they cannot be installed; the browser tests then skip with the reason.
 browser:
-	@command -v chromium >/dev/null 2>&1 || { \
+	@{ command -v chromium && command -v pdftotext && command -v pdfinfo; } >/dev/null 2>&1 || { \
 	  if [ "$$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then \
-	    echo "make: installing chromium for the browser tests"; \
+	    echo "make: installing chromium and poppler-utils for the browser tests"; \
 	    DEBIAN_FRONTEND=noninteractive apt-get update -qq && \
-	    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null || \
-	    echo "make: COULD NOT INSTALL CHROMIUM: browser tests will be skipped" >&2; \
+	    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium poppler-utils >/dev/null || \
+	    echo "make: COULD NOT INSTALL CHROMIUM OR POPPLER-UTILS: browser tests will be skipped" >&2; \
 	  else \
-	    echo "make: NO CHROMIUM and no root apt-get: browser tests will be skipped" >&2; \
+	    echo "make: NO CHROMIUM OR POPPLER-UTILS and no root apt-get: browser tests will be skipped" >&2; \
 	  fi; }
 
 test: $(STAMP) browser

@@ -10,6 +10,7 @@ It writes, next to this file:
     riverbend_assets.csv     points of concern: name,kind,x,y in the DEM CRS
     riverbend_assets.geojson the same points in WGS84 (RFC 7946)
     river.geojson            the river centreline in WGS84, to mark as an outlet
+    ford_road_culvert.geojson  an edits file: a culvert under Ford Road (WGS84)
 
 Everything here is made up for the demo: the town, the river, the terrain and the
 assets. The coordinates only place the grid in a real projected CRS; the DEM does
@@ -96,6 +97,12 @@ ROAD_POINTS = [  # (col, row, crest elevation); None = the brook sag sets it
 ]
 ROAD_LOW = 48.00  # crest where Ford Road dips over Kiln Brook: no culvert
 ROAD_SAG_LENGTH = 30.0  # m from the low spot at which the crest is 1 m higher
+# A culvert the DEM does not show, for the edits file: under the road's low spot
+# from the brook bed behind the road (south, first end) to the bed on the river
+# side (north, last end), (col, row) of cell centres; invert just below the
+# southern bed.
+FORD_CULVERT = ((1505.5, 1292.5), (1505.5, 1273.5))
+FORD_CULVERT_INVERT = 47.20
 ROAD_CREST_HALF_WIDTH, ROAD_SIDE_SLOPE = 3.5, 0.5
 
 # ---------------------------------------------------- Torvey Mill gravel pit lake
@@ -156,6 +163,26 @@ ASSETS = [  # name, kind, (col, row)
     ("Lower Ford Farm", "farmhouse", (1512.0, 1318.0)),
     ("Bench Top Farm", "farmhouse", (400.0, 1470.0)),
     ("Kiln Field Farm", "farmhouse", (1760.0, 1480.0)),
+]
+
+# ----------------------------------------------- roads and refuges (for the cut-off stage)
+ROADS = [  # name, [(col, row), ...]: the lanes people would leave by
+    ("Church Street", [(800.0, 180.0), (800.0, 300.0), (760.0, 470.0), (900.0, 560.0)]),
+    ("Hall Road", [(800.0, 180.0), (1000.0, 300.0)]),
+    ("Mill Lane", [(1000.0, 300.0), (1010.0, 560.0), (1010.0, 770.0)]),
+    ("Alder Row", [(1010.0, 560.0), (1120.0, 650.0), (1230.0, 742.0)]),
+    ("Works Road", [(1000.0, 300.0), (1440.0, 290.0), (1700.0, 650.0)]),
+    ("Ford Road", [(c, r) for c, r, _ in ROAD_POINTS]),
+    ("Meadow Lane", [(330.0, 900.0), (560.0, 880.0), (800.0, 960.0), (1165.0, 925.0),
+                     (1150.0, 905.0)]),
+    ("Ford Farm lane", [(1512.0, 1318.0), (1530.0, 1284.0)]),
+    ("Bench Lane", [(400.0, 1470.0), (800.0, 1420.0), (1300.0, 1380.0), (1400.0, 1273.0)]),
+    ("Kiln Field lane", [(1760.0, 1480.0), (1767.0, 1480.0)]),
+]
+REFUGES = [  # name, polygon [(col, row), ...]
+    ("St Aldric's Hall rest centre", [(780.0, 165.0), (820.0, 165.0), (820.0, 195.0), (780.0, 195.0)]),
+    ("Kiln Bench muster field", [(1790.0, 1560.0), (1850.0, 1560.0), (1850.0, 1599.0),
+                                 (1790.0, 1599.0)]),
 ]
 
 # town building pads (level platforms), placed on a street grid
@@ -534,6 +561,36 @@ def write_vectors() -> None:
                      "coordinates": [[round(float(a), 7), round(float(b), 7)] for a, b in zip(lon, lat)]},
     }]}
     _write_text(HERE / "river.geojson", json.dumps(river) + "\n")
+    write_access_vectors(to_wgs84)
+
+
+def write_access_vectors(to_wgs84) -> None:
+    """``roads.geojson`` (lines) and ``refuges.geojson`` (polygons) in WGS84."""
+    def lonlat(points):
+        xs, ys = zip(*(xy_of(c, r) for c, r in points))
+        lon, lat = to_wgs84.transform(np.array(xs), np.array(ys))
+        return [[round(float(a), 7), round(float(b), 7)] for a, b in zip(lon, lat)]
+
+    roads = {"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"name": name},
+         "geometry": {"type": "LineString", "coordinates": lonlat(points)}}
+        for name, points in ROADS]}
+    _write_text(HERE / "roads.geojson", json.dumps(roads) + "\n")
+    refuges = {"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"name": name},
+         "geometry": {"type": "Polygon", "coordinates": [lonlat([*ring, ring[0]])]}}
+        for name, ring in REFUGES]}
+    _write_text(HERE / "refuges.geojson", json.dumps(refuges) + "\n")
+
+    ends = [to_wgs84.transform(*xy_of(c, r)) for c, r in FORD_CULVERT]
+    culvert = {"type": "FeatureCollection", "features": [{
+        "type": "Feature",
+        "properties": {"kind": "culvert", "name": "Ford Road culvert",
+                       "invert": FORD_CULVERT_INVERT},
+        "geometry": {"type": "LineString",
+                     "coordinates": [[round(lon, 7), round(lat, 7)] for lon, lat in ends]},
+    }]}
+    _write_text(HERE / "ford_road_culvert.geojson", json.dumps(culvert, indent=1) + "\n")
 
 
 def main() -> None:
@@ -569,7 +626,8 @@ def main() -> None:
     print(f"  flood bank notch {LEVEE_NOTCH:.2f} m at col {nc:.0f}, row {nr:.0f}; "
           f"Ford Road low spot {ROAD_LOW:.2f} m at col {lc:.0f}, row {lr:.0f}")
     print(f"  Hollows: saddles {HOLLOWS_SADDLE_WM:.2f} / {HOLLOWS_SADDLE_ME:.2f} m, sill {HOLLOWS_SILL:.2f} m")
-    print(f"  wrote riverbend_assets.csv/.geojson ({len(ASSETS)} assets) and river.geojson")
+    print(f"  wrote riverbend_assets.csv/.geojson ({len(ASSETS)} assets), river.geojson "
+          "and ford_road_culvert.geojson")
 
 
 if __name__ == "__main__":

@@ -19,9 +19,21 @@ class InvalidOutlets(SillmarkError, ValueError):
     """The outlet specification is unusable (unknown kind, misses the grid, empty)."""
 
 
+class InvalidEdits(SillmarkError, ValueError):
+    """An edits file is unusable (unknown kind, missing property, off the DEM, on nodata)."""
+
+
 class InvalidParameter(SillmarkError, ValueError):
     """A parameter is out of range or of the wrong kind (connectivity, unit, location)."""
 
 
 class LocationOutsideDEM(InvalidParameter):
     """A location lies outside the DEM or on a nodata cell."""
+
+
+class InvalidProfile(SillmarkError, ValueError):
+    """A water-surface profile file is unusable (not one centreline, too few stations)."""
+
+
+class InvalidRefuges(SillmarkError, ValueError):
+    """A refuge or road file is unusable (no geometry, misses the grid, all on nodata)."""

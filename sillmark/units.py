@@ -1,7 +1,8 @@
 """Vertical units of a site and conversions to SI.
 
-Elevations keep the unit they were surveyed in; areas are reported in m² (and ha),
-volumes in m³, and also in acre-feet when the site is in feet.
+Elevations keep the unit they were surveyed in. Areas and volumes are shown in
+m², ha and m³ on metric sites and in ft², acres and acre-ft on sites whose
+heights are in feet (:func:`area_units`).
 
 References
 ----------
@@ -12,7 +13,10 @@ acre = 4046.8564224 m²).
 
 from __future__ import annotations
 
+import dataclasses
 import enum
+
+import numpy as np
 
 from sillmark.errors import InvalidParameter
 
@@ -199,3 +203,118 @@ def level_text(value: float, unit: VerticalUnit | str, datum: str | None) -> str
     symbol = VerticalUnit.parse(unit).symbol
     sep = " " if datum else ", "
     return f"{value:.2f} {symbol}{sep}{datum_phrase(datum)}"
+
+
+# --------------------------------------------------------------------------- areas and volumes
+
+#: One international square foot in square metres (0.3048² exactly).
+SQUARE_FOOT_M2 = 0.3048**2
+
+
+@dataclasses.dataclass(frozen=True)
+class AreaUnits:
+    """The units areas and volumes are shown and exported in, for one site.
+
+    Metric sites read m², ha and m³; sites whose heights are in feet (either
+    foot) read ft², acres and acre-ft. :func:`area_units` picks them from the
+    site's vertical unit, so every page, chart, table and export agrees.
+
+    Attributes
+    ----------
+    small_area, large_area, volume : str
+        Symbols as people read them (``m²``, ``ha``, ``m³`` or ``ft²``,
+        ``acres``, ``acre-ft``).
+    small_area_m2, large_area_m2, volume_m3 : float
+        Size of one of each unit in m² or m³.
+    small_area_key, large_area_key, volume_key : str
+        Suffixes of column and JSON key names (``m2``, ``ha``, ``m3`` or
+        ``ft2``, ``acres``, ``acre_ft``).
+    """
+
+    small_area: str
+    small_area_m2: float
+    small_area_key: str
+    large_area: str
+    large_area_m2: float
+    large_area_key: str
+    volume: str
+    volume_m3: float
+    volume_key: str
+
+    @property
+    def is_metric(self) -> bool:
+        return self.volume_key == "m3"
+
+    def small(self, m2):
+        """An area (m², scalar or array) in the small area unit (m² or ft²)."""
+        return _scaled(m2, self.small_area_m2)
+
+    def large(self, m2):
+        """An area (m², scalar or array) in the large area unit (ha or acres)."""
+        return _scaled(m2, self.large_area_m2)
+
+    def vol(self, m3):
+        """A volume (m³, scalar or array) in the volume unit (m³ or acre-ft)."""
+        return _scaled(m3, self.volume_m3)
+
+    def as_dict(self) -> dict:
+        """The units as the browser pages receive them (symbols, keys and sizes)."""
+        return dataclasses.asdict(self)
+
+
+def _scaled(value, size: float):
+    if value is None:
+        return None
+    if isinstance(value, (int, float)):
+        return float(value) / size
+    return np.asarray(value, dtype=np.float64) / size
+
+
+_METRIC_AREAS = AreaUnits("m²", 1.0, "m2", "ha", 1e4, "ha", "m³", 1.0, "m3")
+# Feet sites: international square feet, acres and acre-feet whichever foot the
+# heights are in (the US survey foot is 2 ppm longer, so its acre differs by 4 ppm).
+_FEET_AREAS = AreaUnits("ft²", SQUARE_FOOT_M2, "ft2", "acres", ACRE_M2, "acres",
+                        "acre-ft", ACRE_FOOT_M3, "acre_ft")
+
+
+def area_units(unit: VerticalUnit | str) -> AreaUnits:
+    """The area and volume units of a site whose heights are in ``unit``.
+
+    Examples
+    --------
+    >>> area_units("m").large_area, area_units("us-ft").large_area
+    ('ha', 'acres')
+    >>> round(area_units("ft").large(4046.8564224), 6)
+    1.0
+    """
+    return _FEET_AREAS if VerticalUnit.parse(unit).is_feet else _METRIC_AREAS
+
+
+def own_unit_columns(unit: VerticalUnit | str, *, area_m2=None, volume_m3=None,
+                     area_name: str = "area", volume_name: str = "volume") -> dict:
+    """Columns (or properties) in a feet site's own area and volume units.
+
+    Tables and files keep their SI columns (``area_m2``, ``area_ha``,
+    ``volume_m3``) on every site, so files of different sites compare; a site
+    whose heights are in feet gets these beside them, each unit in its name:
+    ``{area_name}_ft2``, ``{area_name}_acres`` and ``{volume_name}_acre_ft``.
+    Metric sites get none (their own units are the SI ones).
+
+    Examples
+    --------
+    >>> own_unit_columns("m", area_m2=[1e4])
+    {}
+    >>> cols = own_unit_columns("ft", area_m2=4046.8564224, volume_m3=ACRE_FOOT_M3)
+    >>> [(k, round(float(v), 3)) for k, v in cols.items()]
+    [('area_ft2', 43560.0), ('area_acres', 1.0), ('volume_acre_ft', 1.0)]
+    """
+    units = area_units(unit)
+    if units.is_metric:
+        return {}
+    out: dict = {}
+    if area_m2 is not None:
+        out[f"{area_name}_{units.small_area_key}"] = units.small(area_m2)
+        out[f"{area_name}_{units.large_area_key}"] = units.large(area_m2)
+    if volume_m3 is not None:
+        out[f"{volume_name}_{units.volume_key}"] = units.vol(volume_m3)
+    return out

@@ -4,6 +4,12 @@ Dijkstra's shortest-path algorithm (Dijkstra 1959) with the path cost "highest
 elevation on the path" in place of "sum of edge lengths": the bottleneck or
 minimax path problem. It uses Python's heapq and dictionaries and shares no code
 with the engine, so agreement between the two is evidence for both.
+
+Culverts are extra edges of the graph: a list of ``((ra, ca), (rb, cb),
+invert, one_way)``; crossing one from a cell settled at ``level`` reaches the
+other end at ``max(level, invert, z(end))``, and a one-way culvert is crossed
+from its first end to its last only (a directed graph; Dijkstra's algorithm
+runs on directed graphs unchanged).
 """
 
 from __future__ import annotations
@@ -17,10 +23,16 @@ EIGHT = [(-1, -1), (-1, 0), (-1, 1), (0, -1), (0, 1), (1, -1), (1, 0), (1, 1)]
 FOUR = [(-1, 0), (0, -1), (0, 1), (1, 0)]
 
 
-def minimax_stage(z: np.ndarray, outlets: np.ndarray, connectivity: int = 8) -> np.ndarray:
+def minimax_stage(z: np.ndarray, outlets: np.ndarray, connectivity: int = 8,
+                  culverts=()) -> np.ndarray:
     """Onset stage by Dijkstra with ``max``; NaN on nodata and unreachable cells."""
     rows, cols = z.shape
     steps = EIGHT if connectivity == 8 else FOUR
+    extra = {}
+    for a, b, invert, one_way in culverts:
+        extra.setdefault(tuple(a), []).append((tuple(b), float(invert)))
+        if not one_way:
+            extra.setdefault(tuple(b), []).append((tuple(a), float(invert)))
     best = {}
     heap = []
     for r in range(rows):
@@ -40,6 +52,13 @@ def minimax_stage(z: np.ndarray, outlets: np.ndarray, connectivity: int = 8) -> 
             if not (0 <= rr < rows and 0 <= cc < cols) or math.isnan(z[rr, cc]):
                 continue
             candidate = max(level, float(z[rr, cc]))
+            if candidate < best.get((rr, cc), math.inf):
+                best[(rr, cc)] = candidate
+                heapq.heappush(heap, (candidate, rr, cc))
+        for (rr, cc), invert in extra.get((r, c), []):
+            if math.isnan(z[rr, cc]):
+                continue
+            candidate = max(level, invert, float(z[rr, cc]))
             if candidate < best.get((rr, cc), math.inf):
                 best[(rr, cc)] = candidate
                 heapq.heappush(heap, (candidate, rr, cc))

@@ -5,6 +5,7 @@ result file once (:func:`sillmark.run.analyse`), in memory or tile by tile on Da
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 from pathlib import Path
@@ -80,6 +81,11 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
     from sillmark.io.summary import read_summary
 
     summary = read_summary(folder)
+    if "edits" in json.loads((folder / "summary.json").read_text(encoding="utf-8")):
+        raise InvalidParameter(
+            f"the analysis in {folder} was made with edits (see 'edits' in its summary.json), "
+            "which this command does not re-apply yet; give the DEM file as SOURCE to work "
+            "on the ground as it is")
     rows, cols = summary.shape
     dem_text = summary.dem_file(instead="give the DEM file as SOURCE")
     unit, crs, sources = summary.vertical_unit, summary.crs, list(summary.outlet_sources)
@@ -129,13 +135,17 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
 
 
 def run_analyse(args: argparse.Namespace) -> int:
+    from sillmark.errors import InvalidParameter
+    from sillmark.products.significance import site_minimum
     from sillmark.run import analyse
 
     if args.tiles is not None:
+        if args.vertical_accuracy is not None or args.full_inventory:
+            option = "--vertical-accuracy" if args.vertical_accuracy is not None else "--full-inventory"
+            raise InvalidParameter(f"{option} applies to the in-memory engine; the tiled engine "
+                                   "(--tiles) lists every depression: drop one of them")
         return _run_analyse_tiled(args)
     if args.scheduler is not None or args.workers is not None:
-        from sillmark.errors import InvalidParameter
-
         option = "--scheduler" if args.scheduler is not None else "--workers"
         raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
     show = not args.quiet and sys.stderr.isatty()
@@ -152,16 +162,63 @@ def run_analyse(args: argparse.Namespace) -> int:
 
     try:
         dem, outlets, connectivity = _read_site(args.dem, args, progress)
+        minimum = site_minimum(vertical_accuracy=args.vertical_accuracy, unit=dem.vertical_unit)
         progress.start("flood")
         out_dir = Path(args.out)
-        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step)
+        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step,
+                      minimum=minimum, accuracy_stated=args.vertical_accuracy is not None,
+                      full_inventory=args.full_inventory, vector_format=args.vector_format,
+                      profile=args.profile, refuges=args.refuge, roads=args.roads,
+                      edits=args.edits)
         progress.done()
     finally:
         progress.close()
-    for line in summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
-                               run.hierarchy):
+    lines = summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
+                          run.hierarchy, significance=run.significance)
+    for line in lines[:2] + edit_lines(run) + lines[2:-1] + reach_lines(run, dem) + lines[-1:]:
         print(line)
     return EXIT_OK
+
+
+def edit_lines(run) -> list[str]:
+    """What each edit of a run was and the cells it touched (nothing without edits)."""
+    if run.edits is None:
+        return []
+    head = f"Edits: {len(run.edits)} from {run.edits.source}"
+    return [head] + ["  " + line for line in run.edits.describe(
+        run.grid.vertical_unit, None, run.edit_changes)]
+
+
+def reach_lines(run, dem) -> list[str]:
+    """What the profile and the refuges added, for the printed report."""
+    from sillmark.io.stage_files import level_text
+
+    reach = getattr(run, "reach", None)
+    if reach is None:
+        return []
+    sym = dem.vertical_unit.symbol
+    lines = []
+    if reach.profile is not None:
+        p = reach.profile
+        stations = ", ".join(f"{s['name']} {level_text(s['level'])} {sym}" for s in p["stations"])
+        lines.append(f"Profile: {p['file']}: {len(p['stations'])} stations ({stations}); the "
+                     f"centreline ({p['centreline_cells']:,} cells) is an outlet too")
+        if "onset_offset_range" in p:
+            low, high = p["onset_offset_range"]
+            lines.append(f"  cells get wet from offset {level_text(low)} to {level_text(high)} {sym} "
+                         "(onset_offset.tif; 0 is the design profile, profile_level.tif its level)")
+    if reach.cutoff is not None:
+        import numpy as np
+
+        stage = reach.cutoff.stage
+        finite = stage[np.isfinite(stage)]
+        never = int(np.count_nonzero(stage == np.inf))
+        none = int(np.count_nonzero(stage == -np.inf))
+        text = (f"from {level_text(finite.min())} to {level_text(finite.max())} {sym}"
+                if finite.size else "at no finite level")
+        lines.append(f"Cut-off stage (cutoff_stage.tif): places lose their last dry route to a "
+                     f"refuge {text}; {never:,} cells never, {none:,} cells have no route at all")
+    return lines
 
 
 TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
@@ -206,7 +263,9 @@ def tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progres
             os.path.abspath(dem_path), tuple(args.outlets or ("edge",)), out_dir,
             executor=executor, store="files", tile_size=args.tiles, connectivity=connectivity,
             band=args.band, vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
-            derived=derived,
+            derived=derived, profile=getattr(args, "profile", None),
+            refuges=getattr(args, "refuge", None), roads=getattr(args, "roads", None),
+            edits=getattr(args, "edits", None),
         )
     where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
     engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
@@ -229,7 +288,8 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
         progress.close()
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
     lines = summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout, run.hierarchy)
-    lines.insert(2, engine)
+    lines[2:2] = [engine] + edit_lines(run)
+    lines[-1:-1] = reach_lines(run, grid)
     for line in lines:
         print(line)
     return EXIT_OK

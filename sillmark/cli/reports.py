@@ -39,6 +39,15 @@ def _area_volume_symbols(stream: TextIO) -> tuple[str, str]:
     return ("m²", "m³") if _can_print(stream, "m²m³") else ("m2", "m3")
 
 
+def _area_text(area_m2: float, unit, stream: TextIO) -> str:
+    """An area in the site's own units: ``0.03 ha (300 m²)`` or ``0.07 acres (3,229 ft²)``."""
+    from sillmark.units import area_units
+
+    u = area_units(unit)
+    small = u.small_area if _can_print(stream, u.small_area) else u.small_area_key
+    return f"{_number(u.large(area_m2), 2)} {u.large_area} ({_number(u.small(area_m2), 0)} {small})"
+
+
 def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
     """The site and its outlets, as the first lines of every command's summary."""
     from sillmark.units import VerticalUnit
@@ -58,38 +67,54 @@ def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
 
 
 def summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], stream: TextIO,
-                   hierarchy=None) -> list[str]:
+                   hierarchy=None, *, significance: dict | None = None) -> list[str]:
     from sillmark import SCREENING_CAUTION
-    from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+    from sillmark.units import VerticalUnit
 
-    m2, m3 = _area_volume_symbols(stream)
+    _, m3 = _area_volume_symbols(stream)
     unit = VerticalUnit.parse(dem.vertical_unit)
     t = result.depressions
     lines = _site_lines(result, dem, outlets, stream)
     if len(t):
         area_m2 = float(t.area_m2.sum())
         volume_m3 = float(t.volume_m2_vu.sum()) * unit.metres
-        storage = f"{_number(volume_m3)} {m3}"
-        if unit.is_feet:
-            storage += f" ({_number(volume_m3 / ACRE_FOOT_M3, 2)} acre-ft)"
+        storage = _volume_text(volume_m3, unit, m3)
         k = int(t.spill_elevation.argmax())
         lines.append(
-            f"Depressions: {len(t):,}, total area {_number(area_m2 / 1e4, 2)} ha "
-            f"({_number(area_m2, 0)} {m2}), storage at spill {storage}"
+            f"Depressions: {len(t):,}, total area {_area_text(area_m2, unit, stream)}, "
+            f"storage at spill {storage}"
         )
         lines.append(
             f"Highest spill elevation: {float(t.spill_elevation[k]):.2f} {unit.symbol} "
             f"(depression {int(t.id[k])})"
         )
     else:
-        lines.append(f"Depressions: 0 (no ground holds water below a spill point), 0.00 ha, 0 {m3}")
+        lines.append("Depressions: 0 (no ground holds water below a spill point), "
+                     f"{_area_text(0.0, unit, stream)}, {_volume_text(0.0, unit, m3)}")
     if hierarchy is not None and len(hierarchy):
         lines.append(_hierarchy_line(hierarchy))
+    if significance is not None:
+        lines.extend(significance_report(significance))
     if result.unreached_cells:
         lines.append(f"Cells no outlet reaches (walled in by nodata): {result.unreached_cells:,} cells")
     lines.append(f"Results: {len(files)} files in {out_dir}")
     lines.append(f"Caution: {SCREENING_CAUTION}")
     return lines
+
+
+def significance_report(member: dict) -> list[str]:
+    """The printed lines of a run's significance: the counts, the minimum and its source."""
+    counts = member["counts"]
+    depth = member["min_depth"]
+    listed = ("every depression listed (--full-inventory), the significant ones marked"
+              if member["full_inventory"] else "only these are listed and mapped")
+    return [
+        f"Significant depressions: {counts['significant']:,} ({counts['significant_top']:,} whole, "
+        f"{counts['significant'] - counts['significant_top']:,} nested in those), of "
+        f"{counts['all_depressions']:,} depressions and {counts['hierarchy_nodes']:,} nested "
+        f"pits and pools in all; {listed}",
+        f"Minimum depth: {depth['value']:.4g} {depth['unit']}, {member['source']}",
+    ]
 
 
 def _hierarchy_line(hierarchy) -> str:
@@ -106,17 +131,18 @@ def _hierarchy_line(hierarchy) -> str:
         nodes, pits, levels = len(t), len(hierarchy.leaves), max(depth)
     return (
         f"Depression hierarchy: {nodes:,} nodes ({pits:,} pits), nested up "
-        f"to {levels:,} level{'s' if levels != 1 else ''} deep; curves in depression_curves.csv"
+        f"to {levels:,} level{'s' if levels != 1 else ''} deep"
     )
 
 
 def _volume_text(volume_m3: float, unit, m3: str) -> str:
-    from sillmark.units import ACRE_FOOT_M3
+    """A volume in the site's own unit: ``500.0 m³`` or ``0.41 acre-ft``."""
+    from sillmark.units import area_units
 
-    text = f"{_number(volume_m3)} {m3}"
-    if unit.is_feet:
-        text += f" ({_number(volume_m3 / ACRE_FOOT_M3, 2)} acre-ft)"
-    return text
+    u = area_units(unit)
+    if u.is_metric:
+        return f"{_number(volume_m3)} {m3}"
+    return f"{_number(u.vol(volume_m3), 2)} {u.volume}"
 
 
 def stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, origin: str | None,
@@ -126,7 +152,7 @@ def stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, origi
     from sillmark.io.stage_files import level_text
     from sillmark.units import VerticalUnit
 
-    m2, m3 = _area_volume_symbols(stream)
+    _, m3 = _area_volume_symbols(stream)
     unit = VerticalUnit.parse(dem.vertical_unit)
     sym = unit.symbol
     lines = _site_lines(result, dem, outlets, stream)
@@ -140,14 +166,12 @@ def stage_lines(result, dem, outlets, out_dir: Path, written, notes: dict, origi
         lines.append(f"Water level {level_text(level.level)} {sym}:")
         lines.extend(f"  Note: {note}" for note in notes.get(float(level.level), ()))
         lines.append(
-            f"  Flooded: {_number(level.flooded_area_m2 / 1e4, 2)} ha "
-            f"({_number(level.flooded_area_m2, 0)} {m2}), volume "
+            f"  Flooded: {_area_text(level.flooded_area_m2, unit, stream)}, volume "
             f"{_volume_text(level.flooded_volume_m3, unit, m3)}"
         )
         lines.append(
-            f"  Shielded low ground: {_number(level.shielded_area_m2 / 1e4, 2)} ha "
-            f"({_number(level.shielded_area_m2, 0)} {m2}), volume below the level "
-            f"{_volume_text(level.shielded_volume_m3, unit, m3)}"
+            f"  Shielded low ground: {_area_text(level.shielded_area_m2, unit, stream)}, "
+            f"volume below the level {_volume_text(level.shielded_volume_m3, unit, m3)}"
         )
         lines.append(
             f"  Depressions: {level.depressions_overtopped:,} overtopped, "
@@ -232,8 +256,8 @@ def _asset_level_lines(table, dem, stream: TextIO) -> list[str]:
         if bool(table.sill_is_own_cell[k]):
             where = "no sill, its own ground controls"
         else:
-            where = (f"controlling sill {level_text(sill.elevation)} {sym} at row {sill.row}, "
-                     f"col {sill.col} ({_xy_text(dem, sill.x, sill.y, stream)})")
+            where = (f"controlling sill {level_text(sill.elevation)} {sym} at "
+                     f"{_xy_text(dem, sill.x, sill.y, stream)}")
         freeboard = float(np.float32(table.onset_stage[k]) - np.float32(table.level))
         lines.append(
             f"    next to flood: {_asset_name(table, k, state[k])}: onset stage "
@@ -285,7 +309,7 @@ def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
                      else f"{min(gains):.2f} to {max(gains):.2f} {sym}")
         xy = _xy_text(dem, first[f"sill_before_x_{h}"], first[f"sill_before_y_{h}"], stream)
         lines.append(
-            f"  sill at row {first['sill_before_row']}, col {first['sill_before_col']} ({xy}) "
+            f"  sill at {xy} "
             f"({first['raised_cells']:,} crest cell{'s' if first['raised_cells'] != 1 else ''}) "
             f"raised from {level_text(first[f'sill_before_elevation_{v}'])} to "
             f"{level_text(first[f'raised_elevation_{v}'])} {sym}: {len(members):,} "
@@ -296,8 +320,7 @@ def _what_if_lines(run, path: Path | None, dem, stream: TextIO) -> list[str]:
             lines.append("    the raised cell still controls")
         else:
             moved = next(m for m in members if not m["raised_cell_controls"])
-            there = (f"row {moved['sill_after_row']}, col {moved['sill_after_col']} "
-                     f"({_xy_text(dem, moved[f'sill_after_x_{h}'], moved[f'sill_after_y_{h}'], stream)})")
+            there = _xy_text(dem, moved[f'sill_after_x_{h}'], moved[f'sill_after_y_{h}'], stream)
             if max(gains) == 0:
                 lines.append(
                     f"    no gain: another way in at the same elevation remains, over {there} at "

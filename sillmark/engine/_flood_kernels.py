@@ -152,7 +152,7 @@ def _walk_route(tree, row, col, drow, dcol, limit):
         cols[n] = c
         n += 1
         t = tree[r, c]
-        if t == OUTLET or t == 0:
+        if t == 0 or t > 8:  # an outlet, or a culvert end (the caller goes on)
             break
         r += drow[t - 1]
         c += dcol[t - 1]

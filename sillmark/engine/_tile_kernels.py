@@ -50,6 +50,9 @@ from sillmark.engine._flood_kernels import (
 
 #: Flood-tree state of a tile seed until step 3 gives it a parent.
 SEED = 12
+#: Flood-tree code of a culvert end reached through its culvert (the parent is
+#: the culvert's other end; public through sillmark.engine.flood).
+CULVERT = 10
 
 _LOW32 = np.uint64(0xFFFFFFFF)
 _EMPTY = np.uint64(0xFFFFFFFFFFFFFFFF)
@@ -62,7 +65,7 @@ def _is_perimeter(lr, lc, h, w):
     return lr == 0 or lr == h - 1 or lc == 0 or lc == w - 1
 
 
-def _flood_tile_arrays(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs):
+def _flood_tile_arrays(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs, extra):
     """Step 1 for one tile, on tile-local arrays: local flood with seed labels.
 
     Floods the cells ``[r0:r1, c0:c1]`` of ``elevation`` and ``outlet_mask``
@@ -75,6 +78,11 @@ def _flood_tile_arrays(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs)
     every seed (index = label, entry 0 unused), the meetings (label a < label
     b, level, cell on a's side, cell on b's side, as local padded indices) and
     the number of priority-queue pops.
+
+    ``extra`` holds local padded indices of cells that are seeds too although
+    they are inside the tile: the ends of culverts, whose extra edges the seed
+    graph carries (a valid cell that is neither an outlet nor on the perimeter
+    gets the next label; others are left as they are).
     """
     h = r1 - r0
     w = c1 - c0
@@ -108,6 +116,12 @@ def _flood_tile_arrays(elevation, outlet_mask, r0, r1, c0, c1, drow, dcol, dirs)
                 llab[li] = n_seeds
             else:
                 lstate[li] = UNVISITED
+    for j in range(extra.shape[0]):
+        li = extra[j]
+        if lstate[li] == UNVISITED:
+            n_seeds += 1
+            lstate[li] = SEED
+            llab[li] = n_seeds
     bits = lz.view(np.uint32)
 
     seeds = np.zeros(n_seeds + 1, dtype=np.int64)
@@ -250,30 +264,35 @@ def _rehash(hkey, hlevel, hcell_a, hcell_b, table_bits):
     return nkey, nlevel, na, nb
 
 
-def _solve_graph(n_nodes, eu, ev, elevel, ecu, ecv):
+def _solve_graph(n_nodes, eu, ev, elevel, ecu, ecv, one_way):
     """Step 2: minimax Dijkstra from the sea (node 0) over the seed graph.
 
-    Returns every node's level (``+inf`` where no outlet reaches it) and, per
-    node, the meeting it was reached through: the cell on its own side and the
-    cell on the other side (-1 for the sea and unreached nodes).
+    An edge with ``one_way`` set is crossed from ``eu`` to ``ev`` only (a
+    flap valve); the others both ways. Returns every node's level (``+inf``
+    where no outlet reaches it) and, per node, the meeting it was reached
+    through: the cell on its own side, the cell on the other side (-1 for the
+    sea and unreached nodes) and the edge (-1 likewise).
     """
     n_edges = eu.shape[0]
     degree = np.zeros(n_nodes + 1, dtype=np.int64)
     for e in range(n_edges):
         degree[eu[e] + 1] += 1
-        degree[ev[e] + 1] += 1
+        if not one_way[e]:
+            degree[ev[e] + 1] += 1
     start = np.cumsum(degree)
     fill = start[:-1].copy()
-    adj_edge = np.empty(2 * n_edges, dtype=np.int64)
+    adj_edge = np.empty(start[-1], dtype=np.int64)
     for e in range(n_edges):
         adj_edge[fill[eu[e]]] = e
         fill[eu[e]] += 1
-        adj_edge[fill[ev[e]]] = e
-        fill[ev[e]] += 1
+        if not one_way[e]:
+            adj_edge[fill[ev[e]]] = e
+            fill[ev[e]] += 1
 
     lam = np.full(n_nodes, np.inf, dtype=np.float32)
     own_cell = np.full(n_nodes, -1, dtype=np.int64)
     other_cell = np.full(n_nodes, -1, dtype=np.int64)
+    via = np.full(n_nodes, -1, dtype=np.int64)
     done = np.zeros(n_nodes, dtype=np.bool_)
     lam_bits = lam.view(np.uint32)
     heap = np.empty(1024, dtype=np.uint64)
@@ -304,17 +323,20 @@ def _solve_graph(n_nodes, eu, ev, elevel, ecu, ecv):
                 lam[v] = cand
                 own_cell[v] = cv
                 other_cell[v] = cu
+                via[v] = e
                 if heap_size == heap.shape[0]:
                     heap = _grow_uint64(heap, heap_size)
                 _heap_sift_up(heap, heap_size, _ordered_key(lam_bits[v], np.uint64(v)))
                 heap_size += 1
-    return lam, own_cell, other_cell
+    return lam, own_cell, other_cell, via
 
 
 def _finish_tile(r0, r1, c0, c1, level, state, label, base, lam, seeds, own_cell,
-                 other_cell, drow, dcol, width):
+                 other_cell, drow, dcol, width, by_culvert):
     """Step 3 for one tile: final onset stage and the seeds' way out.
 
+    A seed whose level came through a culvert (``by_culvert[label]``) gets the
+    flood-tree code :data:`CULVERT`: its parent is the culvert's other end.
     Also clears the tile's labels, so the label array can take depression ids.
     """
     for r in range(r0, r1):
@@ -340,9 +362,12 @@ def _finish_tile(r0, r1, c0, c1, level, state, label, base, lam, seeds, own_cell
         node = base + lab
         if lam[node] == np.inf:
             continue
+        seed = seeds[lab]
+        if by_culvert[lab]:
+            state[seed] = CULVERT
+            continue
         prev = other_cell[node]
         cur = own_cell[node]
-        seed = seeds[lab]
         while True:
             t = state[cur]
             nxt = -1

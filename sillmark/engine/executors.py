@@ -217,8 +217,11 @@ def dask_executor(*, scheduler: str | None = None, workers: int | None = None,
     n = 2 if workers is None else int(workers)
     if n < 1:
         raise InvalidParameter(f"workers must be 1 or more, not {workers!r}")
+    # The scheduler's HTTP server starts even without a dashboard, on port 8787
+    # unless told otherwise: a free port keeps two runs (or another program on
+    # 8787) from failing the start.
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address=None, memory_limit=memory_limit)
+                           dashboard_address="127.0.0.1:0", memory_limit=memory_limit)
     try:
         client = Client(cluster)
         try:

@@ -81,7 +81,8 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from sillmark.engine import _flood_kernels, _spill_kernels
+from sillmark.engine import _flood_kernels, _route_kernels
+from sillmark.engine.culverts import CULVERT_CODE, CulvertEdges
 from sillmark.engine.depressions import (  # noqa: F401  (public through this module)
     DIRECTION_COL,
     DIRECTION_ROW,
@@ -93,9 +94,9 @@ from sillmark.engine.depressions import (  # noqa: F401  (public through this mo
 )
 from sillmark.engine.executors import Executor, ThreadExecutor
 from sillmark.engine.pipeline import run_pipeline
-from sillmark.engine.tile_inputs import ArrayTiles
 from sillmark.engine.plan import MAX_TILE_SIZE
 from sillmark.engine.stores import MemoryStore
+from sillmark.engine.tile_inputs import ArrayTiles
 from sillmark.errors import (
     InvalidDEM,
     InvalidOutlets,
@@ -164,6 +165,9 @@ class SpillResult:
         Valid cells that no outlet reaches (walled in by nodata).
     heap_pops : int
         Priority-queue pops the flood needed (a measure of its work).
+    culverts : CulvertEdges or None
+        The culverts the flood crossed; a culvert end reached through its
+        culvert has flood-tree code :data:`CULVERT_CODE`.
     """
 
     elevation: np.ndarray
@@ -174,6 +178,7 @@ class SpillResult:
     connectivity: int
     unreached_cells: int
     heap_pops: int
+    culverts: CulvertEdges | None = None
 
     @property
     def fill_depth(self) -> np.ndarray:
@@ -198,6 +203,16 @@ class SpillResult:
             what = "nodata" if np.isnan(self.elevation[row, col]) else "not reached by any outlet"
             raise LocationOutsideDEM(f"cell ({row}, {col}) is {what}; pick a cell with data")
         dep = int(self.depression_id[row, col])
+        t = self.depressions
+        if dep > 0 and 0 < dep <= len(t) and self._on_culvert(
+                int(t.spill_row[dep - 1]), int(t.spill_col[dep - 1])):
+            # Drained through a culvert: the flood tree leads through it.
+            path_r, path_c = self._walk(row, col)
+            sr, sc = int(t.spill_row[dep - 1]), int(t.spill_col[dep - 1])
+            return Route(rows=path_r, cols=path_c, sill_row=sr, sill_col=sc,
+                         sill_elevation=float(self.onset_stage[sr, sc]),
+                         reaches_outlet=bool(self.flood_tree[path_r[-1], path_c[-1]]
+                                             == OUTLET_CODE))
         if dep > 0:
             t = self.depressions
             if not 0 < dep <= len(t):
@@ -205,7 +220,7 @@ class SpillResult:
                     f"cell ({row}, {col}) carries depression id {dep} but the table has "
                     f"{len(t)} rows; pass the table computed with these rasters"
                 )
-            path_r, path_c, k = _spill_kernels.route_through_sill(
+            path_r, path_c, k = _route_kernels.route_through_sill(
                 self.onset_stage, self.depression_id, self.flood_tree, np.int64(row),
                 np.int64(col), np.int64(t.spill_row[dep - 1]), np.int64(t.spill_col[dep - 1]),
                 DIRECTION_ROW, DIRECTION_COL, directions(self.connectivity),
@@ -217,11 +232,9 @@ class SpillResult:
                     "spill elevation; pass the table computed with these rasters"
                 )
             k = int(k)
+            path_r, path_c = self._through_culverts(path_r, path_c)
         else:
-            path_r, path_c = _flood_kernels.walk_route(
-                self.flood_tree, np.int64(row), np.int64(col), DIRECTION_ROW, DIRECTION_COL,
-                np.int64(rows * cols + 1),
-            )
+            path_r, path_c = self._walk(row, col)
             k = 0
         reaches = bool(self.flood_tree[path_r[-1], path_c[-1]] == OUTLET_CODE)
         return Route(
@@ -232,6 +245,40 @@ class SpillResult:
             sill_elevation=float(self.elevation[path_r[k], path_c[k]]),
             reaches_outlet=reaches,
         )
+
+
+    def _on_culvert(self, row: int, col: int) -> bool:
+        """Whether a culvert ends at ``(row, col)``."""
+        if self.culverts is None:
+            return False
+        return bool(np.any(self.culverts.ends == row * self.onset_stage.shape[1] + col))
+
+    def _walk(self, row: int, col: int) -> tuple[np.ndarray, np.ndarray]:
+        """The flood tree from ``(row, col)`` to an outlet, through culverts."""
+        rows, cols = self.onset_stage.shape
+        path_r, path_c = _flood_kernels.walk_route(
+            self.flood_tree, np.int64(row), np.int64(col), DIRECTION_ROW, DIRECTION_COL,
+            np.int64(rows * cols + 1),
+        )
+        return self._through_culverts(path_r, path_c)
+
+    def _through_culverts(self, path_r: np.ndarray, path_c: np.ndarray):
+        """A route that stops at a culvert end, continued from the culvert's other end."""
+        rows, cols = self.onset_stage.shape
+        parts_r, parts_c = [path_r], [path_c]
+        hops = 0
+        while (self.culverts is not None and hops <= len(self.culverts)
+               and self.flood_tree[parts_r[-1][-1], parts_c[-1][-1]] == CULVERT_CODE):
+            other = self.culverts.partner(int(parts_r[-1][-1]), int(parts_c[-1][-1]))
+            if other is None:
+                break
+            more_r, more_c = _flood_kernels.walk_route(
+                self.flood_tree, np.int64(other[0]), np.int64(other[1]), DIRECTION_ROW,
+                DIRECTION_COL, np.int64(rows * cols + 1))
+            parts_r.append(more_r)
+            parts_c.append(more_c)
+            hops += 1
+        return np.concatenate(parts_r), np.concatenate(parts_c)
 
 
 def _validated_elevation(elevation) -> np.ndarray:
@@ -271,6 +318,7 @@ def priority_flood(
     tile_size: int | None = None,
     executor: Executor | None = None,
     store=None,
+    culverts: CulvertEdges | None = None,
 ) -> SpillResult:
     """Onset stage, flood tree and depression inventory of a DEM.
 
@@ -301,6 +349,10 @@ def priority_flood(
         Keeps the tiles between the steps (:mod:`sillmark.engine.stores`);
         default a :class:`~sillmark.engine.stores.MemoryStore`. It is closed
         at the end. Every executor and store gives the same bits.
+    culverts : CulvertEdges, optional
+        Extra edges of the flood graph (:func:`sillmark.engine.culverts.culvert_edges`):
+        a culvert end is reached at ``max(L, invert, z)`` from the level
+        ``L`` of its other end, a flap valve from its first end only.
 
     Returns
     -------
@@ -367,12 +419,20 @@ def priority_flood(
             "elevation as an outlet (the DEM edge, cells next to nodata, or a water body)"
         )
     directions(connectivity)  # refuse a wrong connectivity before any work
+    if culverts is not None:
+        if tuple(culverts.shape) != (rows, cols):
+            raise InvalidParameter(
+                f"the culverts are placed on a grid of {culverts.shape[0]} x "
+                f"{culverts.shape[1]} cells but the DEM is {rows} x {cols}")
+        if np.any(np.isnan(z.ravel()[culverts.ends])):
+            raise InvalidParameter("a culvert end lies on nodata; move it onto ground with "
+                                   "an elevation")
     store = MemoryStore() if store is None else store
     try:
         flood = run_pipeline(
             ArrayTiles(z, mask), executor=ThreadExecutor() if executor is None else executor,
             store=store, tile_size=tile, connectivity=connectivity, row_areas=areas,
-            transform=transform,
+            transform=transform, culverts=culverts,
         )
         onset, tree, ids = (flood.read(layer, 0, rows)
                             for layer in ("onset_stage", "flood_tree", "depression_id"))
@@ -387,6 +447,7 @@ def priority_flood(
         connectivity=connectivity,
         unreached_cells=flood.unreached_cells,
         heap_pops=flood.heap_pops,
+        culverts=culverts,
     )
 
 

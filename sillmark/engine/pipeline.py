@@ -19,7 +19,7 @@ tiles after Barnes (2016), whatever runs the tiles and wherever they are kept:
    of depressions and its spill summary
    (:func:`sillmark.engine._spill_kernels.summarise_tile`); back comes a
    :class:`FinishedTile`.
-4. **Join the pieces** (:func:`join_pieces`, here): pieces that touch across
+4. **Join the pieces** (:func:`~sillmark.engine.joining.join_pieces`): pieces that touch across
    tile edges are one depression, numbered in raster order of its first cell;
    pits; spill points and ``spills_to`` by the rule of
    :mod:`sillmark.engine.flood` ("Spill points").
@@ -28,7 +28,7 @@ tiles after Barnes (2016), whatever runs the tiles and wherever they are kept:
 
 Steps 1 and 3 go through an executor (:mod:`sillmark.engine.executors`), the
 tile arrays through a store (:mod:`sillmark.engine.stores`); the steps and the
-messages between them (small frozen dataclasses, no raster) do not depend on
+messages between them (:mod:`sillmark.engine.messages`: no raster) do not depend on
 either, so every executor and store gives the same bits. The result,
 :class:`TiledFlood`, reads its layers by bands of rows from the store.
 
@@ -61,9 +61,18 @@ from sillmark.engine.depressions import (
     directions,
 )
 from sillmark.engine.executors import Executor
+from sillmark.engine.joining import join_pieces
+from sillmark.engine.messages import (
+    FinishedTile,
+    FloodedTile,
+    JoinedDepressions,
+    SeedLevels,
+    TileJob,
+    ends_in_tile,
+)
 from sillmark.engine.plan import TilePlan
-from sillmark.engine.tile_inputs import ArrayTiles, RasterTiles, TileInput  # noqa: F401
 from sillmark.engine.stores import TileStore
+from sillmark.engine.tile_inputs import ArrayTiles, RasterTiles, TileInput  # noqa: F401
 from sillmark.errors import InvalidDEM
 
 __all__ = ["ArrayTiles", "RasterTiles", "TiledFlood", "run_pipeline"]
@@ -72,105 +81,6 @@ __all__ = ["ArrayTiles", "RasterTiles", "TiledFlood", "run_pipeline"]
 Progress = Callable[[str, int, int], None]
 #: Layers a :class:`TiledFlood` reads by rows.
 LAYERS = ("elevation", "onset_stage", "fill_depth", "depression_id", "flood_tree")
-
-
-# --------------------------------------------------------------------------- messages
-
-
-@dataclasses.dataclass(frozen=True)
-class TileJob:
-    """What every tile step needs (no cells: it travels to every worker once)."""
-
-    plan: TilePlan
-    source: Any
-    store: TileStore
-    connectivity: int
-
-
-@dataclasses.dataclass(frozen=True)
-class FloodedTile:
-    """Step 1's answer for one tile: its seeds, label meetings and perimeter.
-
-    Meetings are label pairs ``a < b`` (``meet_a``, ``meet_b``) at a level,
-    with the cell on each side as a global padded index (width ``cols + 2``).
-    The perimeter arrays are in perimeter order (:mod:`sillmark.engine.plan`).
-    Outlet and valid cells are counted for a window of a file only (0 for
-    arrays the caller has checked).
-    """
-
-    n_seeds: int
-    meet_a: np.ndarray
-    meet_b: np.ndarray
-    meet_level: np.ndarray
-    meet_cell_a: np.ndarray
-    meet_cell_b: np.ndarray
-    perimeter_state: np.ndarray
-    perimeter_level: np.ndarray
-    perimeter_label: np.ndarray
-    heap_pops: int
-    outlet_counts: np.ndarray | None
-    outlet_cells: int
-    valid_cells: int
-    seconds: float
-
-
-@dataclasses.dataclass(frozen=True)
-class SeedLevels:
-    """Step 2's answer for one tile: its seeds' levels and the meetings they came by.
-
-    ``own`` and ``other`` are tile-local padded indices (-1 for none).
-    """
-
-    k: int
-    lam: np.ndarray
-    own: np.ndarray
-    other: np.ndarray
-
-
-@dataclasses.dataclass(frozen=True)
-class FinishedTile:
-    """Step 3's answer for one tile: its depression pieces and spill summary.
-
-    Piece columns (index ``j`` for piece ``j + 1``): first cell and pit as
-    global ``row * cols + col``, pit elevation, level. Perimeter columns, in
-    perimeter order: final level, piece (0 for none), outlet flag.
-    """
-
-    first: np.ndarray
-    pit: np.ndarray
-    pit_z: np.ndarray
-    level: np.ndarray
-    perimeter_level: np.ndarray
-    perimeter_piece: np.ndarray
-    perimeter_outlet: np.ndarray
-    spill: tuple
-    valid_cells: int
-    unreached_cells: int
-    seconds: float
-
-
-@dataclasses.dataclass(frozen=True)
-class JoinedDepressions:
-    """Step 4's answer: depressions 1..n (index 0 unused) and each tile's piece ids.
-
-    ``pit`` and ``spill`` are global ``row * cols + col``; tile ``k``'s pieces
-    are ``piece_id[piece_off[k]:piece_off[k + 1]]``.
-    """
-
-    n: int
-    piece_off: np.ndarray
-    piece_id: np.ndarray
-    pit: np.ndarray
-    pit_z: np.ndarray
-    level: np.ndarray
-    spill: np.ndarray
-    spills_to: np.ndarray
-
-    def tile_ids(self, k: int) -> np.ndarray:
-        """Depression id of tile ``k``'s piece ``j`` at index ``j`` (0 at 0)."""
-        ids = np.zeros(self.piece_off[k + 1] - self.piece_off[k] + 1, dtype=np.int32)
-        ids[1:] = self.piece_id[self.piece_off[k]:self.piece_off[k + 1]]
-        return ids
 
 
 # --------------------------------------------------------------------------- tile steps
@@ -183,9 +93,11 @@ def flood_step(job: TileJob, k: int) -> FloodedTile:
     r0, r1, c0, c1 = plan.bounds(k)
     w = c1 - c0
     tile = job.source.window(r0, r1, c0, c1)
+    end_index, end_local = ends_in_tile(job.culverts, plan, k)
     lz, lstate, llab, seeds, ea, eb, elevel, la, lb, pops = _tile_kernels.flood_tile_arrays(
         tile.z, tile.mask, np.int64(tile.r0), np.int64(tile.r1), np.int64(tile.c0),
         np.int64(tile.c1), DIRECTION_ROW, DIRECTION_COL, directions(job.connectivity),
+        end_local,
     )
     z = tile.tile_z
     store = job.store
@@ -208,7 +120,8 @@ def flood_step(job: TileJob, k: int) -> FloodedTile:
         perimeter_state=lstate[pidx], perimeter_level=lz[pidx], perimeter_label=llab[pidx],
         heap_pops=int(pops), outlet_counts=tile.outlet_counts,
         outlet_cells=outlet_cells, valid_cells=valid_cells,
-        seconds=time.perf_counter() - started,
+        seconds=time.perf_counter() - started, end_index=end_index,
+        end_label=llab[end_local].copy(), end_level=lz[end_local].copy(),
     )
 
 
@@ -228,10 +141,13 @@ def finish_step(job: TileJob, seeds: SeedLevels) -> FinishedTile:
     on_seed = lstate[pidx] == _tile_kernels.SEED
     seed_cells = np.zeros(seeds.lam.shape[0], dtype=np.int64)
     seed_cells[llab[pidx[on_seed]]] = pidx[on_seed]
+    end_index, end_local = ends_in_tile(job.culverts, plan, k)
+    on_end = lstate[end_local] == _tile_kernels.SEED  # culvert ends inside the tile
+    seed_cells[llab[end_local[on_end]]] = end_local[on_end]
     _tile_kernels.finish_tile(
         np.int64(0), np.int64(h), np.int64(0), np.int64(w), lz, lstate, llab, np.int64(0),
         seeds.lam, seed_cells, seeds.own, seeds.other, DIRECTION_ROW, DIRECTION_COL,
-        np.int64(lw),
+        np.int64(lw), seeds.by_culvert,
     )
     dirs = directions(job.connectivity)
     steps = DIRECTION_ROW[dirs] * lw + DIRECTION_COL[dirs]
@@ -239,6 +155,7 @@ def finish_step(job: TileJob, seeds: SeedLevels) -> FinishedTile:
     first, pit_cell, pit_z, piece_level, _count, valid, unreached = _tiled_kernels.label_tile(
         lz, lstate, llab, z, np.int64(h), np.int64(w), back
     )
+    end_piece, end_level = llab[end_local].copy(), lz[end_local].copy()
     store.put(k, "level", lz)
     store.put(k, "state", lstate)
     p_piece = llab[pidx]
@@ -260,14 +177,21 @@ def finish_step(job: TileJob, seeds: SeedLevels) -> FinishedTile:
         level=piece_level[1:], perimeter_level=lz[pidx], perimeter_piece=p_piece,
         perimeter_outlet=p_outlet, spill=spill, valid_cells=int(valid),
         unreached_cells=int(unreached), seconds=time.perf_counter() - started,
+        end_index=end_index, end_piece=end_piece, end_level=end_level,
     )
 
 
 # --------------------------------------------------------------------------- client steps
 
 
-def solve_seeds(plan: TilePlan, floods: list[FloodedTile], dirs: np.ndarray) -> list[SeedLevels]:
-    """Step 2: links from the perimeters, then the minimax Dijkstra over the seed graph."""
+def solve_seeds(plan: TilePlan, floods: list[FloodedTile], dirs: np.ndarray,
+                culverts=None) -> list[SeedLevels]:
+    """Step 2: links from the perimeters, then the minimax Dijkstra over the seed graph.
+
+    Each culvert is one more edge, between the seeds (or the sea) at its ends,
+    of level ``max(invert, z(a), z(b))``; a flap valve's edge is one-way
+    (:mod:`sillmark.engine.culverts`).
+    """
     rows, cols = plan.shape
     seed_counts = np.array([f.n_seeds for f in floods], dtype=np.int64)
     base = np.concatenate([[0], np.cumsum(seed_counts)[:-1]]).astype(np.int64)
@@ -286,10 +210,18 @@ def solve_seeds(plan: TilePlan, floods: list[FloodedTile], dirs: np.ndarray) -> 
         ev = np.where(f.meet_b == 0, 0, base[t] + f.meet_b)
         parts.append((eu, ev, f.meet_level, f.meet_cell_a, f.meet_cell_b))
     eu, ev, elevel, ecu, ecv = (np.concatenate([p[k] for p in parts]) for k in range(5))
-    lam, own, other = _tile_kernels.solve_graph(
+    n_plain = eu.shape[0]
+    one_way = np.zeros(n_plain, dtype=np.bool_)
+    if culverts is not None and len(culverts):
+        ceu, cev, clevel, ccu, ccv, cway = _culvert_links(plan, floods, base, culverts)
+        eu, ev, elevel, ecu, ecv = (np.concatenate([x, y]) for x, y in (
+            (eu, ceu), (ev, cev), (elevel, clevel), (ecu, ccu), (ecv, ccv)))
+        one_way = np.concatenate([one_way, cway])
+    lam, own, other, via = _tile_kernels.solve_graph(
         np.int64(n_nodes), eu.astype(np.int64), ev.astype(np.int64),
-        elevel.astype(np.float32), ecu.astype(np.int64), ecv.astype(np.int64),
+        elevel.astype(np.float32), ecu.astype(np.int64), ecv.astype(np.int64), one_way,
     )
+    by_culvert = via >= n_plain
     width = cols + 2
     out = []
     for k, f in enumerate(floods):
@@ -297,111 +229,33 @@ def solve_seeds(plan: TilePlan, floods: list[FloodedTile], dirs: np.ndarray) -> 
         lw = c1 - c0 + 2
         sl = slice(base[k], base[k] + f.n_seeds + 1)
         out.append(SeedLevels(k=k, lam=lam[sl].copy(), own=_to_local(own[sl], r0, c0, width, lw),
-                              other=_to_local(other[sl], r0, c0, width, lw)))
+                              other=_to_local(other[sl], r0, c0, width, lw),
+                              by_culvert=by_culvert[sl].copy()))
     return out
+
+
+def _culvert_links(plan: TilePlan, floods: list[FloodedTile], base: np.ndarray, culverts):
+    """The culverts as seed-graph edges: nodes, level, end cells (global padded), one-way."""
+    ends = culverts.ends
+    n_ends = ends.shape[0]
+    node = np.full(n_ends, -1, dtype=np.int64)
+    level = np.full(n_ends, np.nan, dtype=np.float32)
+    for t, f in enumerate(floods):
+        node[f.end_index] = np.where(f.end_label == 0, 0, base[t] + f.end_label)
+        level[f.end_index] = f.end_level
+    n = len(culverts)
+    keep = (node[:n] >= 0) & (node[n:] >= 0) & ~np.isnan(level[:n]) & ~np.isnan(level[n:])
+    width = plan.cols + 2
+    padded = (ends // plan.cols + 1) * width + ends % plan.cols + 1
+    edge_level = np.maximum(np.maximum(level[:n], level[n:]), culverts.invert)
+    return (node[:n][keep], node[n:][keep], edge_level[keep], padded[:n][keep],
+            padded[n:][keep], np.asarray(culverts.one_way, dtype=np.bool_)[keep])
 
 
 def _to_local(cells: np.ndarray, r0: int, c0: int, width: int, lw: int) -> np.ndarray:
     """Global padded indices to a tile's local padded indices (-1 stays -1)."""
     out = (cells // width - r0) * lw + (cells % width - c0)
     return np.where(cells < 0, -1, out).astype(np.int64)
-
-
-def join_pieces(plan: TilePlan, finished: list[FinishedTile], dirs: np.ndarray) -> JoinedDepressions:
-    """Step 4: depressions from pieces, numbered in raster order; pits; spill points."""
-    rows, cols = plan.shape
-    n_pieces = np.array([len(f.first) for f in finished], dtype=np.int64)
-    piece_off = np.concatenate([[0], np.cumsum(n_pieces)]).astype(np.int64)
-    total = int(piece_off[-1])
-    poff = np.concatenate(
-        [[0], np.cumsum([len(f.perimeter_piece) for f in finished])]).astype(np.int64)
-    p_piece = np.concatenate([f.perimeter_piece for f in finished]).astype(np.int32)
-    forest = np.arange(total, dtype=np.int64)
-    _tiled_kernels.union_pieces(p_piece, poff, piece_off, np.int64(plan.tile_rows),
-                                np.int64(plan.tile_cols), np.int64(plan.tile), np.int64(rows),
-                                np.int64(cols), DIRECTION_ROW, DIRECTION_COL, dirs, forest)
-    root = _tiled_kernels.roots(forest)
-    first = np.concatenate([f.first for f in finished]).astype(np.int64)
-    pit = np.concatenate([f.pit for f in finished]).astype(np.int64)
-    pit_z = np.concatenate([f.pit_z for f in finished]).astype(np.float32)
-    level = np.concatenate([f.level for f in finished]).astype(np.float32)
-
-    # Number depressions by their first cell in raster order.
-    first_of_root = np.full(total, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(first_of_root, root, first)
-    roots = np.flatnonzero(root == np.arange(total))
-    n = int(roots.shape[0])
-    id_of_root = np.zeros(total, dtype=np.int32)
-    id_of_root[roots[np.argsort(first_of_root[roots], kind="stable")]] = np.arange(
-        1, n + 1, dtype=np.int32)
-    piece_id = id_of_root[root] if total else np.zeros(0, dtype=np.int32)
-
-    # Pit: the lowest cell, first in raster order on ties.
-    order = np.lexsort((pit, pit_z, piece_id))
-    head = np.ones(total, dtype=bool)
-    head[1:] = piece_id[order][1:] != piece_id[order][:-1]
-    best = order[head]  # one piece per depression, ids ascending
-    dep_pit = np.zeros(n + 1, dtype=np.int64)
-    dep_pit_z = np.zeros(n + 1, dtype=np.float32)
-    dep_level = np.zeros(n + 1, dtype=np.float32)
-    dep_pit[1:] = pit[best]
-    dep_pit_z[1:] = pit_z[best]
-    dep_level[1:] = level[best]
-
-    # Spill points and spills_to, from the tiles' spill summaries.
-    parts = []
-    p_dep = []
-    area_base = 0
-    for t, f in enumerate(finished):
-        ids_t = np.concatenate([[0], piece_id[piece_off[t]:piece_off[t + 1]]]).astype(np.int32)
-        parts.append(_spill_parts(f.spill, ids_t, area_base))
-        area_base += len(f.spill[0])
-        p_dep.append(ids_t[f.perimeter_piece])
-    joined = {key: np.concatenate([p[key] for p in parts]) for key in parts[0]}
-    spill, spills_to = _spill_kernels.resolve_spills(
-        np.int64(n), joined["a_level"].astype(np.float32), joined["a_exit"].astype(np.int64),
-        joined["a_kind"].astype(np.int8), joined["a_val"].astype(np.int64),
-        joined["adj_area"].astype(np.int64), joined["adj_dep"].astype(np.int32),
-        joined["adj_cell"].astype(np.int64),
-        np.concatenate([f.perimeter_level for f in finished]).astype(np.float32),
-        np.concatenate(p_dep).astype(np.int32), joined["p_area"].astype(np.int64),
-        np.concatenate([f.perimeter_outlet for f in finished]).astype(np.bool_),
-        joined["p_low_level"].astype(np.float32), joined["p_low_dir"].astype(np.int64),
-        joined["p_low_kind"].astype(np.int8), joined["p_low_val"].astype(np.int64),
-        poff, np.int64(plan.tile), np.int64(plan.tile_rows), np.int64(plan.tile_cols),
-        np.int64(rows), np.int64(cols), DIRECTION_ROW, DIRECTION_COL, dirs.astype(np.int64),
-    )
-    return JoinedDepressions(n=n, piece_off=piece_off, piece_id=piece_id.astype(np.int32),
-                             pit=dep_pit, pit_z=dep_pit_z, level=dep_level, spill=spill,
-                             spills_to=spills_to)
-
-
-def _spill_parts(summary, piece_ids: np.ndarray, area_base: int) -> dict:
-    """One tile's spill summary in global numbers.
-
-    ``piece_ids[k]`` is the depression id of the tile's piece ``k``
-    (``piece_ids[0] == 0``); the tile's dry areas 1..m become global areas
-    ``area_base .. area_base + m - 1`` (-1 for none).
-    """
-    (a_level, a_exit, a_kind, a_val, adj_area, adj_dep, adj_cell,
-     p_area, p_low_level, p_low_dir, p_low_kind, p_low_val) = summary
-
-    def targets(kind, val):
-        out = val.copy()
-        dep = kind == _spill_kernels.KIND_DEPRESSION
-        out[dep] = piece_ids[val[dep]]
-        area = kind == _spill_kernels.KIND_AREA
-        out[area] = area_base + val[area] - 1
-        return out
-
-    return {
-        "a_level": a_level, "a_exit": a_exit, "a_kind": a_kind, "a_val": targets(a_kind, a_val),
-        "adj_area": (area_base + adj_area.astype(np.int64) - 1), "adj_dep": piece_ids[adj_dep],
-        "adj_cell": adj_cell,
-        "p_area": np.where(p_area > 0, area_base + p_area.astype(np.int64) - 1, -1),
-        "p_low_level": p_low_level, "p_low_dir": p_low_dir, "p_low_kind": p_low_kind,
-        "p_low_val": targets(p_low_kind, p_low_val),
-    }
 
 
 # --------------------------------------------------------------------------- the result
@@ -512,7 +366,8 @@ def _read_layer(plan: TilePlan, store, joined: JoinedDepressions, layer: str, r0
 
 def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int,
                  connectivity: int = 8, row_areas=None, transform=None,
-                 progress: Progress | None = None, check_outlets=None) -> TiledFlood:
+                 progress: Progress | None = None, check_outlets=None,
+                 culverts=None) -> TiledFlood:
     """Run the five steps on ``source`` with ``executor`` and ``store``.
 
     Parameters
@@ -535,6 +390,9 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     check_outlets : callable, optional
         ``check_outlets(counts, all_valid)`` after step 1, with the summed
         outlet counts of a :class:`RasterTiles`.
+    culverts : CulvertEdges, optional
+        Extra edges of the flood graph (:mod:`sillmark.engine.culverts`), on
+        valid cells of the grid.
 
     Returns
     -------
@@ -548,7 +406,8 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
     rows, cols = source.shape
     plan = TilePlan(rows=rows, cols=cols, tile=tile_size)
     dirs = directions(connectivity)
-    job = TileJob(plan=plan, source=source, store=store, connectivity=int(connectivity))
+    job = TileJob(plan=plan, source=source, store=store, connectivity=int(connectivity),
+                  culverts=culverts)
     store.start(plan)
     areas = np.ones(rows) if row_areas is None else np.asarray(row_areas, dtype=np.float64)
     times: dict[str, float] = {}
@@ -575,7 +434,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
 
     t0 = time.perf_counter()
     report("graph", 0, 1)
-    seeds = solve_seeds(plan, floods, dirs)
+    seeds = solve_seeds(plan, floods, dirs, culverts)
     report("graph", 1, 1)
     times["graph"] = time.perf_counter() - t0
     heap_pops = sum(f.heap_pops for f in floods)
@@ -592,7 +451,7 @@ def run_pipeline(source, *, executor: Executor, store: TileStore, tile_size: int
 
     t0 = time.perf_counter()
     report("join", 0, 1)
-    joined = join_pieces(plan, finished, dirs)
+    joined = join_pieces(plan, finished, dirs, culverts)
     unreached = sum(f.unreached_cells for f in finished)
     valid_cells = sum(f.valid_cells for f in finished)
     del finished

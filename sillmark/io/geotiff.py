@@ -64,7 +64,8 @@ Progress = Callable[[str, int, int], None]
 
 _FLOOD_TREE_CODES = (
     "0 = nodata or not reached from any outlet; 1..8 = the cell was reached from its "
-    "neighbour to the NW, N, NE, W, E, SW, S, SE; 9 = outlet"
+    "neighbour to the NW, N, NE, W, E, SW, S, SE; 9 = outlet; 10 = a culvert end "
+    "reached through its culvert from the culvert's other end"
 )
 
 

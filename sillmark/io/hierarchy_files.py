@@ -67,7 +67,7 @@ from sillmark.io.atomic import atomic_output
 from sillmark.io.csv_tables import column_texts
 from sillmark.io.json_values import json_number
 from sillmark.products.hierarchy import DepressionHierarchy, HierarchyTable
-from sillmark.units import ACRE_FOOT_M3, VerticalUnit, unit_name, unit_suffix
+from sillmark.units import VerticalUnit, own_unit_columns, unit_name, unit_suffix
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.grid.dem import DEM
@@ -163,7 +163,8 @@ def hierarchy_columns(hierarchy: DepressionHierarchy, dem: "DEM") -> dict[str, n
     unit (``spill_x_m`` ...). ``is_leaf`` is ``true`` or ``false``;
     ``children`` lists the children ids separated by ``;``, lowest pit first
     (empty for a pit). Added: the spill point in WGS84 (``spill_lon_deg``,
-    ``spill_lat_deg``), ``area_ha`` and, for sites in feet, ``volume_acre_ft``.
+    ``spill_lat_deg``), ``area_ha`` and, for sites in feet, ``area_ft2``,
+    ``area_acres`` and ``volume_acre_ft``.
     """
     unit = _check(hierarchy, dem)
     return node_table_columns(hierarchy.nodes, unit, dem)
@@ -214,8 +215,7 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dic
         "area_ha": area / 1e4,
         "volume_m3": volume,
     }
-    if unit.is_feet:
-        cols["volume_acre_ft"] = volume / ACRE_FOOT_M3
+    cols.update(own_unit_columns(unit, area_m2=area, volume_m3=volume))
     return cols
 
 
@@ -285,11 +285,10 @@ def json_text(value) -> str:
 # file) per window of depressions, so any cut into windows gives the same bytes.
 
 
-def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
-    """``# `` comment lines and the header row of a table CSV (as
-    :func:`sillmark.io.csv_tables.write_table_csv` writes them)."""
-    lines = "".join(f"# {line}\n" for line in comments)
-    return lines + _csv_text([list(columns)])
+def csv_head(columns: dict | Iterable[str]) -> str:
+    """The header row of a table CSV, the file's first line (as
+    :func:`sillmark.io.csv_tables.write_table_csv` writes it)."""
+    return _csv_text([list(columns)])
 
 
 def csv_rows(columns: dict[str, np.ndarray]) -> str:
@@ -448,7 +447,8 @@ def curve_columns(
     Columns: ``node_id``, ``depression``, ``point`` (``pit``, ``breakpoint``,
     ``step``, ``merge`` or ``spill``), ``elevation_{u}`` (float32, the vertical
     unit's suffix), ``area_m2`` (area of the region's cells strictly below the
-    elevation), ``storage_m3`` and, for sites in feet, ``storage_acre_ft``.
+    elevation), ``storage_m3`` and, for sites in feet, ``area_ft2``,
+    ``area_acres`` and ``storage_acre_ft``.
     Rows run node by node (ascending id), each from pit to spill elevation; see
     the module docstring for which elevations a node gets.
 
@@ -524,8 +524,7 @@ def curve_part_columns(
         "area_m2": area,
         "storage_m3": storage,
     }
-    if unit.is_feet:
-        cols["storage_acre_ft"] = storage / ACRE_FOOT_M3
+    cols.update(own_unit_columns(unit, area_m2=area, volume_m3=storage, volume_name="storage"))
     return cols
 
 

@@ -139,14 +139,25 @@ def _equal_filter(rule: ET.Element, *pairs: tuple[str, str]) -> None:
         _sub(cmp, _o("Literal"), value)
 
 
-def _circle(rule: ET.Element, symbol: dict, fill=None) -> None:
+#: SLD 1.0 well-known marks for the app's shapes; a diamond is a square turned 45°.
+_MARKS = {"triangle": ("triangle", 0), "diamond": ("square", 45), "disc": ("circle", 0),
+          "square": ("square", 0), "ring": ("circle", 0)}
+
+
+def _mark(rule: ET.Element, symbol: dict) -> None:
+    """A PointSymbolizer drawing one of :data:`sillmark.products.map_style.POINT_SYMBOLS`."""
+    name, turn = _MARKS[symbol["shape"]]
     point = _sub(rule, _s("PointSymbolizer"))
     graphic = _sub(point, _s("Graphic"))
     mark = _sub(graphic, _s("Mark"))
-    _sub(mark, _s("WellKnownName"), symbol["shape"])
-    _fill(mark, symbol["fill"] if fill is None else fill)
+    _sub(mark, _s("WellKnownName"), name)
+    _fill(mark, symbol["fill"])
     _stroke(mark, symbol["stroke"], symbol["stroke_px"])
-    _sub(graphic, _s("Size"), _num(symbol["size_px"]))
+    # A turned square of side s spans s·√2: the diamond keeps the app's width.
+    size = symbol["size_px"] / (2 ** 0.5) if turn else symbol["size_px"]
+    _sub(graphic, _s("Size"), _num(size))
+    if turn:
+        _sub(graphic, _s("Rotation"), _num(turn))
 
 
 def _document(layer: str, title: str) -> tuple[ET.Element, ET.Element]:
@@ -263,7 +274,7 @@ def layer_style(name: str, unit: VerticalUnit | str, *, path: str | os.PathLike 
         poly = _sub(_rule(fts, "outline", "Depression outline"), _s("PolygonSymbolizer"))
         _stroke(poly, line["stroke"], line["stroke_px"], dash=line["dash"])
     elif kind == "spill_points":
-        _circle(_rule(fts, "spill point", "Spill point"), ms.POINT_SYMBOLS["spill_point"])
+        _mark(_rule(fts, "spill point", "Spill point"), ms.POINT_SYMBOLS["spill"])
     elif kind == "flood_extent":
         colour = ms.ASSET_STATE_FILL["flooded"]
         poly = _sub(_rule(fts, "flooded", "Flooded from the outlets"), _s("PolygonSymbolizer"))
@@ -275,11 +286,10 @@ def layer_style(name: str, unit: VerticalUnit | str, *, path: str | os.PathLike 
         _fill(poly, ms.SHIELDED_WASH, ms.SHIELDED_WASH[3] / 255)
         _stroke(poly, ms.SHIELDED_STRIPE, 1.5, opacity=ms.SHIELDED_STRIPE[3] / 255)
     elif kind == "assets":
-        asset = ms.POINT_SYMBOLS["asset"]
-        for state, fill in ms.ASSET_STATE_FILL.items():
+        for state in ms.ASSET_STATE_FILL:
             rule = _rule(fts, f"asset {state}", f"Asset, {state}")
             _equal_filter(rule, ("feature_kind", "asset"), ("state", state))
-            _circle(rule, asset, fill=fill)
+            _mark(rule, ms.POINT_SYMBOLS[f"asset-{state}"])
         route = ms.ROUTE_STYLE
         rule = _rule(fts, "route", "Route from the outlets")
         _equal_filter(rule, ("feature_kind", "route"))
@@ -287,7 +297,7 @@ def layer_style(name: str, unit: VerticalUnit | str, *, path: str | os.PathLike 
         _stroke(line, route["stroke"], route["stroke_px"], opacity=route["opacity"])
         rule = _rule(fts, "controlling sill", "Controlling sill")
         _equal_filter(rule, ("feature_kind", "controlling_sill"))
-        _circle(rule, ms.POINT_SYMBOLS["controlling_sill"])
+        _mark(rule, ms.POINT_SYMBOLS["sill"])
     ET.indent(root)
     body = ET.tostring(root, encoding="unicode")
     return '<?xml version="1.0" encoding="UTF-8"?>\n' + body + "\n"

@@ -18,12 +18,13 @@ from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import crs_unit_name, full_crs, horizontal_crs
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, FLOOD_TREE_NODATA
 from sillmark.io.json_values import shortest_float32, write_json
-from sillmark.units import ACRE_FOOT_M3, unit_of
+from sillmark.units import own_unit_columns, unit_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
     from sillmark.grid.dem import DEM
     from sillmark.grid.outlets import Outlets
+    from sillmark.products.significance import Significance
 
 
 #: Prefix of the temporary folder a run writes into before its files are moved
@@ -68,18 +69,67 @@ FILE_NAMES = (
 
 
 def _summary(result: "SpillResult", dem: "DEM", outlets: "Outlets", files: list[str],
-             path: Path) -> dict:
-    return _summary_payload(path,
-        result.depressions, dem, connectivity=result.connectivity,
+             path: Path, significance: dict | None = None) -> dict:
+    return _summary_payload(
+        path, result.depressions, dem, connectivity=result.connectivity,
         unreached_cells=result.unreached_cells,
         valid_cells=int(np.count_nonzero(~np.isnan(result.elevation))),
         outlet_sources=outlets.sources, outlet_count=outlets.count, files=files,
+        significance=significance,
     )
+
+
+def significance_member(sig: "Significance", *, all_depressions: int, accuracy_stated: bool,
+                        full_inventory: bool = False) -> dict:
+    """The ``significance`` member of ``summary.json``: the minimum, where it comes from,
+    and the counts.
+
+    ``accuracy_stated``: the vertical accuracy was given by the user (else it is
+    :data:`sillmark.products.significance.DEFAULT_VERTICAL_ACCURACY_M`).
+    """
+    from sillmark.products.significance import (
+        DEFAULT_VERTICAL_ACCURACY_M,
+        DEPTH_PER_ACCURACY,
+    )
+
+    m = sig.minimum
+    unit = m.unit
+    if np.isnan(m.vertical_accuracy):
+        source = "given directly as a depth"
+        accuracy = None
+    else:
+        factor = m.min_depth / m.vertical_accuracy
+        times = f"{factor:.6g} x" if not np.isclose(factor, DEPTH_PER_ACCURACY) else \
+            f"{DEPTH_PER_ACCURACY:g} x"
+        if accuracy_stated:
+            source = (f"{times} the stated vertical accuracy of the DEM, "
+                      f"{m.vertical_accuracy:.6g} {unit.value}")
+        else:
+            source = (f"{times} the default vertical accuracy {DEFAULT_VERTICAL_ACCURACY_M:g} m, "
+                      "usual for airborne lidar (a value recalled from memory, not a cited "
+                      "standard); state the survey's own accuracy to change it")
+        accuracy = {"value": float(m.vertical_accuracy), "unit": unit.value,
+                    "stated": bool(accuracy_stated)}
+    top = sig.table.parent == 0
+    return {
+        "min_depth": {"value": float(m.min_depth), "unit": unit.value},
+        "min_area_m2": float(m.min_area_m2),
+        "min_volume_m3": float(m.min_volume_m3),
+        "vertical_accuracy": accuracy,
+        "source": source,
+        "full_inventory": bool(full_inventory),
+        "counts": {
+            "significant": len(sig),
+            "significant_top": int(np.count_nonzero(top)),
+            "all_depressions": int(all_depressions),
+            "hierarchy_nodes": int(sig.significant.shape[0]),
+        },
+    }
 
 
 def _summary_payload(path: Path, table, dem: "DEM", *, connectivity: int, unreached_cells: int,
                      valid_cells: int, outlet_sources, outlet_count: int, files: list[str],
-                     engine: dict | None = None) -> dict:
+                     engine: dict | None = None, significance: dict | None = None) -> dict:
     t = table
     unit = unit_of(dem)
     crs = horizontal_crs(dem)
@@ -104,8 +154,8 @@ def _summary_payload(path: Path, table, dem: "DEM", *, connectivity: int, unreac
         "total_volume_m3": volume_m3,
         "highest_spill_elevation": highest,
     }
-    if unit.is_feet:
-        depressions["total_volume_acre_ft"] = volume_m3 / ACRE_FOOT_M3
+    depressions.update(own_unit_columns(unit, area_m2=area_m2, volume_m3=volume_m3,
+                                        area_name="total_area", volume_name="total_volume"))
     return {
         "sillmark_version": __version__,
         "created_utc": datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -134,6 +184,7 @@ def _summary_payload(path: Path, table, dem: "DEM", *, connectivity: int, unreac
         },
         "files": files,
         **({"engine": engine} if engine else {}),
+        **({"significance": significance} if significance else {}),
     }
 
 
@@ -160,17 +211,20 @@ def write_table_summary(
 
 def write_summary(
     result: "SpillResult", dem: "DEM", outlets: "Outlets", path: str | os.PathLike,
-    *, files: list[str] | None = None,
+    *, files: list[str] | None = None, significance: dict | None = None,
 ) -> Path:
     """Write ``summary.json``: grid, outlets, totals in SI, caution, version, time, files.
 
     ``files`` lists the names of the other files of the run; the summary adds its own.
+    ``significance`` (from :func:`significance_member`) is written as the member
+    ``significance``. The depression totals are over every depression, whatever
+    the significance minimum: they are exact.
     """
     final = Path(path)
     names = list(files or [])
     if final.name not in names:
         names.append(final.name)
-    return write_json(final, _summary(result, dem, outlets, names, final))
+    return write_json(final, _summary(result, dem, outlets, names, final, significance))
 
 
 @dataclasses.dataclass(frozen=True)

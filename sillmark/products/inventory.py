@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from sillmark.grid.crs import crs_unit_suffix, horizontal_crs, to_wgs84
-from sillmark.units import ACRE_FOOT_M3, unit_of, unit_suffix
+from sillmark.units import own_unit_columns, unit_of, unit_suffix
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
@@ -28,7 +28,8 @@ def depression_columns(result: "SpillResult", dem: "DEM") -> dict[str, np.ndarra
     point's CRS coordinates the CRS's unit (``spill_x_m`` ...), and
     ``volume_m2_vu`` is given converted to ``volume_m3``. Added: the spill point in
     WGS84 (``spill_lon_deg``, ``spill_lat_deg``), ``area_ha`` and, for sites in
-    feet, ``volume_acre_ft``.
+    feet, ``area_ft2``, ``area_acres`` and ``volume_acre_ft``
+    (:func:`sillmark.units.own_unit_columns`).
 
     Notes
     -----
@@ -70,6 +71,5 @@ def table_columns(table, dem: "DEM") -> dict[str, np.ndarray]:
         "area_ha": np.asarray(t.area_m2, dtype=np.float64) / 1e4,
         "volume_m3": volume_m3,
     }
-    if unit.is_feet:
-        cols["volume_acre_ft"] = volume_m3 / ACRE_FOOT_M3
+    cols.update(own_unit_columns(unit, area_m2=cols["area_m2"], volume_m3=volume_m3))
     return cols

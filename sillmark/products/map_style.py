@@ -110,18 +110,29 @@ def depth_classes(unit_value: str) -> tuple[DepthClass, ...]:
     return tuple(out)
 
 
-#: Fill of an asset's marker by its state at the level.
-ASSET_STATE_FILL = {"flooded": (47, 111, 163), "shielded": (217, 138, 28), "dry": (111, 143, 90)}
-
-#: Point markers: shape (``circle``), diameter and stroke width in pixels, colours.
+#: Point symbols by kind: a shape as well as a colour for each kind of point
+#: (spill point: ochre triangle; controlling sill: crimson diamond; assets by
+#: state: flooded blue disc, shielded amber square, dry green ring). ``size_px``
+#: is the symbol's width in pixels, ``stroke_px`` its outline.
 POINT_SYMBOLS = {
-    "spill_point": {"shape": "circle", "size_px": 10, "fill": (224, 176, 67),
-                    "stroke": (43, 33, 24), "stroke_px": 1.5},
-    "asset": {"shape": "circle", "size_px": 14, "stroke": (255, 255, 255), "stroke_px": 2.0,
-              "fill_by_state": ASSET_STATE_FILL, "fill": (138, 143, 147)},
-    "controlling_sill": {"shape": "circle", "size_px": 16, "fill": (255, 140, 26),
-                         "stroke": (59, 31, 0), "stroke_px": 2.0},
+    "spill": {"shape": "triangle", "fill": (224, 176, 67), "stroke": (43, 33, 24), "size_px": 16,
+              "stroke_px": 1.6},
+    "sill": {"shape": "diamond", "fill": (192, 57, 43), "stroke": (255, 255, 255), "size_px": 20,
+             "stroke_px": 1.6},
+    "asset-flooded": {"shape": "disc", "fill": (47, 111, 163), "stroke": (255, 255, 255),
+                      "size_px": 16, "stroke_px": 1.6},
+    "asset-shielded": {"shape": "square", "fill": (217, 138, 28), "stroke": (59, 38, 6),
+                       "size_px": 15, "stroke_px": 1.6},
+    "asset-dry": {"shape": "ring", "fill": (255, 255, 255), "stroke": (79, 122, 58), "size_px": 15,
+                  "stroke_px": 3.0},
+    "asset-none": {"shape": "ring", "fill": (255, 255, 255), "stroke": (138, 143, 147),
+                   "size_px": 13, "stroke_px": 3.0},
+    "point": {"shape": "disc", "fill": (255, 255, 255), "stroke": (20, 35, 44), "size_px": 10,
+              "stroke_px": 1.6},
 }
+
+#: The colour that tells an asset's state, by state (flooded, shielded, dry).
+ASSET_STATE_FILL = {"flooded": (47, 111, 163), "shielded": (217, 138, 28), "dry": (79, 122, 58)}
 
 #: The route from the outlets to a place: a dark line (width in pixels).
 ROUTE_STYLE = {"stroke": (20, 35, 44), "stroke_px": 3.5, "opacity": 0.9}
@@ -140,18 +151,8 @@ OUTLET_STYLE = {"stroke": (11, 93, 138), "stroke_px": 1.5, "fill": (11, 93, 138)
 
 
 def point_symbols() -> dict:
-    """The marker and outline styles as JSON for the page's scripts (colours as ``#rrggbb``)."""
-    spill = POINT_SYMBOLS["spill_point"]
-    asset = POINT_SYMBOLS["asset"]
-    return {
-        "spill_point": {"radius": spill["size_px"] / 2, "fill": hex_colour(spill["fill"]),
-                        "stroke": hex_colour(spill["stroke"]), "weight": spill["stroke_px"]},
-        "asset": {"radius": asset["size_px"] / 2, "stroke": hex_colour(asset["stroke"]),
-                  "weight": asset["stroke_px"], "fill": hex_colour(asset["fill"]),
-                  "fill_by_state": {k: hex_colour(v) for k, v in ASSET_STATE_FILL.items()}},
-        "outlines": {k: {"stroke": hex_colour(v["stroke"]), "weight": v["stroke_px"],
-                         "dash": None if v["dash"] is None else " ".join(str(d) for d in v["dash"])}
-                     for k, v in OUTLINE_STYLES.items()},
-        "outlet": {"stroke": hex_colour(OUTLET_STYLE["stroke"]), "weight": OUTLET_STYLE["stroke_px"],
-                   "fill": hex_colour(OUTLET_STYLE["fill"]), "fill_opacity": OUTLET_STYLE["fill_opacity"]},
-    }
+    """The point symbols as JSON for the page's scripts (colours as ``#rrggbb``, sizes in px)."""
+    return {kind: {"shape": v["shape"], "fill": hex_colour(v["fill"]),
+                   "stroke": hex_colour(v["stroke"]), "size": v["size_px"],
+                   "width": v["stroke_px"]}
+            for kind, v in POINT_SYMBOLS.items()}

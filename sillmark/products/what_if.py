@@ -19,6 +19,7 @@ from sillmark.engine.flood import OUTLET_CODE, SpillResult, priority_flood
 from sillmark.errors import InvalidParameter, LocationOutsideDEM
 from sillmark.grid.assets import STATUS_OK, Asset, Assets
 from sillmark.grid.elevations import MAX_ABS_ELEVATION
+from sillmark.grid.ground import position_text
 from sillmark.grid.outlets import Outlets
 from sillmark.products.assets import Sill, _check_result
 from sillmark.units import VerticalUnit
@@ -286,7 +287,8 @@ def _read_what_if(
         route_after_xy=np.column_stack([xa, ya]),
         unit=unit,
         explanation=_explain(
-            raised, new, h, own, onset_before, onset_after, sill_after, unit, raised_cells
+            raised, new, h, own, onset_before, onset_after, sill_after, unit, raised_cells,
+            where=lambda s: position_text(dem, s.x, s.y),
         ),
         result=after,
         raised_cells=raised_cells,
@@ -428,10 +430,11 @@ def _height(height: Any) -> float:
 
 def _explain(
     raised: Sill, new: float, height: float, own: bool, before: float, after: float,
-    sill_after: Sill, unit: VerticalUnit, raised_cells: int = 1,
+    sill_after: Sill, unit: VerticalUnit, raised_cells: int = 1, *, where,
 ) -> str:
+    """The what-if in words; ``where(sill)`` names a sill's position (coordinates, never cells)."""
     u = unit.symbol
-    at = f"row {raised.row}, col {raised.col}"
+    at = where(raised)
     if own:
         return (
             f"The asset's own ground ({before:.2f} {u}) is its controlling point: no sill "
@@ -443,7 +446,7 @@ def _explain(
         f"the crest of the controlling sill ({raised_cells} cells)"
     )
     head = f"Raising {what} at {at} from {raised.elevation:.2f} to {new:.2f} {u}"
-    there = f"row {sill_after.row}, col {sill_after.col}"
+    there = where(sill_after)
     if after == before:
         return (
             f"{head} changes nothing: the water goes round it over the cell at {there}, "

@@ -130,7 +130,10 @@ def site_map(data, *, site_id: int, level: float, for_print: bool = False) -> Ma
     route.add_to(m)
     if not for_print:
         folium.LayerControl(position="topright", collapsed=True).add_to(m)
-    m.fit_bounds([[south, west], [north, east]])
+    if not for_print:
+        # The printed map fits itself to its sheet at a fractional zoom (static/js/print.js);
+        # a whole-zoom fit here would still be animating then, and end at its own zoom.
+        m.fit_bounds([[south, west], [north, east]])
     root = m.get_root()
     root.render()
     names = {

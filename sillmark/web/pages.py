@@ -1,20 +1,22 @@
 """HTML pages: the list of sites, a new site, a site (its map or its progress), its
-settings, and the printable map."""
+settings, the printed report, and the method and its limitations."""
 
 from __future__ import annotations
 
 import datetime as _dt
 import threading
 
+import numpy as np
 from flask import Blueprint, current_app, render_template, request, url_for
 
 from sillmark.errors import InvalidParameter
-from sillmark.units import unit_words
-from sillmark.web import get_db, render, services
-from sillmark.web.access import open_site, site_row
+from sillmark.units import area_units, unit_words
+from sillmark.web import db, get_db, render, services
+from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
+from sillmark.web.report import print_report
 from sillmark.web.site_data import parse_level
-from sillmark.web.sites import UNIT_SOURCE_TEXT, SiteNotReady
+from sillmark.web.sites import UNIT_SOURCE_TEXT, SiteNotReady, run_dict
 from sillmark.web.tiles import warm
 
 bp = Blueprint("pages", __name__)
@@ -68,9 +70,10 @@ def site(site_id: int):
         "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
         "range": rng,
+        "areas": area_units(data.unit).as_dict(),
         "level": level,
         "names": parts.names,
-        "legend": render.legend(data.unit.value, data.unit.symbol),
+        "legend": render.legend(data.unit.value, data.unit.symbol, ground=_ground(data)),
         "bounds": data.summary.get("lonlat_bounds"),
         # What a traced water body is submitted with (the site's other settings, unchanged).
         "settings": {
@@ -101,12 +104,20 @@ def _settings_page(described: dict, *, first_time: bool):
 @bp.get("/sites/<int:site_id>/print")
 def print_map(site_id: int):
     row, data = open_site(site_id)
-    described = services().registry.describe(get_db(), row)
+    conn = get_db()
+    described = services().registry.describe(conn, row)
     text = request.args.get("level")
     if text is None:
         raise InvalidParameter("give the water level to print, e.g. ?level=47.6")
     level = float(parse_level(text))
     parts = site_map(data, site_id=site_id, level=level, for_print=True)
+    run_row = db.get_run(conn, data.run_id)
+    run = None
+    if run_row is not None:
+        run = {**run_dict(run_row), "settings": db.loads(run_row["settings"], {})}
+    key, placed = site_assets(site_id, data)
+    table = data.asset_table(key, placed, np.float32(level)) if placed is not None else None
+    paper = print_report(data, described, run, level, table)
     config = {
         "site_id": site_id,
         "run_id": data.run_id,
@@ -115,15 +126,30 @@ def print_map(site_id: int):
         "unit_words": unit_words(data.unit),
         "datum": described["vertical_datum"],
         "is_feet": data.unit.is_feet,
+        "areas": area_units(data.unit).as_dict(),
         "level": level,
         "names": parts.names,
-        "legend": render.legend(data.unit.value, data.unit.symbol),
+        "legend": render.legend(data.unit.value, data.unit.symbol, ground=_ground(data)),
         "bounds": data.summary.get("lonlat_bounds"),
+        "draw": paper["map"],
         "print": True,
     }
     now = _dt.datetime.now().astimezone()
     return render_template("print.html", site=described, parts=parts, config=config, level=level,
-                           printed=now.strftime("%Y-%m-%d %H:%M %Z").strip(), summary=data.summary)
+                           paper=paper, printed=now.strftime("%Y-%m-%d %H:%M %Z").strip(),
+                           summary=data.summary)
+
+
+@bp.get("/method")
+def method():
+    """What the analysis computes, what it leaves out, and when to ask an engineer."""
+    return render_template("method.html")
+
+
+def _ground(data) -> tuple | None:
+    """The site's lowest and highest ground (what the relief tint spans), or None."""
+    lo, hi = data.summary.get("elevation_min"), data.summary.get("elevation_max")
+    return None if lo is None or hi is None else (float(lo), float(hi))
 
 
 def _warm(data) -> None:

@@ -70,8 +70,16 @@ W_WASH = 2
 W_DEPTH0 = 3
 
 
-def legend(unit_value: str, unit_symbol: str) -> dict:
-    """What the legend shows: depth classes with colours, the shielded style, the symbols."""
+#: What shows through where a tile has no DEM cell (nodata): the map's own
+#: background (``.leaflet-container`` in static/css/sillmark.css).
+NODATA_BACKGROUND = "#e9ecea"
+
+
+def legend(unit_value: str, unit_symbol: str, *, ground: tuple | None = None) -> dict:
+    """What the legend shows: depth classes with colours, the shielded style, the
+    relief tint under the hillshade (with the site's lowest and highest ground,
+    ``ground``, when known), the colour of the nodata gaps and the point symbols
+    (all from :mod:`sillmark.products.map_style`, shared with the SLD styles)."""
     classes = [{"label": c.label(unit_symbol), "colour": c.hex, "from": c.lower, "to": c.upper}
                for c in depth_classes(unit_value)]
     return {
@@ -84,6 +92,12 @@ def legend(unit_value: str, unit_symbol: str) -> dict:
             "stripe": hex_colour(SHIELDED_STRIPE),
             "wash": hex_colour(SHIELDED_WASH),
         },
+        "relief": {
+            "stops": [[p, hex_colour(c)] for p, c in TINT_STOPS],
+            "low": None if ground is None else ground[0],
+            "high": None if ground is None else ground[1],
+        },
+        "nodata_colour": NODATA_BACKGROUND,
         "symbols": point_symbols(),
     }
 

@@ -28,7 +28,8 @@ from sillmark.errors import (
     LocationOutsideDEM,
 )
 from sillmark.grid.assets import read_assets
-from sillmark.grid.crs import LonLatTransformer
+from sillmark.grid.crs import LonLatTransformer, crs_label
+from sillmark.grid.ground import ground_unit, path_length
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets
 from sillmark.products.hierarchy_sweep import site_hierarchy
@@ -42,7 +43,7 @@ from sillmark.products.stage import (
     water_level_map,
 )
 from sillmark.products.what_if import raise_sill
-from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark.units import VerticalUnit, area_units, own_unit_columns
 from sillmark.web import arrays, layout, render
 from sillmark.web.caches import LockedLRU
 from sillmark.grid.geojson import CRS84
@@ -175,12 +176,22 @@ class SiteData:
         except LocationOutsideDEM:
             raise LocationOutsideDEM("that point lies outside the DEM") from None
 
+    @functools.cached_property
+    def crs_text(self) -> str:
+        """The DEM's CRS as pages name it beside coordinates (``EPSG:32633 (WGS 84 / UTM zone 33N)``)."""
+        return crs_label(self.dem)
+
     @property
     def unit_symbol(self) -> str:
         return self.unit.symbol
 
     def level_range(self) -> dict:
-        """Slider range and step in the site's unit: lowest onset stage to highest ground.
+        """Slider range and step in the site's unit: lowest outlet to highest ground.
+
+        The lowest onset stage is the lowest outlet's ground (every cell's onset
+        stage is at least the elevation of the outlet its route starts from), so
+        the range runs from the lowest outlet, rounded down to a step, to the
+        highest ground, rounded up: below it nothing is wet, above it all is.
 
         The first level shown is just below the spill elevation of the largest
         depression, where its shielded low ground is widest.
@@ -239,9 +250,11 @@ class SiteData:
                 "assets": None,
                 "caution": SCREENING_CAUTION,
             }
-            if self.unit.is_feet:
-                base["flooded_volume_acre_ft"] = wm.flooded_volume_m3 / ACRE_FOOT_M3
-                base["shielded_volume_acre_ft"] = wm.shielded_volume_m3 / ACRE_FOOT_M3
+            base["areas"] = area_units(self.unit).as_dict()
+            for name in ("flooded", "shielded"):
+                base.update(own_unit_columns(
+                    self.unit, area_m2=base[f"{name}_area_m2"], volume_m3=base[f"{name}_volume_m3"],
+                    area_name=f"{name}_area", volume_name=f"{name}_volume"))
             self._levels.put((float(level), None), base)
         out = dict(base)
         if assets is not None:
@@ -277,9 +290,10 @@ class SiteData:
         """The stage table as JSON-ready lists."""
         table = self.stage_table
         step = float(table.level[1] - table.level[0]) if len(table) > 1 else 0.0
-        return {
+        out = {
             "unit": self.unit.value,
             "unit_symbol": self.unit.symbol,
+            "areas": area_units(self.unit).as_dict(),
             "step": round(step, 6),
             "level": [float(v) for v in table.level],
             "flooded_area_m2": [float(v) for v in table.flooded_area_m2],
@@ -288,6 +302,12 @@ class SiteData:
             "shielded_volume_m3": [float(v) for v in table.shielded_volume_m3],
             "caution": SCREENING_CAUTION,
         }
+        for name in ("flooded", "shielded"):
+            extra = own_unit_columns(self.unit, area_m2=out[f"{name}_area_m2"],
+                                     volume_m3=out[f"{name}_volume_m3"],
+                                     area_name=f"{name}_area", volume_name=f"{name}_volume")
+            out.update({k: [float(v) for v in values] for k, values in extra.items()})
+        return out
 
     # -- outlets ----------------------------------------------------------------------
 
@@ -361,8 +381,8 @@ class SiteData:
                 "pit_lat": _finite(plat[k]),
                 "bounds": [float(min(lon)), float(min(lat)), float(max(lon)), float(max(lat))],
             }
-            if self.unit.is_feet:
-                item["volume_acre_ft"] = vol_m3 / ACRE_FOOT_M3
+            item.update({k: float(v) for k, v in own_unit_columns(
+                self.unit, area_m2=item["area_m2"], volume_m3=vol_m3).items()})
             out.append(item)
         return out
 
@@ -386,13 +406,17 @@ class SiteData:
         with self._engine_lock:
             curve = h.curve_at(node, levels)
         children = [int(c) for c in h.children(node)]
+        own = own_unit_columns(self.unit, area_m2=curve.area_m2, volume_m3=curve.storage_m3,
+                               volume_name="storage")
         return {
             "id": depression_id,
             "unit": self.unit.value,
             "unit_symbol": self.unit.symbol,
+            "areas": area_units(self.unit).as_dict(),
             "level": [float(v) for v in curve.elevation],
             "area_m2": [_finite(v) for v in curve.area_m2],
             "storage_m3": [_finite(v) for v in curve.storage_m3],
+            **{k: [_finite(v) for v in values] for k, values in own.items()},
             "nested_pools": len(h.subtree(node)) - 1,
             "children": len(children),
             "pit_elevation": pit,
@@ -422,6 +446,7 @@ class SiteData:
         cx, cy = self.dem.xy(r, c)
         clon, clat = self.lonlat(cx, cy)
         dep = int(self.result.depression_id[r, c])
+        length = path_length(self.dem, route.rows, route.cols)
         return {
             "row": r, "col": c,
             "lon": float(clon), "lat": float(clat),
@@ -440,10 +465,18 @@ class SiteData:
                 "coordinates": [[round(float(a), 8), round(float(b), 8)] for a, b in zip(lon_r, lat_r)],
             },
             "route_cells": int(len(route)),
+            # What people read: the route's length on the ground, never a count of cells.
+            "route_length": length.value,
+            "route_length_unit": length.unit,
+            "route_length_m": length.metres,
+            "crs": self.crs_text,
+            "xy_unit": "°" if self.dem.is_geographic else ground_unit(self.dem)[0],
+            "xy_decimals": 7 if self.dem.is_geographic else 2,
             "reaches_outlet": bool(route.reaches_outlet),
             "sill": {
                 "row": int(route.sill_row), "col": int(route.sill_col),
                 "lon": float(slon), "lat": float(slat),
+                "x": float(sx), "y": float(sy),
                 "elevation": float(route.sill_elevation),
                 "is_own_cell": (int(route.sill_row), int(route.sill_col)) == (r, c),
             },

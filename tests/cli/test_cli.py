@@ -176,7 +176,7 @@ def test_full_run_writes_every_file_and_summarises_with_units(capsys, dem_tif, t
         assert (out_dir / name).is_file() and (out_dir / name).stat().st_size > 0
     # beside every raster and vector layer, its map style (OGC SLD)
     styles = [n.rsplit(".", 1)[0] + ".sld" for n in FILE_NAMES if n.endswith((".tif", ".geojson"))]
-    assert sorted(p.name for p in out_dir.iterdir()) == sorted([*FILE_NAMES, *styles])
+    assert sorted(p.name for p in out_dir.iterdir()) == sorted([*FILE_NAMES, *styles, "README.txt"])
     # The basin: 12 cells of 25 m² = 300 m² = 0.03 ha, 4 m deep to the 6 m ground.
     assert "Depressions: 1, total area 0.03 ha" in out
     assert ("1,200.0 m³" in out) or ("1,200.0 m3" in out)

@@ -86,7 +86,7 @@ def test_assets_are_counted_listed_and_written_per_level(capsys, ridge_tif, four
     assert "flooded: Meadow pump (pump): depth 0.80 m (ground 2.00 m)" in low
     x, y = centre(*LOW_GAP)
     assert ("next to flood: Basin school (school, shielded): onset stage 3.00 m, freeboard 0.20 m; "
-            f"controlling sill 3.00 m at row 6, col 5 (x {x:.1f} m, y {y:.1f} m)") in low
+            f"controlling sill 3.00 m at x {x:.1f} m, y {y:.1f} m") in low
     assert ("next to flood: Knoll barn (barn, dry): onset stage 5.00 m, freeboard 2.20 m; "
             "no sill, its own ground controls") in low
     assert "assets_2.80m.csv, assets_2.80m.geojson" in low
@@ -97,7 +97,8 @@ def test_assets_are_counted_listed_and_written_per_level(capsys, ridge_tif, four
     assert "Results: 24 files" in out  # (5 + 4 SLD) + (2 + 1 SLD) per level
 
     comments, rows = read_rows(out_dir / "assets_2.80m.csv")
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
+    assert comments == []  # the header first; the caution is in README.txt
+    assert " ".join(SCREENING_CAUTION.split()) in " ".join((out_dir / "README.txt").read_text().split())
     assert [r["state"] for r in rows] == ["flooded", "shielded", "dry", ""]
     assert [r["status"] for r in rows] == ["ok", "ok", "ok", "outside DEM"]
     assert rows[1]["onset_stage_m"] == "3" and (rows[1]["sill_row"], rows[1]["sill_col"]) == ("6", "5")
@@ -163,12 +164,13 @@ def test_raising_the_lower_gap_lets_the_higher_one_control(capsys, monkeypatch, 
     assert "2 assets behind 1 distinct sill (1 recompute); passed over: 1 whose own ground controls" in out
     assert "raised from 3.00 to 5.00 m: 2 assets, onset stage 3.00 -> 4.00 m (gain 1.00 m)" in out
     x, y = centre(*HIGH_GAP)
-    assert f"then water comes over the sill at row 2, col 5 (x {x:.1f} m, y {y:.1f} m) at 4.00 m" in out
+    assert f"then water comes over the sill at x {x:.1f} m, y {y:.1f} m at 4.00 m" in out
     assert "Results: 13 files" in out  # (5 + 4 SLD) + (2 + 1 SLD) + the what-if table
 
     comments, rows = read_rows(out_dir / "what_if_raise_2.00m.csv")
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
-    assert any("1 asset(s) whose own ground is the controlling point" in line for line in comments)
+    assert comments == []
+    readme = " ".join((out_dir / "README.txt").read_text().split())
+    assert "1 asset(s) whose own ground is the controlling point" in readme
     assert [r["name"] for r in rows] == ["Basin school", "Basin clinic"]
     for r in rows:
         assert (r["onset_before_m"], r["onset_after_m"], r["gain_m"]) == ("3", "4", "1")

@@ -79,7 +79,8 @@ def test_stage_on_a_dem_writes_the_files_and_reports_with_units(capsys, dem_tif,
                              "--table-step", "0.5", "--out", str(out_dir))
     assert code == 0, err
     assert err == ""
-    assert names_in(out_dir) == sorted(level_files("4.50m") + level_files("6.00m") + ["stage_table.csv"])
+    assert names_in(out_dir) == sorted(level_files("4.50m") + level_files("6.00m")
+                                       + ["stage_table.csv", "README.txt"])
     lines = out.splitlines()
     assert lines[0].startswith("Site: site.tif")
     # 4.5 m: 40 edge cells of 25 m² = 1000 m², 0.5 m deep = 500 m³; the basin is
@@ -102,7 +103,8 @@ def test_stage_from_an_analysis_folder_gives_identical_files(capsys, dem_tif, an
     assert code == 0, err
     assert f"Analysis: {analysed}" in out
     assert names_in(tmp_path / "a") == names_in(tmp_path / "b")
-    assert len(names_in(tmp_path / "a")) == 28  # 3 levels of (5 files + 4 SLD styles), the table
+    # 3 levels of (5 files + 4 SLD styles), the table, README.txt (no path nor time in it)
+    assert len(names_in(tmp_path / "a")) == 29
     for name in names_in(tmp_path / "a"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
 
@@ -150,7 +152,7 @@ def test_negative_level_and_table_only(capsys, dem_tif, tmp_path):
     code, out, _ = run_cli(capsys, "stage", str(dem_tif), "--table-step", "1", "--table-from", "-1",
                            "--table-to", "6", "--out", str(tmp_path / "t"))
     assert code == 0
-    assert names_in(tmp_path / "t") == ["stage_table.csv"]
+    assert names_in(tmp_path / "t") == ["README.txt", "stage_table.csv"]
     assert "8 levels from -1.00 m to 6.00 m" in out
     code, out, _ = run_cli(capsys, "stage", str(dem_tif), "--level", "-1.5", "--out", str(tmp_path / "n"))
     assert code == 0
@@ -161,7 +163,7 @@ def test_level_below_every_cell_is_a_note_and_still_writes(capsys, dem_tif, tmp_
     code, out, err = run_cli(capsys, "stage", str(dem_tif), "--level", "3", "--out", str(tmp_path / "s"))
     assert code == 0 and err == ""
     assert "Note: nothing floods at 3.00 m: the lowest onset stage is 4.00 m" in out
-    assert names_in(tmp_path / "s") == sorted(level_files("3.00m"))
+    assert names_in(tmp_path / "s") == sorted(level_files("3.00m") + ["README.txt"])
     doc = json.loads((tmp_path / "s" / "flood_extent_3.00m.geojson").read_text())
     assert doc["features"] == [] and doc["area_m2"] == 0
     # The basin (2 m) is below 3 m but cut off: shielded.
@@ -178,6 +180,35 @@ def test_feet_site_reports_acre_feet_and_names_files_in_feet(capsys, tmp_path):
     assert code == 0
     assert "Water level 4.50 ft:" in out and "acre-ft" in out
     assert "depth_4.50ft.tif" in names_in(tmp_path / "s")
+
+
+def test_feet_site_reports_and_exports_areas_in_acres_and_square_feet(capsys, tmp_path):
+    # The same walled basin, heights in feet on a 5 m UTM grid: at 4.5 ft the
+    # basin's 12 cells of 25 m² (300 m²) are shielded. 300 m² / 4046.8564224 m²
+    # per acre = 0.0741 acres; / 0.09290304 m² per ft² = 3,229 ft² (NIST
+    # Handbook 44, Appendix C). Flooded: the 40 edge cells, 1000 m² = 0.25 acres.
+    z = np.full((10, 12), 6.0, dtype=np.float32)
+    z[0, :] = z[-1, :] = z[:, 0] = z[:, -1] = 4.0
+    z[3:6, 3:7] = 2.0
+    dem = write_dem(tmp_path / "feet.tif", z)
+    code, out, _ = run_cli(capsys, "stage", str(dem), "--vertical-unit", "ft", "--level", "4.5",
+                           "--table-step", "0.5", "--table-from", "4", "--table-to", "6",
+                           "--out", str(tmp_path / "s"))
+    assert code == 0
+    assert "Shielded low ground: 0.07 acres (3,229 ft²)" in out
+    assert "Flooded: 0.25 acres (10,764 ft²)" in out
+    assert " ha " not in out and "m³" not in out
+    header = [line for line in (tmp_path / "s" / "depressions_at_4.50ft.csv").read_text().splitlines()
+              if not line.startswith("#")][0].split(",")
+    assert {"area_ft2", "area_acres", "volume_acre_ft"} <= set(header)
+    table = [line for line in (tmp_path / "s" / "stage_table.csv").read_text().splitlines()
+             if not line.startswith("#")]
+    columns = table[0].split(",")
+    assert {"flooded_area_acres", "flooded_area_ft2", "shielded_area_acres", "flooded_volume_acre_ft"} <= set(columns)
+    row = dict(zip(columns, table[2].split(",")))  # the 4.5 ft row
+    assert float(row["level_ft"]) == 4.5
+    assert float(row["shielded_area_acres"]) == pytest.approx(300 / 4046.8564224)
+    assert float(row["shielded_area_ft2"]) == pytest.approx(300 / 0.3048**2)
 
 
 # --------------------------------------------------------------------------- errors

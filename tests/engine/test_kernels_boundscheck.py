@@ -5,7 +5,7 @@ offsets; with bounds checks off (numba's default) a stray index would corrupt
 memory silently. A fresh interpreter with NUMBA_BOUNDSCHECK=1 and an empty
 cache compiles every kernel with checks and runs the engine, the stage
 analysis, the hierarchy and the tiled engine (with its hierarchy) on DEMs that exercise tiles, nodata, ties and both
-connectivities; an out-of-range index raises IndexError there.
+connectivities, and culverts across tiles; an out-of-range index raises IndexError there.
 """
 
 from __future__ import annotations
@@ -46,6 +46,20 @@ SCRIPT = textwrap.dedent(
         water_level_map(r, 2.5)
         stage_table(ArraySource(dem_from_array(z), r), np.arange(0, 6, 0.5))
         depression_hierarchy(r)
+
+    # Culverts and a flap valve across tiles of a few cells, and routes through them.
+    from sillmark.engine.culverts import culvert_edges
+    z = rng.integers(0, 6, (11, 13)).astype(np.float32)
+    z[3:8, 4:9] = 9.0
+    z[5, 6] = 0.0
+    edge = np.zeros(z.shape, bool)
+    edge[0, :] = edge[-1, :] = edge[:, 0] = edge[:, -1] = True
+    pipes = culvert_edges(z.shape, [5, 1, 9], [6, 1, 2], [0, 9, 2], [6, 11, 10],
+                          [1.0, 3.0, 2.0], [False, True, False], elevation=z)
+    for tile in (3, 64):
+        r = priority_flood(z, edge, culverts=pipes, tile_size=tile)
+        for rr, cc in zip(*np.nonzero(~np.isnan(r.onset_stage))):
+            r.route(int(rr), int(cc))
 
     # The out-of-core engine's own kernels, tiles of a few cells, in this process.
     import tempfile

@@ -88,7 +88,7 @@ def test_a_wrong_step_is_caught_by_the_textbook(site, monkeypatch):
 
     real = pipeline.solve_seeds
 
-    def off_by_one(plan, floods, dirs):
+    def off_by_one(plan, floods, dirs, culverts=None):
         return [dataclasses.replace(s, lam=np.where(np.isfinite(s.lam), s.lam + 1, s.lam)
                                     .astype(np.float32)) for s in real(plan, floods, dirs)]
 

@@ -230,29 +230,41 @@ def test_fill_depth_sld_leaves_ground_outside_depressions_clear():
 
 def test_vector_slds_use_the_apps_symbols():
     app = render.legend("m", "m")
+    symbols = app["symbols"]  # what the page's scripts draw the markers with
+
+    def mark_of(node):
+        mark = node.find(f".//{SLD}Mark")
+        fill = {c.get("name"): c.text for c in mark.find(f"{SLD}Fill")}
+        stroke = {c.get("name"): c.text for c in mark.find(f"{SLD}Stroke")}
+        graphic = node.find(f".//{SLD}Graphic")
+        return (mark.findtext(f"{SLD}WellKnownName"), fill["fill"], stroke["stroke"],
+                float(graphic.findtext(f"{SLD}Size")), graphic.findtext(f"{SLD}Rotation"))
+
     spill = check_sld(styles.layer_style("spill_points.geojson", "m"))
-    mark = spill.find(f".//{SLD}Mark")
-    assert mark.findtext(f"{SLD}WellKnownName") == "circle"
-    fill = {c.get("name"): c.text for c in mark.find(f"{SLD}Fill")}
-    stroke = {c.get("name"): c.text for c in mark.find(f"{SLD}Stroke")}
-    assert fill["fill"] == app["symbols"]["spill_point"]["fill"]
-    assert stroke["stroke"] == app["symbols"]["spill_point"]["stroke"]
-    assert float(spill.findtext(f".//{SLD}Size")) == 2 * app["symbols"]["spill_point"]["radius"]
+    assert mark_of(spill) == ("triangle", symbols["spill"]["fill"], symbols["spill"]["stroke"],
+                              symbols["spill"]["size"], None)
 
     shielded = check_sld(styles.layer_style("shielded_47.60m.geojson", "m"))
     fill = {c.get("name"): c.text for c in shielded.find(f".//{SLD}Fill")}
     assert fill["fill"] == app["shielded"]["wash"]
 
-    assets = check_sld(styles.layer_style("assets_47.60m.geojson", "m"))
+    assets = check_sld(styles.layer_style("assets_47.60m.gpkg", "m"))
     rules = list(assets.iter(f"{SLD}Rule"))
     assert len(rules) == 5  # three asset states, the route, the controlling sill
-    states = {}
+    shapes = {"disc": "circle", "square": "square", "ring": "circle"}
+    states = set()
     for rule in rules[:3]:
         literals = [lit.text for lit in rule.iter(f"{OGC}Literal")]
         assert literals[0] == "asset" and rule.find(f".//{OGC}And") is not None
-        states[literals[1]] = {c.get("name"): c.text for c in rule.find(f".//{SLD}Mark/{SLD}Fill")}["fill"]
-    assert states == app["symbols"]["asset"]["fill_by_state"]
-    assert set(states) == {STATE_FLOODED, STATE_SHIELDED, STATE_DRY}  # the values the files hold
+        want = symbols[f"asset-{literals[1]}"]
+        assert mark_of(rule) == (shapes[want["shape"]], want["fill"], want["stroke"], want["size"], None)
+        states.add(literals[1])
+    assert states == {STATE_FLOODED, STATE_SHIELDED, STATE_DRY}  # the values the files hold
+    # The controlling sill: the app's diamond, a square turned 45° that keeps its width.
+    name, fill, stroke, size, turn = mark_of(rules[4])
+    assert (name, fill, stroke, turn) == ("square", symbols["sill"]["fill"],
+                                          symbols["sill"]["stroke"], "45")
+    assert size * 2 ** 0.5 == pytest.approx(symbols["sill"]["size"], abs=1e-3)  # 6 digits written
 
 
 def test_files_that_are_no_map_layer_get_no_style():

@@ -137,7 +137,10 @@ def test_raising_the_lower_gap_by_more_than_the_difference_hands_control_to_the_
     assert not w.raised_cell_controls and not w.own_sill
     assert GAP_B in [tuple(c) for c in w.route_after]
     assert GAP_A not in [tuple(c) for c in w.route_after]
-    assert "row 2, col 5" in w.explanation and "now controls" in w.explanation
+    # The explanation names gap B by its coordinates (cell centre), never by row and column.
+    gx, gy = dem.xy(*GAP_B)
+    assert f"x {gx:.1f} m, y {gy:.1f} m" in w.explanation and "now controls" in w.explanation
+    assert "row" not in w.explanation
     # The recomputed flood is the whole site: the basin fills to 6 m everywhere.
     assert np.all(w.result.onset_stage[3:, :] == 6)
 
@@ -591,13 +594,13 @@ def bowl_table():
     return assess_assets(assets, dem, result, 2.0)
 
 
-def test_csv_export_has_caution_level_and_units(tmp_path, bowl_table):
+def test_csv_export_starts_with_its_header_and_carries_units(tmp_path, bowl_table):
+    # The caution and the level live in the folder's README.txt; the CSV opens
+    # in any reader with its header on the first line.
     path = write_assets_csv(bowl_table, tmp_path / "assets.csv")
     comments, rows = read_csv(path)
-    text = "\n".join(comments)
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
-    assert "# water level: 2 m (metre)" in comments and "# vertical unit: m (metre)" in comments
-    assert "EPSG:32633" in text
+    assert comments == []
+    assert path.read_text(encoding="utf-8").splitlines()[0].startswith("name,kind,status,state")
     pump, far, rim = rows
     assert pump["name"] == "pump" and pump["kind"] == "pumping_station"
     assert pump["state"] == "shielded" and pump["onset_stage_m"] == "3"
@@ -689,6 +692,11 @@ def test_straight_runs_of_a_route_become_one_segment(tmp_path):
     fc = json.loads(write_assets_geojson(table, tmp_path / "r.geojson").read_text(encoding="utf-8"))
     assert len(fc["features"][1]["geometry"]["coordinates"]) == 2
     assert fc["features"][1]["properties"]["route_cells"] == 10
+    # Ten cells in a straight line: nine side steps of one cell (1 m here) = 9 m
+    # on the ground, in the asset's row and on its route feature.
+    cell = dem.cell_size[1]
+    assert fc["features"][0]["properties"]["route_length_m"] == pytest.approx(9 * cell)
+    assert fc["features"][1]["properties"]["route_length_m"] == pytest.approx(9 * cell)
 
 
 def test_a_failed_write_keeps_the_old_file(tmp_path, bowl_table):

@@ -54,10 +54,10 @@ def test_metadata_is_sqlite_in_wal_mode(fresh):
 
 def pages(site_id: int) -> list[str]:
     return ["/", "/sites/new", f"/sites/{site_id}", f"/sites/{site_id}/settings",
-            f"/sites/{site_id}/print?level=10.5"]
+            f"/sites/{site_id}/print?level=10.5", "/method"]
 
 
-@pytest.mark.parametrize("which", range(5))
+@pytest.mark.parametrize("which", range(6))
 def test_every_page_carries_the_caution_and_only_local_resources(ready, which):
     _, client, site_id = ready
     url = pages(site_id)[which]

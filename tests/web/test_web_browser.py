@@ -187,7 +187,9 @@ def test_print_page_renders_with_legend_and_caution(page, server):
     origin, _ = server
     page.goto(origin + "/sites/1/print?level=47.5")
     page.wait_for_load_state("networkidle")
-    assert SCREENING_CAUTION in page.locator(".sheet-caution").inner_text()
+    cautions = page.locator(".sheet-caution")
+    assert cautions.count() == 2  # on the map page and on the report page
+    assert all(SCREENING_CAUTION in cautions.nth(k).inner_text() for k in range(2))
     assert page.locator(".leaflet-control-scale-line").count() >= 1
     assert page.locator("#legend .legend-grid li").count() == 9
     assert "ha" in page.locator("#pf-flooded-area").inner_text()

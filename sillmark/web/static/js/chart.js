@@ -2,6 +2,11 @@
 (function () {
   "use strict";
 
+  // Text metrics of the chart, in CSS pixels: one line of 11 px text, the band
+  // of a rotated axis title, and the gaps around tick labels.
+  var FONT = "11px system-ui, -apple-system, 'Segoe UI', sans-serif";
+  var LINE = 12, TITLE_BAND = 14, GAP = 4, TICK_GAP = 5;
+
   function niceTicks(lo, hi, count) {
     if (!(hi > lo)) { hi = lo + 1; }
     var raw = (hi - lo) / Math.max(count, 1);
@@ -31,6 +36,7 @@
     this.canvas = canvas;
     this.options = options;
     this.marker = options.marker;
+    canvas.sillmarkChart = this;  // the page (and its tests) can read the chart's layout
     var self = this;
     if (options.onPick) {
       canvas.style.cursor = "crosshair";
@@ -81,17 +87,26 @@
     });
     if (!(lmax > 0)) { lmax = 1; }
     if (!(rmax > 0)) { rmax = 1; }
-    var left = 44, right = o.right ? 46 : 12, top = 10, bottom = 30;
+    g.font = FONT;
+    var lt = niceTicks(0, lmax, 4), rt = niceTicks(0, rmax, 4);
+    // Margins from the widest tick label, so no label reaches an axis title.
+    var widest = function (ticks) {
+      return ticks.reduce(function (w, v) { return Math.max(w, g.measureText(shortNumber(v)).width); }, 0);
+    };
+    var lw = widest(lt), rw = o.right ? widest(rt) : 0;
+    var left = TITLE_BAND + GAP + lw + TICK_GAP;
+    var right = o.right ? TITLE_BAND + GAP + rw + TICK_GAP : 12;
+    var top = 10, bottom = TICK_GAP + LINE + GAP + LINE + 2;
     var x0 = left, x1 = cssW - right, y0 = cssH - bottom, y1 = top;
     this.frame = { x0: x0, x1: x1, xmin: xmin, xmax: xmax };
-    var lt = niceTicks(0, lmax, 4), rt = niceTicks(0, rmax, 4);
+    var boxes = { leftTicks: [], rightTicks: [], xTicks: [], titles: [] };
+    this.boxes = boxes;
     var ltop = lt[lt.length - 1] >= lmax ? lt[lt.length - 1] : lmax;
     var rtop = rt[rt.length - 1] >= rmax ? rt[rt.length - 1] : rmax;
     function X(v) { return x0 + (v - xmin) / (xmax - xmin || 1) * (x1 - x0); }
     function YL(v) { return y0 - v / ltop * (y0 - y1); }
     function YR(v) { return y0 - v / rtop * (y0 - y1); }
 
-    g.font = "11px system-ui, -apple-system, 'Segoe UI', sans-serif";
     g.lineWidth = 1;
     g.strokeStyle = "#e4e9eb";
     g.fillStyle = "#5b6a72";
@@ -99,30 +114,45 @@
     lt.forEach(function (v) {
       var y = Math.round(YL(v)) + 0.5;
       g.beginPath(); g.moveTo(x0, y); g.lineTo(x1, y); g.stroke();
-      g.fillText(shortNumber(v), x0 - 5, y);
+      var text = shortNumber(v), w = g.measureText(text).width;
+      g.fillText(text, x0 - TICK_GAP, y);
+      boxes.leftTicks.push([x0 - TICK_GAP - w, y - LINE / 2, w, LINE]);
     });
     if (o.right) {
       g.textAlign = "left";
-      rt.forEach(function (v) { g.fillText(shortNumber(v), x1 + 5, YR(v)); });
+      rt.forEach(function (v) {
+        var text = shortNumber(v), w = g.measureText(text).width, y = YR(v);
+        g.fillText(text, x1 + TICK_GAP, y);
+        boxes.rightTicks.push([x1 + TICK_GAP, y - LINE / 2, w, LINE]);
+      });
     }
     g.textAlign = "center"; g.textBaseline = "top";
     niceTicks(xmin, xmax, 5).forEach(function (v) {
       var x = Math.round(X(v)) + 0.5;
       g.strokeStyle = "#c9d1d4";
       g.beginPath(); g.moveTo(x, y0); g.lineTo(x, y0 + 4); g.stroke();
-      g.fillText(v.toFixed(Math.abs(xmax - xmin) < 5 ? 1 : 0), x, y0 + 6);
+      var text = v.toFixed(Math.abs(xmax - xmin) < 5 ? 1 : 0), w = g.measureText(text).width;
+      g.fillText(text, x, y0 + TICK_GAP);
+      boxes.xTicks.push([x - w / 2, y0 + TICK_GAP, w, LINE]);
     });
     g.fillStyle = "#34444d";
-    g.fillText(o.xLabel, (x0 + x1) / 2, y0 + 17);
+    var titleY = y0 + TICK_GAP + LINE + GAP, xw = g.measureText(o.xLabel).width;
+    g.fillText(o.xLabel, (x0 + x1) / 2, titleY);
+    boxes.titles.push([(x0 + x1) / 2 - xw / 2, titleY, xw, LINE]);
+    // Rotated axis titles, centred in their bands at the outer edges.
+    var mid = (y0 + y1) / 2, lw2 = g.measureText(o.left.label).width;
     g.save();
-    g.translate(11, (y0 + y1) / 2); g.rotate(-Math.PI / 2); g.textBaseline = "middle";
+    g.translate(TITLE_BAND / 2, mid); g.rotate(-Math.PI / 2); g.textBaseline = "middle";
     g.fillText(o.left.label, 0, 0);
     g.restore();
+    boxes.titles.push([TITLE_BAND / 2 - LINE / 2, mid - lw2 / 2, LINE, lw2]);
     if (o.right) {
+      var rw2 = g.measureText(o.right.label).width;
       g.save();
-      g.translate(cssW - 8, (y0 + y1) / 2); g.rotate(Math.PI / 2); g.textBaseline = "middle";
+      g.translate(cssW - TITLE_BAND / 2, mid); g.rotate(Math.PI / 2); g.textBaseline = "middle";
       g.fillText(o.right.label, 0, 0);
       g.restore();
+      boxes.titles.push([cssW - TITLE_BAND / 2 - LINE / 2, mid - rw2 / 2, LINE, rw2]);
     }
     g.strokeStyle = "#9aa7ad";
     g.beginPath(); g.moveTo(x0, y1); g.lineTo(x0, y0 + 0.5); g.lineTo(x1, y0 + 0.5); g.stroke();

@@ -12,6 +12,8 @@
   };
   var unit = config.unit_symbol;
   var datum = config.datum || "";
+  /* Area and volume units of the site (sillmark.units.area_units): m², ha, m³ or ft², acres, acre-ft. */
+  var areas = config.areas;
   /* Levels (not depths) carry the vertical datum. */
   var at = function (v) { return S.levelAt(v, unit, datum); };
   var base = "/api/sites/" + config.site_id;
@@ -42,7 +44,10 @@
       S.show($("level-error"), "Give the level as a number in " + unit + ".");
       return;
     }
+    if (v < range.min || v > range.max) { refuseLevel(v); return; }
     S.show($("level-error"), "");
+    number.classList.remove("refused");
+    delete document.body.dataset.levelRefused;
     level = v;
     if (source !== "number") { number.value = levelText(v); }
     if (source !== "slider") { slider.value = String(Math.min(Math.max(v, range.min), range.max)); }
@@ -57,6 +62,35 @@
     restyleDepressions();
     renderDepressionTable();
     renderFiles();
+  }
+
+  /* A level outside the offered range (lowest outlet to highest ground): clear the
+   * figures and the water layer, keep the last valid level, and say so. */
+  function refuseLevel(v) {
+    ["water", "figures", "assets"].forEach(function (name) { clearTimeout(timers[name]); });
+    waterSeq++; figureSeq++;
+    groups.water.clearLayers();
+    waterFront = 0;
+    clearFigures();
+    number.classList.add("refused");
+    delete document.body.dataset.waterLevel;
+    delete document.body.dataset.figuresLevel;
+    document.body.dataset.levelRefused = String(v);
+    var where = v < range.min
+      ? "below the lowest outlet (" + S.level(range.min, unit) + "): no water stands there"
+      : "above the highest ground (" + S.level(range.max, unit) + "): the whole site is under water";
+    S.show($("level-error"), S.level(v, unit) + " is " + where + ". Give a level from " +
+      S.level(range.min, unit) + " to " + S.level(range.max, unit) + ". The level stays at " + at(level) +
+      "; its figures and water layer are cleared until you give one in range.");
+  }
+
+  function clearFigures() {
+    ["fig-flooded-area", "fig-flooded-volume", "fig-shielded-area", "fig-assets"].forEach(function (id) {
+      $(id).textContent = "–";
+    });
+    ["fig-flooded-area-m2", "fig-flooded-volume-alt", "fig-shielded-volume", "fig-assets-sub", "fig-depressions"]
+      .forEach(function (id) { $(id).textContent = ""; });
+    delete $("fig-flooded-area").dataset.m2;
   }
 
   slider.addEventListener("input", function () { setLevel(parseFloat(slider.value), "slider"); });
@@ -99,14 +133,7 @@
     var seq = ++figureSeq;
     S.getJSON(base + "/stage?level=" + encodeURIComponent(levelText(v))).then(function (f) {
       if (seq !== figureSeq) { return; }
-      $("fig-flooded-area").textContent = S.fixed(f.flooded_area_ha, 2) + "\u202fha";
-      $("fig-flooded-area").dataset.m2 = String(f.flooded_area_m2);
-      $("fig-flooded-area-m2").textContent = S.fixed(f.flooded_area_m2, 0) + "\u202fm²";
-      $("fig-flooded-volume").textContent = S.volume(f.flooded_volume_m3);
-      $("fig-flooded-volume-alt").textContent = f.flooded_volume_acre_ft !== undefined
-        ? S.fixed(f.flooded_volume_acre_ft, 1) + "\u202facre-ft" : "above the ground, reached from the outlets";
-      $("fig-shielded-area").textContent = S.fixed(f.shielded_area_ha, 2) + "\u202fha";
-      $("fig-shielded-volume").textContent = "would hold " + S.volume(f.shielded_volume_m3);
+      showAreaFigures(f);
       if (f.assets) {
         $("fig-assets").textContent = f.assets.flooded + " of " + f.assets.total;
         $("fig-assets-sub").textContent = f.assets.shielded + " shielded · " + f.assets.dry + " dry" +
@@ -124,19 +151,31 @@
     });
   }
 
+  /* The panel's areas and volumes, in the site's own units. */
+  function showAreaFigures(f) {
+    $("fig-flooded-area").textContent = S.areaLarge(f.flooded_area_m2, areas);
+    $("fig-flooded-area").dataset.m2 = String(f.flooded_area_m2);
+    $("fig-flooded-area-m2").textContent = S.fixed(f.flooded_area_m2 / areas.small_area_m2, 0) + "\u202f" + areas.small_area;
+    $("fig-flooded-volume").textContent = S.volume(f.flooded_volume_m3, areas);
+    $("fig-flooded-volume-alt").textContent = "above the ground, reached from the outlets";
+    $("fig-shielded-area").textContent = S.areaLarge(f.shielded_area_m2, areas);
+    $("fig-shielded-volume").textContent = "would hold " + S.volume(f.shielded_volume_m3, areas);
+  }
+
   // ------------------------------------------------------------------ stage chart
 
   var chart = null;
   S.getJSON(base + "/stage_table").then(function (t) {
-    var ha = function (a) { return a.map(function (v) { return v / 1e4; }); };
+    var large = function (a) { return a.map(function (v) { return S.inLargeArea(v, areas); }); };
+    var vol = function (a) { return a.map(function (v) { return S.inVolume(v, areas); }); };
     chart = new window.SillmarkChart.LineChart($("stage-chart"), {
       xLabel: "outlet water level (" + unit + (datum ? " above " + datum : ", datum not stated") + ")",
-      left: { label: "area (ha)" },
-      right: { label: "volume (m³)" },
+      left: { label: "area (" + areas.large_area + ")" },
+      right: { label: "volume (" + areas.volume + ")" },
       series: [
-        { x: t.level, y: ha(t.shielded_area_m2), axis: "left", colour: "#c97614", dash: [5, 3], width: 1.6 },
-        { x: t.level, y: ha(t.flooded_area_m2), axis: "left", colour: "#2f6fa3", width: 2.2 },
-        { x: t.level, y: t.flooded_volume_m3, axis: "right", colour: "#4a3a8c", width: 1.6, dash: [1, 0] },
+        { x: t.level, y: large(t.shielded_area_m2), axis: "left", colour: "#c97614", dash: [5, 3], width: 1.6 },
+        { x: t.level, y: large(t.flooded_area_m2), axis: "left", colour: "#2f6fa3", width: 2.2 },
+        { x: t.level, y: vol(t.flooded_volume_m3), axis: "right", colour: "#4a3a8c", width: 1.6, dash: [1, 0] },
       ],
       marker: level,
       onPick: function (x) { setLevel(Math.round(x / range.step) * range.step, "chart"); },
@@ -200,8 +239,8 @@
         S.el("td", { text: String(d.id) }),
         S.el("td", { text: S.fixed(d.spill_elevation, 2) }),
         S.el("td", { text: S.fixed(d.max_depth, 2) }),
-        S.el("td", { text: S.fixed(d.area_ha, 2) }),
-        S.el("td", { text: S.fixed(d.volume_m3, 0) }),
+        S.el("td", { text: S.fixed(S.inLargeArea(d.area_m2, areas), 2) }),
+        S.el("td", { text: S.fixed(S.inVolume(d.volume_m3, areas), areas.volume_m3 === 1 ? 0 : 2) }),
         S.el("td", {}, [S.el("span", { class: "state state-" + d.state.replace(" ", "-"), text: d.state })]),
       ]);
       if (selectedDepression === d.id) { tr.classList.add("selected"); }
@@ -232,8 +271,8 @@
       ["Lowest ground", at(d.pit_elevation)],
       ["Spill elevation", at(d.spill_elevation)],
       ["Deepest water when full", S.level(d.max_depth, unit).replace(/^/, "")],
-      ["Area when full", S.area(d.area_m2)],
-      ["Storage when full", S.volume(d.volume_m3) + (d.volume_acre_ft !== undefined ? " (" + S.fixed(d.volume_acre_ft, 1) + " acre-ft)" : "")],
+      ["Area when full", S.areaLarge(d.area_m2, areas)],
+      ["Storage when full", S.volume(d.volume_m3, areas)],
       ["Spills into", d.spills_to ? "depression " + d.spills_to : "an outlet"],
       ["At " + S.level(level, unit), st + (st !== "overtopped" ? ", " + S.level(d.spill_elevation - level, unit) + " to spare" : "")],
     ];
@@ -267,16 +306,16 @@
     $("depression-detail-title").textContent = "Depression " + id;
     $("depression-detail-text").textContent = "Pit " + S.level(d.pit_elevation, unit) + ", spills at " +
       S.level(d.spill_elevation, unit) + " into " + (d.spills_to ? "depression " + d.spills_to : "an outlet") +
-      "; holds " + S.volume(d.volume_m3) + " over " + S.area(d.area_m2) + " when full.";
+      "; holds " + S.volume(d.volume_m3, areas) + " over " + S.areaLarge(d.area_m2, areas) + " when full.";
     $("depression-curve-note").textContent = "Loading its stage–storage curve…";
     S.getJSON(base + "/depressions/" + id + "/curve").then(function (c) {
       if (selectedDepression !== id) { return; }
       new window.SillmarkChart.LineChart($("depression-chart"), {
         xLabel: "water level in the depression (" + unit + ")",
-        left: { label: "storage (m³)" }, right: { label: "area (m²)" },
+        left: { label: "storage (" + areas.volume + ")" }, right: { label: "area (" + areas.large_area + ")" },
         series: [
-          { x: c.level, y: c.storage_m3, axis: "left", colour: "#4a3a8c", width: 2 },
-          { x: c.level, y: c.area_m2, axis: "right", colour: "#2f6fa3", width: 1.4, dash: [4, 3] },
+          { x: c.level, y: c.storage_m3.map(function (v) { return S.inVolume(v, areas); }), axis: "left", colour: "#4a3a8c", width: 2 },
+          { x: c.level, y: c.area_m2.map(function (v) { return S.inLargeArea(v, areas); }), axis: "right", colour: "#2f6fa3", width: 1.4, dash: [4, 3] },
         ],
         marker: level,
       });
@@ -302,11 +341,7 @@
     }).addTo(groups.depressions);
     depressions.forEach(function (d) {
       if (d.spill_lat === null) { return; }
-      var sym = config.legend.symbols.spill_point;  // shared with the SLD styles of the files
-      var m = L.circleMarker([d.spill_lat, d.spill_lon], {
-        radius: sym.radius, color: sym.stroke, weight: sym.weight, fillColor: sym.fill, fillOpacity: 1,
-        className: "spill-point",
-      });
+      var m = S.symbolMarker([d.spill_lat, d.spill_lon], "spill", { className: "spill-point" });
       m.bindTooltip("spill " + at(d.spill_elevation), { direction: "top", offset: [0, -4] });
       m.bindPopup(function () { return depressionPopup(d); }, { maxWidth: 320 });
       m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectDepression(d.id, false); m.openPopup(); });
@@ -356,8 +391,6 @@
     });
   }
 
-  var STATE_FILL = config.legend.symbols.asset.fill_by_state;  // shared with the SLD styles
-
   function loadAssets(v) {
     var seq = ++assetSeq;
     return S.getJSON(base + "/assets?level=" + encodeURIComponent(levelText(v))).then(function (res) {
@@ -370,10 +403,7 @@
       assetMarkers = {};
       assets.forEach(function (a) {
         if (a.lat === null || a.lon === null) { return; }
-        var m = L.circleMarker([a.lat, a.lon], {
-          radius: 7, color: "#ffffff", weight: 2, fillColor: STATE_FILL[a.state] || "#8a8f93", fillOpacity: 1,
-          className: "asset-marker",
-        });
+        var m = S.symbolMarker([a.lat, a.lon], "asset-" + (a.state || "none"), { className: "asset-marker" });
         m.bindTooltip(a.name, { direction: "top", offset: [0, -6] });
         m.bindPopup(function () { return assetPopup(a); }, { maxWidth: 320 });
         m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectAsset(a.index, false); m.openPopup(); });
@@ -459,10 +489,36 @@
   // ------------------------------------------------------------------ click: the route to a point
 
   function addSill(s, text) {
-    L.circleMarker([s.lat, s.lon], {
-      radius: 8, color: "#3b1f00", weight: 2, fillColor: "#ff8c1a", fillOpacity: 1, className: "sill-marker",
-    }).bindTooltip(text, { permanent: true, direction: "right", offset: [8, 0], className: "sill-label" })
+    S.symbolMarker([s.lat, s.lon], "sill", { className: "sill-marker" })
+      .bindTooltip(text, { permanent: true, direction: "right", offset: [10, 0], className: "sill-label" })
       .addTo(groups.route);
+  }
+
+  var routeSeq = 0;
+
+  /* Remove the previous click's route and sill at once, so nothing stale shows while the next loads. */
+  function clearRoute() {
+    groups.route.clearLayers();
+    delete document.body.dataset.routeCells;
+    delete document.body.dataset.routeLength;
+    document.body.dataset.routeState = "loading";
+  }
+
+  /* The route as people read it: its length on the ground and where it starts. */
+  function routeText(c) {
+    var from = c.reaches_outlet ? "an outlet" : "the edge of the data";
+    if (c.route_cells <= 1) { return "the point is itself where the water is set"; }
+    return S.length(c.route_length, c.route_length_unit) + " along the ground from " + from;
+  }
+
+  /* Where the point is: coordinates in the DEM's CRS, then WGS 84. */
+  function positionRows(c) {
+    var sep = c.xy_unit === "°" ? "" : "\u202f";
+    return [
+      ["Position, " + c.crs, "x " + c.x.toFixed(c.xy_decimals) + sep + c.xy_unit + ", y " +
+        c.y.toFixed(c.xy_decimals) + sep + c.xy_unit],
+      ["Longitude, latitude (WGS 84)", S.fixed(c.lon, 6) + "°, " + S.fixed(c.lat, 6) + "°"],
+    ];
   }
 
   map.on("click", function (ev) {
@@ -470,8 +526,11 @@
     var ll = ev.latlng.wrap();
     var url = base + "/cell?lon=" + ll.lng.toFixed(8) + "&lat=" + ll.lat.toFixed(8) +
       "&level=" + encodeURIComponent(levelText(level));
+    var seq = ++routeSeq;
+    clearRoute();
     var popup = L.popup({ maxWidth: 340 }).setLatLng(ev.latlng).setContent("Tracing the route…").openOn(map);
     S.getJSON(url).then(function (c) {
+      if (seq !== routeSeq) { return; }  // a later click is loading its own route
       groups.route.clearLayers();
       if (c.route.coordinates.length > 1) {
         L.geoJSON(c.route, { style: { color: "#14232c", weight: 3.5, opacity: 0.9, className: "route-line" } }).addTo(groups.route);
@@ -487,12 +546,17 @@
           : c.state === "shielded" ? "shielded: " + S.level(c.depth_if_reached, unit) + " below the level, no path yet"
             : "dry, " + S.level(c.freeboard, unit) + " to spare"],
         ["Controlling sill", c.sill.is_own_cell ? "the point itself" : at(c.sill.elevation)],
-        ["Route", c.route_cells + " cells from " + (c.reaches_outlet ? "an outlet" : "the edge of the data")],
+        ["Route", routeText(c)],
         ["In depression", c.depression_id ? String(c.depression_id) : "none"],
       ];
+      rows.push.apply(rows, positionRows(c));
       popup.setContent(popupTable("This point", rows));
       document.body.dataset.routeCells = String(c.route_cells);
+      document.body.dataset.routeLength = String(c.route_length);
+      document.body.dataset.routeState = "shown";
     }).catch(function (err) {
+      if (seq !== routeSeq) { return; }
+      document.body.dataset.routeState = "failed";
       popup.setContent('<div class="popup"><p>' + escapeHtml(err.message) + "</p></div>");
     });
   });
@@ -532,7 +596,19 @@
     t.addEventListener("click", function () { openTab(t.dataset.tab); });
   });
 
-  S.legend($("legend"), config.legend);
+  showLegend();
+
+  /* The legend: folded below the map on tablets and phones (common.js). Leaflet is
+   * told when the map's box changes, so no grey band is left where tiles belong. */
+  function showLegend() {
+    S.legend($("legend"), config.legend);
+    if (window.matchMedia) {
+      var narrow = window.matchMedia("(max-width: 1024px)");
+      var resize = function () { map.invalidateSize(); };
+      if (narrow.addEventListener) { narrow.addEventListener("change", resize); }
+    }
+    $("legend").addEventListener("click", function () { setTimeout(function () { map.invalidateSize(); }, 0); });
+  }
 
   var strip = $("run-strip");
   function followRun() {
