@@ -22,13 +22,14 @@ from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import SEARCH_MAX, search_crs
 from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
+from sillmark.io.geotiff import tag_vertical_datum
 from sillmark.io.stage_files import (
     level_file_names,
     level_label,
     write_level,
     write_stage_table_csv,
 )
-from sillmark.io.geotiff import tag_vertical_datum
+from sillmark.io.styles import write_styles
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.source import ArraySource
 from sillmark.units import datum_phrase
@@ -304,6 +305,7 @@ def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
                         table = data.asset_table(key, placed, level)
                         write_assets_csv(table, tmp / f"assets_{label}.csv")
                         write_assets_geojson(table, tmp / f"assets_{label}.geojson")
+                        write_styles([tmp / f"assets_{label}.geojson"], data.unit)
 
                 cache.build(folder, write, what=f"the exports at {label}")
     return folder, names
