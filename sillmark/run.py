@@ -77,11 +77,13 @@ from sillmark.io.reach_files import (
 )
 from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
-from sillmark.io.summary import FILE_NAMES, write_table_summary
+from sillmark.io.styles import write_styles
+from sillmark.io.summary import FILE_NAMES, RUN_FOLDER_PREFIX, write_table_summary
 from sillmark.io.vector_layers import vector_suffix
 from sillmark.products.cutoff import cutoff_stage
 from sillmark.products.profile import ProfileTiles, offset_flood
 from sillmark.products.significance import SiteMinimum
+from sillmark.units import unit_of
 
 __all__ = ["STORES", "TILED_FILE_NAMES", "TILED_TILE_SIZE", "Analysis", "analyse"]
 
@@ -102,7 +104,7 @@ TILED_FILE_NAMES = (
     "spill_points.geojson",
     "summary.json",
 )
-_TEMPORARY_PREFIX = ".sillmark-run-"
+_TEMPORARY_PREFIX = RUN_FOLDER_PREFIX
 _LAYER_FILES = dict(zip(RESULT_LAYERS, FILE_NAMES[:4]))
 
 #: ``progress(step, done, total)``: engine steps "flood", "graph", "finish",
@@ -314,6 +316,7 @@ def analyse(
                     run = _add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
                 run = _with_readme(run, temporary)
+            run = _add_styles(run)
             if run.edits is not None:  # after every writer of summary.json
                 add_to_summary(temporary / FILE_NAMES[-1], [],
                                edits=_edits_member(run.edits, run.edit_changes))
@@ -323,6 +326,15 @@ def analyse(
     finally:
         shutil.rmtree(temporary, ignore_errors=True)
     return dataclasses.replace(run, files=files)
+
+
+def _add_styles(run: Analysis) -> Analysis:
+    """An SLD style beside every raster and vector layer (:mod:`sillmark.io.styles`),
+    listed before ``summary.json`` so the summary still comes last."""
+    styles = write_styles(run.files, unit_of(run.grid))
+    summary = [p for p in run.files if p.name == FILE_NAMES[-1]]
+    others = [p for p in run.files if p.name != FILE_NAMES[-1]]
+    return dataclasses.replace(run, files=[*others, *styles, *summary])
 
 
 def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Path]:

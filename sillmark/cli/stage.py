@@ -285,12 +285,14 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
 
 def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress, *,
                         cutoff=None) -> list:
-    """Assess the assets at every written level and write their two files; return the tables."""
+    """Assess the assets at every written level and write their two files and the map style
+    of the GeoJSON; return the tables."""
     from sillmark.io.asset_files import (
         asset_file_names,
         write_assets_csv,
         write_assets_geojson,
     )
+    from sillmark.io.styles import write_styles
     from sillmark.products.assets import assess_assets
 
     tables = []
@@ -301,7 +303,8 @@ def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress, *
             progress(name, 0, 1)
             write(table, out_dir / name)
             progress(name, 1, 1)
-        tables.append((table, (out_dir / csv_name, out_dir / geojson_name)))
+        styles = write_styles([out_dir / geojson_name], dem.vertical_unit)
+        tables.append((table, (out_dir / csv_name, out_dir / geojson_name, *styles)))
     return tables
 
 

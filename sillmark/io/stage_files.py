@@ -13,15 +13,16 @@ writes, with ``{h}`` the :func:`level_label` of the level (``47.60m``,
 ``depressions_at_{h}.csv``      every depression with its state and freeboard at ``h``
 ==============================  ======================================================
 
-and :func:`write_stage_table_csv` writes ``stage_table.csv``, flooded and
+with an OGC SLD style beside each map layer (``depth_{h}.sld``, ...;
+:mod:`sillmark.io.styles`), and :func:`write_stage_table_csv` writes ``stage_table.csv``, flooded and
 shielded area and volume against level. :func:`write_stage_results` writes the
 lot for several levels into one folder.
 
 Every function takes a result source (:mod:`sillmark.products.source`): a result
 in memory, or a results folder on disk read block by block, with the same files.
 The files follow the conventions of :mod:`sillmark.io.geotiff`, :mod:`sillmark.io.csv_tables`
-and :mod:`sillmark.io.geojson`: GeoTIFFs tiled and
-compressed with the CRS kept, GeoJSON after RFC 7946, CSV with the header on
+and :mod:`sillmark.io.geojson`: Cloud-Optimized GeoTIFFs (tiled, with
+overviews, compressed) with the CRS kept, GeoJSON after RFC 7946, CSV with the header on
 the first line; every file carries :data:`sillmark.SCREENING_CAUTION` where its
 format has a place for it (the CSVs through the folder's ``README.txt``) and
 is written atomically (temporary name, then rename). The files hold nothing
@@ -44,7 +45,7 @@ import shapely
 from sillmark import SCREENING_CAUTION, units
 from sillmark.errors import InvalidParameter
 from sillmark.grid import crs
-from sillmark.io import csv_tables, geotiff, json_values, vector_layers
+from sillmark.io import csv_tables, geotiff, json_values, styles, vector_layers
 from sillmark.io import geojson as geojson_files
 from sillmark.io.geopackage import write_geopackage_layer
 from sillmark.products.outlines import DEFAULT_WINDOW, label_outlines
@@ -65,7 +66,7 @@ from sillmark.products.stage import (
     level_blocks,
     stage_table,
 )
-from sillmark.units import VerticalUnit
+from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.products.source import ResultSource
@@ -292,7 +293,7 @@ def _write_class_geojson(source: "ResultSource", level: float, totals: tuple[flo
                   "area_m2": [float(area)], "area_ha": [float(area) / 1e4],
                   "volume_m3": [float(volume)]}
     if unit.is_feet:
-        attributes["volume_acre_ft"] = [float(volume) / ACRE_FOOT_M3]
+        attributes["volume_acre_ft"] = [float(volume) / units.ACRE_FOOT_M3]
     shapes = [] if polygon is None else [polygon]
     if polygon is None:
         attributes = {k: v[:0] for k, v in attributes.items()}
@@ -413,7 +414,8 @@ def _outline_window(source: "ResultSource", window: int | None) -> int:
 def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
                 window: int | None = None, progress: geotiff.Progress | None = None,
                 vector_format: str = "geojson") -> LevelFiles:
-    """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`).
+    """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`),
+    and an SLD style beside each map layer (:mod:`sillmark.io.styles`).
 
     Parameters
     ----------
@@ -475,6 +477,9 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
     if not kind:  # depressions belong to one water level across the site
         paths += (step(names.depressions, lambda: write_depressions_at_csv(
             source, float(h), folder / names.depressions)),)
+    styled = [p for p in paths if styles.layer_kind(p.name) is not None]
+    paths += tuple(step(styles.style_path(p).name, lambda p=p: styles.write_style(p, unit))
+                   for p in styled)
     states, _ = depression_states(source, h)
     return LevelFiles(
         level=float(h), unit=unit, paths=paths,

@@ -27,6 +27,31 @@ if TYPE_CHECKING:  # pragma: no cover
     from sillmark.products.significance import Significance
 
 
+#: Prefix of the temporary folder a run writes into before its files are moved
+#: into the output folder (:func:`sillmark.run.analyse`); a summary written
+#: there describes the output folder, its parent.
+RUN_FOLDER_PREFIX = ".sillmark-run-"
+
+
+def dem_reference(dem_path, summary_path: str | os.PathLike) -> str | None:
+    """How ``summary.json`` names the DEM: its path relative to the results folder.
+
+    Never an absolute path, so a summary handed to someone else (or served by
+    the web app) does not show where the files sit on the machine that wrote
+    it; ``../dem.tif`` still finds the DEM from the folder. Where no relative
+    path exists (another drive), only the file name is kept. None without a DEM file.
+    """
+    if dem_path is None:
+        return None
+    folder = Path(os.path.abspath(summary_path)).parent
+    if folder.name.startswith(RUN_FOLDER_PREFIX):
+        folder = folder.parent
+    try:
+        return Path(os.path.relpath(os.path.abspath(dem_path), folder)).as_posix()
+    except ValueError:
+        return Path(dem_path).name
+
+
 #: File names :func:`write_results` writes, in the order it writes them.
 FILE_NAMES = (
     "onset_stage.tif",
@@ -44,9 +69,9 @@ FILE_NAMES = (
 
 
 def _summary(result: "SpillResult", dem: "DEM", outlets: "Outlets", files: list[str],
-             significance: dict | None = None) -> dict:
+             path: Path, significance: dict | None = None) -> dict:
     return _summary_payload(
-        result.depressions, dem, connectivity=result.connectivity,
+        path, result.depressions, dem, connectivity=result.connectivity,
         unreached_cells=result.unreached_cells,
         valid_cells=int(np.count_nonzero(~np.isnan(result.elevation))),
         outlet_sources=outlets.sources, outlet_count=outlets.count, files=files,
@@ -102,7 +127,7 @@ def significance_member(sig: "Significance", *, all_depressions: int, accuracy_s
     }
 
 
-def _summary_payload(table, dem: "DEM", *, connectivity: int, unreached_cells: int,
+def _summary_payload(path: Path, table, dem: "DEM", *, connectivity: int, unreached_cells: int,
                      valid_cells: int, outlet_sources, outlet_count: int, files: list[str],
                      engine: dict | None = None, significance: dict | None = None) -> dict:
     t = table
@@ -135,7 +160,7 @@ def _summary_payload(table, dem: "DEM", *, connectivity: int, unreached_cells: i
         "sillmark_version": __version__,
         "created_utc": datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "caution": SCREENING_CAUTION,
-        "dem": None if getattr(dem, "path", None) is None else str(dem.path),
+        "dem": dem_reference(getattr(dem, "path", None), path),
         "grid": {
             "rows": rows,
             "cols": cols,
@@ -178,7 +203,7 @@ def write_table_summary(
     if final.name not in names:
         names.append(final.name)
     return write_json(final, _summary_payload(
-        table, dem, connectivity=connectivity, unreached_cells=unreached_cells,
+        final, table, dem, connectivity=connectivity, unreached_cells=unreached_cells,
         valid_cells=valid_cells, outlet_sources=outlet_sources, outlet_count=outlet_count,
         files=names, engine=engine,
     ))
@@ -199,7 +224,7 @@ def write_summary(
     names = list(files or [])
     if final.name not in names:
         names.append(final.name)
-    return write_json(final, _summary(result, dem, outlets, names, significance))
+    return write_json(final, _summary(result, dem, outlets, names, final, significance))
 
 
 @dataclasses.dataclass(frozen=True)
@@ -219,14 +244,20 @@ class RunSummary:
     def dem_file(self, *, instead: str = "give the DEM file") -> str:
         """The DEM's path, checked to exist; InvalidParameter if it cannot be found from here.
 
-        ``instead`` ends the message with what the caller can do instead.
+        The summary names the DEM relative to its own folder
+        (:func:`dem_reference`); an older summary's path relative to where
+        the analysis ran is tried too. ``instead`` ends the message with what
+        the caller can do instead.
         """
         if not self.dem:
             raise InvalidParameter(f"{self.path} records no DEM file; {instead}")
+        beside = self.path.parent / self.dem
+        if os.path.isfile(beside):
+            return str(beside)
         if not os.path.isfile(self.dem):
             raise InvalidParameter(
-                f"the DEM recorded in {self.path} ({self.dem}) is not found from here; run "
-                f"from the folder 'sillmark analyse' ran in, or {instead}"
+                f"the DEM recorded in {self.path} ({self.dem}, from the results folder) is "
+                f"not found from here; move it back, or {instead}"
             )
         return self.dem
 

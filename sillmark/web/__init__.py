@@ -152,13 +152,15 @@ def create_app(test_config: dict | None = None) -> Flask:
         exports=ExportCache(data_dir, int(app.config["LEVEL_EXPORT_CACHE_BYTES"])),
     )
 
-    from sillmark.web import api, auth, pages, tiles, uploads
+    from sillmark.web import api, auth, pages, reach, site_admin, tiles, uploads
 
     auth.init_app(app)  # first: its check runs before every other hook
     app.register_blueprint(pages.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(tiles.bp)
     app.register_blueprint(uploads.bp)
+    app.register_blueprint(reach.bp)
+    app.register_blueprint(site_admin.bp)
     _install_handlers(app)
 
     runner.start()

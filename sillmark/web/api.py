@@ -22,13 +22,14 @@ from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import SEARCH_MAX, search_crs
 from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
+from sillmark.io.geotiff import tag_vertical_datum
 from sillmark.io.stage_files import (
     level_file_names,
     level_label,
     write_level,
     write_stage_table_csv,
 )
-from sillmark.io.geotiff import tag_vertical_datum
+from sillmark.io.styles import write_styles
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.source import ArraySource
 from sillmark.units import datum_phrase
@@ -38,6 +39,18 @@ from sillmark.web.site_data import parse_level
 from sillmark.web.sites import run_dict
 
 bp = Blueprint("api", __name__, url_prefix="/api")
+
+#: The response header that carries the caution with every file download: a CSV
+#: starts with its header row and has no place for it of its own.
+CAUTION_HEADER = "X-Sillmark-Caution"
+
+
+@bp.after_request
+def _caution_on_downloads(response):
+    """Every file sent as a download carries the screening caution in a header."""
+    if response.headers.get("Content-Disposition", "").startswith("attachment"):
+        response.headers[CAUTION_HEADER] = SCREENING_CAUTION
+    return response
 
 _export_locks: dict = {}
 _export_guard = threading.Lock()
@@ -287,6 +300,7 @@ def _level_folder(site_id: int, data, level) -> tuple[Path, object]:
                         table = data.asset_table(key, placed, level)
                         write_assets_csv(table, tmp / f"assets_{label}.csv")
                         write_assets_geojson(table, tmp / f"assets_{label}.geojson")
+                        write_styles([tmp / f"assets_{label}.geojson"], data.unit)
 
                 cache.build(folder, write, what=f"the exports at {label}")
     return folder, names

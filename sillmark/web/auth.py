@@ -309,6 +309,7 @@ def _signin_page(status: int = 200, message: str | None = None):
     response = current_app.make_response((render_template(
         "signin.html", message=message, next_url=_safe_next(request.values.get("next")),
         viewers=VIEWER in secrets_in(current_app.config), role=current_role() if enabled() else None,
+        open_access=not enabled(),
     ), status))
     response.headers["Cache-Control"] = "no-store"
     return response

@@ -202,6 +202,16 @@ class ExportCache:
             "the map and its figures still work: try the download again later, or ask the "
             "operator of this server to free some disk space")
 
+    def forget_under(self, folder: Path) -> None:
+        """Stop counting the cached folders inside ``folder``, which the caller removes whole.
+
+        (``pop`` forgets a folder without removing it; only eviction removes.)
+        """
+        prefix = str(Path(folder)) + os.sep
+        with self._lock:
+            for key in [k for k in self._folders if str(k).startswith(prefix)]:
+                self._folders.pop(key, None)
+
     @property
     def bytes_used(self) -> int:
         with self._lock:

@@ -11,7 +11,7 @@ from flask import Blueprint, current_app, render_template, request, url_for
 
 from sillmark.errors import InvalidParameter
 from sillmark.units import area_units, unit_words
-from sillmark.web import db, get_db, render, services
+from sillmark.web import db, get_db, reach_inputs, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.dem_description import UNIT_SOURCE_TEXT
 from sillmark.web.mapview import LEAFLET_VERSION, site_map
@@ -99,7 +99,8 @@ def site_settings(site_id: int):
 def _settings_page(described: dict, *, first_time: bool):
     return render_template("settings.html", site=described, first_time=first_time,
                            unit_source=UNIT_SOURCE_TEXT.get(described["dem"].get("vertical_unit_source"), ""),
-                           max_side_bytes=int(current_app.config["MAX_SIDE_FILE_BYTES"]))
+                           max_side_bytes=int(current_app.config["MAX_SIDE_FILE_BYTES"]),
+                           reach_files=reach_inputs.names(services().data_dir, described["id"]))
 
 
 @bp.get("/sites/<int:site_id>/print")

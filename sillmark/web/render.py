@@ -29,6 +29,19 @@ from dataclasses import dataclass
 import numpy as np
 import pyproj
 
+from sillmark.products.map_style import (  # the names below stay reachable as render.X
+    DEPTH_ALPHA,
+    DEPTH_BOUNDS_FT,  # noqa: F401
+    DEPTH_BOUNDS_M,  # noqa: F401
+    DEPTH_COLOURS,
+    SHIELDED_STRIPE,
+    SHIELDED_WASH,
+    TINT_STOPS,
+    depth_bounds,  # noqa: F401  (re-exported: render.depth_bounds)
+    depth_classes,
+    hex_colour,
+    point_symbols,
+)
 from sillmark.web.caches import LockedLRU
 
 TILE = 256
@@ -43,29 +56,9 @@ STYLE_REVISION = 1
 
 # --------------------------------------------------------------------------- palettes
 
-# Depth classes (upper bounds) in the site's vertical unit. Feet sites get
-# round numbers in feet rather than converted metre bounds.
-DEPTH_BOUNDS_M = (0.1, 0.25, 0.5, 1.0, 1.5, 2.0, 3.0, 5.0)
-DEPTH_BOUNDS_FT = (0.5, 1.0, 2.0, 3.0, 5.0, 7.0, 10.0, 15.0)
+# The depth classes, colours and symbols live in sillmark.products.map_style,
+# shared with the SLD styles written beside the result files.
 
-#: Sillmark's depth ramp ("tideline"): from a pale sea-glass for a film of
-#: water through slate teal to a deep ink violet for the deepest class. Nine
-#: colours for the eight bounds above (the last is open-ended).
-DEPTH_COLOURS = (
-    (214, 240, 236),
-    (170, 222, 222),
-    (120, 196, 207),
-    (78, 165, 194),
-    (58, 130, 178),
-    (60, 99, 160),
-    (66, 72, 138),
-    (64, 48, 112),
-    (46, 28, 80),
-)
-DEPTH_ALPHA = 200
-#: Shielded low ground: amber stripes on a faint amber wash.
-SHIELDED_STRIPE = (201, 118, 20, 235)
-SHIELDED_WASH = (240, 190, 110, 80)
 #: Stripe period and width in pixels (diagonal, screen-aligned).
 HATCH_PERIOD = 8
 HATCH_WIDTH = 3
@@ -77,11 +70,6 @@ W_WASH = 2
 W_DEPTH0 = 3
 
 
-def depth_bounds(unit_value: str) -> tuple[float, ...]:
-    """Upper bounds of the depth classes for a site in ``unit_value`` (m, ft, us-ft)."""
-    return DEPTH_BOUNDS_M if unit_value == "m" else DEPTH_BOUNDS_FT
-
-
 #: What shows through where a tile has no DEM cell (nodata): the map's own
 #: background (``.leaflet-container`` in static/css/sillmark.css).
 NODATA_BACKGROUND = "#e9ecea"
@@ -90,18 +78,10 @@ NODATA_BACKGROUND = "#e9ecea"
 def legend(unit_value: str, unit_symbol: str, *, ground: tuple | None = None) -> dict:
     """What the legend shows: depth classes with colours, the shielded style, the
     relief tint under the hillshade (with the site's lowest and highest ground,
-    ``ground``, when known) and the colour of the nodata gaps."""
-    bounds = depth_bounds(unit_value)
-    classes = []
-    lower = 0.0
-    for k, colour in enumerate(DEPTH_COLOURS):
-        upper = bounds[k] if k < len(bounds) else None
-        label = (f"{_fmt(lower)}–{_fmt(upper)} {unit_symbol}" if upper is not None
-                 else f"over {_fmt(lower)} {unit_symbol}")
-        classes.append({"label": label, "colour": "#%02x%02x%02x" % colour,
-                        "from": lower, "to": upper})
-        if upper is not None:
-            lower = upper
+    ``ground``, when known), the colour of the nodata gaps and the point symbols
+    (all from :mod:`sillmark.products.map_style`, shared with the SLD styles)."""
+    classes = [{"label": c.label(unit_symbol), "colour": c.hex, "from": c.lower, "to": c.upper}
+               for c in depth_classes(unit_value)]
     return {
         "unit": unit_value,
         "unit_symbol": unit_symbol,
@@ -109,20 +89,17 @@ def legend(unit_value: str, unit_symbol: str, *, ground: tuple | None = None) ->
         "depth_alpha": DEPTH_ALPHA / 255,
         "shielded": {
             "label": "Shielded low ground (below the level, no surface path yet)",
-            "stripe": "#%02x%02x%02x" % SHIELDED_STRIPE[:3],
-            "wash": "#%02x%02x%02x" % SHIELDED_WASH[:3],
+            "stripe": hex_colour(SHIELDED_STRIPE),
+            "wash": hex_colour(SHIELDED_WASH),
         },
         "relief": {
-            "stops": [[p, "#%02x%02x%02x" % c] for p, c in TINT_STOPS],
+            "stops": [[p, hex_colour(c)] for p, c in TINT_STOPS],
             "low": None if ground is None else ground[0],
             "high": None if ground is None else ground[1],
         },
         "nodata_colour": NODATA_BACKGROUND,
+        "symbols": point_symbols(),
     }
-
-
-def _fmt(v: float) -> str:
-    return f"{v:g}"
 
 
 def _water_palette() -> tuple[bytes, bytes]:
@@ -137,13 +114,6 @@ WATER_PLTE, WATER_TRNS = _water_palette()
 
 #: Classes of the elevation tint under the hillshade (site's lowest to highest ground).
 TINT_CLASSES = 64
-#: Sillmark's relief tint, low to high ground: sage, straw, sand, pale stone.
-TINT_STOPS = (
-    (0.00, (190, 210, 182)),
-    (0.30, (220, 222, 188)),
-    (0.62, (228, 210, 178)),
-    (1.00, (238, 231, 222)),
-)
 
 
 def _relief_lut() -> np.ndarray:

@@ -33,7 +33,7 @@ from sillmark.grid.outlets import build_outlets
 from sillmark.grid.raster_files import raster_outline
 from sillmark.io.geotiff import write_dem_copy
 from sillmark.units import VerticalUnit, clean_datum, datum_phrase, unit_words
-from sillmark.web import db, layout
+from sillmark.web import db, layout, reach_inputs
 from sillmark.web.dem_description import band_choices, crs_code, dem_choices, dem_info
 from sillmark.web.tiled_run import engine_settings
 
@@ -282,6 +282,7 @@ class Registry:
             "connectivity": conn_value,
             "max_cells": int(self.config["MAX_DEM_CELLS"]),
             **engine_settings(self.config),
+            **reach_inputs.run_settings(folder),
         }
         new_name = _site_name(name) if name and name.strip() else row["name"]
         with db.transaction(conn):
@@ -332,9 +333,15 @@ class Registry:
         river_rel = "outlets/" + layout.new_name(".geojson")
         assets_rel = "assets/" + layout.new_name(".csv")
         outlets = [{"kind": "edge"}, {"kind": "file", "file": river_rel, "name": "river.geojson"}]
+        # The lanes and the refuges, so that the demo's map shows the places that become islands.
+        reach = {kind: {"file": reach_inputs.new_file(), "name": f"{kind}.geojson",
+                        "src": demo / f"{kind}.geojson"}
+                 for kind in ("refuges", "roads") if (demo / f"{kind}.geojson").is_file()}
         settings = {"dem_file": dem_rel, "vertical_unit": dem.vertical_unit.value,
                     "outlets": outlets, "connectivity": 8,
                     "max_cells": int(self.config["MAX_DEM_CELLS"]), **engine_settings(self.config)}
+        if "refuges" in reach:
+            settings["reach"] = {k: {"file": v["file"], "name": v["name"]} for k, v in reach.items()}
         with db.transaction(conn):
             cur = conn.execute(
                 "INSERT INTO sites(name, created_utc, dem_file, original_name, dem_info, vertical_unit, "
@@ -344,9 +351,12 @@ class Registry:
             )
             site_id = int(cur.lastrowid)
             folder = layout.site_dir(self.data, site_id)
-            for src, rel in ((dem_src, dem_rel), (river, river_rel), (assets, assets_rel)):
+            for src, rel in ((dem_src, dem_rel), (river, river_rel), (assets, assets_rel),
+                             *((v["src"], v["file"]) for v in reach.values())):
                 (folder / rel).parent.mkdir(parents=True, exist_ok=True)
                 shutil.copyfile(src, folder / rel)
+            if "reach" in settings:
+                reach_inputs.store(folder, settings["reach"])
 
             placed = read_assets(folder / assets_rel, dem)
             conn.execute(
@@ -372,7 +382,8 @@ class Registry:
                     "vertical_datum": row["vertical_datum"], "crs": row["dem_crs"],
                     "band": row["dem_band"],
                     "outlets": db.loads(row["outlets"], []), "connectivity": row["connectivity"],
-                    "max_cells": int(self.config["MAX_DEM_CELLS"]), **engine_settings(self.config)}
+                    "max_cells": int(self.config["MAX_DEM_CELLS"]), **engine_settings(self.config),
+                    **reach_inputs.run_settings(layout.site_dir(self.data, site_id))}
         latest = db.latest_run(conn, site_id)
         if latest is not None and latest["status"] in (db.QUEUED, db.RUNNING):
             return int(latest["id"])

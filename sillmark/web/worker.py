@@ -42,7 +42,7 @@ from sillmark.grid.outlets import build_outlets
 from sillmark.io.export import FILE_NAMES
 from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.run import analyse
-from sillmark.web import arrays, db, layout, relief, tiled_run
+from sillmark.web import arrays, db, layout, reach_inputs, relief, tiled_run
 
 log = logging.getLogger("sillmark.worker")
 
@@ -396,7 +396,8 @@ def _run(conn, data: Path, run, folder: Path) -> None:
 
         # The engine, then every result file, moved into place together.
         analysis = analyse(dem, outlets, results, connectivity=connectivity,
-                           progress=file_progress)
+                           progress=file_progress,
+                           **reach_inputs.analyse_inputs(site_folder, settings))
         result = analysis.result
         sources = {name: (lambda r0, r1, a=getattr(result, name): a[r0:r1])
                    for name in ("onset_stage", "flood_tree", "depression_id")}
@@ -443,9 +444,8 @@ def _run(conn, data: Path, run, folder: Path) -> None:
                   scalars={"connectivity": analysis.connectivity,
                            "unreached_cells": analysis.unreached_cells,
                            "heap_pops": analysis.heap_pops,
-                           # The web app analyses without edits, so no culverts; were
-                           # there any, commit would refuse the object, not drop it.
-                           "culverts": None if analysis.result is None else analysis.result.culverts})
+                           # The web app gives no edits, so no culverts; any would be refused.
+                           "culverts": getattr(analysis, "culverts", None)})
 
     progress.start("finishing")
     summary["seconds"] = round(time.perf_counter() - t0, 2)

@@ -174,7 +174,9 @@ def test_full_run_writes_every_file_and_summarises_with_units(capsys, dem_tif, t
     assert err == ""  # stderr is not a terminal here: no progress display
     for name in FILE_NAMES:
         assert (out_dir / name).is_file() and (out_dir / name).stat().st_size > 0
-    assert sorted(p.name for p in out_dir.iterdir()) == sorted([*FILE_NAMES, "README.txt"])
+    # beside every raster and vector layer, its map style (OGC SLD)
+    styles = [n.rsplit(".", 1)[0] + ".sld" for n in FILE_NAMES if n.endswith((".tif", ".geojson"))]
+    assert sorted(p.name for p in out_dir.iterdir()) == sorted([*FILE_NAMES, *styles, "README.txt"])
     # The basin: 12 cells of 25 m² = 300 m² = 0.03 ha, 4 m deep to the 6 m ground.
     assert "Depressions: 1, total area 0.03 ha" in out
     assert ("1,200.0 m³" in out) or ("1,200.0 m3" in out)
@@ -184,7 +186,9 @@ def test_full_run_writes_every_file_and_summarises_with_units(capsys, dem_tif, t
     summary = json.loads((out_dir / "summary.json").read_text())
     assert summary["outlets"]["sources"] == ["edge"]
     assert summary["depressions"]["total_volume_m3"] == pytest.approx(1200.0)
-    assert summary["dem"] == str(dem_tif)
+    # the DEM by its path relative to the results folder, never an absolute one
+    assert not Path(summary["dem"]).is_absolute()
+    assert (out_dir / summary["dem"]).resolve() == dem_tif.resolve()
 
 
 def test_rerun_replaces_own_files_and_keeps_others(capsys, dem_tif, tmp_path):

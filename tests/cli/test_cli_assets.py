@@ -94,7 +94,7 @@ def test_assets_are_counted_listed_and_written_per_level(capsys, ridge_tif, four
     high = out[out.index("Water level 3.50 m:"):]
     assert "Assets: 2 flooded, 0 shielded, 1 dry, 1 without figures (of 4)" in high
     assert "flooded: Basin school (school): depth 1.00 m (ground 2.50 m)" in high
-    assert "Results: 14 files" in out  # 5 + 2 per level
+    assert "Results: 24 files" in out  # (5 + 4 SLD) + (2 + 1 SLD) per level
 
     comments, rows = read_rows(out_dir / "assets_2.80m.csv")
     assert comments == []  # the header first; the caution is in README.txt
@@ -165,7 +165,7 @@ def test_raising_the_lower_gap_lets_the_higher_one_control(capsys, monkeypatch, 
     assert "raised from 3.00 to 5.00 m: 2 assets, onset stage 3.00 -> 4.00 m (gain 1.00 m)" in out
     x, y = centre(*HIGH_GAP)
     assert f"then water comes over the sill at x {x:.1f} m, y {y:.1f} m at 4.00 m" in out
-    assert "Results: 8 files" in out
+    assert "Results: 13 files" in out  # (5 + 4 SLD) + (2 + 1 SLD) + the what-if table
 
     comments, rows = read_rows(out_dir / "what_if_raise_2.00m.csv")
     assert comments == []

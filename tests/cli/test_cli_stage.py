@@ -15,7 +15,9 @@ from tests.cli.test_cli import SITE, assert_one_line_error, run_cli, write_dem
 
 #: Files of one level, with {h} the level's label.
 LEVEL_FILES = ("depth_{h}.tif", "water_state_{h}.tif", "flood_extent_{h}.geojson",
-               "shielded_{h}.geojson", "depressions_at_{h}.csv")
+               "shielded_{h}.geojson", "depressions_at_{h}.csv",
+               # the map style (OGC SLD) beside each of the four map layers
+               "depth_{h}.sld", "water_state_{h}.sld", "flood_extent_{h}.sld", "shielded_{h}.sld")
 
 
 def level_files(label: str) -> list[str]:
@@ -90,7 +92,7 @@ def test_stage_on_a_dem_writes_the_files_and_reports_with_units(capsys, dem_tif,
     assert "depth_4.50m.tif" in block
     assert "Depressions: 2 overtopped, 0 cut off below the level, 0 dry (of 2)" in out
     assert "Stage table:" in out and "stage_table.csv" in out
-    assert f"Results: 11 files in {out_dir}" in out
+    assert f"Results: 19 files in {out_dir}" in out  # (5 + 4 SLD) per level + the table
     assert SCREENING_CAUTION in out
 
 
@@ -101,7 +103,8 @@ def test_stage_from_an_analysis_folder_gives_identical_files(capsys, dem_tif, an
     assert code == 0, err
     assert f"Analysis: {analysed}" in out
     assert names_in(tmp_path / "a") == names_in(tmp_path / "b")
-    assert len(names_in(tmp_path / "a")) == 17  # README.txt too: no path nor time in it
+    # 3 levels of (5 files + 4 SLD styles), the table, README.txt (no path nor time in it)
+    assert len(names_in(tmp_path / "a")) == 29
     for name in names_in(tmp_path / "a"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
 
@@ -309,7 +312,7 @@ def test_analyse_records_the_dem_path_so_other_folders_can_use_it(capsys, dem_ti
     monkeypatch.chdir(dem_tif.parent)
     assert run_cli(capsys, "analyse", dem_tif.name, "--out", str(tmp_path / "an"))[0] == 0
     summary = json.loads((tmp_path / "an" / "summary.json").read_text())
-    assert summary["dem"] == str(dem_tif)
+    assert summary["dem"] == "../site.tif"  # from the folder "an", beside the DEM
     monkeypatch.chdir(tmp_path / "an")
     code, _, err = run_cli(capsys, "stage", ".", "--level", "5", "--out", str(tmp_path / "s"))
     assert code == 0, err

@@ -405,7 +405,8 @@ def test_write_stage_results_writes_each_level_once_in_order(site, tmp_path):
     assert [lf.level for lf in files.levels] == [18.5, 20.0]
     assert files.table is None and files.table_path is None
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted(p.name for p in files.paths)
-    assert len(files.paths) == 10
+    # Per level: five files, and an SLD style beside each of its four map layers.
+    assert len(files.paths) == 2 * (5 + 4)
     overtopped = files.levels[1]
     assert (overtopped.depressions_overtopped, overtopped.depressions_cut_off,
             overtopped.depressions_dry) == (3, 0, 0)
@@ -414,7 +415,7 @@ def test_write_stage_results_writes_each_level_once_in_order(site, tmp_path):
 def test_written_set_has_no_temporaries_and_reports_progress(written):
     out, files, calls = written
     assert sorted(p.name for p in out.iterdir()) == sorted(p.name for p in files.paths)
-    assert len(files.paths) == 5 * len(LEVELS) + 1
+    assert len(files.paths) == (5 + 4) * len(LEVELS) + 1  # four of the five get an SLD style
     assert {c[0] for c in calls} == {p.name for p in files.paths}
     assert all(done <= total for _, done, total in calls)
 

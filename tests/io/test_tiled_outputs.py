@@ -291,7 +291,8 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     assert main(["analyse", str(terrain_tif), "--tiles", "512", "--scheduler", cluster_address,
                  "--out", str(tiled), "-q"]) == 0
     printed = capsys.readouterr().out
-    assert "Depression hierarchy:" in printed and "Results: 11 files" in printed
+    # 11 files and an SLD style beside each of the 4 rasters and 2 GeoJSON layers
+    assert "Depression hierarchy:" in printed and "Results: 17 files" in printed
     assert main(["analyse", str(terrain_tif), "--out", str(whole), "-q"]) == 0
     summary = json.loads((tiled / "summary.json").read_text())
     assert summary["files"] == ["onset_stage.tif", "fill_depth.tif", "depression_id.tif",
@@ -324,7 +325,7 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     assert figures(out_tiled) == figures(out_whole) == figures(out_dem)
     assert any(line.startswith("  Shielded low ground:") for line in figures(out_tiled))
     names = sorted(p.name for p in (tmp_path / "s_whole").iterdir())
-    assert len(names) == 11  # five per level and the table
+    assert len(names) == 19  # five per level, four SLD styles per level, and the table
     for folder in ("s_tiled", "s_dem"):
         assert sorted(p.name for p in (tmp_path / folder).iterdir()) == names  # scratch removed
         for name in names:

@@ -320,8 +320,11 @@ def test_result_files_download(ready, name):
     assert r.status_code == 200
     assert r.headers["Content-Disposition"].startswith("attachment;") and name in r.headers["Content-Disposition"]
     body = r.get_data()
+    assert r.headers["X-Sillmark-Caution"] == SCREENING_CAUTION
     if name.endswith(".tif"):
         assert body[:4] == b"II*\x00"
+    elif name.endswith(".csv"):  # the header row first; the caution in README.txt and the header
+        assert body.startswith(b"id,pit_row,")
     else:
         assert SCREENING_CAUTION.encode() in body
 

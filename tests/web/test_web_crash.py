@@ -94,14 +94,12 @@ def sha(data: bytes) -> str:
 
 
 def served_results(client: Client, site_id: int) -> dict[str, str]:
-    """Digest of every result file the site serves now."""
-    from sillmark.io.summary import FILE_NAMES
-
+    """Digest of every result file the site serves now (as its Files tab lists them)."""
     out = {}
-    for name in FILE_NAMES:
-        r = client.get(f"/api/sites/{site_id}/files/results/{name}")
-        assert r.status_code == 200, (name, r.status_code)
-        out[name] = sha(r.get_data())
+    for f in client.get(f"/api/sites/{site_id}/files").get_json()["files"]:
+        r = client.get(f["url"])
+        assert r.status_code == 200, (f["name"], r.status_code)
+        out[f["name"]] = sha(r.get_data())
     return out
 
 

@@ -159,6 +159,14 @@
 
     series.forEach(function (s) {
       var Y = s.axis === "right" ? YR : YL;
+      if (s.points) {  // marks only, e.g. stations along a profile
+        g.fillStyle = s.colour;
+        for (var j = 0; j < s.x.length; j++) {
+          if (s.y[j] === null || !isFinite(s.y[j])) { continue; }
+          g.beginPath(); g.arc(X(s.x[j]), Y(s.y[j]), 3.5, 0, 2 * Math.PI); g.fill();
+        }
+        return;
+      }
       g.strokeStyle = s.colour; g.lineWidth = s.width || 2; g.setLineDash(s.dash || []);
       g.beginPath();
       var started = false;

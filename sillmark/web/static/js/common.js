@@ -93,15 +93,17 @@
   /* ---- point symbols: a shape as well as a colour for each kind of point ----
    * spill point: ochre triangle; controlling sill: crimson diamond; assets by
    * state: flooded blue disc, shielded amber square, dry green ring. */
-  var SYMBOLS = {
-    spill: { shape: "triangle", fill: "#e0b043", stroke: "#2b2118", size: 16 },
-    sill: { shape: "diamond", fill: "#c0392b", stroke: "#ffffff", size: 20 },
-    "asset-flooded": { shape: "disc", fill: "#2f6fa3", stroke: "#ffffff", size: 16 },
-    "asset-shielded": { shape: "square", fill: "#d98a1c", stroke: "#3b2606", size: 15 },
-    "asset-dry": { shape: "ring", fill: "#ffffff", stroke: "#4f7a3a", size: 15 },
-    "asset-none": { shape: "ring", fill: "#ffffff", stroke: "#8a8f93", size: 13 },
-    point: { shape: "disc", fill: "#ffffff", stroke: "#14232c", size: 10 },
-  };
+  /* The symbols come from the server (sillmark.products.map_style, the same
+   * table the SLD styles of the result files are written from), in the page's
+   * configuration; a page without one draws plain dots. */
+  var SYMBOLS = (function () {
+    var node = document.getElementById("site-config");
+    try {
+      var sent = node ? JSON.parse(node.textContent).legend.symbols : null;
+      if (sent && sent.point) { return sent; }
+    } catch (e) { /* no configuration: plain dots below */ }
+    return { point: { shape: "disc", fill: "#ffffff", stroke: "#14232c", size: 10, width: 1.6 } };
+  })();
 
   function shapePath(shape, n) {
     var h = n / 2, m = 2;  // m: room for the outline
@@ -114,7 +116,7 @@
   /* The SVG of a point symbol (also drawn in the legend). */
   function symbol(kind) {
     var s = SYMBOLS[kind] || SYMBOLS.point;
-    var width = s.shape === "ring" ? 3 : 1.6;
+    var width = s.width;
     return '<svg class="symbol" data-shape="' + s.shape + '" data-kind="' + kind + '" width="' + s.size +
       '" height="' + s.size + '" viewBox="0 0 ' + s.size + " " + s.size + '" fill="' + s.fill +
       '" stroke="' + s.stroke + '" stroke-width="' + width + '" aria-hidden="true">' + shapePath(s.shape, s.size) + "</svg>";

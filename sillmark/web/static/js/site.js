@@ -62,6 +62,7 @@
     restyleDepressions();
     renderDepressionTable();
     renderFiles();
+    document.dispatchEvent(new CustomEvent("sillmark:level", { detail: { level: v } }));
   }
 
   /* A level outside the offered range (lowest outlet to highest ground): clear the
@@ -412,6 +413,7 @@
       });
       renderAssetTable();
       renderFiles();
+      document.dispatchEvent(new CustomEvent("sillmark:assets", { detail: { markers: assetMarkers } }));
     }).catch(function (err) { S.show($("assets-error"), err.message); });
   }
 
