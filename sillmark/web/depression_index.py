@@ -28,10 +28,12 @@ from typing import Any, Callable
 import numpy as np
 import rasterio.features
 import scipy.ndimage
+import shapely
 import shapely.geometry
 from affine import Affine
 
 from sillmark.errors import InvalidParameter
+from sillmark.grid.crs import wgs84_transformer
 from sillmark.io import geojson as geojson_files
 from sillmark.products.stage import DEPRESSION_CUT_OFF, DEPRESSION_OVERTOPPED, depression_states
 from sillmark.units import ACRE_FOOT_M3
@@ -48,6 +50,10 @@ MAX_SPILL_POINTS = 5000
 #: Outline positions (lon/lat pairs) one answer may carry in all: about 25 bytes
 #: each, so the outlines stay near 1 MB whatever the depressions look like.
 OUTLINE_BUDGET_POSITIONS = 40_000
+
+#: Depressions of at most this many cells are outlined as the union of their cell
+#: squares (shapely); larger ones are traced with rasterio.features.shapes.
+SMALL_CELLS = 64
 
 #: State codes per depression at a level (0 also stands for "no depression").
 STATE_DRY, STATE_CUT_OFF, STATE_OVERTOPPED = 0, 1, 2
@@ -215,7 +221,8 @@ class DepressionIndex:
         self.south, self.north = lat.min(axis=0), lat.max(axis=0)
         self._states = LockedLRU(64)
         self._outlines = LockedLRU(4096)
-        self._raster_lock = threading.Lock()
+        self._lock = threading.Lock()  # the memory map and the transformer: one thread at a time
+        self._to_wgs84 = wgs84_transformer(dem)
 
     @staticmethod
     def _extents(ids: np.ndarray, n: int) -> list[tuple[slice, slice]]:
@@ -385,15 +392,24 @@ class DepressionIndex:
         if rs.stop <= rs.start:
             found = (None, 0)
         else:
-            with self._raster_lock:  # a memory map read by one thread at a time
+            with self._lock:
                 window = np.asarray(self.ids_raster[rs, cs])
             mask = window == self.id[k]
-            tr = self.dem.transform * Affine.translation(cs.start, rs.start)
-            parts = [shapely.geometry.shape(g) for g, _ in rasterio.features.shapes(
-                mask.astype(np.uint8), mask=mask, connectivity=8, transform=tr)]
-            geom = parts[0] if len(parts) == 1 else shapely.geometry.MultiPolygon(parts)
+            tr = self.dem.transform @ Affine.translation(cs.start, rs.start)
+            if int(self.cell_count[k]) <= SMALL_CELLS:
+                # Few cells: the union of their squares (GDAL's tracer costs more to start).
+                r, c = np.nonzero(mask)
+                xa, ya = tr.c + c * tr.a + r * tr.b, tr.f + c * tr.d + r * tr.e
+                xb, yb = xa + tr.a + tr.b, ya + tr.d + tr.e
+                geom = shapely.union_all(shapely.box(np.minimum(xa, xb), np.minimum(ya, yb),
+                                                     np.maximum(xa, xb), np.maximum(ya, yb)))
+            else:
+                parts = [shapely.geometry.shape(g) for g, _ in rasterio.features.shapes(
+                    mask.astype(np.uint8), mask=mask, connectivity=8, transform=tr)]
+                geom = parts[0] if len(parts) == 1 else shapely.geometry.MultiPolygon(parts)
             geom = geom.simplify(0.25 * min(abs(tr.a), abs(tr.e)), preserve_topology=True)
-            geometry = geojson_files.wgs84_geometry(geom, self.dem)
+            with self._lock:
+                geometry = geojson_files.wgs84_geometry(geom, self.dem, transformer=self._to_wgs84)
             found = (geometry, _positions(geometry["coordinates"]))
         self._outlines.put(k, found)
         return found
