@@ -177,14 +177,16 @@ def depressions_geojson(site_id: int):
     ``?bbox=west,south,east,north`` (WGS 84; the whole site without it), largest
     first, with their figures (and their state at ``?level=``); ``in_view`` and
     ``more_not_shown`` say how many the answer leaves out (with ``?whole=1``, none
-    is given unless all of them fit). Every outline is in
+    is given unless all of them fit; ``?min_area_m2=`` leaves out smaller ones).
+    Every outline is in
     ``depressions`` of the result files."""
     bbox, level = _view_args()
     limit = depression_index.whole_arg(request.args, "limit", depression_index.VIEW_LIMIT, 1,
                                     depression_index.MAX_VIEW_LIMIT)
     row, data = open_site(site_id)
     whole = request.args.get("whole", "0") not in ("0", "", "false")
-    found = data.depressions.in_view(bbox, limit=limit, level=level, whole=whole)
+    min_area = depression_index.number_arg(request.args, "min_area_m2", "an area in m²")
+    found = data.depressions.in_view(bbox, limit=limit, level=level, whole=whole, min_area_m2=min_area)
     response = jsonify({**found, "unit_symbol": data.unit.symbol, "caution": SCREENING_CAUTION,
                         "full_inventory": _full_file(site_id, "depressions"), **_datum(row)})
     response.mimetype = "application/geo+json"

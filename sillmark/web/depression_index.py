@@ -96,7 +96,8 @@ def whole_arg(args, name: str, default: int, lo: int, hi: int) -> int:
     return int(text)
 
 
-def _number(args, name: str, what: str) -> float | None:
+def number_arg(args, name: str, what: str) -> float | None:
+    """The finite-number request argument ``name``, or None when absent."""
     text = args.get(name)
     if text is None or str(text).strip() == "":
         return None
@@ -142,9 +143,9 @@ def table_query(args, level: float | None) -> TableQuery:
         page=whole_arg(args, "page", 1, 1, 10**9),
         per_page=whole_arg(args, "per_page", PER_PAGE, 1, MAX_PER_PAGE),
         sort=SORT_KEYS[sort], descending=order == "desc", q=q,
-        min_depth=_number(args, "min_depth", "a depth in the site's vertical unit"),
-        min_area_m2=_number(args, "min_area_m2", "an area in m²"),
-        min_volume_m3=_number(args, "min_volume_m3", "a volume in m³"),
+        min_depth=number_arg(args, "min_depth", "a depth in the site's vertical unit"),
+        min_area_m2=number_arg(args, "min_area_m2", "an area in m²"),
+        min_volume_m3=number_arg(args, "min_volume_m3", "a volume in m³"),
         state=state, level=level,
     )
 
@@ -316,25 +317,29 @@ class DepressionIndex:
 
     # -- by map extent ---------------------------------------------------------------
 
-    def in_box(self, bbox: tuple[float, float, float, float] | None) -> np.ndarray:
-        """Indices of the depressions whose extent meets ``bbox``, largest area first."""
-        if bbox is None:
-            idx = np.arange(self.count)
-        else:
+    def in_box(self, bbox: tuple[float, float, float, float] | None, min_area_m2: float | None = None) -> np.ndarray:
+        """Indices of the depressions whose extent meets ``bbox`` (and with at least
+        ``min_area_m2`` of area), largest area first."""
+        keep = np.ones(self.count, dtype=bool)
+        if bbox is not None:
             w, s, e, n = bbox
-            idx = np.flatnonzero((self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n))
+            keep = (self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n)
+        if min_area_m2 is not None:
+            keep &= self.area_m2 >= min_area_m2
+        idx = np.flatnonzero(keep)
         return idx[np.lexsort((self.id[idx], -self.area_m2[idx]))]
 
     def in_view(self, bbox, *, limit: int = VIEW_LIMIT, level: float | None = None,
-                outlines: bool = True, whole: bool = False) -> dict:
+                outlines: bool = True, whole: bool = False, min_area_m2: float | None = None) -> dict:
         """At most ``limit`` depressions meeting ``bbox``, largest first, as GeoJSON features.
 
         Each feature is the depression's outline (WGS 84) with its row as
         properties. Outlines stop at :data:`OUTLINE_BUDGET_POSITIONS` positions
         in all; ``in_view``, ``shown`` and ``more_not_shown`` say what was left out.
-        With ``whole``, no feature is given unless every depression meeting the box is.
+        With ``whole``, no feature is given unless every depression meeting the box is;
+        ``min_area_m2`` leaves out the smaller ones (e.g. those too small to pick at a zoom).
         """
-        idx = self.in_box(bbox)
+        idx = self.in_box(bbox, min_area_m2)
         if whole and idx.shape[0] > limit:
             idx_shown = idx[:0]
         else:

@@ -2,13 +2,14 @@
 costs the browser no more than its water-level map.
 
 Two layers, both 256 × 256 palette PNGs on the Web Mercator XYZ scheme (see
-:mod:`sillmark.web.render`, whose pixel-to-cell lookup they reuse):
+:mod:`sillmark.web.render`, whose pixel-to-cell lookup they reuse), and both the
+same at every water level, so a level change redraws only the water-level map
+(which already shows each depression's state: flooded once overtopped, hatched
+as shielded low ground while cut off):
 
-- **depressions at a level**: each pixel takes the depression id of the cell
-  under it; depressions are washed in a light tint of their state at the level
-  (dry, cut off, overtopped; from
-  :func:`sillmark.products.stage.depression_states`) and edged where the id
-  changes between neighbouring pixels;
+- **depressions**: each pixel takes the depression id of the cell under it;
+  depressions are washed in a light slate tint and edged where the id changes
+  between neighbouring pixels;
 - **spill points**: a small diamond at each spill point.
 
 A depression is drawn only once it covers at least :data:`VISIBLE_PIXELS`
@@ -38,13 +39,10 @@ MAX_GLYPHS = 300
 #: Half-width of a spill-point diamond, in pixels (the border ring included).
 GLYPH_RADIUS = 4
 
-# Palette of the depression layer: 0 clear; 1-3 tint and 4-6 edge, each for
-# dry, cut off, overtopped (the order of depression_index's state codes).
-_STATE_RGB = ((86, 99, 107), (168, 93, 12), (31, 78, 121))
-_TINT_ALPHA, _EDGE_ALPHA = 46, 235
-DEPRESSION_PLTE = bytes([0, 0, 0] + [c for rgb in _STATE_RGB * 2 for c in rgb])
-DEPRESSION_TRNS = bytes([0] + [_TINT_ALPHA] * 3 + [_EDGE_ALPHA] * 3)
-TINT0, EDGE0 = 1, 4
+# Palette of the depression layer: 0 clear, 1 tint, 2 edge (a slate of Sillmark's own).
+DEPRESSION_PLTE = bytes([0, 0, 0, 74, 86, 104, 52, 62, 80])
+DEPRESSION_TRNS = bytes([0, 40, 230])
+TINT, EDGE = 1, 2
 # Palette of the spill-point layer: 0 clear, 1 diamond fill, 2 its border.
 SPILL_PLTE = bytes([0, 0, 0, 224, 176, 67, 43, 33, 24])
 SPILL_TRNS = bytes([0, 255, 255])
@@ -89,41 +87,40 @@ class DepressionTiles:
         self._luts = LockedLRU(64)
         self._lock = threading.Lock()
 
-    def _lut(self, level: float, min_area_m2: float) -> np.ndarray:
-        """Palette code per depression id (0: none) at ``level``: [tint, edge] rows."""
-        key = (float(level), round(min_area_m2, 6))
+    def _lut(self, min_area_m2: float) -> np.ndarray:
+        """Palette code per depression id (0: none) of the depressions drawn: those with
+        at least ``min_area_m2`` of area."""
+        key = round(min_area_m2, 6)
         hit = self._luts.get(key)
         if hit is None:
-            states = self.index.states(level)
-            shown = self.index.area_m2 >= min_area_m2
-            hit = np.zeros((2, self.index.count + 1), dtype=np.uint8)
-            hit[0, 1:] = np.where(shown, TINT0 + states, 0)
-            hit[1, 1:] = np.where(shown, EDGE0 + states, 0)
+            hit = np.zeros(self.index.count + 1, dtype=np.uint8)
+            hit[1:][self.index.area_m2 >= min_area_m2] = TINT
             self._luts.put(key, hit)
         return hit
 
-    def depression_tile(self, pixel_cells: np.ndarray, z: int, y: int, level: float) -> bytes:
-        """PNG of the depressions at ``level`` for the pixels of ``pixel_cells`` (the flat
-        cell index of each pixel, -1 off the grid; see render.TileIndexCache)."""
+    def depression_tile(self, pixel_cells: np.ndarray, z: int, y: int) -> bytes:
+        """PNG of the depressions for the pixels of ``pixel_cells`` (the flat cell index
+        of each pixel, -1 off the grid; see render.TileIndexCache) on a tile of zoom
+        ``z`` and row ``y``."""
         if self.index.count == 0:
             return render.BLANK_PNG
         inside = pixel_cells >= 0
-        ids = np.zeros(render.TILE * render.TILE, dtype=np.int64)
+        ids = np.zeros(render.TILE * render.TILE, dtype=np.int32)
         ids[inside] = self.ids_flat[pixel_cells[inside]]
         if not ids.any():
             return render.BLANK_PNG
-        lut = self._lut(level, VISIBLE_PIXELS * pixel_metres(z, y) ** 2)
         ids = ids.reshape(render.TILE, render.TILE)
-        codes = lut[0][ids]
-        edge = np.zeros(ids.shape, dtype=bool)
-        edge[1:, :] |= ids[1:, :] != ids[:-1, :]
-        edge[:-1, :] |= ids[:-1, :] != ids[1:, :]
-        edge[:, 1:] |= ids[:, 1:] != ids[:, :-1]
-        edge[:, :-1] |= ids[:, :-1] != ids[:, 1:]
-        edge &= codes > 0
-        codes[edge] = lut[1][ids[edge]]
+        codes = self._lut(VISIBLE_PIXELS * pixel_metres(z, y) ** 2)[ids]
         if not codes.any():
             return render.BLANK_PNG
+        edge = np.zeros(ids.shape, dtype=bool)
+        step = ids[1:, :] != ids[:-1, :]
+        edge[1:, :] |= step
+        edge[:-1, :] |= step
+        step = ids[:, 1:] != ids[:, :-1]
+        edge[:, 1:] |= step
+        edge[:, :-1] |= step
+        codes[edge & (codes > 0)] = EDGE
         return render.encode_palette_png(codes, DEPRESSION_PLTE, DEPRESSION_TRNS)
 
     def spill_points_in(self, z: int, x: int, y: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

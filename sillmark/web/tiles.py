@@ -1,7 +1,6 @@
 """Map tiles of a site: ``/tiles/<site>/hillshade/<z>/<x>/<y>.png`` and
 ``/tiles/<site>/<level>/<z>/<x>/<y>.png`` (the water-level map at ``level``,
-in the site's vertical unit), ``/tiles/<site>/depressions/<level>/<z>/<x>/<y>.png``
-(depressions by their state at ``level``) and
+in the site's vertical unit), ``/tiles/<site>/depressions/<z>/<x>/<y>.png`` and
 ``/tiles/<site>/spill_points/<z>/<x>/<y>.png``. Drawing is in :mod:`sillmark.web.render`.
 
 Add ``?run=<id>`` (the page does) to let browsers keep a tile: the run id
@@ -88,20 +87,19 @@ def water(site_id: int, level: str, z: int, x: int, y: int):
     return _tile(data, (repr(float(h)), z, x, y), draw)
 
 
-@bp.get("/<int:site_id>/depressions/<level>/<int:z>/<int:x>/<int:y>.png")
-def depressions(site_id: int, level: str, z: int, x: int, y: int):
-    """Depressions tinted and edged by their state at ``level`` (sillmark.web.depression_tiles)."""
+@bp.get("/<int:site_id>/depressions/<int:z>/<int:x>/<int:y>.png")
+def depressions(site_id: int, z: int, x: int, y: int):
+    """Depressions tinted and edged (sillmark.web.depression_tiles); the same at every level."""
     _check_tile(z, x, y)
-    h = parse_level(level)
     _, data = open_site(site_id)
 
     def draw() -> bytes:
         index = services().tiles.get(data.grid, z, x, y)
         if index is None:
             return render.BLANK_PNG
-        return data.depression_tiles.depression_tile(index, z, y, h)
+        return data.depression_tiles.depression_tile(index, z, y)
 
-    return _tile(data, ("depressions", repr(float(h)), z, x, y), draw)
+    return _tile(data, ("depressions", z, x, y), draw)
 
 
 @bp.get("/<int:site_id>/spill_points/<int:z>/<int:x>/<int:y>.png")

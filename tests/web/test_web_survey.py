@@ -6,7 +6,7 @@ out; the depression table's
 paging, sorting and filtering give exactly what a direct computation on the
 engine's depression table gives; a map-extent query returns only depressions
 meeting the box, at most the limit, and counts the rest; the depression and
-spill-point map tiles colour what the engine's states say.
+spill-point map tiles draw the depressions and spill points big enough to see.
 """
 
 from __future__ import annotations
@@ -262,41 +262,40 @@ def _tile_with(data, lon: float, lat: float, z: int) -> tuple[int, int, int]:
     return z, x, y
 
 
-def test_depression_tiles_colour_each_depression_by_its_state_at_the_level(marsh):
+def _depression_under(app, data, z, x, y) -> np.ndarray:
+    """Depression id of the cell under each pixel of tile z/x/y (0: none or off the grid)."""
+    index = app.extensions["sillmark"].tiles.get(data.grid, z, x, y)
+    ids = np.asarray(data.result.depression_id).reshape(-1)
+    return np.where(index >= 0, ids[np.maximum(index, 0)], 0).reshape(256, 256)
+
+
+def test_depression_tiles_tint_each_depression_and_edge_it(marsh):
     app, client, site_id, data = marsh
     t = data.result.depressions
     k = int(np.argmax(t.area_m2))  # the bowl
-    pit, spill = float(t.pit_elevation[k]), float(t.spill_elevation[k])
     lon, lat = data.depressions.pit_lon[k], data.depressions.pit_lat[k]
     z, x, y = _tile_with(data, lon, lat, 19)
-    index = app.extensions["sillmark"].tiles.get(data.grid, z, x, y)
-    cells = np.where(index >= 0, np.asarray(data.result.depression_id).reshape(-1)[np.maximum(index, 0)], 0)
-    bowl = (cells == k + 1).reshape(256, 256)
+    under = _depression_under(app, data, z, x, y)
+    bowl = under == k + 1
     assert bowl.sum() > 1000
-    for level, state_code in ((pit - 0.5, 0), ((pit + spill) / 2, 1), (spill + 0.01, 2)):
-        text = f"{level:.3f}"
-        png = read_png(_get(client, f"/tiles/{site_id}/depressions/{text}/{z}/{x}/{y}.png").get_data())
-        px = png["pixels"]
-        # Inside the bowl, away from its edge: the tint of its state; on its edge: the edge colour.
-        inner = bowl.copy()
-        inner[1:, :] &= bowl[:-1, :]
-        inner[:-1, :] &= bowl[1:, :]
-        inner[:, 1:] &= bowl[:, :-1]
-        inner[:, :-1] &= bowl[:, 1:]
-        assert np.all(px[inner] == depression_tiles.TINT0 + state_code), text
-        rim = bowl & ~inner
-        assert np.all(px[rim] == depression_tiles.EDGE0 + state_code), text
-        # Pixels over no depression are clear.
-        assert np.all(px[(cells == 0).reshape(256, 256)] == 0)
+    px = read_png(_get(client, f"/tiles/{site_id}/depressions/{z}/{x}/{y}.png").get_data())["pixels"]
+    # Inside the bowl, away from its edge: the tint; where the id changes: the edge.
+    inner = bowl.copy()
+    inner[1:, :] &= bowl[:-1, :]
+    inner[:-1, :] &= bowl[1:, :]
+    inner[:, 1:] &= bowl[:, :-1]
+    inner[:, :-1] &= bowl[:, 1:]
+    assert np.all(px[inner] == depression_tiles.TINT)
+    assert np.all(px[bowl & ~inner] == depression_tiles.EDGE)
+    assert np.all(px[under == 0] == 0)  # over no depression: clear
     # At zoom 14 a pixel is about 6.7 m across (Web Mercator, latitude 45°), so a
-    # depression needs about 4 × 45 m² to show: the one-cell pits of the noise do not.
+    # depression needs about 4 × 45 m² to show: the few-cell pits of the noise do not.
     z, x, y = _tile_with(data, lon, lat, 14)
-    index = app.extensions["sillmark"].tiles.get(data.grid, z, x, y)
-    png = read_png(_get(client, f"/tiles/{site_id}/depressions/{spill + 0.01:.3f}/{z}/{x}/{y}.png").get_data())
-    under = np.where(index >= 0, np.asarray(data.result.depression_id).reshape(-1)[np.maximum(index, 0)], 0)
+    under = _depression_under(app, data, z, x, y)
+    px = read_png(_get(client, f"/tiles/{site_id}/depressions/{z}/{x}/{y}.png").get_data())["pixels"]
     small = (under > 0) & (np.asarray(t.area_m2)[np.maximum(under - 1, 0)] < 100)
-    assert small.any() and np.all(png["pixels"].reshape(-1)[small] == 0)
-    assert np.any(png["pixels"].reshape(-1)[under == k + 1] > 0)
+    assert small.any() and np.all(px[small] == 0)
+    assert np.any(px[under == k + 1] > 0)
 
 
 def test_spill_point_tiles_mark_the_spill_points_that_show_at_the_zoom(marsh):

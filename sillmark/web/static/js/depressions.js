@@ -1,17 +1,22 @@
 /* Sillmark: the depressions of the site page, kept bounded whatever their number.
  *
- * - On the map, depressions and spill points are map tiles drawn by the server
- *   (the depression tiles carry the level in their address, so a level change
- *   redraws them like the water-level map); only when the view holds few
- *   depressions are they also drawn one by one, to be clicked.
+ * - On the map, depressions and spill points are map tiles drawn by the server,
+ *   the same at every level (the water-level map shows their state); only when
+ *   the view holds few depressions large enough to pick are they also drawn one
+ *   by one, to be clicked, and restyled by their state at each level.
  * - The table is one page at a time, sorted and filtered by the server.
  * Nothing here ever asks for the whole inventory. site.js calls
  * window.SillmarkDepressions(context) once and then view.setLevel(v, source). */
 (function () {
   "use strict";
 
-  /* Depressions drawn one by one when the view holds at most this many. */
+  /* Depressions drawn one by one: at most FEW of those in view, largest first, and
+   * only those big enough to pick (PICK_PIXELS screen pixels, e.g. 20 × 20);
+   * the others are in the map tiles. */
   var FEW = 150;
+  var PICK_PIXELS = 400;
+  /* Ground size of one screen pixel at a zoom and latitude (Web Mercator). */
+  function pixelMetres(zoom, lat) { return 40075016.686 * Math.cos(lat * Math.PI / 180) / Math.pow(2, zoom + 8); }
   var PER_PAGE = 25;
 
   function escapeHtml(s) {
@@ -42,29 +47,11 @@
 
     // ---------------------------------------------------------------- tiles
 
-    var tileSeq = 0, tileFront = 0;
-    function showTiles(v) {
-      var seq = ++tileSeq;
-      var url = "/tiles/" + ctx.siteId + "/depressions/" + encodeURIComponent(levelText(v)) +
-        "/{z}/{x}/{y}.png?run=" + ctx.runId;
-      var layer = L.tileLayer(url, { maxZoom: 21, className: "depression-tiles", keepBuffer: 2 });
-      layer._sillmarkSeq = seq;
-      ctx.group.eachLayer(function (l) {
-        if (l._sillmarkSeq !== undefined && l._sillmarkSeq !== tileFront) { ctx.group.removeLayer(l); }
-      });
-      layer.on("load", function () {
-        if (seq < tileFront) { ctx.group.removeLayer(layer); return; }
-        tileFront = seq;
-        ctx.group.eachLayer(function (l) {
-          if (l._sillmarkSeq !== undefined && l._sillmarkSeq < seq) { ctx.group.removeLayer(l); }
-        });
-        document.body.dataset.depressionTilesLevel = levelText(v);
-      });
-      ctx.group.addLayer(layer);
-    }
-
+    /* The same at every level: the water-level map shows each depression's state. */
+    L.tileLayer("/tiles/" + ctx.siteId + "/depressions/{z}/{x}/{y}.png?run=" + ctx.runId,
+      { maxZoom: 21, className: "depression-tiles", bounds: ctx.bounds }).addTo(ctx.group);
     L.tileLayer("/tiles/" + ctx.siteId + "/spill_points/{z}/{x}/{y}.png?run=" + ctx.runId,
-      { maxZoom: 21, className: "spill-tiles" }).addTo(ctx.spills);
+      { maxZoom: 21, className: "spill-tiles", bounds: ctx.bounds }).addTo(ctx.spills);
 
     // ---------------------------------------------------------------- features in view
 
@@ -72,9 +59,10 @@
 
     function outlineStyle(d) {
       var st = stateAt(d), wide = selected === d.id;
-      if (st === "overtopped") { return { color: "#1f4e79", weight: wide ? 3.5 : 1.6, fill: false, dashArray: null }; }
-      if (st === "cut off") { return { color: "#a85d0c", weight: wide ? 3.5 : 1.8, fill: false, dashArray: "6 4" }; }
-      return { color: "#56636b", weight: wide ? 3.5 : 1.2, fill: false, dashArray: "2 4" };
+      var c = "depression-outline";
+      if (st === "overtopped") { return { color: "#1f4e79", weight: wide ? 3.5 : 1.6, fill: false, dashArray: null, className: c }; }
+      if (st === "cut off") { return { color: "#a85d0c", weight: wide ? 3.5 : 1.8, fill: false, dashArray: "6 4", className: c }; }
+      return { color: "#56636b", weight: wide ? 3.5 : 1.2, fill: false, dashArray: "2 4", className: c };
     }
 
     function restyle() {
@@ -107,17 +95,22 @@
       var seq = ++viewSeq;
       var b = map.getBounds();
       var bbox = [b.getWest(), b.getSouth(), b.getEast(), b.getNorth()].map(function (v) { return v.toFixed(7); }).join(",");
-      return S.getJSON(base + "/depressions.geojson?whole=1&limit=" + FEW + "&bbox=" + bbox).then(function (fc) {
+      var px = pixelMetres(map.getZoom(), map.getCenter().lat);
+      var minArea = (PICK_PIXELS * px * px).toPrecision(3);
+      return S.getJSON(base + "/depressions.geojson?limit=" + FEW + "&min_area_m2=" + minArea +
+          "&bbox=" + bbox).then(function (fc) {
         if (seq !== viewSeq) { return; }
         clearFeatures();
         var note = $("depressions-view-note");
-        if (fc.more_not_shown > 0) {
-          note.textContent = fc.in_view + " depressions in view: drawn as map tiles. Zoom in to pick them one by one.";
-          document.body.dataset.depressionFeatures = "0";
-          return;
+        if (!fc.in_view) {
+          note.textContent = "No depression large enough to pick in view; the smaller ones are on the map tiles.";
+        } else if (fc.more_not_shown > 0) {
+          note.textContent = "The " + fc.shown + " largest of " + fc.in_view + " depressions in view are drawn one by one " +
+            "(click one for its figures); the others are on the map tiles.";
+        } else {
+          note.textContent = fc.in_view + " depression" + (fc.in_view > 1 ? "s" : "") +
+            " large enough to pick in view; click one for its figures. Smaller ones are on the map tiles.";
         }
-        note.textContent = fc.in_view ? fc.in_view + " depression" + (fc.in_view > 1 ? "s" : "") +
-          " in view; click one for its figures." : "No depression in view.";
         fc.features.forEach(function (f) { known[f.properties.id] = f.properties; });
         featureLayer = L.geoJSON(fc, {
           style: function (f) { return outlineStyle(known[f.properties.id]); },
@@ -142,6 +135,7 @@
           ctx.spills.addLayer(m);
         });
         document.body.dataset.depressionFeatures = String(fc.features.length);
+        document.body.dataset.depressionFeaturesZoom = String(map.getZoom());
       }).catch(function (err) {
         if (seq === viewSeq) { $("depressions-view-note").textContent = err.message; }
       });
@@ -267,12 +261,26 @@
 
     // ---------------------------------------------------------------- the level
 
-    var pageTimer = null;
+    /* The state column of the rows shown, at the new level, without asking the server
+     * (the rows carry their pit and spill elevations); the same rule as the server's. */
+    function restateRows() {
+      table.querySelectorAll("tbody tr").forEach(function (tr) {
+        var d = known[tr.dataset.id];
+        if (!d) { return; }
+        var st = stateAt(d), span = tr.querySelector("span.state");
+        span.className = "state state-" + st.replace(" ", "-");
+        span.textContent = st;
+      });
+      document.body.dataset.depressionTableLevel = levelText(level);
+    }
+
+    var pageTimer = null, loaded = false;
     function setLevel(v, source) {
       level = v;
-      showTiles(v);
       restyle();
       clearTimeout(pageTimer);
+      if (loaded && query.sort !== "state") { restateRows(); return; }
+      loaded = true;
       pageTimer = setTimeout(loadPage, source === "slider" ? 250 : 0);
     }
 

@@ -71,12 +71,18 @@
 
   // ------------------------------------------------------------------ water tiles (double-buffered)
 
+  /* Tiles are asked for over the site only, never for the blank map around it. */
+  function siteBounds() {
+    var b = config.bounds;
+    return b ? L.latLngBounds([b[1], b[0]], [b[3], b[2]]) : undefined;
+  }
+
   var waterSeq = 0, waterFront = 0;
   function showWater(v) {
     var seq = ++waterSeq;
     var url = "/tiles/" + config.site_id + "/" + encodeURIComponent(levelText(v)) +
       "/{z}/{x}/{y}.png?run=" + config.run_id;
-    var layer = L.tileLayer(url, { maxZoom: 21, className: "water-tiles", keepBuffer: 2 });
+    var layer = L.tileLayer(url, { maxZoom: 21, className: "water-tiles", keepBuffer: 2, bounds: siteBounds() });
     layer._sillmarkSeq = seq;
     // Pending layers for older levels are no longer wanted.
     groups.water.eachLayer(function (l) {
@@ -180,7 +186,7 @@
 
   var depressionView = window.SillmarkDepressions({
     map: map, group: groups.depressions, spills: groups.spills, base: base, siteId: config.site_id,
-    runId: config.run_id, unit: unit, at: at, levelText: levelText, level: level,
+    runId: config.run_id, unit: unit, at: at, levelText: levelText, level: level, bounds: siteBounds(),
   });
 
   function popupTable(title, rows, extra) {
