@@ -35,7 +35,11 @@ from affine import Affine
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import wgs84_transformer
 from sillmark.io import geojson as geojson_files
-from sillmark.products.stage import DEPRESSION_CUT_OFF, DEPRESSION_OVERTOPPED, depression_states
+from sillmark.products.stage import (
+    DEPRESSION_CUT_OFF,
+    DEPRESSION_OVERTOPPED,
+    depression_states,
+)
 from sillmark.units import ACRE_FOOT_M3
 from sillmark.web.caches import LockedLRU
 

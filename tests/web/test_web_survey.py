@@ -19,7 +19,11 @@ import pyproj
 import pytest
 
 from sillmark import SCREENING_CAUTION
-from sillmark.products.stage import DEPRESSION_CUT_OFF, DEPRESSION_OVERTOPPED, depression_states
+from sillmark.products.stage import (
+    DEPRESSION_CUT_OFF,
+    DEPRESSION_OVERTOPPED,
+    depression_states,
+)
 from sillmark.web import depression_tiles, render
 from tests.web.survey_site import marsh_lane_app, open_results
 from tests.web_support import read_png
