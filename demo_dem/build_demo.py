@@ -158,6 +158,26 @@ ASSETS = [  # name, kind, (col, row)
     ("Kiln Field Farm", "farmhouse", (1760.0, 1480.0)),
 ]
 
+# ----------------------------------------------- roads and refuges (for the cut-off stage)
+ROADS = [  # name, [(col, row), ...]: the lanes people would leave by
+    ("Church Street", [(800.0, 180.0), (800.0, 300.0), (760.0, 470.0), (900.0, 560.0)]),
+    ("Hall Road", [(800.0, 180.0), (1000.0, 300.0)]),
+    ("Mill Lane", [(1000.0, 300.0), (1010.0, 560.0), (1010.0, 770.0)]),
+    ("Alder Row", [(1010.0, 560.0), (1120.0, 650.0), (1230.0, 742.0)]),
+    ("Works Road", [(1000.0, 300.0), (1440.0, 290.0), (1700.0, 650.0)]),
+    ("Ford Road", [(c, r) for c, r, _ in ROAD_POINTS]),
+    ("Meadow Lane", [(330.0, 900.0), (560.0, 880.0), (800.0, 960.0), (1165.0, 925.0),
+                     (1150.0, 905.0)]),
+    ("Ford Farm lane", [(1512.0, 1318.0), (1530.0, 1284.0)]),
+    ("Bench Lane", [(400.0, 1470.0), (800.0, 1420.0), (1300.0, 1380.0), (1400.0, 1273.0)]),
+    ("Kiln Field lane", [(1760.0, 1480.0), (1767.0, 1480.0)]),
+]
+REFUGES = [  # name, polygon [(col, row), ...]
+    ("St Aldric's Hall rest centre", [(780.0, 165.0), (820.0, 165.0), (820.0, 195.0), (780.0, 195.0)]),
+    ("Kiln Bench muster field", [(1790.0, 1560.0), (1850.0, 1560.0), (1850.0, 1599.0),
+                                 (1790.0, 1599.0)]),
+]
+
 # town building pads (level platforms), placed on a street grid
 TOWN_BLOCKS = [  # (col0, col1, row0, row1)
     (660, 1340, 430, 740),  # the lower town behind the flood bank
@@ -534,6 +554,26 @@ def write_vectors() -> None:
                      "coordinates": [[round(float(a), 7), round(float(b), 7)] for a, b in zip(lon, lat)]},
     }]}
     _write_text(HERE / "river.geojson", json.dumps(river) + "\n")
+    write_access_vectors(to_wgs84)
+
+
+def write_access_vectors(to_wgs84) -> None:
+    """``roads.geojson`` (lines) and ``refuges.geojson`` (polygons) in WGS84."""
+    def lonlat(points):
+        xs, ys = zip(*(xy_of(c, r) for c, r in points))
+        lon, lat = to_wgs84.transform(np.array(xs), np.array(ys))
+        return [[round(float(a), 7), round(float(b), 7)] for a, b in zip(lon, lat)]
+
+    roads = {"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"name": name},
+         "geometry": {"type": "LineString", "coordinates": lonlat(points)}}
+        for name, points in ROADS]}
+    _write_text(HERE / "roads.geojson", json.dumps(roads) + "\n")
+    refuges = {"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"name": name},
+         "geometry": {"type": "Polygon", "coordinates": [lonlat([*ring, ring[0]])]}}
+        for name, ring in REFUGES]}
+    _write_text(HERE / "refuges.geojson", json.dumps(refuges) + "\n")
 
 
 def main() -> None:

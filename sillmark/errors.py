@@ -25,3 +25,11 @@ class InvalidParameter(SillmarkError, ValueError):
 
 class LocationOutsideDEM(InvalidParameter):
     """A location lies outside the DEM or on a nodata cell."""
+
+
+class InvalidProfile(SillmarkError, ValueError):
+    """A water-surface profile file is unusable (not one centreline, too few stations)."""
+
+
+class InvalidRefuges(SillmarkError, ValueError):
+    """A refuge or road file is unusable (no geometry, misses the grid, all on nodata)."""

@@ -54,19 +54,32 @@ from sillmark.engine.flood import DEFAULT_TILE_SIZE as MEMORY_TILE_SIZE
 from sillmark.engine.flood import SpillResult, priority_flood
 from sillmark.engine.pipeline import TiledFlood, run_pipeline
 from sillmark.engine.plan import TilePlan
-from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.engine.stores import FileStore, MemoryStore
+from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import DEM
 from sillmark.grid.dem_grid import read_dem_grid
-from sillmark.grid.outlets import Outlets, build_outlets
 from sillmark.grid.outlet_plan import plan_outlets
+from sillmark.grid.outlets import Outlets, build_outlets, outlet_specs
+from sillmark.grid.profiles import Profile, read_profile, reference_level
+from sillmark.grid.refuges import read_refuges, read_roads
 from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
+from sillmark.io.reach_files import (
+    add_to_summary,
+    keep_input,
+    write_cutoff_raster,
+    write_offset_rasters,
+)
+from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.summary import FILE_NAMES, write_table_summary
+from sillmark.io.vector_layers import vector_suffix
+from sillmark.products.cutoff import cutoff_stage
+from sillmark.products.profile import ProfileTiles, offset_flood
+from sillmark.products.significance import SiteMinimum
 
 __all__ = ["STORES", "TILED_FILE_NAMES", "TILED_TILE_SIZE", "Analysis", "analyse"]
 
@@ -119,6 +132,12 @@ class Analysis:
         The depression hierarchy written (in memory, or the tiled summary of it).
     grid : DEM or DEMGrid
         The grid the files describe.
+    reach : object or None
+        With a profile or refuges: ``profile`` (what summary.json records of
+        it) and ``cutoff`` (the :class:`~sillmark.products.cutoff.CutOff`, in memory).
+    significance : dict or None
+        The ``significance`` member of ``summary.json`` (minimum, source,
+        counts); None when every depression was listed without a minimum.
     """
 
     depressions: DepressionTable
@@ -136,6 +155,8 @@ class Analysis:
     result: SpillResult | None
     hierarchy: Any
     grid: Any
+    reach: Any = None
+    significance: dict | None = None
 
 
 def analyse(
@@ -152,6 +173,13 @@ def analyse(
     crs: Any = None,
     progress: Progress | None = None,
     derived: bool = True,
+    minimum: SiteMinimum | None = None,
+    accuracy_stated: bool = False,
+    full_inventory: bool = False,
+    vector_format: str = "geojson",
+    profile: Any = None,
+    refuges: Any = None,
+    roads: Any = None,
 ) -> Analysis:
     """Analyse a DEM and write every result file into ``out``.
 
@@ -185,6 +213,28 @@ def analyse(
         :data:`TILED_FILE_NAMES`, to which
         :func:`sillmark.io.results_folder.add_depression_outlines` and
         :func:`sillmark.io.results_folder.add_hierarchy_files` add.
+    profile : path or GeoJSON dict, optional
+        A river's water-surface profile (:mod:`sillmark.grid.profiles`): its
+        centreline also serves as an outlet, and ``onset_offset.tif`` and
+        ``profile_level.tif`` are added (:mod:`sillmark.products.profile`).
+    refuges, roads : path or GeoJSON dict, optional
+        Refuges (points, polygons) add ``cutoff_stage.tif``
+        (:mod:`sillmark.products.cutoff`); roads (lines) keep the routes to
+        them on the road cells. A DEM held in memory only.
+    minimum : SiteMinimum, optional
+        The significance minimum (:func:`sillmark.products.significance.site_minimum`):
+        depressions below it are not listed or mapped on their own, and only the
+        significant nodes get curves (a DEM in memory only). None lists every
+        depression.
+    accuracy_stated : bool
+        The minimum's vertical accuracy was given by the user, not the default.
+    full_inventory : bool
+        With a minimum: list and map every depression still, marked ``significant``.
+    vector_format : {"geojson", "gpkg", "auto"}
+        Of the depression outlines and spill points of a DEM in memory
+        (:mod:`sillmark.io.vector_layers`); the tiled path writes GeoJSON.
+
+    Every run also writes ``README.txt`` (:mod:`sillmark.io.readme`).
 
     Returns
     -------
@@ -199,7 +249,22 @@ def analyse(
     """
     if store not in STORES:
         raise InvalidParameter(f"store must be one of {', '.join(STORES)}, not {store!r}")
+    vector_suffix(vector_format, 0)  # refuse an unknown format before any work
+    if minimum is not None and not isinstance(dem, DEM):
+        raise InvalidParameter(
+            "the significance minimum needs the DEM in memory; the tiled engine lists every "
+            "depression (full inventory)")
     executor = ThreadExecutor() if executor is None else executor
+    if roads is not None and refuges is None:
+        raise InvalidParameter("roads limit the routes to refuges; give the refuges with them")
+    reach = None
+    if isinstance(dem, DEM):
+        reach = _read_reach(dem, profile, refuges, roads)
+        if reach.profile is not None:
+            outlets = _with_centreline(dem, outlets, reach.profile, connectivity)
+    elif refuges is not None:
+        raise InvalidParameter("the cut-off stage needs the onset stage of the whole site in "
+                               "memory; run without tiles for --refuge")
     target = Path(out)
     if target.exists() and not target.is_dir():
         raise InvalidParameter(f"the output path {target} is a file; give a folder (new or existing)")
@@ -211,12 +276,21 @@ def analyse(
         try:
             if isinstance(dem, DEM):
                 run = _analyse_in_memory(dem, outlets, temporary, executor, tiles, tile_size,
-                                         connectivity, progress)
+                                         connectivity, progress,
+                                         dict(minimum=minimum, accuracy_stated=accuracy_stated,
+                                              full_inventory=full_inventory,
+                                              vector_format=vector_format))
+                run = _add_reach_layers(run, reach, temporary, executor, progress)
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
-                                        connectivity, band, vertical_unit, crs, progress)
+                                        connectivity, band, vertical_unit, crs, progress,
+                                        profile=profile)
                 if derived:
                     run = _add_derived(run, temporary, executor, progress)
+                if profile is not None:
+                    run = _add_tiled_offset(run, profile, temporary, executor, store,
+                                            tile_size, connectivity, progress)
+                run = _with_readme(run, temporary)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
@@ -243,8 +317,20 @@ def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Pa
     return [target / name for name in names]
 
 
+def _with_readme(run: Analysis, folder: Path) -> Analysis:
+    """The tiled run's files with ``README.txt`` before ``summary.json``."""
+    names = [p.name for p in run.files]
+    readme = write_readme(folder, names, grid=run.grid,
+                          title=f"analysis of {Path(str(run.grid.path)).name} (tiled engine, "
+                                "every depression listed)",
+                          connectivity=run.connectivity)
+    files = [p for p in run.files if p.name != FILE_NAMES[-1]] + [readme] + \
+        [p for p in run.files if p.name == FILE_NAMES[-1]]
+    return dataclasses.replace(run, files=files)
+
+
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,
-                       progress) -> Analysis:
+                       progress, listing: dict) -> Analysis:
     if not isinstance(outlets, Outlets):
         outlets = build_outlets(dem, tuple(outlets), connectivity=connectivity)
     tile = MEMORY_TILE_SIZE if tile_size is None else tile_size
@@ -254,7 +340,7 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
                             executor=executor, store=tiles)
     seconds = {"engine": time.perf_counter() - t0}
     t0 = time.perf_counter()
-    written = write_result_files(result, dem, outlets, folder, progress=progress)
+    written = write_result_files(result, dem, outlets, folder, progress=progress, **listing)
     files, hierarchy = written.paths, written.hierarchy
     seconds["write"] = time.perf_counter() - t0
     rows, cols = dem.shape
@@ -264,16 +350,18 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
         valid_cells=int(np.count_nonzero(dem.valid)), unreached_cells=result.unreached_cells,
         outlet_cells=int(outlets.count), outlet_sources=tuple(outlets.sources),
         heap_pops=result.heap_pops, files=files, seconds=seconds, result=result,
-        hierarchy=hierarchy, grid=dem,
+        hierarchy=hierarchy, grid=dem, significance=written.significance,
     )
 
 
 def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, connectivity, band,
-                      vertical_unit, crs, progress) -> Analysis:
+                      vertical_unit, crs, progress, *, profile=None) -> Analysis:
     tile = TILED_TILE_SIZE if tile_size is None else tile_size
     TilePlan(rows=1, cols=1, tile=tile)  # refuse a bad tile size and connectivity first
     directions(connectivity)
     grid = read_dem_grid(dem_path, band=band, vertical_unit=vertical_unit, crs=crs)
+    if profile is not None:  # the centreline serves as an outlet too
+        outlets = [*outlet_specs(outlets, connectivity), read_profile(profile, grid).as_outlet()]
     plan = plan_outlets(grid, outlets, connectivity=connectivity)
     flood = run_pipeline(RasterTiles(grid, plan), executor=executor, store=tiles,
                          tile_size=tile, connectivity=connectivity, row_areas=grid.row_areas,
@@ -347,7 +435,137 @@ def _write_file(flood: TiledFlood, grid, folder: str, what: str) -> list[str]:
                                                       if what == "depression_id" else None)))]
     if what == "depression_id":
         paths.append(str(write_depression_table_csv(flood.depressions, grid,
-                                                    out / "depressions.csv",
-                                                    connectivity=flood.connectivity)))
+                                                    out / "depressions.csv")))
     return paths
 
+
+
+@dataclasses.dataclass(frozen=True)
+class _Reach:
+    """The profile, refuges and roads of a run, read before anything is written."""
+
+    profile: Profile | None
+    refuges: tuple[np.ndarray, str] | None
+    roads: tuple[np.ndarray, str] | None
+    sources: dict
+
+
+def _read_reach(dem: DEM, profile, refuges, roads) -> _Reach:
+    sources = {k: v for k, v in (("profile", profile), ("refuges", refuges), ("roads", roads))
+               if v is not None}
+    return _Reach(profile=None if profile is None else read_profile(profile, dem),
+                  refuges=None if refuges is None else read_refuges(refuges, dem),
+                  roads=None if roads is None else read_roads(roads, dem), sources=sources)
+
+
+def _with_centreline(dem: DEM, outlets, profile: Profile, connectivity: int) -> Outlets:
+    if not isinstance(outlets, Outlets):
+        outlets = build_outlets(dem, tuple(outlet_specs(outlets, connectivity)),
+                                connectivity=connectivity)
+    line = profile.centreline_cells(dem) & dem.valid
+    return Outlets(mask=outlets.mask | line,
+                   sources=(*outlets.sources, f"{profile.label} (centreline)"))
+
+
+def _profile_member(profile: Profile, unit, cells: int, offset: np.ndarray | None) -> dict:
+    finite = None if offset is None else offset[~np.isnan(offset)]
+    return {
+        "file": profile.label,
+        "centreline_length": profile.length,
+        "centreline_cells": int(cells),
+        "stations": [{"name": n, "chainage": float(c), "level": float(v)}
+                     for n, c, v in zip(profile.names, profile.chainage, profile.level)],
+        "vertical_unit": unit.value,
+        **({"onset_offset_range": [float(finite.min()), float(finite.max())]}
+           if finite is not None and finite.size else {}),
+        "files": ["onset_offset.tif", "profile_level.tif"],
+    }
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class _ReachResult:
+    profile: dict | None
+    cutoff: Any
+
+
+def _add_reach_layers(run: Analysis, reach: _Reach | None, folder: Path, executor,
+                      progress) -> Analysis:
+    """The onset offset of the profile and the cut-off stage, for a DEM in memory."""
+    if reach is None or (reach.profile is None and reach.refuges is None):
+        return run
+    dem, result = run.grid, run.result
+    files: list[Path] = []
+    members: dict[str, Any] = {}
+    seconds = dict(run.seconds)
+    if reach.profile is not None:
+        t0 = time.perf_counter()
+        flood = offset_flood(dem, reach.profile, connectivity=run.connectivity, executor=executor)
+        offset, level = flood.onset_offset, flood.reference
+        files += write_offset_rasters(dem, folder, offset=lambda r0, r1: offset[r0:r1],
+                                      reference=lambda r0, r1: level[r0:r1],
+                                      profile_label=reach.profile.label)
+        members["profile"] = _profile_member(reach.profile, dem.vertical_unit,
+                                             flood.centreline_cells, offset)
+        seconds["profile"] = time.perf_counter() - t0
+    if reach.refuges is not None:
+        t0 = time.perf_counter()
+        refuge_cells, refuge_label = reach.refuges
+        road_cells = None if reach.roads is None else reach.roads[0]
+        cut = cutoff_stage(result.onset_stage, refuge_cells, valid=dem.valid, passable=road_cells,
+                           connectivity=run.connectivity)
+        stage = cut.stage
+        files.append(write_cutoff_raster(dem, folder, stage=lambda r0, r1: stage[r0:r1],
+                                         roads=road_cells is not None))
+        members["cutoff"] = {
+            "refuges": refuge_label, "refuge_cells": int(np.count_nonzero(refuge_cells)),
+            "roads": None if reach.roads is None else reach.roads[1],
+            "road_cells": None if road_cells is None else int(np.count_nonzero(road_cells)),
+            "files": ["cutoff_stage.tif"],
+        }
+        seconds["cutoff"] = time.perf_counter() - t0
+    files += [keep_input(source, folder, what) for what, source in reach.sources.items()]
+    summary = folder / FILE_NAMES[-1]
+    add_to_summary(summary, [p.name for p in files], **members)
+    listed = [p for p in run.files if p.name != summary.name]
+    if any(p.name == README_NAME for p in listed):  # describe the added files too
+        name = Path(dem.path).name if getattr(dem, "path", None) else "a DEM"
+        write_readme(folder, [p.name for p in [*listed, *files, summary]], grid=dem,
+                     title=f"analysis of {name}", connectivity=run.connectivity,
+                     significance=run.significance)
+    return dataclasses.replace(run, files=[*listed, *files, summary], seconds=seconds,
+                               reach=_ReachResult(profile=members.get("profile"),
+                                                  cutoff=cut if reach.refuges is not None else None))
+
+
+def _add_tiled_offset(run: Analysis, profile_source, folder: Path, executor, store: str,
+                      tile_size, connectivity: int, progress) -> Analysis:
+    """The onset offset by tiles: the same pipeline on the height above the profile."""
+    t0 = time.perf_counter()
+    grid = run.grid
+    profile = read_profile(profile_source, grid)
+    tiles = FileStore(folder / ".offset-tiles") if store == "files" else MemoryStore()
+    try:
+        flood = run_pipeline(ProfileTiles(grid, profile), executor=executor, store=tiles,
+                             tile_size=run.tile_size, connectivity=connectivity,
+                             row_areas=grid.row_areas, transform=grid.transform)
+        files = write_offset_rasters(
+            grid, folder, offset=lambda r0, r1: flood.read("onset_stage", r0, r1),
+            reference=lambda r0, r1: _reference_rows(profile, grid, r0, r1),
+            profile_label=profile.label)
+        files.append(keep_input(profile_source, folder, "profile"))
+    finally:
+        tiles.close()
+    member = _profile_member(profile, grid.vertical_unit, flood.outlet_cells, None)
+    summary = folder / FILE_NAMES[-1]
+    add_to_summary(summary, [p.name for p in files], profile=member)
+    listed = [p for p in run.files if p.name != summary.name]
+    seconds = {**run.seconds, "profile": time.perf_counter() - t0}
+    return dataclasses.replace(run, files=[*listed, *files, summary], seconds=seconds,
+                               reach=_ReachResult(profile=member, cutoff=None))
+
+
+def _reference_rows(profile: Profile, grid, r0: int, r1: int) -> np.ndarray:
+    z = grid.read_window(r0, r1, 0, grid.shape[1])
+    level = reference_level(profile, grid, r0, r1)
+    level[np.isnan(z)] = np.nan
+    return level

@@ -129,13 +129,17 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
 
 
 def run_analyse(args: argparse.Namespace) -> int:
+    from sillmark.errors import InvalidParameter
+    from sillmark.products.significance import site_minimum
     from sillmark.run import analyse
 
     if args.tiles is not None:
+        if args.vertical_accuracy is not None or args.full_inventory:
+            option = "--vertical-accuracy" if args.vertical_accuracy is not None else "--full-inventory"
+            raise InvalidParameter(f"{option} applies to the in-memory engine; the tiled engine "
+                                   "(--tiles) lists every depression: drop one of them")
         return _run_analyse_tiled(args)
     if args.scheduler is not None or args.workers is not None:
-        from sillmark.errors import InvalidParameter
-
         option = "--scheduler" if args.scheduler is not None else "--workers"
         raise InvalidParameter(f"{option} runs the tiled engine; give --tiles N with it (e.g. --tiles 4096)")
     show = not args.quiet and sys.stderr.isatty()
@@ -152,16 +156,53 @@ def run_analyse(args: argparse.Namespace) -> int:
 
     try:
         dem, outlets, connectivity = _read_site(args.dem, args, progress)
+        minimum = site_minimum(vertical_accuracy=args.vertical_accuracy, unit=dem.vertical_unit)
         progress.start("flood")
         out_dir = Path(args.out)
-        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step)
+        run = analyse(dem, outlets, out_dir, connectivity=connectivity, progress=step,
+                      minimum=minimum, accuracy_stated=args.vertical_accuracy is not None,
+                      full_inventory=args.full_inventory, vector_format=args.vector_format,
+                      profile=args.profile, refuges=args.refuge, roads=args.roads)
         progress.done()
     finally:
         progress.close()
-    for line in summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
-                               run.hierarchy):
+    lines = summary_lines(run.result, dem, outlets, out_dir, run.files, sys.stdout,
+                          run.hierarchy, significance=run.significance)
+    for line in lines[:-1] + reach_lines(run, dem) + lines[-1:]:
         print(line)
     return EXIT_OK
+
+
+def reach_lines(run, dem) -> list[str]:
+    """What the profile and the refuges added, for the printed report."""
+    from sillmark.io.stage_files import level_text
+
+    reach = getattr(run, "reach", None)
+    if reach is None:
+        return []
+    sym = dem.vertical_unit.symbol
+    lines = []
+    if reach.profile is not None:
+        p = reach.profile
+        stations = ", ".join(f"{s['name']} {level_text(s['level'])} {sym}" for s in p["stations"])
+        lines.append(f"Profile: {p['file']}: {len(p['stations'])} stations ({stations}); the "
+                     f"centreline ({p['centreline_cells']:,} cells) is an outlet too")
+        if "onset_offset_range" in p:
+            low, high = p["onset_offset_range"]
+            lines.append(f"  cells get wet from offset {level_text(low)} to {level_text(high)} {sym} "
+                         "(onset_offset.tif; 0 is the design profile, profile_level.tif its level)")
+    if reach.cutoff is not None:
+        import numpy as np
+
+        stage = reach.cutoff.stage
+        finite = stage[np.isfinite(stage)]
+        never = int(np.count_nonzero(stage == np.inf))
+        none = int(np.count_nonzero(stage == -np.inf))
+        text = (f"from {level_text(finite.min())} to {level_text(finite.max())} {sym}"
+                if finite.size else "at no finite level")
+        lines.append(f"Cut-off stage (cutoff_stage.tif): places lose their last dry route to a "
+                     f"refuge {text}; {never:,} cells never, {none:,} cells have no route at all")
+    return lines
 
 
 TILED_STEPS = {"flood": "flood tiles", "graph": "seed graph", "finish": "finish tiles",
@@ -206,7 +247,8 @@ def tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progres
             os.path.abspath(dem_path), tuple(args.outlets or ("edge",)), out_dir,
             executor=executor, store="files", tile_size=args.tiles, connectivity=connectivity,
             band=args.band, vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
-            derived=derived,
+            derived=derived, profile=getattr(args, "profile", None),
+            refuges=getattr(args, "refuge", None), roads=getattr(args, "roads", None),
         )
     where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
     engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
@@ -230,6 +272,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
     lines = summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout, run.hierarchy)
     lines.insert(2, engine)
+    lines[-1:-1] = reach_lines(run, grid)
     for line in lines:
         print(line)
     return EXIT_OK

@@ -13,6 +13,11 @@ from sillmark.cli.analyse import run_analyse
 from sillmark.cli.common import MAX_LEVELS, PROG, WRONG_UNIT_FACTOR, wrap
 from sillmark.cli.serve import run_serve
 from sillmark.cli.stage import run_stage
+from sillmark.io.vector_layers import GEOJSON_MAX_FEATURES, VECTOR_FORMATS
+from sillmark.products.significance import (
+    DEFAULT_VERTICAL_ACCURACY_M,
+    DEPTH_PER_ACCURACY,
+)
 
 _DESCRIPTION = (
     "Screening analysis of surface connectivity on a site DEM: for every cell, the "
@@ -25,10 +30,13 @@ _DESCRIPTION = (
 _ANALYSE_DESCRIPTION = (
     "Read a DEM, mark its outlets, compute the onset stage, flood tree, depressions "
     "and spill points, and write them to a folder: GeoTIFF rasters (onset_stage, "
-    "fill_depth, depression_id, flood_tree), depressions.csv, depressions.geojson, "
-    "spill_points.geojson, the nested depressions (depression_hierarchy.csv and "
-    ".json), every depression's stage-area and stage-storage curve "
-    "(depression_curves.csv) and summary.json."
+    "fill_depth, depression_id, flood_tree), depressions.csv, the outlines and spill "
+    "points (depressions and spill_points, GeoJSON or GeoPackage), the nested depressions "
+    "(depression_hierarchy.csv and .json), the stage-area and stage-storage curves of the "
+    "significant depressions (depression_curves.csv), README.txt and summary.json. "
+    "Survey DEMs hold many tiny depressions made by noise: only those that reach a minimum "
+    "depth (from --vertical-accuracy) are listed and mapped; the rest count as part of the "
+    "smallest significant depression holding them."
 )
 
 
@@ -218,6 +226,18 @@ def _sill_height(text: str) -> float:
     return value
 
 
+def _accuracy(text: str) -> float:
+    """A vertical accuracy: a finite number above 0."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number such as 0.10, not {text!r}") from None
+    if not math.isfinite(value) or value <= 0:
+        raise argparse.ArgumentTypeError(
+            f"the vertical accuracy is an RMSE above 0 (e.g. 0.10), not {text!r}")
+    return value
+
+
 def _crs(text: str) -> str:
     value = text.strip()
     if re.fullmatch(r"\d+(\+\d+)?", value):  # 32633, or 32633+5773 with a vertical CRS
@@ -250,9 +270,42 @@ def build_parser() -> argparse.ArgumentParser:
         help="folder for the result files; created if missing, Sillmark's own file names replaced",
     )
     _add_site_options(analyse, connectivity_default=8)
+    listing = analyse.add_argument_group(
+        "significance", "which depressions are listed and mapped (the rasters, areas and "
+        "volumes stay exact whatever is chosen)")
+    listing.add_argument(
+        "--vertical-accuracy", type=_accuracy, default=None, metavar="VALUE",
+        help="the DEM's vertical accuracy (RMSE) in the site's vertical unit; a depression is "
+        f"listed on its own when it is at least {DEPTH_PER_ACCURACY:g} x VALUE deep, pit to spill "
+        f"(default VALUE: {DEFAULT_VERTICAL_ACCURACY_M:g} m, usual for airborne lidar, a "
+        "value recalled from memory rather than a cited standard; converted for sites in feet)",
+    )
+    listing.add_argument(
+        "--full-inventory", action="store_true",
+        help="also list and map every depression below the minimum, with a 'significant' column",
+    )
+    analyse.add_argument(
+        "--vector-format", choices=VECTOR_FORMATS, default="auto",
+        help="depressions and spill_points as GeoJSON (WGS 84) or GeoPackage (the DEM's CRS, "
+        f"spatial index); auto (default): GeoJSON up to {GEOJSON_MAX_FEATURES:,} features, "
+        "else GeoPackage",
+    )
     _add_tiled_options(analyse, "analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; "
                        "the same files as without --tiles (the hierarchy files from "
-                       "windows of depressions)")
+                       "windows of depressions), listing every depression")
+    reach = analyse.add_argument_group("a sloped river and places cut off")
+    reach.add_argument(
+        "--profile", default=None, metavar="FILE",
+        help="GeoJSON of the river's centreline (one LineString, also an outlet) and two or "
+        "more stations (Points with a 'level'): add onset_offset.tif (rise of the whole "
+        "profile at which each cell gets wet) and profile_level.tif")
+    reach.add_argument(
+        "--refuge", default=None, metavar="FILE",
+        help="GeoJSON points or polygons of refuges (rest centres, high ground): add "
+        "cutoff_stage.tif, the level at which each place's last dry route to a refuge goes under")
+    reach.add_argument(
+        "--roads", default=None, metavar="FILE",
+        help="with --refuge: GeoJSON lines of the roads; routes to a refuge keep to them")
     analyse.set_defaults(run=run_analyse)
 
     stage = commands.add_parser(
@@ -269,6 +322,11 @@ def build_parser() -> argparse.ArgumentParser:
     stage.add_argument(
         "--level", dest="levels", type=_water_level, action="append", metavar="H",
         help=f"outlet water level in the site's vertical unit (repeatable, at most {MAX_LEVELS})",
+    )
+    stage.add_argument(
+        "--offset", dest="offsets", type=_water_level, action="append", metavar="D",
+        help="for a folder analysed with --profile: the files for the water-surface profile "
+        "raised by D (0 is the design profile; repeatable, instead of --level)",
     )
     stage.add_argument(
         "--table-step", type=_level_step, default=None, metavar="STEP",
@@ -303,6 +361,12 @@ def build_parser() -> argparse.ArgumentParser:
     stage.add_argument(
         "--force", action="store_true",
         help="use levels that look like they are in the wrong unit",
+    )
+    stage.add_argument(
+        "--vector-format", choices=VECTOR_FORMATS, default="auto",
+        help="flood_extent_H and shielded_H as GeoJSON (WGS 84) or GeoPackage (the DEM's CRS, "
+        f"spatial index); auto (default): GeoJSON up to {GEOJSON_MAX_FEATURES:,} polygon parts, "
+        "else GeoPackage",
     )
     stage.set_defaults(run=run_stage)
 

@@ -58,7 +58,7 @@ def _site_lines(result, dem, outlets, stream: TextIO) -> list[str]:
 
 
 def summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], stream: TextIO,
-                   hierarchy=None) -> list[str]:
+                   hierarchy=None, *, significance: dict | None = None) -> list[str]:
     from sillmark import SCREENING_CAUTION
     from sillmark.units import ACRE_FOOT_M3, VerticalUnit
 
@@ -85,11 +85,28 @@ def summary_lines(result, dem, outlets, out_dir: Path, files: list[Path], stream
         lines.append(f"Depressions: 0 (no ground holds water below a spill point), 0.00 ha, 0 {m3}")
     if hierarchy is not None and len(hierarchy):
         lines.append(_hierarchy_line(hierarchy))
+    if significance is not None:
+        lines.extend(significance_report(significance))
     if result.unreached_cells:
         lines.append(f"Cells no outlet reaches (walled in by nodata): {result.unreached_cells:,} cells")
     lines.append(f"Results: {len(files)} files in {out_dir}")
     lines.append(f"Caution: {SCREENING_CAUTION}")
     return lines
+
+
+def significance_report(member: dict) -> list[str]:
+    """The printed lines of a run's significance: the counts, the minimum and its source."""
+    counts = member["counts"]
+    depth = member["min_depth"]
+    listed = ("every depression listed (--full-inventory), the significant ones marked"
+              if member["full_inventory"] else "only these are listed and mapped")
+    return [
+        f"Significant depressions: {counts['significant']:,} ({counts['significant_top']:,} whole, "
+        f"{counts['significant'] - counts['significant_top']:,} nested in those), of "
+        f"{counts['all_depressions']:,} depressions and {counts['hierarchy_nodes']:,} nested "
+        f"pits and pools in all; {listed}",
+        f"Minimum depth: {depth['value']:.4g} {depth['unit']}, {member['source']}",
+    ]
 
 
 def _hierarchy_line(hierarchy) -> str:
@@ -106,7 +123,7 @@ def _hierarchy_line(hierarchy) -> str:
         nodes, pits, levels = len(t), len(hierarchy.leaves), max(depth)
     return (
         f"Depression hierarchy: {nodes:,} nodes ({pits:,} pits), nested up "
-        f"to {levels:,} level{'s' if levels != 1 else ''} deep; curves in depression_curves.csv"
+        f"to {levels:,} level{'s' if levels != 1 else ''} deep"
     )
 
 

@@ -10,6 +10,7 @@ import json
 import sys
 from pathlib import Path
 
+from sillmark import SCREENING_CAUTION as SCREENING
 from sillmark.cli.analyse import (
     TILED_STEPS,
     site_from_dem,
@@ -24,6 +25,16 @@ def _stage_request(args: argparse.Namespace) -> None:
     """Checks of the stage options that need no DEM, made before anything is read."""
     from sillmark.errors import InvalidParameter
 
+    if args.offsets:
+        if args.levels:
+            raise InvalidParameter("give water levels (--level) or offsets of the profile "
+                                   "(--offset), not both in one call")
+        if args.assets is not None or args.raise_sill is not None:
+            raise InvalidParameter("--assets and --raise-sill work on water levels; drop them "
+                                   "with --offset")
+        if len(args.offsets) > MAX_LEVELS:
+            raise InvalidParameter(f"{len(args.offsets)} offsets given; at most {MAX_LEVELS} per call")
+        return
     levels = args.levels or []
     if len(levels) > MAX_LEVELS:
         raise InvalidParameter(
@@ -100,6 +111,8 @@ def run_stage(args: argparse.Namespace) -> int:
 
     _stage_request(args)
     source = Path(args.source)
+    if args.offsets:
+        return _run_stage_offsets(args)
     if args.tiles is not None or _tiled_folder(source):
         return _run_stage_tiled(args)
     if args.scheduler is not None or args.workers is not None:
@@ -121,6 +134,7 @@ def run_stage(args: argparse.Namespace) -> int:
         if args.table_step is not None:
             table_levels = stage_levels(ArraySource(dem, result), step=args.table_step,
                                         start=args.table_from, stop=args.table_to)
+        cut = _site_cutoff(source, dem, result) if source.is_dir() else None
         assets = what_if = None
         if args.assets is not None:
             from sillmark.grid.assets import read_assets
@@ -134,22 +148,53 @@ def run_stage(args: argparse.Namespace) -> int:
         progress.start("export")
         out_dir = Path(args.out)
         written = write_stage_results(ArraySource(dem, result), out_dir, levels=args.levels or [],
-                                      table_levels=table_levels, progress=progress.file)
+                                      table_levels=table_levels, progress=progress.file,
+                                      vector_format=args.vector_format)
         asset_levels = []
         if assets is not None:
-            asset_levels = _write_asset_levels(result, dem, assets, written, out_dir, progress.file)
+            asset_levels = _write_asset_levels(result, dem, assets, written, out_dir, progress.file,
+                                               cutoff=cut)
+        if cut is not None:
+            written = _with_cutoff_ground(written, dem, out_dir, result.connectivity, progress.file,
+                                          cutoff_rows=lambda r0, r1: cut.stage[r0:r1],
+                                          onset_rows=lambda r0, r1: result.onset_stage[r0:r1])
         what_if_path = None
+        readme_notes = []
         if what_if is not None:
             what_if_path = _write_what_if(dem, what_if, args.raise_sill, out_dir, progress.file)
+            readme_notes = _what_if_notes(what_if)
+        files = [*written.paths, *(p for _, paths in asset_levels for p in paths),
+                 *([what_if_path] if what_if_path else [])]
+        _stage_readme(out_dir, files, dem, result.connectivity, args, readme_notes)
         progress.done()
     finally:
         progress.close()
     lines = stage_lines(result, dem, outlets, out_dir, written, notes, origin, sys.stdout,
                          assets=assets, asset_levels=asset_levels, what_if=what_if,
                          what_if_path=what_if_path)
+    lines[-1:-1] = _island_lines(asset_levels)
     for line in lines:
         print(line)
     return EXIT_OK
+
+
+def _island_lines(asset_levels) -> list[str]:
+    """Assets that are islands (dry but cut off from every refuge) at each level."""
+    from sillmark.io.stage_files import level_text
+
+    out = []
+    for table, _paths in asset_levels:
+        cut = table.cutoff
+        if cut is None:
+            continue
+        sym = table.unit.symbol
+        names = [f"{table.name[k]} (cut off from {level_text(cut.island_from[k])} {sym}, "
+                 f"wet from {level_text(cut.island_to[k])} {sym})"
+                 for k in range(len(table)) if cut.is_island[k]]
+        head = f"Islands at {level_text(table.level)} {sym}"
+        out.append(f"{head}: {'; '.join(names)}" if names else
+                   f"{head}: none (no asset is dry but cut off from every refuge)")
+    return out
 
 
 def _tiled_folder(source: Path) -> bool:
@@ -213,7 +258,19 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
                                         stop=args.table_to)
         progress.start("export")
         written = write_stage_results(site, out_dir, levels=args.levels or [],
-                                      table_levels=table_levels, progress=progress.file)
+                                      table_levels=table_levels, progress=progress.file,
+                                      vector_format=args.vector_format)
+        if (folder / "cutoff_stage.tif").is_file():
+            from functools import partial
+
+            from sillmark.io.geotiff import read_window
+
+            cols = site.grid.shape[1]
+            written = _with_cutoff_ground(
+                written, site.grid, out_dir, site.connectivity, progress.file,
+                cutoff_rows=lambda r0, r1: read_window(folder / "cutoff_stage.tif", r0, r1, 0, cols),
+                onset_rows=partial(_rows, site, "onset_stage"))
+        _stage_readme(out_dir, written.paths, site.grid, site.connectivity, args, [])
         progress.done()
     finally:
         progress.close()
@@ -226,7 +283,8 @@ def _run_stage_tiled(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -> list:
+def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress, *,
+                        cutoff=None) -> list:
     """Assess the assets at every written level and write their two files; return the tables."""
     from sillmark.io.asset_files import (
         asset_file_names,
@@ -237,7 +295,7 @@ def _write_asset_levels(result, dem, assets, written, out_dir: Path, progress) -
 
     tables = []
     for level in written.levels:
-        table = assess_assets(assets, dem, result, level.level)
+        table = assess_assets(assets, dem, result, level.level, cutoff=cutoff)
         csv_name, geojson_name = asset_file_names(level.level, dem.vertical_unit)
         for name, write in ((csv_name, write_assets_csv), (geojson_name, write_assets_geojson)):
             progress(name, 0, 1)
@@ -286,10 +344,18 @@ def _what_if_rows(result, dem, outlets, assets, height: float) -> _WhatIfRun:
                       sills=list(sills.values()), own=own, no_figures=no_figures)
 
 
-def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress) -> Path:
-    from sillmark.io.asset_files import what_if_file_name, write_what_if_csv
+def _stage_readme(out_dir: Path, paths, grid, connectivity: int, args: argparse.Namespace,
+                  notes: list[str]) -> Path:
+    """``README.txt`` of a stage folder: the files just written, units, caution, notes."""
+    from sillmark.io.readme import write_readme
 
-    name = what_if_file_name(height, dem.vertical_unit)
+    return write_readme(out_dir, [Path(p).name for p in paths], grid=grid,
+                        title="the site at given outlet water levels", connectivity=connectivity,
+                        notes=notes)
+
+
+def _what_if_notes(run: _WhatIfRun) -> list[str]:
+    """What the what-if table leaves out, and why (said in the folder's README)."""
     notes = []
     if run.own:
         notes.append(f"not listed: {run.own} asset(s) whose own ground is the controlling point "
@@ -297,7 +363,128 @@ def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress)
     if run.no_figures:
         notes.append(f"not listed: {run.no_figures} asset(s) without figures (outside the DEM, "
                      "on nodata, or not reached by any outlet)")
+    return notes
+
+
+def _write_what_if(dem, run: _WhatIfRun, height: float, out_dir: Path, progress) -> Path:
+    from sillmark.io.asset_files import what_if_file_name, write_what_if_csv
+
+    name = what_if_file_name(height, dem.vertical_unit)
     progress(name, 0, 1)
-    path = write_what_if_csv(run.rows, dem, out_dir / name, height=height, notes=notes)
+    path = write_what_if_csv(run.rows, dem, out_dir / name, height=height)
     progress(name, 1, 1)
     return path
+
+
+def _run_stage_offsets(args: argparse.Namespace) -> int:
+    """``stage FOLDER --offset D``: the water-level files of the profile raised by D,
+    read block by block from a folder analysed with ``--profile``."""
+    from functools import partial
+
+    from sillmark.errors import InvalidParameter
+    from sillmark.io.geotiff import read_window
+    from sillmark.io.reach_files import OFFSET_FILES
+    from sillmark.io.results_folder import open_result_folder
+    from sillmark.io.stage_files import level_text, write_stage_results
+    from sillmark.products.profile import OffsetSource
+    from sillmark.products.stage import stage_levels
+
+    folder = Path(args.source)
+    missing = [n for n in OFFSET_FILES if not (folder / n).is_file()]
+    if not folder.is_dir() or missing:
+        raise InvalidParameter(
+            f"--offset raises a river's water-surface profile; give the folder of 'sillmark "
+            f"analyse DEM --profile FILE' as SOURCE ({folder} "
+            f"{'is no folder' if not folder.is_dir() else 'lacks ' + ', '.join(missing)})")
+    given = [option for option, value in (
+        ("--outlet", args.outlets), ("--connectivity", args.connectivity),
+        ("--vertical-unit", args.vertical_unit), ("--crs", args.crs), ("--tiles", args.tiles),
+    ) if value is not None]
+    if given:
+        raise InvalidParameter(f"{', '.join(given)} cannot change the analysis in {folder}; drop them")
+    show = not args.quiet and sys.stderr.isatty()
+    progress = Progress(show, phases=("read", "export"))
+    out_dir = Path(args.out)
+    try:
+        progress.start("read")
+        site = open_result_folder(folder, band=args.band)
+        source = OffsetSource(base=site, offset_window=partial(read_window, folder / OFFSET_FILES[0]),
+                              reference_window=partial(read_window, folder / OFFSET_FILES[1]))
+        progress.done()
+        table_levels = None
+        if args.table_step is not None:
+            table_levels = stage_levels(source, step=args.table_step, start=args.table_from,
+                                        stop=args.table_to)
+        progress.start("export")
+        written = write_stage_results(source, out_dir, levels=args.offsets,
+                                      table_levels=table_levels, progress=progress.file,
+                                      vector_format=args.vector_format)
+        _stage_readme(out_dir, written.paths, site.grid, site.connectivity, args, [])
+        progress.done()
+    finally:
+        progress.close()
+    sym = source.unit.symbol
+    low, high = source.onset_range
+    print(f"Profile offsets from {folder}: the design water-surface profile raised by each "
+          f"offset (cells get wet from offset {level_text(low)} to {level_text(high)} {sym})")
+    for level in written.levels:
+        print(f"  offset {level_text(level.level)} {sym}: flooded {level.flooded_area_m2 / 1e4:,.2f} ha, "
+              f"{level.flooded_volume_m3:,.0f} m3; shielded low ground "
+              f"{level.shielded_area_m2 / 1e4:,.2f} ha")
+    for path in written.paths:
+        print(f"  wrote {path}")
+    print(f"Caution: {SCREENING}")
+    return EXIT_OK
+
+
+def _rows(site, layer: str, r0: int, r1: int):
+    return site.window(layer, r0, r1, 0, site.grid.shape[1])
+
+
+def _site_cutoff(folder: Path, dem, result):
+    """The cut-off stage of a folder analysed with ``--refuge`` (recomputed from the
+    refuges and roads kept in it, and checked against ``cutoff_stage.tif``), or None."""
+    import numpy as np
+    import rasterio
+
+    from sillmark.errors import InvalidParameter
+    from sillmark.grid.refuges import read_refuges, read_roads
+    from sillmark.io.reach_files import CUTOFF_FILE, INPUT_COPIES
+    from sillmark.products.cutoff import cutoff_stage
+
+    if not (folder / CUTOFF_FILE).is_file():
+        return None
+    refuges, roads = folder / INPUT_COPIES["refuges"], folder / INPUT_COPIES["roads"]
+    if not refuges.is_file():
+        raise InvalidParameter(f"{folder} holds {CUTOFF_FILE} but not {refuges.name}; run "
+                               "'sillmark analyse' with --refuge again")
+    cut = cutoff_stage(result.onset_stage, read_refuges(refuges, dem)[0], valid=dem.valid,
+                       passable=read_roads(roads, dem)[0] if roads.is_file() else None,
+                       connectivity=result.connectivity)
+    with rasterio.open(folder / CUTOFF_FILE) as ds:
+        stored = ds.read(1)
+    if not np.array_equal(stored, cut.stage, equal_nan=True):
+        raise InvalidParameter(f"{folder / CUTOFF_FILE} no longer matches the refuges and roads "
+                               "kept beside it; run 'sillmark analyse' again")
+    return cut
+
+
+def _with_cutoff_ground(written, grid, out_dir: Path, connectivity: int, progress, *,
+                        cutoff_rows, onset_rows):
+    """Write the ground cut off at each level beside the level's files; return the
+    written set with those paths added to each level."""
+    import dataclasses
+
+    from sillmark.io.reach_files import cutoff_level_names, write_cutoff_level
+
+    levels = []
+    for level in written.levels:
+        names = cutoff_level_names(level.level, grid.vertical_unit)
+        for name in names:
+            progress(name, 0, 1)
+        paths = write_cutoff_level(grid, out_dir, level.level, cutoff_rows=cutoff_rows,
+                                   onset_rows=onset_rows, connectivity=connectivity)
+        for name in names:
+            progress(name, 1, 1)
+        levels.append(dataclasses.replace(level, paths=(*level.paths, *paths)))
+    return dataclasses.replace(written, levels=tuple(levels))

@@ -1,8 +1,8 @@
 """Asset files: the asset table as CSV and as GeoJSON points with their routes.
 
 ===========================  =============================================================
-``assets.csv``               one row per asset: ``# `` comment lines (caution, water level,
-                             unit, CRS), a header with units in the column names, the rows
+``assets.csv``               one row per asset: a header with units in the column names
+                             (the first line), the rows
 ``assets.geojson``           RFC 7946 (WGS 84 lon/lat): a Point per asset, and optionally
                              the route of each as a LineString and its controlling sill
                              as a Point; ``feature_kind`` tells them apart
@@ -28,15 +28,15 @@ from typing import Any
 
 import numpy as np
 
-from sillmark import SCREENING_CAUTION, __version__
+from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
-from sillmark.grid.crs import crs_label, horizontal_unit_suffix
+from sillmark.grid.crs import horizontal_unit_suffix
 from sillmark.io.csv_tables import write_table_csv
 from sillmark.io.geojson import COORDINATE_DECIMALS, write_feature_collection
 from sillmark.io.stage_files import level_label
 from sillmark.products.assets import STATE_FLOODED, AssetTable
 from sillmark.products.what_if import WhatIf
-from sillmark.units import VerticalUnit, unit_name, unit_suffix
+from sillmark.units import VerticalUnit, unit_suffix
 
 __all__ = [
     "FEATURE_ASSET",
@@ -133,6 +133,8 @@ def asset_columns(table: AssetTable) -> dict[str, list]:
         "sill_is_own_cell": [bool(table.sill_is_own_cell[k]) if has[k] else None for k in range(n)],
         "route_cells": [int(c.shape[0]) if has[k] else None for k, c in enumerate(table.route_cells)],
     }
+    if table.cutoff is not None:
+        cols.update(_cutoff_columns(table, v, h))
     taken = {c.lower() for c in cols}
     keys: list[str] = []
     for asset in table.assets:
@@ -180,36 +182,46 @@ def _level_text(table: AssetTable) -> str:
     return np.format_float_positional(np.float32(table.level), unique=True, trim="-")
 
 
-def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
-    """Write the asset table as CSV: ``# `` comment lines, a header, one row per asset.
+def _bound_text(value: float) -> Any:
+    """A cut-off bound as a table holds it: a number, or words for the infinities."""
+    if math.isnan(value):
+        return None
+    if value == math.inf:
+        return "never"
+    if value == -math.inf:
+        return "always"
+    return np.format_float_positional(np.float32(value), unique=True, trim="-")
 
-    The comment lines hold the screening caution, the water level with its
-    unit, the vertical unit, the CRS, the connectivity and what the columns
-    mean. Read it with e.g. ``csv.reader`` after skipping lines that start with
-    ``#``. Empty fields are values that do not exist (no figures).
+
+def _cutoff_columns(table: AssetTable, v: str, h: str) -> dict[str, list]:
+    """Cut-off stage, island window and the cell where the last route goes under first."""
+    cut = table.cutoff
+    n = len(table)
+    where = np.full((2, n), np.nan)
+    found = cut.cut_row >= 0
+    if found.any():
+        where[0, found], where[1, found] = table.dem.xy(cut.cut_row[found], cut.cut_col[found])
+    known = ~np.isnan(cut.stage)
+    return {
+        f"cutoff_stage_{v}": [_bound_text(x) for x in cut.stage],
+        f"island_from_{v}": [_bound_text(x) for x in cut.island_from],
+        f"island_to_{v}": [_bound_text(x) for x in cut.island_to],
+        "island_now": [bool(cut.is_island[k]) if known[k] else None for k in range(n)],
+        f"cut_at_x_{h}": _floats64(where[0]),
+        f"cut_at_y_{h}": _floats64(where[1]),
+    }
+
+
+def write_assets_csv(table: AssetTable, path: str | os.PathLike) -> Path:
+    """Write the asset table as CSV: the header on the first line, one row per asset.
+
+    Empty fields are values that do not exist (no figures). The water level is
+    in the file name; the caution, the units and what the columns mean are in
+    the folder's ``README.txt`` (:mod:`sillmark.io.readme`).
     """
     _check(table)
     columns = asset_columns(table)
-    unit = table.unit
-    v = unit_suffix(unit)
-    comments = [
-        f"Sillmark {__version__} asset table",
-        f"CAUTION: {SCREENING_CAUTION}",
-        f"water level: {_level_text(table)} {unit.symbol} ({unit_name(unit)})",
-        f"vertical unit: {unit.value} ({unit_name(unit)})",
-        f"CRS: {crs_label(table.dem)}",
-        f"connectivity: {table.connectivity}",
-        "state: flooded = onset stage <= water level; shielded = ground below the "
-        "level but no surface path reaches it yet (still at risk); dry = neither",
-        f"depth_{v}: level - ground when flooded, else 0; depth_if_reached_{v}: "
-        f"level - ground wherever the ground is below the level; freeboard_{v}: "
-        "onset stage - level (negative once flooded)",
-        "sill_*: the controlling sill, the highest cell on the route from the outlets; "
-        "sill_is_own_cell = the asset's own ground controls",
-        "status: ok, outside DEM, on nodata, not reached; other than ok leaves the figures empty",
-        "row, col, sill_row, sill_col: 0-based cell indices, rows from the top",
-    ]
-    return write_table_csv(path, comments, _object_columns(columns, len(table)))
+    return write_table_csv(path, _object_columns(columns, len(table)))
 
 
 def write_assets_geojson(
@@ -416,13 +428,12 @@ def write_what_if_csv(
     path: str | os.PathLike,
     *,
     height: Any,
-    notes: tuple[str, ...] | list[str] = (),
 ) -> Path:
     """Write ``what_if_raise_{H}.csv`` from rows of :func:`what_if_row`, in the order given.
 
-    ``# `` comment lines hold the caution, the height, the unit, the CRS, what
-    the columns mean and ``notes`` (e.g. which assets were passed over and
-    why); then a header and the rows. With no rows the header is still written.
+    The header on the first line, then the rows; with no rows the header is
+    still written. The height is in the file name; the caution and what the
+    columns mean are in the folder's ``README.txt``.
     """
 
     unit = VerticalUnit.parse(dem.vertical_unit)
@@ -432,24 +443,8 @@ def write_what_if_csv(
     for row in rows:
         if list(row) != header:
             raise InvalidParameter("the what-if rows differ in their columns; build them all with what_if_row()")
-    comments = [
-        f"Sillmark {__version__} what-if: controlling sills raised",
-        f"CAUTION: {SCREENING_CAUTION}",
-        f"height: each controlling sill raised by {_short(height)} {unit.symbol} "
-        f"({unit_name(unit)}), one sill at a time, the site flooded again for each",
-        f"vertical unit: {unit.value} ({unit_name(unit)})",
-        f"CRS: {crs_label(dem)}",
-        f"onset_before_{v}, onset_after_{v}: outlet water level at which surface water first "
-        f"reaches the asset now and with the raised sill; gain_{v} = after - before "
-        "(between 0 and the height)",
-        "sill_before_*: the controlling sill now (the cell raised); sill_after_*: the "
-        "controlling sill with it raised (raised_cell_controls = it is still the raised cell)",
-        "assets_behind_sill: assets sharing the raised sill (one recompute serves them all)",
-        "row, col, sill_*_row, sill_*_col: 0-based cell indices, rows from the top",
-        *notes,
-    ]
     columns = {name: [row[name] for row in rows] for name in header}
-    return write_table_csv(path, comments, _object_columns(columns, len(rows)))
+    return write_table_csv(path, _object_columns(columns, len(rows)))
 
 
 def _object_columns(columns: dict, n: int) -> dict[str, np.ndarray]:

@@ -13,17 +13,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from sillmark import SCREENING_CAUTION, __version__
 from sillmark.errors import InvalidParameter
-from sillmark.grid.crs import (
-    crs_label,
-    crs_unit_suffix,
-    horizontal_crs,
-)
 from sillmark.io.atomic import atomic_output
 from sillmark.io.json_values import json_value
 from sillmark.products.inventory import table_columns
-from sillmark.units import unit_name, unit_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
@@ -144,48 +137,48 @@ def json_records(columns: dict[str, np.ndarray]) -> Iterator[dict[str, Any]]:
 
 
 def write_depressions_csv(result: "SpillResult", dem: "DEM", path: str | os.PathLike) -> Path:
-    """Write ``depressions.csv``: ``# `` comment lines, a header, one row per depression.
+    """Write ``depressions.csv``: a header on the first line, then one row per depression.
 
-    The comment lines hold the screening caution, the vertical unit, the CRS and the
-    connectivity; read the file with e.g. ``csv.reader`` after skipping lines that
-    start with ``#``. Empty fields are values that do not exist (a spill point with
-    no coordinates). Row and column indices are 0-based, rows counted from the top.
+    Empty fields are values that do not exist (a spill point with no
+    coordinates). What the columns mean, the units and the caution are in the
+    folder's ``README.txt`` (:mod:`sillmark.io.readme`).
     """
-    return write_depression_table_csv(result.depressions, dem, path, connectivity=result.connectivity)
+    return write_depression_table_csv(result.depressions, dem, path)
 
 
-def write_depression_table_csv(table, dem: "DEM", path: str | os.PathLike, *, connectivity: int) -> Path:
-    """:func:`write_depressions_csv` from a :class:`~sillmark.engine.flood.DepressionTable` itself."""
-    unit = unit_of(dem)
-    crs = horizontal_crs(dem)
-    comments = [
-        f"Sillmark {__version__} depression table",
-        f"CAUTION: {SCREENING_CAUTION}",
-        f"vertical unit: {unit.value} ({unit_name(unit)})",
-        f"CRS: {crs_label(dem)}",
-    ]
-    if crs.is_geographic:
-        comments.append(f"spill_x_{crs_unit_suffix(crs)}, spill_y_{crs_unit_suffix(crs)}: "
-                        "longitude and latitude in the DEM's CRS")
-    comments += [
-        "spill_lon_deg, spill_lat_deg: the spill point in WGS84 degrees",
-        f"connectivity: {connectivity}",
-        "pit_row, pit_col, spill_row, spill_col: 0-based cell indices, rows from the top",
-        "spills_to: id of the depression the overflow reaches next; 0 = an outlet",
-    ]
-    return write_table_csv(path, comments, table_columns(table, dem))
+def write_depression_table_csv(table, dem: "DEM", path: str | os.PathLike, *,
+                               rows: np.ndarray | None = None,
+                               extra: dict[str, np.ndarray] | None = None) -> Path:
+    """:func:`write_depressions_csv` from a :class:`~sillmark.engine.flood.DepressionTable` itself.
+
+    ``rows`` (boolean per depression, or None for all) picks the depressions
+    listed; ``extra`` adds columns (one value per depression of the table, picked
+    by ``rows`` too) after the table's own.
+    """
+    columns = table_columns(table, dem)
+    if extra:
+        columns.update(extra)
+    if rows is not None:
+        rows = np.asarray(rows)
+        if rows.dtype != bool or rows.shape != (len(table),):
+            raise InvalidParameter(
+                f"rows must be one boolean per depression ({len(table)}), not {rows.dtype} {rows.shape}")
+        columns = {name: np.asarray(values)[rows] for name, values in columns.items()}
+    return write_table_csv(path, columns)
 
 
-def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[str, np.ndarray]) -> Path:
-    """Write a CSV table atomically: ``# `` comment lines, a header, one row per entry.
+def write_table_csv(path: str | os.PathLike, columns: dict[str, np.ndarray]) -> Path:
+    """Write a CSV table atomically: the header on the first line, one row per entry.
 
-    ``comments`` are written after ``# ``, in order, before the header; put the
-    screening caution among them. ``columns`` maps each header to a numpy array
-    (all of one length); numbers are written as in ``depressions.csv`` (the
-    shortest text that reads back as the same float32 or float64, empty for
-    NaN), text made safe for spreadsheets, mixed columns (dtype object) cell by
-    cell (:func:`cell_text`). The header too is made safe for spreadsheets: it
-    may hold names a user chose.
+    Nothing comes before the header, so ``pandas.read_csv(path)`` or a
+    spreadsheet opens the file with their default settings; what the columns
+    mean and the screening caution go into the results folder's ``README.txt``
+    (:mod:`sillmark.io.readme`). ``columns`` maps each header to a numpy array
+    (all of one length); numbers are written as the shortest text that reads
+    back as the same float32 or float64 (empty for NaN), text made safe for
+    spreadsheets, mixed columns (dtype object) cell by cell
+    (:func:`cell_text`). The header too is made safe for spreadsheets: it may
+    hold names a user chose.
     """
     final = Path(path)
     arrays = {name: np.asarray(values) for name, values in columns.items()}
@@ -194,8 +187,6 @@ def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[
         raise InvalidParameter(f"the columns of {final.name} differ in length: {sorted(lengths)}")
     with atomic_output(final) as tmp:
         with open(tmp, "x", newline="", encoding="utf-8") as f:
-            for line in comments:
-                f.write(f"# {line}\n")
             writer = csv.writer(f, lineterminator="\n")
             writer.writerow(spreadsheet_safe(str(name)) for name in arrays)
             if arrays and lengths.pop():

@@ -7,24 +7,37 @@
 ``fill_depth.tif``          float32, onset stage minus elevation (0 outside depressions)
 ``depression_id.tif``       int32, depression of each cell (0 = in no depression)
 ``flood_tree.tif``          uint8, flood-tree codes (see :mod:`sillmark.engine.flood`)
-``depressions.csv``         one row per depression, units in the column names
-``depressions.geojson``     one (Multi)Polygon per depression, WGS84 lon/lat
-``spill_points.geojson``    one Point per depression at its spill cell centre, WGS84
+``depressions.csv``         one row per listed depression, units in the column names
+``depressions.geojson``     one (Multi)Polygon per listed depression, WGS84 lon/lat
+                            (``.gpkg`` in the DEM's CRS for large sets, see
+                            :mod:`sillmark.io.vector_layers`)
+``spill_points.geojson``    one Point per listed depression at its spill cell centre
+                            (``.gpkg`` likewise)
 ``depression_hierarchy.*``  the nested depressions, ``.csv`` and ``.json`` (see
                             :mod:`sillmark.io.hierarchy_files`, written by
                             :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`)
 ``depression_curves.csv``   stage–area and stage–storage of every hierarchy node
+``README.txt``              what each file holds, units, datum, minimum, caution
 ``summary.json``            grid, outlets, totals, version, time and the list of files
 ==========================  ==========================================================
+
+Which depressions are listed: every one, unless a significance minimum is
+given (:mod:`sillmark.products.significance`). Then the tables and layers list
+the depressions whose whole region reaches the minimum, the curves file the
+significant nodes of the hierarchy, and ``summary.json`` and ``README.txt`` say
+the minimum, its source and the counts; with ``full_inventory`` every
+depression is listed still, marked ``significant`` or not. The rasters, areas
+and volumes are exact either way.
 
 Nodata: the float rasters use NaN (the IEEE value, declared as the GeoTIFF nodata)
 on DEM nodata and on cells no outlet reaches. ``depression_id.tif`` uses -1 there,
 so that 0 keeps its meaning "valid cell in no depression". ``flood_tree.tif`` uses
 0, which is already the code for "no parent" (nodata or unreached).
 
-Every file carries :data:`sillmark.SCREENING_CAUTION`: as GeoTIFF tags
-(``SILLMARK_CAUTION``), as ``#`` comment lines of the CSV, as a property of every
-GeoJSON feature and as a member of the summary. The formats themselves live in
+Every file carries :data:`sillmark.SCREENING_CAUTION` where its format has a
+place for it: as GeoTIFF tags (``SILLMARK_CAUTION``), as a property of every
+GeoJSON feature, in a GeoPackage's metadata and as a member of the summary; the
+CSV tables start with their header row, so the caution is in ``README.txt``. The formats themselves live in
 :mod:`sillmark.io.geotiff`, :mod:`sillmark.io.csv_tables`,
 :mod:`sillmark.io.geojson` and :mod:`sillmark.io.summary`; every file is written
 atomically (:mod:`sillmark.io.atomic`).
@@ -40,8 +53,7 @@ from typing import TYPE_CHECKING
 
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_crs
-from sillmark.io.csv_tables import write_depressions_csv
-from sillmark.io.geojson import write_depressions_geojson, write_spill_points_geojson
+from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.geotiff import (
     Progress,
     check_result_grid,
@@ -52,7 +64,11 @@ from sillmark.io.geotiff import (
 )
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
 from sillmark.io.hierarchy_writer import HierarchyFiles, write_hierarchy_files
-from sillmark.io.summary import FILE_NAMES, write_summary
+from sillmark.io.readme import README_NAME, write_readme
+from sillmark.io.summary import FILE_NAMES, significance_member, write_summary
+from sillmark.io.vector_layers import write_depression_layer, write_spill_point_layer
+from sillmark.products.hierarchy_sweep import site_hierarchy
+from sillmark.products.significance import SiteMinimum, significance
 from sillmark.products.source import ArraySource
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -73,6 +89,7 @@ class ResultFiles:
 
     paths: list
     hierarchy: HierarchyFiles
+    significance: dict | None = None
 
 
 def write_results(
@@ -94,6 +111,10 @@ def write_result_files(
     out_dir: str | os.PathLike,
     *,
     progress: Progress | None = None,
+    minimum: SiteMinimum | None = None,
+    accuracy_stated: bool = False,
+    full_inventory: bool = False,
+    vector_format: str = "geojson",
 ) -> ResultFiles:
     """Write every result file of one site run into ``out_dir``.
 
@@ -110,11 +131,24 @@ def write_result_files(
     out_dir : path
     progress : callable, optional, keyword-only
         ``progress(file_name, done, total)``, see :data:`Progress`.
+    minimum : SiteMinimum, optional, keyword-only
+        The significance minimum (:func:`sillmark.products.significance.site_minimum`);
+        None lists every depression and writes no significance.
+    accuracy_stated : bool, keyword-only
+        The minimum's vertical accuracy was given by the user (said in the summary).
+    full_inventory : bool, keyword-only
+        With a minimum: still list and map every depression, with a
+        ``significant`` column.
+    vector_format : {"geojson", "gpkg", "auto"}, keyword-only
+        Of the outline and spill-point layers (:mod:`sillmark.io.vector_layers`).
 
     Returns
     -------
     ResultFiles
-        The paths in the order of :data:`FILE_NAMES`, and the hierarchy's counts.
+        The paths in the order of :data:`FILE_NAMES` (the layers under the
+        suffix written), ``README.txt`` before ``summary.json``, the hierarchy's
+        counts and the ``significance`` member of the summary (None without a
+        minimum).
 
     Raises
     ------
@@ -147,14 +181,36 @@ def write_result_files(
             progress(name, 1, 1)
         return written
 
+    source = ArraySource(dem, result)
+    rows = listed = extra = member = None
+    if minimum is not None:
+        step_name = "significance"
+        if progress is not None:
+            progress(step_name, 0, 1)
+        sig = significance(site_hierarchy(dem, result), minimum)
+        whole = sig.depression_to_significant[1:] > 0  # engine depressions listed as a whole
+        member = significance_member(sig, all_depressions=len(result.depressions),
+                                     accuracy_stated=accuracy_stated,
+                                     full_inventory=full_inventory)
+        if full_inventory:
+            extra = {"significant": whole}
+        else:
+            rows, listed = whole, sig.significant
+        del sig
+        if progress is not None:
+            progress(step_name, 1, 1)
+
     paths = [
         write_onset_stage(result, dem, out / FILE_NAMES[0], progress=progress),
         write_fill_depth(result, dem, out / FILE_NAMES[1], progress=progress),
         write_depression_ids(result, dem, out / FILE_NAMES[2], progress=progress),
         write_flood_tree(result, dem, out / FILE_NAMES[3], progress=progress),
-        step(FILE_NAMES[4], lambda: write_depressions_csv(result, dem, out / FILE_NAMES[4])),
-        step(FILE_NAMES[5], lambda: write_depressions_geojson(ArraySource(dem, result), out / FILE_NAMES[5])),
-        step(FILE_NAMES[6], lambda: write_spill_points_geojson(result, dem, out / FILE_NAMES[6])),
+        step(FILE_NAMES[4], lambda: write_depression_table_csv(
+            result.depressions, dem, out / FILE_NAMES[4], rows=rows, extra=extra)),
+        step(FILE_NAMES[5], lambda: write_depression_layer(
+            source, out, rows=rows, extra=extra, vector_format=vector_format)),
+        step(FILE_NAMES[6], lambda: write_spill_point_layer(
+            result.depressions, dem, out, rows=rows, vector_format=vector_format)),
     ]
     names = HIERARCHY_FILE_NAMES
 
@@ -167,15 +223,20 @@ def write_result_files(
         if done < total:
             progress(names[done], 0, 1)
 
-    written = write_hierarchy_files(ArraySource(dem, result), out, progress=hierarchy_step)
+    written = write_hierarchy_files(source, out, progress=hierarchy_step, listed=listed)
     paths.extend(written.files)
     summary_name = FILE_NAMES[-1]
+    paths.append(step(README_NAME, lambda: write_readme(
+        out, [p.name for p in paths] + [summary_name], grid=dem,
+        title=f"analysis of {Path(dem.path).name if getattr(dem, 'path', None) else 'a DEM'}",
+        connectivity=result.connectivity, significance=member)))
     paths.append(
         step(
             summary_name,
-            lambda: write_summary(result, dem, outlets, out / summary_name, files=[p.name for p in paths]),
+            lambda: write_summary(result, dem, outlets, out / summary_name,
+                                  files=[p.name for p in paths], significance=member),
         )
     )
-    return ResultFiles(paths=paths, hierarchy=written)
+    return ResultFiles(paths=paths, hierarchy=written, significance=member)
 
 

@@ -81,7 +81,8 @@ def write_feature_collection(path: str | os.PathLike, members: dict, features) -
 
 
 def write_depressions_geojson(source: "ResultSource", path: str | os.PathLike, *,
-                              window: int | None = None) -> Path:
+                              window: int | None = None, rows: np.ndarray | None = None,
+                              extra: dict[str, np.ndarray] | None = None) -> Path:
     """Write ``depressions.geojson``: one Feature per depression, WGS84 lon/lat.
 
     Follows RFC 7946: no ``crs`` member (section 4), positions are longitude,
@@ -98,16 +99,24 @@ def write_depressions_geojson(source: "ResultSource", path: str | os.PathLike, *
     Outline vertices are reprojected one by one; the cell edges between them are
     not densified, which on a site-sized DEM moves an edge by far less than a cell.
     A site crossing the antimeridian is not split (section 3.1.9).
+
+    ``rows`` (boolean per depression, None for all) picks the depressions
+    written; ``extra`` adds properties (one value per depression).
     """
     grid = source.grid
     unit = unit_of(grid)
     transformer = wgs84_transformer(grid)  # fails before reading if there is no CRS
     outlines = depression_outlines(source, window=window)
-    columns = source.depression_columns
+    columns = {name: np.asarray(values)
+               for name, values in {**source.depression_columns, **(extra or {})}.items()}
+    keep = None if rows is None else np.asarray(rows, dtype=bool)
 
     def features() -> Iterator[dict]:
         for k, outline in enumerate(outlines):
-            properties = {name: json_number(values[k]) for name, values in columns.items()}
+            if keep is not None and not keep[k]:
+                continue
+            properties = {name: bool(values[k]) if values.dtype == bool else json_number(values[k])
+                          for name, values in columns.items()}
             properties["vertical_unit"] = unit.value
             properties["caution"] = SCREENING_CAUTION
             yield {
@@ -132,8 +141,12 @@ def write_spill_points_geojson(result: "SpillResult", dem: "DEM", path: str | os
     return write_spill_points_table(result.depressions, dem, path)
 
 
-def write_spill_points_table(table, dem: "DEM", path: str | os.PathLike) -> Path:
-    """:func:`write_spill_points_geojson` from a :class:`~sillmark.engine.flood.DepressionTable` itself."""
+def write_spill_points_table(table, dem: "DEM", path: str | os.PathLike, *,
+                             rows: np.ndarray | None = None) -> Path:
+    """:func:`write_spill_points_geojson` from a :class:`~sillmark.engine.flood.DepressionTable` itself.
+
+    ``rows`` (boolean per depression, None for all) picks the spill points written.
+    """
     final = Path(path)
     t = table
     unit = unit_of(dem)
@@ -157,8 +170,10 @@ def write_spill_points_table(table, dem: "DEM", path: str | os.PathLike) -> Path
     lons = np.asarray(lon, dtype=np.float64).tolist()
     lats = np.asarray(lat, dtype=np.float64).tolist()
 
+    picked = range(len(t)) if rows is None else np.flatnonzero(np.asarray(rows, dtype=bool)).tolist()
+
     def features() -> Iterator[dict]:
-        for k in range(len(t)):
+        for k in picked:
             yield {
                 "type": "Feature",
                 "id": ids[k],

@@ -285,11 +285,10 @@ def json_text(value) -> str:
 # file) per window of depressions, so any cut into windows gives the same bytes.
 
 
-def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
-    """``# `` comment lines and the header row of a table CSV (as
-    :func:`sillmark.io.csv_tables.write_table_csv` writes them)."""
-    lines = "".join(f"# {line}\n" for line in comments)
-    return lines + _csv_text([list(columns)])
+def csv_head(columns: dict | Iterable[str]) -> str:
+    """The header row of a table CSV, the file's first line (as
+    :func:`sillmark.io.csv_tables.write_table_csv` writes it)."""
+    return _csv_text([list(columns)])
 
 
 def csv_rows(columns: dict[str, np.ndarray]) -> str:

@@ -27,7 +27,7 @@ Steps
    written as text into scratch part files. Without ``map`` the batches run in
    order in this process, so each is formatted as soon as it is built, its
    tables never written to scratch.
-4. **Concatenate** (this process): each file is its head (comments, header;
+4. **Concatenate** (this process): each file is its head (the header row;
    for the JSON the node count) and the batches' parts in order, written
    atomically. The scratch folder ``.sillmark-hierarchy-*`` inside the output
    folder is removed.
@@ -140,6 +140,8 @@ class _Job:
     max_points: int
     step_rows: int
     curve_names: tuple = ()
+    #: Boolean per hierarchy node (index ``id - 1``): write its curve; None = every node.
+    listed: np.ndarray | None = None
 
     def part(self, k: int, what: str) -> str:
         return os.path.join(self.scratch, f"batch{k:06d}_{what}")
@@ -209,6 +211,13 @@ def _write_parts(job: _Job, k: int, table: HierarchyTable, curves: dict, node_of
     curves = dict(curves)
     curves["node_id"] = (curves["node_id"] + node_offset).astype(np.int32)
     curves["depression"] = (curves["depression"] + depression_offset).astype(np.int32)
+    if job.listed is not None:
+        if len(table) and int(table.id.max()) > job.listed.shape[0]:
+            raise InvalidParameter(
+                f"'listed' holds {job.listed.shape[0]} nodes but the hierarchy has more; "
+                "compute it on the same result")
+        keep = job.listed[curves["node_id"] - 1]
+        curves = {name: np.asarray(values)[keep] for name, values in curves.items()}
     for what, text in (
         ("nodes.csv", hx.csv_rows(hx.node_table_columns(table, unit, placed))),
         ("nodes.json", ",".join(hx.json_node_texts(table))),
@@ -272,6 +281,7 @@ def write_hierarchy_files(
     progress: Callable[[str, int, int], None] | None = None,
     window_cells: int | None = None,
     keep_scratch: bool = False,
+    listed: np.ndarray | None = None,
 ) -> HierarchyFiles:
     """Write the three depression-hierarchy files of a result into ``out_dir``.
 
@@ -299,6 +309,11 @@ def write_hierarchy_files(
         :data:`DEFAULT_WINDOW_CELLS`.
     keep_scratch : bool, keyword-only
         Keep the scratch folder (for debugging).
+    listed : bool ndarray, optional, keyword-only
+        One value per hierarchy node (index ``id - 1``, the site's post-order
+        ids): write the curves of these nodes only, e.g. the significant ones
+        (:attr:`sillmark.products.significance.Significance.significant`).
+        None (default): every node.
 
     Returns
     -------
@@ -373,9 +388,13 @@ def write_hierarchy_files(
     times["bounds"] = time.perf_counter() - t0
     scratch = out / f"{_SCRATCH_PREFIX}{uuid.uuid4().hex[:12]}"
     scratch.mkdir()
+    if listed is not None:
+        listed = np.asarray(listed)
+        if listed.dtype != bool or listed.ndim != 1:
+            raise InvalidParameter("'listed' must be a 1-D boolean array, one value per hierarchy node")
     job = _Job(layers=_task_layers(source), transform=grid.transform, scratch=str(scratch),
                connectivity=connectivity, unit=unit.value, max_points=hx.MAX_CURVE_POINTS,
-               step_rows=hx.STEP_ROWS)
+               step_rows=hx.STEP_ROWS, listed=listed)
     empty = _empty_hierarchy(job)
     job = dataclasses.replace(job, curve_names=tuple(hx.curve_part_columns(empty, unit)))
     placed = _Placed(grid.crs)
@@ -402,6 +421,9 @@ def write_hierarchy_files(
             times["format"] = time.perf_counter() - t0
         times["batch_tasks"] = sum(b["task_s"] for b in built)
         nodes = sum(b["nodes"] for b in built)
+        if listed is not None and listed.shape[0] != nodes:
+            raise InvalidParameter(f"'listed' holds {listed.shape[0]} nodes, the hierarchy "
+                                   f"{nodes}; compute it on the same result")
 
         t0 = time.perf_counter()
         files = _concatenate(out, job, grid, len(built), nodes, empty, report)
@@ -427,8 +449,7 @@ def _concatenate(out: Path, job: _Job, grid: Any, batches: int, nodes: int, empt
     report("hierarchy_write", 0, total)
     csv_path = hx.write_csv_parts(
         out / hx.HIERARCHY_CSV,
-        hx.csv_head(hx.hierarchy_csv_comments(unit, connectivity, grid),
-                    hx.node_table_columns(empty.nodes, unit, grid)),
+        hx.csv_head(hx.node_table_columns(empty.nodes, unit, grid)),
         [job.part(k, "nodes.csv") for k in parts],
     )
     report("hierarchy_write", 1, total)
@@ -439,8 +460,7 @@ def _concatenate(out: Path, job: _Job, grid: Any, batches: int, nodes: int, empt
     report("hierarchy_write", 2, total)
     curves_path = hx.write_csv_parts(
         out / hx.CURVES_CSV,
-        hx.csv_head(hx.curves_csv_comments(unit, connectivity, grid),
-                    hx.curve_part_columns(empty, unit)),
+        hx.csv_head(hx.curve_part_columns(empty, unit)),
         [job.part(k, "curves.csv") for k in parts],
     )
     report("hierarchy_write", 3, total)

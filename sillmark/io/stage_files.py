@@ -8,6 +8,7 @@ writes, with ``{h}`` the :func:`level_label` of the level (``47.60m``,
 ``depth_{h}.tif``               float32, ``h - elevation`` on flooded cells, NaN elsewhere
 ``water_state_{h}.tif``         uint8, 0 nodata, 1 dry, 2 flooded, 3 shielded low ground
 ``flood_extent_{h}.geojson``    the flooded cells as one (Multi)Polygon, WGS84 lon/lat
+                                (``.gpkg`` in the DEM's CRS when asked for, or by size)
 ``shielded_{h}.geojson``        the shielded low ground as one (Multi)Polygon, WGS84
 ``depressions_at_{h}.csv``      every depression with its state and freeboard at ``h``
 ==============================  ======================================================
@@ -20,9 +21,10 @@ Every function takes a result source (:mod:`sillmark.products.source`): a result
 in memory, or a results folder on disk read block by block, with the same files.
 The files follow the conventions of :mod:`sillmark.io.geotiff`, :mod:`sillmark.io.csv_tables`
 and :mod:`sillmark.io.geojson`: GeoTIFFs tiled and
-compressed with the CRS kept, GeoJSON after RFC 7946, CSV with ``# `` comment
-lines before the header; every file carries :data:`sillmark.SCREENING_CAUTION`
-and is written atomically (temporary name, then rename). The files hold nothing
+compressed with the CRS kept, GeoJSON after RFC 7946, CSV with the header on
+the first line; every file carries :data:`sillmark.SCREENING_CAUTION` where its
+format has a place for it (the CSVs through the folder's ``README.txt``) and
+is written atomically (temporary name, then rename). The files hold nothing
 about how the result was obtained (no paths, no clock time), so the same site and
 levels always give byte-identical files.
 """
@@ -37,12 +39,14 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
+import shapely
 
-from sillmark import SCREENING_CAUTION, __version__, units
+from sillmark import SCREENING_CAUTION, units
 from sillmark.errors import InvalidParameter
 from sillmark.grid import crs
-from sillmark.io import csv_tables, geotiff, json_values
+from sillmark.io import csv_tables, geotiff, json_values, vector_layers
 from sillmark.io import geojson as geojson_files
+from sillmark.io.geopackage import write_geopackage_layer
 from sillmark.products.outlines import DEFAULT_WINDOW, label_outlines
 from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
@@ -142,13 +146,19 @@ class LevelFileNames:
         return iter(dataclasses.astuple(self))
 
 
-def level_file_names(level, unit: VerticalUnit | str) -> LevelFileNames:
+def level_file_names(level, unit: VerticalUnit | str, *, kind: str = "") -> LevelFileNames:
     """Names of the five files :func:`write_level` writes for ``level``.
+
+    ``kind`` names what the level is when it is not one water level across the
+    site: ``"offset"`` for a rise of a water-surface profile
+    (:class:`sillmark.products.profile.OffsetSource`).
 
     >>> list(level_file_names(47.6, "m"))[:2]
     ['depth_47.60m.tif', 'water_state_47.60m.tif']
+    >>> level_file_names(0.5, "m", kind="offset").depth
+    'depth_offset_0.50m.tif'
     """
-    h = level_label(level, unit)
+    h = f"{kind}_{level_label(level, unit)}" if kind else level_label(level, unit)
     return LevelFileNames(
         depth=f"depth_{h}.tif",
         water_state=f"water_state_{h}.tif",
@@ -161,9 +171,13 @@ def level_file_names(level, unit: VerticalUnit | str) -> LevelFileNames:
 # --------------------------------------------------------------------------- one level
 
 
-def _level_tags(level, unit: VerticalUnit, connectivity: int) -> dict[str, str]:
-    return {"WATER_LEVEL": level_text(level), "WATER_LEVEL_UNIT": unit.value,
+def _level_tags(level, unit: VerticalUnit, connectivity: int, kind: str = "") -> dict[str, str]:
+    tags = {"WATER_LEVEL": level_text(level), "WATER_LEVEL_UNIT": unit.value,
             "CONNECTIVITY": str(connectivity)}
+    if kind == "offset":
+        tags["WATER_LEVEL_MEANING"] = ("offset: rise of the whole water-surface profile; the water "
+                                       "surface is the profile level plus this offset")
+    return tags
 
 
 def _write_depth(source: "ResultSource", blocks: LevelBlocks, path: Path,
@@ -176,7 +190,8 @@ def _write_depth(source: "ResultSource", blocks: LevelBlocks, path: Path,
         layer="depth",
         description=f"depth of water reached from the outlets at water level "
         f"{level_text(blocks.level)} {unit.symbol} ({unit.symbol})",
-        band_unit=units.unit_name(unit), extra_tags=_level_tags(blocks.level, unit, source.connectivity),
+        band_unit=units.unit_name(unit), extra_tags=_level_tags(blocks.level, unit, source.connectivity,
+                                                               getattr(source, "level_kind", "")),
         progress=progress,
     )
 
@@ -190,7 +205,7 @@ def _write_water_state(source: "ResultSource", blocks: LevelBlocks, path: Path,
     explains them.
     """
     unit = source.unit
-    tags = _level_tags(blocks.level, unit, source.connectivity)
+    tags = _level_tags(blocks.level, unit, source.connectivity, getattr(source, "level_kind", ""))
     tags["WATER_STATE_CLASSES"] = _STATE_CODES
     tags.update({f"CLASS_{code}": CLASS_NAMES[code] for code in (NODATA, DRY, FLOODED, SHIELDED)})
     tags["WATER_STATE_MEANING"] = _STATE_MEANING
@@ -252,34 +267,45 @@ def write_class_collection(path, grid, *, level, state: int, name: str, totals: 
 
 
 def _write_class_geojson(source: "ResultSource", level: float, totals: tuple[float, float],
-                         state_path: Path, path: Path, state: int, name: str, window: int) -> Path:
-    """``flood_extent_{h}.geojson`` or ``shielded_{h}.geojson``: the class's cells of the
-    written ``water_state_{h}.tif``, outlined window by window."""
+                         state_path: Path, path: Path, state: int, name: str, window: int,
+                         vector_format: str = "geojson") -> Path:
+    """``flood_extent_{h}`` or ``shielded_{h}``: the class's cells of the written
+    ``water_state_{h}.tif``, outlined window by window; ``.geojson``, or ``.gpkg``
+    in the DEM's CRS when ``vector_format`` asks for it (``"auto"``: more than
+    :data:`sillmark.io.vector_layers.GEOJSON_MAX_FEATURES` polygon parts)."""
+    crs.horizontal_crs(source.grid)  # fails before tracing if there is no CRS
 
     def select(block: np.ndarray):
         return block == np.uint8(state), block.astype(np.int32)
 
-    def outline():
-        found = label_outlines(partial(geotiff.read_window, state_path), tuple(source.grid.shape),
-                               source.grid.transform, select, window=window)
-        return found.get(state)
-
-    return write_class_collection(path, source.grid, level=level, state=state, name=name, totals=totals,
-                                  connectivity=source.connectivity, outline=outline)
+    polygon = label_outlines(partial(geotiff.read_window, state_path), tuple(source.grid.shape),
+                             source.grid.transform, select, window=window).get(state)
+    parts = 0 if polygon is None else int(shapely.get_num_geometries(polygon))
+    suffix = vector_layers.vector_suffix(vector_format, parts)
+    if suffix == ".geojson":
+        return write_class_collection(path, source.grid, level=level, state=state, name=name,
+                                      totals=totals, connectivity=source.connectivity,
+                                      outline=lambda: polygon)
+    unit = units.unit_of(source.grid)
+    area, volume = totals
+    attributes = {"level": [np.float32(level)], "class": [CLASS_NAMES[state]],
+                  "area_m2": [float(area)], "area_ha": [float(area) / 1e4],
+                  "volume_m3": [float(volume)]}
+    if unit.is_feet:
+        attributes["volume_acre_ft"] = [float(volume) / ACRE_FOOT_M3]
+    shapes = [] if polygon is None else [polygon]
+    if polygon is None:
+        attributes = {k: v[:0] for k, v in attributes.items()}
+    what = "flooded from the outlets" if name == "flood_extent" else "shielded low ground"
+    return write_geopackage_layer(
+        path.with_suffix(".gpkg"), shapes, attributes, crs=source.grid, layer=name,
+        geometry_type="MultiPolygon",
+        description=f"Ground {what} at water level {level_text(level)} {unit.value} "
+                    f"({len(shapes)} feature; area in m2, volume in m3).",
+    )
 
 
 # --------------------------------------------------------------------------- tables
-
-
-def _comment_head(title: str, source: "ResultSource") -> list[str]:
-    unit = source.unit
-    return [
-        f"Sillmark {__version__} {title}",
-        f"CAUTION: {SCREENING_CAUTION}",
-        f"vertical unit: {unit.value} ({units.unit_name(unit)})",
-        f"CRS: {crs.crs_label(source.grid)}",
-        f"connectivity: {source.connectivity}",
-    ]
 
 
 def stage_table_columns(table: StageTable) -> dict[str, np.ndarray]:
@@ -312,11 +338,7 @@ def write_stage_table_csv(source: "ResultSource", table: StageTable, path: str |
             f"the stage table is in {VerticalUnit.parse(table.unit).value} but the site in "
             f"{source.unit.value}; compute the table with the site's vertical unit"
         )
-    comments = _comment_head("stage table", source) + [
-        "flooded: cells reached from the outlets at the level; volume = water above the ground on them",
-        "shielded: ground below the level that no surface path reaches; volume = what it would hold if reached",
-    ]
-    return csv_tables.write_table_csv(path, comments, stage_table_columns(table))
+    return csv_tables.write_table_csv(path, stage_table_columns(table))
 
 
 _DEPRESSION_STATE_NOTE = (
@@ -349,13 +371,7 @@ def write_depressions_at_csv(source: "ResultSource", level, path: str | os.PathL
                  "spill_lon_deg", "spill_lat_deg", "area_m2", "area_ha", "volume_m3", "volume_acre_ft"):
         if name in table:
             cols[name] = table[name]
-    comments = _comment_head("depressions at one water level", source) + [
-        f"water level: {level_text(level)} {unit.value}",
-        _DEPRESSION_STATE_NOTE,
-        f"freeboard_{v}: spill elevation minus the water level (negative once overtopped)",
-        "volume_m3: storage of the depression full to its spill elevation",
-    ]
-    return csv_tables.write_table_csv(path, comments, cols)
+    return csv_tables.write_table_csv(path, cols)
 
 
 # --------------------------------------------------------------------------- one level, all levels
@@ -392,7 +408,8 @@ def _outline_window(source: "ResultSource", window: int | None) -> int:
 
 
 def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
-                window: int | None = None, progress: geotiff.Progress | None = None) -> LevelFiles:
+                window: int | None = None, progress: geotiff.Progress | None = None,
+                vector_format: str = "geojson") -> LevelFiles:
     """Write the five files of one water level into ``out_dir`` (see :func:`level_file_names`).
 
     Parameters
@@ -409,6 +426,10 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
         in memory, :data:`sillmark.products.outlines.DEFAULT_WINDOW` on disk).
     progress : callable, optional
         ``progress(file_name, done, total)``.
+    vector_format : {"geojson", "gpkg", "auto"}
+        Of the flooded and shielded outlines (:mod:`sillmark.io.vector_layers`;
+        ``"auto"`` by their number of polygon parts). A GeoPackage replaces the
+        ``.geojson`` of :func:`level_file_names` under the same stem.
 
     Notes
     -----
@@ -422,7 +443,8 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
     unit = source.unit
     h = checked_level(level)
     folder = _out_folder(out_dir)
-    names = level_file_names(h, unit)
+    kind = getattr(source, "level_kind", "")
+    names = level_file_names(h, unit, kind=kind)
     blocks = level_blocks(source, h)
     depth_path = _write_depth(source, blocks, folder / names.depth, progress)
     state_path = _write_water_state(source, blocks, folder / names.water_state, progress)
@@ -442,12 +464,14 @@ def write_level(source: "ResultSource", level, out_dir: str | os.PathLike, *,
         state_path,
         step(names.flood_extent, lambda: _write_class_geojson(
             source, float(h), (flooded_area, flooded_volume), state_path,
-            folder / names.flood_extent, FLOODED, "flood_extent", size)),
+            folder / names.flood_extent, FLOODED, "flood_extent", size, vector_format)),
         step(names.shielded, lambda: _write_class_geojson(
             source, float(h), (shielded_area, shielded_volume), state_path,
-            folder / names.shielded, SHIELDED, "shielded", size)),
-        step(names.depressions, lambda: write_depressions_at_csv(source, float(h), folder / names.depressions)),
+            folder / names.shielded, SHIELDED, "shielded", size, vector_format)),
     )
+    if not kind:  # depressions belong to one water level across the site
+        paths += (step(names.depressions, lambda: write_depressions_at_csv(
+            source, float(h), folder / names.depressions)),)
     states, _ = depression_states(source, h)
     return LevelFiles(
         level=float(h), unit=unit, paths=paths,
@@ -489,12 +513,13 @@ def write_stage_results(
     table_levels=None,
     window: int | None = None,
     progress: geotiff.Progress | None = None,
+    vector_format: str = "geojson",
 ) -> StageFiles:
     """Write the files of every level in ``levels`` and, if ``table_levels`` is
     given, ``stage_table.csv`` at those levels (e.g. from :func:`sillmark.products.stage.stage_levels`).
 
     Levels equal at float32 precision are written once; levels are written in
-    ascending order.
+    ascending order. ``vector_format`` as for :func:`write_level`.
     """
     crs.horizontal_crs(source.grid)
     unique = unique_levels(levels) if len(levels) else np.empty(0, np.float32)
@@ -503,7 +528,9 @@ def write_stage_results(
     if not len(unique) and table_levels is None:
         raise InvalidParameter("give at least one water level or the levels of a stage table")
     folder = _out_folder(out_dir)
-    written = tuple(write_level(source, h, folder, window=window, progress=progress) for h in unique)
+    vector_layers.vector_suffix(vector_format, 0)  # an unknown format fails before any work
+    written = tuple(write_level(source, h, folder, window=window, progress=progress,
+                                vector_format=vector_format) for h in unique)
     table = table_path = None
     if table_levels is not None:
         if progress is not None:

@@ -24,6 +24,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
     from sillmark.grid.dem import DEM
     from sillmark.grid.outlets import Outlets
+    from sillmark.products.significance import Significance
 
 
 #: File names :func:`write_results` writes, in the order it writes them.
@@ -42,18 +43,68 @@ FILE_NAMES = (
 )
 
 
-def _summary(result: "SpillResult", dem: "DEM", outlets: "Outlets", files: list[str]) -> dict:
+def _summary(result: "SpillResult", dem: "DEM", outlets: "Outlets", files: list[str],
+             significance: dict | None = None) -> dict:
     return _summary_payload(
         result.depressions, dem, connectivity=result.connectivity,
         unreached_cells=result.unreached_cells,
         valid_cells=int(np.count_nonzero(~np.isnan(result.elevation))),
         outlet_sources=outlets.sources, outlet_count=outlets.count, files=files,
+        significance=significance,
     )
+
+
+def significance_member(sig: "Significance", *, all_depressions: int, accuracy_stated: bool,
+                        full_inventory: bool = False) -> dict:
+    """The ``significance`` member of ``summary.json``: the minimum, where it comes from,
+    and the counts.
+
+    ``accuracy_stated``: the vertical accuracy was given by the user (else it is
+    :data:`sillmark.products.significance.DEFAULT_VERTICAL_ACCURACY_M`).
+    """
+    from sillmark.products.significance import (
+        DEFAULT_VERTICAL_ACCURACY_M,
+        DEPTH_PER_ACCURACY,
+    )
+
+    m = sig.minimum
+    unit = m.unit
+    if np.isnan(m.vertical_accuracy):
+        source = "given directly as a depth"
+        accuracy = None
+    else:
+        factor = m.min_depth / m.vertical_accuracy
+        times = f"{factor:.6g} x" if not np.isclose(factor, DEPTH_PER_ACCURACY) else \
+            f"{DEPTH_PER_ACCURACY:g} x"
+        if accuracy_stated:
+            source = (f"{times} the stated vertical accuracy of the DEM, "
+                      f"{m.vertical_accuracy:.6g} {unit.value}")
+        else:
+            source = (f"{times} the default vertical accuracy {DEFAULT_VERTICAL_ACCURACY_M:g} m, "
+                      "usual for airborne lidar (a value recalled from memory, not a cited "
+                      "standard); state the survey's own accuracy to change it")
+        accuracy = {"value": float(m.vertical_accuracy), "unit": unit.value,
+                    "stated": bool(accuracy_stated)}
+    top = sig.table.parent == 0
+    return {
+        "min_depth": {"value": float(m.min_depth), "unit": unit.value},
+        "min_area_m2": float(m.min_area_m2),
+        "min_volume_m3": float(m.min_volume_m3),
+        "vertical_accuracy": accuracy,
+        "source": source,
+        "full_inventory": bool(full_inventory),
+        "counts": {
+            "significant": len(sig),
+            "significant_top": int(np.count_nonzero(top)),
+            "all_depressions": int(all_depressions),
+            "hierarchy_nodes": int(sig.significant.shape[0]),
+        },
+    }
 
 
 def _summary_payload(table, dem: "DEM", *, connectivity: int, unreached_cells: int,
                      valid_cells: int, outlet_sources, outlet_count: int, files: list[str],
-                     engine: dict | None = None) -> dict:
+                     engine: dict | None = None, significance: dict | None = None) -> dict:
     t = table
     unit = unit_of(dem)
     crs = horizontal_crs(dem)
@@ -108,6 +159,7 @@ def _summary_payload(table, dem: "DEM", *, connectivity: int, unreached_cells: i
         },
         "files": files,
         **({"engine": engine} if engine else {}),
+        **({"significance": significance} if significance else {}),
     }
 
 
@@ -134,17 +186,20 @@ def write_table_summary(
 
 def write_summary(
     result: "SpillResult", dem: "DEM", outlets: "Outlets", path: str | os.PathLike,
-    *, files: list[str] | None = None,
+    *, files: list[str] | None = None, significance: dict | None = None,
 ) -> Path:
     """Write ``summary.json``: grid, outlets, totals in SI, caution, version, time, files.
 
     ``files`` lists the names of the other files of the run; the summary adds its own.
+    ``significance`` (from :func:`significance_member`) is written as the member
+    ``significance``. The depression totals are over every depression, whatever
+    the significance minimum: they are exact.
     """
     final = Path(path)
     names = list(files or [])
     if final.name not in names:
         names.append(final.name)
-    return write_json(final, _summary(result, dem, outlets, names))
+    return write_json(final, _summary(result, dem, outlets, names, significance))
 
 
 @dataclasses.dataclass(frozen=True)

@@ -28,6 +28,7 @@ from sillmark.engine.flood import SpillResult
 from sillmark.errors import InvalidParameter
 from sillmark.grid.assets import STATUS_OK, STATUS_UNREACHED, Assets
 from sillmark.grid.crs import LonLatTransformer
+from sillmark.products.cutoff import asset_cutoff
 from sillmark.products.stage import checked_level
 from sillmark.units import VerticalUnit
 
@@ -122,6 +123,9 @@ class AssetTable:
     route_cells : tuple of (n, 2) int32 arrays
         ``(row, col)`` of the route, from the outlet cell to the asset's cell
         (``(0, 2)`` arrays without figures). See :meth:`route_xy`, :meth:`route_lonlat`.
+    cutoff : AssetCutOff or None
+        With refuges: each asset's cut-off stage and island window
+        (:func:`sillmark.products.cutoff.asset_cutoff`).
 
     Notes
     -----
@@ -157,6 +161,7 @@ class AssetTable:
     sill_elevation: np.ndarray
     sill_is_own_cell: np.ndarray
     route_cells: tuple
+    cutoff: Any = None
 
     #: The per-asset columns, in order.
     COLUMNS = (
@@ -225,7 +230,8 @@ class AssetTable:
 # --------------------------------------------------------------------------- assessing
 
 
-def assess_assets(assets: Assets, dem: "DEM", result: SpillResult, level: Any) -> AssetTable:
+def assess_assets(assets: Assets, dem: "DEM", result: SpillResult, level: Any, *,
+                  cutoff: Any = None) -> AssetTable:
     """Onset stage, state at ``level``, depth, freeboard, controlling sill and route of each asset.
 
     Parameters
@@ -238,6 +244,9 @@ def assess_assets(assets: Assets, dem: "DEM", result: SpillResult, level: Any) -
     level : float
         Outlet water level ``h`` in the DEM's vertical unit; compared at float32
         precision, like :func:`sillmark.products.stage.water_level_map`.
+    cutoff : CutOff, optional
+        The cut-off stage of the site (:func:`sillmark.products.cutoff.cutoff_stage`):
+        adds each asset's cut-off stage and island window.
 
     Returns
     -------
@@ -350,6 +359,9 @@ def assess_assets(assets: Assets, dem: "DEM", result: SpillResult, level: Any) -
         sill_elevation=sill_z,
         sill_is_own_cell=own,
         route_cells=tuple(routes),
+        cutoff=None if cutoff is None else asset_cutoff(
+            cutoff, np.where(ok, [a.row for a in assets], -1),
+            np.where(ok, [a.col for a in assets], -1), float(h)),
     )
 
 

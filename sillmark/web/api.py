@@ -409,7 +409,10 @@ def level_zip(site_id: int, level: str):
             with _lock_for((site_id, data.run_id, folder.name, "zip")):
                 if not path.is_file():  # built once; the others waited for it
                     try:
-                        _write_level_zip(folder, path)
+                        _write_level_zip(folder, path, grid=data.dem,
+                                         title=f"site {site_id} at water level {label}",
+                                         vertical_datum=row["vertical_datum"],
+                                         connectivity=data.result.connectivity)
                     except FileNotFoundError:
                         return path.name  # the folder was removed meanwhile: open() says so
                     except OSError as exc:
@@ -424,17 +427,24 @@ def level_zip(site_id: int, level: str):
                      max_age=0)
 
 
-def _write_level_zip(folder: Path, path: Path) -> None:
-    """Zip every export of ``folder`` with the caution into ``path``, through a temporary
-    file of this call's own (so a second writer can never truncate or move it)."""
+def _write_level_zip(folder: Path, path: Path, *, grid, title: str, vertical_datum,
+                     connectivity: int) -> None:
+    """Zip every export of ``folder`` into ``path`` with ``README.txt`` (what each file
+    holds, units, datum and the caution; :mod:`sillmark.io.readme`), through a
+    temporary file of this call's own (so a second writer can never truncate or move it)."""
+    from sillmark.io.readme import README_NAME, readme_text
 
     tmp = path.with_name(f".{path.stem}.{secrets.token_hex(6)}.tmp")
     try:
+        files = [f for f in sorted(folder.iterdir())
+                 if f.is_file() and not f.name.startswith(".") and f.suffix != ".zip"
+                 and f.name != README_NAME]
         with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-            zf.writestr("CAUTION.txt", SCREENING_CAUTION + "\n")
-            for f in sorted(folder.iterdir()):
-                if f.is_file() and not f.name.startswith(".") and f.suffix != ".zip":
-                    zf.write(f, arcname=f.name)
+            zf.writestr(README_NAME, readme_text(
+                [f.name for f in files], grid=grid, title=title, vertical_datum=vertical_datum,
+                connectivity=connectivity))
+            for f in files:
+                zf.write(f, arcname=f.name)
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

@@ -174,7 +174,7 @@ def test_full_run_writes_every_file_and_summarises_with_units(capsys, dem_tif, t
     assert err == ""  # stderr is not a terminal here: no progress display
     for name in FILE_NAMES:
         assert (out_dir / name).is_file() and (out_dir / name).stat().st_size > 0
-    assert sorted(p.name for p in out_dir.iterdir()) == sorted(FILE_NAMES)
+    assert sorted(p.name for p in out_dir.iterdir()) == sorted([*FILE_NAMES, "README.txt"])
     # The basin: 12 cells of 25 m² = 300 m² = 0.03 ha, 4 m deep to the 6 m ground.
     assert "Depressions: 1, total area 0.03 ha" in out
     assert ("1,200.0 m³" in out) or ("1,200.0 m3" in out)

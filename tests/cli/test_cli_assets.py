@@ -97,7 +97,8 @@ def test_assets_are_counted_listed_and_written_per_level(capsys, ridge_tif, four
     assert "Results: 14 files" in out  # 5 + 2 per level
 
     comments, rows = read_rows(out_dir / "assets_2.80m.csv")
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
+    assert comments == []  # the header first; the caution is in README.txt
+    assert " ".join(SCREENING_CAUTION.split()) in " ".join((out_dir / "README.txt").read_text().split())
     assert [r["state"] for r in rows] == ["flooded", "shielded", "dry", ""]
     assert [r["status"] for r in rows] == ["ok", "ok", "ok", "outside DEM"]
     assert rows[1]["onset_stage_m"] == "3" and (rows[1]["sill_row"], rows[1]["sill_col"]) == ("6", "5")
@@ -167,8 +168,9 @@ def test_raising_the_lower_gap_lets_the_higher_one_control(capsys, monkeypatch, 
     assert "Results: 8 files" in out
 
     comments, rows = read_rows(out_dir / "what_if_raise_2.00m.csv")
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
-    assert any("1 asset(s) whose own ground is the controlling point" in line for line in comments)
+    assert comments == []
+    readme = " ".join((out_dir / "README.txt").read_text().split())
+    assert "1 asset(s) whose own ground is the controlling point" in readme
     assert [r["name"] for r in rows] == ["Basin school", "Basin clinic"]
     for r in rows:
         assert (r["onset_before_m"], r["onset_after_m"], r["gain_m"]) == ("3", "4", "1")

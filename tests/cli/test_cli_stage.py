@@ -77,7 +77,8 @@ def test_stage_on_a_dem_writes_the_files_and_reports_with_units(capsys, dem_tif,
                              "--table-step", "0.5", "--out", str(out_dir))
     assert code == 0, err
     assert err == ""
-    assert names_in(out_dir) == sorted(level_files("4.50m") + level_files("6.00m") + ["stage_table.csv"])
+    assert names_in(out_dir) == sorted(level_files("4.50m") + level_files("6.00m")
+                                       + ["stage_table.csv", "README.txt"])
     lines = out.splitlines()
     assert lines[0].startswith("Site: site.tif")
     # 4.5 m: 40 edge cells of 25 m² = 1000 m², 0.5 m deep = 500 m³; the basin is
@@ -100,7 +101,7 @@ def test_stage_from_an_analysis_folder_gives_identical_files(capsys, dem_tif, an
     assert code == 0, err
     assert f"Analysis: {analysed}" in out
     assert names_in(tmp_path / "a") == names_in(tmp_path / "b")
-    assert len(names_in(tmp_path / "a")) == 16
+    assert len(names_in(tmp_path / "a")) == 17  # README.txt too: no path nor time in it
     for name in names_in(tmp_path / "a"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
 
@@ -148,7 +149,7 @@ def test_negative_level_and_table_only(capsys, dem_tif, tmp_path):
     code, out, _ = run_cli(capsys, "stage", str(dem_tif), "--table-step", "1", "--table-from", "-1",
                            "--table-to", "6", "--out", str(tmp_path / "t"))
     assert code == 0
-    assert names_in(tmp_path / "t") == ["stage_table.csv"]
+    assert names_in(tmp_path / "t") == ["README.txt", "stage_table.csv"]
     assert "8 levels from -1.00 m to 6.00 m" in out
     code, out, _ = run_cli(capsys, "stage", str(dem_tif), "--level", "-1.5", "--out", str(tmp_path / "n"))
     assert code == 0
@@ -159,7 +160,7 @@ def test_level_below_every_cell_is_a_note_and_still_writes(capsys, dem_tif, tmp_
     code, out, err = run_cli(capsys, "stage", str(dem_tif), "--level", "3", "--out", str(tmp_path / "s"))
     assert code == 0 and err == ""
     assert "Note: nothing floods at 3.00 m: the lowest onset stage is 4.00 m" in out
-    assert names_in(tmp_path / "s") == sorted(level_files("3.00m"))
+    assert names_in(tmp_path / "s") == sorted(level_files("3.00m") + ["README.txt"])
     doc = json.loads((tmp_path / "s" / "flood_extent_3.00m.geojson").read_text())
     assert doc["features"] == [] and doc["area_m2"] == 0
     # The basin (2 m) is below 3 m but cut off: shielded.

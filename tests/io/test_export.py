@@ -84,6 +84,10 @@ def written(site, tmp_path_factory):
     return out, paths, calls
 
 
+#: Every file of a run, in the order written: README.txt comes just before the summary.
+WRITTEN = [*summary.FILE_NAMES[:-1], "README.txt", summary.FILE_NAMES[-1]]
+
+
 def read_csv(path: Path) -> tuple[list[str], list[str], list[dict[str, str]]]:
     lines = path.read_text(encoding="utf-8").splitlines()
     comments = [line for line in lines if line.startswith("#")]
@@ -208,17 +212,16 @@ def test_tall_raster_is_written_in_blocks_that_join_exactly(tmp_path):
 # --------------------------------------------------------------------------- CSV
 
 
-def test_csv_has_caution_unit_and_crs_comments(written):
+def test_csv_starts_with_its_header_and_the_readme_carries_caution_unit_and_crs(written):
     out, _, _ = written
-    comments, _, _ = read_csv(out / "depressions.csv")
-    assert all(line.startswith("# ") for line in comments)
-    text = "\n".join(comments)
-    assert SCREENING_CAUTION in text
-    assert "# vertical unit: m" in text
-    assert "EPSG:32633" in text
-    # The comments come before the header.
+    comments, header, _ = read_csv(out / "depressions.csv")
+    assert comments == []
     first = (out / "depressions.csv").read_text(encoding="utf-8").splitlines()[0]
-    assert first.startswith("# ")
+    assert first.split(",") == header and header[0] == "id"
+    readme = " ".join((out / "README.txt").read_text(encoding="utf-8").split())
+    assert " ".join(SCREENING_CAUTION.split()) in readme
+    assert "are in metre (m), measured from: datum not stated" in readme
+    assert "EPSG:32633" in readme
 
 
 def test_csv_columns_carry_units_and_numbers_match_the_table(site, written):
@@ -258,7 +261,7 @@ def test_csv_in_feet_converts_volume_and_adds_acre_feet(tmp_path):
     dem, _, result = run(site_elevation(), unit="ft")
     csv_tables.write_depressions_csv(result, dem, tmp_path / "d.csv")
     comments, header, rows = read_csv(tmp_path / "d.csv")
-    assert "# vertical unit: ft (foot)" in comments
+    assert comments == []
     assert "pit_elevation_ft" in header and "max_depth_ft" in header
     assert header[-2:] == ["volume_m3", "volume_acre_ft"]
     bowl = next(r for r in rows if int(r["cell_count"]) == 24)
@@ -449,15 +452,15 @@ def test_summary_json(site, written):
     assert "total_volume_acre_ft" not in d
     assert d["highest_spill_elevation"]["value"] == float(t.spill_elevation.max()) == 20.0
     assert d["highest_spill_elevation"]["unit"] == "m"
-    assert s["files"] == list(summary.FILE_NAMES)
+    assert s["files"] == WRITTEN
 
 
 def test_write_results_writes_every_file_atomically(written):
     out, paths, calls = written
-    assert [p.name for p in paths] == list(summary.FILE_NAMES)
-    assert sorted(p.name for p in out.iterdir()) == sorted(summary.FILE_NAMES)  # no temp files left
+    assert [p.name for p in paths] == WRITTEN
+    assert sorted(p.name for p in out.iterdir()) == sorted(WRITTEN)  # no temp files left
     assert all(p.stat().st_size > 0 for p in paths)
-    assert {c[0] for c in calls} == set(summary.FILE_NAMES)
+    assert {c[0] for c in calls} == set(WRITTEN)
     assert all(done <= total for _, done, total in calls)
 
 
@@ -526,8 +529,8 @@ def test_compound_crs_keeps_its_vertical_part_and_maps_in_lon_lat(tmp_path):
     for feature in doc["features"]:
         lon, lat = feature["geometry"]["coordinates"]
         assert 14.9 < lon < 15.1 and 45.0 < lat < 45.2
-    comments, _, _ = read_csv(tmp_path / "depressions.csv")
-    assert any("EGM96" in line for line in comments if line.startswith("# CRS:"))
+    readme = " ".join((tmp_path / "README.txt").read_text().split())
+    assert "EGM96" in readme
 
 
 def _positional_reference(value) -> str:

@@ -121,9 +121,7 @@ def test_csv_round_trip_gives_the_table_values(nested, files):
         assert kids == h.children(v).tolist()
     assert rows[0]["merge_elevation_m"] == ""  # a pit has no merge elevation
     assert rows[2]["children"] == "1;2"
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
-    assert any(line.startswith("# vertical unit: m (metre)") for line in comments)
-    assert any(line.startswith("# CRS: EPSG:32633") for line in comments)
+    assert comments == []  # the header is the first line; caution and units in README.txt
 
 
 def test_json_holds_every_node_with_the_caution_and_units(nested, files):
@@ -150,7 +148,7 @@ def test_json_holds_every_node_with_the_caution_and_units(nested, files):
 def test_curves_are_every_breakpoint_of_every_node(nested, files):
     dem, h = nested
     comments, rows = read_table(files[1]["curves"])
-    assert f"# CAUTION: {SCREENING_CAUTION}" in comments
+    assert comments == []
     assert list(rows[0]) == ["node_id", "depression", "point", "elevation_m", "area_m2", "storage_m3"]
     for v in range(1, len(h) + 1):
         mine = [r for r in rows if int(r["node_id"]) == v]
@@ -236,7 +234,8 @@ def test_a_site_without_depressions_writes_empty_files(tmp_path):
     assert len(h) == 0
     for path in (paths["csv"], paths["curves"]):
         comments, rows = read_table(path)
-        assert rows == [] and f"# CAUTION: {SCREENING_CAUTION}" in comments
+        assert rows == [] and comments == []
+        assert path.read_text().count("\n") == 1  # the header row alone
     doc = json.loads(paths["json"].read_text())
     assert doc["nodes"] == [] and doc["caution"] == SCREENING_CAUTION
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # scratch removed
@@ -270,7 +269,8 @@ def test_write_results_adds_the_three_files_before_the_summary(nested, files, tm
     outlets = build_outlets(dem, ("edge",))
     paths = write_results(result, dem, outlets, tmp_path / "a")
     names = [p.name for p in paths]
-    assert names[-4:] == [*he.HIERARCHY_FILE_NAMES, "summary.json"] and names == list(FILE_NAMES)
+    assert names[-5:] == [*he.HIERARCHY_FILE_NAMES, "README.txt", "summary.json"]
+    assert names == [*FILE_NAMES[:-1], "README.txt", FILE_NAMES[-1]]
     assert json.loads((tmp_path / "a" / "summary.json").read_text())["files"] == names
     # The files of the one hierarchy writer, whose contents the tests above read.
     for name in he.HIERARCHY_FILE_NAMES:

@@ -362,7 +362,9 @@ def test_level_zip_holds_every_file_and_the_caution(ready):
     assert r.status_code == 200 and r.mimetype == "application/zip"
     with zipfile.ZipFile(io.BytesIO(r.get_data())) as zf:
         names = set(zf.namelist())
-        assert zf.read("CAUTION.txt").decode().strip() == SCREENING_CAUTION
+        readme = " ".join(zf.read("README.txt").decode().split())
+        assert " ".join(SCREENING_CAUTION.split()) in readme
+        assert "depth_10.50m.tif GeoTIFF, float32: depth of water" in readme
         shielded = json.loads(zf.read("shielded_10.50m.geojson"))
     assert {"depth_10.50m.tif", "water_state_10.50m.tif", "flood_extent_10.50m.geojson",
             "shielded_10.50m.geojson", "depressions_at_10.50m.csv", "assets_10.50m.csv",

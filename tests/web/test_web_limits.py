@@ -78,7 +78,7 @@ def test_level_exports_stay_within_the_configured_disk_space(tmp_path, lowbank_t
     r = client.get(f"/api/sites/{site}/files/level/{levels[1]}.zip")
     assert r.status_code == 200
     with zipfile.ZipFile(io.BytesIO(r.get_data())) as zf:
-        assert "CAUTION.txt" in zf.namelist() and len(zf.namelist()) > 3
+        assert "README.txt" in zf.namelist() and len(zf.namelist()) > 3
     assert sum(level_folders(data_dir).values()) <= limit
 
 
