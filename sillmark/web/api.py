@@ -33,7 +33,7 @@ from sillmark.io.styles import write_styles
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.source import ArraySource
 from sillmark.units import datum_phrase
-from sillmark.web import barriers, db, exports, get_db, layout, render, services
+from sillmark.web import barriers, db, depression_index, exports, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.site_data import parse_level
 from sillmark.web.sites import run_dict
@@ -160,9 +160,18 @@ def legend(site_id: int):
 
 @bp.get("/sites/<int:site_id>/depressions")
 def depressions(site_id: int):
+    """One page of the depression table, sorted and filtered on the server.
+
+    ``?page=&per_page=&sort=&order=&q=&min_depth=&min_area_m2=&min_volume_m3=&state=&level=``
+    (see :func:`sillmark.web.depression_index.table_query`); the answer gives
+    ``total`` (every depression), ``matched`` (those the filters keep), the page
+    and ``not_shown``. The whole inventory is the result files' download.
+    """
+    level = _level_arg(required=False)
     row, data = open_site(site_id)
+    query = depression_index.table_query(request.args, None if level is None else float(level))
     return jsonify({"unit": data.unit.value, "unit_symbol": data.unit.symbol,
-                    "depressions": data.depression_list, "caution": SCREENING_CAUTION, **_datum(row)})
+                    **data.depressions.page(query), "caution": SCREENING_CAUTION, **_datum(row)})
 
 
 @bp.get("/sites/<int:site_id>/depressions/<int:depression_id>/curve")
@@ -171,14 +180,55 @@ def depression_curve(site_id: int, depression_id: int):
     return jsonify(data.depression_curve(depression_id))
 
 
+def _view_args() -> tuple:
+    bbox = depression_index.parse_bbox(request.args.get("bbox"))
+    level = _level_arg(required=False)
+    return bbox, None if level is None else float(level)
+
+
 @bp.get("/sites/<int:site_id>/depressions.geojson")
 def depressions_geojson(site_id: int):
-    return _result_file(site_id, "depressions.geojson", attachment=False)
+    """Outlines of at most ``?limit=`` (default 200, at most 500) depressions meeting
+    ``?bbox=west,south,east,north`` (WGS 84; the whole site without it), largest
+    first, with their figures (and their state at ``?level=``); ``in_view`` and
+    ``more_not_shown`` say how many the answer leaves out (with ``?whole=1``, none
+    is given unless all of them fit; ``?min_area_m2=`` leaves out smaller ones).
+    Every outline is in
+    ``depressions`` of the result files."""
+    bbox, level = _view_args()
+    limit = depression_index.whole_arg(request.args, "limit", depression_index.VIEW_LIMIT, 1,
+                                    depression_index.MAX_VIEW_LIMIT)
+    row, data = open_site(site_id)
+    whole = request.args.get("whole", "0") not in ("0", "", "false")
+    min_area = depression_index.number_arg(request.args, "min_area_m2", "an area in m²")
+    found = data.depressions.in_view(bbox, limit=limit, level=level, whole=whole, min_area_m2=min_area)
+    response = jsonify({**found, "unit_symbol": data.unit.symbol, "caution": SCREENING_CAUTION,
+                        "full_inventory": _full_file(site_id, "depressions"), **_datum(row)})
+    response.mimetype = "application/geo+json"
+    return response
 
 
 @bp.get("/sites/<int:site_id>/spill_points.geojson")
 def spill_points_geojson(site_id: int):
-    return _result_file(site_id, "spill_points.geojson", attachment=False)
+    """Spill points of at most ``?limit=`` (default and most 5000) depressions meeting
+    ``?bbox=``, largest first; ``more_not_shown`` counts the others."""
+    bbox, _ = _view_args()
+    limit = depression_index.whole_arg(request.args, "limit", depression_index.MAX_SPILL_POINTS, 1,
+                                    depression_index.MAX_SPILL_POINTS)
+    row, data = open_site(site_id)
+    response = jsonify({**data.depressions.spill_points(bbox, limit=limit), "unit_symbol": data.unit.symbol,
+                        "caution": SCREENING_CAUTION, "full_inventory": _full_file(site_id, "spill_points"),
+                        **_datum(row)})
+    response.mimetype = "application/geo+json"
+    return response
+
+
+def _full_file(site_id: int, stem: str) -> str | None:
+    """Download address of the result file holding every feature of a layer, if listed."""
+    for suffix in (".gpkg", ".geojson"):
+        if stem + suffix in FILE_NAMES:
+            return url_for("api.result_file", site_id=site_id, name=stem + suffix)
+    return None
 
 
 @bp.get("/sites/<int:site_id>/outlets.geojson")
@@ -211,9 +261,14 @@ def _float_arg(name: str) -> float:
     return value
 
 
+#: Assets one answer lists at most (``?page=`` gives the others; a file may hold 10 000).
+ASSETS_PER_PAGE = 1000
+
+
 @bp.get("/sites/<int:site_id>/assets")
 def assets(site_id: int):
-    """The site's assets with their figures at ``?level=`` (an empty list if it has none)."""
+    """The site's assets with their figures at ``?level=`` (an empty list if it has none),
+    at most :data:`ASSETS_PER_PAGE` per answer (``?page=&per_page=``)."""
     level = _level_arg()
     _, data = open_site(site_id)
     key, placed = site_assets(site_id, data)
@@ -221,8 +276,15 @@ def assets(site_id: int):
     if placed is None:
         return jsonify({"assets": [], "source": None, "unit": data.unit.value,
                         "unit_symbol": data.unit.symbol, "level": float(level)})
+    rows = data.asset_rows(key, placed, level)
+    per_page = depression_index.whole_arg(request.args, "per_page", ASSETS_PER_PAGE, 1, ASSETS_PER_PAGE)
+    pages = max(1, -(-len(rows) // per_page))
+    page = min(depression_index.whole_arg(request.args, "page", 1, 1, 10**9), pages)
+    shown = rows[(page - 1) * per_page: page * per_page]
     return jsonify({
-        "assets": data.asset_rows(key, placed, level),
+        "assets": shown,
+        "total": len(rows), "page": page, "pages": pages, "per_page": per_page,
+        "not_shown": len(rows) - len(shown),
         "source": {"name": row["original_name"], "count": row["count"], "uploaded_utc": row["created_utc"]},
         "unit": data.unit.value,
         "unit_symbol": data.unit.symbol,

@@ -45,6 +45,8 @@ from sillmark.products.stage import (
 from sillmark.units import VerticalUnit, area_units, own_unit_columns
 from sillmark.web import arrays, layout, render
 from sillmark.web.caches import LockedLRU
+from sillmark.web.depression_index import DepressionIndex
+from sillmark.web.depression_tiles import DepressionTiles
 from sillmark.grid.geojson import CRS84
 from sillmark.web.sites import SiteNotReady, UnknownSite
 
@@ -338,53 +340,16 @@ class SiteData:
     # -- depressions ------------------------------------------------------------------
 
     @functools.cached_property
-    def depression_list(self) -> list[dict]:
-        """Every depression with its figures and its extent in lon/lat (for zooming)."""
-        t = self.result.depressions
-        n = len(t)
-        if n == 0:
-            return []
-        ids = self.result.depression_id
-        rows_idx, cols_idx = np.nonzero(ids > 0)
-        labels = ids[rows_idx, cols_idx]
-        rmin = np.full(n + 1, np.iinfo(np.int64).max)
-        rmax = np.full(n + 1, -1)
-        cmin = np.full(n + 1, np.iinfo(np.int64).max)
-        cmax = np.full(n + 1, -1)
-        np.minimum.at(rmin, labels, rows_idx)
-        np.maximum.at(rmax, labels, rows_idx)
-        np.minimum.at(cmin, labels, cols_idx)
-        np.maximum.at(cmax, labels, cols_idx)
-        tr = self.dem.transform
-        out = []
-        slon, slat = self.lonlat(t.spill_x, t.spill_y)
-        plon, plat = self.lonlat(tr.c + (t.pit_col + 0.5) * tr.a, tr.f + (t.pit_row + 0.5) * tr.e)
-        for k in range(n):
-            d = k + 1
-            xs = [tr.c + cmin[d] * tr.a, tr.c + (cmax[d] + 1) * tr.a]
-            ys = [tr.f + rmin[d] * tr.e, tr.f + (rmax[d] + 1) * tr.e]
-            lon, lat = self.lonlat([xs[0], xs[1], xs[0], xs[1]], [ys[0], ys[0], ys[1], ys[1]])
-            vol_m3 = float(t.volume_m2_vu[k]) * self.unit.metres
-            item = {
-                "id": d,
-                "pit_elevation": float(t.pit_elevation[k]),
-                "spill_elevation": float(t.spill_elevation[k]),
-                "max_depth": float(t.max_depth[k]),
-                "area_m2": float(t.area_m2[k]),
-                "area_ha": float(t.area_m2[k]) / 1e4,
-                "volume_m3": vol_m3,
-                "cell_count": int(t.cell_count[k]),
-                "spills_to": int(t.spills_to[k]),
-                "spill_lon": _finite(slon[k]),
-                "spill_lat": _finite(slat[k]),
-                "pit_lon": _finite(plon[k]),
-                "pit_lat": _finite(plat[k]),
-                "bounds": [float(min(lon)), float(min(lat)), float(max(lon)), float(max(lat))],
-            }
-            item.update({k: float(v) for k, v in own_unit_columns(
-                self.unit, area_m2=item["area_m2"], volume_m3=vol_m3).items()})
-            out.append(item)
-        return out
+    def depressions(self) -> DepressionIndex:
+        """The depression table as columns for paged, sorted, filtered and map-extent
+        queries (:class:`sillmark.web.depression_index.DepressionIndex`)."""
+        return DepressionIndex(self.result.depressions, self.result.depression_id, self.dem, self.lonlat)
+
+    @functools.cached_property
+    def depression_tiles(self) -> DepressionTiles:
+        """Draws the depression and spill-point map tiles (sillmark.web.depression_tiles)."""
+        return DepressionTiles(self.depressions, self.result.depression_id.reshape(-1),
+                               self.dem.horizontal_crs)
 
     @functools.cached_property
     def hierarchy(self):

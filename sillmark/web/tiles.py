@@ -1,6 +1,7 @@
 """Map tiles of a site: ``/tiles/<site>/hillshade/<z>/<x>/<y>.png`` and
 ``/tiles/<site>/<level>/<z>/<x>/<y>.png`` (the water-level map at ``level``,
-in the site's vertical unit). Drawing is in :mod:`sillmark.web.render`.
+in the site's vertical unit), ``/tiles/<site>/depressions/<z>/<x>/<y>.png`` and
+``/tiles/<site>/spill_points/<z>/<x>/<y>.png``. Drawing is in :mod:`sillmark.web.render`.
 
 Add ``?run=<id>`` (the page does) to let browsers keep a tile: the run id
 changes whenever the site's results do. Every tile carries an ``ETag`` made
@@ -84,6 +85,35 @@ def water(site_id: int, level: str, z: int, x: int, y: int):
 
     # The level as the float32 the tile is drawn at: "47.5" and "47.50" are one tile.
     return _tile(data, (repr(float(h)), z, x, y), draw)
+
+
+@bp.get("/<int:site_id>/depressions/<int:z>/<int:x>/<int:y>.png")
+def depressions(site_id: int, z: int, x: int, y: int):
+    """Depressions tinted and edged (sillmark.web.depression_tiles); the same at every level."""
+    _check_tile(z, x, y)
+    _, data = open_site(site_id)
+
+    def draw() -> bytes:
+        index = services().tiles.get(data.grid, z, x, y)
+        if index is None:
+            return render.BLANK_PNG
+        return data.depression_tiles.depression_tile(index, z, y)
+
+    return _tile(data, ("depressions", z, x, y), draw)
+
+
+@bp.get("/<int:site_id>/spill_points/<int:z>/<int:x>/<int:y>.png")
+def spill_points(site_id: int, z: int, x: int, y: int):
+    """Spill points as diamonds; the same at every level."""
+    _check_tile(z, x, y)
+    _, data = open_site(site_id)
+
+    def draw() -> bytes:
+        if services().tiles.get(data.grid, z, x, y) is None:
+            return render.BLANK_PNG
+        return data.depression_tiles.spill_tile(z, x, y)
+
+    return _tile(data, ("spill_points", z, x, y), draw)
 
 
 def warm(data, cache, zooms: int) -> int:

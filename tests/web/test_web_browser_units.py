@@ -139,8 +139,9 @@ def test_a_feet_site_shows_acres_and_acre_feet_in_panel_table_and_chart(served, 
         assert "acres" in headers and "acre-ft" in headers
         page.wait_for_selector("#depressions-table tbody tr")
         row = page.locator("#depressions-table tbody tr").first.locator("td")
-        d = data.depression_list[0]
-        assert row.nth(3).inner_text() == f"{d['area_m2'] / ACRE_M2:.2f}"
+        shown = int(row.nth(0).inner_text())  # the depression's id, whatever the sort
+        area_m2 = float(data.result.depressions.area_m2[shown - 1])
+        assert row.nth(3).inner_text() == f"{area_m2 / ACRE_M2:.2f}"
         # The stage chart uses the tables' unit.
         labels = page.evaluate("(() => { const c = document.getElementById('stage-chart').sillmarkChart;"
                                " return [c.options.left.label, c.options.right.label]; })()")

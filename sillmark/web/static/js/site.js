@@ -59,8 +59,7 @@
     later("water", source === "slider" ? 60 : 0, function () { showWater(v); });
     later("figures", source === "slider" ? 90 : 0, function () { loadFigures(v); });
     later("assets", source === "slider" ? 250 : 0, function () { loadAssets(v); });
-    restyleDepressions();
-    renderDepressionTable();
+    if (depressionView) { depressionView.setLevel(v, source); }
     renderFiles();
     document.dispatchEvent(new CustomEvent("sillmark:level", { detail: { level: v } }));
   }
@@ -107,12 +106,18 @@
 
   // ------------------------------------------------------------------ water tiles (double-buffered)
 
+  /* Tiles are asked for over the site only, never for the blank map around it. */
+  function siteBounds() {
+    var b = config.bounds;
+    return b ? L.latLngBounds([b[1], b[0]], [b[3], b[2]]) : undefined;
+  }
+
   var waterSeq = 0, waterFront = 0;
   function showWater(v) {
     var seq = ++waterSeq;
     var url = "/tiles/" + config.site_id + "/" + encodeURIComponent(levelText(v)) +
       "/{z}/{x}/{y}.png?run=" + config.run_id;
-    var layer = L.tileLayer(url, { maxZoom: 21, className: "water-tiles", keepBuffer: 2 });
+    var layer = L.tileLayer(url, { maxZoom: 21, className: "water-tiles", keepBuffer: 2, bounds: siteBounds() });
     layer._sillmarkSeq = seq;
     // Pending layers for older levels are no longer wanted.
     groups.water.eachLayer(function (l) {
@@ -217,68 +222,13 @@
     };
   }
 
-  // ------------------------------------------------------------------ depressions
+  // ------------------------------------------------------------------ depressions (depressions.js)
 
-  var depressions = [], depressionById = {}, outlines = {}, selectedDepression = null;
-
-  function depressionState(d) {
-    if (d.spill_elevation <= level) { return "overtopped"; }
-    if (d.pit_elevation < level) { return "cut off"; }
-    return "dry";
-  }
-
-  var depressionRows = sortable($("depressions-table"), function () {
-    return depressions.map(function (d) { return Object.assign({ state: depressionState(d) }, d); });
-  }, renderDepressionTable);
-
-  function renderDepressionTable() {
-    var body = $("depressions-table").tBodies[0];
-    if (!body) { return; }
-    body.innerHTML = "";
-    depressionRows().forEach(function (d) {
-      var tr = S.el("tr", { tabindex: "0", "data-id": String(d.id) }, [
-        S.el("td", { text: String(d.id) }),
-        S.el("td", { text: S.fixed(d.spill_elevation, 2) }),
-        S.el("td", { text: S.fixed(d.max_depth, 2) }),
-        S.el("td", { text: S.fixed(S.inLargeArea(d.area_m2, areas), 2) }),
-        S.el("td", { text: S.fixed(S.inVolume(d.volume_m3, areas), areas.volume_m3 === 1 ? 0 : 2) }),
-        S.el("td", {}, [S.el("span", { class: "state state-" + d.state.replace(" ", "-"), text: d.state })]),
-      ]);
-      if (selectedDepression === d.id) { tr.classList.add("selected"); }
-      tr.addEventListener("click", function () { selectDepression(d.id, true); });
-      tr.addEventListener("keydown", function (ev) { if (ev.key === "Enter") { selectDepression(d.id, true); } });
-      body.appendChild(tr);
-    });
-  }
-
-  function outlineStyle(d) {
-    var st = depressionState(d);
-    var selected = selectedDepression === d.id;
-    if (st === "overtopped") { return { color: "#1f4e79", weight: selected ? 3.5 : 1.6, fill: false, dashArray: null }; }
-    if (st === "cut off") { return { color: "#a85d0c", weight: selected ? 3.5 : 1.8, fill: false, dashArray: "6 4" }; }
-    return { color: "#56636b", weight: selected ? 3.5 : 1.2, fill: false, dashArray: "2 4" };
-  }
-
-  function restyleDepressions() {
-    Object.keys(outlines).forEach(function (id) {
-      var d = depressionById[id];
-      if (d) { outlines[id].setStyle(outlineStyle(d)); }
-    });
-  }
-
-  function depressionPopup(d) {
-    var st = depressionState(d);
-    var rows = [
-      ["Lowest ground", at(d.pit_elevation)],
-      ["Spill elevation", at(d.spill_elevation)],
-      ["Deepest water when full", S.level(d.max_depth, unit).replace(/^/, "")],
-      ["Area when full", S.areaLarge(d.area_m2, areas)],
-      ["Storage when full", S.volume(d.volume_m3, areas)],
-      ["Spills into", d.spills_to ? "depression " + d.spills_to : "an outlet"],
-      ["At " + S.level(level, unit), st + (st !== "overtopped" ? ", " + S.level(d.spill_elevation - level, unit) + " to spare" : "")],
-    ];
-    return popupTable("Depression " + d.id, rows);
-  }
+  var depressionView = window.SillmarkDepressions({
+    map: map, group: groups.depressions, spills: groups.spills, base: base, siteId: config.site_id,
+    runId: config.run_id, unit: unit, at: at, levelText: levelText, level: level, bounds: siteBounds(),
+    areas: areas,
+  });
 
   function popupTable(title, rows, extra) {
     var html = '<div class="popup"><h4>' + escapeHtml(title) + "</h4><table>";
@@ -291,68 +241,6 @@
       return { "&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;" }[c];
     });
   }
-
-  function selectDepression(id, zoom) {
-    var d = depressionById[id];
-    if (!d) { return; }
-    selectedDepression = id;
-    restyleDepressions();
-    renderDepressionTable();
-    if (zoom && d.bounds) {
-      map.fitBounds([[d.bounds[1], d.bounds[0]], [d.bounds[3], d.bounds[2]]], { padding: [40, 40], maxZoom: 19 });
-    }
-    if (outlines[id]) { outlines[id].bringToFront(); }
-    var detail = $("depression-detail");
-    detail.hidden = false;
-    $("depression-detail-title").textContent = "Depression " + id;
-    $("depression-detail-text").textContent = "Pit " + S.level(d.pit_elevation, unit) + ", spills at " +
-      S.level(d.spill_elevation, unit) + " into " + (d.spills_to ? "depression " + d.spills_to : "an outlet") +
-      "; holds " + S.volume(d.volume_m3, areas) + " over " + S.areaLarge(d.area_m2, areas) + " when full.";
-    $("depression-curve-note").textContent = "Loading its stage–storage curve…";
-    S.getJSON(base + "/depressions/" + id + "/curve").then(function (c) {
-      if (selectedDepression !== id) { return; }
-      new window.SillmarkChart.LineChart($("depression-chart"), {
-        xLabel: "water level in the depression (" + unit + ")",
-        left: { label: "storage (" + areas.volume + ")" }, right: { label: "area (" + areas.large_area + ")" },
-        series: [
-          { x: c.level, y: c.storage_m3.map(function (v) { return S.inVolume(v, areas); }), axis: "left", colour: "#4a3a8c", width: 2 },
-          { x: c.level, y: c.area_m2.map(function (v) { return S.inLargeArea(v, areas); }), axis: "right", colour: "#2f6fa3", width: 1.4, dash: [4, 3] },
-        ],
-        marker: level,
-      });
-      $("depression-curve-note").textContent = "Stage–storage (solid) and stage–area (dashed), exact for the DEM" +
-        (c.nested_pools ? "; " + c.nested_pools + " smaller pool" + (c.nested_pools > 1 ? "s" : "") +
-          " (pits and the pools they merge into) nest inside it." : ".");
-    }).catch(function (err) {
-      $("depression-curve-note").textContent = "Stage–storage curve not available: " + err.message;
-    });
-  }
-
-  Promise.all([S.getJSON(base + "/depressions"), S.getJSON(base + "/depressions.geojson")]).then(function (res) {
-    depressions = res[0].depressions;
-    depressions.forEach(function (d) { depressionById[d.id] = d; });
-    L.geoJSON(res[1], {
-      style: function (f) { return outlineStyle(depressionById[f.properties.id] || {}); },
-      onEachFeature: function (f, layer) {
-        var id = f.properties.id;
-        outlines[id] = layer;
-        layer.bindPopup(function () { return depressionPopup(depressionById[id]); }, { maxWidth: 320 });
-        layer.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectDepression(id, false); layer.openPopup(ev.latlng); });
-      },
-    }).addTo(groups.depressions);
-    depressions.forEach(function (d) {
-      if (d.spill_lat === null) { return; }
-      var m = S.symbolMarker([d.spill_lat, d.spill_lon], "spill", { className: "spill-point" });
-      m.bindTooltip("spill " + at(d.spill_elevation), { direction: "top", offset: [0, -4] });
-      m.bindPopup(function () { return depressionPopup(d); }, { maxWidth: 320 });
-      m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); selectDepression(d.id, false); m.openPopup(); });
-      groups.spills.addLayer(m);
-    });
-    renderDepressionTable();
-  }).catch(function (err) {
-    $("tab-depressions").insertBefore(S.el("p", { class: "message error-box small", text: err.message }),
-      $("tab-depressions").firstChild);
-  });
 
   // ------------------------------------------------------------------ assets
 
