@@ -61,11 +61,16 @@ __all__ = [
     "CurveRows",
     "DEFAULT_MAX_CURVE_ROWS",
     "POINT_NAMES",
+    "CurveThinning",
     "choose_strides",
     "curve_rows",
+    "kept_mask",
     "kept_rows",
     "natural_counts",
+    "plan_thinning",
     "stepped_levels",
+    "strides",
+    "thinning_summary",
 ]
 
 #: Default cap on the rows of a site's curves file.
@@ -291,67 +296,164 @@ def kept_rows(rows: np.ndarray, merge_index: np.ndarray, stride: np.ndarray) -> 
     return np.where(np.asarray(stride) > 0, kept, 0)
 
 
-def choose_strides(rows: np.ndarray, merge_index: np.ndarray, volume: np.ndarray,
-                   listed: np.ndarray | None, max_rows: int) -> np.ndarray:
-    """Stride of every node (0: no rows) so the listed nodes' rows fit ``max_rows``
-    (step 2 of the module docstring).
+@dataclasses.dataclass(frozen=True)
+class CurveThinning:
+    """How a site's curve rows fit the cap (step 2 of the module docstring).
 
-    Parameters
+    Attributes
     ----------
-    rows, merge_index : int arrays
-        From :func:`natural_counts` (of the whole site: the choice depends on all
-        of its nodes).
-    volume : float array
-        Volume of each node, to choose which keep rows when only some can.
-    listed : bool array or None
-        Nodes that get rows; None for all.
     max_rows : int
         The cap.
-
-    Returns
-    -------
-    int64 array
-        1 where nothing is thinned.
+    natural_rows : int
+        Rows of the listed nodes before thinning.
+    budget : int
+        0: nothing thinned. Else each listed node keeps at most this many
+        rows (its pit, merge and spill rows and every ``stride``-th, ``stride``
+        the smallest power of two that fits).
+    keep_volume, keep_id : float, int
+        When even the pit, merge and spill rows of every listed node pass the
+        cap (``budget`` is then 3): only the nodes with a larger volume than
+        ``keep_volume``, or as large and an id at most ``keep_id`` (site ids),
+        get rows. ``inf`` and 0 when every listed node gets rows.
     """
-    rows = np.asarray(rows, dtype=np.int64)
-    n = rows.shape[0]
-    if isinstance(max_rows, bool) or not isinstance(max_rows, (int, np.integer)) or max_rows < 0:
-        raise InvalidParameter(f"the cap on curve rows must be a whole number of at least 0, "
+
+    max_rows: int
+    natural_rows: int
+    budget: int
+    keep_volume: float = math.inf
+    keep_id: int = 0
+
+    @property
+    def thinned(self) -> bool:
+        return self.budget > 0
+
+    @property
+    def omits_nodes(self) -> bool:
+        return self.keep_volume != math.inf
+
+
+def _check_cap(max_rows) -> int:
+    if isinstance(max_rows, bool) or not isinstance(max_rows, (int, np.integer)) or max_rows < 3:
+        raise InvalidParameter(f"the cap on curve rows must be a whole number of at least 3, "
                                f"not {max_rows!r}")
-    chosen = np.ones(n, dtype=bool) if listed is None else np.asarray(listed, dtype=bool)
-    if chosen.shape != (n,):
-        raise InvalidParameter(f"listed must hold one true/false per node ({n}), "
-                               f"not {chosen.shape}")
-    stride = np.zeros(n, dtype=np.int64)
-    ids = np.flatnonzero(chosen)
-    if ids.size == 0:
-        return stride
-    m, mi = rows[ids], np.asarray(merge_index, dtype=np.int64)[ids]
-    if int(m.sum()) <= max_rows:
-        stride[ids] = 1
-        return stride
+    return int(max_rows)
+
+
+def _listed_mask(listed, n: int) -> np.ndarray:
+    if listed is None:
+        return np.ones(n, dtype=bool)
+    mask = np.asarray(listed)
+    if mask.dtype != np.bool_ or mask.shape != (n,):
+        raise InvalidParameter(f"listed must be a boolean array with one entry per node ({n}), "
+                               f"not {mask.dtype} of shape {mask.shape}")
+    return mask
+
+
+def thinning_summary(counts: CurveCounts, volume: np.ndarray, listed: np.ndarray | None,
+                     max_rows: int) -> dict:
+    """What :func:`plan_thinning` needs of one piece of a site: small whatever its size.
+
+    The listed nodes' distinct (rows, merge index) pairs with their numbers, and
+    the nodes that would keep rows were only the largest volumes kept (at most
+    ``max_rows / 2`` of them), with local ids.
+    """
+    cap = _check_cap(max_rows)
+    chosen = np.flatnonzero(_listed_mask(listed, counts.rows.shape[0]))
+    m = counts.rows[chosen]
+    mi = counts.merge_index[chosen]
+    pairs, weight = np.unique(np.stack([m, mi]), axis=1, return_counts=True) if chosen.size \
+        else (np.zeros((2, 0), np.int64), np.zeros(0, np.int64))
+    fixed = kept_rows(m, mi, np.full(m.shape, _ONLY_FIXED))
+    order = np.lexsort((chosen, -np.asarray(volume, dtype=np.float64)[chosen]))
+    fits = np.cumsum(fixed[order]) <= cap
+    top = order[fits]
+    return {"rows": pairs[0].astype(np.int64), "merge_index": pairs[1].astype(np.int64),
+            "weight": weight.astype(np.int64),
+            "top_volume": np.asarray(volume, dtype=np.float64)[chosen[top]],
+            "top_id": (chosen[top] + 1).astype(np.int64), "top_fixed": fixed[top]}
+
+
+def plan_thinning(summaries: list[dict], node_offsets, max_rows: int) -> CurveThinning:
+    """The site's thinning from the summaries of its pieces (:func:`thinning_summary`),
+    piece ``k``'s node ids shifted by ``node_offsets[k]``."""
+    cap = _check_cap(max_rows)
+    if summaries:
+        m = np.concatenate([s["rows"] for s in summaries])
+        mi = np.concatenate([s["merge_index"] for s in summaries])
+        w = np.concatenate([s["weight"] for s in summaries])
+    else:
+        m = mi = w = np.zeros(0, np.int64)
+    natural = int(np.dot(m, w))
+    if natural <= cap:
+        return CurveThinning(max_rows=cap, natural_rows=natural, budget=0)
     table = np.stack([kept_rows(m, mi, np.full(m.shape, s)) for s in _STRIDES.tolist()], axis=1)
     fixed = table[:, -1]
-    if int(fixed.sum()) > max_rows:
-        # Largest volume first (ties: lowest id), three rows at most each.
-        order = np.lexsort((ids, -np.asarray(volume, dtype=np.float64)[ids]))
-        fits = np.cumsum(fixed[order]) <= max_rows
-        stride[ids[order[fits]]] = _ONLY_FIXED
-        return stride
+    if int(np.dot(fixed, w)) > cap:
+        vol = np.concatenate([s["top_volume"] for s in summaries])
+        ids = np.concatenate([s["top_id"] + int(o) for s, o in zip(summaries, node_offsets)])
+        rows = np.concatenate([s["top_fixed"] for s in summaries])
+        order = np.lexsort((ids, -vol))
+        fits = order[np.cumsum(rows[order]) <= cap]
+        last = fits[-1] if fits.size else None
+        return CurveThinning(
+            max_rows=cap, natural_rows=natural, budget=3,
+            keep_volume=float(vol[last]) if last is not None else -math.inf,
+            keep_id=int(ids[last]) if last is not None else 0)
 
-    def pick(budget: int) -> np.ndarray:
-        return np.argmax(table <= budget, axis=1)
+    def total(budget: int) -> int:
+        col = np.argmax(table <= budget, axis=1)
+        return int(np.dot(table[np.arange(m.shape[0]), col], w))
 
-    low, high = int(fixed.max()), int(m.max())  # low fits, high does not
+    low, high = 3, int(m.max())  # low fits, high does not
     while high - low > 1:
         mid = (low + high) // 2
-        col = pick(mid)
-        if int(table[np.arange(ids.size), col].sum()) <= max_rows:
+        if total(mid) <= cap:
             low = mid
         else:
             high = mid
-    stride[ids] = _STRIDES[pick(low)]
-    return stride
+    return CurveThinning(max_rows=cap, natural_rows=natural, budget=low)
+
+
+def strides(counts: CurveCounts, volume: np.ndarray, listed: np.ndarray | None,
+            thinning: CurveThinning, *, node_offset: int = 0) -> np.ndarray:
+    """Stride of every node of a piece (0: no rows), its ids shifted by ``node_offset``."""
+    n = counts.rows.shape[0]
+    chosen = _listed_mask(listed, n)
+    out = np.zeros(n, dtype=np.int64)
+    if not thinning.thinned:
+        out[chosen] = 1
+        return out
+    if thinning.omits_nodes:
+        vol = np.asarray(volume, dtype=np.float64)
+        ids = np.arange(1, n + 1) + node_offset
+        chosen = chosen & ((vol > thinning.keep_volume)
+                           | ((vol == thinning.keep_volume) & (ids <= thinning.keep_id)))
+        out[chosen] = _ONLY_FIXED
+        return out
+    table = np.stack([kept_rows(counts.rows, counts.merge_index, np.full(n, s))
+                      for s in _STRIDES.tolist()], axis=1)
+    pick = _STRIDES[np.argmax(table <= thinning.budget, axis=1)]
+    out[chosen] = pick[chosen]
+    return out
+
+
+def choose_strides(counts: CurveCounts, volume: np.ndarray, listed: np.ndarray | None,
+                   max_rows: int) -> tuple[np.ndarray, CurveThinning]:
+    """:func:`strides` of a whole site held in one hierarchy, and its thinning."""
+    plan = plan_thinning([thinning_summary(counts, volume, listed, max_rows)], [0], max_rows)
+    return strides(counts, volume, listed, plan), plan
+
+
+def kept_mask(index: np.ndarray, node: np.ndarray, counts: CurveCounts,
+              stride: np.ndarray) -> np.ndarray:
+    """Which of rows (their index among their node's rows, their node id) stay at ``stride``
+    (e.g. rows thinned for a piece, thinned again for the whole site)."""
+    k = node - 1
+    s = stride[k]
+    m = counts.rows[k]
+    mi = counts.merge_index[k]
+    return (s > 0) & ((index == 0) | (index == m - 1) | (index == mi)
+                      | (index % np.maximum(s, 1) == 0))
 
 
 def curve_rows(hierarchy: DepressionHierarchy, counts: CurveCounts, stride: np.ndarray, *,
