@@ -5,8 +5,10 @@ as the same float32 or float64, empty where a value does not exist.
 from __future__ import annotations
 
 import csv
+import io
 import json
 import os
+import re
 from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -198,6 +200,34 @@ def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[
                 f.write(f"# {line}\n")
             writer = csv.writer(f, lineterminator="\n")
             writer.writerow(spreadsheet_safe(str(name)) for name in arrays)
-            if arrays and lengths.pop():
-                writer.writerows(zip(*(column_texts(a) for a in arrays.values())))
+            f.write(rows_text(arrays))
     return final
+
+
+#: Characters that make csv.writer quote a field (delimiter, quote, line ends).
+_NEEDS_QUOTES = re.compile(r'[,"\r\n]')
+
+
+def rows_text(columns: dict[str, np.ndarray]) -> str:
+    """The rows of a table CSV as :func:`write_table_csv` writes them, as one text.
+
+    Numbers as the shortest text that reads back as the same float32 or
+    float64 (empty for NaN), text made safe for spreadsheets; the text is what
+    ``csv.writer`` writes, built by joining the columns' texts when no field
+    needs quoting (several times faster). Empty when the columns are.
+    """
+    arrays = [np.asarray(values) for values in columns.values()]
+    lengths = {len(a) for a in arrays}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
+    if not arrays or not lengths.pop():
+        return ""
+    texts = [column_texts(a) for a in arrays]
+    plain = len(texts) > 1 and not any(
+        any(_NEEDS_QUOTES.search(t) for t in set(column))
+        for column, a in zip(texts, arrays) if a.dtype.kind in "USO")
+    if plain:
+        return "\n".join(map(",".join, zip(*texts))) + "\n"
+    buffer = io.StringIO(newline="")
+    csv.writer(buffer, lineterminator="\n").writerows(zip(*texts))
+    return buffer.getvalue()

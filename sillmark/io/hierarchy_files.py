@@ -46,9 +46,8 @@ import csv
 import io
 import json
 import os
-import re
 import shutil
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, TextIO
 
@@ -63,8 +62,7 @@ from sillmark.grid.crs import (
     wgs84_transformer,
 )
 from sillmark.io.atomic import atomic_output
-from sillmark.io.csv_tables import column_texts
-from sillmark.io.json_values import json_number
+from sillmark.io.csv_tables import rows_text
 from sillmark.products import hierarchy_curves
 from sillmark.products.hierarchy import DepressionHierarchy, HierarchyTable
 from sillmark.units import ACRE_FOOT_M3, VerticalUnit, unit_name, unit_suffix
@@ -330,27 +328,9 @@ def csv_head(comments: list[str], columns: dict | Iterable[str]) -> str:
 
 
 def csv_rows(columns: dict[str, np.ndarray]) -> str:
-    """The rows of a table CSV, numbers as :func:`sillmark.io.csv_tables.write_table_csv`
-    writes them (shortest text that reads back as the same float32 or float64,
-    empty for NaN); empty when the columns are."""
-    arrays = [np.asarray(values) for values in columns.values()]
-    lengths = {len(a) for a in arrays}
-    if len(lengths) > 1:
-        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
-    if not arrays or not lengths.pop():
-        return ""
-    texts = [column_texts(a) for a in arrays]
-    plain = len(texts) > 1 and not any(
-        any(_NEEDS_QUOTES.search(t) for t in set(column))
-        for column, a in zip(texts, arrays) if a.dtype.kind in "USO")
-    if plain:
-        # What csv.writer writes when no field needs quoting, several times faster.
-        return "\n".join(map(",".join, zip(*texts))) + "\n"
-    return _csv_text(zip(*texts))
-
-
-#: Characters that make csv.writer quote a field (delimiter, quote, line ends).
-_NEEDS_QUOTES = re.compile(r'[,"\r\n]')
+    """The rows of a table CSV, as :func:`sillmark.io.csv_tables.write_table_csv` writes
+    them (:func:`sillmark.io.csv_tables.rows_text`)."""
+    return rows_text(columns)
 
 
 def _csv_text(rows) -> str:
