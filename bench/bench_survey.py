@@ -77,15 +77,20 @@ def child(kind: str, path: str, out: str) -> dict:
         from sillmark.run import analyse
 
         marks: dict[str, float] = {}
+        peaks: dict[str, float] = {}
+        before = _reset_peak()
         t0 = time.perf_counter()
 
         def progress(step: str, done: int, total: int) -> None:
+            # The peak of each step beyond the memory held at the start, then reset.
             if done == total:
                 marks[step] = time.perf_counter() - t0
+                peaks[step] = max(peaks.get(step, 0), _status_kib("VmHWM") * 1024 - before)
+                _reset_peak()
 
         run = analyse(path, ("edge",), out, progress=progress)
         h = run.hierarchy
-        return {"kind": kind, "marks": marks, "seconds": run.seconds,
+        return {"kind": kind, "marks": marks, "peaks": peaks, "seconds": run.seconds,
                 "depressions": len(run.depressions),
                 "hierarchy": {"nodes": h.nodes, "depth": h.depth,
                               "curve_rows": h.curve_rows, "natural": h.curve_rows_natural,
@@ -181,6 +186,8 @@ def main(argv=None) -> int:
               f"(budget {h['budget']} a node; 0 = none)")
         print("steps of one analyse (s since start, at each step's end):",
               ", ".join(f"{k} {v:.1f}" for k, v in steps["marks"].items()))
+        print("peak of each step beyond the start, B/cell:",
+              ", ".join(f"{k} {v / cells:.0f}" for k, v in steps["peaks"].items()))
         print("hierarchy seconds:", {k: round(v, 2) for k, v in h["seconds"].items()})
         for p in sorted((work / "out").iterdir()):
             print(f"  {p.name:32s} {p.stat().st_size / 1e6:9.1f} MB")

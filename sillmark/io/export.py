@@ -51,7 +51,11 @@ from sillmark.io.geotiff import (
     write_onset_stage,
 )
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
-from sillmark.io.hierarchy_writer import HierarchyFiles, write_hierarchy_files
+from sillmark.io.hierarchy_writer import (
+    HierarchyFiles,
+    curves_summary,
+    write_hierarchy_files,
+)
 from sillmark.io.summary import FILE_NAMES, write_summary
 from sillmark.products.source import ArraySource
 
@@ -173,7 +177,8 @@ def write_result_files(
     paths.append(
         step(
             summary_name,
-            lambda: write_summary(result, dem, outlets, out / summary_name, files=[p.name for p in paths]),
+            lambda: write_summary(result, dem, outlets, out / summary_name, files=[p.name for p in paths],
+                                  curves=curves_summary(written)),
         )
     )
     return ResultFiles(paths=paths, hierarchy=written)

@@ -34,10 +34,18 @@ centimetres the breakpoints are few (one per centimetre of depth at most), so
 every node is written in full.
 
 Every node has its whole curve, pit to spill, so a node's rows repeat the
-levels of the nodes nested in it; the caps keep the file at most a few hundred
-rows per node (the node table's size times a few hundred) whatever the DEM's
-precision or the nesting depth. On the demo site: 77 nodes, about 2 300 rows,
-100 kB.
+levels of the nodes nested in it; the limits keep it at most a few hundred rows
+whatever the DEM's precision or the nesting depth. Only the *listed* nodes
+(every node by default; e.g. the significant depressions) have rows, and the
+file holds at most ``max_curve_rows`` (default
+:data:`sillmark.products.hierarchy_curves.DEFAULT_MAX_CURVE_ROWS`): past the cap
+every node keeps its pit, merge and spill rows and every 2nd, 4th, ... row
+(:mod:`sillmark.products.hierarchy_curves`), and the file's comment lines say
+so. The rows are computed in time linear in the depression cells and the rows.
+On the demo site: 77 nodes, about 2 300 rows, 100 kB.
+
+``depression_hierarchy.json`` lists the listed nodes (all by default); the node
+table CSV always lists every node.
 """
 
 from __future__ import annotations

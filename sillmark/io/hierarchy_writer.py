@@ -89,7 +89,7 @@ if TYPE_CHECKING:  # pragma: no cover
 
     from sillmark.products.source import ResultSource
 
-__all__ = ["DEFAULT_WINDOW_CELLS", "HierarchyFiles", "write_hierarchy_files"]
+__all__ = ["DEFAULT_WINDOW_CELLS", "HierarchyFiles", "curves_summary", "write_hierarchy_files"]
 
 _SCRATCH_PREFIX = ".sillmark-hierarchy-"
 #: Fields of HierarchyTable kept per batch in the scratch files.
@@ -160,6 +160,22 @@ class _Job:
 
     def part(self, k: int, what: str) -> str:
         return os.path.join(self.scratch, f"batch{k:06d}_{what}")
+
+
+def curves_summary(written: HierarchyFiles) -> dict:
+    """What ``summary.json`` says of the curves file: its rows, the cap and any thinning."""
+    if written.curve_rows_budget == 0:
+        thinning = "none"
+    elif written.curve_nodes_left_out == 0:
+        thinning = (f"each node keeps its pit, merge and spill rows and every 2nd, 4th, ... row, "
+                    f"at most {written.curve_rows_budget}")
+    else:
+        thinning = ("pit, merge and spill rows only, for the listed nodes with the largest "
+                    "volumes")
+    return {"file": hx.CURVES_CSV, "rows": written.curve_rows, "max_rows": written.curve_rows_cap,
+            "rows_before_thinning": written.curve_rows_natural, "thinning": thinning,
+            "listed_nodes": written.listed, "hierarchy_nodes": written.nodes,
+            "listed_nodes_without_rows": written.curve_nodes_left_out}
 
 
 def _task_layers(source: "ResultSource") -> Any:

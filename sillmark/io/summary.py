@@ -134,17 +134,22 @@ def write_table_summary(
 
 def write_summary(
     result: "SpillResult", dem: "DEM", outlets: "Outlets", path: str | os.PathLike,
-    *, files: list[str] | None = None,
+    *, files: list[str] | None = None, curves: dict | None = None,
 ) -> Path:
     """Write ``summary.json``: grid, outlets, totals in SI, caution, version, time, files.
 
     ``files`` lists the names of the other files of the run; the summary adds its own.
+    ``curves`` (e.g. :func:`sillmark.io.hierarchy_writer.curves_summary`) goes in as
+    ``depression_curves``: the rows of the curves file, its cap and any thinning.
     """
     final = Path(path)
     names = list(files or [])
     if final.name not in names:
         names.append(final.name)
-    return write_json(final, _summary(result, dem, outlets, names))
+    payload = _summary(result, dem, outlets, names)
+    if curves is not None:
+        payload["depression_curves"] = curves
+    return write_json(final, payload)
 
 
 @dataclasses.dataclass(frozen=True)
