@@ -142,6 +142,10 @@ def main(argv=None) -> int:
     parser.add_argument("--size", type=int, default=3000)
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--keep", type=Path, default=None)
+    parser.add_argument("--no-warm", action="store_true",
+                        help="skip the first analyse (when the compiled kernels are cached)")
+    parser.add_argument("--no-steps", action="store_true",
+                        help="skip the extra analyse that times and measures each step")
     parser.add_argument("--child", nargs=3, metavar=("KIND", "PATH", "OUT"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
@@ -162,14 +166,15 @@ def main(argv=None) -> int:
         print(f"survey terrain {args.size} x {args.size} ({cells / 1e6:.1f} Mcells), "
               f"noise 3 cm, 1 mm steps; seed {args.seed}")
 
-        measure("analyse", tif, work / "warm")  # caches the compiled kernels
-        shutil.rmtree(work / "warm", ignore_errors=True)
+        if not args.no_warm:
+            measure("analyse", tif, work / "warm")  # caches the compiled kernels
+            shutil.rmtree(work / "warm", ignore_errors=True)
         whole = measure("analyse", tif, work / "out")
         engine = measure("engine", npy, work)
         import pysheds
 
         fill = measure("pysheds", npy, work)
-        steps = measure("steps", tif, work / "steps")
+        steps = None if args.no_steps else measure("steps", tif, work / "steps")
 
         dem_bytes = 4 * cells
         beyond = (whole["peak_extra"] - dem_bytes) / cells
@@ -180,15 +185,17 @@ def main(argv=None) -> int:
               f"{engine['peak_extra'] / cells:12.1f}")
         print(f"{'pysheds ' + pysheds.__version__ + ' fill_depressions':34s} {fill['s']:9.2f} "
               f"{fill['peak_extra'] / cells:12.1f}")
-        h = steps["hierarchy"]
-        print(f"depressions {steps['depressions']}, hierarchy nodes {h['nodes']}, depth "
-              f"{h['depth']}, curve rows {h['curve_rows']} of {h['natural']} "
-              f"(budget {h['budget']} a node; 0 = none)")
-        print("steps of one analyse (s since start, at each step's end):",
-              ", ".join(f"{k} {v:.1f}" for k, v in steps["marks"].items()))
-        print("peak of each step beyond the start, B/cell:",
-              ", ".join(f"{k} {v / cells:.0f}" for k, v in steps["peaks"].items()))
-        print("hierarchy seconds:", {k: round(v, 2) for k, v in h["seconds"].items()})
+        summary = json.loads((work / "out" / "summary.json").read_text())
+        print(f"depressions {summary['depressions']['count']}; curves file:",
+              summary.get("depression_curves"))
+        if steps is not None:
+            h = steps["hierarchy"]
+            print(f"hierarchy nodes {h['nodes']}, depth {h['depth']}")
+            print("steps of one analyse (s since start, at each step's end):",
+                  ", ".join(f"{k} {v:.1f}" for k, v in steps["marks"].items()))
+            print("peak of each step beyond the start, B/cell:",
+                  ", ".join(f"{k} {v / cells:.0f}" for k, v in steps["peaks"].items()))
+            print("hierarchy seconds:", {k: round(v, 2) for k, v in h["seconds"].items()})
         for p in sorted((work / "out").iterdir()):
             print(f"  {p.name:32s} {p.stat().st_size / 1e6:9.1f} MB")
         print("targets: analyse >= 3x faster than pysheds fill | <= 2x the engine | "

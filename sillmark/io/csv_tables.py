@@ -129,14 +129,32 @@ def column_texts(values: np.ndarray) -> list[str]:
     values = np.asarray(values)
     kind = values.dtype.kind
     if kind == "O":
-        return [cell_text(v) for v in values.tolist()]
+        items = values.tolist()
+        if set(map(type, items)) <= {str}:
+            return _text_cells(items)
+        return [cell_text(v) for v in items]
     if kind in "US":
-        return [spreadsheet_safe(str(v)) for v in values.tolist()]
+        return _text_cells([str(v) for v in values.tolist()] if kind == "S" else values.tolist())
     if kind in "iu":
         return list(map(str, values.tolist()))
     if kind == "b":
         return [str(int(v)) for v in values.tolist()]
     return float_texts(values)
+
+
+def _text_cells(items: list[str]) -> list[str]:
+    """Text cells made safe for spreadsheets, each distinct text once (columns such as
+    a kind of row repeat a few words)."""
+    memo: dict[str, str] = {}
+    get = memo.get
+    out = []
+    append = out.append
+    for v in items:
+        t = get(v)
+        if t is None:
+            t = memo[v] = spreadsheet_safe(v)
+        append(t)
+    return out
 
 
 def json_records(columns: dict[str, np.ndarray]) -> Iterator[dict[str, Any]]:
