@@ -218,8 +218,27 @@ def write_table_csv(path: str | os.PathLike, comments: list[str], columns: dict[
                 f.write(f"# {line}\n")
             writer = csv.writer(f, lineterminator="\n")
             writer.writerow(spreadsheet_safe(str(name)) for name in arrays)
-            f.write(rows_text(arrays))
+            write_rows(f, arrays)
     return final
+
+
+#: Rows formatted at once by :func:`write_rows`: the texts of a chunk take about
+#: 60 bytes per cell of the table, so a chunk stays within tens of megabytes.
+ROWS_AT_ONCE = 1 << 15
+
+
+def write_rows(f, columns: dict[str, np.ndarray], *, chunk: int = ROWS_AT_ONCE) -> int:
+    """Write the rows of a table CSV to the open text file ``f``, ``chunk`` rows at a
+    time (:func:`rows_text` of each run of rows: the same text as all at once, and
+    the memory of one chunk's texts); returns the number of rows."""
+    arrays = {name: np.asarray(values) for name, values in columns.items()}
+    lengths = {len(a) for a in arrays.values()}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
+    n = lengths.pop() if lengths else 0
+    for a in range(0, n, chunk):
+        f.write(rows_text({name: v[a:a + chunk] for name, v in arrays.items()}))
+    return n
 
 
 #: Characters that make csv.writer quote a field (delimiter, quote, line ends).

@@ -70,7 +70,7 @@ from sillmark.grid.crs import (
     wgs84_transformer,
 )
 from sillmark.io.atomic import atomic_output
-from sillmark.io.csv_tables import rows_text
+from sillmark.io.csv_tables import ROWS_AT_ONCE, rows_text
 from sillmark.products import hierarchy_curves
 from sillmark.products.hierarchy import DepressionHierarchy, HierarchyTable
 from sillmark.units import ACRE_FOOT_M3, VerticalUnit, unit_name, unit_suffix
@@ -292,9 +292,27 @@ def json_node_texts(t: HierarchyTable, listed: np.ndarray | None = None) -> list
     return [template % row for row in zip(*texts)]
 
 
-def json_node_text(t: HierarchyTable, listed: np.ndarray | None = None) -> str:
-    """:func:`json_node_texts` joined by commas (a part of ``"nodes"``)."""
-    return ",".join(json_node_texts(t, listed))
+def write_json_nodes(f, t: HierarchyTable, listed: np.ndarray | None = None, *,
+                     chunk: int = ROWS_AT_ONCE) -> int:
+    """Write :func:`json_node_texts` joined by commas (a part of ``"nodes"``) to the
+    open text file ``f``, ``chunk`` nodes at a time; returns the number written."""
+    keep = np.ones(len(t), dtype=bool) if listed is None else np.asarray(listed, dtype=bool)
+    written = 0
+    for a in range(0, len(t), chunk):
+        part = json_node_texts(_rows_of(t, a, a + chunk), keep[a:a + chunk])
+        if part:
+            f.write(("," if written else "") + ",".join(part))
+            written += len(part)
+    return written
+
+
+def _rows_of(t: HierarchyTable, a: int, b: int) -> HierarchyTable:
+    """Rows ``a:b`` of a node table (children lists re-based, ids unchanged)."""
+    b = min(b, len(t))
+    lo, hi = int(t.children_start[a]), int(t.children_start[b])
+    fields = {name: getattr(t, name)[a:b] for name in t.columns}
+    return HierarchyTable(**fields, children_start=t.children_start[a:b + 1] - lo,
+                          children_ids=t.children_ids[lo:hi])
 
 
 def _json_column(values: np.ndarray) -> list[str]:

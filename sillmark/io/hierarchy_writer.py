@@ -71,6 +71,7 @@ import numpy as np
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_crs
 from sillmark.io import hierarchy_files as hx
+from sillmark.io.csv_tables import write_rows
 from sillmark.products import hierarchy_curves as hc
 from sillmark.products.hierarchy import HierarchyTable
 from sillmark.products.hierarchy_sweep import hierarchy_of_cells
@@ -274,12 +275,10 @@ def _write_node_parts(job: _Job, k: int, table: HierarchyTable, node_offset: int
     """The batch's rows of the node table and of the JSON (listed nodes only), site ids."""
     unit = VerticalUnit.parse(job.unit)
     table = _shifted(table, node_offset, depression_offset)
-    for what, text in (
-        ("nodes.csv", hx.csv_rows(hx.node_table_columns(table, unit, placed))),
-        ("nodes.json", hx.json_node_text(table, listed)),
-    ):
-        with open(job.part(k, what), "w", encoding="utf-8", newline="") as f:
-            f.write(text)
+    with open(job.part(k, "nodes.csv"), "w", encoding="utf-8", newline="") as f:
+        write_rows(f, hx.node_table_columns(table, unit, placed))
+    with open(job.part(k, "nodes.json"), "w", encoding="utf-8", newline="") as f:
+        hx.write_json_nodes(f, table, listed)
 
 
 def _write_curve_part(job: _Job, k: int, tables: dict, depression: np.ndarray,
@@ -294,7 +293,7 @@ def _write_curve_part(job: _Job, k: int, tables: dict, depression: np.ndarray,
     cols = hx.curve_row_columns(rows, depression, VerticalUnit.parse(job.unit),
                                 node_offset=node_offset, depression_offset=depression_offset)
     with open(job.part(k, "curves.csv"), "w", encoding="utf-8", newline="") as f:
-        f.write(hx.csv_rows(cols))
+        write_rows(f, cols)
     return len(rows)
 
 
