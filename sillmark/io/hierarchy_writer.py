@@ -205,7 +205,7 @@ def _built(job: _Job, first: int, last: int, window: tuple[int, int, int, int],
         job.layers, first, last, window, areas=areas, spill_elevation=spill_elevation,
         spill_row=spill_row, spill_col=spill_col, cell_count=cell_count,
         connectivity=job.connectivity, unit=VerticalUnit.parse(job.unit),
-        transform=job.transform,
+        transform=job.transform, segments=False,  # the curve rows do not read them
     )
     t = hierarchy.nodes
     counts = {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),

@@ -81,7 +81,7 @@ POINT_NAMES = ("breakpoint", "step", "merge", "pit", "spill")
 _ONLY_FIXED = 1 << 40
 _STRIDES = np.array([1 << j for j in range(10)] + [_ONLY_FIXED], dtype=np.int64)
 #: Stepped nodes handled at once (bounds the memory of their levels).
-_CHUNK = 1 << 15
+_CHUNK = 1 << 12
 
 
 @dataclasses.dataclass(frozen=True)

@@ -250,3 +250,28 @@ def test_stepped_levels_are_round_and_within_the_node():
     assert start.tolist() == [0, 7]
     assert levels.tolist() == pytest.approx(expect.tolist(), abs=1e-6)
     assert math.isclose(levels[1], 10.5)
+
+
+@pytest.mark.parametrize("seed", [3, 4, 11])
+def test_without_segments_the_table_and_rows_are_the_same_bits(seed):
+    # The files' hierarchies are built without the per-node curve segments; the
+    # node table's totals come from the same operations in the same order.
+    from sillmark.products.hierarchy_sweep import hierarchy_of_cells
+    from sillmark.units import VerticalUnit
+
+    z, areas, connectivity, unit = random_site(seed)
+    result = priority_flood(z, edge_mask(z.shape), connectivity=connectivity, row_areas=areas)
+    table = result.depressions
+    args = (z, result.depression_id, table.spill_elevation, table.spill_row, table.spill_col)
+    options = dict(connectivity=connectivity, areas=areas, unit=VerticalUnit.parse(unit),
+                   transform=None)
+    full = hierarchy_of_cells(*args, **options)
+    lean = hierarchy_of_cells(*args, **options, segments=False)
+    assert len(full) > 1
+    for name in full.nodes.columns:
+        assert np.array_equal(getattr(full.nodes, name), getattr(lean.nodes, name),
+                              equal_nan=True), name
+    a, b = all_rows(full)[1], all_rows(lean)[1]
+    assert np.array_equal(a.storage_m3, b.storage_m3) and np.array_equal(a.level, b.level)
+    with pytest.raises(InvalidParameter, match="segments"):
+        lean.curve_at(1, [0.0])
