@@ -25,6 +25,8 @@ Usage: python bench/bench_tiled.py [--size 20000] [--workers 2] [--memory 2GB]
        [--tile 2048] [--crop 4000] [--crop-tile 1024] [--memory-size 0] [--engine-only]
        [--keep DIR]
 
+pysheds' ``fill_depressions`` alone is timed on the crop for scale.
+
 Targets (issue): >= 6 Mcells/s aggregate, no process above 3 GB, exact agreement
 with the in-memory result on a 4000 x 4000 crop.
 """
@@ -151,6 +153,31 @@ def _in_memory_child(path: str, tile: int | None) -> None:
                       "depressions": len(r.depressions), "peak_gb": _peak_kib() / 2**20}))
 
 
+def _pysheds_child(path: str) -> None:
+    """In a fresh process: pysheds' fill_depressions alone on a DEM file; print its time."""
+    import pysheds
+    import rasterio
+    from affine import Affine
+    from pysheds.grid import Grid
+    from pysheds.sview import Raster, ViewFinder
+
+    with rasterio.open(path) as src:
+        z = src.read(1).astype(np.float32)
+    view = ViewFinder(affine=Affine(1.0, 0, 0, 0, -1.0, float(z.shape[0])), shape=z.shape,
+                      nodata=np.float32(-9999.0), crs="EPSG:32633")
+    t0 = time.perf_counter()
+    Grid(viewfinder=view).fill_depressions(Raster(z, viewfinder=view))
+    seconds = time.perf_counter() - t0
+    print(json.dumps({"cells": int(z.size), "seconds": seconds, "version": pysheds.__version__,
+                      "peak_gb": _peak_kib() / 2**20}))
+
+
+def pysheds_figures(path: Path) -> dict:
+    out = subprocess.run([sys.executable, __file__, "--pysheds-child", str(path)],
+                         check=True, capture_output=True, text=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
 def in_memory_figures(path: Path) -> dict:
     out = subprocess.run([sys.executable, __file__, "--in-memory-child", str(path)],
                          check=True, capture_output=True, text=True)
@@ -239,9 +266,13 @@ def main(argv=None) -> int:
                     help="skip the outlines and hierarchy files (the engine's figures only)")
     ap.add_argument("--keep", default=None, help="work folder to keep (default: a temporary one)")
     ap.add_argument("--in-memory-child", default=None, help=argparse.SUPPRESS)
+    ap.add_argument("--pysheds-child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.in_memory_child:
         _in_memory_child(args.in_memory_child, None)
+        return 0
+    if args.pysheds_child:
+        _pysheds_child(args.pysheds_child)
         return 0
 
     from sillmark.engine.executors import dask_executor as dask_map
@@ -290,6 +321,7 @@ def main(argv=None) -> int:
             report["peak_rss_gb"] = _process_peaks()
             report["crop"] = check_crop(crop, work / "crop_out", run_map, args.crop_tile)
         report["in_memory_crop"] = in_memory_figures(crop)
+        report["pysheds_crop"] = pysheds_figures(crop)
         if args.memory_size:
             big = work / f"square_{args.memory_size}.tif"
             write_terrain(big, args.size, window=(0, args.memory_size, 0, args.memory_size))
@@ -312,6 +344,9 @@ def main(argv=None) -> int:
               f"{every['mcells_per_s']:.2f} Mcells/s")
     print(f"in-memory on the {args.crop} x {args.crop} crop: {imc['cells'] / imc['seconds'] / 1e6:.2f} "
           f"Mcells/s, peak {imc['peak_gb']:.2f} GB")
+    ps = report["pysheds_crop"]
+    print(f"pysheds {ps['version']} fill_depressions alone on the same crop: "
+          f"{ps['cells'] / ps['seconds'] / 1e6:.2f} Mcells/s, peak {ps['peak_gb']:.2f} GB")
     return 0 if exact else 1
 
 

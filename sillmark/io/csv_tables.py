@@ -5,8 +5,10 @@ as the same float32 or float64, empty where a value does not exist.
 from __future__ import annotations
 
 import csv
+import io
 import json
 import os
+import re
 from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -120,14 +122,32 @@ def column_texts(values: np.ndarray) -> list[str]:
     values = np.asarray(values)
     kind = values.dtype.kind
     if kind == "O":
-        return [cell_text(v) for v in values.tolist()]
+        items = values.tolist()
+        if set(map(type, items)) <= {str}:
+            return _text_cells(items)
+        return [cell_text(v) for v in items]
     if kind in "US":
-        return [spreadsheet_safe(str(v)) for v in values.tolist()]
+        return _text_cells([str(v) for v in values.tolist()] if kind == "S" else values.tolist())
     if kind in "iu":
         return list(map(str, values.tolist()))
     if kind == "b":
         return [str(int(v)) for v in values.tolist()]
     return float_texts(values)
+
+
+def _text_cells(items: list[str]) -> list[str]:
+    """Text cells made safe for spreadsheets, each distinct text once (columns such as
+    a kind of row repeat a few words)."""
+    memo: dict[str, str] = {}
+    get = memo.get
+    out = []
+    append = out.append
+    for v in items:
+        t = get(v)
+        if t is None:
+            t = memo[v] = spreadsheet_safe(v)
+        append(t)
+    return out
 
 
 def json_records(columns: dict[str, np.ndarray]) -> Iterator[dict[str, Any]]:
@@ -189,6 +209,53 @@ def write_table_csv(path: str | os.PathLike, columns: dict[str, np.ndarray]) -> 
         with open(tmp, "x", newline="", encoding="utf-8") as f:
             writer = csv.writer(f, lineterminator="\n")
             writer.writerow(spreadsheet_safe(str(name)) for name in arrays)
-            if arrays and lengths.pop():
-                writer.writerows(zip(*(column_texts(a) for a in arrays.values())))
+            write_rows(f, arrays)
     return final
+
+
+#: Rows formatted at once by :func:`write_rows`: the texts of a chunk take about
+#: 60 bytes per cell of the table, so a chunk stays within tens of megabytes.
+ROWS_AT_ONCE = 1 << 15
+
+
+def write_rows(f, columns: dict[str, np.ndarray], *, chunk: int = ROWS_AT_ONCE) -> int:
+    """Write the rows of a table CSV to the open text file ``f``, ``chunk`` rows at a
+    time (:func:`rows_text` of each run of rows: the same text as all at once, and
+    the memory of one chunk's texts); returns the number of rows."""
+    arrays = {name: np.asarray(values) for name, values in columns.items()}
+    lengths = {len(a) for a in arrays.values()}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
+    n = lengths.pop() if lengths else 0
+    for a in range(0, n, chunk):
+        f.write(rows_text({name: v[a:a + chunk] for name, v in arrays.items()}))
+    return n
+
+
+#: Characters that make csv.writer quote a field (delimiter, quote, line ends).
+_NEEDS_QUOTES = re.compile(r'[,"\r\n]')
+
+
+def rows_text(columns: dict[str, np.ndarray]) -> str:
+    """The rows of a table CSV as :func:`write_table_csv` writes them, as one text.
+
+    Numbers as the shortest text that reads back as the same float32 or
+    float64 (empty for NaN), text made safe for spreadsheets; the text is what
+    ``csv.writer`` writes, built by joining the columns' texts when no field
+    needs quoting (several times faster). Empty when the columns are.
+    """
+    arrays = [np.asarray(values) for values in columns.values()]
+    lengths = {len(a) for a in arrays}
+    if len(lengths) > 1:
+        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
+    if not arrays or not lengths.pop():
+        return ""
+    texts = [column_texts(a) for a in arrays]
+    plain = len(texts) > 1 and not any(
+        any(_NEEDS_QUOTES.search(t) for t in set(column))
+        for column, a in zip(texts, arrays) if a.dtype.kind in "USO")
+    if plain:
+        return "\n".join(map(",".join, zip(*texts))) + "\n"
+    buffer = io.StringIO(newline="")
+    csv.writer(buffer, lineterminator="\n").writerows(zip(*texts))
+    return buffer.getvalue()

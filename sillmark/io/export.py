@@ -63,7 +63,11 @@ from sillmark.io.geotiff import (
     write_onset_stage,
 )
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
-from sillmark.io.hierarchy_writer import HierarchyFiles, write_hierarchy_files
+from sillmark.io.hierarchy_writer import (
+    HierarchyFiles,
+    curves_summary,
+    write_hierarchy_files,
+)
 from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.summary import FILE_NAMES, significance_member, write_summary
 from sillmark.io.vector_layers import write_depression_layer, write_spill_point_layer
@@ -234,7 +238,8 @@ def write_result_files(
         step(
             summary_name,
             lambda: write_summary(result, dem, outlets, out / summary_name,
-                                  files=[p.name for p in paths], significance=member),
+                                  files=[p.name for p in paths], significance=member,
+                                  curves=curves_summary(written)),
         )
     )
     return ResultFiles(paths=paths, hierarchy=written, significance=member)

@@ -34,10 +34,18 @@ centimetres the breakpoints are few (one per centimetre of depth at most), so
 every node is written in full.
 
 Every node has its whole curve, pit to spill, so a node's rows repeat the
-levels of the nodes nested in it; the caps keep the file at most a few hundred
-rows per node (the node table's size times a few hundred) whatever the DEM's
-precision or the nesting depth. On the demo site: 77 nodes, about 2 300 rows,
-100 kB.
+levels of the nodes nested in it; the limits keep it at most a few hundred rows
+whatever the DEM's precision or the nesting depth. Only the *listed* nodes
+(every node by default; e.g. the significant depressions) have rows, and the
+file holds at most ``max_curve_rows`` (default
+:data:`sillmark.products.hierarchy_curves.DEFAULT_MAX_CURVE_ROWS`): past the cap
+every node keeps its pit, merge and spill rows and every 2nd, 4th, ... row
+(:mod:`sillmark.products.hierarchy_curves`), and the file's comment lines say
+so. The rows are computed in time linear in the depression cells and the rows.
+On the demo site: 77 nodes, about 2 300 rows, 100 kB.
+
+``depression_hierarchy.json`` lists the listed nodes (all by default); the node
+table CSV always lists every node.
 """
 
 from __future__ import annotations
@@ -45,11 +53,9 @@ from __future__ import annotations
 import csv
 import io
 import json
-import math
 import os
-import re
 import shutil
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, TextIO
 
@@ -64,8 +70,8 @@ from sillmark.grid.crs import (
     wgs84_transformer,
 )
 from sillmark.io.atomic import atomic_output
-from sillmark.io.csv_tables import column_texts
-from sillmark.io.json_values import json_number
+from sillmark.io.csv_tables import ROWS_AT_ONCE, rows_text
+from sillmark.products import hierarchy_curves
 from sillmark.products.hierarchy import DepressionHierarchy, HierarchyTable
 from sillmark.units import VerticalUnit, own_unit_columns, unit_name, unit_suffix
 
@@ -83,6 +89,7 @@ __all__ = [
     "csv_rows",
     "curve_columns",
     "curve_part_columns",
+    "curve_row_columns",
     "curves_csv_comments",
     "hierarchy_columns",
     "hierarchy_csv_comments",
@@ -185,17 +192,15 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dic
     ok = np.isfinite(t.spill_x) & np.isfinite(t.spill_y)
     if ok.any():
         lon[ok], lat[ok] = wgs84_transformer(dem).transform(t.spill_x[ok], t.spill_y[ok])
-    children = [
-        _CHILD_SEPARATOR.join(str(int(c)) for c in t.children_ids[t.children_start[k] : t.children_start[k + 1]])
-        for k in range(n)
-    ]
+    children = _children_texts(t.children_start, t.children_ids, np.arange(n), "", "",
+                               _CHILD_SEPARATOR)
     area = np.asarray(t.area_m2, dtype=np.float64)
     volume = np.asarray(t.volume_m3, dtype=np.float64)
     cols: dict[str, np.ndarray] = {
         "id": t.id,
         "parent": t.parent,
         "depression": t.depression,
-        "is_leaf": np.array(["true" if leaf else "false" for leaf in t.is_leaf], dtype=str),
+        "is_leaf": np.where(t.is_leaf, "true", "false"),
         "subtree_size": t.subtree_size,
         "children": np.array(children, dtype=object),
         "pit_row": t.pit_row,
@@ -238,9 +243,14 @@ def hierarchy_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM") ->
     ]
 
 
-def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_count: int) -> str:
+def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_count: int,
+                        *, all_nodes: int | None = None) -> str:
     """The text of ``depression_hierarchy.json`` before its first node: every
-    member up to ``"nodes":[``, in file order (the node count included)."""
+    member up to ``"nodes":[``, in file order (the node count included).
+
+    ``node_count`` is the number of nodes the file lists; when it lists only
+    some of the hierarchy's ``all_nodes`` (the listed ones), the head says so.
+    """
     h = horizontal_unit_suffix(dem)
     units = {name: unit.value for name in _FLOAT32_FIELDS}
     units.update({"spill_x": h, "spill_y": h, "area_m2": "m2", "volume_m3": "m3"})
@@ -257,22 +267,73 @@ def hierarchy_json_head(unit: VerticalUnit, connectivity: int, dem: "DEM", node_
         "connectivity": int(connectivity),
         "node_count": int(node_count),
     }
+    if all_nodes is not None and int(all_nodes) != int(node_count):
+        members["hierarchy_node_count"] = int(all_nodes)
+        members["listed_only"] = ("the nodes listed (e.g. the significant depressions); every "
+                                  "node is in depression_hierarchy.csv")
     return json_text(members)[:-1] + ',"nodes":['
 
 
-def json_node_texts(t: HierarchyTable) -> Iterator[str]:
-    """Each node of a table as its JSON object text, in id order.
+def json_node_texts(t: HierarchyTable, listed: np.ndarray | None = None) -> list[str]:
+    """Each node of a table (the ``listed`` ones, default all) as its JSON object text,
+    in id order.
 
     The object of :meth:`~sillmark.products.hierarchy.HierarchyTable.row` (every column,
     then ``children``), with the float32 fields (elevations, depth) as their
     shortest decimals, as in the CSV (59.2, not 59.20000076293945); each reads
-    back as the same float32. NaN is null.
+    back as the same float32. NaN is null. The text is what :func:`json_text`
+    gives for that object, built a column at a time.
     """
-    for k in range(len(t)):
-        node = t.row(k + 1)
-        for name in _FLOAT32_FIELDS:
-            node[name] = json_number(getattr(t, name)[k])
-        yield json_text(node)
+    keep = np.arange(len(t)) if listed is None else np.flatnonzero(listed)
+    names = t.columns
+    texts = [_json_column(np.asarray(getattr(t, name))[keep]) for name in names]
+    texts.append(_children_texts(t.children_start, t.children_ids, keep, "[", "]", ","))
+    template = "{" + ",".join(f"{json_text(name)}:%s" for name in (*names, "children")) + "}"
+    return [template % row for row in zip(*texts)]
+
+
+def write_json_nodes(f, t: HierarchyTable, listed: np.ndarray | None = None, *,
+                     chunk: int = ROWS_AT_ONCE) -> int:
+    """Write :func:`json_node_texts` joined by commas (a part of ``"nodes"``) to the
+    open text file ``f``, ``chunk`` nodes at a time; returns the number written."""
+    keep = np.ones(len(t), dtype=bool) if listed is None else np.asarray(listed, dtype=bool)
+    written = 0
+    for a in range(0, len(t), chunk):
+        part = json_node_texts(_rows_of(t, a, a + chunk), keep[a:a + chunk])
+        if part:
+            f.write(("," if written else "") + ",".join(part))
+            written += len(part)
+    return written
+
+
+def _rows_of(t: HierarchyTable, a: int, b: int) -> HierarchyTable:
+    """Rows ``a:b`` of a node table (children lists re-based, ids unchanged)."""
+    b = min(b, len(t))
+    lo, hi = int(t.children_start[a]), int(t.children_start[b])
+    fields = {name: getattr(t, name)[a:b] for name in t.columns}
+    return HierarchyTable(**fields, children_start=t.children_start[a:b + 1] - lo,
+                          children_ids=t.children_ids[lo:hi])
+
+
+def _json_column(values: np.ndarray) -> list[str]:
+    """JSON texts of a column: ints, true/false, float32 as their shortest decimal
+    (``json_number``), float64 as Python writes them, NaN as null."""
+    kind = values.dtype.kind
+    if kind == "b":
+        return ["true" if v else "false" for v in values.tolist()]
+    if kind in "iu":
+        return list(map(str, values.tolist()))
+    shortest = values.astype(str).tolist() if values.dtype == np.float32 else None
+    floats = [float(v) for v in shortest] if shortest is not None else values.tolist()
+    return ["null" if v != v else repr(v) for v in floats]
+
+
+def _children_texts(children_start: np.ndarray, children_ids: np.ndarray, keep: np.ndarray,
+                    open_: str, close: str, sep: str) -> list[str]:
+    """Children ids of the nodes ``keep`` (zero-based), each list as text."""
+    ids = list(map(str, children_ids.tolist()))
+    bounds = np.asarray(children_start).tolist()
+    return [open_ + sep.join(ids[bounds[k]:bounds[k + 1]]) + close for k in keep.tolist()]
 
 
 def json_text(value) -> str:
@@ -292,27 +353,9 @@ def csv_head(columns: dict | Iterable[str]) -> str:
 
 
 def csv_rows(columns: dict[str, np.ndarray]) -> str:
-    """The rows of a table CSV, numbers as :func:`sillmark.io.csv_tables.write_table_csv`
-    writes them (shortest text that reads back as the same float32 or float64,
-    empty for NaN); empty when the columns are."""
-    arrays = [np.asarray(values) for values in columns.values()]
-    lengths = {len(a) for a in arrays}
-    if len(lengths) > 1:
-        raise InvalidParameter(f"the columns differ in length: {sorted(lengths)}")
-    if not arrays or not lengths.pop():
-        return ""
-    texts = [column_texts(a) for a in arrays]
-    plain = len(texts) > 1 and not any(
-        any(_NEEDS_QUOTES.search(t) for t in set(column))
-        for column, a in zip(texts, arrays) if a.dtype.kind in "USO")
-    if plain:
-        # What csv.writer writes when no field needs quoting, several times faster.
-        return "\n".join(map(",".join, zip(*texts))) + "\n"
-    return _csv_text(zip(*texts))
-
-
-#: Characters that make csv.writer quote a field (delimiter, quote, line ends).
-_NEEDS_QUOTES = re.compile(r'[,"\r\n]')
+    """The rows of a table CSV, as :func:`sillmark.io.csv_tables.write_table_csv` writes
+    them (:func:`sillmark.io.csv_tables.rows_text`)."""
+    return rows_text(columns)
 
 
 def _csv_text(rows) -> str:
@@ -379,62 +422,6 @@ def _copy_text(path: str | os.PathLike, out: TextIO) -> None:
 # --------------------------------------------------------------------------- curves
 
 
-def _breakpoint_sets(hierarchy: DepressionHierarchy, limit: int) -> list[np.ndarray | None]:
-    """Per node (index ``v - 1``), the elevations of its full curve's breakpoints,
-    or None when there are more than ``limit``.
-
-    The breakpoints of a node are the union of the own segments of its subtree
-    (each node's segment runs from its merge elevation, or pit, to its spill
-    elevation through its own cells' elevations). Built children first and
-    dropped as soon as a set passes ``limit``, so the work is at most about
-    ``limit`` per node whatever the nesting depth.
-    """
-    t = hierarchy.nodes
-    s = hierarchy.segments
-    out: list[np.ndarray | None] = [None] * len(t)
-    for v in range(1, len(t) + 1):  # post-order: children first
-        own = s.elevation[s.start[v] : s.start[v + 1]]
-        if own.shape[0] > limit:
-            continue
-        parts = [own]
-        complete = True
-        for c in t.children_ids[t.children_start[v - 1] : t.children_start[v]]:
-            child = out[int(c) - 1]
-            if child is None:
-                complete = False
-                break
-            parts.append(child)
-        if not complete:
-            continue
-        points = np.unique(np.concatenate(parts)) if len(parts) > 1 else own
-        if points.shape[0] <= limit:
-            out[v - 1] = points
-    return out
-
-
-def _nice_step(depth: float, steps: int) -> float:
-    """Smallest of 1, 2, 5 times a power of ten that covers ``depth`` in at most ``steps``."""
-    raw = depth / steps
-    power = 10.0 ** math.floor(math.log10(raw))
-    for factor in (1.0, 2.0, 5.0, 10.0):
-        if factor * power >= raw:
-            return factor * power
-    return 10.0 * power  # pragma: no cover - the loop always returns
-
-
-def _stepped_levels(pit: float, merge: float, spill: float, steps: int) -> np.ndarray:
-    """Pit, spill, merge (if any) and the multiples of a nice step between pit and spill."""
-    step = _nice_step(spill - pit, steps)
-    decimals = max(0, -math.floor(math.log10(step)) + 1)
-    k = np.arange(math.ceil(pit / step), math.floor(spill / step) + 1, dtype=np.float64)
-    grid = np.float32(np.round(k * step, decimals)).astype(np.float64)
-    grid = grid[(grid > pit) & (grid < spill)]
-    levels = [grid, np.array([pit, spill])]
-    if math.isfinite(merge):
-        levels.append(np.array([merge]))
-    return np.unique(np.concatenate(levels))
-
-
 def curve_columns(
     hierarchy: DepressionHierarchy,
     dem: "DEM",
@@ -478,6 +465,7 @@ def curve_part_columns(
     step_rows: int = STEP_ROWS,
     node_offset: int = 0,
     depression_offset: int = 0,
+    stride: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """:func:`curve_columns` of a hierarchy that is one piece of a site's.
 
@@ -485,55 +473,55 @@ def curve_part_columns(
     depressions ``depression_offset + 1 ...``, its nodes the site's nodes
     ``node_offset + 1 ...``): the same rows as the site's curves file holds for
     those nodes, with the site's ids. Curves depend on a node's own subtree
-    only, so the values are the same bits. The vertical unit is not checked.
+    only, so the values are the same bits. ``stride`` (per node, see
+    :func:`sillmark.products.hierarchy_curves.strides`; 0 leaves a node out)
+    thins the rows; default every row of every node. The vertical unit is not
+    checked.
     """
-    t = hierarchy.nodes
-    n = len(t)
-    exact = _breakpoint_sets(hierarchy, max_points)
-    per_node: list[np.ndarray] = []
-    stepped = np.zeros(n, dtype=bool)
-    for k in range(n):
-        levels = exact[k]
-        if levels is None:
-            levels = _stepped_levels(float(t.pit_elevation[k]), float(t.merge_elevation[k]),
-                                     float(t.spill_elevation[k]), step_rows)
-            stepped[k] = True
-        per_node.append(np.asarray(levels, dtype=np.float64))
-    counts = np.fromiter((a.shape[0] for a in per_node), dtype=np.int64, count=n)
-    start = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(counts, out=start[1:])
-    levels = np.concatenate(per_node) if per_node else np.empty(0, dtype=np.float64)
-    area, storage = hierarchy.curves_at(start, levels)
+    counts = hierarchy_curves.natural_counts(hierarchy, max_points=max_points,
+                                             step_rows=step_rows)
+    if stride is None:
+        stride = np.ones(len(hierarchy), dtype=np.int64)
+    rows = hierarchy_curves.curve_rows(hierarchy, counts, stride, max_points=max_points,
+                                       step_rows=step_rows)
+    return curve_row_columns(rows, hierarchy.nodes.depression, unit, node_offset=node_offset,
+                             depression_offset=depression_offset)
 
-    # Kind of each row: step or breakpoint between, merge where the children
-    # meet, then pit on each node's first row and spill on its last.
-    names = np.array([POINT_BREAKPOINT, POINT_STEP, POINT_MERGE, POINT_PIT, POINT_SPILL],
-                     dtype=object)
-    code = np.repeat(stepped.astype(np.int8), counts)
-    merge = np.repeat(t.merge_elevation.astype(np.float64), counts)
-    code[levels == merge] = 2  # NaN merges (leaves) match nothing
-    code[start[:-1][counts > 0]] = 3
-    code[start[1:][counts > 0] - 1] = 4
+
+_POINT_NAMES = np.array(hierarchy_curves.POINT_NAMES, dtype=object)
+
+
+def curve_row_columns(rows: "hierarchy_curves.CurveRows", depression: np.ndarray,
+                      unit: VerticalUnit, *, node_offset: int = 0,
+                      depression_offset: int = 0) -> dict[str, np.ndarray]:
+    """The columns of ``depression_curves.csv`` for curve rows (``depression``: the
+    depression of each node of their hierarchy, index ``id - 1``)."""
+    storage = rows.storage_m3
     cols: dict[str, np.ndarray] = {
-        "node_id": np.repeat(np.arange(1 + node_offset, n + 1 + node_offset, dtype=np.int32),
-                             counts),
-        "depression": np.repeat(t.depression.astype(np.int32) + np.int32(depression_offset),
-                                counts),
-        "point": names[code],
-        f"elevation_{unit_suffix(unit)}": levels.astype(np.float32),
-        "area_m2": area,
+        "node_id": (rows.node + np.int32(node_offset)).astype(np.int32),
+        "depression": (np.asarray(depression)[rows.node - 1].astype(np.int32)
+                       + np.int32(depression_offset)) if len(rows) else np.zeros(0, np.int32),
+        "point": _POINT_NAMES[rows.code],
+        f"elevation_{unit_suffix(unit)}": rows.level.astype(np.float32),
+        "area_m2": rows.area_m2,
         "storage_m3": storage,
     }
-    cols.update(own_unit_columns(unit, area_m2=area, volume_m3=storage, volume_name="storage"))
+    cols.update(own_unit_columns(unit, area_m2=rows.area_m2, volume_m3=storage, volume_name="storage"))
     return cols
 
 
 def curves_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM", *,
-                        max_points: int = MAX_CURVE_POINTS, step_rows: int = STEP_ROWS) -> list[str]:
-    """The ``# `` comment lines of ``depression_curves.csv``."""
+                        max_points: int = MAX_CURVE_POINTS, step_rows: int = STEP_ROWS,
+                        thinning: "hierarchy_curves.CurveThinning | None" = None,
+                        listed: int | None = None, nodes: int | None = None) -> list[str]:
+    """The ``# `` comment lines of ``depression_curves.csv``.
+
+    ``thinning`` (the site's, from :func:`sillmark.products.hierarchy_curves.plan_thinning`),
+    ``listed`` and ``nodes`` say which nodes have rows and how the cap thinned them.
+    """
     v = unit_suffix(unit)
-    return _comment_head("stage-area and stage-storage curves of the depression hierarchy",
-                         unit, connectivity, dem) + [
+    lines = _comment_head("stage-area and stage-storage curves of the depression hierarchy",
+                          unit, connectivity, dem) + [
         "one row per node and elevation, node by node (node_id = id in depression_hierarchy.csv, "
         "depression = id in depressions.csv), from the node's pit to its spill elevation",
         f"area_m2: area of the node's region below elevation_{v}; storage_m3: water it holds "
@@ -543,3 +531,22 @@ def curves_csv_comments(unit: VerticalUnit, connectivity: int, dem: "DEM", *,
         f"step (nodes with more get rows at a fixed step spanning their depth in at most "
         f"{step_rows} steps; values are exact on every row, storage is convex between them)",
     ]
+    if listed is not None and nodes is not None and listed != nodes:
+        lines.append(f"nodes: the {listed} listed of the hierarchy's {nodes} (e.g. the "
+                     "significant depressions)")
+    if thinning is not None:
+        if not thinning.thinned:
+            lines.append(f"rows: {thinning.natural_rows}, within the cap of {thinning.max_rows}; "
+                         "nothing thinned")
+        elif not thinning.omits_nodes:
+            lines.append(
+                f"rows: capped at {thinning.max_rows} (the listed nodes have "
+                f"{thinning.natural_rows}); each node keeps its pit, merge and spill rows and "
+                f"every 2nd, 4th, ... row so that it has at most {thinning.budget}; values stay "
+                "exact, storage is convex between rows")
+        else:
+            lines.append(
+                f"rows: capped at {thinning.max_rows} (the listed nodes have "
+                f"{thinning.natural_rows}); only the pit, merge and spill rows of the listed "
+                "nodes with the largest volumes fit; the others have no rows")
+    return lines

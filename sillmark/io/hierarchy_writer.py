@@ -57,6 +57,7 @@ doi:10.5194/esurf-8-431-2020
 from __future__ import annotations
 
 import dataclasses
+import functools
 import os
 import shutil
 import time
@@ -70,6 +71,8 @@ import numpy as np
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import horizontal_crs
 from sillmark.io import hierarchy_files as hx
+from sillmark.io.csv_tables import write_rows
+from sillmark.products import hierarchy_curves as hc
 from sillmark.products.hierarchy import HierarchyTable
 from sillmark.products.hierarchy_sweep import hierarchy_of_cells
 from sillmark.products.hierarchy_windows import (
@@ -87,7 +90,7 @@ if TYPE_CHECKING:  # pragma: no cover
 
     from sillmark.products.source import ResultSource
 
-__all__ = ["DEFAULT_WINDOW_CELLS", "HierarchyFiles", "write_hierarchy_files"]
+__all__ = ["DEFAULT_WINDOW_CELLS", "HierarchyFiles", "curves_summary", "write_hierarchy_files"]
 
 _SCRATCH_PREFIX = ".sillmark-hierarchy-"
 #: Fields of HierarchyTable kept per batch in the scratch files.
@@ -111,9 +114,18 @@ class HierarchyFiles:
     window_cells : int
         Cells of the largest window read.
     seconds : dict
-        Wall time of each step: ``bounds``, ``batches`` (with the formatting when
-        ``map`` is None), ``batch_tasks`` (summed over the tasks), ``format``
-        (with a ``map`` only) and ``write``.
+        Wall time of each step: ``bounds``, ``batches`` (with the node rows when
+        ``map`` is None), ``batch_tasks`` (summed over the tasks), ``curves``
+        (with a ``map`` and ``listed``), ``format`` and ``write``.
+    listed : int
+        Nodes given curve rows and JSON objects (all without ``listed``).
+    curve_rows, curve_rows_cap, curve_rows_natural : int
+        Rows written to the curves file, the cap, and the listed nodes' rows
+        before thinning.
+    curve_rows_budget : int
+        0 when nothing was thinned, else the most rows a node kept.
+    curve_nodes_left_out : int
+        Listed nodes without rows (only when three rows each pass the cap).
     """
 
     files: list
@@ -123,6 +135,12 @@ class HierarchyFiles:
     batches: int
     window_cells: int
     seconds: dict
+    listed: int = 0
+    curve_rows: int = 0
+    curve_rows_cap: int = 0
+    curve_rows_natural: int = 0
+    curve_rows_budget: int = 0
+    curve_nodes_left_out: int = 0
 
     def __len__(self) -> int:
         return self.nodes
@@ -139,12 +157,26 @@ class _Job:
     unit: str
     max_points: int
     step_rows: int
-    curve_names: tuple = ()
-    #: Boolean per hierarchy node (index ``id - 1``): write its curve; None = every node.
-    listed: np.ndarray | None = None
+    max_rows: int
 
     def part(self, k: int, what: str) -> str:
         return os.path.join(self.scratch, f"batch{k:06d}_{what}")
+
+
+def curves_summary(written: HierarchyFiles) -> dict:
+    """What ``summary.json`` says of the curves file: its rows, the cap and any thinning."""
+    if written.curve_rows_budget == 0:
+        thinning = "none"
+    elif written.curve_nodes_left_out == 0:
+        thinning = (f"each node keeps its pit, merge and spill rows and every 2nd, 4th, ... row, "
+                    f"at most {written.curve_rows_budget}")
+    else:
+        thinning = ("pit, merge and spill rows only, for the listed nodes with the largest "
+                    "volumes")
+    return {"file": hx.CURVES_CSV, "rows": written.curve_rows, "max_rows": written.curve_rows_cap,
+            "rows_before_thinning": written.curve_rows_natural, "thinning": thinning,
+            "listed_nodes": written.listed, "hierarchy_nodes": written.nodes,
+            "listed_nodes_without_rows": written.curve_nodes_left_out}
 
 
 def _task_layers(source: "ResultSource") -> Any:
@@ -156,40 +188,75 @@ def _task_layers(source: "ResultSource") -> Any:
 
 
 # --------------------------------------------------------------------------- tasks
+#
+# A batch's curve rows are computed where its hierarchy is built, thinned for the
+# batch alone (never more rows than the cap); once every batch is counted, the
+# site's thinning (a subset of each batch's, see sillmark.products.hierarchy_curves)
+# picks the rows written.
+
+_CURVE_FIELDS = ("node", "index", "level", "area_m2", "storage_m3", "code")
 
 
 def _built(job: _Job, first: int, last: int, window: tuple[int, int, int, int],
            areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
            spill_col: np.ndarray, cell_count: np.ndarray):
-    """The hierarchy of depressions ``first..last`` in their window: its node table,
-    its curve rows and its counts."""
-    unit = VerticalUnit.parse(job.unit)
+    """The hierarchy of depressions ``first..last`` in their window, and its counts."""
     hierarchy = batch_hierarchy(
         job.layers, first, last, window, areas=areas, spill_elevation=spill_elevation,
         spill_row=spill_row, spill_col=spill_col, cell_count=cell_count,
-        connectivity=job.connectivity, unit=unit, transform=job.transform,
+        connectivity=job.connectivity, unit=VerticalUnit.parse(job.unit),
+        transform=job.transform, segments=False,  # the curve rows do not read them
     )
     t = hierarchy.nodes
-    curves = hx.curve_part_columns(hierarchy, unit, max_points=job.max_points,
-                                   step_rows=job.step_rows)
     counts = {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
               "depth": tree_depth(t.parent)}
-    return t, curves, counts
+    return hierarchy, counts
+
+
+def _curve_part(job: _Job, hierarchy, listed: np.ndarray | None) -> tuple[dict, dict]:
+    """The batch's curve rows, thinned for the batch alone, and its thinning summary."""
+    t = hierarchy.nodes
+    natural = hc.natural_counts(hierarchy, max_points=job.max_points, step_rows=job.step_rows)
+    stride, _ = hc.choose_strides(natural, t.volume_m3, listed, job.max_rows)
+    rows = hc.curve_rows(hierarchy, natural, stride, max_points=job.max_points,
+                         step_rows=job.step_rows)
+    tables = {f"curve_{name}": getattr(rows, name) for name in _CURVE_FIELDS}
+    tables.update(count_rows=natural.rows, count_merge=natural.merge_index,
+                  count_stepped=natural.stepped)
+    return tables, hc.thinning_summary(natural, t.volume_m3, listed, job.max_rows)
+
+
+def _save(path: str, arrays: dict) -> None:
+    with open(path, "wb") as f:
+        np.savez(f, **arrays)
 
 
 def _hierarchy_task(job: _Job, k: int, first: int, last: int, window: tuple[int, int, int, int],
                     areas: np.ndarray, spill_elevation: np.ndarray, spill_row: np.ndarray,
-                    spill_col: np.ndarray, cell_count: np.ndarray) -> dict:
-    """Step 2 on a ``map``: the batch's hierarchy, its tables kept in a scratch file."""
+                    spill_col: np.ndarray, cell_count: np.ndarray, nodes: bool = True,
+                    curves: bool = True, listed: np.ndarray | None = None) -> dict:
+    """Step 2 on a ``map``: the batch's hierarchy, its node table (with ``nodes``) and
+    its curve rows for the ``listed`` nodes (with ``curves``) kept in scratch files.
+
+    With ``listed`` given, the batch's node ids are known only once every batch
+    has counted its nodes: the first round keeps the node table only, and a
+    second round builds the hierarchy again for the curves.
+    """
     t0 = time.perf_counter()
-    t, curves, counts = _built(job, first, last, window, areas, spill_elevation, spill_row,
+    hierarchy, counts = _built(job, first, last, window, areas, spill_elevation, spill_row,
                                spill_col, cell_count)
-    saved = {f"node_{name}": getattr(t, name) for name in _NODE_FIELDS}
-    saved.update({f"curve_{j}": np.asarray(values, dtype=str if values.dtype == object else None)
-                  for j, values in enumerate(curves.values())})
-    with open(job.part(k, "tables.npz"), "wb") as f:
-        np.savez(f, **saved)
+    t = hierarchy.nodes
+    if nodes:
+        _save(job.part(k, "nodes.npz"), {f"node_{name}": getattr(t, name) for name in _NODE_FIELDS})
+    if curves:
+        tables, counts["thinning"] = _curve_part(job, hierarchy, listed)
+        _save(job.part(k, "curves.npz"), tables)
     return {**counts, "task_s": time.perf_counter() - t0}
+
+
+def _curves_round(*call) -> dict:
+    """:func:`_hierarchy_task` with its keyword options as trailing arguments."""
+    return _hierarchy_task(*call)
 
 
 def _shifted(t: HierarchyTable, node_offset: int, depression_offset: int) -> HierarchyTable:
@@ -203,54 +270,70 @@ def _shifted(t: HierarchyTable, node_offset: int, depression_offset: int) -> Hie
     )
 
 
-def _write_parts(job: _Job, k: int, table: HierarchyTable, curves: dict, node_offset: int,
-                 depression_offset: int, placed: Any) -> None:
-    """Step 3: the batch's rows of the three files as text, with the site's ids."""
+def _write_node_parts(job: _Job, k: int, table: HierarchyTable, node_offset: int,
+                      depression_offset: int, placed: Any, listed: np.ndarray | None) -> None:
+    """The batch's rows of the node table and of the JSON (listed nodes only), site ids."""
     unit = VerticalUnit.parse(job.unit)
     table = _shifted(table, node_offset, depression_offset)
-    curves = dict(curves)
-    curves["node_id"] = (curves["node_id"] + node_offset).astype(np.int32)
-    curves["depression"] = (curves["depression"] + depression_offset).astype(np.int32)
-    if job.listed is not None:
-        if len(table) and int(table.id.max()) > job.listed.shape[0]:
-            raise InvalidParameter(
-                f"'listed' holds {job.listed.shape[0]} nodes but the hierarchy has more; "
-                "compute it on the same result")
-        keep = job.listed[curves["node_id"] - 1]
-        curves = {name: np.asarray(values)[keep] for name, values in curves.items()}
-    for what, text in (
-        ("nodes.csv", hx.csv_rows(hx.node_table_columns(table, unit, placed))),
-        ("nodes.json", ",".join(hx.json_node_texts(table))),
-        ("curves.csv", hx.csv_rows(curves)),
-    ):
-        with open(job.part(k, what), "w", encoding="utf-8", newline="") as f:
-            f.write(text)
+    with open(job.part(k, "nodes.csv"), "w", encoding="utf-8", newline="") as f:
+        write_rows(f, hx.node_table_columns(table, unit, placed))
+    with open(job.part(k, "nodes.json"), "w", encoding="utf-8", newline="") as f:
+        hx.write_json_nodes(f, table, listed)
 
 
-def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, placed: Any) -> dict:
+def _write_curve_part(job: _Job, k: int, tables: dict, depression: np.ndarray,
+                      node_offset: int, depression_offset: int, listed: np.ndarray | None,
+                      thinning: "hc.CurveThinning") -> int:
+    """The batch's rows of the curves file, thinned for the site; returns their number."""
+    natural = hc.CurveCounts(rows=tables["count_rows"], merge_index=tables["count_merge"],
+                             stepped=tables["count_stepped"])
+    stride = hc.strides(natural, tables["volume"], listed, thinning, node_offset=node_offset)
+    keep = hc.kept_mask(tables["curve_index"], tables["curve_node"], natural, stride)
+    rows = hc.CurveRows(**{name: tables[f"curve_{name}"][keep] for name in _CURVE_FIELDS})
+    cols = hx.curve_row_columns(rows, depression, VerticalUnit.parse(job.unit),
+                                node_offset=node_offset, depression_offset=depression_offset)
+    with open(job.part(k, "curves.csv"), "w", encoding="utf-8", newline="") as f:
+        write_rows(f, cols)
+    return len(rows)
+
+
+def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, placed: Any,
+                 listed: np.ndarray | None, thinning: "hc.CurveThinning") -> dict:
     """Step 3 on a ``map``: the batch's parts from its scratch tables."""
     t0 = time.perf_counter()
-    with np.load(job.part(k, "tables.npz"), allow_pickle=False) as saved:
+    with np.load(job.part(k, "nodes.npz"), allow_pickle=False) as saved:
         table = HierarchyTable(**{name: saved[f"node_{name}"] for name in _NODE_FIELDS})
-        curves = {name: saved[f"curve_{j}"] for j, name in enumerate(job.curve_names)}
-    _write_parts(job, k, table, curves, node_offset, depression_offset, placed)
-    os.remove(job.part(k, "tables.npz"))
-    return {"task_s": time.perf_counter() - t0}
+    with np.load(job.part(k, "curves.npz"), allow_pickle=False) as saved:
+        tables = dict(saved)
+    tables["volume"] = table.volume_m3
+    _write_node_parts(job, k, table, node_offset, depression_offset, placed, listed)
+    rows = _write_curve_part(job, k, tables, table.depression, node_offset, depression_offset,
+                             listed, thinning)
+    os.remove(job.part(k, "nodes.npz"))
+    os.remove(job.part(k, "curves.npz"))
+    return {"task_s": time.perf_counter() - t0, "curve_rows": rows}
 
 
-def _serial_batches(job: _Job, calls: list, placed: Any, report) -> list[dict]:
-    """Steps 2 and 3 in this process, batch after batch: each batch is formatted as
-    soon as it is built (the node offset is known), without scratch tables."""
-    done, nodes = [], 0
+def _serial_batches(job: _Job, calls: list, placed: Any, report, listed) -> tuple[list, list]:
+    """Steps 2 and 3 in this process, batch after batch: each batch's node rows are
+    written as soon as it is built (the node offset is known), its curve rows kept
+    (at most the cap) until every batch is counted."""
+    done, kept, nodes = [], [], 0
     report("hierarchy", 0, len(calls))
     for job_, k, first, *rest in calls:
         t0 = time.perf_counter()
-        t, curves, counts = _built(job_, first, *rest)
-        _write_parts(job_, k, t, curves, nodes, first - 1, placed)
+        hierarchy, counts = _built(job_, first, *rest)
+        t = hierarchy.nodes
+        mine = None if listed is None else listed[nodes:nodes + len(t)]
+        tables, counts["thinning"] = _curve_part(job_, hierarchy, mine)
+        tables["volume"] = t.volume_m3
+        del hierarchy
+        _write_node_parts(job_, k, t, nodes, first - 1, placed, mine)
+        kept.append((tables, t.depression, nodes, first - 1, mine))
         nodes += counts["nodes"]
         done.append({**counts, "task_s": time.perf_counter() - t0})
         report("hierarchy", len(done), len(calls))
-    return done
+    return done, kept
 
 
 def _empty_hierarchy(job: _Job):
@@ -282,6 +365,7 @@ def write_hierarchy_files(
     window_cells: int | None = None,
     keep_scratch: bool = False,
     listed: np.ndarray | None = None,
+    max_curve_rows: int = hc.DEFAULT_MAX_CURVE_ROWS,
 ) -> HierarchyFiles:
     """Write the three depression-hierarchy files of a result into ``out_dir``.
 
@@ -309,11 +393,17 @@ def write_hierarchy_files(
         :data:`DEFAULT_WINDOW_CELLS`.
     keep_scratch : bool, keyword-only
         Keep the scratch folder (for debugging).
-    listed : bool ndarray, optional, keyword-only
-        One value per hierarchy node (index ``id - 1``, the site's post-order
-        ids): write the curves of these nodes only, e.g. the significant ones
-        (:attr:`sillmark.products.significance.Significance.significant`).
-        None (default): every node.
+    listed : bool array, optional, keyword-only
+        One entry per node of the site's hierarchy (site ids, ``listed[v - 1]``
+        for node ``v``): the nodes that get curve rows and a place in the JSON
+        (e.g. the significant depressions). Default: every node. The node
+        table lists every node whatever ``listed`` says. With a ``map``, each
+        batch's hierarchy is built a second time for its curves (its node ids
+        are known only once every batch has counted its nodes).
+    max_curve_rows : int, keyword-only
+        Cap on the rows of ``depression_curves.csv`` (at least 3); see
+        :mod:`sillmark.products.hierarchy_curves` for how rows are thinned to fit
+        it, which the file's comment lines state.
 
     Returns
     -------
@@ -358,6 +448,12 @@ def write_hierarchy_files(
     if window_cells is None:
         window_cells = grid.shape[0] * grid.shape[1] if isinstance(source, ArraySource) else DEFAULT_WINDOW_CELLS
     budget = checked_window_cells(window_cells)
+    cap = hc._check_cap(max_curve_rows)
+    if listed is not None:
+        listed = np.asarray(listed)
+        if listed.dtype != np.bool_ or listed.ndim != 1:
+            raise InvalidParameter("listed must be a 1-D boolean array, one entry per "
+                                   f"hierarchy node, not {listed.dtype} of shape {listed.shape}")
     out = Path(out_dir)
     if not out.is_dir():
         raise InvalidParameter(f"the output folder {out} does not exist or is a file; give a folder")
@@ -383,6 +479,11 @@ def write_hierarchy_files(
         report(step, len(calls), len(calls))
         return results
 
+    def check_listed(nodes: int) -> None:
+        if listed is not None and listed.shape[0] != nodes:
+            raise InvalidParameter(f"listed holds {listed.shape[0]} entries but the hierarchy "
+                                   f"has {nodes} nodes")
+
     t0 = time.perf_counter()
     batches = hierarchy_batches(source, window_cells=budget, count=count)
     times["bounds"] = time.perf_counter() - t0
@@ -394,9 +495,8 @@ def write_hierarchy_files(
             raise InvalidParameter("'listed' must be a 1-D boolean array, one value per hierarchy node")
     job = _Job(layers=_task_layers(source), transform=grid.transform, scratch=str(scratch),
                connectivity=connectivity, unit=unit.value, max_points=hx.MAX_CURVE_POINTS,
-               step_rows=hx.STEP_ROWS, listed=listed)
+               step_rows=hx.STEP_ROWS, max_rows=cap)
     empty = _empty_hierarchy(job)
-    job = dataclasses.replace(job, curve_names=tuple(hx.curve_part_columns(empty, unit)))
     placed = _Placed(grid.crs)
     try:
         t0 = time.perf_counter()
@@ -406,27 +506,51 @@ def write_hierarchy_files(
             calls.append((job, k, first, last, (r0, r1, c0, c1), row_areas[r0:r1],
                           spill_elevation[sl], spill_row[sl], spill_col[sl], cell_count[sl]))
         if map is None:
-            built = _serial_batches(job, calls, placed, report)
-            times["batches"] = time.perf_counter() - t0
-            report("hierarchy_files", 0, len(built))  # formatted along the way
-            report("hierarchy_files", len(built), len(built))
-        else:
-            built = run_tasks("hierarchy", _hierarchy_task, calls)
+            built, kept = _serial_batches(job, calls, placed, report, listed)
+            nodes = sum(b["nodes"] for b in built)
+            check_listed(nodes)
             times["batches"] = time.perf_counter() - t0
             t0 = time.perf_counter()
             offsets = np.cumsum([0] + [b["nodes"] for b in built])
-            run_tasks("hierarchy_files", _format_task,
-                      [(job, k, int(offsets[k]), int(batches[k, 0]) - 1, placed)
-                       for k in range(len(built))])
+            thinning = hc.plan_thinning([b["thinning"] for b in built], offsets[:-1], cap)
+            report("hierarchy_files", 0, len(built))
+            curve_rows = sum(
+                _write_curve_part(job, k, tables, depression, node_offset, dep_offset, mine,
+                                  thinning)
+                for k, (tables, depression, node_offset, dep_offset, mine) in enumerate(kept))
+            del kept
+            report("hierarchy_files", len(built), len(built))
+            times["format"] = time.perf_counter() - t0
+        else:
+            built = run_tasks("hierarchy", functools.partial(
+                _hierarchy_task, curves=listed is None), calls)
+            times["batches"] = time.perf_counter() - t0
+            nodes = sum(b["nodes"] for b in built)
+            check_listed(nodes)
+            offsets = np.cumsum([0] + [b["nodes"] for b in built])
+            slices = [None if listed is None else listed[offsets[k]:offsets[k + 1]]
+                      for k in range(len(built))]
+            if listed is not None:
+                t0 = time.perf_counter()
+                again = run_tasks("hierarchy_curves", _curves_round,
+                                  [(*c, False, True, mine) for c, mine in zip(calls, slices)])
+                for b, more in zip(built, again):
+                    b["thinning"] = more["thinning"]
+                    b["task_s"] += more["task_s"]
+                times["curves"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            thinning = hc.plan_thinning([b["thinning"] for b in built], offsets[:-1], cap)
+            formatted = run_tasks("hierarchy_files", _format_task,
+                                  [(job, k, int(offsets[k]), int(batches[k, 0]) - 1, placed,
+                                    slices[k], thinning) for k in range(len(built))])
+            curve_rows = sum(f["curve_rows"] for f in formatted)
             times["format"] = time.perf_counter() - t0
         times["batch_tasks"] = sum(b["task_s"] for b in built)
-        nodes = sum(b["nodes"] for b in built)
-        if listed is not None and listed.shape[0] != nodes:
-            raise InvalidParameter(f"'listed' holds {listed.shape[0]} nodes, the hierarchy "
-                                   f"{nodes}; compute it on the same result")
+        listed_count = nodes if listed is None else int(np.count_nonzero(listed))
 
         t0 = time.perf_counter()
-        files = _concatenate(out, job, grid, len(built), nodes, empty, report)
+        files = _concatenate(out, job, grid, len(built), listed_count, nodes, empty, thinning,
+                             report)
         times["write"] = time.perf_counter() - t0
     finally:
         if not keep_scratch:
@@ -435,12 +559,31 @@ def write_hierarchy_files(
     return HierarchyFiles(
         files=files, nodes=nodes, pits=sum(b["pits"] for b in built),
         depth=max((b["depth"] for b in built), default=0), batches=len(built),
-        window_cells=int(windows.max(initial=0)), seconds=times,
+        window_cells=int(windows.max(initial=0)), seconds=times, listed=listed_count,
+        curve_rows=curve_rows, curve_rows_cap=cap, curve_rows_natural=thinning.natural_rows,
+        curve_rows_budget=thinning.budget, curve_nodes_left_out=_left_out(thinning, built),
     )
 
 
-def _concatenate(out: Path, job: _Job, grid: Any, batches: int, nodes: int, empty,
-                 report: Callable[[str, int, int], None]) -> list[Path]:
+def _left_out(thinning: "hc.CurveThinning", built: list) -> int:
+    """Listed nodes without curve rows (only when even three rows each pass the cap)."""
+    if not thinning.omits_nodes:
+        return 0
+    listed = sum(int(b["thinning"]["weight"].sum()) for b in built)
+    kept = 0
+    offset = 0
+    for b in built:
+        s = b["thinning"]
+        ids = s["top_id"] + offset
+        kept += int(np.count_nonzero((s["top_volume"] > thinning.keep_volume)
+                                     | ((s["top_volume"] == thinning.keep_volume)
+                                        & (ids <= thinning.keep_id))))
+        offset += b["nodes"]
+    return listed - kept
+
+
+def _concatenate(out: Path, job: _Job, grid: Any, batches: int, listed: int, nodes: int, empty,
+                 thinning: "hc.CurveThinning", report: Callable[[str, int, int], None]) -> list[Path]:
     """Step 4: each file's head, then the batches' parts in order."""
     unit = VerticalUnit.parse(job.unit)
     connectivity = job.connectivity
@@ -454,13 +597,15 @@ def _concatenate(out: Path, job: _Job, grid: Any, batches: int, nodes: int, empt
     )
     report("hierarchy_write", 1, total)
     json_path = hx.write_json_parts(
-        out / hx.HIERARCHY_JSON, hx.hierarchy_json_head(unit, connectivity, grid, nodes),
+        out / hx.HIERARCHY_JSON,
+        hx.hierarchy_json_head(unit, connectivity, grid, listed, all_nodes=nodes),
         [job.part(k, "nodes.json") for k in parts],
     )
     report("hierarchy_write", 2, total)
+    empty_rows = hc.curve_rows(empty, hc.natural_counts(empty), np.zeros(0, np.int64))
     curves_path = hx.write_csv_parts(
         out / hx.CURVES_CSV,
-        hx.csv_head(hx.curve_part_columns(empty, unit)),
+        hx.csv_head(hx.curve_row_columns(empty_rows, empty.nodes.depression, unit)),
         [job.part(k, "curves.csv") for k in parts],
     )
     report("hierarchy_write", 3, total)

@@ -66,7 +66,7 @@ from sillmark.products.stage import (
     level_blocks,
     stage_table,
 )
-from sillmark.units import ACRE_FOOT_M3, VerticalUnit
+from sillmark.units import VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
     from sillmark.products.source import ResultSource

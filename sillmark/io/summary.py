@@ -212,6 +212,7 @@ def write_table_summary(
 def write_summary(
     result: "SpillResult", dem: "DEM", outlets: "Outlets", path: str | os.PathLike,
     *, files: list[str] | None = None, significance: dict | None = None,
+    curves: dict | None = None,
 ) -> Path:
     """Write ``summary.json``: grid, outlets, totals in SI, caution, version, time, files.
 
@@ -219,12 +220,17 @@ def write_summary(
     ``significance`` (from :func:`significance_member`) is written as the member
     ``significance``. The depression totals are over every depression, whatever
     the significance minimum: they are exact.
+    ``curves`` (e.g. :func:`sillmark.io.hierarchy_writer.curves_summary`) goes in as
+    ``depression_curves``: the rows of the curves file, its cap and any thinning.
     """
     final = Path(path)
     names = list(files or [])
     if final.name not in names:
         names.append(final.name)
-    return write_json(final, _summary(result, dem, outlets, names, final, significance))
+    payload = _summary(result, dem, outlets, names, final, significance)
+    if curves is not None:
+        payload["depression_curves"] = curves
+    return write_json(final, payload)
 
 
 @dataclasses.dataclass(frozen=True)

@@ -401,6 +401,34 @@ def _segments(cell_start, order, zs, cell_area, lo, spill, child_start, child_id
     )
 
 
+def _totals(cell_start, order, zs, cell_area, lo, spill, child_start, child_ids):
+    """Per node, the area and storage at its spill elevation: :func:`_segments`'s
+    last breakpoint of each node, by the same operations in the same order (so the
+    same bits), without keeping the breakpoints."""
+    n = lo.shape[0] - 1
+    area_at_spill = np.zeros(n + 1, dtype=np.float64)
+    storage_at_spill = np.zeros(n + 1, dtype=np.float64)
+    for v in range(1, n + 1):
+        a = 0.0
+        w = 0.0
+        for k in range(child_start[v], child_start[v + 1]):
+            ch = child_ids[k]
+            a += area_at_spill[ch]
+            w += storage_at_spill[ch]
+        b = np.float64(lo[v])
+        for k in range(cell_start[v], cell_start[v + 1]):
+            p = order[k]
+            zk = np.float64(zs[p])
+            if zk > b:
+                w += a * (zk - b)
+                b = zk
+            a += cell_area[p]
+        w += a * (np.float64(spill[v]) - b)
+        area_at_spill[v] = a
+        storage_at_spill[v] = w
+    return area_at_spill, storage_at_spill
+
+
 def _segment_value(elev, area, storage, s0, s1, h, metres):
     """Area and storage of one own segment at level ``h`` (``elev[s0] <= h <= elev[s1-1]``).
 
@@ -504,6 +532,7 @@ bucket = njit(cache=True)(_bucket)
 group_stable = njit(cache=True)(_group_stable)
 sort_within_groups = njit(parallel=True, cache=True)(_sort_within_groups)
 segments = njit(cache=True)(_segments)
+totals = njit(cache=True)(_totals)
 curve_at = njit(cache=True)(_curve_at)
 curves_at = njit(cache=True)(_curves_at)
 full_curve = njit(cache=True)(_full_curve)

@@ -352,6 +352,7 @@ class DepressionHierarchy:
             raise InvalidParameter(
                 f"levels must be finite numbers (a number or a 1-D list), not {levels!r}"
             )
+        self._check_segments()
         s = self.segments
         lo, spill, pit, child_start = self._tree_arrays
         area, storage = _hierarchy_kernels.curve_at(
@@ -388,12 +389,18 @@ class DepressionHierarchy:
             raise InvalidParameter(
                 f"level_start must be {len(self) + 1} non-decreasing whole numbers from 0 to "
                 f"the number of levels ({h.shape[0]})")
+        self._check_segments()
         s = self.segments
         lo, spill, pit, child_start = self._tree_arrays
         return _hierarchy_kernels.curves_at(
             start.astype(np.int64), h, s.start, s.elevation, s.area_m2, s.storage_m3,
             lo, spill, pit, child_start, self.nodes.children_ids, np.float64(self.unit.metres),
         )
+
+    def _check_segments(self) -> None:
+        if len(self) and self.segments.elevation.shape[0] == 0:
+            raise InvalidParameter("this hierarchy was built without its curve segments "
+                                   "(segments=False); build it with them to evaluate curves")
 
     @functools.cached_property
     def _tree_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:

@@ -143,6 +143,7 @@ def hierarchy_of_cells(
     unit: VerticalUnit,
     transform: "Affine | None",
     origin: tuple[int, int] = (0, 0),
+    segments: bool = True,
 ) -> DepressionHierarchy:
     """The body of :func:`depression_hierarchy`, on plain arrays of one window of a grid.
 
@@ -154,6 +155,10 @@ def hierarchy_of_cells(
     grid coordinates (the same numbers as for the whole grid); the regions,
     ``shape`` and ``row_areas`` stay the window's. For
     :mod:`sillmark.products.hierarchy_windows`, which runs it window by window.
+
+    ``segments=False`` leaves out the per-node curve segments (24 bytes a
+    depression cell), which only :meth:`~sillmark.products.hierarchy.DepressionHierarchy.curve_at`
+    and ``curves_at`` read; the node table's areas and volumes are the same bits.
     """
     rows, cols = z.shape
     row0, col0 = int(origin[0]), int(origin[1])
@@ -244,10 +249,16 @@ def hierarchy_of_cells(
     cell_start, positions = _hierarchy_kernels.bucket(owner_new, np.int64(n))
     del owner_new
     cell_area = areas[cells // cols]
-    seg_start, seg_elev, seg_area, seg_storage, area_at_spill, storage_at_spill = _hierarchy_kernels.segments(
-        cell_start, positions, zs, cell_area, one_based(lo), one_based(spill),
-        csr_start(children_start), children_ids,
-    )
+    if segments:
+        seg_start, seg_elev, seg_area, seg_storage, area_at_spill, storage_at_spill = \
+            _hierarchy_kernels.segments(cell_start, positions, zs, cell_area, one_based(lo),
+                                        one_based(spill), csr_start(children_start), children_ids)
+    else:
+        area_at_spill, storage_at_spill = _hierarchy_kernels.totals(
+            cell_start, positions, zs, cell_area, one_based(lo), one_based(spill),
+            csr_start(children_start), children_ids)
+        seg_start = np.zeros(n + 2, dtype=np.int64)
+        seg_elev = seg_area = seg_storage = np.zeros(0, dtype=np.float64)
     del cell_area
     own = np.diff(cell_start)[1 : n + 1]
     csum = np.concatenate(([0], np.cumsum(own)))

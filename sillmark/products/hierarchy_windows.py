@@ -180,6 +180,7 @@ def batch_hierarchy(
     connectivity: int,
     unit: VerticalUnit,
     transform: "Affine | None",
+    segments: bool = True,
 ) -> DepressionHierarchy:
     """The hierarchy of depressions ``first..last``, read in their window.
 
@@ -188,7 +189,8 @@ def batch_hierarchy(
     another process gets). ``areas`` are the window's row areas and the
     ``spill_*`` and ``cell_count`` arrays the batch's rows of the depression
     table. Pit and spill cells come out in grid coordinates; depression
-    numbers run 1..k within the batch, node ids 1..n.
+    numbers run 1..k within the batch, node ids 1..n. ``segments`` as for
+    :func:`sillmark.products.hierarchy_sweep.hierarchy_of_cells`.
 
     Raises
     ------
@@ -212,7 +214,7 @@ def batch_hierarchy(
     hierarchy = hierarchy_of_cells(
         z, local, np.asarray(spill_elevation, dtype=np.float32), spill_row, spill_col,
         connectivity=int(connectivity), areas=np.ascontiguousarray(areas, dtype=np.float64),
-        unit=unit, transform=transform, origin=(r0, c0),
+        unit=unit, transform=transform, origin=(r0, c0), segments=segments,
     )
     t = hierarchy.nodes
     if not np.array_equal(t.cell_count[t.parent == 0], cell_count):

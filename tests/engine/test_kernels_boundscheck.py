@@ -45,7 +45,12 @@ SCRIPT = textwrap.dedent(
             r.route(int(r.depressions.pit_row[k]), int(r.depressions.pit_col[k]))
         water_level_map(r, 2.5)
         stage_table(ArraySource(dem_from_array(z), r), np.arange(0, 6, 0.5))
-        depression_hierarchy(r)
+        h = depression_hierarchy(r)
+        # The curve rows' kernels, with a limit small enough to send nodes to steps.
+        from sillmark.products import hierarchy_curves as hc
+        counts = hc.natural_counts(h, max_points=3, step_rows=2)
+        stride, _ = hc.choose_strides(counts, h.nodes.volume_m3, None, 3 * len(h) + 3)
+        hc.curve_rows(h, counts, stride, max_points=3, step_rows=2)
 
     # Culverts and a flap valve across tiles of a few cells, and routes through them.
     from sillmark.engine.culverts import culvert_edges

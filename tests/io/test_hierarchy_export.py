@@ -271,7 +271,14 @@ def test_write_results_adds_the_three_files_before_the_summary(nested, files, tm
     names = [p.name for p in paths]
     assert names[-5:] == [*he.HIERARCHY_FILE_NAMES, "README.txt", "summary.json"]
     assert names == [*FILE_NAMES[:-1], "README.txt", FILE_NAMES[-1]]
-    assert json.loads((tmp_path / "a" / "summary.json").read_text())["files"] == names
+    summary = json.loads((tmp_path / "a" / "summary.json").read_text())
+    assert summary["files"] == names
+    # The summary states the curves file's rows and its cap (nothing thinned here).
+    curves = summary["depression_curves"]
+    lines = (tmp_path / "a" / he.CURVES_CSV).read_text().splitlines()
+    assert curves["rows"] == len(lines) - 1 and not lines[0].startswith("#")
+    assert curves["rows"] == curves["rows_before_thinning"] and curves["thinning"] == "none"
+    assert curves["max_rows"] == 200_000 and curves["listed_nodes"] == len(h)
     # The files of the one hierarchy writer, whose contents the tests above read.
     for name in he.HIERARCHY_FILE_NAMES:
         assert (tmp_path / "a" / name).read_bytes() == (files[0] / name).read_bytes()

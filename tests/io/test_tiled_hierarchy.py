@@ -23,21 +23,21 @@ import pytest
 import rasterio
 from affine import Affine
 
+from sillmark.engine.flood import priority_flood
+from sillmark.errors import InvalidDEM, InvalidParameter
+from sillmark.grid.dem import read_dem
+from sillmark.grid.outlets import build_outlets
 from sillmark.io import hierarchy_files as hx
 from sillmark.io.hierarchy_writer import write_hierarchy_files
 from sillmark.io.results_folder import add_hierarchy_files, open_result_folder
-from sillmark.grid.dem import read_dem
-from sillmark.errors import InvalidDEM, InvalidParameter
-from sillmark.engine.flood import priority_flood
 from sillmark.products.hierarchy_sweep import site_hierarchy
-from sillmark.grid.outlets import build_outlets
-from tests.loopback import analyse_on_tiles
 from sillmark.products.hierarchy_windows import hierarchy_batches
 from sillmark.products.source import ArraySource
-from tests.loopback import loopback_cluster
-from tests.rasters import grid, write_raster
 from tests.engine.test_flood import synthetic_terrain
+from tests.loopback import analyse_on_tiles, loopback_cluster
 from tests.products.test_hierarchy import THREE_LEVELS
+from tests.rasters import grid, write_raster
+
 
 def in_memory(path, *, specs=("edge",), connectivity=8):
     """The DEM and the in-memory result as an array source."""
@@ -283,9 +283,9 @@ def test_in_memory_json_is_the_to_json_document(terrain_tif, tmp_path):
     # The streamed JSON writer against the document built the direct way: the
     # flat to_json() with name, version, caution, crs and units in front and the
     # float32 fields as shortest decimals (sillmark.io.json_values.json_number).
+    from sillmark import __version__
     from sillmark.grid.crs import crs_label
     from sillmark.io.json_values import json_number
-    from sillmark import __version__
 
     ref = tmp_path / "ref"
     h = reference_files(terrain_tif, ref)
@@ -341,8 +341,9 @@ def test_a_folder_in_small_windows_on_a_cluster_gives_the_in_memory_files(cluste
     # the depression table or a raster.
     import pickle
 
-    from sillmark.engine.executors import DaskExecutor
     from distributed import Client
+
+    from sillmark.engine.executors import DaskExecutor
 
     ref = tmp_path / "ref"
     reference_files(terrain_tif, ref)
@@ -382,3 +383,50 @@ def test_batch_kernels_compiled_and_plain_python_agree(terrain_tif, tmp_path):
     for d in (1, count // 2, count):
         r, c = np.nonzero(ids == d)
         assert [b[d] for b in bounds] == [r.min(), r.max(), c.min(), c.max()]
+
+
+# --------------------------------------------------------------------------- listed and capped
+
+
+@pytest.mark.parametrize("cap", [10**9, 1500, 300])
+def test_listed_and_capped_curves_are_the_same_bytes_in_any_batches(terrain_tif, tmp_path, cap):
+    # Only the tops (one per depression) listed, rows capped: one window, small
+    # windows one after another, and small windows through a map (each batch's
+    # hierarchy built again for its curves) give the same bytes.
+    from sillmark.engine.executors import serial_map
+    from sillmark.products import hierarchy_curves as hc
+
+    source = in_memory(terrain_tif)
+    h = site_hierarchy(source.dem, source.result)
+    listed = h.nodes.parent == 0
+    runs = {}
+    for name, options in (("one", {}), ("cut", {"window_cells": 400}),
+                          ("mapped", {"window_cells": 400, "map": serial_map})):
+        out = tmp_path / name
+        out.mkdir()
+        runs[name] = write_hierarchy_files(source, out, listed=listed, max_curve_rows=cap,
+                                           **options)
+    assert runs["cut"].batches > 1
+    for name in ("cut", "mapped"):
+        assert_same_files(tmp_path / name, tmp_path / "one")
+    run = runs["one"]
+    counts = hc.natural_counts(h)
+    natural = int(counts.rows[listed].sum())
+    assert run.curve_rows_natural == natural and run.listed == int(listed.sum())
+    text = (tmp_path / "one" / hx.CURVES_CSV).read_text()
+    rows = [line for line in text.splitlines() if not line.startswith("#")][1:]
+    assert len(rows) == run.curve_rows <= cap
+    assert {int(r.split(",")[0]) for r in rows} <= set(h.tops.tolist())
+    assert (run.curve_rows == natural) == (cap >= natural)
+    assert ("nothing thinned" in text) == (cap >= natural)
+    doc = json.loads((tmp_path / "one" / hx.HIERARCHY_JSON).read_text())
+    assert [n["id"] for n in doc["nodes"]] == h.tops.tolist()
+    assert doc["node_count"] == len(h.tops) and doc["hierarchy_node_count"] == len(h)
+
+
+def test_a_listed_mask_of_the_wrong_length_is_refused(terrain_tif, tmp_path):
+    source = in_memory(terrain_tif)
+    with pytest.raises(InvalidParameter, match="listed"):
+        write_hierarchy_files(source, tmp_path, listed=np.ones(3, bool))
+    with pytest.raises(InvalidParameter, match="cap"):
+        write_hierarchy_files(source, tmp_path, max_curve_rows=1)
