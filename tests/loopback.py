@@ -13,7 +13,7 @@ def loopback_cluster(n_workers: int):
     127.0.0.1, started here and closed on exit; skips the test without distributed."""
     distributed = pytest.importorskip("distributed")
     cluster = distributed.LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None,
+                                       host="127.0.0.1", dashboard_address="127.0.0.1:0",
                                        memory_limit="1GB")
     try:
         yield cluster

@@ -80,6 +80,8 @@ _DESCRIPTIONS: tuple[tuple[str, str], ...] = (
      "(Multi)Polygon, with its area."),
     (r"(profile|refuges|roads)_input\.geojson", "A copy of the input file the analysis used, "
      "kept so that later commands on this folder use the same one."),
+    (r".+\.sld", "OGC SLD 1.0 style of the layer of the same name: the app's depth classes, "
+     "colours and symbols, so a desktop GIS opens the layer looking like the map in the app."),
     (r"summary\.json", "Grid, CRS, outlets, connectivity, totals, the significance minimum "
      "and its source, the counts, the caution and the list of files (written last)."),
     (r"depth_.+\.tif", "GeoTIFF, float32: depth of water ({u}) on the ground reached from "

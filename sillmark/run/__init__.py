@@ -69,7 +69,7 @@ from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
 from sillmark.io.reach_files import add_to_summary
-from sillmark.io.readme import write_readme
+from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.styles import write_styles
 from sillmark.io.summary import FILE_NAMES, RUN_FOLDER_PREFIX, write_table_summary
@@ -313,11 +313,7 @@ def analyse(
                 if profile is not None:
                     run = add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
-                run = _with_readme(run, temporary)
-            run = _add_styles(run)
-            if run.edits is not None:  # after every writer of summary.json
-                add_to_summary(temporary / FILE_NAMES[-1], [],
-                               edits=_edits_member(run.edits, run.edit_changes))
+            run = _close_folder(_add_styles(run), temporary)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
@@ -353,17 +349,29 @@ def _move_into_place(temporary: Path, target: Path, names: list[str]) -> list[Pa
     return [target / name for name in names]
 
 
-def _with_readme(run: Analysis, folder: Path) -> Analysis:
-    """The tiled run's files with ``README.txt`` before ``summary.json``."""
-    names = [p.name for p in run.files]
-    readme = write_readme(folder, names, grid=run.grid,
-                          title=f"analysis of {Path(str(run.grid.path)).name} (tiled engine, "
-                                "every depression listed)",
-                          connectivity=run.connectivity)
-    files = [p for p in run.files if p.name != FILE_NAMES[-1]] + [readme] + \
-        [p for p in run.files if p.name == FILE_NAMES[-1]]
-    return dataclasses.replace(run, files=files)
+def _close_folder(run: Analysis, folder: Path) -> Analysis:
+    """The last step: ``summary.json`` lists every file (and the edits), and
+    ``README.txt`` describes every file, once all are written.
 
+    Several steps add files after the first summary (the profile and cut-off
+    rasters, the input copies, the SLD styles), so both are brought up to date
+    here, in one place.
+    """
+    summary = folder / FILE_NAMES[-1]
+    names = [p.name for p in run.files if p.name != summary.name]
+    if README_NAME not in names:  # before the styles, as the in-memory writer places it
+        styles = [k for k, n in enumerate(names) if n.endswith(".sld")]
+        names.insert(styles[0] if styles else len(names), README_NAME)
+    members = {} if run.edits is None else {"edits": _edits_member(run.edits, run.edit_changes)}
+    add_to_summary(summary, names, **members)
+    source = getattr(run.grid, "path", None)
+    title = f"analysis of {Path(str(source)).name if source else 'a DEM'}"
+    if run.result is None:
+        title += " (tiled engine, every depression listed)"
+    readme = write_readme(folder, [*names, summary.name], grid=run.grid, title=title,
+                          connectivity=run.connectivity, significance=run.significance)
+    files = [p for p in run.files if p.name not in (summary.name, README_NAME)]
+    return dataclasses.replace(run, files=[*files, readme, folder / summary.name])
 
 def _placed_edits(edits: Any, grid: Any) -> Edits | None:
     if edits is None or isinstance(edits, Edits):

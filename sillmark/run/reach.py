@@ -27,7 +27,6 @@ from sillmark.io.reach_files import (
     write_cutoff_raster,
     write_offset_rasters,
 )
-from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.cutoff import cutoff_stage
 from sillmark.products.profile import ProfileTiles, offset_flood
@@ -122,11 +121,6 @@ def add_reach_layers(run, reach: _Reach | None, folder: Path, executor,
     summary = folder / FILE_NAMES[-1]
     add_to_summary(summary, [p.name for p in files], **members)
     listed = [p for p in run.files if p.name != summary.name]
-    if any(p.name == README_NAME for p in listed):  # describe the added files too
-        name = Path(dem.path).name if getattr(dem, "path", None) else "a DEM"
-        write_readme(folder, [p.name for p in [*listed, *files, summary]], grid=dem,
-                     title=f"analysis of {name}", connectivity=run.connectivity,
-                     significance=run.significance)
     return dataclasses.replace(run, files=[*listed, *files, summary], seconds=seconds,
                                reach=_ReachResult(profile=members.get("profile"),
                                                   cutoff=cut if reach.refuges is not None else None))

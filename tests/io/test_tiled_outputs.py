@@ -57,13 +57,16 @@ def read_features(path):
         return json.load(f)
 
 
-def assert_same_collections(mine, theirs):
-    """Members and properties the same values; geometries the same regions and vertices."""
+def assert_same_collections(mine, theirs, *, ignore=()):
+    """Members and properties the same values (but the properties in ``ignore``);
+    geometries the same regions and vertices."""
     a, b = read_features(mine), read_features(theirs)
     assert {k: v for k, v in a.items() if k != "features"} == {k: v for k, v in b.items() if k != "features"}
     assert len(a["features"]) == len(b["features"])
     for fa, fb in zip(a["features"], b["features"]):
-        assert fa["id"] == fb["id"] and fa["properties"] == fb["properties"]
+        pa = {k: v for k, v in fa["properties"].items() if k not in ignore}
+        pb = {k: v for k, v in fb["properties"].items() if k not in ignore}
+        assert fa["id"] == fb["id"] and pa == pb
         ga, gb = shapely.geometry.shape(fa["geometry"]), shapely.geometry.shape(fb["geometry"])
         assert ga.geom_type == gb.geom_type and ga.is_valid
         assert ga.equals(gb) and vertex_set(ga) == vertex_set(gb)
@@ -291,17 +294,23 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     assert main(["analyse", str(terrain_tif), "--tiles", "512", "--scheduler", cluster_address,
                  "--out", str(tiled), "-q"]) == 0
     printed = capsys.readouterr().out
-    # 11 files and an SLD style beside each of the 4 rasters and 2 GeoJSON layers
-    assert "Depression hierarchy:" in printed and "Results: 17 files" in printed
-    assert main(["analyse", str(terrain_tif), "--out", str(whole), "-q"]) == 0
+    # 11 files, README.txt and an SLD style beside each of the 4 rasters and 2 GeoJSON layers
+    assert "Depression hierarchy:" in printed and "Results: 18 files" in printed
+    # The tiled engine lists every depression (no significance minimum on tiles
+    # yet): compared with the in-memory run's full inventory.
+    assert main(["analyse", str(terrain_tif), "--full-inventory", "--out", str(whole), "-q"]) == 0
     summary = json.loads((tiled / "summary.json").read_text())
     assert summary["files"] == ["onset_stage.tif", "fill_depth.tif", "depression_id.tif",
                                 "flood_tree.tif", "depressions.csv", "depressions.geojson",
                                 "spill_points.geojson", "depression_hierarchy.csv",
                                 "depression_hierarchy.json", "depression_curves.csv",
-                                "summary.json"]
+                                "README.txt", "onset_stage.sld", "fill_depth.sld",
+                                "depression_id.sld", "flood_tree.sld", "depressions.sld",
+                                "spill_points.sld", "summary.json"]
     assert summary["engine"]["kind"] == "tiled"
-    assert_same_collections(tiled / "depressions.geojson", whole / "depressions.geojson")
+    # The full inventory marks each depression significant or not; the tiled one does not.
+    assert_same_collections(tiled / "depressions.geojson", whole / "depressions.geojson",
+                            ignore={"significant"})
     # The hierarchy, built on the cluster in windows of depressions: the same bytes.
     for name in ("depression_hierarchy.csv", "depression_hierarchy.json", "depression_curves.csv"):
         assert (tiled / name).read_bytes() == (whole / name).read_bytes(), name
@@ -325,7 +334,7 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     assert figures(out_tiled) == figures(out_whole) == figures(out_dem)
     assert any(line.startswith("  Shielded low ground:") for line in figures(out_tiled))
     names = sorted(p.name for p in (tmp_path / "s_whole").iterdir())
-    assert len(names) == 19  # five per level, four SLD styles per level, and the table
+    assert len(names) == 20  # five per level, four SLD styles per level, the table and README.txt
     for folder in ("s_tiled", "s_dem"):
         assert sorted(p.name for p in (tmp_path / folder).iterdir()) == names  # scratch removed
         for name in names:
