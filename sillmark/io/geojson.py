@@ -106,10 +106,10 @@ def write_depressions_geojson(source: "ResultSource", path: str | os.PathLike, *
     grid = source.grid
     unit = unit_of(grid)
     transformer = wgs84_transformer(grid)  # fails before reading if there is no CRS
-    outlines = depression_outlines(source, window=window)
+    keep = None if rows is None else np.asarray(rows, dtype=bool)
+    outlines = depression_outlines(source, window=window, only=keep)
     columns = {name: np.asarray(values)
                for name, values in {**source.depression_columns, **(extra or {})}.items()}
-    keep = None if rows is None else np.asarray(rows, dtype=bool)
 
     def features() -> Iterator[dict]:
         for k, outline in enumerate(outlines):

@@ -177,23 +177,34 @@ def hierarchy_columns(hierarchy: DepressionHierarchy, dem: "DEM") -> dict[str, n
     return node_table_columns(hierarchy.nodes, unit, dem)
 
 
-def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dict[str, np.ndarray]:
+def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM", *,
+                       listed: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """:func:`hierarchy_columns` of a node table (or a run of its rows) in ``unit``.
 
     Row by row the same values whatever rows the table holds, so the writer
     (:mod:`sillmark.io.hierarchy_writer`) gives the file of the whole table
     from its pieces. ``dem`` may be a :class:`~sillmark.grid.dem_grid.DEMGrid`.
+    ``listed`` (boolean per node of the site, index ``id - 1``) keeps only those
+    rows, and only those children in each row's list; the listed nodes of a
+    significance minimum hold every ancestor of theirs, so parents stay listed.
     """
     v = unit_suffix(unit)
     h = horizontal_unit_suffix(dem)
     n = len(t)
+    starts, child_ids = t.children_start, t.children_ids
+    if listed is not None:
+        listed = np.asarray(listed, dtype=bool)
+        owner = np.repeat(np.arange(n), np.diff(starts))
+        shown = listed[child_ids - 1] if len(child_ids) else np.zeros(0, bool)
+        counts = np.bincount(owner[shown], minlength=n)
+        starts = np.concatenate([[0], np.cumsum(counts)]).astype(starts.dtype)
+        child_ids = child_ids[shown]
     lon = np.full(n, np.nan)
     lat = np.full(n, np.nan)
     ok = np.isfinite(t.spill_x) & np.isfinite(t.spill_y)
     if ok.any():
         lon[ok], lat[ok] = wgs84_transformer(dem).transform(t.spill_x[ok], t.spill_y[ok])
-    children = _children_texts(t.children_start, t.children_ids, np.arange(n), "", "",
-                               _CHILD_SEPARATOR)
+    children = _children_texts(starts, child_ids, np.arange(n), "", "", _CHILD_SEPARATOR)
     area = np.asarray(t.area_m2, dtype=np.float64)
     volume = np.asarray(t.volume_m3, dtype=np.float64)
     cols: dict[str, np.ndarray] = {
@@ -221,6 +232,9 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM") -> dic
         "volume_m3": volume,
     }
     cols.update(own_unit_columns(unit, area_m2=area, volume_m3=volume))
+    if listed is not None:
+        keep = listed[np.asarray(t.id) - 1]
+        cols = {name: np.asarray(values)[keep] for name, values in cols.items()}
     return cols
 
 

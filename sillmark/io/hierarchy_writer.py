@@ -276,7 +276,7 @@ def _write_node_parts(job: _Job, k: int, table: HierarchyTable, node_offset: int
     unit = VerticalUnit.parse(job.unit)
     table = _shifted(table, node_offset, depression_offset)
     with open(job.part(k, "nodes.csv"), "w", encoding="utf-8", newline="") as f:
-        write_rows(f, hx.node_table_columns(table, unit, placed))
+        write_rows(f, hx.node_table_columns(table, unit, placed, listed=listed))
     with open(job.part(k, "nodes.json"), "w", encoding="utf-8", newline="") as f:
         hx.write_json_nodes(f, table, listed)
 

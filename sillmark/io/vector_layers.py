@@ -87,7 +87,7 @@ def write_depression_layer(source: "ResultSource", folder: str | os.PathLike, *,
     path = Path(folder) / f"depressions{suffix}"
     if suffix == ".geojson":
         return write_depressions_geojson(source, path, window=window, rows=keep, extra=extra)
-    outlines = depression_outlines(source, window=window)
+    outlines = depression_outlines(source, window=window, only=keep)
     columns = {**table, **(extra or {})}
     picked = np.flatnonzero(keep)
     return write_geopackage_layer(

@@ -146,12 +146,16 @@ def label_outlines(read: ReadWindow, shape: tuple[int, int], transform: Affine, 
     return out
 
 
-def depression_outlines(source: ResultSource, *, window: int | None = None) -> list:
+def depression_outlines(source: ResultSource, *, window: int | None = None,
+                        only: np.ndarray | None = None) -> list:
     """One outline per depression of ``source``; index ``k`` is id ``k+1``.
 
     ``window`` defaults to the whole grid for a result in memory
     (:class:`~sillmark.products.source.ArraySource`) and to
-    :data:`DEFAULT_WINDOW` otherwise.
+    :data:`DEFAULT_WINDOW` otherwise. ``only`` (boolean per depression) traces
+    just those depressions, the others' entries being None: on a survey DEM
+    with 10^5 noise-made pits and a few significant depressions, tracing the
+    listed ones alone is what keeps the outlines' cost with what is written.
 
     Raises
     ------
@@ -163,20 +167,28 @@ def depression_outlines(source: ResultSource, *, window: int | None = None) -> l
     if window is None:
         window = max(shape) if isinstance(source, ArraySource) else DEFAULT_WINDOW
 
+    wanted = np.ones(count + 1, dtype=bool) if only is None else np.concatenate(
+        [[False], np.asarray(only, dtype=bool)])
+    wanted[0] = False
+
     def select(block: np.ndarray):
-        return block > 0, block
+        inside = block > 0
+        if only is not None:
+            inside &= wanted[np.where(inside, block, 0)]
+        return inside, block
 
     def read(r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
         return source.window("depression_id", r0, r1, c0, c1)
 
-    outlines = label_outlines(read, shape, source.grid.transform, select, window=window) if count else {}
-    missing = [k for k in range(1, count + 1) if k not in outlines]
+    traced = count and wanted.any()
+    outlines = label_outlines(read, shape, source.grid.transform, select, window=window) if traced else {}
+    missing = [k for k in range(1, count + 1) if wanted[k] and k not in outlines]
     if missing:
         raise InvalidParameter(
             f"depression {missing[0]} has no cells in the id raster; the result's "
             "files do not belong together: run the analysis again"
         )
-    return [outlines[k] for k in range(1, count + 1)]
+    return [outlines.get(k) for k in range(1, count + 1)]
 
 
 def depression_polygons(result: "SpillResult", dem: "DEM") -> list:

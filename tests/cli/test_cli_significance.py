@@ -98,6 +98,12 @@ def test_default_minimum_lists_the_significant_depressions_and_counts_all(capsys
     top = listed[listed["parent"] == 0]
     assert len(top) == 1
     assert set(listed[listed["parent"] != 0]["parent"]) == set(top["id"])
+    # The node table lists the significant nodes only (3 of the 6), and each
+    # row's children are listed ones: AB's are X and B, theirs none.
+    assert set(nodes["id"]) == curve_ids
+    children = {int(r.id): str(r.children) for r in nodes.itertuples()}
+    assert sorted(children[int(top["id"].iloc[0])].split(";")) == sorted(
+        str(i) for i in curve_ids - set(top["id"]))
 
 
 def test_stated_accuracy_raises_the_minimum(capsys, trench_tif, tmp_path):
@@ -117,6 +123,7 @@ def test_full_inventory_lists_every_depression_marked(capsys, trench_tif, tmp_pa
     assert list(table["id"]) == [1, 2]
     assert list(table["significant"]) == [True, False]
     assert len(set(pd.read_csv(out / "depression_curves.csv")["node_id"])) == 6
+    assert len(pd.read_csv(out / "depression_hierarchy.csv")) == 6
     assert json.loads((out / "summary.json").read_text())["significance"]["full_inventory"] is True
 
 
