@@ -38,13 +38,15 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from typing import Any
 
 import numpy as np
 
 from sillmark.engine.flood import SpillResult, priority_flood
+from sillmark.engine.tile_inputs import TileInput
 from sillmark.errors import InvalidRefuges, LocationOutsideDEM
 
-__all__ = ["AssetCutOff", "CutOff", "IslandWindow", "asset_cutoff", "cutoff_stage", "island_window"]
+__all__ = ["AssetCutOff", "CutOff", "CutoffTiles", "IslandWindow", "asset_cutoff", "cutoff_stage", "island_window"]
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -125,16 +127,68 @@ def cutoff_stage(onset_stage: np.ndarray, refuges: np.ndarray, *, valid: np.ndar
     seeds = refuge & usable
     if not seeds.any():
         raise InvalidRefuges("no refuge lies on a cell with data; place the refuges on the site")
-    never = usable & np.isnan(s)  # no outlet reaches them: they never flood
-    finite = s[usable & ~never]
+    finite = s[usable & ~np.isnan(s)]
     top = float(finite.max()) + 1.0 if finite.size else 1.0
-    negated = np.where(usable, -np.where(never, np.float32(top), s), np.nan).astype(np.float32)
-    widest = priority_flood(negated, seeds, connectivity=connectivity)
-    stage = -widest.onset_stage
-    stage = np.where(stage >= np.float32(top), np.float32(np.inf), stage)
-    stage = np.where(usable & np.isnan(widest.onset_stage), np.float32(-np.inf), stage)
-    stage = np.where(usable, stage, np.float32(np.nan)).astype(np.float32)
+    widest = priority_flood(negated_onset(s, usable, top), seeds, connectivity=connectivity)
+    stage = stage_from_widest(widest.onset_stage, usable, top)
     return CutOff(stage=stage, onset_stage=s, passable=usable, widest=widest)
+
+
+def negated_onset(s: np.ndarray, usable: np.ndarray, top: float) -> np.ndarray:
+    """The field the widest-route flood runs on: ``-s``, with ``-top`` on cells that
+    never flood (NaN onset) and NaN where no route may go. ``top`` lies above
+    every finite onset stage of the site."""
+    never = usable & np.isnan(s)
+    return np.where(usable, -np.where(never, np.float32(top), s), np.nan).astype(np.float32)
+
+
+def stage_from_widest(widest: np.ndarray, usable: np.ndarray, top: float) -> np.ndarray:
+    """The cut-off stage from the widest-route flood's onset stage: ``+inf`` at ``top``
+    (never cut off), ``-inf`` where no refuge is reached, NaN off the usable cells."""
+    stage = -widest
+    stage = np.where(stage >= np.float32(top), np.float32(np.inf), stage)
+    stage = np.where(usable & np.isnan(widest), np.float32(-np.inf), stage)
+    return np.where(usable, stage, np.float32(np.nan)).astype(np.float32)
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class CutoffTiles:
+    """The widest-route flood's tile source on a results folder: each window reads the
+    onset stage and the DEM and burns the refuges and roads (a pipeline tile source).
+
+    ``onset(r0, r1, c0, c1)`` reads the onset stage; ``grid`` the DEM by
+    windows; ``refuges`` and ``roads`` are :class:`sillmark.grid.refuges.PlacedShapes`
+    (roads None: every cell with data may be used). ``top`` lies above every
+    finite onset stage. All pickle small, so cluster tasks read their own windows.
+    """
+
+    grid: Any
+    onset: Any
+    refuges: Any
+    roads: Any
+    top: float
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.grid.shape
+
+    @property
+    def label(self) -> str:
+        return self.refuges.label
+
+    def usable(self, r0: int, r1: int, c0: int, c1: int) -> tuple[np.ndarray, np.ndarray]:
+        """The cells routes may use, and the refuge cells, of a window."""
+        valid = ~np.isnan(self.grid.read_window(r0, r1, c0, c1))
+        refuge = self.refuges.window(r0, r1, c0, c1) & valid
+        if self.roads is None:
+            return valid, refuge
+        return valid & (self.roads.window(r0, r1, c0, c1) | refuge), refuge
+
+    def window(self, r0: int, r1: int, c0: int, c1: int) -> TileInput:
+        usable, refuge = self.usable(r0, r1, c0, c1)
+        s = np.asarray(self.onset(r0, r1, c0, c1), dtype=np.float32)
+        field = np.ascontiguousarray(negated_onset(s, usable, self.top))
+        return TileInput(field, refuge & usable, 0, r1 - r0, 0, c1 - c0, None)
 
 
 @dataclasses.dataclass(frozen=True)

@@ -77,6 +77,7 @@ from sillmark.io.vector_layers import vector_suffix
 from sillmark.products.significance import SiteMinimum
 from sillmark.run.reach import (
     add_reach_layers,
+    add_tiled_cutoff,
     add_tiled_offset,
     read_reach,
     with_centreline,
@@ -235,7 +236,7 @@ def analyse(
     refuges, roads : path or GeoJSON dict, optional
         Refuges (points, polygons) add ``cutoff_stage.tif``
         (:mod:`sillmark.products.cutoff`); roads (lines) keep the routes to
-        them on the road cells. A DEM held in memory only.
+        them on the road cells. In memory or by tiles alike.
     minimum : SiteMinimum, optional
         The significance minimum (:func:`sillmark.products.significance.site_minimum`):
         depressions below it are not listed or mapped on their own, and only the
@@ -285,9 +286,6 @@ def analyse(
         reach = read_reach(dem, profile, refuges, roads)
         if reach.profile is not None:
             outlets = with_centreline(dem, outlets, reach.profile, connectivity)
-    elif refuges is not None:
-        raise InvalidParameter("the cut-off stage needs the onset stage of the whole site in "
-                               "memory; run without tiles for --refuge")
     target = Path(out)
     if target.exists() and not target.is_dir():
         raise InvalidParameter(f"the output path {target} is a file; give a folder (new or existing)")
@@ -313,6 +311,9 @@ def analyse(
                 if profile is not None:
                     run = add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
+                if refuges is not None:
+                    run = add_tiled_cutoff(run, refuges, roads, temporary, executor, store,
+                                           connectivity, progress)
             run = _close_folder(_add_styles(run), temporary)
         finally:
             tiles.close()

@@ -9,6 +9,7 @@ Called by :func:`sillmark.run.analyse`; the functions take and return its
 from __future__ import annotations
 
 import dataclasses
+import functools
 import time
 from pathlib import Path
 from typing import Any
@@ -17,10 +18,12 @@ import numpy as np
 
 from sillmark.engine.pipeline import run_pipeline
 from sillmark.engine.stores import FileStore, MemoryStore
+from sillmark.errors import InvalidRefuges
 from sillmark.grid.dem import DEM
 from sillmark.grid.outlets import Outlets, build_outlets, outlet_specs
 from sillmark.grid.profiles import Profile, read_profile, reference_level
-from sillmark.grid.refuges import read_refuges, read_roads
+from sillmark.grid.refuges import place_shapes, read_refuges, read_roads
+from sillmark.io.geotiff import BLOCK_ROWS, read_window
 from sillmark.io.reach_files import (
     add_to_summary,
     keep_input,
@@ -28,10 +31,10 @@ from sillmark.io.reach_files import (
     write_offset_rasters,
 )
 from sillmark.io.summary import FILE_NAMES
-from sillmark.products.cutoff import cutoff_stage
+from sillmark.products.cutoff import CutoffTiles, cutoff_stage, stage_from_widest
 from sillmark.products.profile import ProfileTiles, offset_flood
 
-__all__ = ["add_reach_layers", "add_tiled_offset", "read_reach", "with_centreline"]
+__all__ = ["add_reach_layers", "add_tiled_cutoff", "add_tiled_offset", "read_reach", "with_centreline"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -158,3 +161,55 @@ def _reference_rows(profile: Profile, grid, r0: int, r1: int) -> np.ndarray:
     level = reference_level(profile, grid, r0, r1)
     level[np.isnan(z)] = np.nan
     return level
+
+
+def add_tiled_cutoff(run, refuges_source, roads_source, folder: Path, executor, store: str,
+                     connectivity: int, progress) -> Any:
+    """The cut-off stage by tiles: the same pipeline on the negated onset stage of the
+    folder's ``onset_stage.tif``, seeded at the refuges, window by window."""
+    t0 = time.perf_counter()
+    grid = run.grid
+    refuges = place_shapes(refuges_source, grid, "refuges")
+    roads = None if roads_source is None else place_shapes(roads_source, grid, "roads")
+    onset = functools.partial(read_window, folder / "onset_stage.tif")
+    rows, cols = grid.shape
+    high, seeds = -np.inf, 0
+    probe = CutoffTiles(grid, onset, refuges, roads, 0.0)
+    for r0 in range(0, rows, BLOCK_ROWS):
+        r1 = min(rows, r0 + BLOCK_ROWS)
+        s = onset(r0, r1, 0, cols)
+        usable, refuge = probe.usable(r0, r1, 0, cols)
+        finite = s[usable & ~np.isnan(s)]
+        if finite.size:
+            high = max(high, float(finite.max()))
+        seeds += int(np.count_nonzero(refuge & usable))
+    if seeds == 0:
+        raise InvalidRefuges(f"{refuges.label}: no refuge lies on a cell with data (or on the "
+                             "roads given); place the refuges on the site")
+    top = high + 1.0 if np.isfinite(high) else 1.0
+    source = dataclasses.replace(probe, top=top)
+    tiles = FileStore(folder / ".cutoff-tiles") if store == "files" else MemoryStore()
+    try:
+        flood = run_pipeline(source, executor=executor, store=tiles, tile_size=run.tile_size,
+                             connectivity=connectivity, row_areas=grid.row_areas,
+                             transform=grid.transform)
+
+        def block(r0: int, r1: int) -> np.ndarray:
+            usable, _ = source.usable(r0, r1, 0, cols)
+            return stage_from_widest(flood.read("onset_stage", r0, r1), usable, top)
+
+        files = [write_cutoff_raster(grid, folder, stage=block, roads=roads is not None)]
+    finally:
+        tiles.close()
+    sources = {"refuges": refuges_source, **({"roads": roads_source} if roads_source else {})}
+    files += [keep_input(src, folder, what) for what, src in sources.items()]
+    member = {"refuges": refuges.label, "refuge_cells": seeds,
+              "roads": None if roads is None else roads.label, "files": ["cutoff_stage.tif"]}
+    summary = folder / FILE_NAMES[-1]
+    add_to_summary(summary, [p.name for p in files], cutoff=member)
+    listed = [p for p in run.files if p.name != summary.name]
+    seconds = {**run.seconds, "cutoff": time.perf_counter() - t0}
+    reach = getattr(run, "reach", None)
+    return dataclasses.replace(run, files=[*listed, *files, summary], seconds=seconds,
+                               reach=_ReachResult(profile=None if reach is None else reach.profile,
+                                                  cutoff=None))

@@ -167,12 +167,29 @@ def test_tiled_onset_offset_equals_in_memory(tmp_path):
     assert memory.reach.profile["centreline_cells"] == int(np.count_nonzero(z[3] != -9999))
 
 
-@pytest.mark.parametrize("option", ["--refuge"])
-def test_cutoff_is_refused_on_tiles_in_words(tmp_path, capsys, option):
-    dem = write_raster(tmp_path / "village.tif", VILLAGE)
+def test_tiled_cutoff_stage_equals_in_memory(tmp_path):
+    # The widest-route flood on tiles (the folder's onset stage read by windows,
+    # the refuges and roads burned per window) gives the in-memory raster.
+    rng = np.random.default_rng(11)
+    rows, cols = 41, 47
+    z = (np.add.outer(np.linspace(0, 4, rows), np.linspace(5, 0, cols))
+         + rng.normal(0, 0.5, (rows, cols))).astype(np.float32)
+    z[rng.random(z.shape) < 0.04] = -9999
+    dem_path = write_raster(tmp_path / "terrain.tif", z, nodata=-9999)
     refuge = write_json(tmp_path / "r.geojson", {"type": "FeatureCollection", "crs": UTM,
-        "features": [{"type": "Feature", "properties": {},
-                      "geometry": {"type": "Point", "coordinates": [WEST + 0.5, NORTH - 1.5]}}]})
-    with pytest.raises(Exception, match="in memory"):
-        analyse(dem, ("edge",), tmp_path / "out", refuges=refuge, store="files",
-                executor=SerialExecutor())
+        "features": [{"type": "Feature", "properties": {}, "geometry": {"type": "Polygon",
+            "coordinates": [[[WEST + 1, NORTH - 38], [WEST + 6, NORTH - 38], [WEST + 6, NORTH - 33],
+                             [WEST + 1, NORTH - 33], [WEST + 1, NORTH - 38]]]}}]})
+    roads = write_json(tmp_path / "roads.geojson", {"type": "FeatureCollection", "crs": UTM,
+        "features": [{"type": "Feature", "properties": {}, "geometry": {"type": "LineString",
+            "coordinates": [[WEST + 3, NORTH - 35], [WEST + 40, NORTH - 5], [WEST + 44, NORTH - 30]]}}]})
+    for label, kwargs in (("all", {}), ("roads", {"roads": roads})):
+        memory = tmp_path / f"memory_{label}"
+        tiled = tmp_path / f"tiled_{label}"
+        analyse(read_dem(dem_path), ("edge",), memory, refuges=refuge, **kwargs)
+        run = analyse(dem_path, ("edge",), tiled, refuges=refuge, tile_size=16, store="files",
+                      executor=SerialExecutor(), **kwargs)
+        assert run.tiles > 4
+        a, b = read(memory / "cutoff_stage.tif"), read(tiled / "cutoff_stage.tif")
+        assert np.array_equal(a, b, equal_nan=True), label
+        assert np.isfinite(a).any() and np.isnan(a).any() == bool(kwargs or (z == -9999).any())
