@@ -51,9 +51,9 @@ class PlacedShapes:
         does, even where a line ends exactly on a cell corner.
         """
         out = np.zeros((r1 - r0, c1 - c0), dtype=bool)
-        for g in self.centred:
+        for g in _single(self.centred):
             _fill_centres(out, g, r0, c0)
-        for g in self.touched:
+        for g in _single(self.touched):
             if g.geom_type == "Polygon":
                 _fill_centres(out, g, r0, c0)
                 for ring in [g.exterior, *g.interiors]:
@@ -63,6 +63,19 @@ class PlacedShapes:
             else:
                 _supercover(out, np.asarray(g.coords), r0, c0)
         return out
+
+
+def _single(shapes) -> list:
+    """The single parts of shapes that may be multi-part or collections."""
+    out = []
+    for g in shapes:
+        if g.is_empty:
+            continue
+        if g.geom_type.startswith("Multi") or g.geom_type == "GeometryCollection":
+            out.extend(_single(shapely.get_parts(g)))
+        else:
+            out.append(g)
+    return out
 
 
 def _fill_centres(out: np.ndarray, polygon: Any, r0: int, c0: int) -> None:

@@ -44,3 +44,16 @@ def test_every_window_burns_what_the_whole_grid_burns():
                 r1, c1 = min(23, r0 + step), min(29, c0 + step)
                 tiled[r0:r1, c0:c1] = shapes.window(r0, r1, c0, c1)
         assert np.array_equal(tiled, whole), step
+
+
+def test_a_refuge_polygon_marks_the_cells_whose_centre_it_holds():
+    # A 2.2 x 2.2 square from (0.9, 1.9) to (3.1, 4.1): cell centres at x 1.5,
+    # 2.5 and y 2.5, 3.5 lie inside (rows 2, 3 and columns 1, 2); its edges are
+    # wider than a cell, so no thin part adds touched cells.
+    dem = dem_from_array(np.zeros((6, 5)), transform=GRID)
+    square = {"type": "FeatureCollection", "crs": UTM, "features": [
+        {"type": "Feature", "properties": {}, "geometry": {"type": "Polygon", "coordinates": [
+            [[0.9, 1.9], [3.1, 1.9], [3.1, 4.1], [0.9, 4.1], [0.9, 1.9]]]}}]}
+    shapes = place_shapes(square, dem, "refuges")
+    assert sorted(map(tuple, np.argwhere(shapes.window(0, 6, 0, 5)).tolist())) == [
+        (2, 1), (2, 2), (3, 1), (3, 2)]
