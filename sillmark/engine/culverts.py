@@ -81,6 +81,18 @@ class CulvertEdges:
         """
         return dataclasses.replace(self, a=self.b, b=self.a)
 
+    def candidates(self, row: int, col: int) -> list[tuple[int, float]]:
+        """``(other end's flat index, invert)`` of every culvert water may cross to reach
+        ``(row, col)``."""
+        cell = row * self.shape[1] + col
+        out = []
+        for k in range(len(self)):
+            if self.b[k] == cell:
+                out.append((int(self.a[k]), float(self.invert[k])))
+            elif self.a[k] == cell and not self.one_way[k]:
+                out.append((int(self.b[k]), float(self.invert[k])))
+        return out
+
     def partner(self, row: int, col: int) -> tuple[int, int] | None:
         """The other end of the culvert a flood reached ``(row, col)`` through.
 

@@ -226,6 +226,17 @@ class SpillResult:
                 DIRECTION_ROW, DIRECTION_COL, directions(self.connectivity),
                 np.int64(rows * cols + 1),
             )
+            if k < 0 and self.culverts is not None:
+                # A depression that drains through a culvert as well as over its
+                # rim: the flood tree itself leads out, through the culvert; its
+                # highest cell is the controlling sill (the route is a minimax path).
+                path_r, path_c = self._walk(row, col)
+                k = int(np.argmax(self.elevation[path_r, path_c]))
+                return Route(rows=path_r, cols=path_c, sill_row=int(path_r[k]),
+                             sill_col=int(path_c[k]),
+                             sill_elevation=float(self.elevation[path_r[k], path_c[k]]),
+                             reaches_outlet=bool(self.flood_tree[path_r[-1], path_c[-1]]
+                                                 == OUTLET_CODE))
             if k < 0:
                 raise InvalidParameter(
                     f"the spill point of depression {dep} does not lead out of it at its "
@@ -263,22 +274,55 @@ class SpillResult:
         return self._through_culverts(path_r, path_c)
 
     def _through_culverts(self, path_r: np.ndarray, path_c: np.ndarray):
-        """A route that stops at a culvert end, continued from the culvert's other end."""
+        """A route that stops at a culvert end, continued from the culvert's other end.
+
+        Where several culverts could have brought the water at the same level,
+        each is tried in turn (lowest crossing first) until one leads on to an
+        outlet without coming back to a cell of the route; the flood tree alone
+        does not record which culvert it was.
+        """
+        if self.culverts is None:
+            return path_r, path_c
+        cols = self.onset_stage.shape[1]
+        found = self._onward(path_r, path_c, set((path_r * cols + path_c).tolist()), 0)
+        return found if found is not None else (path_r, path_c)
+
+    def _onward(self, path_r: np.ndarray, path_c: np.ndarray, seen: set, hops: int):
+        """``path`` continued through culverts to an outlet, or None if it cannot be."""
+        end_r, end_c = int(path_r[-1]), int(path_c[-1])
+        if self.flood_tree[end_r, end_c] == OUTLET_CODE:
+            return path_r, path_c
+        if self.flood_tree[end_r, end_c] != CULVERT_CODE or hops > len(self.culverts):
+            return None
         rows, cols = self.onset_stage.shape
-        parts_r, parts_c = [path_r], [path_c]
-        hops = 0
-        while (self.culverts is not None and hops <= len(self.culverts)
-               and self.flood_tree[parts_r[-1][-1], parts_c[-1][-1]] == CULVERT_CODE):
-            other = self.culverts.partner(int(parts_r[-1][-1]), int(parts_c[-1][-1]))
-            if other is None:
-                break
+        for other in self._culvert_parents(end_r, end_c, seen):
             more_r, more_c = _flood_kernels.walk_route(
                 self.flood_tree, np.int64(other[0]), np.int64(other[1]), DIRECTION_ROW,
                 DIRECTION_COL, np.int64(rows * cols + 1))
-            parts_r.append(more_r)
-            parts_c.append(more_c)
-            hops += 1
-        return np.concatenate(parts_r), np.concatenate(parts_c)
+            cells = (more_r * cols + more_c).tolist()
+            if seen.intersection(cells):
+                continue
+            found = self._onward(more_r, more_c, seen | set(cells), hops + 1)
+            if found is not None:
+                return np.concatenate([path_r, found[0]]), np.concatenate([path_c, found[1]])
+        return None
+
+    def _culvert_parents(self, row: int, col: int, seen: set) -> list[tuple[int, int]]:
+        """The culvert ends water may have come from to reach ``(row, col)`` at its onset
+        stage: those whose crossing, ``max(onset stage there, invert)``, is not above
+        it, lowest crossing first, leaving out cells already on the route."""
+        cols = self.onset_stage.shape[1]
+        flat = self.onset_stage.ravel()
+        here = float(self.onset_stage[row, col])
+        ranked = []
+        for other, invert in self.culverts.candidates(row, col):
+            level = float(flat[other])
+            if other in seen or np.isnan(level):
+                continue
+            crossing = max(level, invert)
+            if crossing <= here:
+                ranked.append((crossing, level, other))
+        return [divmod(other, cols) for _, _, other in sorted(ranked)]
 
 
 def _validated_elevation(elevation) -> np.ndarray:

@@ -184,9 +184,10 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM", *,
     Row by row the same values whatever rows the table holds, so the writer
     (:mod:`sillmark.io.hierarchy_writer`) gives the file of the whole table
     from its pieces. ``dem`` may be a :class:`~sillmark.grid.dem_grid.DEMGrid`.
-    ``listed`` (boolean per node of the site, index ``id - 1``) keeps only those
-    rows, and only those children in each row's list; the listed nodes of a
-    significance minimum hold every ancestor of theirs, so parents stay listed.
+    ``listed`` (boolean per row of ``t``) keeps only those rows, and only the
+    listed children in each row's list (a node's children are rows of the same
+    table: a batch holds whole depressions); the listed nodes of a significance
+    minimum hold every ancestor of theirs, so parents stay listed.
     """
     v = unit_suffix(unit)
     h = horizontal_unit_suffix(dem)
@@ -195,7 +196,13 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM", *,
     if listed is not None:
         listed = np.asarray(listed, dtype=bool)
         owner = np.repeat(np.arange(n), np.diff(starts))
-        shown = listed[child_ids - 1] if len(child_ids) else np.zeros(0, bool)
+        ids = np.asarray(t.id)
+        order = np.argsort(ids, kind="stable")
+        at = np.searchsorted(ids[order], child_ids)
+        found = (at < n) & (ids[order][np.minimum(at, max(n - 1, 0))] == child_ids) if n else \
+            np.zeros(len(child_ids), bool)
+        shown = np.zeros(len(child_ids), bool)
+        shown[found] = listed[order[at[found]]]
         counts = np.bincount(owner[shown], minlength=n)
         starts = np.concatenate([[0], np.cumsum(counts)]).astype(starts.dtype)
         child_ids = child_ids[shown]
@@ -233,8 +240,7 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM", *,
     }
     cols.update(own_unit_columns(unit, area_m2=area, volume_m3=volume))
     if listed is not None:
-        keep = listed[np.asarray(t.id) - 1]
-        cols = {name: np.asarray(values)[keep] for name, values in cols.items()}
+        cols = {name: np.asarray(values)[listed] for name, values in cols.items()}
     return cols
 
 

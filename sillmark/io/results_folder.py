@@ -385,5 +385,6 @@ def _list_in_summary(out: Path, names: list[str]) -> None:
     summary = json.loads(path.read_text(encoding="utf-8"))
     listed = set(summary.get("files", [])) | set(names)
     order = {name: k for k, name in enumerate(FILE_NAMES)}
-    summary["files"] = sorted(listed, key=lambda n: (order.get(n, len(order)), n))
+    last = order[FILE_NAMES[-1]]  # summary.json stays last; other names just before it
+    summary["files"] = sorted(listed, key=lambda n: (order.get(n, last - 0.5), n))
     write_json(path, summary)

@@ -371,8 +371,9 @@ def _close_folder(run: Analysis, folder: Path) -> Analysis:
         title += " (tiled engine, every depression listed)"
     readme = write_readme(folder, [*names, summary.name], grid=run.grid, title=title,
                           connectivity=run.connectivity, significance=run.significance)
-    files = [p for p in run.files if p.name not in (summary.name, README_NAME)]
-    return dataclasses.replace(run, files=[*files, readme, folder / summary.name])
+    by_name = {p.name: p for p in run.files}
+    by_name[README_NAME] = readme
+    return dataclasses.replace(run, files=[*(by_name[n] for n in names), folder / summary.name])
 
 def _placed_edits(edits: Any, grid: Any) -> Edits | None:
     if edits is None or isinstance(edits, Edits):

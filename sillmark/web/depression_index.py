@@ -40,7 +40,7 @@ from sillmark.products.stage import (
     DEPRESSION_OVERTOPPED,
     depression_states,
 )
-from sillmark.units import ACRE_FOOT_M3
+from sillmark.units import own_unit_columns
 from sillmark.web.caches import LockedLRU
 
 #: Rows of one table page unless asked otherwise, and the most one page may hold.
@@ -272,8 +272,8 @@ class DepressionIndex:
             "pit_lon": _finite(self.pit_lon[k]), "pit_lat": _finite(self.pit_lat[k]),
             "bounds": [float(self.west[k]), float(self.south[k]), float(self.east[k]), float(self.north[k])],
         }
-        if self.unit.is_feet:
-            item["volume_acre_ft"] = item["volume_m3"] / ACRE_FOOT_M3
+        item.update({name: float(value) for name, value in own_unit_columns(
+            self.unit, area_m2=item["area_m2"], volume_m3=item["volume_m3"]).items()})
         if states is not None:
             item["state"] = STATE_NAMES[int(states[k])]
         return item

@@ -175,7 +175,13 @@ def test_result_files_are_the_in_memory_files(terrain_tif, tmp_path):
     dem, outlets, r = in_memory(terrain_tif, tile=32)
     out = tmp_path / "tiled"
     run = run_tiled(terrain_tif, out, tile=32)
-    assert [p.name for p in run.files] == list(TILED_FILE_NAMES)
+    written = [p.name for p in run.files]
+    # The engine's files, then README.txt and an SLD style beside each map layer.
+    assert [n for n in written if n != "README.txt" and not n.endswith(".sld")] == \
+        list(TILED_FILE_NAMES)
+    assert "README.txt" in written and {n for n in written if n.endswith(".sld")} == {
+        "onset_stage.sld", "fill_depth.sld", "depression_id.sld", "flood_tree.sld",
+        "spill_points.sld"}
     ref = tmp_path / "ref"
     ref.mkdir()
     for name, writer in (("onset_stage.tif", write_onset_stage), ("fill_depth.tif", write_fill_depth),
@@ -189,7 +195,7 @@ def test_result_files_are_the_in_memory_files(terrain_tif, tmp_path):
     assert summary["engine"] == {"kind": "tiled", "tile_size": 32, "tiles": 30}
     assert summary["depressions"]["count"] == len(r.depressions)
     assert summary["outlets"]["cell_count"] == outlets.count
-    assert summary["files"] == list(TILED_FILE_NAMES)
+    assert summary["files"] == written
     assert not [p for p in out.iterdir() if p.name.startswith(".")]  # scratch removed
 
 
