@@ -126,9 +126,8 @@
         fc.features.forEach(function (f) {
           var d = f.properties;
           if (d.spill_lat === null) { return; }
-          var m = L.circleMarker([d.spill_lat, d.spill_lon], {
-            radius: 5, color: "#2b2118", weight: 1.5, fillColor: "#e0b043", fillOpacity: 1, className: "spill-point",
-          });
+          /* The spill point's own shape (common.js), as the legend and the print show it. */
+          var m = S.symbolMarker([d.spill_lat, d.spill_lon], "spill", { className: "spill-point" });
           m.bindTooltip("spill " + at(d.spill_elevation), { direction: "top", offset: [0, -4] });
           m.bindPopup(function () { return popup(known[d.id]); }, { maxWidth: 320 });
           m.on("click", function (ev) { L.DomEvent.stopPropagation(ev); select(d.id, false); m.openPopup(); });
