@@ -213,22 +213,30 @@ def assets(site_id: int):
 # --------------------------------------------------------------------------- map tiles
 
 
-@bp.get("/tiles/<int:site_id>/offset/<offset>/<int:z>/<int:x>/<int:y>.png")
-def offset_tile(site_id: int, offset: str, z: int, x: int, y: int):
+def _layer_tile(site_id: int, kind: str, text: str, z: int, x: int, y: int, *,
+                layer: str, missing: str, paint) -> object:
+    """A map tile of one of the site's reach layers at a level or offset ``text``:
+    ``paint(index, reach, value, data)`` draws the tile's cells (``index``), which a
+    tile wholly off the grid never reaches. ``layer`` names the attribute of the
+    site's reach data the tile needs; without it the site is told so (``missing``)."""
     _check_tile(z, x, y)
-    d = parse_level(offset)
+    value = parse_level(text)
     _, data = open_site(site_id)
     reach = reach_of(data)
-    if reach.offset is None:
-        raise SiteNotReady("this site has no river profile; add one on its settings page")
+    if getattr(reach, layer) is None:
+        raise SiteNotReady(missing)
 
     def draw() -> bytes:
         index = services().tiles.get(data.grid, z, x, y)
         if index is None:
             return render.BLANK_PNG
-        return render.water_tile(index, reach.offset, reach.height, d, data.depth_bounds)
+        return paint(index, reach, value, data)
 
-    return _tile(data, ("offset", repr(float(d)), z, x, y), draw)
+    return _tile(data, (kind, repr(float(value)), z, x, y), draw)
+
+
+def _paint_offset(index, reach, offset, data) -> bytes:
+    return render.water_tile(index, reach.offset, reach.height, offset, data.depth_bounds)
 
 
 def cut_off_codes(index: np.ndarray, cut_flat: np.ndarray, wet_flat: np.ndarray,
@@ -243,25 +251,23 @@ def cut_off_codes(index: np.ndarray, cut_flat: np.ndarray, wet_flat: np.ndarray,
     return out
 
 
+def _paint_cut_off(index, reach, level, data) -> bytes:
+    codes = cut_off_codes(index, reach.cut_flat, reach.wet_flat, level)
+    if not codes.any():
+        return render.BLANK_PNG
+    return render.encode_palette_png(codes.reshape(render.TILE, render.TILE), _CUT_PLTE, _CUT_TRNS)
+
+
+@bp.get("/tiles/<int:site_id>/offset/<offset>/<int:z>/<int:x>/<int:y>.png")
+def offset_tile(site_id: int, offset: str, z: int, x: int, y: int):
+    return _layer_tile(site_id, "offset", offset, z, x, y, layer="offset", paint=_paint_offset,
+                       missing="this site has no river profile; add one on its settings page")
+
+
 @bp.get("/tiles/<int:site_id>/cutoff/<level>/<int:z>/<int:x>/<int:y>.png")
 def cutoff_tile(site_id: int, level: str, z: int, x: int, y: int):
-    _check_tile(z, x, y)
-    h = parse_level(level)
-    _, data = open_site(site_id)
-    reach = reach_of(data)
-    if reach.cut is None:
-        raise SiteNotReady("this site has no refuges; add them on its settings page")
-
-    def draw() -> bytes:
-        index = services().tiles.get(data.grid, z, x, y)
-        if index is None:
-            return render.BLANK_PNG
-        codes = cut_off_codes(index, reach.cut_flat, reach.wet_flat, h)
-        if not codes.any():
-            return render.BLANK_PNG
-        return render.encode_palette_png(codes.reshape(render.TILE, render.TILE), _CUT_PLTE, _CUT_TRNS)
-
-    return _tile(data, ("cutoff", repr(float(h)), z, x, y), draw)
+    return _layer_tile(site_id, "cutoff", level, z, x, y, layer="cut", paint=_paint_cut_off,
+                       missing="this site has no refuges; add them on its settings page")
 
 
 # --------------------------------------------------------------------------- uploads
