@@ -88,7 +88,12 @@ def child(kind: str, path: str, out: str) -> dict:
                 peaks[step] = max(peaks.get(step, 0), _status_kib("VmHWM") * 1024 - before)
                 _reset_peak()
 
-        run = analyse(path, ("edge",), out, progress=progress)
+        from sillmark.grid.dem import read_dem
+        from sillmark.products.significance import site_minimum
+
+        dem = read_dem(path)  # as the command does: in memory, with its default minimum
+        run = analyse(dem, ("edge",), out, progress=progress,
+                      minimum=site_minimum(unit=dem.vertical_unit))
         h = run.hierarchy
         return {"kind": kind, "marks": marks, "peaks": peaks, "seconds": run.seconds,
                 "depressions": len(run.depressions),

@@ -45,6 +45,8 @@ atomically (:mod:`sillmark.io.atomic`).
 
 from __future__ import annotations
 
+import concurrent.futures
+import threading
 import dataclasses
 import os
 from collections.abc import Callable
@@ -71,7 +73,7 @@ from sillmark.io.hierarchy_writer import (
 from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.summary import FILE_NAMES, significance_member, write_summary
 from sillmark.io.vector_layers import write_depression_layer, write_spill_point_layer
-from sillmark.products.hierarchy_sweep import site_hierarchy
+from sillmark.products.hierarchy_windows import whole_hierarchy
 from sillmark.products.significance import SiteMinimum, significance
 from sillmark.products.source import ArraySource
 
@@ -177,6 +179,9 @@ def write_result_files(
         raise InvalidParameter(f"the output path {out} is a file; give a folder (new or existing)")
     out.mkdir(parents=True, exist_ok=True)
 
+    if progress is not None:
+        progress = _one_at_a_time(progress)
+
     def step(name: str, writer: Callable[[], Path]) -> Path:
         if progress is not None:
             progress(name, 0, 1)
@@ -185,13 +190,47 @@ def write_result_files(
             progress(name, 1, 1)
         return written
 
+    with concurrent.futures.ThreadPoolExecutor(1, thread_name_prefix="sillmark-rasters") as pool:
+        # The four rasters are written on a thread of their own while this one
+        # builds the hierarchy and the tables: GDAL's compression and the
+        # hierarchy kernels both release the GIL, so on two cores they overlap.
+        rasters = pool.submit(lambda: [
+            write_onset_stage(result, dem, out / FILE_NAMES[0], progress=progress),
+            write_fill_depth(result, dem, out / FILE_NAMES[1], progress=progress),
+            write_depression_ids(result, dem, out / FILE_NAMES[2], progress=progress),
+            write_flood_tree(result, dem, out / FILE_NAMES[3], progress=progress),
+        ])
+        try:
+            return _write_tables(result, dem, outlets, out, step, progress, rasters,
+                                 minimum=minimum, accuracy_stated=accuracy_stated,
+                                 full_inventory=full_inventory, vector_format=vector_format)
+        except BaseException:
+            rasters.cancel()
+            raise
+
+
+def _one_at_a_time(progress: Progress) -> Progress:
+    """``progress`` behind a lock: the raster thread and this one both report."""
+    lock = threading.Lock()
+
+    def report(name: str, done: int, total: int) -> None:
+        with lock:
+            progress(name, done, total)
+
+    return report
+
+
+def _write_tables(result, dem, outlets, out: Path, step, progress, rasters, *, minimum,
+                  accuracy_stated, full_inventory, vector_format) -> ResultFiles:
+    """Every file but the four rasters (``rasters``, a future of their paths)."""
     source = ArraySource(dem, result)
-    rows = listed = extra = member = None
+    rows = listed = extra = member = built = None
     if minimum is not None:
         step_name = "significance"
         if progress is not None:
             progress(step_name, 0, 1)
-        sig = significance(site_hierarchy(dem, result), minimum)
+        built = whole_hierarchy(source)  # built once: for significance and the writer
+        sig = significance(built[0], minimum)
         whole = sig.depression_to_significant[1:] > 0  # engine depressions listed as a whole
         member = significance_member(sig, all_depressions=len(result.depressions),
                                      accuracy_stated=accuracy_stated,
@@ -205,10 +244,6 @@ def write_result_files(
             progress(step_name, 1, 1)
 
     paths = [
-        write_onset_stage(result, dem, out / FILE_NAMES[0], progress=progress),
-        write_fill_depth(result, dem, out / FILE_NAMES[1], progress=progress),
-        write_depression_ids(result, dem, out / FILE_NAMES[2], progress=progress),
-        write_flood_tree(result, dem, out / FILE_NAMES[3], progress=progress),
         step(FILE_NAMES[4], lambda: write_depression_table_csv(
             result.depressions, dem, out / FILE_NAMES[4], rows=rows, extra=extra)),
         step(FILE_NAMES[5], lambda: write_depression_layer(
@@ -227,8 +262,10 @@ def write_result_files(
         if done < total:
             progress(names[done], 0, 1)
 
-    written = write_hierarchy_files(source, out, progress=hierarchy_step, listed=listed)
-    paths.extend(written.files)
+    written = write_hierarchy_files(source, out, progress=hierarchy_step, listed=listed,
+                                    hierarchy=built)
+    del built
+    paths = rasters.result() + paths + written.files
     summary_name = FILE_NAMES[-1]
     paths.append(step(README_NAME, lambda: write_readme(
         out, [p.name for p in paths] + [summary_name], grid=dem,

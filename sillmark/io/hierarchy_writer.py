@@ -79,15 +79,17 @@ from sillmark.products.hierarchy_windows import (
     DEFAULT_WINDOW_CELLS,
     batch_hierarchy,
     checked_window_cells,
+    depression_rows,
     hierarchy_batches,
     tree_depth,
 )
 from sillmark.products.source import ArraySource
-from sillmark.units import VerticalUnit, unit_suffix
+from sillmark.units import VerticalUnit
 
 if TYPE_CHECKING:  # pragma: no cover
     from affine import Affine
 
+    from sillmark.products.hierarchy import DepressionHierarchy
     from sillmark.products.source import ResultSource
 
 __all__ = ["DEFAULT_WINDOW_CELLS", "HierarchyFiles", "curves_summary", "write_hierarchy_files"]
@@ -207,10 +209,13 @@ def _built(job: _Job, first: int, last: int, window: tuple[int, int, int, int],
         connectivity=job.connectivity, unit=VerticalUnit.parse(job.unit),
         transform=job.transform, segments=False,  # the curve rows do not read them
     )
+    return hierarchy, _counts(hierarchy)
+
+
+def _counts(hierarchy) -> dict:
     t = hierarchy.nodes
-    counts = {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
-              "depth": tree_depth(t.parent)}
-    return hierarchy, counts
+    return {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
+            "depth": tree_depth(t.parent)}
 
 
 def _curve_part(job: _Job, hierarchy, listed: np.ndarray | None) -> tuple[dict, dict]:
@@ -314,15 +319,21 @@ def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, pl
     return {"task_s": time.perf_counter() - t0, "curve_rows": rows}
 
 
-def _serial_batches(job: _Job, calls: list, placed: Any, report, listed) -> tuple[list, list]:
+def _serial_batches(job: _Job, calls: list, placed: Any, report, listed,
+                    prebuilt=None) -> tuple[list, list]:
     """Steps 2 and 3 in this process, batch after batch: each batch's node rows are
     written as soon as it is built (the node offset is known), its curve rows kept
-    (at most the cap) until every batch is counted."""
+    (at most the cap) until every batch is counted. ``prebuilt`` is the one
+    batch's hierarchy, built already."""
     done, kept, nodes = [], [], 0
     report("hierarchy", 0, len(calls))
     for job_, k, first, *rest in calls:
         t0 = time.perf_counter()
-        hierarchy, counts = _built(job_, first, *rest)
+        if prebuilt is not None:
+            hierarchy, counts = prebuilt, _counts(prebuilt)
+            prebuilt = None
+        else:
+            hierarchy, counts = _built(job_, first, *rest)
         t = hierarchy.nodes
         mine = None if listed is None else listed[nodes:nodes + len(t)]
         tables, counts["thinning"] = _curve_part(job_, hierarchy, mine)
@@ -366,6 +377,7 @@ def write_hierarchy_files(
     keep_scratch: bool = False,
     listed: np.ndarray | None = None,
     max_curve_rows: int = hc.DEFAULT_MAX_CURVE_ROWS,
+    hierarchy: "tuple[DepressionHierarchy, np.ndarray] | None" = None,
 ) -> HierarchyFiles:
     """Write the three depression-hierarchy files of a result into ``out_dir``.
 
@@ -404,6 +416,10 @@ def write_hierarchy_files(
         Cap on the rows of ``depression_curves.csv`` (at least 3); see
         :mod:`sillmark.products.hierarchy_curves` for how rows are thinned to fit
         it, which the file's comment lines state.
+    hierarchy : (DepressionHierarchy, batch), keyword-only
+        What :func:`sillmark.products.hierarchy_windows.whole_hierarchy` gave for
+        this source (held in memory, default window, no ``map``), used in place
+        of building the one batch's hierarchy again.
 
     Returns
     -------
@@ -460,13 +476,10 @@ def write_hierarchy_files(
     unit = source.unit
     horizontal_crs(grid)  # InvalidDEM before anything is written if there is no CRS
     connectivity = int(source.connectivity)
-    table = source.depression_columns
-    count = int(table["id"].shape[0])
-    if not np.array_equal(table["id"], np.arange(1, count + 1)):
-        raise InvalidParameter("the depression table does not number its depressions 1..n; "
-                               "run the analysis again")
-    spill_elevation = np.asarray(table[f"spill_elevation_{unit_suffix(unit)}"], dtype=np.float32)
-    spill_row, spill_col, cell_count = table["spill_row"], table["spill_col"], table["cell_count"]
+    table = depression_rows(source)
+    spill_elevation, spill_row = table["spill_elevation"], table["spill_row"]
+    spill_col, cell_count = table["spill_col"], table["cell_count"]
+    count = int(cell_count.shape[0])
     row_areas = np.asarray(grid.row_areas, dtype=np.float64)
 
     def report(step: str, done: int, total: int) -> None:
@@ -505,8 +518,15 @@ def write_hierarchy_files(
             sl = slice(first - 1, last)
             calls.append((job, k, first, last, (r0, r1, c0, c1), row_areas[r0:r1],
                           spill_elevation[sl], spill_row[sl], spill_col[sl], cell_count[sl]))
+        prebuilt = None
+        if hierarchy is not None:
+            prebuilt, batch = hierarchy
+            if map is not None or batches.shape[0] > 1 or (
+                    batches.shape[0] == 1 and not np.array_equal(batches[0], batch)):
+                raise InvalidParameter("the hierarchy given was not built for this source's "
+                                       "one batch; leave it out")
         if map is None:
-            built, kept = _serial_batches(job, calls, placed, report, listed)
+            built, kept = _serial_batches(job, calls, placed, report, listed, prebuilt)
             nodes = sum(b["nodes"] for b in built)
             check_listed(nodes)
             times["batches"] = time.perf_counter() - t0

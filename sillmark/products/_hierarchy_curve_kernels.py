@@ -233,6 +233,6 @@ def _evaluate(order, row_node, levels, first, dep_of_node, owner, zs, cell_area,
 
 _merge_unique = njit(inline="always", cache=True)(_merge_unique)
 _kept = njit(inline="always", cache=True)(_kept)
-breakpoint_sets = njit(cache=True)(_breakpoint_sets)
-position_owner = njit(cache=True)(_position_owner)
-evaluate = njit(cache=True)(_evaluate)
+breakpoint_sets = njit(nogil=True, cache=True)(_breakpoint_sets)
+position_owner = njit(nogil=True, cache=True)(_position_owner)
+evaluate = njit(nogil=True, cache=True)(_evaluate)

@@ -83,5 +83,5 @@ def _batches(row_min, row_max, col_min, col_max, budget):
     return out[:runs]
 
 
-add_bounds = njit(cache=True)(_add_bounds)
-batches = njit(cache=True)(_batches)
+add_bounds = njit(nogil=True, cache=True)(_add_bounds)
+batches = njit(nogil=True, cache=True)(_batches)

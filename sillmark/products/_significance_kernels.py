@@ -33,4 +33,4 @@ def _smallest_significant(parent, significant):
     return out
 
 
-smallest_significant = njit(cache=True)(_smallest_significant)
+smallest_significant = njit(nogil=True, cache=True)(_smallest_significant)

@@ -58,7 +58,7 @@ from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.products import _hierarchy_windows_kernels
 from sillmark.products.hierarchy import DepressionHierarchy
 from sillmark.products.hierarchy_sweep import hierarchy_of_cells
-from sillmark.units import VerticalUnit
+from sillmark.units import VerticalUnit, unit_suffix
 
 if TYPE_CHECKING:  # pragma: no cover
     from affine import Affine
@@ -71,7 +71,9 @@ __all__ = [
     "bounding_boxes",
     "checked_window_cells",
     "hierarchy_batches",
+    "depression_rows",
     "tree_depth",
+    "whole_hierarchy",
 ]
 
 #: Cell budget of one batch's window for a source on disk (16 Mi cells; see the
@@ -223,6 +225,78 @@ def batch_hierarchy(
             "table; the result's files do not belong together: run the analysis again"
         )
     return hierarchy
+
+
+def depression_rows(source: "ResultSource") -> dict[str, np.ndarray]:
+    """The columns of the source's depression table a batch reads: ``spill_elevation``
+    (float32, the site's unit), ``spill_row``, ``spill_col`` and ``cell_count``.
+
+    Raises
+    ------
+    InvalidParameter
+        The table does not number its depressions 1..n.
+    """
+    table = source.depression_columns
+    count = int(table["id"].shape[0])
+    if not np.array_equal(table["id"], np.arange(1, count + 1)):
+        raise InvalidParameter("the depression table does not number its depressions 1..n; "
+                               "run the analysis again")
+    return {
+        "spill_elevation": np.asarray(table[f"spill_elevation_{unit_suffix(source.unit)}"],
+                                      dtype=np.float32),
+        "spill_row": table["spill_row"], "spill_col": table["spill_col"],
+        "cell_count": table["cell_count"],
+    }
+
+
+def whole_hierarchy(source: "ResultSource") -> tuple[DepressionHierarchy, np.ndarray]:
+    """The hierarchy of every depression of a source as one batch, and that batch.
+
+    The same build, bit for bit, as the one batch that
+    :func:`sillmark.io.hierarchy_writer.write_hierarchy_files` makes of a result
+    held in memory (its default window is the whole grid), without the curve
+    segments. Built once, it serves both the significance of the depressions
+    and the writer (its ``hierarchy`` argument), so the run builds it once.
+
+    Returns
+    -------
+    hierarchy : DepressionHierarchy
+        Pit and spill cells in grid coordinates; regions and ``shape`` of the
+        batch's window (the bounding box of every depression).
+    batch : (6,) int64 array
+        As a row of :func:`hierarchy_batches`; all zero without depressions.
+
+    Examples
+    --------
+    >>> from sillmark.engine.flood import priority_flood
+    >>> from sillmark.grid.dem import dem_from_array
+    >>> from sillmark.products.source import ArraySource
+    >>> z = np.full((3, 7), 9, np.float32); z[1] = [9, 1, 4, 2, 7, 0, 9]
+    >>> edge = np.zeros(z.shape, bool); edge[1, 5] = True
+    >>> h, batch = whole_hierarchy(ArraySource(dem_from_array(z), priority_flood(z, edge)))
+    >>> len(h.nodes), batch.tolist()
+    (3, [1, 1, 1, 2, 1, 4])
+    """
+    rows, cols = source.grid.shape
+    table = depression_rows(source)
+    count = int(table["cell_count"].shape[0])
+    batches = hierarchy_batches(source, window_cells=rows * cols, count=count)
+    if batches.shape[0] > 1:  # pragma: no cover - a whole-grid budget makes one batch
+        raise AssertionError("a whole-grid window made more than one batch")
+    if batches.shape[0] == 0:
+        batch = np.zeros(6, dtype=np.int64)
+        first, last, r0, r1, c0, c1 = 1, 0, 0, 1, 0, 1
+    else:
+        batch = batches[0]
+        first, last, r0, r1, c0, c1 = (int(v) for v in batch)
+    hierarchy = batch_hierarchy(
+        source, first, last, (r0, r1, c0, c1),
+        areas=np.asarray(source.grid.row_areas, dtype=np.float64)[r0:r1],
+        **{name: column[first - 1:last] for name, column in table.items()},
+        connectivity=int(source.connectivity), unit=source.unit,
+        transform=source.grid.transform, segments=False,
+    )
+    return hierarchy, batch
 
 
 def tree_depth(parent: np.ndarray) -> int:

@@ -18,6 +18,7 @@ from sillmark.io.export import write_results
 from sillmark.io.hierarchy_writer import write_hierarchy_files
 from sillmark.engine.flood import analyse_site
 from sillmark.products.hierarchy_sweep import site_hierarchy
+from sillmark.products.hierarchy_windows import whole_hierarchy
 from sillmark.products.source import ArraySource
 from sillmark.grid.outlets import build_outlets
 from sillmark.units import ACRE_FOOT_M3
@@ -312,3 +313,27 @@ def test_rows_are_what_the_csv_module_writes(words):
 
 def test_a_single_empty_column_is_quoted_as_the_csv_module_does():
     assert he.csv_rows({"word": np.array(["", "x"], dtype=object)}) == '""\nx\n'
+
+
+def test_a_hierarchy_built_once_gives_the_same_bytes(files, tmp_path):
+    # The in-memory run builds the hierarchy once for significance and hands it to
+    # the writer: the files must be the bytes the writer makes when it builds its own.
+    out, paths = files
+    z = nested_elevation()
+    dem = dem_from_array(z, transform=grid(2.0))
+    result = analyse_site(dem, build_outlets(dem, ("edge",)))
+    source = ArraySource(dem, result)
+    built = whole_hierarchy(source)
+    # Both depressions; the window is their bounding box: the trench on row 2,
+    # cols 1..3, and the hollow at row 4, col 6, so rows 2..4 and cols 1..6.
+    assert built[1].tolist() == [1, 2, 2, 5, 1, 7]
+    assert len(built[0].nodes) == 4  # two pits, their trench, the lone hollow
+    written = write_hierarchy_files(source, tmp_path, hierarchy=built)
+    for mine, theirs in zip(written.files, paths.values()):
+        assert mine.read_bytes() == theirs.read_bytes()
+    # A hierarchy of another batch, or with a map that builds its own, is refused.
+    with pytest.raises(InvalidParameter, match="one batch"):
+        write_hierarchy_files(source, tmp_path, hierarchy=(built[0], built[1] + 1))
+    with pytest.raises(InvalidParameter, match="one batch"):
+        write_hierarchy_files(source, tmp_path, hierarchy=built,
+                              map=lambda fn, calls: [fn(c) for c in calls])
