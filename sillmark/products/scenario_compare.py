@@ -155,7 +155,7 @@ class ScenarioComparison:
         return self.area_m2[COMPARE_CODE_NAMES[NEWLY_PROTECTED]]
 
 
-def compare_at_level(base_onset, scenario_onset, level, *, row_areas=None, valid=None,
+def compare_at_level(base_onset, scenario_onset, level, *, row_areas=None, elevation=None,
                      keep_codes: bool = True) -> ScenarioComparison:
     """Compare a scenario with the base at ``level``: codes, counts and areas.
 
@@ -168,8 +168,9 @@ def compare_at_level(base_onset, scenario_onset, level, *, row_areas=None, valid
         Outlet water level, site's vertical unit.
     row_areas : (rows,) array, optional
         True area of one cell in each row, in m² (default 1: areas count cells).
-    valid : (rows, cols) bool array, optional
-        Cells with an elevation (see :func:`compare_codes`).
+    elevation : (rows, cols) array, optional
+        The DEM (NaN on nodata): cells with an elevation are valid, read a
+        block at a time. Default as for :func:`compare_codes`.
     keep_codes : bool
         Keep the code grid in the answer (1 byte per cell); without it only
         one block of codes exists at a time.
@@ -188,8 +189,8 @@ def compare_at_level(base_onset, scenario_onset, level, *, row_areas=None, valid
     areas = np.ones(rows, np.float64) if row_areas is None else np.asarray(row_areas, np.float64)
     if areas.shape != (rows,):
         raise InvalidParameter(f"row_areas must hold one cell area per row ({rows} values)")
-    if valid is not None and np.shape(valid) != base.shape:
-        raise InvalidParameter("valid must be one flag per cell of the onset stages")
+    if elevation is not None and np.shape(elevation) != base.shape:
+        raise InvalidParameter("the elevation must be a grid of the onset stages' shape")
     h = checked_level(level)
     codes = np.empty(base.shape, np.uint8) if keep_codes else None
     counts = np.zeros(5, np.int64)
@@ -197,7 +198,7 @@ def compare_at_level(base_onset, scenario_onset, level, *, row_areas=None, valid
     for r0 in range(0, rows, BLOCK_ROWS):
         r1 = min(rows, r0 + BLOCK_ROWS)
         block = compare_codes(base[r0:r1], scen[r0:r1], h,
-                              valid=None if valid is None else np.asarray(valid[r0:r1], bool),
+                              valid=None if elevation is None else ~np.isnan(elevation[r0:r1]),
                               out=None if codes is None else codes[r0:r1])
         per_row = np.stack([np.count_nonzero(block == k, axis=1) for k in range(5)])
         counts += per_row.sum(axis=1)
