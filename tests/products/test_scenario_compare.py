@@ -130,3 +130,15 @@ def test_grids_of_different_shapes_are_refused():
 
     with pytest.raises(InvalidParameter, match="one shape"):
         compare_at_level(BASE_BY_HAND, SCEN_BY_HAND[:, :5], 5.0)
+
+
+def test_valid_ground_no_outlet_reaches_is_dry_not_nodata_when_the_dem_is_given():
+    # A flap valve shut against the river leaves column 2 unreached in the scenario
+    # (NaN onset stage) and in the base too here; with the DEM it is ground, dry in both.
+    base = np.array([[1.0, 2.0, NAN, NAN]], np.float32)
+    scen = np.array([[1.0, 2.0, NAN, NAN]], np.float32)
+    ground = np.array([[1.0, 2.0, 1.5, NAN]], np.float32)
+    without = compare_at_level(base, scen, 5.0)
+    with_dem = compare_at_level(base, scen, 5.0, elevation=ground)
+    assert without.codes.tolist() == [[2, 2, 0, 0]]
+    assert with_dem.codes.tolist() == [[2, 2, 1, 0]]
