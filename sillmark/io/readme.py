@@ -108,6 +108,17 @@ _DESCRIPTIONS: tuple[tuple[str, str], ...] = (
      "the last route goes under first."),
     (r"assets_.+\.geojson", "The assets as points (WGS 84), with their routes from the "
      "outlets and controlling sills; feature_kind tells them apart."),
+    (r"scenario_compare_.+\.tif", "GeoTIFF, uint8: a scenario (the DEM with its edits) against "
+     "the base at that level: 0 nodata, 1 dry in both, 2 wet in both, 3 newly flooded (dry in "
+     "the base, wet with the edits), 4 newly protected (wet in the base, dry with the edits)."),
+    (r"scenario_areas_.+\.csv", "Cells and area (m2, ha) of each code of the compare raster "
+     "at that level."),
+    (r"scenario_(assets_.+|depressions)\.csv", "One row per asset or per depression of the "
+     "base: onset stage in the base (onset_base_{v}) and with the edits (onset_scenario_{v}), "
+     "change_{v} (positive: water reaches it later, negative: sooner) and its state (wet or "
+     "dry) at that level in each. A depression is read at its pit (lowest cell)."),
+    (r"scenario_edits\.geojson", "The edits (culverts, flap valves, barriers, breaches) the "
+     "scenario was analysed with, as sillmark analyse --edits reads them."),
     (r"what_if_raise_.+\.csv", "For each asset behind a controlling sill: its onset stage "
      "now and with that sill raised (onset_before_{v}, onset_after_{v}, gain_{v}), one sill "
      "at a time."),

@@ -152,7 +152,16 @@ def create_app(test_config: dict | None = None) -> Flask:
         exports=ExportCache(data_dir, int(app.config["LEVEL_EXPORT_CACHE_BYTES"])),
     )
 
-    from sillmark.web import api, auth, pages, reach, site_admin, tiles, uploads
+    from sillmark.web import (
+        api,
+        auth,
+        pages,
+        reach,
+        scenarios,
+        site_admin,
+        tiles,
+        uploads,
+    )
 
     auth.init_app(app)  # first: its check runs before every other hook
     app.register_blueprint(pages.bp)
@@ -161,6 +170,7 @@ def create_app(test_config: dict | None = None) -> Flask:
     app.register_blueprint(uploads.bp)
     app.register_blueprint(reach.bp)
     app.register_blueprint(site_admin.bp)
+    app.register_blueprint(scenarios.bp)
     _install_handlers(app)
 
     runner.start()

@@ -23,7 +23,7 @@ from typing import Any
 from sillmark.errors import SillmarkError
 
 DB_NAME = "sillmark.sqlite3"
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 # Run states.
 QUEUED = "queued"
@@ -66,7 +66,8 @@ CREATE TABLE IF NOT EXISTS runs (
     message       TEXT NOT NULL DEFAULT '',
     settings      TEXT NOT NULL,       -- JSON snapshot of the site settings used
     summary       TEXT,                -- JSON figures after success
-    worker_pid    INTEGER
+    worker_pid    INTEGER,
+    scenario_id   INTEGER              -- set for the run of a scenario (never a site's current run)
 );
 CREATE INDEX IF NOT EXISTS runs_by_site ON runs(site_id, id);
 CREATE TABLE IF NOT EXISTS asset_sets (
@@ -79,8 +80,23 @@ CREATE TABLE IF NOT EXISTS asset_sets (
     status_counts  TEXT NOT NULL,      -- JSON
     active         INTEGER NOT NULL DEFAULT 1
 );
+CREATE TABLE IF NOT EXISTS scenarios (
+    id             INTEGER PRIMARY KEY,
+    site_id        INTEGER NOT NULL REFERENCES sites(id) ON DELETE CASCADE,
+    name           TEXT NOT NULL,
+    created_utc    TEXT NOT NULL,
+    edits_file     TEXT NOT NULL,      -- path inside the site folder
+    edits_name     TEXT NOT NULL,      -- the name the user's file had, or where the edits came from
+    edit_count     INTEGER NOT NULL,
+    base_run       INTEGER NOT NULL,   -- the site run whose settings the scenario was analysed with
+    run_id         INTEGER             -- the scenario's own run
+);
+CREATE INDEX IF NOT EXISTS scenarios_by_site ON scenarios(site_id, id);
 """
 
+
+#: Columns added to ``runs`` in schema version 3.
+_RUN_COLUMNS_V3 = (("scenario_id", "INTEGER"),)
 
 #: Columns added to ``sites`` after schema version 1: (name, declaration). A database
 #: made by an earlier version gets them on start (see :func:`initialise`).
@@ -194,12 +210,14 @@ def _migrate(conn: sqlite3.Connection) -> None:
 
     Version 2 adds the vertical datum and the DEM's chosen CRS and band to
     ``sites``; existing sites keep NULL there (datum not stated; the file's own
-    CRS and its single band).
+    CRS and its single band). Version 3 adds the ``scenarios`` table (made by
+    the schema script) and ``runs.scenario_id``, NULL for the runs of a site.
     """
-    have = {row["name"] for row in conn.execute("PRAGMA table_info(sites)").fetchall()}
-    for name, declaration in _SITE_COLUMNS_V2:
-        if name not in have:
-            conn.execute(f"ALTER TABLE sites ADD COLUMN {name} {declaration}")
+    for table, columns in (("sites", _SITE_COLUMNS_V2), ("runs", _RUN_COLUMNS_V3)):
+        have = {row["name"] for row in conn.execute(f"PRAGMA table_info({table})").fetchall()}
+        for name, declaration in columns:
+            if name not in have:
+                conn.execute(f"ALTER TABLE {table} ADD COLUMN {name} {declaration}")
 
 
 def get_setting(conn: sqlite3.Connection, key: str, default: str | None = None) -> str | None:
@@ -264,11 +282,12 @@ def _storable(row_id: Any) -> bool:
 
 
 def latest_run(conn: sqlite3.Connection, site_id: int) -> sqlite3.Row | None:
+    """The site's latest analysis run (scenario runs are not the site's own)."""
     if not _storable(site_id):
         return None
     return conn.execute(
-        "SELECT * FROM runs WHERE site_id = ? ORDER BY id DESC LIMIT 1", (site_id,)
-    ).fetchone()
+        "SELECT * FROM runs WHERE site_id = ? AND scenario_id IS NULL ORDER BY id DESC LIMIT 1",
+        (site_id,)).fetchone()
 
 
 def get_run(conn: sqlite3.Connection, run_id: int) -> sqlite3.Row | None:

@@ -114,7 +114,7 @@ def is_large(shape: tuple[int, int], settings: dict) -> bool:
 
 
 def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
-                  progress) -> Analysis:
+                  progress, *, edits=None) -> Analysis:
     """Analyse the DEM file tile by tile into ``results``, reporting the steps.
 
     Parameters
@@ -130,6 +130,8 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
     results : Path
         The run's ``results/`` folder.
     progress : sillmark.web.worker._Progress
+    edits : path, optional
+        A scenario's edits file (culverts only, tile by tile; see :func:`sillmark.run.analyse`).
 
     Returns
     -------
@@ -142,7 +144,7 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
     return analyse(dem_path, specs, results, executor=tracker, store="files", tile_size=tile,
                    connectivity=int(settings["connectivity"]),
                    vertical_unit=settings["vertical_unit"], progress=tracker.step,
-                   window_cells=window)
+                   window_cells=window, edits=edits)
 
 
 def _depression_ids(path: Path, cols: int, r0: int, r1: int) -> np.ndarray:

@@ -42,7 +42,15 @@ from sillmark.grid.outlets import build_outlets
 from sillmark.io.export import FILE_NAMES
 from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.run import analyse
-from sillmark.web import arrays, db, layout, reach_inputs, relief, tiled_run
+from sillmark.web import (
+    arrays,
+    db,
+    layout,
+    reach_inputs,
+    relief,
+    scenario_run,
+    tiled_run,
+)
 
 log = logging.getLogger("sillmark.worker")
 
@@ -218,6 +226,8 @@ def _user_names(conn, run, message: str) -> str:
         settings = db.loads(run["settings"], {})
         pairs = [(settings.get("dem_file"), site["original_name"] if site else None)]
         pairs += [(o.get("file"), o.get("name")) for o in settings.get("outlets", []) if o.get("file")]
+        scenario = settings.get("scenario") or {}
+        pairs.append((scenario.get("edits_file"), scenario.get("edits_name")))
         for stored, shown in pairs:
             if stored and shown:
                 message = message.replace(Path(stored).name, shown)
@@ -350,6 +360,13 @@ def _run(conn, data: Path, run, folder: Path) -> None:
                        max_cells=int(settings.get("max_cells") or 400_000_000))
         grid = dem
     rows, cols = grid.shape
+    if settings.get("scenario"):
+        summary = scenario_run.analyse_scenario(site_folder, settings, folder, progress, grid,
+                                                _specs(site_folder, settings["outlets"]))
+        progress.start("finishing")
+        summary["seconds"] = round(time.perf_counter() - t0, 2)
+        _finish(conn, run, summary, current=False)
+        return
 
     writer = arrays.ArrayWriter(folder / "arrays")
     # The elevations for the map, then the relief drawn from them: both need
@@ -449,6 +466,12 @@ def _run(conn, data: Path, run, folder: Path) -> None:
 
     progress.start("finishing")
     summary["seconds"] = round(time.perf_counter() - t0, 2)
+    _finish(conn, run, summary, current=True)
+
+
+def _finish(conn, run, summary: dict, *, current: bool) -> None:
+    """Mark the run done; a site's own run (``current``) also becomes the site's current run."""
+    run_id = run["id"]
     with db.transaction(conn):
         # Only a run still ours becomes current: one the server queued again while this
         # worker was finishing is run afresh, and its folder is cleared.
@@ -459,7 +482,8 @@ def _run(conn, data: Path, run, folder: Path) -> None:
         ).rowcount
         if done != 1:
             raise RunTakenBack(f"run {run_id} was taken back before it could finish")
-        conn.execute("UPDATE sites SET current_run = ? WHERE id = ?", (run_id, run["site_id"]))
+        if current:
+            conn.execute("UPDATE sites SET current_run = ? WHERE id = ?", (run_id, run["site_id"]))
     log.info("run %s done in %.2f s", run_id, summary["seconds"])
 
 

@@ -89,6 +89,22 @@
       text: "Download as an edits file (GeoJSON)" });
     button.addEventListener("click", function () { download(b.edits); });
     out.appendChild(button);
+    if (!document.getElementById("scenario-form") || document.getElementById("scenario-form").hidden) { return; }
+    // Save as a named scenario of the site: analysed in the background, then compared with it.
+    var name = S.el("input", { type: "text", id: "barrier-scenario-name", maxlength: "80",
+      value: "barrier at " + S.fixed(b.level, 2) + " " + unit, "aria-label": "Scenario name" });
+    var save = S.el("button", { class: "button", type: "button", id: "barrier-save-scenario",
+      text: "Save as scenario" });
+    save.addEventListener("click", function () {
+      S.show($("barrier-error"), "");
+      S.getJSON(base + "/scenarios", {
+        method: "POST", headers: { "Content-Type": "application/json" },
+        body: JSON.stringify({ name: name.value, source: "barrier planner", edits: b.edits }),
+      }).then(function () {
+        document.dispatchEvent(new CustomEvent("sillmark:scenario-added"));
+      }).catch(function (err) { S.show($("barrier-error"), err.message); });
+    });
+    out.appendChild(S.el("p", { class: "small" }, [name, " ", save]));
   }
 
   $("barrier-form").addEventListener("submit", function (ev) {
