@@ -233,9 +233,14 @@ def hierarchy_of_cells(
     spill_col_all[top_ids - 1] = spill_col
     spill_row, spill_col = spill_row_all, spill_col_all
     subtree_size = size_old[old].astype(np.int32)
-    depression = np.zeros(n, dtype=np.int32)
-    for d, top in enumerate(top_ids, start=1):
-        depression[top - subtree_size[top - 1] : top] = d
+    # Each depression's nodes are one run of post-order ids ending at its top:
+    # the runs, in id order, repeat their depression number.
+    run_start = top_ids - subtree_size[top_ids - 1]
+    in_id_order = np.argsort(run_start, kind="stable")
+    depression = np.repeat((in_id_order + 1).astype(np.int32),
+                           subtree_size[top_ids - 1][in_id_order])
+    if depression.shape[0] != n:
+        raise AssertionError("depression hierarchy: the trees do not cover the nodes")  # pragma: no cover
 
     # Children lists in new ids: post-order numbers siblings in pit order.
     by_parent = np.argsort(parent, kind="stable")
