@@ -41,6 +41,7 @@ from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.grid.outlets import build_outlets
 from sillmark.io.export import FILE_NAMES
 from sillmark.io.geotiff import BLOCK_ROWS
+from sillmark.products.significance import site_minimum
 from sillmark.run import analyse
 from sillmark.web import arrays, db, layout, reach_inputs, relief, tiled_run
 
@@ -377,8 +378,10 @@ def _run(conn, data: Path, run, folder: Path) -> None:
 
     results = folder / "results"
     specs = _specs(site_folder, settings["outlets"])
+    listing = significance_options(settings, grid.vertical_unit)
     if large:
-        analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress)
+        analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress,
+                                           listing=listing)
         progress.start("writing result files")  # written already, tile by tile
         sources = tiled_run.result_rows(results, cols)
     else:
@@ -396,7 +399,7 @@ def _run(conn, data: Path, run, folder: Path) -> None:
 
         # The engine, then every result file, moved into place together.
         analysis = analyse(dem, outlets, results, connectivity=connectivity,
-                           progress=file_progress,
+                           progress=file_progress, **listing,
                            **reach_inputs.analyse_inputs(site_folder, settings))
         result = analysis.result
         sources = {name: (lambda r0, r1, a=getattr(result, name): a[r0:r1])
@@ -436,6 +439,8 @@ def _run(conn, data: Path, run, folder: Path) -> None:
         "lonlat_bounds": lonlat_bounds(grid),
         "cell_metres": float(min(np.min(dx_m), dy_m)),
         "seconds": None,
+        # The minimum, where it comes from and the counts (sillmark.io.summary).
+        "significance": analysis.significance,
     }
     for key in ("elevation_min", "elevation_max", "onset_min", "onset_max", "highest_spill"):
         if summary[key] is not None and not math.isfinite(summary[key]):
@@ -461,6 +466,15 @@ def _run(conn, data: Path, run, folder: Path) -> None:
             raise RunTakenBack(f"run {run_id} was taken back before it could finish")
         conn.execute("UPDATE sites SET current_run = ? WHERE id = ?", (run_id, run["site_id"]))
     log.info("run %s done in %.2f s", run_id, summary["seconds"])
+
+
+def significance_options(settings: dict, unit) -> dict:
+    """The significance options of :func:`sillmark.run.analyse` for a run's settings: the
+    minimum from the vertical accuracy the user stated, else the default (as the
+    command line's ``--vertical-accuracy``)."""
+    accuracy = settings.get("vertical_accuracy")
+    return {"minimum": site_minimum(vertical_accuracy=accuracy, unit=unit),
+            "accuracy_stated": accuracy is not None}
 
 
 def main(argv: list[str] | None = None) -> int:  # pragma: no cover - manual use
