@@ -68,9 +68,9 @@ from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
+from sillmark.io.hierarchy_writer import curves_summary
 from sillmark.io.reach_files import add_to_summary
 from sillmark.io.readme import README_NAME, write_readme
-from sillmark.io.hierarchy_writer import curves_summary
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.styles import write_styles
 from sillmark.io.summary import (
