@@ -61,8 +61,10 @@ _START = dict(PHASES)
 _NEXT = {name: (PHASES[k + 1][1] if k + 1 < len(PHASES) else 100) for k, (name, _) in enumerate(PHASES)}
 
 
-#: Files an in-memory analysis writes: every result file and the folder's README.txt.
-_FILES_WRITTEN = len(FILE_NAMES) + 1
+#: Steps an in-memory analysis reports while writing: the significance of its
+#: depressions (the web runs always have a minimum), every result file and the
+#: folder's README.txt.
+_FILES_WRITTEN = len(FILE_NAMES) + 2
 
 #: Least time between two progress writes within a phase, in seconds.
 PROGRESS_INTERVAL = 0.25

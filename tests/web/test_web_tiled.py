@@ -195,7 +195,7 @@ def test_in_memory_file_progress_spreads_over_every_result_file(fresh, lowbank_t
     _, client = fresh
     analysed_site(client, lowbank_tif, assets=False)
     assert len(FILE_NAMES) == 11
-    files = len(FILE_NAMES) + 1  # and README.txt
+    files = len(FILE_NAMES) + 2  # the significance step first, and README.txt
     assert seen == sorted(seen) and seen[-1] == 92.0 and seen.count(92.0) == 1
     starts = {round(62 + 30 * k / files, 1) for k in range(files)}
     assert starts <= set(seen)
