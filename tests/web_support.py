@@ -119,8 +119,11 @@ def upload_dem(client: Client, path: Path, *, name: str | None = None):
 
 
 def confirm(client: Client, site_id: int, *, unit: str = "m", outlets=("edge",), connectivity="8",
-            water: tuple[bytes, str] | None = None, name: str | None = None):
+            water: tuple[bytes, str] | None = None, name: str | None = None,
+            vertical_accuracy: str | None = None):
     data = {"vertical_unit": unit, "outlet": list(outlets), "connectivity": connectivity}
+    if vertical_accuracy is not None:
+        data["vertical_accuracy"] = vertical_accuracy
     if name is not None:
         data["name"] = name
     if water is not None:
@@ -129,11 +132,12 @@ def confirm(client: Client, site_id: int, *, unit: str = "m", outlets=("edge",),
                        content_type="multipart/form-data", headers={"Accept": "application/json"})
 
 
-def analysed_site(client: Client, dem_path: Path, *, assets: bool = True) -> int:
+def analysed_site(client: Client, dem_path: Path, *, assets: bool = True,
+                  vertical_accuracy: str | None = None) -> int:
     r = upload_dem(client, dem_path)
     assert r.status_code == 201, r.get_data(as_text=True)
     site_id = r.get_json()["site_id"]
-    r = confirm(client, site_id)
+    r = confirm(client, site_id, vertical_accuracy=vertical_accuracy)
     assert r.status_code == 202, r.get_data(as_text=True)
     status = client.get(f"/api/sites/{site_id}/status").get_json()
     assert status["state"] == "ready", status

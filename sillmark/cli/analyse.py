@@ -140,10 +140,6 @@ def run_analyse(args: argparse.Namespace) -> int:
     from sillmark.run import analyse
 
     if args.tiles is not None:
-        if args.vertical_accuracy is not None or args.full_inventory:
-            option = "--vertical-accuracy" if args.vertical_accuracy is not None else "--full-inventory"
-            raise InvalidParameter(f"{option} applies to the in-memory engine; the tiled engine "
-                                   "(--tiles) lists every depression: drop one of them")
         return _run_analyse_tiled(args)
     if args.scheduler is not None or args.workers is not None:
         option = "--scheduler" if args.scheduler is not None else "--workers"
@@ -231,12 +227,14 @@ _HIERARCHY_STEPS = {"hierarchy": "depression hierarchy", "hierarchy_files": "for
 
 
 def tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progress: Progress,
-                  *, derived: bool = False):
+                  *, derived: bool = False, listing: dict | None = None):
     """Run :func:`sillmark.run.analyse` tile by tile on the cluster the options name; return
     the run, the DEM's grid and a line naming the engine.
 
     ``derived``: also write the depression outlines and the hierarchy files (on
-    the same cluster)."""
+    the same cluster); ``listing``: the significance options of
+    :func:`sillmark.run.analyse` (``minimum``, ``accuracy_stated``,
+    ``full_inventory``) for them."""
     from sillmark.engine.executors import dask_executor
     from sillmark.errors import InvalidParameter
     from sillmark.run import analyse
@@ -265,7 +263,7 @@ def tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progres
             band=args.band, vertical_unit=args.vertical_unit, crs=args.crs, progress=step,
             derived=derived, profile=getattr(args, "profile", None),
             refuges=getattr(args, "refuge", None), roads=getattr(args, "roads", None),
-            edits=getattr(args, "edits", None),
+            edits=getattr(args, "edits", None), **(listing or {}),
         )
     where = f"the cluster at {args.scheduler}" if args.scheduler else "a local cluster"
     engine = (f"Engine: tiled, {run.tiles:,} tiles of up to {run.tile_size:,} x "
@@ -279,15 +277,26 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
     hierarchy files in windows of depressions on the same cluster."""
     import types
 
+    from sillmark.grid.dem_grid import read_dem_grid
+    from sillmark.products.significance import site_minimum
+
     show = not args.quiet and sys.stderr.isatty()
     progress = Progress(show, phases=(*TILED_STEPS, "outlines", *_HIERARCHY_STEPS))
     out_dir = Path(args.out)
+    # The minimum is in the DEM's vertical unit: read it from the file's header.
+    unit = read_dem_grid(args.dem, band=args.band, vertical_unit=args.vertical_unit,
+                         crs=args.crs).vertical_unit
+    listing = {"minimum": site_minimum(vertical_accuracy=args.vertical_accuracy, unit=unit),
+               "accuracy_stated": args.vertical_accuracy is not None,
+               "full_inventory": args.full_inventory}
     try:
-        run, grid, engine = tiled_engine(args, args.dem, out_dir, progress, derived=True)
+        run, grid, engine = tiled_engine(args, args.dem, out_dir, progress, derived=True,
+                                         listing=listing)
     finally:
         progress.close()
     outlets = types.SimpleNamespace(sources=run.outlet_sources, count=run.outlet_cells)
-    lines = summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout, run.hierarchy)
+    lines = summary_lines(run, grid, outlets, out_dir, run.files, sys.stdout, run.hierarchy,
+                          significance=run.significance)
     lines[2:2] = [engine] + edit_lines(run)
     lines[-1:-1] = reach_lines(run, grid)
     for line in lines:

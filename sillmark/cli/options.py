@@ -298,7 +298,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     _add_tiled_options(analyse, "analyse in tiles of N x N cells (e.g. 4096) on a Dask cluster; "
                        "the same files as without --tiles (the hierarchy files from "
-                       "windows of depressions), listing every depression")
+                       "windows of depressions), with the same significance minimum")
     reach = analyse.add_argument_group("a sloped river and places cut off")
     reach.add_argument(
         "--profile", default=None, metavar="FILE",

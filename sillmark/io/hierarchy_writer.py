@@ -83,6 +83,7 @@ from sillmark.products.hierarchy_windows import (
     hierarchy_batches,
     tree_depth,
 )
+from sillmark.products.significance import SiteMinimum, significance
 from sillmark.products.source import ArraySource
 from sillmark.units import VerticalUnit
 
@@ -128,6 +129,13 @@ class HierarchyFiles:
         0 when nothing was thinned, else the most rows a node kept.
     curve_nodes_left_out : int
         Listed nodes without rows (only when three rows each pass the cap).
+    significant, significant_top : int
+        With a ``minimum``: the significant depressions (hierarchy nodes), and
+        how many of them are nested in no other; 0 without.
+    whole : bool array or None
+        With a ``minimum``: per depression of the depression table (index
+        ``id - 1``), whether the depression as a whole (its top node) is
+        significant; the rows the tables and layers list. None without.
     """
 
     files: list
@@ -143,6 +151,9 @@ class HierarchyFiles:
     curve_rows_natural: int = 0
     curve_rows_budget: int = 0
     curve_nodes_left_out: int = 0
+    significant: int = 0
+    significant_top: int = 0
+    whole: np.ndarray | None = None
 
     def __len__(self) -> int:
         return self.nodes
@@ -160,6 +171,8 @@ class _Job:
     max_points: int
     step_rows: int
     max_rows: int
+    minimum: SiteMinimum | None = None
+    significant_only: bool = False
 
     def part(self, k: int, what: str) -> str:
         return os.path.join(self.scratch, f"batch{k:06d}_{what}")
@@ -209,13 +222,24 @@ def _built(job: _Job, first: int, last: int, window: tuple[int, int, int, int],
         connectivity=job.connectivity, unit=VerticalUnit.parse(job.unit),
         transform=job.transform, segments=False,  # the curve rows do not read them
     )
-    return hierarchy, _counts(hierarchy)
+    return hierarchy, _counts(hierarchy, job)
 
 
-def _counts(hierarchy) -> dict:
+def _counts(hierarchy, job: _Job) -> dict:
+    """The batch's counts (and, with the job's minimum, its significant nodes)."""
     t = hierarchy.nodes
-    return {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
-            "depth": tree_depth(t.parent)}
+    counts = {"nodes": len(t), "pits": int(np.count_nonzero(t.is_leaf)),
+              "depth": tree_depth(t.parent)}
+    if job.minimum is not None:
+        # Significance is decided tree by tree (each tree is one depression and a
+        # batch holds whole depressions), so the batch's answer is the site's.
+        sig = significance(hierarchy, job.minimum)
+        counts["significant"] = len(sig)
+        counts["significant_top"] = int(np.count_nonzero(sig.table.parent == 0))
+        counts["whole"] = sig.depression_to_significant[1:] > 0
+        if job.significant_only:
+            counts["listed"] = sig.significant
+    return counts
 
 
 def _curve_part(job: _Job, hierarchy, listed: np.ndarray | None) -> tuple[dict, dict]:
@@ -251,11 +275,18 @@ def _hierarchy_task(job: _Job, k: int, first: int, last: int, window: tuple[int,
     hierarchy, counts = _built(job, first, last, window, areas, spill_elevation, spill_row,
                                spill_col, cell_count)
     t = hierarchy.nodes
+    mine = counts.pop("listed", None)  # the batch's significant nodes, with a minimum
+    if mine is not None:
+        listed = mine
     if nodes:
-        _save(job.part(k, "nodes.npz"), {f"node_{name}": getattr(t, name) for name in _NODE_FIELDS})
+        arrays = {f"node_{name}": getattr(t, name) for name in _NODE_FIELDS}
+        if mine is not None:
+            arrays["listed"] = mine
+        _save(job.part(k, "nodes.npz"), arrays)
     if curves:
         tables, counts["thinning"] = _curve_part(job, hierarchy, listed)
         _save(job.part(k, "curves.npz"), tables)
+    counts["listed_count"] = len(t) if listed is None else int(np.count_nonzero(listed))
     return {**counts, "task_s": time.perf_counter() - t0}
 
 
@@ -308,6 +339,8 @@ def _format_task(job: _Job, k: int, node_offset: int, depression_offset: int, pl
     t0 = time.perf_counter()
     with np.load(job.part(k, "nodes.npz"), allow_pickle=False) as saved:
         table = HierarchyTable(**{name: saved[f"node_{name}"] for name in _NODE_FIELDS})
+        if listed is None and "listed" in saved:  # decided by the batch's own task
+            listed = saved["listed"]
     with np.load(job.part(k, "curves.npz"), allow_pickle=False) as saved:
         tables = dict(saved)
     tables["volume"] = table.volume_m3
@@ -330,12 +363,15 @@ def _serial_batches(job: _Job, calls: list, placed: Any, report, listed,
     for job_, k, first, *rest in calls:
         t0 = time.perf_counter()
         if prebuilt is not None:
-            hierarchy, counts = prebuilt, _counts(prebuilt)
+            hierarchy, counts = prebuilt, _counts(prebuilt, job_)
             prebuilt = None
         else:
             hierarchy, counts = _built(job_, first, *rest)
         t = hierarchy.nodes
-        mine = None if listed is None else listed[nodes:nodes + len(t)]
+        mine = counts.pop("listed", None)
+        if mine is None and listed is not None:
+            mine = listed[nodes:nodes + len(t)]
+        counts["listed_count"] = len(t) if mine is None else int(np.count_nonzero(mine))
         tables, counts["thinning"] = _curve_part(job_, hierarchy, mine)
         tables["volume"] = t.volume_m3
         del hierarchy
@@ -378,6 +414,8 @@ def write_hierarchy_files(
     listed: np.ndarray | None = None,
     max_curve_rows: int = hc.DEFAULT_MAX_CURVE_ROWS,
     hierarchy: "tuple[DepressionHierarchy, np.ndarray] | None" = None,
+    minimum: SiteMinimum | None = None,
+    full_inventory: bool = False,
 ) -> HierarchyFiles:
     """Write the three depression-hierarchy files of a result into ``out_dir``.
 
@@ -420,6 +458,16 @@ def write_hierarchy_files(
         What :func:`sillmark.products.hierarchy_windows.whole_hierarchy` gave for
         this source (held in memory, default window, no ``map``), used in place
         of building the one batch's hierarchy again.
+    minimum : SiteMinimum, optional, keyword-only
+        A significance minimum (:func:`sillmark.products.significance.site_minimum`):
+        each batch decides which of its nodes are significant
+        (:func:`sillmark.products.significance.significance` on the batch's
+        hierarchy: the answer depends on a node's own tree only, and a batch
+        holds whole trees), and those are the listed nodes, as ``listed``
+        would give them. The counts and the depressions listed as a whole
+        come back in :class:`HierarchyFiles`. Not with ``listed``.
+    full_inventory : bool, keyword-only
+        With a ``minimum``: list every node still (the counts are made all the same).
 
     Returns
     -------
@@ -470,6 +518,13 @@ def write_hierarchy_files(
         if listed.dtype != np.bool_ or listed.ndim != 1:
             raise InvalidParameter("listed must be a 1-D boolean array, one entry per "
                                    f"hierarchy node, not {listed.dtype} of shape {listed.shape}")
+    if minimum is not None:
+        if listed is not None:
+            raise InvalidParameter("give either the listed nodes or a significance minimum, "
+                                   "not both")
+        if not isinstance(minimum, SiteMinimum):
+            raise InvalidParameter(f"the minimum must come from site_minimum(), not "
+                                   f"{type(minimum).__name__}")
     out = Path(out_dir)
     if not out.is_dir():
         raise InvalidParameter(f"the output folder {out} does not exist or is a file; give a folder")
@@ -508,7 +563,8 @@ def write_hierarchy_files(
             raise InvalidParameter("'listed' must be a 1-D boolean array, one value per hierarchy node")
     job = _Job(layers=_task_layers(source), transform=grid.transform, scratch=str(scratch),
                connectivity=connectivity, unit=unit.value, max_points=hx.MAX_CURVE_POINTS,
-               step_rows=hx.STEP_ROWS, max_rows=cap)
+               step_rows=hx.STEP_ROWS, max_rows=cap, minimum=minimum,
+               significant_only=minimum is not None and not full_inventory)
     empty = _empty_hierarchy(job)
     placed = _Placed(grid.crs)
     try:
@@ -556,6 +612,7 @@ def write_hierarchy_files(
                                   [(*c, False, True, mine) for c, mine in zip(calls, slices)])
                 for b, more in zip(built, again):
                     b["thinning"] = more["thinning"]
+                    b["listed_count"] = more["listed_count"]
                     b["task_s"] += more["task_s"]
                 times["curves"] = time.perf_counter() - t0
             t0 = time.perf_counter()
@@ -566,7 +623,7 @@ def write_hierarchy_files(
             curve_rows = sum(f["curve_rows"] for f in formatted)
             times["format"] = time.perf_counter() - t0
         times["batch_tasks"] = sum(b["task_s"] for b in built)
-        listed_count = nodes if listed is None else int(np.count_nonzero(listed))
+        listed_count = sum(b["listed_count"] for b in built)
 
         t0 = time.perf_counter()
         files = _concatenate(out, job, grid, len(built), listed_count, nodes, empty, thinning,
@@ -576,12 +633,18 @@ def write_hierarchy_files(
         if not keep_scratch:
             shutil.rmtree(scratch, ignore_errors=True)
     windows = (batches[:, 3] - batches[:, 2]) * (batches[:, 5] - batches[:, 4])
+    found = {}
+    if minimum is not None:
+        found = {"significant": sum(b["significant"] for b in built),
+                 "significant_top": sum(b["significant_top"] for b in built),
+                 "whole": np.concatenate([np.zeros(0, bool)] + [b["whole"] for b in built])}
     return HierarchyFiles(
         files=files, nodes=nodes, pits=sum(b["pits"] for b in built),
         depth=max((b["depth"] for b in built), default=0), batches=len(built),
         window_cells=int(windows.max(initial=0)), seconds=times, listed=listed_count,
         curve_rows=curve_rows, curve_rows_cap=cap, curve_rows_natural=thinning.natural_rows,
         curve_rows_budget=thinning.budget, curve_nodes_left_out=_left_out(thinning, built),
+        **found,
     )
 
 

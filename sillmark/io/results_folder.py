@@ -281,15 +281,17 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
 
 
 def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike, *,
-                            window: int = DEFAULT_WINDOW) -> list[Path]:
+                            window: int = DEFAULT_WINDOW, rows: np.ndarray | None = None,
+                            extra: dict | None = None) -> list[Path]:
     """Write ``depressions.geojson`` into a folder :func:`sillmark.run.analyse` wrote tile by tile.
 
     ``run`` is that call's :class:`sillmark.run.Analysis` (its depressions,
     connectivity, cell counts, outlets and files).
 
     The outlines are traced from the folder's ``depression_id.tif`` window by
-    window (:func:`sillmark.io.geojson.write_depressions_geojson`). Then
-    ``summary.json`` is written again, last, listing the outlines among the
+    window (:func:`sillmark.io.geojson.write_depressions_geojson`); ``rows``
+    (boolean per depression) picks those written, e.g. the significant ones,
+    and ``extra`` adds properties, as there. Then ``summary.json`` is written again, last, listing the outlines among the
     files (its ``engine`` member kept). Returns every file of the folder's run
     in the order of :data:`sillmark.io.summary.FILE_NAMES`.
     """
@@ -300,7 +302,8 @@ def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike,
         outlet_count=run.outlet_cells, depressions=table_columns(run.depressions, grid),
         elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
     )
-    outlines = write_depressions_geojson(source, out / name, window=window)
+    outlines = write_depressions_geojson(source, out / name, window=window, rows=rows,
+                                         extra=extra)
     by_name = {p.name: Path(p) for p in run.files}
     by_name[name] = outlines
     summary_path = out / "summary.json"
@@ -318,7 +321,8 @@ def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike,
 def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = None,
                         band: int | None = None, map: Callable | None = None,
                         progress: Callable[[str, int, int], None] | None = None,
-                        window_cells: int = DEFAULT_WINDOW_CELLS) -> HierarchyFiles:
+                        window_cells: int = DEFAULT_WINDOW_CELLS,
+                        minimum: Any = None, full_inventory: bool = False) -> HierarchyFiles:
     """Write the three depression-hierarchy files into a folder ``sillmark analyse`` wrote.
 
     The files come from :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`
@@ -339,8 +343,12 @@ def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = No
         fill depth block by block.
     band : int, optional, keyword-only
         Band of the DEM, without ``grid``.
-    map, progress, window_cells
-        As for :func:`~sillmark.io.hierarchy_writer.write_hierarchy_files`.
+    map, progress, window_cells, minimum, full_inventory
+        As for :func:`~sillmark.io.hierarchy_writer.write_hierarchy_files`: with
+        a significance ``minimum`` each window of depressions decides its own
+        significant nodes, and the result says which depressions are listed
+        as a whole (``whole``). ``depressions.csv`` must still hold every
+        depression (as the engine wrote it).
 
     Returns
     -------
@@ -373,7 +381,8 @@ def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = No
             elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
         )
     written = write_hierarchy_files(source, out, map=map, progress=progress,
-                                    window_cells=window_cells)
+                                    window_cells=window_cells, minimum=minimum,
+                                    full_inventory=full_inventory)
     _list_in_summary(out, list(HIERARCHY_FILE_NAMES))
     return written
 

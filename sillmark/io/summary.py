@@ -24,7 +24,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from sillmark.engine.flood import SpillResult
     from sillmark.grid.dem import DEM
     from sillmark.grid.outlets import Outlets
-    from sillmark.products.significance import Significance
+    from sillmark.products.significance import Significance, SiteMinimum
 
 
 #: Prefix of the temporary folder a run writes into before its files are moved
@@ -87,12 +87,29 @@ def significance_member(sig: "Significance", *, all_depressions: int, accuracy_s
     ``accuracy_stated``: the vertical accuracy was given by the user (else it is
     :data:`sillmark.products.significance.DEFAULT_VERTICAL_ACCURACY_M`).
     """
+    return significance_counts_member(
+        sig.minimum, significant=len(sig),
+        significant_top=int(np.count_nonzero(sig.table.parent == 0)),
+        hierarchy_nodes=int(sig.significant.shape[0]), all_depressions=all_depressions,
+        accuracy_stated=accuracy_stated, full_inventory=full_inventory)
+
+
+def significance_counts_member(minimum: "SiteMinimum", *, significant: int, significant_top: int,
+                               hierarchy_nodes: int, all_depressions: int,
+                               accuracy_stated: bool, full_inventory: bool = False) -> dict:
+    """:func:`significance_member` from the minimum and the counts alone.
+
+    For a hierarchy built in windows of depressions (the tiled engine), where
+    no one process holds the whole :class:`~sillmark.products.significance.Significance`:
+    ``significant`` depressions in all, ``significant_top`` of them not nested
+    in another, of ``hierarchy_nodes`` nodes and ``all_depressions`` depressions.
+    """
     from sillmark.products.significance import (
         DEFAULT_VERTICAL_ACCURACY_M,
         DEPTH_PER_ACCURACY,
     )
 
-    m = sig.minimum
+    m = minimum
     unit = m.unit
     if np.isnan(m.vertical_accuracy):
         source = "given directly as a depth"
@@ -110,7 +127,6 @@ def significance_member(sig: "Significance", *, all_depressions: int, accuracy_s
                       "standard); state the survey's own accuracy to change it")
         accuracy = {"value": float(m.vertical_accuracy), "unit": unit.value,
                     "stated": bool(accuracy_stated)}
-    top = sig.table.parent == 0
     return {
         "min_depth": {"value": float(m.min_depth), "unit": unit.value},
         "min_area_m2": float(m.min_area_m2),
@@ -119,10 +135,10 @@ def significance_member(sig: "Significance", *, all_depressions: int, accuracy_s
         "source": source,
         "full_inventory": bool(full_inventory),
         "counts": {
-            "significant": len(sig),
-            "significant_top": int(np.count_nonzero(top)),
+            "significant": int(significant),
+            "significant_top": int(significant_top),
             "all_depressions": int(all_depressions),
-            "hierarchy_nodes": int(sig.significant.shape[0]),
+            "hierarchy_nodes": int(hierarchy_nodes),
         },
     }
 
@@ -191,22 +207,26 @@ def _summary_payload(path: Path, table, dem: "DEM", *, connectivity: int, unreac
 def write_table_summary(
     table, dem: "DEM", path: str | os.PathLike, *, connectivity: int, unreached_cells: int,
     valid_cells: int, outlet_sources, outlet_count: int, files: list[str] | None = None,
-    engine: dict | None = None,
+    engine: dict | None = None, significance: dict | None = None, curves: dict | None = None,
 ) -> Path:
     """:func:`write_summary` from a :class:`~sillmark.engine.flood.DepressionTable` and counts.
 
     For engines that never hold a :class:`~sillmark.engine.flood.SpillResult` (the tiled
     engine); ``engine`` is written as the member ``engine`` (how the run was made).
+    ``significance`` and ``curves`` as for :func:`write_summary`.
     """
     final = Path(path)
     names = list(files or [])
     if final.name not in names:
         names.append(final.name)
-    return write_json(final, _summary_payload(
+    payload = _summary_payload(
         final, table, dem, connectivity=connectivity, unreached_cells=unreached_cells,
         valid_cells=valid_cells, outlet_sources=outlet_sources, outlet_count=outlet_count,
-        files=names, engine=engine,
-    ))
+        files=names, engine=engine, significance=significance,
+    )
+    if curves is not None:
+        payload["depression_curves"] = curves
+    return write_json(final, payload)
 
 
 def write_summary(

@@ -68,11 +68,17 @@ from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
+from sillmark.io.hierarchy_writer import curves_summary
 from sillmark.io.reach_files import add_to_summary
 from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.styles import write_styles
-from sillmark.io.summary import FILE_NAMES, RUN_FOLDER_PREFIX, write_table_summary
+from sillmark.io.summary import (
+    FILE_NAMES,
+    RUN_FOLDER_PREFIX,
+    significance_counts_member,
+    write_table_summary,
+)
 from sillmark.io.vector_layers import vector_suffix
 from sillmark.products.significance import SiteMinimum
 from sillmark.run.reach import (
@@ -240,7 +246,9 @@ def analyse(
     minimum : SiteMinimum, optional
         The significance minimum (:func:`sillmark.products.significance.site_minimum`):
         depressions below it are not listed or mapped on their own, and only the
-        significant nodes get curves (a DEM in memory only). None lists every
+        significant nodes get curves. A DEM read tile by tile decides it window
+        by window of depressions while its hierarchy is built (needs
+        ``derived``), with the same files as in memory. None lists every
         depression.
     accuracy_stated : bool
         The minimum's vertical accuracy was given by the user, not the default.
@@ -274,10 +282,13 @@ def analyse(
     if store not in STORES:
         raise InvalidParameter(f"store must be one of {', '.join(STORES)}, not {store!r}")
     vector_suffix(vector_format, 0)  # refuse an unknown format before any work
-    if minimum is not None and not isinstance(dem, DEM):
+    if minimum is not None and not isinstance(minimum, SiteMinimum):
         raise InvalidParameter(
-            "the significance minimum needs the DEM in memory; the tiled engine lists every "
-            "depression (full inventory)")
+            f"the minimum must come from site_minimum(), not {type(minimum).__name__}")
+    if minimum is not None and not isinstance(dem, DEM) and not derived:
+        raise InvalidParameter(
+            "the significance minimum is decided on the depression hierarchy; a DEM read tile "
+            "by tile takes it only with derived=True (the outlines and hierarchy written too)")
     executor = ThreadExecutor() if executor is None else executor
     if roads is not None and refuges is None:
         raise InvalidParameter("roads limit the routes to refuges; give the refuges with them")
@@ -305,9 +316,11 @@ def analyse(
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
                                         connectivity, band, vertical_unit, crs, progress,
-                                        profile=profile, edits=edits)
+                                        profile=profile, edits=edits, minimum=minimum)
                 if derived:
-                    run = _add_derived(run, temporary, executor, progress, window_cells)
+                    run = _add_derived(run, temporary, executor, progress, window_cells,
+                                       dict(minimum=minimum, accuracy_stated=accuracy_stated,
+                                            full_inventory=full_inventory))
                 if profile is not None:
                     run = add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
@@ -368,7 +381,7 @@ def _close_folder(run: Analysis, folder: Path) -> Analysis:
     source = getattr(run.grid, "path", None)
     title = f"analysis of {Path(str(source)).name if source else 'a DEM'}"
     if run.result is None:
-        title += " (tiled engine, every depression listed)"
+        title += " (tiled engine)" if run.significance else " (tiled engine, every depression listed)"
     readme = write_readme(folder, [*names, summary.name], grid=run.grid, title=title,
                           connectivity=run.connectivity, significance=run.significance)
     by_name = {p.name: p for p in run.files}
@@ -429,11 +442,17 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
 
 
 def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, connectivity, band,
-                      vertical_unit, crs, progress, *, profile=None, edits=None) -> Analysis:
+                      vertical_unit, crs, progress, *, profile=None, edits=None,
+                      minimum=None) -> Analysis:
     tile = TILED_TILE_SIZE if tile_size is None else tile_size
     TilePlan(rows=1, cols=1, tile=tile)  # refuse a bad tile size and connectivity first
     directions(connectivity)
     grid = read_dem_grid(dem_path, band=band, vertical_unit=vertical_unit, crs=crs)
+    if minimum is not None and minimum.unit is not unit_of(grid):
+        raise InvalidParameter(
+            f"the minimum depth is in {minimum.unit.value} but the DEM's elevations are in "
+            f"{unit_of(grid).value}; make it with site_minimum(unit={unit_of(grid).value!r}) "
+            "(nothing was written)")
     placed = _placed_edits(edits, grid)
     if placed is not None and len(placed.culverts) < len(placed):
         ground = next(e for e in placed.items if e.kind != "culvert")
@@ -486,21 +505,57 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
 
 
 def _add_derived(run: Analysis, folder: Path, executor, progress,
-                 window_cells: int | None) -> Analysis:
-    """The outlines, then the hierarchy, from the folder window by window."""
+                 window_cells: int | None, listing: dict | None = None) -> Analysis:
+    """The hierarchy and the outlines, from the folder window by window.
+
+    With a significance minimum, the hierarchy comes first: each window of
+    depressions decides its significant nodes (the same answer as the whole
+    site's, since each tree is one depression), which gives the depressions
+    listed as a whole. Then ``depressions.csv`` and ``spill_points.geojson``
+    are written again with those rows (or with a ``significant`` column, for
+    the full inventory), the outlines traced for them, and ``summary.json``
+    gets the minimum and the counts: the files of the in-memory run.
+    """
+    listing = listing or {}
+    minimum = listing.get("minimum")
+    full_inventory = bool(listing.get("full_inventory"))
+    grid = run.grid
     t0 = time.perf_counter()
+    windows = {} if window_cells is None else {"window_cells": int(window_cells)}
+    hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=grid,
+                                    minimum=minimum, full_inventory=full_inventory, **windows)
+    rows = extra = member = None
+    if minimum is not None:
+        member = significance_counts_member(
+            minimum, significant=hierarchy.significant, significant_top=hierarchy.significant_top,
+            hierarchy_nodes=hierarchy.nodes, all_depressions=len(run.depressions),
+            accuracy_stated=bool(listing.get("accuracy_stated")), full_inventory=full_inventory)
+        if full_inventory:
+            extra = {"significant": hierarchy.whole}
+        else:
+            rows = hierarchy.whole
+        write_depression_table_csv(run.depressions, grid, folder / "depressions.csv", rows=rows,
+                                   extra=extra)
+        write_spill_points_table(run.depressions, grid, folder / "spill_points.geojson",
+                                 rows=rows)
     if progress is not None:
         progress("outlines", 0, 1)
-    files = add_depression_outlines(run, run.grid, folder)
+    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra)
     if progress is not None:
         progress("outlines", 1, 1)
-    windows = {} if window_cells is None else {"window_cells": int(window_cells)}
-    hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=run.grid,
-                                    **windows)
     names = {p.name: p for p in [*files, *hierarchy.files]}
+    ordered = [names[n] for n in FILE_NAMES if n in names]
+    summary = folder / FILE_NAMES[-1]
+    write_table_summary(
+        run.depressions, grid, summary, connectivity=run.connectivity,
+        unreached_cells=run.unreached_cells, valid_cells=run.valid_cells,
+        outlet_sources=run.outlet_sources, outlet_count=run.outlet_cells,
+        files=[p.name for p in ordered if p.name != summary.name],
+        engine={"kind": "tiled", "tile_size": run.tile_size, "tiles": run.tiles},
+        significance=member, curves=curves_summary(hierarchy))
     seconds = {**run.seconds, "outlines_hierarchy": time.perf_counter() - t0}
-    return dataclasses.replace(run, files=[names[n] for n in FILE_NAMES if n in names],
-                               hierarchy=hierarchy, seconds=seconds)
+    return dataclasses.replace(run, files=ordered, hierarchy=hierarchy, seconds=seconds,
+                               significance=member)
 
 
 def _write_file(flood: TiledFlood, grid, folder: str, what: str) -> list[str]:

@@ -22,6 +22,7 @@ from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import SEARCH_MAX, search_crs
 from sillmark.io.asset_files import write_assets_csv, write_assets_geojson
+from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.geotiff import tag_vertical_datum
 from sillmark.io.stage_files import (
     level_file_names,
@@ -171,7 +172,29 @@ def depressions(site_id: int):
     row, data = open_site(site_id)
     query = depression_index.table_query(request.args, None if level is None else float(level))
     return jsonify({"unit": data.unit.value, "unit_symbol": data.unit.symbol,
-                    **data.depressions.page(query), "caution": SCREENING_CAUTION, **_datum(row)})
+                    **data.depressions.page(query), "caution": SCREENING_CAUTION,
+                    "significance": data.summary.get("significance"),
+                    "full_inventory_csv": url_for("api.depressions_all_csv", site_id=site_id),
+                    **_datum(row)})
+
+
+@bp.get("/sites/<int:site_id>/depressions_all.csv")
+def depressions_all_csv(site_id: int):
+    """Every depression of the current run, those below the significance minimum too,
+    with a ``significant`` column (the full inventory; written on first request and
+    kept with the run)."""
+    _, data = open_site(site_id)
+    folder = layout.run_dir(services().data_dir, site_id, data.run_id) / "inventory"
+    path = folder / "depressions_all.csv"
+    if not path.is_file():
+        with _lock_for((site_id, data.run_id, "inventory")):
+            if not path.is_file():
+                folder.mkdir(parents=True, exist_ok=True)
+                listed = data.listed
+                extra = None if listed is None else {"significant": listed}
+                write_depression_table_csv(data.result.depressions, data.dem, path, extra=extra)
+    return send_file(path, mimetype="text/csv", as_attachment=True,
+                     download_name="depressions_all.csv")
 
 
 @bp.get("/sites/<int:site_id>/depressions/<int:depression_id>/curve")

@@ -52,7 +52,8 @@ CREATE TABLE IF NOT EXISTS sites (
     vertical_datum    TEXT,            -- named by the user (NULL: not stated)
     dem_crs           TEXT,            -- CRS the user gave a DEM without one ("EPSG:n")
     dem_band          INTEGER,         -- band the user chose in a file of several
-    dem_source        TEXT             -- the file as uploaded, when dem_file is a copy
+    dem_source        TEXT,            -- the file as uploaded, when dem_file is a copy
+    vertical_accuracy REAL             -- the DEM's RMSE as stated by the user (NULL: the default)
 );
 CREATE TABLE IF NOT EXISTS runs (
     id            INTEGER PRIMARY KEY,
@@ -105,6 +106,7 @@ _SITE_COLUMNS_V2 = (
     ("dem_crs", "TEXT"),
     ("dem_band", "INTEGER"),
     ("dem_source", "TEXT"),
+    ("vertical_accuracy", "REAL"),  # version 3
 )
 
 
@@ -211,7 +213,9 @@ def _migrate(conn: sqlite3.Connection) -> None:
     Version 2 adds the vertical datum and the DEM's chosen CRS and band to
     ``sites``; existing sites keep NULL there (datum not stated; the file's own
     CRS and its single band). Version 3 adds the ``scenarios`` table (made by
-    the schema script) and ``runs.scenario_id``, NULL for the runs of a site.
+    the schema script), ``runs.scenario_id`` (NULL for the runs of a site) and
+    ``sites.vertical_accuracy``, the DEM's vertical accuracy as the user stated
+    it (NULL: the default of the significance minimum).
     """
     for table, columns in (("sites", _SITE_COLUMNS_V2), ("runs", _RUN_COLUMNS_V3)):
         have = {row["name"] for row in conn.execute(f"PRAGMA table_info({table})").fetchall()}

@@ -87,6 +87,7 @@ class TableQuery:
     min_volume_m3: float | None = None
     state: int | None = None
     level: float | None = None
+    every: bool = False
 
 
 def whole_arg(args, name: str, default: int, lo: int, hi: int) -> int:
@@ -120,7 +121,9 @@ def table_query(args, level: float | None) -> TableQuery:
     ``page`` (from 1), ``per_page`` (1..:data:`MAX_PER_PAGE`), ``sort`` (one of
     :data:`SORT_KEYS`), ``order`` (``asc`` or ``desc``), ``q`` (a depression id),
     ``min_depth`` (site's vertical unit), ``min_area_m2``, ``min_volume_m3``
-    and ``state`` (``dry``, ``cut_off`` or ``overtopped``; needs ``level``).
+    and ``state`` (``dry``, ``cut_off`` or ``overtopped``; needs ``level``);
+    ``inventory`` ``all`` for every depression, the ones below the site's
+    significance minimum too (default ``listed``).
     Raises InvalidParameter, naming what would be accepted.
     """
     sort = str(args.get("sort") or "id").strip()
@@ -150,8 +153,16 @@ def table_query(args, level: float | None) -> TableQuery:
         min_depth=number_arg(args, "min_depth", "a depth in the site's vertical unit"),
         min_area_m2=number_arg(args, "min_area_m2", "an area in m²"),
         min_volume_m3=number_arg(args, "min_volume_m3", "a volume in m³"),
-        state=state, level=level,
+        state=state, level=level, every=_inventory(args),
     )
+
+
+def _inventory(args) -> bool:
+    text = str(args.get("inventory") or "listed").strip().lower()
+    if text not in ("listed", "all"):
+        raise InvalidParameter("inventory must be listed (the significant depressions, the "
+                               "default) or all (every depression)")
+    return text == "all"
 
 
 def parse_bbox(text: str | None) -> tuple[float, float, float, float] | None:
@@ -185,6 +196,11 @@ class DepressionIndex:
         The site's DEM (transform, CRS, vertical unit).
     lonlat : callable
         ``lonlat(x, y) -> (lon, lat)`` for arrays in the DEM's CRS (thread-safe).
+    listed : bool array, optional
+        Per depression (index ``id - 1``): listed on its own under the run's
+        significance minimum (:mod:`sillmark.products.significance`). The table
+        pages and the map-extent queries give only these (``inventory="all"``
+        in a table query gives every one); None lists every depression.
 
     Notes
     -----
@@ -192,8 +208,16 @@ class DepressionIndex:
     when built (:func:`scipy.ndimage.find_objects` allocates nothing per cell).
     """
 
-    def __init__(self, table, depression_id: np.ndarray, dem, lonlat: Callable) -> None:
+    def __init__(self, table, depression_id: np.ndarray, dem, lonlat: Callable,
+                 listed: np.ndarray | None = None) -> None:
         self.table = table
+        if listed is not None:
+            listed = np.asarray(listed, dtype=bool)
+            if listed.shape != (len(table),):
+                raise InvalidParameter(f"listed holds {listed.shape} values for {len(table)} "
+                                       "depressions; the run's files do not belong together")
+        self.listed = listed
+        self.listed_count = len(table) if listed is None else int(np.count_nonzero(listed))
         self.ids_raster = depression_id
         self.dem = dem
         self.unit = dem.vertical_unit
@@ -281,6 +305,8 @@ class DepressionIndex:
     def matching(self, query: TableQuery) -> np.ndarray:
         """Indices of the depressions the query's filters keep, in its order."""
         keep = np.ones(self.count, dtype=bool)
+        if self.listed is not None and not query.every:
+            keep &= self.listed
         states = self.states(query.level) if query.level is not None else None
         if query.q is not None:
             keep &= self.id == query.q
@@ -308,6 +334,9 @@ class DepressionIndex:
         states = self.states(query.level) if query.level is not None else None
         return {
             "total": self.count,
+            "listed": self.listed_count,
+            "below_minimum": self.count - self.listed_count,
+            "every": bool(query.every),
             "matched": matched,
             "page": page,
             "pages": pages,
@@ -324,7 +353,7 @@ class DepressionIndex:
     def in_box(self, bbox: tuple[float, float, float, float] | None, min_area_m2: float | None = None) -> np.ndarray:
         """Indices of the depressions whose extent meets ``bbox`` (and with at least
         ``min_area_m2`` of area), largest area first."""
-        keep = np.ones(self.count, dtype=bool)
+        keep = np.ones(self.count, dtype=bool) if self.listed is None else self.listed.copy()
         if bbox is not None:
             w, s, e, n = bbox
             keep = (self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n)

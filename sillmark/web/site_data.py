@@ -9,6 +9,7 @@ the most recently used sites open. Every cache is a :class:`sillmark.web.caches.
 
 from __future__ import annotations
 
+import csv
 import dataclasses
 import functools
 import math
@@ -343,7 +344,22 @@ class SiteData:
     def depressions(self) -> DepressionIndex:
         """The depression table as columns for paged, sorted, filtered and map-extent
         queries (:class:`sillmark.web.depression_index.DepressionIndex`)."""
-        return DepressionIndex(self.result.depressions, self.result.depression_id, self.dem, self.lonlat)
+        return DepressionIndex(self.result.depressions, self.result.depression_id, self.dem,
+                               self.lonlat, listed=self.listed)
+
+    @functools.cached_property
+    def listed(self) -> np.ndarray | None:
+        """Per depression, whether the run lists it on its own under its significance
+        minimum (from the run's ``depressions.csv``: its rows, or its ``significant``
+        column for a full inventory); None for a run without a minimum."""
+        sig = self.summary.get("significance")
+        if not sig:
+            return None
+        listed = np.zeros(len(self.result.depressions), dtype=bool)
+        with open(self.folder / "results" / "depressions.csv", encoding="utf-8", newline="") as f:
+            for row in csv.DictReader(f):
+                listed[int(row["id"]) - 1] = row.get("significant", "True").lower() in ("true", "1")
+        return listed
 
     @functools.cached_property
     def depression_tiles(self) -> DepressionTiles:

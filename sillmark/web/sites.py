@@ -14,6 +14,7 @@ the flood. :class:`SiteCache` keeps the most recently used sites open.
 
 from __future__ import annotations
 
+import math
 import os
 import shutil
 import sqlite3
@@ -32,6 +33,7 @@ from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.grid.outlets import build_outlets
 from sillmark.grid.raster_files import raster_outline
 from sillmark.io.geotiff import write_dem_copy
+from sillmark.products.significance import DEFAULT_VERTICAL_ACCURACY_M
 from sillmark.units import VerticalUnit, clean_datum, datum_phrase, unit_words
 from sillmark.web import db, layout, reach_inputs
 from sillmark.web.dem_description import band_choices, crs_code, dem_choices, dem_info
@@ -103,6 +105,9 @@ class Registry:
             "vertical_unit_label": unit_words(row["vertical_unit"] or info.get("vertical_unit") or "m"),
             "vertical_datum": row["vertical_datum"],
             "datum_phrase": datum_phrase(row["vertical_datum"]),
+            "vertical_accuracy": row["vertical_accuracy"],
+            "accuracy_default": accuracy_default_text(row["vertical_unit"] or info.get("vertical_unit")
+                                                      or "m"),
             "dem_crs": row["dem_crs"],
             "dem_band": row["dem_band"],
             "outlets": db.loads(row["outlets"], []),
@@ -197,7 +202,7 @@ class Registry:
                   vertical_unit: str, outlets: list[str], connectivity: Any,
                   water_file: Path | None, water_name: str | None,
                   vertical_datum: str | None = None, crs: str | None = None,
-                  band: Any = None) -> int:
+                  band: Any = None, vertical_accuracy: str | None = None) -> int:
         """Check and store a site's settings, queue an analysis run; return the run id.
 
         Everything is checked against the DEM before anything is stored: the
@@ -209,6 +214,9 @@ class Registry:
         unit = _unit_from_form(vertical_unit)
         # A form without the field keeps the datum; an empty field clears it.
         datum = row["vertical_datum"] if vertical_datum is None else clean_datum(vertical_datum)
+        # The same for the vertical accuracy (empty: the default minimum).
+        accuracy = (row["vertical_accuracy"] if vertical_accuracy is None
+                    else _accuracy_from_form(vertical_accuracy))
         info = db.loads(row["dem_info"], {})
         if info.get("vertical_unit_source") == "crs" and unit.value != info.get("vertical_unit"):
             raise InvalidParameter(
@@ -276,6 +284,7 @@ class Registry:
             "dem_file": dem_rel,
             "vertical_unit": unit.value,
             "vertical_datum": datum,
+            "vertical_accuracy": accuracy,
             "crs": crs_code(new_crs),
             "band": new_band,
             "outlets": spec_files,
@@ -288,8 +297,8 @@ class Registry:
         with db.transaction(conn):
             conn.execute(
                 "UPDATE sites SET name = ?, vertical_unit = ?, outlets = ?, connectivity = ?, "
-                "confirmed = 1, vertical_datum = ? WHERE id = ?",
-                (new_name, unit.value, db.dumps(spec_files), conn_value, datum, site_id),
+                "confirmed = 1, vertical_datum = ?, vertical_accuracy = ? WHERE id = ?",
+                (new_name, unit.value, db.dumps(spec_files), conn_value, datum, accuracy, site_id),
             )
             if new_copy is not None:
                 self._write_copy(folder / source_rel, folder / new_copy, new_crs, new_band, unit, datum)
@@ -495,3 +504,25 @@ def site_state(row: sqlite3.Row, latest: sqlite3.Row | None) -> str:
     return {db.QUEUED: "queued", db.RUNNING: "running", db.FAILED: "failed"}.get(latest["status"], "ready")
 
 
+def _accuracy_from_form(text: Any) -> float | None:
+    """The vertical accuracy field: empty for the default, else an RMSE above 0."""
+    value = str(text).strip()
+    if not value:
+        return None
+    try:
+        number = float(value)
+    except ValueError:
+        number = math.nan
+    if not math.isfinite(number) or number <= 0 or number > 1000:
+        raise InvalidParameter(
+            f"the vertical accuracy is the DEM's RMSE, a number above 0 in its vertical unit "
+            f"(e.g. 0.10), not {value[:20]!r}; leave it empty for the default")
+    return number
+
+
+def accuracy_default_text(unit: Any) -> str:
+    """Where the default vertical accuracy of a site comes from, in words."""
+    u = VerticalUnit.parse(unit)
+    value = DEFAULT_VERTICAL_ACCURACY_M / u.metres
+    return (f"{value:.3g} {u.symbol} ({DEFAULT_VERTICAL_ACCURACY_M:g} m), usual for airborne "
+            "lidar: a value recalled from memory, not a cited standard")

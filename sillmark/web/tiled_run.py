@@ -47,10 +47,10 @@ _STEPS = {
     "join": ("joining depressions across tiles", 50.0, 51.0),
     "totals": ("totalling depressions", 51.0, 52.0),
     "write": ("writing the tiled result files", 52.0, 57.0),
-    "outlines": ("outlining depressions window by window", 57.0, 59.0),
-    "hierarchy": ("building the depression hierarchy", 59.0, 61.0),
-    "hierarchy_files": ("formatting the depression hierarchy", 61.0, 61.5),
-    "hierarchy_write": ("writing the depression hierarchy files", 61.5, 62.0),
+    "hierarchy": ("building the depression hierarchy", 57.0, 59.0),
+    "hierarchy_files": ("formatting the depression hierarchy", 59.0, 59.5),
+    "hierarchy_write": ("writing the depression hierarchy files", 59.5, 60.0),
+    "outlines": ("outlining depressions window by window", 60.0, 62.0),
 }
 #: What the done / total of a step counts (steps not named here show no count).
 _COUNTED = {"flood": "tiles", "finish": "tiles", "write": "files", "hierarchy": "batches",
@@ -114,7 +114,7 @@ def is_large(shape: tuple[int, int], settings: dict) -> bool:
 
 
 def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
-                  progress, *, edits=None) -> Analysis:
+                  progress, *, edits=None, listing: dict | None = None) -> Analysis:
     """Analyse the DEM file tile by tile into ``results``, reporting the steps.
 
     Parameters
@@ -132,6 +132,10 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
     progress : sillmark.web.worker._Progress
     edits : path, optional
         A scenario's edits file (culverts only, tile by tile; see :func:`sillmark.run.analyse`).
+    listing : dict, optional, keyword-only
+        The significance options (``minimum``, ``accuracy_stated``) of
+        :func:`sillmark.run.analyse`: the tiled run lists the same depressions
+        as the in-memory one.
 
     Returns
     -------
@@ -144,7 +148,7 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
     return analyse(dem_path, specs, results, executor=tracker, store="files", tile_size=tile,
                    connectivity=int(settings["connectivity"]),
                    vertical_unit=settings["vertical_unit"], progress=tracker.step,
-                   window_cells=window, edits=edits)
+                   window_cells=window, edits=edits, **(listing or {}))
 
 
 def _depression_ids(path: Path, cols: int, r0: int, r1: int) -> np.ndarray:

@@ -285,6 +285,7 @@ def settings(site_id: int):
             water_file=water,
             water_name=water_name,
             vertical_datum=form.get("vertical_datum"),
+            vertical_accuracy=form.get("vertical_accuracy"),
             crs=form.get("crs"),
             band=form.get("band"),
         )

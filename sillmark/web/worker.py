@@ -41,6 +41,7 @@ from sillmark.grid.dem_grid import read_dem_grid
 from sillmark.grid.outlets import build_outlets
 from sillmark.io.export import FILE_NAMES
 from sillmark.io.geotiff import BLOCK_ROWS
+from sillmark.products.significance import site_minimum
 from sillmark.run import analyse
 from sillmark.web import (
     arrays,
@@ -68,8 +69,10 @@ _START = dict(PHASES)
 _NEXT = {name: (PHASES[k + 1][1] if k + 1 < len(PHASES) else 100) for k, (name, _) in enumerate(PHASES)}
 
 
-#: Files an in-memory analysis writes: every result file and the folder's README.txt.
-_FILES_WRITTEN = len(FILE_NAMES) + 1
+#: Steps an in-memory analysis reports while writing: the significance of its
+#: depressions (the web runs always have a minimum), every result file and the
+#: folder's README.txt.
+_FILES_WRITTEN = len(FILE_NAMES) + 2
 
 #: Least time between two progress writes within a phase, in seconds.
 PROGRESS_INTERVAL = 0.25
@@ -394,26 +397,29 @@ def _run(conn, data: Path, run, folder: Path) -> None:
 
     results = folder / "results"
     specs = _specs(site_folder, settings["outlets"])
+    listing = significance_options(settings, grid.vertical_unit)
     if large:
-        analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress)
+        analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress,
+                                           listing=listing)
         progress.start("writing result files")  # written already, tile by tile
         sources = tiled_run.result_rows(results, cols)
     else:
         progress.start("marking outlets")
         outlets = build_outlets(dem, specs, connectivity=connectivity)
         progress.start("flooding from the outlets")
-        names: list[str] = []
+        shares: dict[str, float] = {}
 
         def file_progress(name: str, done: int, total: int) -> None:
-            if not names:
+            # The rasters are written on a thread beside the other files, so the
+            # steps overlap: the phase's share is the sum of each step's own share.
+            if not shares:
                 progress.start("writing result files")
-            if name not in names:
-                names.append(name)
-            progress.within((len(names) - 1 + (done / total if total else 1.0)) / _FILES_WRITTEN)
+            shares[name] = max(shares.get(name, 0.0), done / total if total else 1.0)
+            progress.within(min(1.0, sum(shares.values()) / _FILES_WRITTEN))
 
         # The engine, then every result file, moved into place together.
         analysis = analyse(dem, outlets, results, connectivity=connectivity,
-                           progress=file_progress,
+                           progress=file_progress, **listing,
                            **reach_inputs.analyse_inputs(site_folder, settings))
         result = analysis.result
         sources = {name: (lambda r0, r1, a=getattr(result, name): a[r0:r1])
@@ -453,6 +459,8 @@ def _run(conn, data: Path, run, folder: Path) -> None:
         "lonlat_bounds": lonlat_bounds(grid),
         "cell_metres": float(min(np.min(dx_m), dy_m)),
         "seconds": None,
+        # The minimum, where it comes from and the counts (sillmark.io.summary).
+        "significance": analysis.significance,
     }
     for key in ("elevation_min", "elevation_max", "onset_min", "onset_max", "highest_spill"):
         if summary[key] is not None and not math.isfinite(summary[key]):
@@ -485,6 +493,15 @@ def _finish(conn, run, summary: dict, *, current: bool) -> None:
         if current:
             conn.execute("UPDATE sites SET current_run = ? WHERE id = ?", (run_id, run["site_id"]))
     log.info("run %s done in %.2f s", run_id, summary["seconds"])
+
+
+def significance_options(settings: dict, unit) -> dict:
+    """The significance options of :func:`sillmark.run.analyse` for a run's settings: the
+    minimum from the vertical accuracy the user stated, else the default (as the
+    command line's ``--vertical-accuracy``)."""
+    accuracy = settings.get("vertical_accuracy")
+    return {"minimum": site_minimum(vertical_accuracy=accuracy, unit=unit),
+            "accuracy_stated": accuracy is not None}
 
 
 def main(argv: list[str] | None = None) -> int:  # pragma: no cover - manual use

@@ -188,10 +188,3 @@ def test_every_csv_opens_with_pandas_defaults_and_readme_describes_the_folder(ca
     readme = " ".join((out / "README.txt").read_text().split())
     assert "Minimum depth of a depression of its own: 0.3 m" in readme
     assert "Significant depressions: 3" in readme
-
-
-def test_tiled_engine_refuses_the_significance_options(capsys, trench_tif, tmp_path):
-    code = main(["analyse", str(trench_tif), "--out", str(tmp_path / "t"), "--tiles", "256",
-                 "--vertical-accuracy", "0.1"])
-    err = capsys.readouterr().err
-    assert code == 2 and "--vertical-accuracy applies to the in-memory engine" in err

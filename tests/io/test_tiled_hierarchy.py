@@ -323,9 +323,9 @@ def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_addre
     assert main(["analyse", str(terrain_tif), "--tiles", "40", "--scheduler", cluster_address,
                  "--out", str(tiled), "-q"]) == 0
     printed = capsys.readouterr().out
-    # The tiled engine lists every depression (no significance minimum on tiles
-    # yet), so it is compared with the in-memory run's full inventory.
-    assert main(["analyse", str(terrain_tif), "--full-inventory", "--out", str(whole), "-q"]) == 0
+    # Both apply the default significance minimum: the tiled run decides it window
+    # by window on the cluster, and lists the same nodes.
+    assert main(["analyse", str(terrain_tif), "--out", str(whole), "-q"]) == 0
     in_memory = capsys.readouterr().out
     assert_same_files(tiled, whole)
     line = [t for t in printed.splitlines() if t.startswith("Depression hierarchy:")]
@@ -333,6 +333,11 @@ def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_addre
     assert "Results: 18 files" in printed and "no hierarchy" not in printed  # 11 + README + 6 SLD
     summary = json.loads((tiled / "summary.json").read_text())
     assert summary["files"] == json.loads((whole / "summary.json").read_text())["files"]
+    assert summary["significance"] == json.loads((whole / "summary.json").read_text())["significance"]
+    assert summary["significance"]["counts"]["significant"] < summary["significance"]["counts"][
+        "hierarchy_nodes"]  # the minimum left some nodes out
+    for name in ("depressions.csv", "spill_points.geojson"):
+        assert (tiled / name).read_bytes() == (whole / name).read_bytes(), name
     assert not [p for p in tiled.iterdir() if p.name.startswith(".")]
 
 

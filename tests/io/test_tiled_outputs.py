@@ -292,12 +292,12 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
     # the spill cells of tied routes are the same and whole files can be compared.
     tiled, whole = tmp_path / "tiled", tmp_path / "whole"
     assert main(["analyse", str(terrain_tif), "--tiles", "512", "--scheduler", cluster_address,
-                 "--out", str(tiled), "-q"]) == 0
+                 "--full-inventory", "--out", str(tiled), "-q"]) == 0
     printed = capsys.readouterr().out
     # 11 files, README.txt and an SLD style beside each of the 4 rasters and 2 GeoJSON layers
     assert "Depression hierarchy:" in printed and "Results: 18 files" in printed
-    # The tiled engine lists every depression (no significance minimum on tiles
-    # yet): compared with the in-memory run's full inventory.
+    # Both list every depression (the full inventory), so the stage figures below
+    # count the same depressions.
     assert main(["analyse", str(terrain_tif), "--full-inventory", "--out", str(whole), "-q"]) == 0
     summary = json.loads((tiled / "summary.json").read_text())
     assert summary["files"] == ["onset_stage.tif", "fill_depth.tif", "depression_id.tif",
@@ -308,9 +308,9 @@ def test_cli_tiled_analyse_and_stage_write_the_in_memory_files(cluster_address, 
                                 "depression_id.sld", "flood_tree.sld", "depressions.sld",
                                 "spill_points.sld", "summary.json"]
     assert summary["engine"]["kind"] == "tiled"
-    # The full inventory marks each depression significant or not; the tiled one does not.
-    assert_same_collections(tiled / "depressions.geojson", whole / "depressions.geojson",
-                            ignore={"significant"})
+    # Each marks every depression significant or not, the same ones.
+    assert_same_collections(tiled / "depressions.geojson", whole / "depressions.geojson")
+    assert summary["significance"] == json.loads((whole / "summary.json").read_text())["significance"]
     # The hierarchy, built on the cluster in windows of depressions: the same bytes.
     for name in ("depression_hierarchy.csv", "depression_hierarchy.json", "depression_curves.csv"):
         assert (tiled / name).read_bytes() == (whole / name).read_bytes(), name

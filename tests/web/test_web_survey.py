@@ -47,14 +47,30 @@ def _get(client, url):
 # --------------------------------------------------------------------------- every answer bounded
 
 
-def _crawl_urls(app, site_id: int, data) -> list[str]:
+def _scenario(client, site_id: int, lon: float, lat: float) -> int:
+    """A scenario of the site (a culvert near its middle), analysed: its compare
+    answers must be bounded like the rest."""
+    edits = {"type": "FeatureCollection", "features": [{
+        "type": "Feature", "properties": {"kind": "culvert", "invert": 0.0},
+        "geometry": {"type": "LineString",
+                     "coordinates": [[lon, lat], [lon + 0.0002, lat + 0.0002]]}}]}
+    listed = client.get(f"/api/sites/{site_id}/scenarios").get_json()["scenarios"]
+    if listed:
+        return listed[0]["id"]
+    r = client.post(f"/api/sites/{site_id}/scenarios", json={"name": "crawl", "edits": edits})
+    assert r.status_code == 202, r.get_data(as_text=True)
+    return r.get_json()["id"]
+
+
+def _crawl_urls(app, client, site_id: int, data) -> list[str]:
     """One address for every GET rule under /api/ (downloads of result files aside)."""
     t = data.result.depressions
     biggest = int(t.id[np.argmax(t.area_m2)])
     level = float(t.spill_elevation[biggest - 1]) - 0.01
     w, s, e, n = data.summary["lonlat_bounds"]
     lon, lat = (w + e) / 2, (s + n) / 2
-    values = {"site_id": site_id, "depression_id": biggest, "run_id": data.run_id}
+    values = {"site_id": site_id, "depression_id": biggest, "run_id": data.run_id,
+              "scenario_id": _scenario(client, site_id, lon, lat)}
     query = f"?level={level:.3f}&lon={lon}&lat={lat}"
     urls = []
     for rule in app.url_map.iter_rules():
@@ -75,7 +91,7 @@ def test_no_api_answer_exceeds_2_mb_on_a_site_with_thousands_of_depressions(mars
     app, client, site_id, data = marsh
     index = data.depressions
     assert index.count > 1500, "the site must have thousands of depressions for this test to mean anything"
-    urls = _crawl_urls(app, site_id, data)
+    urls = _crawl_urls(app, client, site_id, data)
     for expected in ("/depressions?", "/depressions.geojson?", "/spill_points.geojson?", "/cell?", "/assets?"):
         assert any(expected in u for u in urls), expected
     # Each address as the page asks it, and with the most every cap allows.

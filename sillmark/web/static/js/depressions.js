@@ -191,9 +191,13 @@
         tr.addEventListener("keydown", function (ev) { if (ev.key === "Enter") { select(d.id, true); } });
         body.appendChild(tr);
       });
-      var filtered = res.matched !== res.total;
-      $("depressions-count").textContent = (filtered ? res.matched + " of " + res.total : String(res.total)) +
-        " depression" + (res.total === 1 ? "" : "s") + (filtered ? " match" : "") +
+      // Without "every depression", the table holds the listed (significant) ones only.
+      var shown = res.every || res.listed === undefined ? res.total : res.listed;
+      var filtered = res.matched !== shown;
+      $("depressions-count").textContent = (filtered ? res.matched + " of " + shown : String(shown)) +
+        (res.every || !res.below_minimum ? "" : " listed") +
+        " depression" + (shown === 1 ? "" : "s") + (filtered ? " match" : "") +
+        (res.every || !res.below_minimum ? "" : " (" + res.below_minimum + " below the minimum not listed)") +
         (res.pages > 1 ? " · page " + res.page + " of " + res.pages : "");
       $("depressions-prev").disabled = res.page <= 1;
       $("depressions-next").disabled = res.page >= res.pages;
