@@ -103,11 +103,17 @@ class Edit:
 
 @dataclasses.dataclass(frozen=True, eq=False)
 class Edits:
-    """The edits of one file, placed on a grid of ``shape``."""
+    """The edits of one file, placed on a grid of ``shape``.
+
+    ``document`` is the GeoJSON they were read from (None for edits made in
+    code, such as a planned barrier): a results folder keeps a copy of it, so
+    that later commands on the folder place the same edits again.
+    """
 
     shape: tuple[int, int]
     items: tuple[Edit, ...]
     source: str
+    document: dict | None = None
 
     def __len__(self) -> int:
         return len(self.items)
@@ -228,7 +234,7 @@ def read_edits(source: Any, grid: Any) -> Edits:
         raise InvalidEdits(f"{label} must be a GeoJSON FeatureCollection of edits (features "
                            "with a 'kind' of culvert, barrier or breach)")
     items = tuple(_edit(f, k, label, crs, grid) for k, f in enumerate(features))
-    edits = Edits(shape=tuple(grid.shape), items=items, source=label)
+    edits = Edits(shape=tuple(grid.shape), items=items, source=label, document=obj)
     ends = [e for e in edits.culverts]
     if ends:
         for e in ends:

@@ -68,7 +68,7 @@ from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
-from sillmark.io.reach_files import add_to_summary
+from sillmark.io.reach_files import INPUT_COPIES, add_to_summary, keep_input
 from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.styles import write_styles
@@ -314,13 +314,25 @@ def analyse(
                 if refuges is not None:
                     run = add_tiled_cutoff(run, refuges, roads, temporary, executor, store,
                                            connectivity, progress)
-            run = _close_folder(_add_styles(run), temporary)
+            run = _close_folder(_add_styles(_keep_edits(run, temporary)), temporary)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
     finally:
         shutil.rmtree(temporary, ignore_errors=True)
     return dataclasses.replace(run, files=files)
+
+
+def _keep_edits(run: Analysis, folder: Path) -> Analysis:
+    """A copy of the edits file beside the results (``edits_input.geojson``), so that
+    later commands on the folder re-apply the same edits; nothing without edits, or
+    for edits made in code (no file to copy)."""
+    if run.edits is None or run.edits.document is None:
+        return run
+    copy = keep_input(run.edits.document, folder, "edits")
+    summary = [p for p in run.files if p.name == FILE_NAMES[-1]]
+    others = [p for p in run.files if p.name != FILE_NAMES[-1] and p.name != copy.name]
+    return dataclasses.replace(run, files=[*others, copy, *summary])
 
 
 def _add_styles(run: Analysis) -> Analysis:
@@ -392,7 +404,10 @@ def _culverts(placed: Edits, shape, elevation=None) -> CulvertEdges | None:
 
 
 def _edits_member(placed: Edits, changes: list[int] | None) -> dict:
-    return {"source": placed.source, "features": placed.summary(changes)}
+    member = {"source": placed.source, "features": placed.summary(changes)}
+    if placed.document is not None:  # the copy _keep_edits writes
+        member["file"] = INPUT_COPIES["edits"]
+    return member
 
 
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,

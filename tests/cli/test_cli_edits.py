@@ -121,17 +121,49 @@ def test_a_dem_read_by_tiles_takes_culverts_across_tile_edges_but_not_barriers(t
     assert not (tmp_path / "refused" / "summary.json").exists()
 
 
-def test_stage_refuses_a_folder_analysed_with_edits(tmp_path, capsys):
-    # Re-running the engine on the bare DEM would not give the folder's onset
-    # stage; the command says so instead of reporting a changed DEM.
+def test_stage_on_a_folder_re_applies_the_edits_kept_in_it(tmp_path, capsys):
+    # The basin DEM with the culvert (basin onset 4 m) and the 7 m wall along
+    # row 1, columns 1-6. At a water level of 6.5 m, worked by hand:
+    # - the basin cells (2 m) are flooded through the culvert (onset 4 m <= 6.5),
+    #   3 x 3 = 9 cells at depth 6.5 - 2 = 4.5 m; without the culvert they are
+    #   flooded too (onset 6 m), so the culvert alone would not show here;
+    # - the wall cells (7 m after the edit) stay dry: 6 cells of state 1. On the
+    #   bare DEM they are 6 m ground reached from the edge at 6 m, so flooded.
+    # At 5 m the basin is flooded with the culvert (state 2, depth 3 m) but only
+    # shielded on the bare DEM (state 3: below the level, onset 6 m).
     dem = basin(tmp_path)
     edits = write_edits(
         tmp_path,
         {"type": "Feature", "properties": {"kind": "culvert", "invert": 3.0},
-         "geometry": {"type": "LineString", "coordinates": [centre(4, 4), centre(4, 0)]}})
-    code, _, err = run_cli(capsys, "analyse", str(dem), "--edits", str(edits),
-                           "--out", str(tmp_path / "edited"))
+         "geometry": {"type": "LineString", "coordinates": [centre(4, 4), centre(4, 0)]}},
+        {"type": "Feature", "properties": {"kind": "barrier", "crest": 7.0},
+         "geometry": {"type": "LineString", "coordinates": [centre(1, 1), centre(1, 6)]}},
+    )
+    folder = tmp_path / "edited"
+    code, _, err = run_cli(capsys, "analyse", str(dem), "--edits", str(edits), "--out", str(folder))
     assert code == 0, err
-    code, out, err = run_cli(capsys, "stage", str(tmp_path / "edited"), "--level", "5",
+    edits.unlink()  # the folder's own copy is what counts from here on
+    summary = json.loads((folder / "summary.json").read_text())
+    assert "edits_input.geojson" in summary["files"]
+    assert summary["edits"]["file"] == "edits_input.geojson"
+    assert "edits_input.geojson" in (folder / "README.txt").read_text()
+
+    code, out, err = run_cli(capsys, "stage", str(folder), "--level", "5", "--level", "6.5",
                              "--out", str(tmp_path / "stage"))
-    assert_one_line_error(code, out, err, "was made with edits")
+    assert code == 0, err
+    assert "with its edits" in out
+    with rasterio.open(tmp_path / "stage" / "water_state_5.00m.tif") as ds:
+        state5 = ds.read(1)
+    with rasterio.open(tmp_path / "stage" / "depth_5.00m.tif") as ds:
+        depth5 = ds.read(1)
+    with rasterio.open(tmp_path / "stage" / "water_state_6.50m.tif") as ds:
+        state65 = ds.read(1)
+    assert np.all(state5[3:6, 3:6] == 2) and np.allclose(depth5[3:6, 3:6], 3.0)
+    assert np.all(state65[1, 1:7] == 1)
+    assert np.all(state65[2, 1:7] == 2)
+
+    # The same folder without its copy of the edits: one line saying so.
+    (folder / "edits_input.geojson").unlink()
+    code, out, err = run_cli(capsys, "stage", str(folder), "--level", "5",
+                             "--out", str(tmp_path / "stage2"))
+    assert_one_line_error(code, out, err, "was made with edits", "edits_input.geojson")
