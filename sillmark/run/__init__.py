@@ -60,7 +60,7 @@ from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import DEM
 from sillmark.grid.dem_grid import read_dem_grid
-from sillmark.grid.edits import Edits, read_edits
+from sillmark.grid.edits import Edits, edited_grid, read_edits
 from sillmark.grid.outlet_plan import plan_outlets
 from sillmark.grid.outlets import Outlets, build_outlets, outlet_specs
 from sillmark.grid.profiles import read_profile
@@ -255,8 +255,11 @@ def analyse(
         (:func:`sillmark.grid.edits.read_edits`). Barriers and breaches change
         a copy of the elevations, which the result files describe; culverts
         are extra edges of the flood graph. ``summary.json`` records them
-        under ``edits``. A DEM file read tile by tile takes culverts only, and
-        no profile with them.
+        under ``edits``, and the folder keeps a copy of the file
+        (``edits_input.geojson``). A DEM file read tile by tile gets the
+        edited cells in every window it reads
+        (:class:`sillmark.grid.edits.EditedDEMGrid`); it takes no profile
+        with edits.
 
     Every run also writes ``README.txt`` (:mod:`sillmark.io.readme`).
 
@@ -450,12 +453,13 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
     directions(connectivity)
     grid = read_dem_grid(dem_path, band=band, vertical_unit=vertical_unit, crs=crs)
     placed = _placed_edits(edits, grid)
-    if placed is not None and len(placed.culverts) < len(placed):
-        ground = next(e for e in placed.items if e.kind != "culvert")
-        raise InvalidParameter(
-            f"{placed.source}: {ground.label}: barriers and breaches change the elevations, "
-            "which the tiled engine's outlines and hierarchy read from the DEM file; run "
-            "without --tiles, or write the edited DEM first (nothing was written)")
+    changes = None
+    if placed is not None:
+        # Barriers and breaches: every window read from here on (the tiles, then the
+        # outlines, the hierarchy and the exports) holds the edited cells.
+        changes = placed.changes_on(grid.read_window, grid.shape[1])
+        if len(placed.culverts) < len(placed):
+            grid = edited_grid(grid, placed)
     if placed is not None and profile is not None:
         raise InvalidParameter("the tiled onset offset of a profile does not take culverts yet; "
                                "run without --tiles, or without the edits (nothing was written)")
@@ -495,8 +499,7 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
         tile_size=flood.tile_size, tiles=flood.tiles, valid_cells=flood.valid_cells,
         unreached_cells=flood.unreached_cells, outlet_cells=flood.outlet_cells,
         outlet_sources=plan.sources, heap_pops=flood.heap_pops, files=files, seconds=seconds,
-        result=None, hierarchy=None, grid=grid, edits=placed,
-        edit_changes=None if placed is None else [0] * len(placed),
+        result=None, hierarchy=None, grid=grid, edits=placed, edit_changes=changes,
     )
 
 
