@@ -45,14 +45,21 @@ def _place(data, assets, values: dict) -> tuple[np.ndarray, str, str]:
     polygon = values.get("polygon")
     if polygon is not None and polygon != "":
         if isinstance(polygon, str):
+            # Form text: parsed here, so it is never taken for a path on the server.
             if len(polygon) > MAX_POLYGON_TEXT:
                 raise InvalidParameter(f"the polygon is longer than {MAX_POLYGON_TEXT:,} "
                                        "characters; draw it with fewer vertices")
-        elif isinstance(polygon, dict):
+            try:
+                polygon = json.loads(polygon)
+            except (ValueError, RecursionError):
+                raise InvalidParameter("the polygon is not valid JSON; give a GeoJSON geometry "
+                                       "(an object with 'type': 'Polygon' and its "
+                                       "'coordinates')") from None
+        if isinstance(polygon, dict):
             if len(json.dumps(polygon)) > MAX_POLYGON_TEXT:
                 raise InvalidParameter(f"the polygon is longer than {MAX_POLYGON_TEXT:,} "
                                        "characters; draw it with fewer vertices")
-        else:
+        if not isinstance(polygon, dict):
             raise InvalidParameter("give the polygon as a GeoJSON geometry (an object with "
                                    "'type': 'Polygon' and its 'coordinates')")
         place = read_place_polygon(polygon, data.dem)

@@ -210,3 +210,19 @@ def test_a_bad_polygon_gets_a_clear_message(polder, polygon, fragment):
     r = plan(client, site_id, polygon=polygon, level=12)
     assert r.status_code == 400, r.get_json()
     assert fragment in r.get_json()["error"]
+
+
+def test_a_polygon_given_as_a_server_path_is_not_opened(polder, tmp_path):
+    # A valid polygon file on the server: its path as the polygon's text must be
+    # refused as text that is not JSON, never read as a file.
+    import json
+
+    client, site_id, _ = polder
+    ring = [list(lonlat(*centre(r, c))) for r, c in ((3, 3), (3, 8), (8, 8), (8, 3), (3, 3))]
+    path = tmp_path / "place.geojson"
+    path.write_text(json.dumps({"type": "Polygon", "coordinates": [ring]}))
+    for r in (plan(client, site_id, polygon=str(path), level=12),
+              client.post(f"/api/sites/{site_id}/barrier",
+                          data={"polygon": str(path), "level": "12"})):
+        assert r.status_code == 400, r.get_json()
+        assert "not valid JSON" in r.get_json()["error"]
