@@ -311,3 +311,4 @@ def test_with_random_culverts_the_cut_has_the_size_networkx_finds(seed):
     edited, _ = plan.as_edits(z.shape).apply(z)
     s = priority_flood(edited, outlets, connectivity=connectivity, culverts=edges).onset_stage
     assert s[pr, pc] >= level
+
