@@ -59,6 +59,9 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
     compared cell by cell with ``onset_stage.tif``: if the DEM changed since the
     analysis, the run stops rather than mixing old and new results. So the
     result, and every file written from it, is the same as from the DEM itself.
+    An analysis made with edits kept a copy of them (``edits_input.geojson``):
+    they are placed again, so the engine sees the same edited ground and the
+    same culverts as the first run.
     """
     import numpy as np
     import rasterio
@@ -81,11 +84,7 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
     from sillmark.io.summary import read_summary
 
     summary = read_summary(folder)
-    if "edits" in json.loads((folder / "summary.json").read_text(encoding="utf-8")):
-        raise InvalidParameter(
-            f"the analysis in {folder} was made with edits (see 'edits' in its summary.json), "
-            "which this command does not re-apply yet; give the DEM file as SOURCE to work "
-            "on the ground as it is")
+    edits_member = json.loads((folder / "summary.json").read_text(encoding="utf-8")).get("edits")
     rows, cols = summary.shape
     dem_text = summary.dem_file(instead="give the DEM file as SOURCE")
     unit, crs, sources = summary.vertical_unit, summary.crs, list(summary.outlet_sources)
@@ -113,13 +112,14 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
             if (ds.height, ds.width) != (rows, cols):
                 raise InvalidParameter(f"{path} does not match summary.json's grid; run 'sillmark analyse' again")
             stored[name] = ds.read(1)
+    dem, culverts = _folder_edits(folder, edits_member, dem)
     progress.done()
     progress.start("outlets")
     mask = (stored["flood_tree.tif"] == OUTLET_CODE) & dem.valid
     outlets = Outlets(mask=mask, sources=tuple(sources))
     progress.done()
     progress.start("flood")
-    result = analyse_site(dem, outlets, connectivity=connectivity)
+    result = analyse_site(dem, outlets, connectivity=connectivity, culverts=culverts)
     differ = int(np.count_nonzero(
         ~((result.onset_stage == stored["onset_stage.tif"])
           | (np.isnan(result.onset_stage) & np.isnan(stored["onset_stage.tif"])))
@@ -132,6 +132,37 @@ def site_from_folder(folder: Path, args: argparse.Namespace, progress: Progress)
         )
     progress.done()
     return dem, outlets, result
+
+
+def _folder_edits(folder: Path, member, dem):
+    """The DEM with the edits an analysis was made with, and its culverts.
+
+    The edits are read again from the copy the analysis kept in the folder
+    (``edits_input.geojson``) and placed on the DEM as before: barriers and
+    breaches change a copy of the elevations, culverts become extra edges of
+    the flood graph. Without edits, the DEM as it is and no culverts.
+    """
+    import dataclasses
+
+    from sillmark.engine.culverts import culvert_edges
+    from sillmark.errors import InvalidParameter
+    from sillmark.grid.edits import read_edits
+    from sillmark.io.reach_files import INPUT_COPIES
+
+    if member is None:
+        return dem, None
+    copy = folder / INPUT_COPIES["edits"]
+    if not copy.is_file():
+        raise InvalidParameter(
+            f"the analysis in {folder} was made with edits (see 'edits' in its summary.json) "
+            f"but the folder lacks their copy {copy.name}; run 'sillmark analyse DEM --edits "
+            "FILE' again, or give the DEM file as SOURCE to work on the ground as it is")
+    placed = read_edits(copy, dem)
+    edited, _ = placed.apply(dem.elevation)
+    culverts = None
+    if placed.culverts:
+        culverts = culvert_edges(dem.shape, **placed.culvert_ends(), elevation=edited)
+    return dataclasses.replace(dem, elevation=edited), culverts
 
 
 def run_analyse(args: argparse.Namespace) -> int:

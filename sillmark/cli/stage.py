@@ -125,7 +125,9 @@ def run_stage(args: argparse.Namespace) -> int:
     try:
         if source.is_dir():
             dem, outlets, result = site_from_folder(source, args, progress)
-            origin = f"Analysis: {source} (engine re-run on its DEM; onset stage matches onset_stage.tif)"
+            edited = " with its edits" if (source / "edits_input.geojson").is_file() else ""
+            origin = (f"Analysis: {source} (engine re-run on its DEM{edited}; onset stage "
+                      "matches onset_stage.tif)")
         else:
             dem, outlets, result = site_from_dem(args.source, args, progress)
             origin = None

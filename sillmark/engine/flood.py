@@ -495,12 +495,15 @@ def priority_flood(
     )
 
 
-def analyse_site(dem: "DEM", outlets: "Outlets", *, connectivity: int = 8) -> SpillResult:
-    """Run the spill engine on a site DEM with its outlets (true cell areas, CRS)."""
+def analyse_site(dem: "DEM", outlets: "Outlets", *, connectivity: int = 8,
+                 culverts: CulvertEdges | None = None) -> SpillResult:
+    """Run the spill engine on a site DEM with its outlets (true cell areas, CRS) and,
+    optionally, its culverts."""
     return priority_flood(
         dem.elevation,
         outlets.mask,
         connectivity=connectivity,
         row_areas=dem.row_areas,
         transform=dem.transform,
+        culverts=culverts,
     )

@@ -46,11 +46,12 @@ import shapely
 from shapely.geometry import shape as shapely_shape
 
 from sillmark.errors import InvalidEdits, InvalidOutlets
+from sillmark.grid.dem_grid import DEMGrid
 from sillmark.grid.georeference import linear_unit_metres
 from sillmark.grid.outlet_geojson import burn, load_geojson, outlets_crs, reproject
 from sillmark.units import level_text
 
-__all__ = ["EDIT_KINDS", "Edit", "Edits", "read_edits"]
+__all__ = ["EDIT_KINDS", "Edit", "EditedDEMGrid", "Edits", "edited_grid", "read_edits"]
 
 #: Kinds of edit and the level property each needs.
 EDIT_KINDS = {"culvert": "invert", "barrier": "crest", "breach": "level"}
@@ -103,11 +104,17 @@ class Edit:
 
 @dataclasses.dataclass(frozen=True, eq=False)
 class Edits:
-    """The edits of one file, placed on a grid of ``shape``."""
+    """The edits of one file, placed on a grid of ``shape``.
+
+    ``document`` is the GeoJSON they were read from (None for edits made in
+    code, such as a planned barrier): a results folder keeps a copy of it, so
+    that later commands on the folder place the same edits again.
+    """
 
     shape: tuple[int, int]
     items: tuple[Edit, ...]
     source: str
+    document: dict | None = None
 
     def __len__(self) -> int:
         return len(self.items)
@@ -141,6 +148,39 @@ class Edits:
             changed.append(int(np.count_nonzero(new != old)))
             z[r, c] = new
         return z, changed
+
+    def changes_on(self, read_window, width: int, *, block_rows: int = 64) -> list[int]:
+        """Per edit, the cells it changes on a grid read by windows (0 for a culvert).
+
+        The same counts :meth:`apply` gives on the whole grid, from the edited
+        cells only: ``read_window(r0, r1, c0, c1)`` is read in strips of
+        ``block_rows`` rows, each only as wide as the edited cells in it.
+        """
+        ground = [e for e in self.items if e.kind != "culvert"]
+        if not ground:
+            return [0] * len(self)
+        flat = np.unique(np.concatenate([e.rows * width + e.cols for e in ground]))
+        rows, cols = flat // width, flat % width
+        values = np.empty(flat.shape[0], dtype=np.float32)
+        strip = rows // block_rows
+        for b in np.unique(strip):
+            sel = np.flatnonzero(strip == b)
+            r0, c0, c1 = int(b) * block_rows, int(cols[sel].min()), int(cols[sel].max()) + 1
+            window = read_window(r0, r0 + block_rows, c0, c1)
+            values[sel] = window[rows[sel] - r0, cols[sel] - c0]
+        changed = []
+        for e in self.items:
+            if e.kind == "culvert":
+                changed.append(0)
+                continue
+            at = np.searchsorted(flat, e.rows * width + e.cols)
+            old = values[at]
+            level = np.float32(e.level)
+            new = np.maximum(old, level) if e.kind == "barrier" else np.minimum(old, level)
+            new = np.where(np.isnan(old), old, new)
+            changed.append(int(np.count_nonzero(new != old)))
+            values[at] = new
+        return changed
 
     def culvert_ends(self) -> dict[str, np.ndarray]:
         """The culverts as plain arrays: both ends' rows and columns, inverts, one-way flags.
@@ -196,6 +236,36 @@ class Edits:
         return out
 
 
+@dataclasses.dataclass(frozen=True, eq=False)
+class EditedDEMGrid(DEMGrid):
+    """A DEM file read window by window with its barriers and breaches in place.
+
+    Every window :meth:`read_window` gives holds the cells the edits raise or
+    lower, as :meth:`Edits.apply` changes them on the whole grid, so each tile
+    of the tiled engine, and every later pass over the DEM (outlines,
+    hierarchy, exports), sees the edited ground; the file is never changed.
+    It pickles small, as :class:`~sillmark.grid.dem_grid.DEMGrid` does (the
+    edits are lists of cells).
+    """
+
+    edits: Edits | None = None
+
+    def read_window(self, row0: int, row1: int, col0: int, col1: int) -> np.ndarray:
+        z = super().read_window(row0, row1, col0, col1)
+        if self.edits is None:
+            return z
+        return self.edits.apply(z, row0, col0)[0]
+
+
+def edited_grid(grid: DEMGrid, edits: Edits) -> EditedDEMGrid:
+    """``grid`` with the barriers and breaches of ``edits`` applied to every window read."""
+    if tuple(edits.shape) != tuple(grid.shape):
+        raise InvalidEdits(f"the edits were placed on a grid of {edits.shape[0]} x "
+                           f"{edits.shape[1]} cells, not this DEM's")
+    fields = {f.name: getattr(grid, f.name) for f in dataclasses.fields(DEMGrid)}
+    return EditedDEMGrid(**fields, edits=dataclasses.replace(edits, document=None))
+
+
 def read_edits(source: Any, grid: Any) -> Edits:
     """Read an edits GeoJSON and place it on ``grid`` (a DEM or a DEM grid).
 
@@ -228,7 +298,7 @@ def read_edits(source: Any, grid: Any) -> Edits:
         raise InvalidEdits(f"{label} must be a GeoJSON FeatureCollection of edits (features "
                            "with a 'kind' of culvert, barrier or breach)")
     items = tuple(_edit(f, k, label, crs, grid) for k, f in enumerate(features))
-    edits = Edits(shape=tuple(grid.shape), items=items, source=label)
+    edits = Edits(shape=tuple(grid.shape), items=items, source=label, document=obj)
     ends = [e for e in edits.culverts]
     if ends:
         for e in ends:

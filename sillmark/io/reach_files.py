@@ -173,7 +173,7 @@ def write_cutoff_level(grid, out_dir: str | os.PathLike, level, *,
 
 #: Copies of the inputs kept beside the results, so that later commands can use them.
 INPUT_COPIES = {"profile": "profile_input.geojson", "refuges": "refuges_input.geojson",
-                "roads": "roads_input.geojson"}
+                "roads": "roads_input.geojson", "edits": "edits_input.geojson"}
 
 
 def keep_input(source, folder: str | os.PathLike, what: str) -> Path:

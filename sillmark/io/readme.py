@@ -78,7 +78,7 @@ _DESCRIPTIONS: tuple[tuple[str, str], ...] = (
      "route from it to a refuge is under water (an island), 0 elsewhere, 255 nodata."),
     (r"cut_off_.+\.geojson", "The ground cut off from every refuge at that level as one "
      "(Multi)Polygon, with its area."),
-    (r"(profile|refuges|roads)_input\.geojson", "A copy of the input file the analysis used, "
+    (r"(profile|refuges|roads|edits)_input\.geojson", "A copy of the input file the analysis used, "
      "kept so that later commands on this folder use the same one."),
     (r".+\.sld", "OGC SLD 1.0 style of the layer of the same name: the app's depth classes, "
      "colours and symbols, so a desktop GIS opens the layer looking like the map in the app."),

@@ -30,6 +30,7 @@ import rasterio.windows
 
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.grid.dem_grid import DEMGrid, read_dem_grid
+from sillmark.grid.edits import edited_grid, read_edits
 from sillmark.io.geojson import write_depressions_geojson
 from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
@@ -39,6 +40,7 @@ from sillmark.io.hierarchy_writer import (
     write_hierarchy_files,
 )
 from sillmark.io.json_values import write_json
+from sillmark.io.reach_files import INPUT_COPIES
 from sillmark.io.summary import FILE_NAMES, read_summary, write_table_summary
 from sillmark.products.inventory import table_columns
 from sillmark.products.outlines import DEFAULT_WINDOW
@@ -208,6 +210,20 @@ def _read_rows(ds, r0: int, r1: int) -> np.ndarray:
     return ds.read(1, window=rasterio.windows.Window(0, r0, ds.width, r1 - r0))
 
 
+def _with_folder_edits(out: Path, grid: DEMGrid) -> DEMGrid:
+    """The DEM grid with the barriers and breaches of the edits the analysis kept
+    (``edits_input.geojson``), so every window read is the ground the engine saw."""
+    member = json.loads((out / "summary.json").read_text(encoding="utf-8")).get("edits")
+    if member is None:
+        return grid
+    copy = out / INPUT_COPIES["edits"]
+    if not copy.is_file():
+        raise InvalidParameter(
+            f"the analysis in {out} was made with edits (see 'edits' in its summary.json) but "
+            f"the folder lacks their copy {copy.name}; run 'sillmark analyse' again")
+    return edited_grid(grid, read_edits(copy, grid))
+
+
 def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) -> ResultFolder:
     """Open the folder ``sillmark analyse`` (with or without ``--tiles``) wrote.
 
@@ -243,6 +259,7 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
             f"the DEM {dem_text} no longer has the grid of the analysis in {out}; run "
             "'sillmark analyse' again"
         )
+    grid = _with_folder_edits(out, grid)
     lows, highs, onsets_lo, onsets_hi = [], [], [], []
     differ = 0
     with rasterio.open(out / "onset_stage.tif") as s_ds, rasterio.open(out / "fill_depth.tif") as f_ds:

@@ -13,8 +13,16 @@ computed by :func:`scipy.sparse.csgraph.maximum_flow` (Dinic's algorithm).
 
 Outlet cells and the place's own cells are never part of the barrier. Where
 an outlet cell below ``L`` touches the place, or the place holds an outlet, no
-barrier can keep it dry and the plan says so. Culverts are not taken into
-account: run the plan on the ground without them, or check the edited run.
+barrier can keep it dry and the plan says so.
+
+Culverts (:mod:`sillmark.engine.culverts`) are further edges of the same
+graph: a culvert whose invert lies below ``L`` joins its two end cells (when
+both lie below ``L``), so a wall that leaves one end outside and the other
+inside is no wall. A flap valve is an edge one way only, from its first end
+to its last, so the graph is directed (the cut of a directed graph is found
+the same way, Even 1975): water enters the place's side only through a
+culvert that leads into it. A culvert end may itself be raised, which closes
+the culvert at ``L``.
 
 References
 ----------
@@ -36,6 +44,7 @@ import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse.csgraph import maximum_flow
 
+from sillmark.engine.culverts import CulvertEdges
 from sillmark.engine.depressions import DIRECTION_COL, DIRECTION_ROW, directions
 from sillmark.errors import InvalidParameter
 from sillmark.grid.edits import Edit, Edits
@@ -123,7 +132,7 @@ class BarrierPlan:
 
 
 def plan_barrier(elevation, outlet_mask, place_mask, level: float, *, connectivity: int = 8,
-                 cell_size: float = 1.0) -> BarrierPlan:
+                 cell_size: float = 1.0, culverts: CulvertEdges | None = None) -> BarrierPlan:
     """Fewest cells to raise to ``level`` so that no surface path at ``level`` reaches the place.
 
     Parameters
@@ -136,6 +145,9 @@ def plan_barrier(elevation, outlet_mask, place_mask, level: float, *, connectivi
     connectivity : {8, 4}
     cell_size : float
         Side of a cell in ground units (for the length).
+    culverts : CulvertEdges, optional
+        The site's culverts and flap valves on this grid: further edges of
+        the graph below ``level`` (those with an invert below it).
 
     Returns
     -------
@@ -179,10 +191,26 @@ def plan_barrier(elevation, outlet_mask, place_mask, level: float, *, connectivi
     wet_place = place & below
     if not wet_place.any():
         return plan(True, "the place stands at or above the level: no barrier is needed")
+    if culverts is not None and tuple(culverts.shape) != z.shape:
+        raise InvalidParameter("the culverts were placed on a grid of another shape")
+    flat_below = below.ravel()
+    ca = cb = np.zeros(0, dtype=np.int64)
+    two_way = np.zeros(0, dtype=bool)
+    if culverts is not None and len(culverts):
+        # A culvert is open at the level when its invert and both ends lie below it.
+        open_ = (culverts.invert < level) & flat_below[culverts.a] & flat_below[culverts.b]
+        ca, cb, two_way = culverts.a[open_], culverts.b[open_], ~culverts.one_way[open_]
     structure = np.ones((3, 3), bool) if connectivity == 8 else ndimage.generate_binary_structure(2, 1)
-    labels, _ = ndimage.label(below, structure=structure)
+    labels, count = ndimage.label(below, structure=structure)
+    if ca.size:
+        # Regions joined by an open culvert are one region (either way, for this filter).
+        la, lb = labels.ravel()[ca], labels.ravel()[cb]
+        joined = sparse.coo_matrix((np.ones(la.size), (la, lb)), shape=(count + 1, count + 1))
+        _, merged = sparse.csgraph.connected_components(joined, directed=False)
+        merged[0] = -1  # the cells at or above the level stay out
+        labels = merged[labels]
     reach = np.isin(labels, np.unique(labels[wet_place]))
-    reach &= labels > 0
+    reach &= labels >= 0 if ca.size else labels > 0
     if not (reach & outlets).any():
         return plan(True, "no outlet reaches the place below the level: no barrier is needed")
     if (place & outlets & below).any():
@@ -212,6 +240,13 @@ def plan_barrier(elevation, outlet_mask, place_mask, level: float, *, connectivi
         heads.append(2 * np.flatnonzero(ok) + 1)
         tails.append(2 * j[ok])
         caps.append(np.full(int(ok.sum()), big))
+    # Culverts: exit of one end -> entry of the other, in the direction water may pass.
+    if ca.size:
+        ia, ib = index.ravel()[ca], index.ravel()[cb]
+        keep = (ia >= 0) & (ib >= 0)
+        heads += [2 * ia[keep] + 1, 2 * ib[keep & two_way] + 1]
+        tails += [2 * ib[keep], 2 * ia[keep & two_way]]
+        caps += [np.full(int(keep.sum()), big), np.full(int((keep & two_way).sum()), big)]
     outlet_nodes = np.flatnonzero(outlets.ravel()[cells])
     place_nodes = np.flatnonzero(place.ravel()[cells])
     heads += [np.full(outlet_nodes.shape[0], source), 2 * place_nodes + 1]
@@ -222,8 +257,11 @@ def plan_barrier(elevation, outlet_mask, place_mask, level: float, *, connectivi
     graph.sum_duplicates()
     flow = maximum_flow(graph, source, sink, method="dinic")
     if flow.flow_value >= big:
-        return plan(False, "an outlet below the level touches the place: no barrier can keep "
-                           "it dry")
+        joined = " or is joined to it by a culvert" if ca.size else ""
+        return plan(False, f"an outlet below the level touches the place{joined}: no barrier "
+                           "can keep it dry")
+    if flow.flow_value == 0:  # only through a flap valve that lets no water in
+        return plan(True, "no outlet reaches the place below the level: no barrier is needed")
     # Residual reachability from the source gives the source side of the cut.
     residual = graph - flow.flow
     residual.data = np.where(residual.data > 0, 1, 0)

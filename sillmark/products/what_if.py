@@ -212,7 +212,9 @@ def raise_sill(
     # Read-only like DEM.elevation, so the compiled kernels take the same
     # specialisation analyse_site() already used (no second compilation).
     z.flags.writeable = False
-    after = priority_flood(z, mask, connectivity=conn, row_areas=dem.row_areas, transform=dem.transform)
+    # The same culverts as the flood before (a folder analysed with edits).
+    after = priority_flood(z, mask, connectivity=conn, row_areas=dem.row_areas, transform=dem.transform,
+                           culverts=result.culverts)
     return _read_what_if(
         dem, result, after, name, r, c, before, float(old), float(new), h, len(crest_r)
     )

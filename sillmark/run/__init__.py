@@ -60,7 +60,7 @@ from sillmark.engine.tile_inputs import RasterTiles
 from sillmark.errors import InvalidParameter
 from sillmark.grid.dem import DEM
 from sillmark.grid.dem_grid import read_dem_grid
-from sillmark.grid.edits import Edits, read_edits
+from sillmark.grid.edits import Edits, edited_grid, read_edits
 from sillmark.grid.outlet_plan import plan_outlets
 from sillmark.grid.outlets import Outlets, build_outlets, outlet_specs
 from sillmark.grid.profiles import read_profile
@@ -69,7 +69,7 @@ from sillmark.io.export import write_result_files
 from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
 from sillmark.io.hierarchy_writer import curves_summary
-from sillmark.io.reach_files import add_to_summary
+from sillmark.io.reach_files import INPUT_COPIES, add_to_summary, keep_input
 from sillmark.io.readme import README_NAME, write_readme
 from sillmark.io.results_folder import add_depression_outlines, add_hierarchy_files
 from sillmark.io.styles import write_styles
@@ -263,8 +263,11 @@ def analyse(
         (:func:`sillmark.grid.edits.read_edits`). Barriers and breaches change
         a copy of the elevations, which the result files describe; culverts
         are extra edges of the flood graph. ``summary.json`` records them
-        under ``edits``. A DEM file read tile by tile takes culverts only, and
-        no profile with them.
+        under ``edits``, and the folder keeps a copy of the file
+        (``edits_input.geojson``). A DEM file read tile by tile gets the
+        edited cells in every window it reads
+        (:class:`sillmark.grid.edits.EditedDEMGrid`); it takes no profile
+        with edits.
 
     Every run also writes ``README.txt`` (:mod:`sillmark.io.readme`).
 
@@ -327,13 +330,25 @@ def analyse(
                 if refuges is not None:
                     run = add_tiled_cutoff(run, refuges, roads, temporary, executor, store,
                                            connectivity, progress)
-            run = _close_folder(_add_styles(run), temporary)
+            run = _close_folder(_add_styles(_keep_edits(run, temporary)), temporary)
         finally:
             tiles.close()
         files = _move_into_place(temporary, target, [p.name for p in run.files])
     finally:
         shutil.rmtree(temporary, ignore_errors=True)
     return dataclasses.replace(run, files=files)
+
+
+def _keep_edits(run: Analysis, folder: Path) -> Analysis:
+    """A copy of the edits file beside the results (``edits_input.geojson``), so that
+    later commands on the folder re-apply the same edits; nothing without edits, or
+    for edits made in code (no file to copy)."""
+    if run.edits is None or run.edits.document is None:
+        return run
+    copy = keep_input(run.edits.document, folder, "edits")
+    summary = [p for p in run.files if p.name == FILE_NAMES[-1]]
+    others = [p for p in run.files if p.name != FILE_NAMES[-1] and p.name != copy.name]
+    return dataclasses.replace(run, files=[*others, copy, *summary])
 
 
 def _add_styles(run: Analysis) -> Analysis:
@@ -405,7 +420,10 @@ def _culverts(placed: Edits, shape, elevation=None) -> CulvertEdges | None:
 
 
 def _edits_member(placed: Edits, changes: list[int] | None) -> dict:
-    return {"source": placed.source, "features": placed.summary(changes)}
+    member = {"source": placed.source, "features": placed.summary(changes)}
+    if placed.document is not None:  # the copy _keep_edits writes
+        member["file"] = INPUT_COPIES["edits"]
+    return member
 
 
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,
@@ -454,12 +472,13 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
             f"{unit_of(grid).value}; make it with site_minimum(unit={unit_of(grid).value!r}) "
             "(nothing was written)")
     placed = _placed_edits(edits, grid)
-    if placed is not None and len(placed.culverts) < len(placed):
-        ground = next(e for e in placed.items if e.kind != "culvert")
-        raise InvalidParameter(
-            f"{placed.source}: {ground.label}: barriers and breaches change the elevations, "
-            "which the tiled engine's outlines and hierarchy read from the DEM file; run "
-            "without --tiles, or write the edited DEM first (nothing was written)")
+    changes = None
+    if placed is not None:
+        # Barriers and breaches: every window read from here on (the tiles, then the
+        # outlines, the hierarchy and the exports) holds the edited cells.
+        changes = placed.changes_on(grid.read_window, grid.shape[1])
+        if len(placed.culverts) < len(placed):
+            grid = edited_grid(grid, placed)
     if placed is not None and profile is not None:
         raise InvalidParameter("the tiled onset offset of a profile does not take culverts yet; "
                                "run without --tiles, or without the edits (nothing was written)")
@@ -499,8 +518,7 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
         tile_size=flood.tile_size, tiles=flood.tiles, valid_cells=flood.valid_cells,
         unreached_cells=flood.unreached_cells, outlet_cells=flood.outlet_cells,
         outlet_sources=plan.sources, heap_pops=flood.heap_pops, files=files, seconds=seconds,
-        result=None, hierarchy=None, grid=grid, edits=placed,
-        edit_changes=None if placed is None else [0] * len(placed),
+        result=None, hierarchy=None, grid=grid, edits=placed, edit_changes=changes,
     )
 
 

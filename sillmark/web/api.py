@@ -318,8 +318,9 @@ def assets(site_id: int):
 
 @bp.post("/sites/<int:site_id>/barrier")
 def barrier(site_id: int):
-    """The shortest barrier keeping an asset (``asset``) or a location (``lon``, ``lat``)
-    dry up to ``level``: its line, length and cells, or why none can."""
+    """The shortest barrier keeping an asset (``asset``), a drawn place (``polygon``, a
+    GeoJSON geometry) or a location (``lon``, ``lat``) dry up to ``level``: its line,
+    length and cells, or why none can."""
     body = request.get_json(silent=True) if request.is_json else None
     values = body if isinstance(body, dict) else request.form
     if values.get("level") is None:

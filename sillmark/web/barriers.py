@@ -1,6 +1,7 @@
 """The barrier planner in the browser app: the shortest wall keeping a place dry up to a level.
 
-For an asset, or a location clicked on the map, and a target outlet water
+For an asset, a location clicked on the map or a polygon drawn on it (every
+cell it covers must stay dry), and a target outlet water
 level ``L``, :func:`barrier_report` asks
 :func:`sillmark.products.barrier_planner.plan_barrier` for the fewest cells to
 raise to ``L`` (a minimum vertex cut between the place and the outlets in the
@@ -13,6 +14,8 @@ an edits file (one ``barrier`` feature per piece, crest ``L``) that
 
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 
 import numpy as np
@@ -22,14 +25,48 @@ from sillmark.engine.flood import OUTLET_CODE
 from sillmark.errors import InvalidParameter, LocationOutsideDEM
 from sillmark.grid.edits import read_edits
 from sillmark.grid.ground import ground_unit, position_text
+from sillmark.grid.places import read_place_polygon
 from sillmark.products.barrier_planner import plan_barrier
 from sillmark.units import level_text
 
-__all__ = ["barrier_report"]
+__all__ = ["MAX_POLYGON_TEXT", "barrier_report"]
+
+#: Longest polygon, as GeoJSON text, a request may draw (a hand-drawn place has
+#: a few dozen vertices).
+MAX_POLYGON_TEXT = 200_000
 
 
-def _place(data, assets, values: dict) -> tuple[int, int, str]:
-    """(row, col, name) of the place a request names: ``asset`` index, or ``lon`` and ``lat``."""
+def _place(data, assets, values: dict) -> tuple[np.ndarray, str, str]:
+    """(cells, name, key) of the place a request names: ``asset`` index, ``polygon``
+    (a GeoJSON geometry, WGS 84 lon/lat or a named ``crs``), or ``lon`` and ``lat``.
+
+    ``cells`` is a bool mask on the DEM; ``key`` tells places apart in the cache.
+    """
+    polygon = values.get("polygon")
+    if polygon is not None and polygon != "":
+        if isinstance(polygon, str):
+            # Form text: parsed here, so it is never taken for a path on the server.
+            if len(polygon) > MAX_POLYGON_TEXT:
+                raise InvalidParameter(f"the polygon is longer than {MAX_POLYGON_TEXT:,} "
+                                       "characters; draw it with fewer vertices")
+            try:
+                polygon = json.loads(polygon)
+            except (ValueError, RecursionError):
+                raise InvalidParameter("the polygon is not valid JSON; give a GeoJSON geometry "
+                                       "(an object with 'type': 'Polygon' and its "
+                                       "'coordinates')") from None
+        if isinstance(polygon, dict):
+            if len(json.dumps(polygon)) > MAX_POLYGON_TEXT:
+                raise InvalidParameter(f"the polygon is longer than {MAX_POLYGON_TEXT:,} "
+                                       "characters; draw it with fewer vertices")
+        if not isinstance(polygon, dict):
+            raise InvalidParameter("give the polygon as a GeoJSON geometry (an object with "
+                                   "'type': 'Polygon' and its 'coordinates')")
+        place = read_place_polygon(polygon, data.dem)
+        cells = np.flatnonzero(place.mask)
+        key = "polygon:" + hashlib.sha256(cells.astype(np.int64).tobytes()).hexdigest()
+        at = position_text(data.dem, place.x, place.y)
+        return place.mask, f"the drawn place of {place.cells} cells round {at}", key
     asset = values.get("asset")
     if asset is not None and str(asset).strip() != "":
         if assets is None:
@@ -46,18 +83,27 @@ def _place(data, assets, values: dict) -> tuple[int, int, str]:
         a = assets[index]
         if a.status != "ok":
             raise InvalidParameter(f"asset {a.name!r} has no place on the DEM ({a.status})")
-        return int(a.row), int(a.col), a.name
+        return _one_cell(data, int(a.row), int(a.col)), a.name, f"cell:{a.row},{a.col}"
     lon, lat = values.get("lon"), values.get("lat")
     if lon is None or lat is None:
-        raise InvalidParameter("give the place as an asset index (asset=0) or as a location "
-                               "(lon and lat in WGS 84 degrees)")
+        raise InvalidParameter("give the place as an asset index (asset=0), a location (lon "
+                               "and lat in WGS 84 degrees) or a polygon (GeoJSON)")
     try:
         lon, lat = float(lon), float(lat)
     except (TypeError, ValueError):
         raise InvalidParameter("lon and lat must be numbers of degrees") from None
     row, col = data.cell_at(lon, lat)
     x, y = data.dem.xy(row, col)
-    return row, col, f"the location at {position_text(data.dem, float(x), float(y))}"
+    return (_one_cell(data, row, col),
+            f"the location at {position_text(data.dem, float(x), float(y))}", f"cell:{row},{col}")
+
+
+def _one_cell(data, row: int, col: int) -> np.ndarray:
+    if not math.isfinite(float(data.dem.elevation[row, col])):
+        raise LocationOutsideDEM("there is no elevation at that place (nodata)")
+    mask = np.zeros(data.dem.shape, dtype=bool)
+    mask[row, col] = True
+    return mask
 
 
 def barrier_report(data, assets, values: dict, level: np.float32, datum: str | None = None) -> dict:
@@ -69,7 +115,8 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
     assets : Assets or None
         The site's placed assets (for ``values["asset"]``).
     values : dict
-        ``asset`` (an index) or ``lon`` and ``lat`` (WGS 84 degrees).
+        ``asset`` (an index), ``polygon`` (a GeoJSON geometry: every cell it
+        covers must stay dry) or ``lon`` and ``lat`` (WGS 84 degrees).
     level : float32
         Target outlet water level, in the site's vertical unit.
     datum : str or None
@@ -81,19 +128,23 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
         ``possible``, ``needed``, ``message`` (the answer in words), and for a
         wall: ``cells``, ``length`` with ``length_unit``, ``line`` (GeoJSON
         MultiLineString in WGS 84) and ``edits`` (the edits file).
+        ``place_cells`` counts the place's cells; ``row`` and ``col`` are the
+        one that water reaches first.
     """
-    row, col, name = _place(data, assets, values)
+    place, name, place_key = _place(data, assets, values)
+    onsets = np.where(place, data.result.onset_stage, np.inf)
+    first = int(np.argmin(np.where(np.isnan(onsets), np.inf, onsets)))
+    row, col = divmod(first, data.dem.shape[1])
     z = float(data.dem.elevation[row, col])
-    if not math.isfinite(z):
-        raise LocationOutsideDEM("there is no elevation at that place (nodata)")
     onset = float(data.result.onset_stage[row, col])
     unit = data.unit
-    key = (row, col, float(level), datum)
+    key = (place_key, float(level), datum)
     out = data.barrier_plans.get(key)
     if out is not None:
         return {**out, "name": name}
+    count = int(np.count_nonzero(place))
     base = {
-        "row": row, "col": col,
+        "row": row, "col": col, "place_cells": count,
         "level": float(level), "onset_stage": onset if math.isfinite(onset) else None,
         "ground_elevation": z,
         "unit": unit.value, "unit_symbol": unit.symbol,
@@ -101,16 +152,15 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
         "line": None, "edits": None, "caution": SCREENING_CAUTION,
     }
     at = level_text(float(level), unit, datum)
+    its = "Its onset stage" if count == 1 else f"The onset stage of its first cell to get wet (of {count})"
     if not math.isfinite(onset):
         out = {**base, "possible": True, "needed": False,
                "message": "No outlet reaches this place at any level: no barrier is needed."}
     elif float(level) <= onset:
         out = {**base, "possible": True, "needed": False,
-               "message": f"Its onset stage is {level_text(onset, unit, datum)}: it stays dry below "
+               "message": f"{its} is {level_text(onset, unit, datum)}: it stays dry below "
                           f"{at} without a barrier. Choose a level above its onset stage."}
     else:
-        place = np.zeros(data.dem.shape, dtype=bool)
-        place[row, col] = True
         outlets = data.result.flood_tree == OUTLET_CODE
         with data.engine_lock:  # one heavy computation at a time per site
             plan = plan_barrier(data.dem.elevation, outlets, place, float(level),

@@ -56,7 +56,8 @@ def analyse_scenario(site_folder: Path, settings: dict, folder: Path, progress, 
     results = folder / "results"
     rows, cols = grid.shape
     if tiled_run.is_large(grid.shape, settings):
-        # Tile by tile the engine takes culverts only; it says so for anything else.
+        # Tile by tile as in memory: every kind of edit (barriers and breaches go into
+        # each window read from the DEM file).
         progress.start("flooding from the outlets")
         analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress,
                                            edits=edits)

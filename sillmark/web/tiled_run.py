@@ -131,7 +131,7 @@ def analyse_tiled(dem_path: Path, specs: tuple, settings: dict, results: Path,
         The run's ``results/`` folder.
     progress : sillmark.web.worker._Progress
     edits : path, optional
-        A scenario's edits file (culverts only, tile by tile; see :func:`sillmark.run.analyse`).
+        A scenario's edits file (every kind, tile by tile; see :func:`sillmark.run.analyse`).
     listing : dict, optional, keyword-only
         The significance options (``minimum``, ``accuracy_stated``) of
         :func:`sillmark.run.analyse`: the tiled run lists the same depressions

@@ -90,14 +90,11 @@ def test_a_bad_edit_stops_the_command_with_one_line_naming_it(tmp_path, capsys):
     assert not (tmp_path / "out" / "summary.json").exists()
 
 
-def test_a_dem_read_by_tiles_takes_culverts_across_tile_edges_but_not_barriers(tmp_path):
+def test_a_dem_read_by_tiles_takes_culverts_across_tile_edges(tmp_path):
     # The same culvert on the DEM file read in tiles of 3 x 3 cells (the basin
     # cell (4, 4) and the edge cell (4, 0) lie in different tiles) gives the
-    # in-memory onset stage; a barrier there is refused before anything is written.
-    import pytest
-
+    # in-memory onset stage.
     from sillmark.engine.executors import SerialExecutor
-    from sillmark.errors import InvalidParameter
     from sillmark.grid.dem import read_dem
     from sillmark.run import analyse
 
@@ -113,25 +110,97 @@ def test_a_dem_read_by_tiles_takes_culverts_across_tile_edges_but_not_barriers(t
     assert np.all(whole.result.onset_stage[3:6, 3:6] == 4.0)
     summary = json.loads((tmp_path / "tiled" / "summary.json").read_text())
     assert summary["edits"]["features"][0]["kind"] == "culvert"
-    wall = {"type": "Feature", "properties": {"kind": "barrier", "crest": 7.0},
-            "geometry": {"type": "LineString", "coordinates": [centre(1, 1), centre(1, 6)]}}
-    with pytest.raises(InvalidParameter, match="barriers and breaches"):
-        analyse(str(dem), ["edge"], tmp_path / "refused", edits=write_edits(tmp_path, wall),
-                tile_size=3, executor=SerialExecutor())
-    assert not (tmp_path / "refused" / "summary.json").exists()
 
 
-def test_stage_refuses_a_folder_analysed_with_edits(tmp_path, capsys):
-    # Re-running the engine on the bare DEM would not give the folder's onset
-    # stage; the command says so instead of reporting a changed DEM.
+def test_a_dem_read_by_tiles_takes_barriers_and_breaches_across_tile_edges(tmp_path):
+    # Tiles of 3 x 3 cells: tile edges after rows 2 and 5 and after columns 2
+    # and 5. Worked by hand on the basin DEM:
+    # - a 7 m barrier along row 1, columns 1-6, crossing the column edges:
+    #   six 6 m cells raised to 7 m, whose onset stage is then 7 m;
+    # - a breach at 2 m along row 4 from the basin cell (4, 4) to the edge cell
+    #   (4, 0), crossing the column edge after column 2: (4, 0) at 4 m and
+    #   (4, 1), (4, 2) at 6 m are lowered (3 cells); (4, 3), (4, 4) are at 2 m
+    #   already. The basin now drains down the cut to the edge outlet at 2 m:
+    #   its onset stage is 2 m, its fill depth 0 (without the edits: 6 m and 4 m).
+    from sillmark.engine.executors import SerialExecutor
+    from sillmark.grid.dem import read_dem
+    from sillmark.io.results_folder import open_result_folder
+    from sillmark.run import analyse
+
+    dem = basin(tmp_path)
+    edits = write_edits(
+        tmp_path,
+        {"type": "Feature", "properties": {"kind": "barrier", "crest": 7.0},
+         "geometry": {"type": "LineString", "coordinates": [centre(1, 1), centre(1, 6)]}},
+        {"type": "Feature", "properties": {"kind": "breach", "level": 2.0},
+         "geometry": {"type": "LineString", "coordinates": [centre(4, 4), centre(4, 0)]}},
+    )
+    whole = analyse(read_dem(dem), ["edge"], tmp_path / "whole", edits=edits)
+    tiled = analyse(str(dem), ["edge"], tmp_path / "tiled", edits=edits, tile_size=3,
+                    executor=SerialExecutor())
+    assert tiled.tiles == 9
+    s = onset(tmp_path / "tiled")
+    assert np.array_equal(s, whole.result.onset_stage, equal_nan=True)
+    assert np.all(s[3:6, 3:6] == 2.0) and np.all(s[1, 1:7] == 7.0)
+    with rasterio.open(tmp_path / "tiled" / "fill_depth.tif") as ds:
+        fill = ds.read(1)
+    assert np.array_equal(fill, whole.result.fill_depth, equal_nan=True)
+    assert np.all(fill[3:6, 3:6] == 0.0)
+    assert tiled.edit_changes == whole.edit_changes == [6, 3]
+    summary = json.loads((tmp_path / "tiled" / "summary.json").read_text())
+    assert [f["cells_changed"] for f in summary["edits"]["features"]] == [6, 3]
+    assert "edits_input.geojson" in summary["files"]
+    # Reopening the folder reads the DEM again with the kept edits in place:
+    # onset minus edited ground is the stored fill depth in every cell.
+    folder = open_result_folder(tmp_path / "tiled")
+    assert folder.grid.read_window(4, 5, 0, 3).tolist() == [[2.0, 2.0, 2.0]]
+    with rasterio.open(dem) as ds:  # the DEM file itself is untouched
+        assert ds.read(1)[4, 1] == 6.0 and ds.read(1)[1, 1] == 6.0
+
+
+def test_stage_on_a_folder_re_applies_the_edits_kept_in_it(tmp_path, capsys):
+    # The basin DEM with the culvert (basin onset 4 m) and the 7 m wall along
+    # row 1, columns 1-6. At a water level of 6.5 m, worked by hand:
+    # - the basin cells (2 m) are flooded through the culvert (onset 4 m <= 6.5),
+    #   3 x 3 = 9 cells at depth 6.5 - 2 = 4.5 m; without the culvert they are
+    #   flooded too (onset 6 m), so the culvert alone would not show here;
+    # - the wall cells (7 m after the edit) stay dry: 6 cells of state 1. On the
+    #   bare DEM they are 6 m ground reached from the edge at 6 m, so flooded.
+    # At 5 m the basin is flooded with the culvert (state 2, depth 3 m) but only
+    # shielded on the bare DEM (state 3: below the level, onset 6 m).
     dem = basin(tmp_path)
     edits = write_edits(
         tmp_path,
         {"type": "Feature", "properties": {"kind": "culvert", "invert": 3.0},
-         "geometry": {"type": "LineString", "coordinates": [centre(4, 4), centre(4, 0)]}})
-    code, _, err = run_cli(capsys, "analyse", str(dem), "--edits", str(edits),
-                           "--out", str(tmp_path / "edited"))
+         "geometry": {"type": "LineString", "coordinates": [centre(4, 4), centre(4, 0)]}},
+        {"type": "Feature", "properties": {"kind": "barrier", "crest": 7.0},
+         "geometry": {"type": "LineString", "coordinates": [centre(1, 1), centre(1, 6)]}},
+    )
+    folder = tmp_path / "edited"
+    code, _, err = run_cli(capsys, "analyse", str(dem), "--edits", str(edits), "--out", str(folder))
     assert code == 0, err
-    code, out, err = run_cli(capsys, "stage", str(tmp_path / "edited"), "--level", "5",
+    edits.unlink()  # the folder's own copy is what counts from here on
+    summary = json.loads((folder / "summary.json").read_text())
+    assert "edits_input.geojson" in summary["files"]
+    assert summary["edits"]["file"] == "edits_input.geojson"
+    assert "edits_input.geojson" in (folder / "README.txt").read_text()
+
+    code, out, err = run_cli(capsys, "stage", str(folder), "--level", "5", "--level", "6.5",
                              "--out", str(tmp_path / "stage"))
-    assert_one_line_error(code, out, err, "was made with edits")
+    assert code == 0, err
+    assert "with its edits" in out
+    with rasterio.open(tmp_path / "stage" / "water_state_5.00m.tif") as ds:
+        state5 = ds.read(1)
+    with rasterio.open(tmp_path / "stage" / "depth_5.00m.tif") as ds:
+        depth5 = ds.read(1)
+    with rasterio.open(tmp_path / "stage" / "water_state_6.50m.tif") as ds:
+        state65 = ds.read(1)
+    assert np.all(state5[3:6, 3:6] == 2) and np.allclose(depth5[3:6, 3:6], 3.0)
+    assert np.all(state65[1, 1:7] == 1)
+    assert np.all(state65[2, 1:7] == 2)
+
+    # The same folder without its copy of the edits: one line saying so.
+    (folder / "edits_input.geojson").unlink()
+    code, out, err = run_cli(capsys, "stage", str(folder), "--level", "5",
+                             "--out", str(tmp_path / "stage2"))
+    assert_one_line_error(code, out, err, "was made with edits", "edits_input.geojson")

@@ -710,3 +710,30 @@ def test_a_failed_write_keeps_the_old_file(tmp_path, bowl_table):
         write_assets_geojson(table, path)
     assert path.read_text(encoding="utf-8") == "old"
     assert [p.name for p in tmp_path.iterdir()] == ["assets.geojson"]
+
+
+def test_raising_a_sill_keeps_the_culverts_of_the_flood():
+    # The what-if of a controlling sill floods again with the same culverts.
+    # Hand-worked, 5 x 7 cells of 9 m with the west column at 0 m (outlets):
+    # a corridor along row 2, (2, 1) at 1, the sill (2, 2) at 3, (2, 3) and
+    # (2, 4) at 1, the place (2, 5) at 0; a culvert from (2, 1) to (2, 4),
+    # invert 5. The place's onset stage is 3 (over the sill; the culvert would
+    # need 5). Raising the sill by 4 m to 7: water comes through the culvert
+    # at 5, not over the sill at 7.
+    from affine import Affine
+
+    from sillmark.engine.culverts import culvert_edges
+    from sillmark.engine.flood import priority_flood
+
+    z = np.full((5, 7), 9.0, np.float32)
+    z[:, 0] = 0.0
+    z[2, 1:6] = [1.0, 3.0, 1.0, 1.0, 0.0]
+    dem = dem_from_array(z, transform=Affine(5, 0, 500000, 0, -5, 5000000))
+    outlets = np.zeros(z.shape, bool)
+    outlets[:, 0] = True
+    edges = culvert_edges(z.shape, [2], [1], [2], [4], [5.0])
+    result = priority_flood(dem.elevation, outlets, row_areas=dem.row_areas,
+                            transform=dem.transform, culverts=edges)
+    assert result.onset_stage[2, 5] == 3.0
+    w = raise_sill(dem, outlets, result, (2, 5), 4.0)
+    assert w.onset_after == 5.0

@@ -159,3 +159,70 @@ def test_bad_barrier_requests_get_a_clear_message(polder, body, fragment):
     r = plan(client, site_id, **body)
     assert r.status_code == 400, r.get_json()
     assert fragment in r.get_json()["error"]
+
+
+def test_a_drawn_polygon_keeps_every_cell_it_covers_dry(polder, tmp_path):
+    # The polygon covers the cell centres of rows 3-8, cols 3-9: the polder and
+    # the gap itself (and three levee cells), 6 x 7 = 42 cells. Working: the gap
+    # is now part of the place, so the wall cannot stand in it; the gap cells
+    # (4-6, 9) touch the floodplain (10.00 m) at col 10, rows 3-7 (rows 3 and 7
+    # diagonally), and every other side of the place is levee (13.00 m). The
+    # shortest barrier is those 5 floodplain cells, a straight run 5 cells long:
+    # 4 steps of 2 m plus half a step at each end, 10.0 m. The first of the
+    # place's cells to get wet is on the gap or in the polder, at 11.00 m.
+    from sillmark.run import analyse
+
+    client, site_id, tif = polder
+    corners = [centre(3, 3), centre(3, 9), centre(8, 9), centre(8, 3)]
+    ring = [[x + dx * CELL / 4, y + dy * CELL / 4] for (x, y), (dx, dy) in
+            zip(corners, [(-1, 1), (1, 1), (1, -1), (-1, -1)])]
+    polygon = {"type": "Polygon", "coordinates": [[*map(list, (lonlat(*p) for p in ring)),
+                                                   list(lonlat(*ring[0]))]]}
+    r = plan(client, site_id, polygon=polygon, level=12.0)
+    assert r.status_code == 200, r.get_json()
+    b = r.get_json()
+    assert b["place_cells"] == 42 and b["onset_stage"] == pytest.approx(11.0)
+    assert b["possible"] and b["needed"] and b["cells"] == 5
+    assert b["length"] == pytest.approx(10.0)
+    assert "drawn place of 42 cells" in b["name"]
+    dem = read_dem(tif)
+    (edit,) = read_edits(b["edits"], dem).items
+    assert sorted(zip(edit.rows.tolist(), edit.cols.tolist())) == [(r, 10) for r in range(3, 8)]
+    done = analyse(dem, build_outlets(dem, ("edge",)), tmp_path / "out", edits=b["edits"],
+                   derived=False)
+    s = done.result.onset_stage
+    assert float(s[3:9, 3:10].min()) >= 12.0  # was 11.00 m on the gap and in the polder
+    # The same polygon in the DEM's own CRS, named as the outlet files name it.
+    named = {"type": "Polygon", "crs": {"type": "name", "properties": {"name": "EPSG:32633"}},
+             "coordinates": [[*ring, ring[0]]]}
+    again = plan(client, site_id, polygon=named, level=12.0).get_json()
+    assert again["cells"] == 5 and again["place_cells"] == 42
+
+
+@pytest.mark.parametrize("polygon,fragment", [
+    ({"type": "LineString", "coordinates": [[0.0, 0.0], [0.1, 0.1]]}, "as a Polygon"),
+    ({"type": "Polygon", "coordinates": [[[0.0, 0.0], [0.1, 0.0], [0.1, 0.1], [0.0, 0.0]]]},
+     "covers no cell"),
+    ([1, 2], "GeoJSON geometry"),
+])
+def test_a_bad_polygon_gets_a_clear_message(polder, polygon, fragment):
+    client, site_id, _ = polder
+    r = plan(client, site_id, polygon=polygon, level=12)
+    assert r.status_code == 400, r.get_json()
+    assert fragment in r.get_json()["error"]
+
+
+def test_a_polygon_given_as_a_server_path_is_not_opened(polder, tmp_path):
+    # A valid polygon file on the server: its path as the polygon's text must be
+    # refused as text that is not JSON, never read as a file.
+    import json
+
+    client, site_id, _ = polder
+    ring = [list(lonlat(*centre(r, c))) for r, c in ((3, 3), (3, 8), (8, 8), (8, 3), (3, 3))]
+    path = tmp_path / "place.geojson"
+    path.write_text(json.dumps({"type": "Polygon", "coordinates": [ring]}))
+    for r in (plan(client, site_id, polygon=str(path), level=12),
+              client.post(f"/api/sites/{site_id}/barrier",
+                          data={"polygon": str(path), "level": "12"})):
+        assert r.status_code == 400, r.get_json()
+        assert "not valid JSON" in r.get_json()["error"]

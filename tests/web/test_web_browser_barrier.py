@@ -71,3 +71,45 @@ def test_the_planned_barrier_is_drawn_with_its_length_and_exported(served):
             context.close()
         finally:
             browser.close()
+
+
+def test_an_outlined_place_gets_its_barrier(served):
+    # The outline of rows 3-8, cols 3-9 (the polder and the gap) clicked corner by
+    # corner: tests/web/test_web_barrier.py works out its barrier, the 5 floodplain
+    # cells east of the gap.
+    from tests.web.test_web_barrier import CELL, centre
+    from tests.web_support import lonlat
+
+    origin, site_id = served
+    corners = [centre(3, 3), centre(3, 9), centre(8, 9), centre(8, 3)]
+    ring = [lonlat(x + dx * CELL / 4, y + dy * CELL / 4) for (x, y), (dx, dy) in
+            zip(corners, [(-1, 1), (1, 1), (1, -1), (-1, -1)])]
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, args=LAUNCH_ARGS)
+        try:
+            page = browser.new_page(viewport={"width": 1440, "height": 900})
+            errors: list[str] = []
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(f"{origin}/sites/{site_id}")
+            page.wait_for_selector("body[data-figures-level]", timeout=30_000)
+            page.click("button[data-tab=tab-assets]")
+            page.click("#barrier-outline")
+            for lon, lat in ring:  # the corner's position on the page, from the map itself
+                xy = page.evaluate(
+                    "([lat, lon]) => { var c = JSON.parse(document.getElementById('site-config')"
+                    ".textContent); var m = window[c.names.map]; var box = m.getContainer()"
+                    ".getBoundingClientRect(); var pt = m.latLngToContainerPoint([lat, lon]);"
+                    " return [box.left + pt.x, box.top + pt.y]; }", [lat, lon])
+                page.mouse.click(xy[0], xy[1])
+            assert page.evaluate("document.body.dataset.outlineCorners") == "4"
+            page.click("#barrier-outline")
+            assert "4 corners" in page.locator("#barrier-place").inner_text()
+            page.fill("#barrier-level", "12.00")
+            page.click("#barrier-submit")
+            page.wait_for_selector('body[data-barrier-state="planned"]', timeout=60_000)
+            assert page.evaluate("document.body.dataset.barrierCells") == "5"
+            assert float(page.evaluate("document.body.dataset.barrierLength")) == pytest.approx(10.0)
+            assert page.locator(".barrier-place-outline").count() == 1
+            assert errors == []
+        finally:
+            browser.close()

@@ -1,7 +1,8 @@
 /* Sillmark: the barrier planner on the site map.
  *
- * For the asset chosen in the table (site.js calls Sillmark.onAssetChosen) or the
- * last point clicked on the map, and a target level, asks the server for the
+ * For the asset chosen in the table (site.js calls Sillmark.onAssetChosen), the
+ * last point clicked on the map, or a place outlined on the map corner by corner
+ * (every cell inside must stay dry), and a target level, asks the server for the
  * shortest barrier that keeps the place dry up to that level, draws it as a line
  * labelled with its length on the ground and its cell count, says in words when no
  * barrier can do it, and offers the barrier as an edits file (GeoJSON) for
@@ -16,7 +17,10 @@
   var datum = config.datum || "";
   var base = "/api/sites/" + config.site_id;
   var layer = L.layerGroup().addTo(map);
-  var place = null;   // {asset: index} or {lon:, lat:}
+  var place = null;   // {asset: index}, {lon:, lat:} or {polygon: GeoJSON geometry}
+  var outline = L.layerGroup().addTo(map);
+  var corners = [];
+  S.outlining = false;
   var seq = 0;
 
   var levelInput = $("barrier-level");
@@ -26,6 +30,10 @@
 
   function choose(what, words, suggested) {
     place = what;
+    if (!what.polygon) {
+      corners = [];
+      if (S.outlining) { setOutlining(false); } else { drawOutline(); }
+    }
     $("barrier-place").textContent = words;
     $("barrier-submit").disabled = false;
     if (suggested !== null && isFinite(suggested)) { levelInput.value = suggested.toFixed(2); }
@@ -47,7 +55,60 @@
       a.onset_stage === null ? null : a.onset_stage + step);
   };
 
+  function drawOutline() {
+    outline.clearLayers();
+    var style = { color: "#3b1f0e", weight: 2, dashArray: "5 4", fillColor: "#f4d35e", fillOpacity: 0.2,
+                  className: "barrier-place-outline" };
+    if (corners.length >= 3) { L.polygon(corners, style).addTo(outline); }
+    else if (corners.length === 2) { L.polyline(corners, style).addTo(outline); }
+    else if (corners.length === 1) { L.circleMarker(corners[0], { radius: 4, color: "#3b1f0e" }).addTo(outline); }
+    $("barrier-outline-undo").disabled = !S.outlining || corners.length === 0;
+    document.body.dataset.outlineCorners = String(corners.length);
+  }
+
+  function setOutlining(on) {
+    S.outlining = on;
+    $("barrier-outline").textContent = on ? "Finish outline" : "Outline a place";
+    map.getContainer().classList.toggle("tracing", on);
+    if (on) { map.doubleClickZoom.disable(); } else { map.doubleClickZoom.enable(); }
+    drawOutline();
+  }
+
+  $("barrier-outline").addEventListener("click", function () {
+    if (!S.outlining) {
+      if (S.tracing) {
+        S.show($("barrier-error"), "Pause the water-body tracing first; both use clicks on the map.");
+        return;
+      }
+      corners = [];
+      place = null;
+      $("barrier-submit").disabled = true;
+      $("barrier-result").hidden = true;
+      layer.clearLayers();
+      S.show($("barrier-error"), "");
+      $("barrier-place").textContent = "Click the map at each corner of the place, then press \u201cFinish outline\u201d.";
+      setOutlining(true);
+      return;
+    }
+    if (corners.length < 3) {
+      S.show($("barrier-error"), "A place needs at least three corners; keep clicking the map.");
+      return;
+    }
+    setOutlining(false);
+    var ring = corners.map(function (p) { return [+p.lng.toFixed(8), +p.lat.toFixed(8)]; });
+    choose({ polygon: { type: "Polygon", coordinates: [ring.concat([ring[0]])] } },
+      "The place outlined with " + corners.length + " corners (every cell inside must stay dry).", null);
+    drawOutline();
+  });
+
+  $("barrier-outline-undo").addEventListener("click", function () { corners.pop(); drawOutline(); });
+
   map.on("click", function (ev) {
+    if (S.outlining) {
+      corners.push(ev.latlng.wrap());
+      drawOutline();
+      return;
+    }
     if (S.tracing) { return; }
     var ll = ev.latlng.wrap();
     choose({ lon: ll.lng, lat: ll.lat },

@@ -380,7 +380,8 @@
   }
 
   map.on("click", function (ev) {
-    if (S.tracing) { return; }  // clicks place a water body's corners (waterbody.js)
+    // Clicks place a water body's corners (waterbody.js) or a place's (barrier.js).
+    if (S.tracing || S.outlining) { return; }
     var ll = ev.latlng.wrap();
     var url = base + "/cell?lon=" + ll.lng.toFixed(8) + "&lat=" + ll.lat.toFixed(8) +
       "&level=" + encodeURIComponent(levelText(level));

@@ -55,7 +55,13 @@
     redraw();
   });
 
-  $("draw-start").addEventListener("click", function () { setTracing(!S.tracing); });
+  $("draw-start").addEventListener("click", function () {
+    if (!S.tracing && S.outlining) {
+      S.show($("draw-error"), "Finish the outline of the barrier's place first; both use clicks on the map.");
+      return;
+    }
+    setTracing(!S.tracing);
+  });
   $("draw-undo").addEventListener("click", function () { points.pop(); redraw(); });
   $("draw-clear").addEventListener("click", function () { points = []; redraw(); });
   document.querySelectorAll('input[name="draw-kind"]').forEach(function (r) {
