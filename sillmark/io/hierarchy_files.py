@@ -206,12 +206,18 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM", *,
         counts = np.bincount(owner[shown], minlength=n)
         starts = np.concatenate([[0], np.cumsum(counts)]).astype(starts.dtype)
         child_ids = child_ids[shown]
+    # Only the rows kept are formatted and reprojected (a significance minimum
+    # may keep a few hundred of a million nodes); the others come out as NaN and
+    # empty text, then are dropped below.
+    kept = np.arange(n) if listed is None else np.flatnonzero(listed)
     lon = np.full(n, np.nan)
     lat = np.full(n, np.nan)
-    ok = np.isfinite(t.spill_x) & np.isfinite(t.spill_y)
+    ok = np.zeros(n, dtype=bool)
+    ok[kept] = np.isfinite(t.spill_x[kept]) & np.isfinite(t.spill_y[kept])
     if ok.any():
         lon[ok], lat[ok] = wgs84_transformer(dem).transform(t.spill_x[ok], t.spill_y[ok])
-    children = _children_texts(starts, child_ids, np.arange(n), "", "", _CHILD_SEPARATOR)
+    children = np.full(n, "", dtype=object)
+    children[kept] = _children_texts(starts, child_ids, kept, "", "", _CHILD_SEPARATOR)
     area = np.asarray(t.area_m2, dtype=np.float64)
     volume = np.asarray(t.volume_m3, dtype=np.float64)
     cols: dict[str, np.ndarray] = {
@@ -220,7 +226,7 @@ def node_table_columns(t: HierarchyTable, unit: VerticalUnit, dem: "DEM", *,
         "depression": t.depression,
         "is_leaf": np.where(t.is_leaf, "true", "false"),
         "subtree_size": t.subtree_size,
-        "children": np.array(children, dtype=object),
+        "children": children,
         "pit_row": t.pit_row,
         "pit_col": t.pit_col,
         f"pit_elevation_{v}": t.pit_elevation,

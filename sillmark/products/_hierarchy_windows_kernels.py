@@ -83,5 +83,20 @@ def _batches(row_min, row_max, col_min, col_max, budget):
     return out[:runs]
 
 
+def _tree_depth(parent):
+    """Most nesting levels of a forest in post-order (see hierarchy_windows.tree_depth)."""
+    n = parent.shape[0]
+    depth = np.zeros(n + 1, dtype=np.int64)
+    most = 0
+    for v in range(n, 0, -1):  # parents come after their children: settled first
+        p = parent[v - 1]
+        d = depth[p] + 1 if p > 0 else 1
+        depth[v] = d
+        if d > most:
+            most = d
+    return most
+
+
 add_bounds = njit(nogil=True, cache=True)(_add_bounds)
+tree_depth = njit(nogil=True, cache=True)(_tree_depth)
 batches = njit(nogil=True, cache=True)(_batches)

@@ -306,8 +306,9 @@ def tree_depth(parent: np.ndarray) -> int:
     >>> tree_depth(np.array([3, 3, 0, 0]))
     2
     """
-    depth = np.zeros(parent.shape[0] + 1, dtype=np.int64)
-    for v in range(parent.shape[0], 0, -1):
-        p = int(parent[v - 1])
-        depth[v] = depth[p] + 1 if p else 1
-    return int(depth.max(initial=0))
+    parent = np.ascontiguousarray(parent, dtype=np.int64)
+    if parent.ndim != 1 or np.any((parent < 0) | (parent > parent.shape[0])):
+        raise InvalidParameter("parents must be node ids 0..n of a 1-D forest")
+    if np.any((parent > 0) & (parent <= np.arange(1, parent.shape[0] + 1))):
+        raise InvalidParameter("the node ids are not in post-order (a parent before its child)")
+    return int(_hierarchy_windows_kernels.tree_depth(parent))
