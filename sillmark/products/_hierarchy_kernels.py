@@ -67,8 +67,8 @@ def _grown_u8(values, count):
     return bigger
 
 
-def _sweep(cells, zs, rank, offsets, dep_sorted, n_dep):
-    """Merge tree of the depression cells by a union-find sweep in elevation order.
+def _sweep(cells, zs, rank, offsets, dep_sorted, n_dep, k0, k1, uf, comp_node, owner):
+    """Merge tree of the depression cells ``k0:k1`` by a union-find sweep in elevation order.
 
     Cells are added in ascending elevation; a cell joins the components of its
     neighbours already added (Kruskal's algorithm on the grid graph whose edge
@@ -82,19 +82,23 @@ def _sweep(cells, zs, rank, offsets, dep_sorted, n_dep):
     without a node gets a leaf: that is a pit (a plateau with no lower
     neighbour), its lowest cell the first of the component.
 
-    Returns ``owner`` (the node whose own cells include each sorted cell: the
-    node current for its component at the end of its batch), the node arrays
+    Fills ``owner[k0:k1]`` (the node whose own cells include each sorted cell:
+    the node current for its component at the end of its batch) and returns the
+    node arrays
     (``lo``: elevation from which the node is one body of water; ``internal``;
     ``parent`` (-1 none), ``alias`` (a node merged into another at the same
     elevation points to it), ``pit_pos`` (position of the lowest cell),
     ``spill_cell`` (padded flat index where the node first met another one,
     -1 for none yet)), the node count, and the top node of each depression.
+
+    Positions ``k0:k1`` hold whole depressions, and depressions never touch,
+    so ranges that split the cells at depression boundaries can be swept at
+    the same time: each writes only its own entries of the shared per-cell
+    arrays ``uf`` (``arange``), ``comp_node`` (-1) and ``owner``, and numbers
+    its own nodes from 0 (the caller shifts them). A neighbour outside the
+    range is never joined.
     """
-    m = cells.shape[0]
     n_off = offsets.shape[0]
-    uf = np.arange(m, dtype=np.int32)
-    comp_node = np.full(m, -1, dtype=np.int32)
-    owner = np.empty(m, dtype=np.int32)
 
     cap = 1024
     lo = np.zeros(cap, dtype=np.float32)
@@ -105,18 +109,18 @@ def _sweep(cells, zs, rank, offsets, dep_sorted, n_dep):
     spill_cell = np.full(cap, -1, dtype=np.int64)
     n_nodes = 0
 
-    i = 0
-    while i < m:
+    i = k0
+    while i < k1:
         e = zs[i]
         j = i
-        while j < m and zs[j] == e:
+        while j < k1 and zs[j] == e:
             j += 1
         for k in range(i, j):
             c = cells[k]
             rk = np.int32(k)  # root of the new cell's component, kept current
             for t in range(n_off):
                 q = rank[c + offsets[t]]
-                if q < 0 or q >= k:
+                if q < k0 or q >= k:
                     continue
                 rq = _find(uf, q)
                 if rq == rk:
@@ -186,7 +190,7 @@ def _sweep(cells, zs, rank, offsets, dep_sorted, n_dep):
         i = j
 
     top_of_dep = np.full(n_dep + 1, -1, dtype=np.int32)
-    for k in range(m):
+    for k in range(k0, k1):
         d = dep_sorted[k]
         if top_of_dep[d] < 0:
             top_of_dep[d] = comp_node[_find(uf, np.int32(k))]
@@ -197,13 +201,12 @@ def _sweep(cells, zs, rank, offsets, dep_sorted, n_dep):
         while p >= 0 and alias[p] != p:
             p = alias[p]
         parent[x] = p
-    for k in range(m):
+    for k in range(k0, k1):
         nd = owner[k]
         while alias[nd] != nd:
             nd = alias[nd]
         owner[k] = nd
     return (
-        owner,
         lo[:n_nodes],
         internal[:n_nodes],
         parent[:n_nodes],

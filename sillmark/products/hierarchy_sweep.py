@@ -16,6 +16,8 @@ doi:10.5194/esurf-8-431-2020
 
 from __future__ import annotations
 
+import concurrent.futures
+import os
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -196,7 +198,7 @@ def hierarchy_of_cells(
     offsets = _neighbour_offsets(connectivity, width)
 
     (owner, lo_old, internal_old, parent_old, alias_old, pit_pos_old, spill_cell_old,
-     n_old, top_of_dep) = _hierarchy_kernels.sweep(padded, zs, rank, offsets, dep_sorted, np.int64(n_dep))
+     n_old, top_of_dep) = _swept(padded, zs, rank, offsets, dep_sorted, n_dep, group_start)
     del rank, padded
 
     # Renumber the live nodes in post-order, children lowest pit first.
@@ -315,6 +317,65 @@ def hierarchy_of_cells(
             cells=cells, elevation=zs, positions=positions.astype(np.int32), start=cell_start,
         ),
     )
+
+
+#: Depression cells per part of the sweep run on threads of their own (at most
+#: one part per CPU); fewer cells are swept in one part.
+SWEEP_PART_CELLS = 1 << 20
+
+
+def _sweep_bounds(group_start: np.ndarray, m: int) -> list[int]:
+    """Cut positions ``0..m`` into parts of whole depressions, about even in cells."""
+    parts = min(os.cpu_count() or 1, m // SWEEP_PART_CELLS)
+    if parts < 2:
+        return [0, m]
+    wanted = np.arange(1, parts) * (m / parts)
+    at = np.minimum(np.searchsorted(group_start, wanted), group_start.shape[0] - 1)
+    cuts = group_start[at]
+    return sorted({0, m, *(int(c) for c in cuts)})
+
+
+def _swept(cells, zs, rank, offsets, dep_sorted, n_dep: int, group_start):
+    """:func:`~sillmark.products._hierarchy_kernels.sweep` over every position, in
+    parts of whole depressions on threads (the kernel releases the GIL), the parts'
+    nodes numbered one after another. The parts are independent (depressions never
+    touch), and the nodes are renumbered in post-order afterwards, so any cut gives
+    the same hierarchy."""
+    m = cells.shape[0]
+    uf = np.arange(m, dtype=np.int32)
+    comp_node = np.full(m, -1, dtype=np.int32)
+    owner = np.empty(m, dtype=np.int32)
+    bounds = _sweep_bounds(group_start, m)
+
+    def part(k: int):
+        return _hierarchy_kernels.sweep(cells, zs, rank, offsets, dep_sorted, np.int64(n_dep),
+                                        np.int64(bounds[k]), np.int64(bounds[k + 1]),
+                                        uf, comp_node, owner)
+
+    if len(bounds) == 2:
+        parts = [part(0)]
+    else:
+        with concurrent.futures.ThreadPoolExecutor(len(bounds) - 1) as pool:
+            parts = list(pool.map(part, range(len(bounds) - 1)))
+    if len(parts) == 1:
+        return (owner, *parts[0])
+    lo, internal, parent, alias, pit_pos, spill_cell = ([] for _ in range(6))
+    top_of_dep = np.full(n_dep + 1, -1, dtype=np.int32)
+    offset = 0
+    for k, (p_lo, p_internal, p_parent, p_alias, p_pit, p_spill, p_n, p_top) in enumerate(parts):
+        lo.append(p_lo)
+        internal.append(p_internal)
+        parent.append(np.where(p_parent >= 0, p_parent + offset, -1).astype(np.int32))
+        alias.append((p_alias + offset).astype(np.int32))
+        pit_pos.append(p_pit)
+        spill_cell.append(p_spill)
+        owner[bounds[k]:bounds[k + 1]] += np.int32(offset)
+        mine = p_top >= 0
+        top_of_dep[mine] = p_top[mine] + offset
+        offset += int(p_n)
+    return (owner, np.concatenate(lo), np.concatenate(internal), np.concatenate(parent),
+            np.concatenate(alias), np.concatenate(pit_pos), np.concatenate(spill_cell),
+            offset, top_of_dep)
 
 
 def site_hierarchy(dem: "DEM", result: SpillResult) -> DepressionHierarchy:
