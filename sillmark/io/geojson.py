@@ -13,7 +13,6 @@ import numpy as np
 import pyproj
 import shapely
 import shapely.geometry
-from shapely.geometry.polygon import orient
 
 from sillmark import SCREENING_CAUTION
 from sillmark.errors import InvalidParameter
@@ -38,26 +37,30 @@ COORDINATE_DECIMALS = 8
 
 def _oriented(geom):
     """Exterior rings counterclockwise, holes clockwise (RFC 7946, section 3.1.6)."""
-    if geom.geom_type == "Polygon":
-        return orient(geom, sign=1.0)
-    return shapely.geometry.MultiPolygon([orient(p, sign=1.0) for p in geom.geoms])
-
-
-def _ring(ring) -> list:
-    return np.round(np.asarray(ring.coords)[:, :2], COORDINATE_DECIMALS).tolist()
+    if geom.geom_type not in ("Polygon", "MultiPolygon"):
+        raise InvalidParameter(f"cannot write a {geom.geom_type} as a depression outline")
+    return shapely.orient_polygons(geom, exterior_cw=False)
 
 
 def _geojson_geometry(geom) -> dict:
+    """The GeoJSON geometry of a (Multi)Polygon, positions rounded to
+    :data:`COORDINATE_DECIMALS` places: every ring's coordinates taken, rounded and
+    listed in one go (a survey DEM's outline may hold tens of thousands of holes)."""
+    if geom.geom_type not in ("Polygon", "MultiPolygon"):
+        raise InvalidParameter(f"cannot write a {geom.geom_type} as a depression outline")
+    polygons = shapely.get_parts(geom)
+    rings, polygon_of_ring = shapely.get_rings(polygons, return_index=True)
+    xy = np.round(shapely.get_coordinates(rings), COORDINATE_DECIMALS)
+    ends = np.cumsum(shapely.get_num_coordinates(rings)).tolist()
+    points = xy.tolist()
+    per_polygon: list[list] = [[] for _ in range(len(polygons))]
+    start = 0
+    for k, end in zip(polygon_of_ring.tolist(), ends):
+        per_polygon[k].append(points[start:end])
+        start = end
     if geom.geom_type == "Polygon":
-        return {"type": "Polygon", "coordinates": [_ring(geom.exterior)] + [_ring(r) for r in geom.interiors]}
-    if geom.geom_type == "MultiPolygon":
-        return {
-            "type": "MultiPolygon",
-            "coordinates": [
-                [_ring(p.exterior)] + [_ring(r) for r in p.interiors] for p in geom.geoms
-            ],
-        }
-    raise InvalidParameter(f"cannot write a {geom.geom_type} as a depression outline")
+        return {"type": "Polygon", "coordinates": per_polygon[0]}
+    return {"type": "MultiPolygon", "coordinates": per_polygon}
 
 
 def write_feature_collection(path: str | os.PathLike, members: dict, features) -> Path:
