@@ -154,29 +154,31 @@ def write_spill_points_table(table, dem: "DEM", path: str | os.PathLike, *,
     t = table
     unit = unit_of(dem)
     crs = horizontal_crs(dem)
-    x = np.array(t.spill_x, dtype=np.float64)  # copies: the table stays as it is
-    y = np.array(t.spill_y, dtype=np.float64)
+    # Only the rows written are reprojected and formatted (a significance minimum
+    # may keep a few hundred of 10^5 depressions).
+    picked = np.arange(len(t)) if rows is None else np.flatnonzero(np.asarray(rows, dtype=bool))
+    x = np.asarray(t.spill_x, dtype=np.float64)[picked]  # copies: the table stays as it is
+    y = np.asarray(t.spill_y, dtype=np.float64)[picked]
     missing = ~(np.isfinite(x) & np.isfinite(y))
     if missing.any():
         # No coordinates from the engine: use the cell centres from the DEM's transform.
         tr = dem.transform
-        cc = t.spill_col[missing] + 0.5
-        rr = t.spill_row[missing] + 0.5
+        cc = np.asarray(t.spill_col)[picked][missing] + 0.5
+        rr = np.asarray(t.spill_row)[picked][missing] + 0.5
         x[missing] = tr.a * cc + tr.b * rr + tr.c
         y[missing] = tr.d * cc + tr.e * rr + tr.f
-    lon, lat = to_wgs84(crs).transform(x, y) if len(t) else (x, y)
+    lon, lat = to_wgs84(crs).transform(x, y) if len(picked) else (x, y)
 
     # Plain Python values up front: indexing numpy arrays value by value is slow.
-    ids = np.asarray(t.id).tolist()
-    to = np.asarray(t.spills_to).tolist()
-    spill = [float(v) if v else None for v in float_texts(np.asarray(t.spill_elevation, dtype=np.float32))]
+    ids = np.asarray(t.id)[picked].tolist()
+    to = np.asarray(t.spills_to)[picked].tolist()
+    spill = [float(v) if v else None
+             for v in float_texts(np.asarray(t.spill_elevation, dtype=np.float32)[picked])]
     lons = np.asarray(lon, dtype=np.float64).tolist()
     lats = np.asarray(lat, dtype=np.float64).tolist()
 
-    picked = range(len(t)) if rows is None else np.flatnonzero(np.asarray(rows, dtype=bool)).tolist()
-
     def features() -> Iterator[dict]:
-        for k in picked:
+        for k in range(len(picked)):
             yield {
                 "type": "Feature",
                 "id": ids[k],
