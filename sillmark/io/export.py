@@ -190,10 +190,11 @@ def write_result_files(
             progress(name, 1, 1)
         return written
 
-    with concurrent.futures.ThreadPoolExecutor(1, thread_name_prefix="sillmark-rasters") as pool:
+    with concurrent.futures.ThreadPoolExecutor(2, thread_name_prefix="sillmark-write") as pool:
         # The four rasters are written on a thread of their own while this one
-        # builds the hierarchy and the tables: GDAL's compression and the
-        # hierarchy kernels both release the GIL, so on two cores they overlap.
+        # builds the hierarchy and the tables, and the hierarchy files on another
+        # beside the outlines: GDAL and the compiled kernels release the GIL, so
+        # on two cores the steps overlap.
         rasters = pool.submit(lambda: [
             write_onset_stage(result, dem, out / FILE_NAMES[0], progress=progress),
             write_fill_depth(result, dem, out / FILE_NAMES[1], progress=progress),
@@ -201,7 +202,7 @@ def write_result_files(
             write_flood_tree(result, dem, out / FILE_NAMES[3], progress=progress),
         ])
         try:
-            return _write_tables(result, dem, outlets, out, step, progress, rasters,
+            return _write_tables(result, dem, outlets, out, step, progress, rasters, pool,
                                  minimum=minimum, accuracy_stated=accuracy_stated,
                                  full_inventory=full_inventory, vector_format=vector_format)
         except BaseException:
@@ -220,9 +221,10 @@ def _one_at_a_time(progress: Progress) -> Progress:
     return report
 
 
-def _write_tables(result, dem, outlets, out: Path, step, progress, rasters, *, minimum,
+def _write_tables(result, dem, outlets, out: Path, step, progress, rasters, pool, *, minimum,
                   accuracy_stated, full_inventory, vector_format) -> ResultFiles:
-    """Every file but the four rasters (``rasters``, a future of their paths)."""
+    """Every file but the four rasters (``rasters``, a future of their paths); the
+    hierarchy files on ``pool`` beside the tables and outlines."""
     source = ArraySource(dem, result)
     rows = listed = extra = member = built = None
     if minimum is not None:
@@ -243,14 +245,6 @@ def _write_tables(result, dem, outlets, out: Path, step, progress, rasters, *, m
         if progress is not None:
             progress(step_name, 1, 1)
 
-    paths = [
-        step(FILE_NAMES[4], lambda: write_depression_table_csv(
-            result.depressions, dem, out / FILE_NAMES[4], rows=rows, extra=extra)),
-        step(FILE_NAMES[5], lambda: write_depression_layer(
-            source, out, rows=rows, extra=extra, vector_format=vector_format)),
-        step(FILE_NAMES[6], lambda: write_spill_point_layer(
-            result.depressions, dem, out, rows=rows, vector_format=vector_format)),
-    ]
     names = HIERARCHY_FILE_NAMES
 
     def hierarchy_step(step: str, done: int, total: int) -> None:
@@ -262,9 +256,18 @@ def _write_tables(result, dem, outlets, out: Path, step, progress, rasters, *, m
         if done < total:
             progress(names[done], 0, 1)
 
-    written = write_hierarchy_files(source, out, progress=hierarchy_step, listed=listed,
-                                    hierarchy=built)
+    hierarchy_files = pool.submit(write_hierarchy_files, source, out, progress=hierarchy_step,
+                                  listed=listed, hierarchy=built)
     del built
+    paths = [
+        step(FILE_NAMES[4], lambda: write_depression_table_csv(
+            result.depressions, dem, out / FILE_NAMES[4], rows=rows, extra=extra)),
+        step(FILE_NAMES[5], lambda: write_depression_layer(
+            source, out, rows=rows, extra=extra, vector_format=vector_format)),
+        step(FILE_NAMES[6], lambda: write_spill_point_layer(
+            result.depressions, dem, out, rows=rows, vector_format=vector_format)),
+    ]
+    written = hierarchy_files.result()
     paths = rasters.result() + paths + written.files
     summary_name = FILE_NAMES[-1]
     paths.append(step(README_NAME, lambda: write_readme(
