@@ -89,7 +89,10 @@ def child(kind: str, path: str, out: str) -> dict:
                 _reset_peak()
 
         from sillmark.grid.dem import read_dem
+        from sillmark.process_memory import return_freed_memory
         from sillmark.products.significance import site_minimum
+
+        return_freed_memory()  # as the command does
 
         dem = read_dem(path)  # as the command does: in memory, with its default minimum
         run = analyse(dem, ("edge",), out, progress=progress,

@@ -49,6 +49,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     import rasterio.errors
 
     from sillmark.errors import SillmarkError
+    from sillmark.process_memory import return_freed_memory
+
+    return_freed_memory()  # whole-grid arrays go back to the system when freed
 
     try:
         return args.run(args)

@@ -42,6 +42,7 @@ import threading
 import time
 from pathlib import Path
 
+from sillmark.process_memory import return_freed_memory
 from sillmark.web import db, layout
 from sillmark.web.worker import discard_partial_output, run_job
 
@@ -130,6 +131,7 @@ def _process_main(db_path: str, data_dir: str, run_id: int, parent_pid: int | No
     if parent_pid is not None:
         end_with_parent(parent_pid)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    return_freed_memory()  # whole-grid arrays go back to the system when freed
     run_job(db_path, data_dir, run_id)
 
 
