@@ -177,10 +177,10 @@ def create_app(test_config: dict | None = None) -> Flask:
     if app.config["REGISTER_DEMO"]:
         conn = db.connect(db_path)
         try:
-            run_id = app.extensions["sillmark"].registry.register_demo(conn)
+            queued = app.extensions["sillmark"].registry.register_demo(conn)
         finally:
             conn.close()
-        if run_id is not None:
+        for run_id in queued:
             runner.submit(run_id)
     return app
 

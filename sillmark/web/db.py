@@ -306,3 +306,20 @@ def get_site(conn: sqlite3.Connection, site_id: int) -> sqlite3.Row | None:
     if not _storable(site_id):
         return None
     return conn.execute("SELECT * FROM sites WHERE id = ?", (site_id,)).fetchone()
+
+
+def queue_scenario_run(conn: sqlite3.Connection, site_id: int, scenario_id: int,
+                       base_run_id: int, base_settings: dict, edits_file: str,
+                       edits_name: str) -> int:
+    """Queue a scenario's run with its base run's settings and the scenario's
+    edits file; returns the run's id. Call inside a transaction."""
+    settings = dict(base_settings)
+    settings["scenario"] = {"id": scenario_id, "edits_file": edits_file, "edits_name": edits_name}
+    cur = conn.execute(
+        "INSERT INTO runs(site_id, created_utc, status, phase, settings, scenario_id) "
+        "VALUES (?, ?, ?, ?, ?, ?)",
+        (site_id, utc_now(), QUEUED, "queued", dumps(settings), scenario_id))
+    run_id = int(cur.lastrowid)
+    conn.execute("UPDATE scenarios SET run_id = ?, base_run = ? WHERE id = ?",
+                 (run_id, int(base_run_id), scenario_id))
+    return run_id

@@ -215,16 +215,8 @@ def create(site_id: int):
 
 def _queue(conn, site_id: int, scenario_id: int, base, rel: str, source: str) -> int:
     """Queue the scenario's run with the base run's settings; inside a transaction."""
-    settings = db.loads(base["settings"], {})
-    settings["scenario"] = {"id": scenario_id, "edits_file": rel, "edits_name": source}
-    cur = conn.execute(
-        "INSERT INTO runs(site_id, created_utc, status, phase, settings, scenario_id) "
-        "VALUES (?, ?, ?, ?, ?, ?)",
-        (site_id, db.utc_now(), db.QUEUED, "queued", db.dumps(settings), scenario_id))
-    run_id = int(cur.lastrowid)
-    conn.execute("UPDATE scenarios SET run_id = ?, base_run = ? WHERE id = ?",
-                 (run_id, int(base["id"]), scenario_id))
-    return run_id
+    return db.queue_scenario_run(conn, site_id, scenario_id, int(base["id"]),
+                                 db.loads(base["settings"], {}), rel, source)
 
 
 def _busy(conn, row) -> bool:

@@ -30,6 +30,7 @@ from sillmark.errors import (
 from sillmark.grid.assets import read_assets
 from sillmark.grid.dem import DEM, read_dem
 from sillmark.grid.dem_grid import read_dem_grid
+from sillmark.grid.edits import read_edits
 from sillmark.grid.outlets import build_outlets
 from sillmark.grid.raster_files import raster_outline
 from sillmark.io.geotiff import write_dem_copy
@@ -321,20 +322,23 @@ class Registry:
                 shutil.copyfile(water_file, target)
         return run_id
 
-    def register_demo(self, conn: sqlite3.Connection) -> int | None:
-        """Register the demo site (once per data folder) and queue its analysis.
+    def register_demo(self, conn: sqlite3.Connection) -> list[int]:
+        """Register the demo site (once per data folder) and queue its analysis;
+        returns the runs queued (none when it was registered already).
 
         Caddlewick on the River Torvey (invented): ``riverbend.tif`` with the DEM
-        edge and the river line as outlets, D8, and its asset table.
+        edge and the river line as outlets, D8, and its asset table; and its
+        scenario "Ford Road culvert" (``ford_road_culvert.geojson``), queued
+        after the site's own run.
         """
         if db.get_setting(conn, "demo_registered") is not None:
-            return None
+            return []
         demo = Path(self.config["DEMO_DIR"])
         dem_src, river, assets = demo / "riverbend.tif", demo / "river.geojson", demo / "riverbend_assets.csv"
         if not dem_src.is_file():
             with db.transaction(conn):
                 db.set_setting(conn, "demo_registered", "missing")
-            return None
+            return []
 
         dem = read_dem(dem_src)
         info = dem_info(dem, file_bytes=dem_src.stat().st_size)
@@ -379,8 +383,22 @@ class Registry:
                 (site_id, db.utc_now(), db.QUEUED, "queued", db.dumps(settings)),
             )
             run_id = int(cur.lastrowid)
+            runs = [run_id]
+            culvert = demo / "ford_road_culvert.geojson"
+            if culvert.is_file():
+                edits_rel = "scenarios/" + layout.new_name(".geojson")
+                (folder / edits_rel).parent.mkdir(parents=True, exist_ok=True)
+                shutil.copyfile(culvert, folder / edits_rel)
+                count = len(read_edits(folder / edits_rel, dem))
+                cur = conn.execute(
+                    "INSERT INTO scenarios(site_id, name, created_utc, edits_file, edits_name, "
+                    "edit_count, base_run) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    (site_id, "Ford Road culvert", db.utc_now(), edits_rel, culvert.name, count,
+                     run_id))
+                runs.append(db.queue_scenario_run(conn, site_id, int(cur.lastrowid), run_id,
+                                                  settings, edits_rel, culvert.name))
             db.set_setting(conn, "demo_registered", str(site_id))
-        return run_id
+        return runs
 
     def rerun(self, conn: sqlite3.Connection, site_id: int) -> int:
         """Queue the analysis again with the site's current settings."""

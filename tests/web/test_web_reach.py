@@ -238,10 +238,18 @@ def test_demo_site_is_registered_with_the_demo_roads_and_refuges(tmp_path):
         pytest.skip("demo_dem/riverbend.tif is missing")
     conn = db.connect(svc.db_path)
     try:
-        run_id = svc.registry.register_demo(conn)
+        run_id, culvert_run = svc.registry.register_demo(conn)
         settings = db.loads(db.get_run(conn, run_id)["settings"])
+        # The demo's culvert scenario is queued after the site's run, with its settings.
+        scenario = conn.execute("SELECT * FROM scenarios WHERE site_id = 1").fetchone()
+        culvert_settings = db.loads(db.get_run(conn, culvert_run)["settings"])
+        assert svc.registry.register_demo(conn) == []  # once per data folder
     finally:
         conn.close()
+    assert (scenario["name"], scenario["base_run"], scenario["run_id"]) == \
+        ("Ford Road culvert", run_id, culvert_run)
+    assert culvert_settings["scenario"]["edits_name"] == "ford_road_culvert.geojson"
+    assert {k: v for k, v in culvert_settings.items() if k != "scenario"} == settings
     assert set(settings["reach"]) == {"refuges", "roads"}
     folder = layout.site_dir(svc.data_dir, 1)
     for kind, entry in settings["reach"].items():
