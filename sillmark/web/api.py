@@ -34,7 +34,17 @@ from sillmark.io.styles import write_styles
 from sillmark.io.summary import FILE_NAMES
 from sillmark.products.source import ArraySource
 from sillmark.units import datum_phrase
-from sillmark.web import barriers, db, depression_index, exports, get_db, layout, render, services
+from sillmark.web import (
+    barriers,
+    db,
+    depression_index,
+    exports,
+    get_db,
+    layout,
+    render,
+    scenarios,
+    services,
+)
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.site_data import parse_level
 from sillmark.web.sites import run_dict
@@ -328,7 +338,17 @@ def barrier(site_id: int):
     level = parse_level(values.get("level"))
     row, data = open_site(site_id)
     _, placed = site_assets(site_id, data)
-    return jsonify(barriers.barrier_report(data, placed, values, level, row["vertical_datum"]))
+    ground = None
+    scenario = values.get("scenario")
+    if scenario is not None and str(scenario).strip() not in ("", "site"):
+        try:
+            scenario_id = int(str(scenario).strip())
+        except ValueError:
+            raise InvalidParameter("give the scenario as its id (scenario=3), or leave it out "
+                                   "to plan on the site as it is") from None
+        ground = scenarios.planning_ground(site_id, scenario_id)
+    return jsonify(barriers.barrier_report(data, placed, values, level, row["vertical_datum"],
+                                           ground=ground))
 
 
 # --------------------------------------------------------------------------- downloads

@@ -14,15 +14,21 @@ an edits file (one ``barrier`` feature per piece, crest ``L``) that
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import math
+from pathlib import Path
+from typing import Any
 
 import numpy as np
+import pyproj
 
 from sillmark import SCREENING_CAUTION
+from sillmark.engine.culverts import culvert_edges
 from sillmark.engine.flood import OUTLET_CODE
 from sillmark.errors import InvalidParameter, LocationOutsideDEM
+from sillmark.grid.crs import to_wgs84
 from sillmark.grid.edits import read_edits
 from sillmark.grid.ground import ground_unit, position_text
 from sillmark.grid.places import read_place_polygon
@@ -106,7 +112,67 @@ def _one_cell(data, row: int, col: int) -> np.ndarray:
     return mask
 
 
-def barrier_report(data, assets, values: dict, level: np.float32, datum: str | None = None) -> dict:
+@dataclasses.dataclass(frozen=True)
+class PlanningGround:
+    """The ground a barrier is planned on: the site's, or a scenario's (its edits in place).
+
+    ``elevation`` and ``onset_stage`` are whole-grid arrays; ``culverts`` the
+    scenario's culverts and flap valves as edges of the flood graph (None for
+    none); ``features`` the scenario's own edits, lon/lat, which a saved
+    scenario keeps beside the wall (None when the file names another CRS).
+    """
+
+    key: str
+    label: str
+    elevation: np.ndarray
+    onset_stage: np.ndarray
+    culverts: Any = None
+    features: list | None = None
+
+
+def site_ground(data) -> PlanningGround:
+    """The site's own ground: its DEM and its run's onset stages, no culverts."""
+    return PlanningGround("site", "the site as it is", data.dem.elevation,
+                          data.result.onset_stage)
+
+
+def scenario_ground(data, name: str, scenario_id: int, edits_path, onset_stage) -> PlanningGround:
+    """A scenario's ground: the site's DEM with the scenario's barriers and breaches,
+    its culverts, and the onset stages of its own run."""
+    placed = read_edits(edits_path, data.dem)
+    elevation, _ = placed.apply(data.dem.elevation)
+    culverts = None
+    if placed.culverts:
+        culverts = culvert_edges(data.dem.shape, **placed.culvert_ends(), elevation=elevation)
+    body = json.loads(Path(edits_path).read_text(encoding="utf-8"))
+    return PlanningGround(f"scenario:{scenario_id}", f"scenario {name!r}", elevation,
+                          onset_stage, culverts, _lonlat_features(body))
+
+
+def _lonlat_features(body: dict) -> list:
+    """The features of an edits file with lon/lat positions (RFC 7946), whatever
+    named CRS the file gave (read as :func:`sillmark.grid.edits.read_edits` reads it)."""
+    features = [dict(f) for f in body.get("features") or []]
+    member = body.get("crs")
+    if not member:
+        return features
+    transformer = to_wgs84(pyproj.CRS.from_user_input(member["properties"]["name"]))
+
+    def lonlat(coords):
+        if coords and isinstance(coords[0], (int, float)):
+            lon, lat = transformer.transform(float(coords[0]), float(coords[1]))
+            return [round(lon, 9), round(lat, 9)]
+        return [lonlat(c) for c in coords]
+
+    for f in features:
+        geometry = dict(f["geometry"])
+        geometry["coordinates"] = lonlat(geometry["coordinates"])
+        f["geometry"] = geometry
+    return features
+
+
+def barrier_report(data, assets, values: dict, level: np.float32, datum: str | None = None,
+                   ground: PlanningGround | None = None) -> dict:
     """Plan the shortest barrier for the place in ``values`` at ``level``, as the map draws it.
 
     Parameters
@@ -121,6 +187,10 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
         Target outlet water level, in the site's vertical unit.
     datum : str or None
         The site's vertical datum, for the words.
+    ground : PlanningGround, optional
+        Where to plan: default the site's own ground (:func:`site_ground`); a
+        scenario's (:func:`scenario_ground`) plans against its edits, culverts
+        included, and its edits file then holds the scenario's edits and the wall.
 
     Returns
     -------
@@ -131,14 +201,15 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
         ``place_cells`` counts the place's cells; ``row`` and ``col`` are the
         one that water reaches first.
     """
+    ground = site_ground(data) if ground is None else ground
     place, name, place_key = _place(data, assets, values)
-    onsets = np.where(place, data.result.onset_stage, np.inf)
+    onsets = np.where(place, ground.onset_stage, np.inf)
     first = int(np.argmin(np.where(np.isnan(onsets), np.inf, onsets)))
     row, col = divmod(first, data.dem.shape[1])
-    z = float(data.dem.elevation[row, col])
-    onset = float(data.result.onset_stage[row, col])
+    z = float(ground.elevation[row, col])
+    onset = float(ground.onset_stage[row, col])
     unit = data.unit
-    key = (place_key, float(level), datum)
+    key = (place_key, float(level), datum, ground.key)
     out = data.barrier_plans.get(key)
     if out is not None:
         return {**out, "name": name}
@@ -149,7 +220,7 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
         "ground_elevation": z,
         "unit": unit.value, "unit_symbol": unit.symbol,
         "cells": 0, "length": 0.0, "length_unit": ground_unit(data.dem)[0], "length_m": 0.0,
-        "line": None, "edits": None, "caution": SCREENING_CAUTION,
+        "line": None, "edits": None, "caution": SCREENING_CAUTION, "ground": ground.label,
     }
     at = level_text(float(level), unit, datum)
     its = "Its onset stage" if count == 1 else f"The onset stage of its first cell to get wet (of {count})"
@@ -163,14 +234,15 @@ def barrier_report(data, assets, values: dict, level: np.float32, datum: str | N
     else:
         outlets = data.result.flood_tree == OUTLET_CODE
         with data.engine_lock:  # one heavy computation at a time per site
-            plan = plan_barrier(data.dem.elevation, outlets, place, float(level),
-                                connectivity=int(data.result.connectivity))
-        out = _wall(data, base, plan, at, datum)
+            plan = plan_barrier(ground.elevation, outlets, place, float(level),
+                                connectivity=int(data.result.connectivity),
+                                culverts=ground.culverts)
+        out = _wall(data, base, plan, at, datum, ground)
     data.barrier_plans.put(key, out)
     return {**out, "name": name}
 
 
-def _wall(data, base: dict, plan, at: str, datum: str | None) -> dict:
+def _wall(data, base: dict, plan, at: str, datum: str | None, ground: PlanningGround) -> dict:
     if not plan.possible:
         reason = plan.reason.split(":")[0]
         return {**base, "possible": False, "needed": True,
@@ -208,6 +280,10 @@ def _wall(data, base: dict, plan, at: str, datum: str | None) -> dict:
         "features": features,
     }
     touched = sum(len(e.rows) for e in read_edits(edits, data.dem).items)
+    if ground.features:
+        # Planned on a scenario's ground: saved as a scenario, the wall keeps its company.
+        edits["features"] = ground.features + features
+        edits["description"] += f" Planned on {ground.label}, whose edits come first."
     words = "piece" if len(pieces) == 1 else "pieces"
     return {
         **base, "possible": True, "needed": True,

@@ -49,7 +49,7 @@ from sillmark.products.scenario_compare import (
     onset_changes,
 )
 from sillmark.units import area_units, datum_phrase, level_text
-from sillmark.web import db, get_db, layout, render, services
+from sillmark.web import barriers, db, get_db, layout, render, services
 from sillmark.web.access import open_site, site_assets, site_row
 from sillmark.web.caches import LockedLRU
 from sillmark.web.scenario_run import load_onset
@@ -306,6 +306,14 @@ def _open(site_id: int, scenario_id: int):
         found = _Opened(data, row)
         cache.put(int(row["run_id"]), found)
     return site, data, row, found
+
+
+def planning_ground(site_id: int, scenario_id: int):
+    """The ground of a scenario analysed against the site's current run, for the
+    barrier planner (:func:`sillmark.web.barriers.scenario_ground`)."""
+    _, data, row, opened = _open(site_id, scenario_id)
+    path = layout.site_dir(services().data_dir, site_id) / row["edits_file"]
+    return barriers.scenario_ground(data, row["name"], int(row["id"]), path, opened.onset)
 
 
 def _areas(data, opened: _Opened, level) -> dict:

@@ -9,6 +9,8 @@ Working, by hand: at the level 11.50 m the base floods the polder through the ga
 (onset stage 11.00 m) and the gap cells themselves (ground 11.00 m); with the
 barrier the gap stands at 12.00 m and the polder's onset stage becomes 12.00 m, so
 both are dry. Newly protected: 36 + 3 = 39 cells of 4 m² = 156 m²; newly flooded: none.
+Planned again on the scenario's ground at 12.00 m, the barn needs no barrier (its
+onset stage there is 12.00 m).
 """
 
 from __future__ import annotations
@@ -74,6 +76,13 @@ def test_a_planned_barrier_saved_as_scenario_shows_the_protected_ground(served):
             assert "11.50 m, datum not stated" in page.locator("#scenario-level-text").inner_text()
             ARTIFACTS.mkdir(exist_ok=True)
             page.screenshot(path=str(ARTIFACTS / "browser_scenario_compare.png"))
+            # Planned again on the scenario's ground, the wall in place: the barn's onset
+            # stage is 12.00 there, so at 12.00 no further barrier is needed.
+            page.click("button[data-tab=tab-assets]")
+            page.select_option("#barrier-ground", label="scenario Gap wall")
+            page.click("#barrier-submit")
+            page.wait_for_selector('body[data-barrier-state="not-needed"]', timeout=60_000)
+            assert "12.00 m" in page.locator("#barrier-result").inner_text()
             assert errors == []
         finally:
             browser.close()

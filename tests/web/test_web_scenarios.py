@@ -219,3 +219,47 @@ def test_a_scenario_from_json_edits_can_be_deleted_with_its_files(site):
     assert not folder.exists()
     r = client.get(f"/api/sites/{site_id}/scenarios/{made['id']}")
     assert r.status_code == 404
+
+
+def test_the_barrier_planner_plans_on_a_scenario_with_its_culvert(site):
+    # By hand: on the site as it is the barn's onset stage is 13.0, so at 12.0 it
+    # needs no barrier. On the culvert scenario it is 11.0: water comes through the
+    # culvert, so one cell must be raised to 12.0 on the culvert's way (its bank
+    # end (3, 1), or its meadow end (3, 3)); the road (13.0) and the edge (14.0)
+    # already hold everything else. The edits file keeps the culvert first.
+    from sillmark.engine.culverts import culvert_edges
+    from sillmark.engine.flood import priority_flood
+    from sillmark.grid.dem import dem_from_array
+    from sillmark.grid.edits import read_edits
+
+    _, client, site_id, sid = site
+    r = client.post(f"/api/sites/{site_id}/barrier", json={"asset": 0, "level": 12.0})
+    plain = r.get_json()
+    assert r.status_code == 200 and plain["needed"] is False and plain["onset_stage"] == 13.0
+    r = client.post(f"/api/sites/{site_id}/barrier",
+                    json={"asset": 0, "level": 12.0, "scenario": sid})
+    plan = r.get_json()
+    assert r.status_code == 200, plan
+    assert plan["needed"] and plan["possible"] and plan["cells"] == 1, plan["message"]
+    assert plan["onset_stage"] == 11.0 and plan["ground"] == "scenario 'Brookend culvert'"
+    kinds = [f["properties"]["kind"] for f in plan["edits"]["features"]]
+    assert kinds == ["culvert", "barrier"]
+    # The scenario's edits and the wall together keep the barn dry up to 12.0.
+    dem = dem_from_array(brookend(), transform=Affine(CELL, 0, WEST, 0, -CELL, NORTH),
+                         crs="EPSG:32633")
+    placed = read_edits(plan["edits"], dem)
+    z, _ = placed.apply(dem.elevation)
+    edge = np.zeros(z.shape, bool)
+    edge[0, :] = edge[-1, :] = edge[:, 0] = edge[:, -1] = True
+    result = priority_flood(z, edge, culverts=culvert_edges(z.shape, **placed.culvert_ends(),
+                                                            elevation=z))
+    assert result.onset_stage[BARN] >= 12.0
+    # Without the wall the culvert floods it at 11.0 (the check can fail).
+    only_culvert = read_edits({**plan["edits"], "features": plan["edits"]["features"][:1]}, dem)
+    z1, _ = only_culvert.apply(dem.elevation)
+    result1 = priority_flood(z1, edge, culverts=culvert_edges(z1.shape, **only_culvert.culvert_ends(),
+                                                              elevation=z1))
+    assert result1.onset_stage[BARN] == 11.0
+    r = client.post(f"/api/sites/{site_id}/barrier", json={"asset": 0, "level": 12.0,
+                                                          "scenario": "nine"})
+    assert r.status_code == 400 and "scenario" in r.get_json()["error"]

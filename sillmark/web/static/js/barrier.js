@@ -168,6 +168,22 @@
     out.appendChild(S.el("p", { class: "small" }, [name, " ", save]));
   }
 
+  // The ground to plan on: the site as it is, or a scenario ready to compare (its
+  // culverts, barriers and breaches in place; a saved plan keeps its edits).
+  document.addEventListener("sillmark:scenarios-listed", function (ev) {
+    var select = $("barrier-ground");
+    if (!select) { return; }
+    var keep = select.value;
+    select.innerHTML = "";
+    select.appendChild(S.el("option", { value: "site", text: "the site as it is" }));
+    ev.detail.forEach(function (s) {
+      select.appendChild(S.el("option", { value: String(s.id), text: "scenario " + s.name }));
+    });
+    select.value = Array.prototype.some.call(select.options, function (o) { return o.value === keep; })
+      ? keep : "site";
+    $("barrier-ground-label").hidden = ev.detail.length === 0;
+  });
+
   $("barrier-form").addEventListener("submit", function (ev) {
     ev.preventDefault();
     if (!place) { return; }
@@ -178,6 +194,7 @@
     out.textContent = "Searching for the shortest barrier…";
     document.body.dataset.barrierState = "loading";
     var body = Object.assign({ level: levelInput.value }, place);
+    if ($("barrier-ground") && $("barrier-ground").value !== "site") { body.scenario = $("barrier-ground").value; }
     S.getJSON(base + "/barrier", {
       method: "POST", headers: { "Content-Type": "application/json" }, body: JSON.stringify(body),
     }).then(function (b) {

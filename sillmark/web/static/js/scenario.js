@@ -61,6 +61,9 @@
       });
       clearTimeout(timer);
       if (busy) { timer = setTimeout(load, 1000); }
+      // The barrier planner offers the scenarios ready to plan on.
+      document.dispatchEvent(new CustomEvent("sillmark:scenarios-listed", { detail: res.scenarios.filter(
+        function (s) { return s.state === "done" && s.up_to_date; }) }));
     }).catch(function (err) { S.show($("scenario-error"), err.message); });
   }
 
