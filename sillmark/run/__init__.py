@@ -266,8 +266,9 @@ def analyse(
         under ``edits``, and the folder keeps a copy of the file
         (``edits_input.geojson``). A DEM file read tile by tile gets the
         edited cells in every window it reads
-        (:class:`sillmark.grid.edits.EditedDEMGrid`); it takes no profile
-        with edits.
+        (:class:`sillmark.grid.edits.EditedDEMGrid`). With a ``profile``,
+        barriers and breaches are taken and culverts refused (their invert is
+        a level, not a height above the profile).
 
     Every run also writes ``README.txt`` (:mod:`sillmark.io.readme`).
 
@@ -314,7 +315,8 @@ def analyse(
                                          connectivity, progress,
                                          dict(minimum=minimum, accuracy_stated=accuracy_stated,
                                               full_inventory=full_inventory,
-                                              vector_format=vector_format), edits)
+                                              vector_format=vector_format), edits,
+                                         profile=reach.profile is not None)
                 run = add_reach_layers(run, reach, temporary, executor, progress)
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
@@ -426,11 +428,23 @@ def _edits_member(placed: Edits, changes: list[int] | None) -> dict:
     return member
 
 
+def _check_profile_edits(placed: Edits | None, profile: bool) -> None:
+    """Barriers and breaches change the ground the profile's offset is measured on,
+    which both engines take; a culvert's invert is a level, not a height above the
+    profile, so the offset has no edge for it: refused, in memory and by tiles alike."""
+    if profile and placed is not None and placed.culverts:
+        raise InvalidParameter(
+            "the onset offset of a river profile does not take culverts (a culvert's invert "
+            "is a level, not a height above the profile); run the profile with the barriers "
+            "and breaches only, or the culverts without the profile (nothing was written)")
+
+
 def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connectivity,
-                       progress, listing: dict, edits=None) -> Analysis:
+                       progress, listing: dict, edits=None, profile: bool = False) -> Analysis:
     if not isinstance(outlets, Outlets):
         outlets = build_outlets(dem, tuple(outlets), connectivity=connectivity)
     placed = _placed_edits(edits, dem)
+    _check_profile_edits(placed, profile)
     culverts = changes = None
     if placed is not None:
         # The engine and every file see the edited copy; the caller's DEM stays as it was.
@@ -479,9 +493,7 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
         changes = placed.changes_on(grid.read_window, grid.shape[1])
         if len(placed.culverts) < len(placed):
             grid = edited_grid(grid, placed)
-    if placed is not None and profile is not None:
-        raise InvalidParameter("the tiled onset offset of a profile does not take culverts yet; "
-                               "run without --tiles, or without the edits (nothing was written)")
+    _check_profile_edits(placed, profile is not None)
     if profile is not None:  # the centreline serves as an outlet too
         outlets = [*outlet_specs(outlets, connectivity), read_profile(profile, grid).as_outlet()]
     plan = plan_outlets(grid, outlets, connectivity=connectivity)

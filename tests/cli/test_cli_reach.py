@@ -193,3 +193,39 @@ def test_tiled_cutoff_stage_equals_in_memory(tmp_path):
         a, b = read(memory / "cutoff_stage.tif"), read(tiled / "cutoff_stage.tif")
         assert np.array_equal(a, b, equal_nan=True), label
         assert np.isfinite(a).any() and np.isnan(a).any() == bool(kwargs or (z == -9999).any())
+
+
+def test_a_profile_takes_barriers_by_tiles_as_in_memory_and_refuses_culverts(tmp_path):
+    # A barrier across the terrain (crest 9, above every cell) changes the ground the
+    # offset is measured on: tiled and in-memory offsets agree with it in place, and
+    # the cells under it read the crest. A culvert has an invert level, no height
+    # above the profile: both engines refuse it with a profile, writing nothing.
+    rng = np.random.default_rng(11)
+    rows, cols = 30, 40
+    z = (np.add.outer(np.linspace(0, 3, rows), np.linspace(6, 0, cols))
+         + rng.normal(0, 0.4, (rows, cols))).astype(np.float32)
+    dem_path = write_raster(tmp_path / "terrain.tif", z)
+    profile = river(tmp_path / "river.geojson", cols=cols, levels=(6.0, 1.5), y_row=3)
+    x = WEST + 20.5
+    wall = {"type": "Feature", "properties": {"kind": "barrier", "crest": 9.0},
+            "geometry": {"type": "LineString",
+                         "coordinates": [[x, NORTH - 8.5], [x, NORTH - 27.5]]}}
+    edits = {"type": "FeatureCollection", "crs": UTM, "features": [wall]}
+    analyse(read_dem(dem_path), ("edge",), tmp_path / "memory", profile=profile, edits=edits)
+    analyse(dem_path, ("edge",), tmp_path / "tiled", profile=profile, edits=edits,
+            tile_size=16, store="files", executor=SerialExecutor())
+    for name in ("onset_offset.tif", "onset_stage.tif"):
+        a, b = read(tmp_path / "memory" / name), read(tmp_path / "tiled" / name)
+        assert np.array_equal(a, b, equal_nan=True), name
+    stage = read(tmp_path / "memory" / "onset_stage.tif")
+    assert np.all(stage[8:28, 20] == 9.0)  # the wall's cells: reached over their crest
+    culvert = {"type": "Feature", "properties": {"kind": "culvert", "invert": 2.0},
+               "geometry": {"type": "LineString",
+                            "coordinates": [[WEST + 2.5, NORTH - 10.5], [WEST + 30.5, NORTH - 10.5]]}}
+    for where, source in (("memory2", read_dem(dem_path)), ("tiled2", dem_path)):
+        with pytest.raises(Exception, match="does not take culverts"):
+            analyse(source, ("edge",), tmp_path / where, profile=profile,
+                    edits={**edits, "features": [wall, culvert]},
+                    **({} if where == "memory2" else {"tile_size": 16, "store": "files",
+                                                      "executor": SerialExecutor()}))
+        assert not any((tmp_path / where).glob("*.tif"))
