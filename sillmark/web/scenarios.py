@@ -98,7 +98,8 @@ def _name(text) -> str:
 
 def _scenario(conn, site_id: int, scenario_id: int):
     row = conn.execute("SELECT * FROM scenarios WHERE id = ? AND site_id = ?",
-                       (int(scenario_id), int(site_id))).fetchone() if 0 < scenario_id < 2**63 else None
+                       (int(scenario_id), int(site_id))).fetchone() \
+        if 0 < scenario_id < 2**63 and 0 < site_id < 2**63 else None  # ids SQLite can hold
     if row is None:
         raise UnknownSite(f"there is no scenario {scenario_id} on site {site_id}")
     return row

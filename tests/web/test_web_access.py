@@ -134,7 +134,7 @@ def guarded(tmp_path_factory):
     return app, site_id, run_id
 
 
-SAMPLE = {"depression_id": 1, "level": "10.5", "offset": "0.5", "z": 18, "x": 141449, "y": 92100,
+SAMPLE = {"depression_id": 1, "scenario_id": 1, "level": "10.5", "offset": "0.5", "z": 18, "x": 141449, "y": 92100,
           "name": "summary.json", "kind": "depth", "filename": "css/sillmark.css"}
 
 
