@@ -347,6 +347,12 @@ def _edit(feature: Any, index: int, label: str, crs: pyproj.CRS, grid: Any) -> E
         raise InvalidEdits(f"{label}: {where} has malformed coordinates ({exc})") from None
     if geom.is_empty or (gtype == "LineString" and len(geom.coords) < 2):
         raise InvalidEdits(f"{label}: {where} has an empty geometry; a line needs two vertices")
+    if gtype == "Polygon" and not geom.area > 0:
+        raise InvalidEdits(f"{label}: {where} ({kind}) encloses no area; give at least three "
+                           "corners that are not on one line")
+    if gtype == "LineString" and kind != "culvert" and not geom.length > 0:
+        raise InvalidEdits(f"{label}: {where} ({kind}) has all its vertices at one point; give "
+                           "a line through two different points")
     try:
         placed = reproject([geom], crs, grid, label)
     except InvalidOutlets as exc:

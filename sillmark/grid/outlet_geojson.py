@@ -179,7 +179,8 @@ def reproject(geoms: list[Any], src: pyproj.CRS, dem: DEM, label: str) -> list[A
 
     out = []
     for k, g in enumerate(geoms):
-        if step is not None and g.geom_type != "Point":
+        # A line or ring of coincident vertices has no length to split (GEOS refuses it).
+        if step is not None and g.geom_type != "Point" and g.length > 0:
             vertices = g.length / step
             local = step if vertices <= _MAX_DENSIFIED_VERTICES else g.length / _MAX_DENSIFIED_VERTICES
             g = shapely.segmentize(g, local)

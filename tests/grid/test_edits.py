@@ -159,3 +159,30 @@ def test_a_bad_edit_gets_one_line_naming_the_feature(bad, words):
         read_edits(collection(good, bad), dem)
     text = str(caught.value)
     assert words in text and "feature 1" in text and "\n" not in text
+
+
+def _lonlat(*points):
+    to_lonlat = pyproj.Transformer.from_crs("EPSG:32633", "OGC:CRS84", always_xy=True)
+    return [list(to_lonlat.transform(*p)) for p in points]
+
+
+@pytest.mark.parametrize(("bad", "words"), [
+    # Two clicks on one spot of a map: both ends of the culvert at the same lon/lat.
+    (feature("culvert", _lonlat(centre(2, 1), centre(2, 1)), invert=2.5), "both ends in one cell"),
+    (feature("barrier", _lonlat(centre(2, 3), centre(2, 3), centre(2, 3)), crest=5.0),
+     "all its vertices at one point"),
+    # Three corners on one meridian enclose nothing (their longitude that of cell (2, 3)).
+    (feature("breach", [[[p[0], q[1]] for q in _lonlat(centre(1, 3), centre(2, 3), centre(3, 3),
+                                                      centre(1, 3))] for p in _lonlat(centre(2, 3))],
+             geometry="Polygon", level=2.0), "encloses no area"),
+    (feature("breach", [_lonlat(*[centre(2, 3)] * 4)], geometry="Polygon", level=2.0),
+     "encloses no area"),
+])
+def test_a_degenerate_lon_lat_edit_gets_one_line_not_a_crash(bad, words):
+    # RFC 7946 input is densified on its way to the DEM's CRS; a line of length
+    # zero cannot be split, so it must be refused in words before that step.
+    dem = dem_from_array(LEVEE)
+    with pytest.raises(InvalidEdits) as caught:
+        read_edits({"type": "FeatureCollection", "features": [bad]}, dem)
+    text = str(caught.value)
+    assert words in text and "feature 0" in text and "\n" not in text

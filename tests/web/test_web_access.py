@@ -221,6 +221,9 @@ def test_pages_offer_viewers_no_editing_and_editors_all_of_it(guarded):
     page = viewer.get(f"/sites/{site_id}").get_data(as_text=True)
     assert 'id="assets-form" class="inline-upload" hidden' in page
     assert "need the editor secret" in page
+    # Drawing a scenario's edits on the map is for editors only.
+    assert 'id="edit-draw"' not in page
+    assert 'id="edit-draw"' in editor.get(f"/sites/{site_id}").get_data(as_text=True)
 
 
 def test_an_editor_reads_and_changes(guarded):

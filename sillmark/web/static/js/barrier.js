@@ -80,6 +80,10 @@
         S.show($("barrier-error"), "Pause the water-body tracing first; both use clicks on the map.");
         return;
       }
+      if (S.drawingEdits) {
+        S.show($("barrier-error"), "Finish or cancel the edit being drawn (Scenarios tab) first; both use clicks on the map.");
+        return;
+      }
       corners = [];
       place = null;
       $("barrier-submit").disabled = true;
@@ -109,7 +113,7 @@
       drawOutline();
       return;
     }
-    if (S.tracing) { return; }
+    if (S.tracing || S.drawingEdits) { return; }
     var ll = ev.latlng.wrap();
     choose({ lon: ll.lng, lat: ll.lat },
       "The point clicked at " + S.fixed(ll.lat, 6) + "°, " + S.fixed(ll.lng, 6) + "° (WGS 84).", null);

@@ -39,7 +39,7 @@
         var item = S.el("li", { "data-scenario": String(s.id), "data-state": s.state }, [
           S.el("strong", { text: s.name }), " ",
           S.el("span", { class: "muted small", text: "(" + s.edit_count + " edit" + (s.edit_count === 1 ? "" : "s") +
-            " from " + s.edits_name + ") · " + stateText(s) }), " ",
+            (/\.(geo)?json$/i.test(s.edits_name) ? " from " : ", ") + s.edits_name + ") · " + stateText(s) }), " ",
         ]);
         if (s.state === "done" && s.up_to_date) {
           item.appendChild(S.el("button", { class: "button", type: "button", text: "Compare",

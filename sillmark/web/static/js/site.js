@@ -380,8 +380,9 @@
   }
 
   map.on("click", function (ev) {
-    // Clicks place a water body's corners (waterbody.js) or a place's (barrier.js).
-    if (S.tracing || S.outlining) { return; }
+    // Clicks place a water body's corners (waterbody.js), a place's (barrier.js) or an
+    // edit's vertices (drawedits.js).
+    if (S.tracing || S.outlining || S.drawingEdits) { return; }
     var ll = ev.latlng.wrap();
     var url = base + "/cell?lon=" + ll.lng.toFixed(8) + "&lat=" + ll.lat.toFixed(8) +
       "&level=" + encodeURIComponent(levelText(level));

@@ -60,6 +60,10 @@
       S.show($("draw-error"), "Finish the outline of the barrier's place first; both use clicks on the map.");
       return;
     }
+    if (!S.tracing && S.drawingEdits) {
+      S.show($("draw-error"), "Finish or cancel the edit being drawn (Scenarios tab) first; both use clicks on the map.");
+      return;
+    }
     setTracing(!S.tracing);
   });
   $("draw-undo").addEventListener("click", function () { points.pop(); redraw(); });
