@@ -356,7 +356,7 @@ class DepressionIndex:
         keep = np.ones(self.count, dtype=bool) if self.listed is None else self.listed.copy()
         if bbox is not None:
             w, s, e, n = bbox
-            keep = (self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n)
+            keep &= (self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n)
         if min_area_m2 is not None:
             keep &= self.area_m2 >= min_area_m2
         idx = np.flatnonzero(keep)

@@ -339,3 +339,65 @@ def test_spill_point_tiles_mark_the_spill_points_that_show_at_the_zoom(marsh):
     # Far from the site: a blank tile.
     blank = _get(client, f"/tiles/{site_id}/spill_points/{z}/{x + 40}/{y}.png").get_data()
     assert blank == render.BLANK_PNG
+
+
+@pytest.fixture(scope="module")
+def marsh_minimum(tmp_path_factory, marsh):
+    """Marsh Lane again, in the same app, with a stated accuracy of 5 cm: a minimum depth
+    of 3 × 5 cm = 15 cm (sillmark.products.significance.DEPTH_PER_ACCURACY), which the
+    1 m bowl reaches and the 3 cm noise pits almost never do."""
+    from tests.web.survey_site import write_marsh_lane
+    from tests.web_support import analysed_site
+
+    app, client, _, _ = marsh
+    dem = write_marsh_lane(tmp_path_factory.mktemp("marsh-minimum") / "marsh_lane.tif")
+    site_id = analysed_site(client, dem, assets=False, vertical_accuracy="0.05")
+    return app, client, site_id, open_results(app, site_id)
+
+
+def test_the_tiles_draw_the_listed_depressions_only_as_the_table_lists_them(marsh_minimum):
+    app, client, site_id, data = marsh_minimum
+    t = data.result.depressions
+    listed = np.asarray(data.depressions.listed)
+    # The table's rows (every page) are the listed depressions.
+    table = _get(client, f"/api/sites/{site_id}/depressions?per_page=500").get_json()
+    rows = {d["id"] for d in table["depressions"]}
+    assert table["matched"] == len(rows) == int(listed.sum())
+    assert rows == set((np.flatnonzero(listed) + 1).tolist())
+    assert 1 <= len(rows) < len(t) / 20
+    bowl = int(np.argmax(t.area_m2))
+    assert listed[bowl]
+    # The largest depression below the minimum, at zoom 19 (pixels of about 0.2 m, so
+    # every depression of one 1 m cell covers the 4 pixels it needs to show).
+    area = np.where(listed, -1.0, np.asarray(t.area_m2))
+    small = int(np.argmax(area))
+    assert not listed[small] and area[small] >= 2
+    ix = data.depressions
+    z, x, y = _tile_with(data, ix.pit_lon[small], ix.pit_lat[small], 19)
+    under = _depression_under(app, data, z, x, y)
+    assert (under == small + 1).sum() > 20
+    px = read_png(_get(client, f"/tiles/{site_id}/depressions/{z}/{x}/{y}.png").get_data())["pixels"]
+    unlisted = (under > 0) & ~listed[np.maximum(under - 1, 0)]
+    assert np.all(px[unlisted] == 0)
+    # Its spill point draws no diamond; every diamond drawn on the tile is of a listed one.
+    drawn, _, _ = data.depression_tiles.spill_points_in(z, x, y)
+    assert small not in set(drawn.tolist()) and np.all(listed[drawn])
+    # The bowl is tinted as before.
+    z, x, y = _tile_with(data, ix.pit_lon[bowl], ix.pit_lat[bowl], 19)
+    under = _depression_under(app, data, z, x, y)
+    px = read_png(_get(client, f"/tiles/{site_id}/depressions/{z}/{x}/{y}.png").get_data())["pixels"]
+    assert np.all(px[under == bowl + 1] > 0)
+    drawn, _, _ = data.depression_tiles.spill_points_in(*_tile_with(data, ix.spill_lon[bowl],
+                                                                    ix.spill_lat[bowl], 19))
+    assert bowl in set(drawn.tolist())
+
+
+def test_a_map_extent_query_gives_the_listed_depressions_only(marsh_minimum):
+    _, client, site_id, data = marsh_minimum
+    listed = np.asarray(data.depressions.listed)
+    w, s, e, n = data.summary["lonlat_bounds"]
+    fc = _get(client, f"/api/sites/{site_id}/depressions.geojson?bbox={w},{s},{e},{n}&limit=500").get_json()
+    assert fc["in_view"] == int(listed.sum())
+    assert all(listed[f["properties"]["id"] - 1] for f in fc["features"])
+    pts = _get(client, f"/api/sites/{site_id}/spill_points.geojson?bbox={w},{s},{e},{n}").get_json()
+    assert pts["in_view"] == int(listed.sum())
