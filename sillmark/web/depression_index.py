@@ -35,11 +35,6 @@ from affine import Affine
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import wgs84_transformer
 from sillmark.io import geojson as geojson_files
-from sillmark.products.stage import (
-    DEPRESSION_CUT_OFF,
-    DEPRESSION_OVERTOPPED,
-    depression_states,
-)
 from sillmark.units import own_unit_columns
 from sillmark.web.caches import LockedLRU
 
@@ -266,14 +261,17 @@ class DepressionIndex:
     def states(self, level: float) -> np.ndarray:
         """uint8 state code per depression at ``level`` (index k for id k + 1), cached.
 
-        The states come from :func:`sillmark.products.stage.depression_states`.
+        The states of :func:`sillmark.products.stage.depression_states` (overtopped
+        once the level reaches the spill elevation, cut off while it lies above the
+        pit, else dry), compared at float32 as there, but as codes: no text per
+        depression, which counts at 10^5 depressions and a new level per request.
         """
-        key = float(level)
+        h = np.float32(level)
+        key = float(h)
         hit = self._states.get(key)
         if hit is None:
-            names, _ = depression_states(self.table, np.float32(level))
-            hit = np.where(names == DEPRESSION_OVERTOPPED, STATE_OVERTOPPED,
-                           np.where(names == DEPRESSION_CUT_OFF, STATE_CUT_OFF, STATE_DRY)).astype(np.uint8)
+            hit = np.where(self.spill_elevation <= h, STATE_OVERTOPPED,
+                           np.where(self.pit_elevation < h, STATE_CUT_OFF, STATE_DRY)).astype(np.uint8)
             hit.setflags(write=False)
             self._states.put(key, hit)
         return hit

@@ -30,25 +30,26 @@ from sillmark.errors import (
 )
 from sillmark.grid.assets import read_assets
 from sillmark.grid.crs import LonLatTransformer, crs_label
+from sillmark.grid.geojson import CRS84
 from sillmark.grid.ground import ground_unit, path_length
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets
 from sillmark.products.hierarchy_sweep import site_hierarchy
 from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
-    DEPRESSION_CUT_OFF,
-    DEPRESSION_OVERTOPPED,
     checked_level,
-    depression_states,
     stage_table,
     water_level_map,
 )
 from sillmark.units import VerticalUnit, area_units, own_unit_columns
 from sillmark.web import arrays, layout, render
 from sillmark.web.caches import LockedLRU
-from sillmark.web.depression_index import DepressionIndex
+from sillmark.web.depression_index import (
+    STATE_CUT_OFF,
+    STATE_OVERTOPPED,
+    DepressionIndex,
+)
 from sillmark.web.depression_tiles import DepressionTiles
-from sillmark.grid.geojson import CRS84
 from sillmark.web.sites import SiteNotReady, UnknownSite
 
 #: Most points of a stage chart.
@@ -234,7 +235,10 @@ class SiteData:
                     self._buffers = (np.empty(shape, np.uint8), np.empty(shape, np.float32))
                 wm = water_level_map(self.result, level, row_areas=self.dem.row_areas,
                                      unit=self.unit, out=self._buffers)
-            states, _ = depression_states(self.result.depressions, level)
+            states = self.depressions.states(level)
+            listed = self.depressions.listed
+            if listed is not None:  # counted as the table lists them
+                states = states[listed]
             base = {
                 "level": float(level),
                 "unit": self.unit.value,
@@ -245,10 +249,13 @@ class SiteData:
                 "shielded_area_m2": wm.shielded_area_m2,
                 "shielded_area_ha": wm.shielded_area_m2 / 1e4,
                 "shielded_volume_m3": wm.shielded_volume_m3,
+                # The listed (significant) depressions, as the table and the map tiles
+                # show them; below_minimum counts the others.
                 "depressions": {
                     "total": int(len(states)),
-                    "overtopped": int(np.count_nonzero(states == DEPRESSION_OVERTOPPED)),
-                    "cut_off": int(np.count_nonzero(states == DEPRESSION_CUT_OFF)),
+                    "overtopped": int(np.count_nonzero(states == STATE_OVERTOPPED)),
+                    "cut_off": int(np.count_nonzero(states == STATE_CUT_OFF)),
+                    "below_minimum": self.depressions.count - int(len(states)),
                 },
                 "assets": None,
                 "caution": SCREENING_CAUTION,

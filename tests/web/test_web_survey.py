@@ -21,6 +21,7 @@ import pytest
 from sillmark import SCREENING_CAUTION
 from sillmark.products.stage import (
     DEPRESSION_CUT_OFF,
+    DEPRESSION_DRY,
     DEPRESSION_OVERTOPPED,
     depression_states,
 )
@@ -401,3 +402,40 @@ def test_a_map_extent_query_gives_the_listed_depressions_only(marsh_minimum):
     assert all(listed[f["properties"]["id"] - 1] for f in fc["features"])
     pts = _get(client, f"/api/sites/{site_id}/spill_points.geojson?bbox={w},{s},{e},{n}").get_json()
     assert pts["in_view"] == int(listed.sum())
+
+
+def test_state_codes_match_the_products_depression_states_at_pits_and_spills(marsh):
+    _, _, _, data = marsh
+    t = data.result.depressions
+    ix = data.depressions
+    code = {DEPRESSION_OVERTOPPED: 2, DEPRESSION_CUT_OFF: 1, DEPRESSION_DRY: 0}
+    bowl = int(np.argmax(t.area_m2))
+    # Exactly at the bowl's spill and pit elevations (the bounds of each state), and between.
+    spill, pit = float(t.spill_elevation[bowl]), float(t.pit_elevation[bowl])
+    for level in (pit, np.nextafter(np.float32(pit), np.float32(np.inf)), (pit + spill) / 2,
+                  np.nextafter(np.float32(spill), np.float32(-np.inf)), spill):
+        names, _ = depression_states(t, np.float32(level))
+        expected = np.array([code[str(v)] for v in names], dtype=np.uint8)
+        got = ix.states(float(np.float32(level)))
+        assert np.array_equal(got, expected), level
+    assert ix.states(spill)[bowl] == 2 and ix.states(pit)[bowl] == 0
+    assert ix.states((pit + spill) / 2)[bowl] == 1
+
+
+def test_the_figures_count_the_listed_depressions_as_the_table_does(marsh_minimum):
+    _, client, site_id, data = marsh_minimum
+    t = data.result.depressions
+    listed = np.asarray(data.depressions.listed)
+    bowl = int(np.argmax(t.area_m2))
+    for level in (float(t.pit_elevation[bowl]) + 0.05, float(t.spill_elevation[bowl]) + 0.01):
+        f = _get(client, f"/api/sites/{site_id}/stage?level={level:.3f}").get_json()["depressions"]
+        names, _ = depression_states(t, np.float32(f"{level:.3f}"))
+        names = names[listed]
+        assert f["total"] == int(listed.sum()) and f["below_minimum"] == len(t) - int(listed.sum())
+        assert f["overtopped"] == int(np.count_nonzero(names == DEPRESSION_OVERTOPPED))
+        assert f["cut_off"] == int(np.count_nonzero(names == DEPRESSION_CUT_OFF))
+        # The table filtered by state at the same level gives the same counts.
+        for state, n in (("overtopped", f["overtopped"]), ("cut_off", f["cut_off"])):
+            page = _get(client, f"/api/sites/{site_id}/depressions?level={level:.3f}&state={state}").get_json()
+            assert page["matched"] == n
+    assert f["overtopped"] >= 1
