@@ -364,8 +364,11 @@ def _run(conn, data: Path, run, folder: Path) -> None:
         grid = dem
     rows, cols = grid.shape
     if settings.get("scenario"):
+        # The base run's significance minimum (its settings are the base's): the same
+        # depressions listed, and no file written for every noise-made pit.
         summary = scenario_run.analyse_scenario(site_folder, settings, folder, progress, grid,
-                                                _specs(site_folder, settings["outlets"]))
+                                                _specs(site_folder, settings["outlets"]),
+                                                listing=significance_options(settings, grid.vertical_unit))
         progress.start("finishing")
         summary["seconds"] = round(time.perf_counter() - t0, 2)
         _finish(conn, run, summary, current=False)

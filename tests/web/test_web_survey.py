@@ -439,3 +439,30 @@ def test_the_figures_count_the_listed_depressions_as_the_table_does(marsh_minimu
             page = _get(client, f"/api/sites/{site_id}/depressions?level={level:.3f}&state={state}").get_json()
             assert page["matched"] == n
     assert f["overtopped"] >= 1
+
+
+def test_a_scenario_lists_the_depressions_under_the_base_runs_minimum(marsh_minimum, tmp_path):
+    app, client, site_id, data = marsh_minimum
+    from sillmark.web import db, layout
+
+    w, s, e, n = data.summary["lonlat_bounds"]
+    sid = _scenario(client, site_id, (w + e) / 2, (s + n) / 2)
+    svc = app.extensions["sillmark"]
+    conn = db.connect(svc.db_path)
+    try:
+        run_id = conn.execute("SELECT run_id FROM scenarios WHERE id = ?", (sid,)).fetchone()[0]
+    finally:
+        conn.close()
+    results = layout.run_dir(svc.data_dir, site_id, run_id) / "results"
+    summary = json.loads((results / "summary.json").read_text())
+    base = json.loads((data.folder / "results" / "summary.json").read_text())
+    # The same minimum as the base run (5 cm stated: 0.15 m), so the same few listed.
+    assert summary["significance"]["min_depth"] == base["significance"]["min_depth"]
+    assert summary["significance"]["min_depth"]["value"] == pytest.approx(0.15)
+    counts = summary["significance"]["counts"]
+    assert counts["all_depressions"] > 1000 and counts["significant"] < 10
+    # Its depression table holds the listed rows only, as the base's does (the culvert
+    # joins two cells of the bowl, so the same ones), not a row per noise pit.
+    with open(results / "depressions.csv", encoding="utf-8") as f:
+        rows = sum(1 for _ in f) - 1
+    assert rows == int(np.count_nonzero(data.depressions.listed)) < 10
