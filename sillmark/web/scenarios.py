@@ -328,12 +328,16 @@ def _areas(data, opened: _Opened, level) -> dict:
     return hit
 
 
-def _page(values, changes, level, page: int, per_page: int, only_changed: bool = False) -> dict:
+def _page(values, changes, level, page: int, per_page: int, only_changed: bool = False,
+          among: np.ndarray | None = None) -> dict:
+    """One page of the places of ``changes``: those of ``among`` (a bool mask; all when
+    None), and of them only those whose onset stage changed with ``only_changed``."""
     wet_before, wet_after = changes.states(level)
-    keep = np.arange(len(changes))
+    mask = np.ones(len(changes), dtype=bool) if among is None else np.asarray(among, dtype=bool).copy()
     if only_changed:
         with np.errstate(invalid="ignore"):
-            keep = np.flatnonzero(changes.change != 0)
+            mask &= changes.change != 0
+    keep = np.flatnonzero(mask)
     total = int(keep.size)
     pages = max(1, -(-total // per_page))
     page = min(max(page, 1), pages)
@@ -402,8 +406,10 @@ def compare(site_id: int, scenario_id: int):
         return {"id": k + 1, "pit_x": float(x), "pit_y": float(y), "lon": float(lon),
                 "lat": float(lat)}
 
+    # The depressions the site lists (its significance minimum), as its own table does.
     depressions = _page(depression, opened.depressions, level, _int_arg("page", 1, 1, 2**31),
-                        per_page, only_changed=request.args.get("changed") in ("1", "true"))
+                        per_page, only_changed=request.args.get("changed") in ("1", "true"),
+                        among=data.listed)
     label = level_label(level, unit)
     return jsonify({
         "scenario": describe(get_db(), site, row),

@@ -466,3 +466,16 @@ def test_a_scenario_lists_the_depressions_under_the_base_runs_minimum(marsh_mini
     with open(results / "depressions.csv", encoding="utf-8") as f:
         rows = sum(1 for _ in f) - 1
     assert rows == int(np.count_nonzero(data.depressions.listed)) < 10
+
+
+def test_the_scenario_comparison_pages_the_listed_depressions(marsh_minimum):
+    _, client, site_id, data = marsh_minimum
+    w, s, e, n = data.summary["lonlat_bounds"]
+    sid = _scenario(client, site_id, (w + e) / 2, (s + n) / 2)
+    t = data.result.depressions
+    listed = np.flatnonzero(data.depressions.listed) + 1
+    level = float(t.spill_elevation[int(np.argmax(t.area_m2))]) - 0.01
+    c = _get(client, f"/api/sites/{site_id}/scenarios/{sid}/compare?level={level:.3f}&per_page=100").get_json()
+    d = c["depressions"]
+    assert d["total"] == listed.size < len(t) / 20
+    assert [r["id"] for r in d["rows"]] == listed.tolist()
