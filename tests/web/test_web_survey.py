@@ -479,3 +479,21 @@ def test_the_scenario_comparison_pages_the_listed_depressions(marsh_minimum):
     d = c["depressions"]
     assert d["total"] == listed.size < len(t) / 20
     assert [r["id"] for r in d["rows"]] == listed.tolist()
+
+
+def test_the_printed_map_gives_the_spill_points_of_the_listed_depressions(marsh_minimum):
+    import re
+
+    _, client, site_id, data = marsh_minimum
+    t = data.result.depressions
+    listed = np.flatnonzero(data.depressions.listed)
+    page = _get(client, f"/sites/{site_id}/print?level={float(t.spill_elevation[listed[0]]):.2f}")
+    config = json.loads(re.search(r'<script id="site-config" type="application/json">(.*?)</script>',
+                                  page.get_data(as_text=True), flags=re.S).group(1))
+    spills = config["draw"]["spills"]
+    assert len(spills) == listed.size < 10
+    # Each at its listed depression's spill point (WGS 84).
+    expected = sorted(zip(np.round(data.depressions.spill_lon[listed], 7),
+                          np.round(data.depressions.spill_lat[listed], 7)))
+    assert sorted((round(p["lon"], 7), round(p["lat"], 7)) for p in spills) == expected
+    assert config["draw"]["spills_not_drawn"] == 0
