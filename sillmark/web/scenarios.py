@@ -43,6 +43,7 @@ from sillmark.io.stage_files import level_label
 from sillmark.products.scenario_compare import (
     NEWLY_FLOODED,
     NEWLY_PROTECTED,
+    OnsetChanges,
     compare_at_level,
     compare_codes,
     depression_changes,
@@ -473,10 +474,13 @@ def compare_zip(site_id: int, scenario_id: int, level: str):
         gate = _ZIP_LOCKS.setdefault(str(folder), threading.Lock())
 
     def write(tmp: Path) -> None:
+        # The depressions the site lists (its significance minimum), as the page does.
         t = data.result.depressions
-        xs, ys = data.dem.xy(t.pit_row, t.pit_col)
-        lead = {"depression_id": np.arange(1, len(t) + 1), "pit_x": np.atleast_1d(xs),
-                "pit_y": np.atleast_1d(ys)}
+        k = np.arange(len(t)) if data.listed is None else np.flatnonzero(data.listed)
+        xs, ys = data.dem.xy(np.asarray(t.pit_row)[k], np.asarray(t.pit_col)[k])
+        lead = {"depression_id": k + 1, "pit_x": np.atleast_1d(xs), "pit_y": np.atleast_1d(ys)}
+        ch = opened.depressions
+        changes = OnsetChanges(before=ch.before[k], after=ch.after[k], change=ch.change[k])
         assets = None
         _, rows, cols = _asset_places(site_id, data)
         if placed is not None:
@@ -492,7 +496,7 @@ def compare_zip(site_id: int, scenario_id: int, level: str):
                 codes=lambda r0, r1: compare_codes(data.result.onset_stage[r0:r1],
                                                    opened.onset[r0:r1], h,
                                                    valid=~np.isnan(data.dem.elevation[r0:r1])),
-                scenario_name=row["name"], edits=edits, depressions=(lead, opened.depressions),
+                scenario_name=row["name"], edits=edits, depressions=(lead, changes),
                 assets=assets, vertical_datum=site["vertical_datum"],
                 connectivity=data.result.connectivity)
         zip_folder(tmp, tmp / zip_name)

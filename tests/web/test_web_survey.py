@@ -497,3 +497,23 @@ def test_the_printed_map_gives_the_spill_points_of_the_listed_depressions(marsh_
                           np.round(data.depressions.spill_lat[listed], 7)))
     assert sorted((round(p["lon"], 7), round(p["lat"], 7)) for p in spills) == expected
     assert config["draw"]["spills_not_drawn"] == 0
+
+
+def test_the_scenario_zip_tables_the_listed_depressions(marsh_minimum):
+    import csv
+    import io
+    import zipfile
+
+    _, client, site_id, data = marsh_minimum
+    w, s, e, n = data.summary["lonlat_bounds"]
+    sid = _scenario(client, site_id, (w + e) / 2, (s + n) / 2)
+    listed = np.flatnonzero(data.depressions.listed)
+    t = data.result.depressions
+    level = float(t.spill_elevation[listed[0]]) - 0.01
+    r = _get(client, f"/sites/{site_id}/files/scenario/{sid}/{level:.3f}.zip")
+    with zipfile.ZipFile(io.BytesIO(r.data)) as zf:
+        rows = list(csv.DictReader(io.StringIO(zf.read("scenario_depressions.csv").decode())))
+    assert [int(row["depression_id"]) for row in rows] == (listed + 1).tolist()
+    # The pit of each, in the DEM's CRS (cell centre).
+    x, y = data.dem.xy(int(t.pit_row[listed[0]]), int(t.pit_col[listed[0]]))
+    assert float(rows[0]["pit_x"]) == pytest.approx(float(x)) and float(rows[0]["pit_y"]) == pytest.approx(float(y))
