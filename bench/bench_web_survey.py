@@ -195,9 +195,9 @@ def main(argv=None) -> int:
 
     cli = cli_time(dem, work / "cli_out")
     summary = json.loads((work / "cli_out" / "summary.json").read_text())
-    listed = summary.get("depressions") or {}
+    counts = (summary.get("significance") or {}).get("counts") or {}
     print(f"sillmark analyse (command line, every default output): {cli:.1f} s; "
-          f"{listed.get('count') if isinstance(listed, dict) else listed} depressions listed")
+          f"{counts.get('all_depressions')} depressions, {counts.get('significant')} significant")
 
     app = create_app({"DATA_DIR": str(work / "data"), "JOB_RUNNER": "process", "REGISTER_DEMO": False,
                       "WARM_ZOOMS": 2, "CSRF_ENABLED": False, "MAX_UPLOAD_BYTES": 2**31})
