@@ -517,3 +517,31 @@ def test_the_scenario_zip_tables_the_listed_depressions(marsh_minimum):
     # The pit of each, in the DEM's CRS (cell centre).
     x, y = data.dem.xy(int(t.pit_row[listed[0]]), int(t.pit_col[listed[0]]))
     assert float(rows[0]["pit_x"]) == pytest.approx(float(x)) and float(rows[0]["pit_y"]) == pytest.approx(float(y))
+
+
+def test_the_worker_stores_the_site_stage_table_the_chart_reads(marsh):
+    from sillmark.products.source import ArraySource
+    from sillmark.products.stage import stage_table
+    from sillmark.web.site_data import STAGE_TABLE_FILE, SiteData
+
+    _, client, site_id, data = marsh
+    path = data.folder / STAGE_TABLE_FILE
+    assert path.is_file(), "the worker did not store the stage table"
+    levels = data.chart_levels()
+    direct = stage_table(ArraySource(data.dem, data.result), levels)
+    chart = _get(client, f"/api/sites/{site_id}/stage_table").get_json()
+    assert chart["level"] == [float(v) for v in levels]
+    assert chart["flooded_area_m2"] == [float(v) for v in direct.flooded_area_m2]
+    assert chart["shielded_volume_m3"] == [float(v) for v in direct.shielded_volume_m3]
+    # A stored table for other levels (e.g. from an older rule) is not used: it is computed.
+    fresh = SiteData(data.site_id, data.run_id, data.folder)
+    with np.load(path) as f:
+        stored = {k: f[k] for k in f.files}
+    try:
+        np.savez(path, **{**stored, "level": stored["level"] + np.float32(0.5),
+                          "flooded_area_m2": np.zeros_like(stored["flooded_area_m2"])})
+        again = fresh.stage_table
+        assert np.array_equal(again.level, levels)
+        assert np.array_equal(again.flooded_area_m2, direct.flooded_area_m2)
+    finally:
+        np.savez(path, **stored)
