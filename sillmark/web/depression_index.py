@@ -11,7 +11,8 @@ full inventory stays a download (the result files).
 
 The columns are numpy arrays built once per open site run; a query costs a
 mask, one sort and the dictionaries of the rows it returns. Depression extents
-come from :func:`scipy.ndimage.find_objects` (one pass over the id raster);
+come from :func:`sillmark.products.extents.label_extents` (one compiled pass over
+the id raster, which lets the server's other threads run meanwhile);
 outlines are traced on demand from the id raster inside that extent with
 :func:`rasterio.features.shapes` and kept in a small cache.
 
@@ -27,7 +28,6 @@ from typing import Any, Callable
 
 import numpy as np
 import rasterio.features
-import scipy.ndimage
 import shapely
 import shapely.geometry
 from affine import Affine
@@ -35,11 +35,7 @@ from affine import Affine
 from sillmark.errors import InvalidParameter
 from sillmark.grid.crs import wgs84_transformer
 from sillmark.io import geojson as geojson_files
-from sillmark.products.stage import (
-    DEPRESSION_CUT_OFF,
-    DEPRESSION_OVERTOPPED,
-    depression_states,
-)
+from sillmark.products.extents import label_extents
 from sillmark.units import own_unit_columns
 from sillmark.web.caches import LockedLRU
 
@@ -205,7 +201,7 @@ class DepressionIndex:
     Notes
     -----
     Memory: about 150 bytes per depression, plus one pass over the id raster
-    when built (:func:`scipy.ndimage.find_objects` allocates nothing per cell).
+    when built (:func:`sillmark.products.extents.label_extents` allocates nothing per cell).
     """
 
     def __init__(self, table, depression_id: np.ndarray, dem, lonlat: Callable,
@@ -236,11 +232,10 @@ class DepressionIndex:
         tr = dem.transform
         self.pit_lon, self.pit_lat = (np.asarray(v, dtype=np.float64) for v in lonlat(
             tr.c + (np.asarray(table.pit_col) + 0.5) * tr.a, tr.f + (np.asarray(table.pit_row) + 0.5) * tr.e))
-        self.slices = self._extents(depression_id, n)
-        r0 = np.array([s[0].start for s in self.slices], dtype=np.float64)
-        r1 = np.array([s[0].stop for s in self.slices], dtype=np.float64)
-        c0 = np.array([s[1].start for s in self.slices], dtype=np.float64)
-        c1 = np.array([s[1].stop for s in self.slices], dtype=np.float64)
+        self.extents = label_extents(depression_id, n)
+        e = self.extents
+        r0, r1 = e.row0.astype(np.float64), e.row1.astype(np.float64)
+        c0, c1 = e.col0.astype(np.float64), e.col1.astype(np.float64)
         # The four corners of each extent, in lon/lat (a projected box is not a lon/lat box).
         xs = np.concatenate([tr.c + c0 * tr.a, tr.c + c1 * tr.a, tr.c + c0 * tr.a, tr.c + c1 * tr.a])
         ys = np.concatenate([tr.f + r0 * tr.e, tr.f + r0 * tr.e, tr.f + r1 * tr.e, tr.f + r1 * tr.e])
@@ -253,27 +248,22 @@ class DepressionIndex:
         self._lock = threading.Lock()  # the memory map and the transformer: one thread at a time
         self._to_wgs84 = wgs84_transformer(dem)
 
-    @staticmethod
-    def _extents(ids: np.ndarray, n: int) -> list[tuple[slice, slice]]:
-        if n == 0:
-            return []
-        found = scipy.ndimage.find_objects(np.asarray(ids), max_label=n)
-        empty = (slice(0, 0), slice(0, 0))
-        return [s if s is not None else empty for s in found]
-
     # -- states ---------------------------------------------------------------------
 
     def states(self, level: float) -> np.ndarray:
         """uint8 state code per depression at ``level`` (index k for id k + 1), cached.
 
-        The states come from :func:`sillmark.products.stage.depression_states`.
+        The states of :func:`sillmark.products.stage.depression_states` (overtopped
+        once the level reaches the spill elevation, cut off while it lies above the
+        pit, else dry), compared at float32 as there, but as codes: no text per
+        depression, which counts at 10^5 depressions and a new level per request.
         """
-        key = float(level)
+        h = np.float32(level)
+        key = float(h)
         hit = self._states.get(key)
         if hit is None:
-            names, _ = depression_states(self.table, np.float32(level))
-            hit = np.where(names == DEPRESSION_OVERTOPPED, STATE_OVERTOPPED,
-                           np.where(names == DEPRESSION_CUT_OFF, STATE_CUT_OFF, STATE_DRY)).astype(np.uint8)
+            hit = np.where(self.spill_elevation <= h, STATE_OVERTOPPED,
+                           np.where(self.pit_elevation < h, STATE_CUT_OFF, STATE_DRY)).astype(np.uint8)
             hit.setflags(write=False)
             self._states.put(key, hit)
         return hit
@@ -356,7 +346,7 @@ class DepressionIndex:
         keep = np.ones(self.count, dtype=bool) if self.listed is None else self.listed.copy()
         if bbox is not None:
             w, s, e, n = bbox
-            keep = (self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n)
+            keep &= (self.east >= w) & (self.west <= e) & (self.north >= s) & (self.south <= n)
         if min_area_m2 is not None:
             keep &= self.area_m2 >= min_area_m2
         idx = np.flatnonzero(keep)
@@ -426,7 +416,7 @@ class DepressionIndex:
         hit = self._outlines.get(k)
         if hit is not None:
             return hit
-        rs, cs = self.slices[k]
+        rs, cs = self.extents.window(k)
         if rs.stop <= rs.start:
             found = (None, 0)
         else:

@@ -12,7 +12,11 @@ as shielded low ground while cut off):
   between neighbouring pixels;
 - **spill points**: a small diamond at each spill point.
 
-A depression is drawn only once it covers at least :data:`VISIBLE_PIXELS`
+Only the depressions the site lists are drawn: those that reach its
+significance minimum (:mod:`sillmark.products.significance`), the same rows as
+the depression table (``DepressionIndex.listed``); a noise-made pit below the
+minimum is neither tinted nor given a spill point. A listed depression is
+drawn only once it covers at least :data:`VISIBLE_PIXELS`
 pixels at the tile's zoom, and a spill point likewise: the thousands of
 centimetre-deep pits of a survey DEM do not speckle the whole map at low zoom
 and appear as one zooms in. The rule is Sillmark's own. At most
@@ -66,7 +70,8 @@ class DepressionTiles:
     Parameters
     ----------
     index : sillmark.web.depression_index.DepressionIndex
-        The site's depressions (areas, states, spill points).
+        The site's depressions (areas, states, spill points); only those it
+        lists (``index.listed``, every one when None) are drawn.
     ids_flat : (rows * cols,) integer array
         The depression id raster, flattened (may be memory-mapped).
     crs : pyproj.CRS
@@ -81,6 +86,9 @@ class DepressionTiles:
                                    np.asarray(index.table.spill_y, dtype=np.float64))
         self.spill_mx, self.spill_my = np.asarray(sx, dtype=np.float64), np.asarray(sy, dtype=np.float64)
         ok = np.isfinite(self.spill_mx) & np.isfinite(self.spill_my)
+        self._listed = (np.ones(index.count, dtype=bool) if index.listed is None
+                        else np.asarray(index.listed, dtype=bool))
+        ok &= self._listed
         # Spill points, largest depression first: a tile's cap keeps the largest.
         order = np.lexsort((index.id, -index.area_m2))
         self._glyph_order = order[ok[order]]
@@ -88,13 +96,13 @@ class DepressionTiles:
         self._lock = threading.Lock()
 
     def _lut(self, min_area_m2: float) -> np.ndarray:
-        """Palette code per depression id (0: none) of the depressions drawn: those with
-        at least ``min_area_m2`` of area."""
+        """Palette code per depression id (0: none) of the depressions drawn: the listed
+        ones with at least ``min_area_m2`` of area."""
         key = round(min_area_m2, 6)
         hit = self._luts.get(key)
         if hit is None:
             hit = np.zeros(self.index.count + 1, dtype=np.uint8)
-            hit[1:][self.index.area_m2 >= min_area_m2] = TINT
+            hit[1:][self._listed & (self.index.area_m2 >= min_area_m2)] = TINT
             self._luts.put(key, hit)
         return hit
 

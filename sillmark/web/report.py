@@ -163,12 +163,16 @@ def _assets(data, table, unit: VerticalUnit, datum: str | None) -> tuple[list[di
 
 
 def _spill_points(data, unit: VerticalUnit, datum: str | None) -> tuple[list[dict], int]:
-    """The spill points of the largest depressions (at most :data:`MAX_SPILL_POINTS`)."""
+    """The spill points of the largest listed depressions (at most :data:`MAX_SPILL_POINTS`):
+    those the site lists under its significance minimum, as its table and map do."""
     t = data.result.depressions
-    n = len(t)
+    listed = data.listed
+    among = np.arange(len(t)) if listed is None else np.flatnonzero(listed)
+    n = int(among.size)
     if n == 0:
         return [], 0
-    order = np.argsort(-np.asarray(t.area_m2, dtype=np.float64), kind="stable")[:MAX_SPILL_POINTS]
+    area = np.asarray(t.area_m2, dtype=np.float64)[among]
+    order = among[np.argsort(-area, kind="stable")[:MAX_SPILL_POINTS]]
     lon, lat = data.lonlat(np.asarray(t.spill_x)[order], np.asarray(t.spill_y)[order])
     points = []
     for j, k in enumerate(order):

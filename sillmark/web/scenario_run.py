@@ -33,7 +33,7 @@ COPY_ROWS = 1024
 
 
 def analyse_scenario(site_folder: Path, settings: dict, folder: Path, progress, grid,
-                     specs: tuple) -> dict:
+                     specs: tuple, *, listing: dict | None = None) -> dict:
     """Analyse the scenario of a run into ``folder``; returns the run's summary.
 
     Parameters
@@ -49,7 +49,13 @@ def analyse_scenario(site_folder: Path, settings: dict, folder: Path, progress, 
         The DEM's header, already checked against the cell limit.
     specs : tuple
         Outlet sources, as for :func:`sillmark.grid.outlets.build_outlets`.
+    listing : dict, optional, keyword-only
+        The significance options of :func:`sillmark.run.analyse` (``minimum``,
+        ``accuracy_stated``; see :func:`sillmark.web.worker.significance_options`):
+        the base run's, so the scenario lists the depressions the base lists and
+        writes its files for those, not for every noise-made pit.
     """
+    listing = dict(listing or {})
     edits = site_folder / settings["scenario"]["edits_file"]
     dem_path = site_folder / settings["dem_file"]
     connectivity = int(settings["connectivity"])
@@ -60,7 +66,7 @@ def analyse_scenario(site_folder: Path, settings: dict, folder: Path, progress, 
         # each window read from the DEM file).
         progress.start("flooding from the outlets")
         analysis = tiled_run.analyse_tiled(dem_path, specs, settings, results, progress,
-                                           edits=edits)
+                                           edits=edits, listing=listing)
         read_rows = tiled_run.result_rows(results, cols)["onset_stage"]
     else:
         dem = read_dem(dem_path, vertical_unit=settings["vertical_unit"],
@@ -75,11 +81,12 @@ def analyse_scenario(site_folder: Path, settings: dict, folder: Path, progress, 
                 progress.start("writing result files")
             if name not in written:
                 written.append(name)
+            # Every result file, the README and the significance step.
             progress.within((len(written) - 1 + (done / total if total else 1.0))
-                            / (len(FILE_NAMES) + 1))
+                            / (len(FILE_NAMES) + 2))
 
         analysis = analyse(dem, outlets, results, connectivity=connectivity,
-                           progress=file_progress, edits=edits,
+                           progress=file_progress, edits=edits, **listing,
                            **reach_inputs.analyse_inputs(site_folder, settings))
         onset = analysis.result.onset_stage
         read_rows = lambda r0, r1: onset[r0:r1]  # noqa: E731

@@ -43,6 +43,7 @@ from sillmark.io.stage_files import level_label
 from sillmark.products.scenario_compare import (
     NEWLY_FLOODED,
     NEWLY_PROTECTED,
+    OnsetChanges,
     compare_at_level,
     compare_codes,
     depression_changes,
@@ -329,12 +330,16 @@ def _areas(data, opened: _Opened, level) -> dict:
     return hit
 
 
-def _page(values, changes, level, page: int, per_page: int, only_changed: bool = False) -> dict:
+def _page(values, changes, level, page: int, per_page: int, only_changed: bool = False,
+          among: np.ndarray | None = None) -> dict:
+    """One page of the places of ``changes``: those of ``among`` (a bool mask; all when
+    None), and of them only those whose onset stage changed with ``only_changed``."""
     wet_before, wet_after = changes.states(level)
-    keep = np.arange(len(changes))
+    mask = np.ones(len(changes), dtype=bool) if among is None else np.asarray(among, dtype=bool).copy()
     if only_changed:
         with np.errstate(invalid="ignore"):
-            keep = np.flatnonzero(changes.change != 0)
+            mask &= changes.change != 0
+    keep = np.flatnonzero(mask)
     total = int(keep.size)
     pages = max(1, -(-total // per_page))
     page = min(max(page, 1), pages)
@@ -403,8 +408,10 @@ def compare(site_id: int, scenario_id: int):
         return {"id": k + 1, "pit_x": float(x), "pit_y": float(y), "lon": float(lon),
                 "lat": float(lat)}
 
+    # The depressions the site lists (its significance minimum), as its own table does.
     depressions = _page(depression, opened.depressions, level, _int_arg("page", 1, 1, 2**31),
-                        per_page, only_changed=request.args.get("changed") in ("1", "true"))
+                        per_page, only_changed=request.args.get("changed") in ("1", "true"),
+                        among=data.listed)
     label = level_label(level, unit)
     return jsonify({
         "scenario": describe(get_db(), site, row),
@@ -468,10 +475,13 @@ def compare_zip(site_id: int, scenario_id: int, level: str):
         gate = _ZIP_LOCKS.setdefault(str(folder), threading.Lock())
 
     def write(tmp: Path) -> None:
+        # The depressions the site lists (its significance minimum), as the page does.
         t = data.result.depressions
-        xs, ys = data.dem.xy(t.pit_row, t.pit_col)
-        lead = {"depression_id": np.arange(1, len(t) + 1), "pit_x": np.atleast_1d(xs),
-                "pit_y": np.atleast_1d(ys)}
+        k = np.arange(len(t)) if data.listed is None else np.flatnonzero(data.listed)
+        xs, ys = data.dem.xy(np.asarray(t.pit_row)[k], np.asarray(t.pit_col)[k])
+        lead = {"depression_id": k + 1, "pit_x": np.atleast_1d(xs), "pit_y": np.atleast_1d(ys)}
+        ch = opened.depressions
+        changes = OnsetChanges(before=ch.before[k], after=ch.after[k], change=ch.change[k])
         assets = None
         _, rows, cols = _asset_places(site_id, data)
         if placed is not None:
@@ -487,7 +497,7 @@ def compare_zip(site_id: int, scenario_id: int, level: str):
                 codes=lambda r0, r1: compare_codes(data.result.onset_stage[r0:r1],
                                                    opened.onset[r0:r1], h,
                                                    valid=~np.isnan(data.dem.elevation[r0:r1])),
-                scenario_name=row["name"], edits=edits, depressions=(lead, opened.depressions),
+                scenario_name=row["name"], edits=edits, depressions=(lead, changes),
                 assets=assets, vertical_datum=site["vertical_datum"],
                 connectivity=data.result.connectivity)
         zip_folder(tmp, tmp / zip_name)

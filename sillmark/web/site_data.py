@@ -13,6 +13,7 @@ import csv
 import dataclasses
 import functools
 import math
+import os
 import threading
 from pathlib import Path
 from typing import Any
@@ -30,29 +31,34 @@ from sillmark.errors import (
 )
 from sillmark.grid.assets import read_assets
 from sillmark.grid.crs import LonLatTransformer, crs_label
+from sillmark.grid.geojson import CRS84
 from sillmark.grid.ground import ground_unit, path_length
 from sillmark.io import geojson as geojson_files
 from sillmark.products.assets import assess_assets
 from sillmark.products.hierarchy_sweep import site_hierarchy
 from sillmark.products.source import ArraySource
 from sillmark.products.stage import (
-    DEPRESSION_CUT_OFF,
-    DEPRESSION_OVERTOPPED,
+    StageTable,
     checked_level,
-    depression_states,
     stage_table,
     water_level_map,
 )
 from sillmark.units import VerticalUnit, area_units, own_unit_columns
 from sillmark.web import arrays, layout, render
 from sillmark.web.caches import LockedLRU
-from sillmark.web.depression_index import DepressionIndex
+from sillmark.web.depression_index import (
+    STATE_CUT_OFF,
+    STATE_OVERTOPPED,
+    DepressionIndex,
+)
 from sillmark.web.depression_tiles import DepressionTiles
-from sillmark.grid.geojson import CRS84
 from sillmark.web.sites import SiteNotReady, UnknownSite
 
 #: Most points of a stage chart.
 CHART_POINTS = 240
+#: The site stage table as the worker stores it, inside the run folder.
+STAGE_TABLE_FILE = "stage_chart.npz"
+_STAGE_COLUMNS = ("flooded_area_m2", "flooded_volume_m3", "shielded_area_m2", "shielded_volume_m3")
 #: Encoded map tiles kept per open site run, in bytes (see render.ImageCache).
 TILE_IMAGE_BYTES = 48 * 2**20
 
@@ -234,7 +240,10 @@ class SiteData:
                     self._buffers = (np.empty(shape, np.uint8), np.empty(shape, np.float32))
                 wm = water_level_map(self.result, level, row_areas=self.dem.row_areas,
                                      unit=self.unit, out=self._buffers)
-            states, _ = depression_states(self.result.depressions, level)
+            states = self.depressions.states(level)
+            listed = self.depressions.listed
+            if listed is not None:  # counted as the table lists them
+                states = states[listed]
             base = {
                 "level": float(level),
                 "unit": self.unit.value,
@@ -245,10 +254,13 @@ class SiteData:
                 "shielded_area_m2": wm.shielded_area_m2,
                 "shielded_area_ha": wm.shielded_area_m2 / 1e4,
                 "shielded_volume_m3": wm.shielded_volume_m3,
+                # The listed (significant) depressions, as the table and the map tiles
+                # show them; below_minimum counts the others.
                 "depressions": {
                     "total": int(len(states)),
-                    "overtopped": int(np.count_nonzero(states == DEPRESSION_OVERTOPPED)),
-                    "cut_off": int(np.count_nonzero(states == DEPRESSION_CUT_OFF)),
+                    "overtopped": int(np.count_nonzero(states == STATE_OVERTOPPED)),
+                    "cut_off": int(np.count_nonzero(states == STATE_CUT_OFF)),
+                    "below_minimum": self.depressions.count - int(len(states)),
                 },
                 "assets": None,
                 "caution": SCREENING_CAUTION,
@@ -275,18 +287,45 @@ class SiteData:
 
     # -- stage table -------------------------------------------------------------------
 
-    @functools.cached_property
-    def stage_table(self):
-        """The site stage table (sillmark.products.stage.StageTable) over the slider's range,
-        about :data:`CHART_POINTS` rows."""
-
+    def chart_levels(self) -> np.ndarray:
+        """The levels of the site stage table: the slider's range at a round step,
+        about :data:`CHART_POINTS` of them (float32, ascending)."""
         rng = self.level_range()
         lo, hi = rng["min"], rng["max"]
         step = _nice_step(hi - lo, CHART_POINTS)
         levels = np.arange(math.floor(lo / step) * step, hi + step * 0.5, step, dtype=np.float64)
-        levels = np.unique(levels.astype(np.float32))
+        return np.unique(levels.astype(np.float32))
+
+    @functools.cached_property
+    def stage_table(self) -> StageTable:
+        """The site stage table (sillmark.products.stage.StageTable) at :meth:`chart_levels`.
+
+        Read from the run's :data:`STAGE_TABLE_FILE` when the worker stored it (see
+        :meth:`store_stage_table`) for the same levels, else computed (one pass over
+        the grid: about half a second at 10^7 cells, which the first map of a large
+        site would otherwise wait for)."""
+        levels = self.chart_levels()
+        path = self.folder / STAGE_TABLE_FILE
+        if path.is_file():
+            try:
+                with np.load(path, allow_pickle=False) as f:
+                    if np.array_equal(f["level"], levels):
+                        return StageTable(level=levels, unit=self.unit, **{
+                            name: np.asarray(f[name], dtype=np.float64) for name in _STAGE_COLUMNS})
+            except (OSError, KeyError, ValueError):
+                pass  # unreadable or of another layout: computed again below
         with self._engine_lock:
             return stage_table(ArraySource(self.dem, self.result), levels)
+
+    def store_stage_table(self) -> Path:
+        """Compute the site stage table and keep it in the run's folder (written under a
+        temporary name, then renamed), so the server's first map reads it."""
+        table = self.stage_table
+        path = self.folder / STAGE_TABLE_FILE
+        tmp = path.with_name(path.name + ".tmp.npz")
+        np.savez(tmp, level=table.level, **{name: getattr(table, name) for name in _STAGE_COLUMNS})
+        os.replace(tmp, path)
+        return path
 
     @functools.cached_property
     def stage_chart(self) -> dict:

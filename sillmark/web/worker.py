@@ -50,6 +50,7 @@ from sillmark.web import (
     reach_inputs,
     relief,
     scenario_run,
+    site_data,
     tiled_run,
 )
 
@@ -195,7 +196,8 @@ def run_job(db_path: str, data_dir: str, run_id: int) -> None:
 
 
 #: What a failed run leaves in its folder: only its log.
-_PARTIAL = ("results", "arrays", "arrays.tmp", "arrays.old", "levels", "stage_table.csv")
+_PARTIAL = ("results", "arrays", "arrays.tmp", "arrays.old", "levels", "stage_table.csv",
+            site_data.STAGE_TABLE_FILE, site_data.STAGE_TABLE_FILE + ".tmp.npz")
 
 
 def discard_partial_output(folder: Path, *, note: str | None = None) -> None:
@@ -364,8 +366,11 @@ def _run(conn, data: Path, run, folder: Path) -> None:
         grid = dem
     rows, cols = grid.shape
     if settings.get("scenario"):
+        # The base run's significance minimum (its settings are the base's): the same
+        # depressions listed, and no file written for every noise-made pit.
         summary = scenario_run.analyse_scenario(site_folder, settings, folder, progress, grid,
-                                                _specs(site_folder, settings["outlets"]))
+                                                _specs(site_folder, settings["outlets"]),
+                                                listing=significance_options(settings, grid.vertical_unit))
         progress.start("finishing")
         summary["seconds"] = round(time.perf_counter() - t0, 2)
         _finish(conn, run, summary, current=False)
@@ -473,6 +478,9 @@ def _run(conn, data: Path, run, folder: Path) -> None:
                            "culverts": getattr(analysis, "culverts", None)})
 
     progress.start("finishing")
+    # The site stage table the page's chart shows, computed here once rather than
+    # by the server while the first map of the site waits for it.
+    site_data.SiteData(run["site_id"], run_id, folder).store_stage_table()
     summary["seconds"] = round(time.perf_counter() - t0, 2)
     _finish(conn, run, summary, current=True)
 

@@ -21,6 +21,7 @@ import pytest
 from sillmark import SCREENING_CAUTION
 from sillmark.products.stage import (
     DEPRESSION_CUT_OFF,
+    DEPRESSION_DRY,
     DEPRESSION_OVERTOPPED,
     depression_states,
 )
@@ -339,3 +340,208 @@ def test_spill_point_tiles_mark_the_spill_points_that_show_at_the_zoom(marsh):
     # Far from the site: a blank tile.
     blank = _get(client, f"/tiles/{site_id}/spill_points/{z}/{x + 40}/{y}.png").get_data()
     assert blank == render.BLANK_PNG
+
+
+@pytest.fixture(scope="module")
+def marsh_minimum(tmp_path_factory, marsh):
+    """Marsh Lane again, in the same app, with a stated accuracy of 5 cm: a minimum depth
+    of 3 × 5 cm = 15 cm (sillmark.products.significance.DEPTH_PER_ACCURACY), which the
+    1 m bowl reaches and the 3 cm noise pits almost never do."""
+    from tests.web.survey_site import write_marsh_lane
+    from tests.web_support import analysed_site
+
+    app, client, _, _ = marsh
+    dem = write_marsh_lane(tmp_path_factory.mktemp("marsh-minimum") / "marsh_lane.tif")
+    site_id = analysed_site(client, dem, assets=False, vertical_accuracy="0.05")
+    return app, client, site_id, open_results(app, site_id)
+
+
+def test_the_tiles_draw_the_listed_depressions_only_as_the_table_lists_them(marsh_minimum):
+    app, client, site_id, data = marsh_minimum
+    t = data.result.depressions
+    listed = np.asarray(data.depressions.listed)
+    # The table's rows (every page) are the listed depressions.
+    table = _get(client, f"/api/sites/{site_id}/depressions?per_page=500").get_json()
+    rows = {d["id"] for d in table["depressions"]}
+    assert table["matched"] == len(rows) == int(listed.sum())
+    assert rows == set((np.flatnonzero(listed) + 1).tolist())
+    assert 1 <= len(rows) < len(t) / 20
+    bowl = int(np.argmax(t.area_m2))
+    assert listed[bowl]
+    # The largest depression below the minimum, at zoom 19 (pixels of about 0.2 m, so
+    # every depression of one 1 m cell covers the 4 pixels it needs to show).
+    area = np.where(listed, -1.0, np.asarray(t.area_m2))
+    small = int(np.argmax(area))
+    assert not listed[small] and area[small] >= 2
+    ix = data.depressions
+    z, x, y = _tile_with(data, ix.pit_lon[small], ix.pit_lat[small], 19)
+    under = _depression_under(app, data, z, x, y)
+    assert (under == small + 1).sum() > 20
+    px = read_png(_get(client, f"/tiles/{site_id}/depressions/{z}/{x}/{y}.png").get_data())["pixels"]
+    unlisted = (under > 0) & ~listed[np.maximum(under - 1, 0)]
+    assert np.all(px[unlisted] == 0)
+    # Its spill point draws no diamond; every diamond drawn on the tile is of a listed one.
+    drawn, _, _ = data.depression_tiles.spill_points_in(z, x, y)
+    assert small not in set(drawn.tolist()) and np.all(listed[drawn])
+    # The bowl is tinted as before.
+    z, x, y = _tile_with(data, ix.pit_lon[bowl], ix.pit_lat[bowl], 19)
+    under = _depression_under(app, data, z, x, y)
+    px = read_png(_get(client, f"/tiles/{site_id}/depressions/{z}/{x}/{y}.png").get_data())["pixels"]
+    assert np.all(px[under == bowl + 1] > 0)
+    drawn, _, _ = data.depression_tiles.spill_points_in(*_tile_with(data, ix.spill_lon[bowl],
+                                                                    ix.spill_lat[bowl], 19))
+    assert bowl in set(drawn.tolist())
+
+
+def test_a_map_extent_query_gives_the_listed_depressions_only(marsh_minimum):
+    _, client, site_id, data = marsh_minimum
+    listed = np.asarray(data.depressions.listed)
+    w, s, e, n = data.summary["lonlat_bounds"]
+    fc = _get(client, f"/api/sites/{site_id}/depressions.geojson?bbox={w},{s},{e},{n}&limit=500").get_json()
+    assert fc["in_view"] == int(listed.sum())
+    assert all(listed[f["properties"]["id"] - 1] for f in fc["features"])
+    pts = _get(client, f"/api/sites/{site_id}/spill_points.geojson?bbox={w},{s},{e},{n}").get_json()
+    assert pts["in_view"] == int(listed.sum())
+
+
+def test_state_codes_match_the_products_depression_states_at_pits_and_spills(marsh):
+    _, _, _, data = marsh
+    t = data.result.depressions
+    ix = data.depressions
+    code = {DEPRESSION_OVERTOPPED: 2, DEPRESSION_CUT_OFF: 1, DEPRESSION_DRY: 0}
+    bowl = int(np.argmax(t.area_m2))
+    # Exactly at the bowl's spill and pit elevations (the bounds of each state), and between.
+    spill, pit = float(t.spill_elevation[bowl]), float(t.pit_elevation[bowl])
+    for level in (pit, np.nextafter(np.float32(pit), np.float32(np.inf)), (pit + spill) / 2,
+                  np.nextafter(np.float32(spill), np.float32(-np.inf)), spill):
+        names, _ = depression_states(t, np.float32(level))
+        expected = np.array([code[str(v)] for v in names], dtype=np.uint8)
+        got = ix.states(float(np.float32(level)))
+        assert np.array_equal(got, expected), level
+    assert ix.states(spill)[bowl] == 2 and ix.states(pit)[bowl] == 0
+    assert ix.states((pit + spill) / 2)[bowl] == 1
+
+
+def test_the_figures_count_the_listed_depressions_as_the_table_does(marsh_minimum):
+    _, client, site_id, data = marsh_minimum
+    t = data.result.depressions
+    listed = np.asarray(data.depressions.listed)
+    bowl = int(np.argmax(t.area_m2))
+    for level in (float(t.pit_elevation[bowl]) + 0.05, float(t.spill_elevation[bowl]) + 0.01):
+        f = _get(client, f"/api/sites/{site_id}/stage?level={level:.3f}").get_json()["depressions"]
+        names, _ = depression_states(t, np.float32(f"{level:.3f}"))
+        names = names[listed]
+        assert f["total"] == int(listed.sum()) and f["below_minimum"] == len(t) - int(listed.sum())
+        assert f["overtopped"] == int(np.count_nonzero(names == DEPRESSION_OVERTOPPED))
+        assert f["cut_off"] == int(np.count_nonzero(names == DEPRESSION_CUT_OFF))
+        # The table filtered by state at the same level gives the same counts.
+        for state, n in (("overtopped", f["overtopped"]), ("cut_off", f["cut_off"])):
+            page = _get(client, f"/api/sites/{site_id}/depressions?level={level:.3f}&state={state}").get_json()
+            assert page["matched"] == n
+    assert f["overtopped"] >= 1
+
+
+def test_a_scenario_lists_the_depressions_under_the_base_runs_minimum(marsh_minimum, tmp_path):
+    app, client, site_id, data = marsh_minimum
+    from sillmark.web import db, layout
+
+    w, s, e, n = data.summary["lonlat_bounds"]
+    sid = _scenario(client, site_id, (w + e) / 2, (s + n) / 2)
+    svc = app.extensions["sillmark"]
+    conn = db.connect(svc.db_path)
+    try:
+        run_id = conn.execute("SELECT run_id FROM scenarios WHERE id = ?", (sid,)).fetchone()[0]
+    finally:
+        conn.close()
+    results = layout.run_dir(svc.data_dir, site_id, run_id) / "results"
+    summary = json.loads((results / "summary.json").read_text())
+    base = json.loads((data.folder / "results" / "summary.json").read_text())
+    # The same minimum as the base run (5 cm stated: 0.15 m), so the same few listed.
+    assert summary["significance"]["min_depth"] == base["significance"]["min_depth"]
+    assert summary["significance"]["min_depth"]["value"] == pytest.approx(0.15)
+    counts = summary["significance"]["counts"]
+    assert counts["all_depressions"] > 1000 and counts["significant"] < 10
+    # Its depression table holds the listed rows only, as the base's does (the culvert
+    # joins two cells of the bowl, so the same ones), not a row per noise pit.
+    with open(results / "depressions.csv", encoding="utf-8") as f:
+        rows = sum(1 for _ in f) - 1
+    assert rows == int(np.count_nonzero(data.depressions.listed)) < 10
+
+
+def test_the_scenario_comparison_pages_the_listed_depressions(marsh_minimum):
+    _, client, site_id, data = marsh_minimum
+    w, s, e, n = data.summary["lonlat_bounds"]
+    sid = _scenario(client, site_id, (w + e) / 2, (s + n) / 2)
+    t = data.result.depressions
+    listed = np.flatnonzero(data.depressions.listed) + 1
+    level = float(t.spill_elevation[int(np.argmax(t.area_m2))]) - 0.01
+    c = _get(client, f"/api/sites/{site_id}/scenarios/{sid}/compare?level={level:.3f}&per_page=100").get_json()
+    d = c["depressions"]
+    assert d["total"] == listed.size < len(t) / 20
+    assert [r["id"] for r in d["rows"]] == listed.tolist()
+
+
+def test_the_printed_map_gives_the_spill_points_of_the_listed_depressions(marsh_minimum):
+    import re
+
+    _, client, site_id, data = marsh_minimum
+    t = data.result.depressions
+    listed = np.flatnonzero(data.depressions.listed)
+    page = _get(client, f"/sites/{site_id}/print?level={float(t.spill_elevation[listed[0]]):.2f}")
+    config = json.loads(re.search(r'<script id="site-config" type="application/json">(.*?)</script>',
+                                  page.get_data(as_text=True), flags=re.S).group(1))
+    spills = config["draw"]["spills"]
+    assert len(spills) == listed.size < 10
+    # Each at its listed depression's spill point (WGS 84).
+    expected = sorted(zip(np.round(data.depressions.spill_lon[listed], 7),
+                          np.round(data.depressions.spill_lat[listed], 7)))
+    assert sorted((round(p["lon"], 7), round(p["lat"], 7)) for p in spills) == expected
+    assert config["draw"]["spills_not_drawn"] == 0
+
+
+def test_the_scenario_zip_tables_the_listed_depressions(marsh_minimum):
+    import csv
+    import io
+    import zipfile
+
+    _, client, site_id, data = marsh_minimum
+    w, s, e, n = data.summary["lonlat_bounds"]
+    sid = _scenario(client, site_id, (w + e) / 2, (s + n) / 2)
+    listed = np.flatnonzero(data.depressions.listed)
+    t = data.result.depressions
+    level = float(t.spill_elevation[listed[0]]) - 0.01
+    r = _get(client, f"/sites/{site_id}/files/scenario/{sid}/{level:.3f}.zip")
+    with zipfile.ZipFile(io.BytesIO(r.data)) as zf:
+        rows = list(csv.DictReader(io.StringIO(zf.read("scenario_depressions.csv").decode())))
+    assert [int(row["depression_id"]) for row in rows] == (listed + 1).tolist()
+    # The pit of each, in the DEM's CRS (cell centre).
+    x, y = data.dem.xy(int(t.pit_row[listed[0]]), int(t.pit_col[listed[0]]))
+    assert float(rows[0]["pit_x"]) == pytest.approx(float(x)) and float(rows[0]["pit_y"]) == pytest.approx(float(y))
+
+
+def test_the_worker_stores_the_site_stage_table_the_chart_reads(marsh):
+    from sillmark.products.source import ArraySource
+    from sillmark.products.stage import stage_table
+    from sillmark.web.site_data import STAGE_TABLE_FILE, SiteData
+
+    _, client, site_id, data = marsh
+    path = data.folder / STAGE_TABLE_FILE
+    assert path.is_file(), "the worker did not store the stage table"
+    levels = data.chart_levels()
+    direct = stage_table(ArraySource(data.dem, data.result), levels)
+    chart = _get(client, f"/api/sites/{site_id}/stage_table").get_json()
+    assert chart["level"] == [float(v) for v in levels]
+    assert chart["flooded_area_m2"] == [float(v) for v in direct.flooded_area_m2]
+    assert chart["shielded_volume_m3"] == [float(v) for v in direct.shielded_volume_m3]
+    # A stored table for other levels (e.g. from an older rule) is not used: it is computed.
+    fresh = SiteData(data.site_id, data.run_id, data.folder)
+    with np.load(path) as f:
+        stored = {k: f[k] for k in f.files}
+    try:
+        np.savez(path, **{**stored, "level": stored["level"] + np.float32(0.5),
+                          "flooded_area_m2": np.zeros_like(stored["flooded_area_m2"])})
+        again = fresh.stage_table
+        assert np.array_equal(again.level, levels)
+        assert np.array_equal(again.flooded_area_m2, direct.flooded_area_m2)
+    finally:
+        np.savez(path, **stored)

@@ -149,8 +149,8 @@
         $("fig-assets-sub").textContent = "no asset table";
       }
       var d = f.depressions;
-      $("fig-depressions").textContent = "Depressions: " + d.overtopped + " of " + d.total +
-        " overtopped, " + d.cut_off + " below the level but cut off.";
+      $("fig-depressions").textContent = (d.below_minimum ? "Listed depressions: " : "Depressions: ") +
+        d.overtopped + " of " + d.total + " overtopped, " + d.cut_off + " below the level but cut off.";
       document.body.dataset.figuresLevel = levelText(v);
     }).catch(function (err) {
       if (seq === figureSeq) { S.show($("level-error"), err.message); }
