@@ -12,9 +12,11 @@ ground, at 11.0 m it floods through the notch.
 
 from __future__ import annotations
 
+import contextlib
 import io
 import re
 import struct
+import threading
 import zlib
 from pathlib import Path
 
@@ -173,8 +175,8 @@ def fresh(tmp_path):
 @pytest.fixture(scope="module")
 def reference(lowbank_tif):
     """The engine run directly on the Lowbank DEM (edge outlets, D8): what the app must match."""
-    from sillmark.grid.dem import read_dem
     from sillmark.engine.flood import analyse_site
+    from sillmark.grid.dem import read_dem
     from sillmark.grid.outlets import build_outlets
 
     dem = read_dem(lowbank_tif)
@@ -223,3 +225,18 @@ def external_references(html: str) -> list[str]:
     found = [m.group(0) for m in EXTERNAL.finditer(html)]
     found += [m.group(0) for m in CSS_URL.finditer(html)]
     return found
+
+
+@contextlib.contextmanager
+def served_app(app):
+    """The app served by waitress on a free loopback port (4 threads), as its origin
+    URL; the server and the app's job runner stop afterwards."""
+    import waitress
+
+    srv = waitress.create_server(app, host="127.0.0.1", port=0, threads=4)
+    threading.Thread(target=srv.run, daemon=True).start()
+    try:
+        yield f"http://127.0.0.1:{srv.effective_port}"
+    finally:
+        srv.close()
+        app.extensions["sillmark"].runner.stop()

@@ -12,13 +12,13 @@ file for download.
 from __future__ import annotations
 
 import json
-import threading
 from pathlib import Path
 
 import pytest
 
 from tests.web.test_web_barrier import polder_site
 from tests.web.test_web_browser import ARTIFACTS, CHROMIUM, LAUNCH_ARGS, sync_playwright
+from tests.web_support import served_app
 
 pytestmark = [pytest.mark.browser]
 if sync_playwright is None or not Path(CHROMIUM).is_file():
@@ -28,14 +28,9 @@ if sync_playwright is None or not Path(CHROMIUM).is_file():
 @pytest.fixture(scope="module")
 def served(tmp_path_factory):
     """(origin, site_id): waitress serving the analysed polder site."""
-    import waitress
-
     app, _, site_id, _ = polder_site(tmp_path_factory.mktemp("barrier-browser"))
-    srv = waitress.create_server(app, host="127.0.0.1", port=0, threads=4)
-    threading.Thread(target=srv.run, daemon=True).start()
-    yield f"http://127.0.0.1:{srv.effective_port}", site_id
-    srv.close()
-    app.extensions["sillmark"].runner.stop()
+    with served_app(app) as origin:
+        yield origin, site_id
 
 
 def test_the_planned_barrier_is_drawn_with_its_length_and_exported(served):

@@ -15,7 +15,6 @@ onset stage there is 12.00 m).
 
 from __future__ import annotations
 
-import threading
 from pathlib import Path
 
 import pytest
@@ -23,6 +22,7 @@ import pytest
 from sillmark import SCREENING_CAUTION
 from tests.web.test_web_barrier import polder_site
 from tests.web.test_web_browser import ARTIFACTS, CHROMIUM, LAUNCH_ARGS, sync_playwright
+from tests.web_support import served_app
 
 pytestmark = [pytest.mark.browser]
 if sync_playwright is None or not Path(CHROMIUM).is_file():
@@ -32,14 +32,21 @@ if sync_playwright is None or not Path(CHROMIUM).is_file():
 @pytest.fixture(scope="module")
 def served(tmp_path_factory):
     """(origin, site_id): waitress serving the analysed polder site."""
-    import waitress
-
     app, _, site_id, _ = polder_site(tmp_path_factory.mktemp("scenario-browser"))
-    srv = waitress.create_server(app, host="127.0.0.1", port=0, threads=4)
-    threading.Thread(target=srv.run, daemon=True).start()
-    yield f"http://127.0.0.1:{srv.effective_port}", site_id
-    srv.close()
-    app.extensions["sillmark"].runner.stop()
+    with served_app(app) as origin:
+        yield origin, site_id
+
+
+def site_page(browser, origin: str, site_id: int, level: str):
+    """(page, page errors): the site's page at ``level``, its figures drawn."""
+    page = browser.new_page(viewport={"width": 1440, "height": 900})
+    errors: list[str] = []
+    page.on("pageerror", lambda e: errors.append(str(e)))
+    page.goto(f"{origin}/sites/{site_id}")
+    page.wait_for_selector("body[data-figures-level]", timeout=30_000)
+    page.fill("#level-number", level)
+    page.press("#level-number", "Enter")
+    return page, errors
 
 
 def test_a_planned_barrier_saved_as_scenario_shows_the_protected_ground(served):
@@ -47,13 +54,7 @@ def test_a_planned_barrier_saved_as_scenario_shows_the_protected_ground(served):
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, args=LAUNCH_ARGS)
         try:
-            page = browser.new_page(viewport={"width": 1440, "height": 900})
-            errors: list[str] = []
-            page.on("pageerror", lambda e: errors.append(str(e)))
-            page.goto(f"{origin}/sites/{site_id}")
-            page.wait_for_selector("body[data-figures-level]", timeout=30_000)
-            page.fill("#level-number", "11.50")
-            page.press("#level-number", "Enter")
+            page, errors = site_page(browser, origin, site_id, "11.50")
             page.click("button[data-tab=tab-assets]")
             page.locator("#assets-table tbody tr", has_text="Polder barn").click()
             page.fill("#barrier-level", "12.00")
@@ -131,13 +132,7 @@ def test_edits_drawn_on_the_map_become_a_scenario_compared_with_the_site(served)
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, args=LAUNCH_ARGS)
         try:
-            page = browser.new_page(viewport={"width": 1440, "height": 900})
-            errors: list[str] = []
-            page.on("pageerror", lambda e: errors.append(str(e)))
-            page.goto(f"{origin}/sites/{site_id}")
-            page.wait_for_selector("body[data-figures-level]", timeout=30_000)
-            page.fill("#level-number", "10.50")
-            page.press("#level-number", "Enter")
+            page, errors = site_page(browser, origin, site_id, "10.50")
             page.click("#scenarios-tab")
             assert page.locator("#edit-invert").input_value() == "10.50"  # prefilled: the level
             assert "Levels in metres, datum not stated" in page.locator("#edit-draw").inner_text()
