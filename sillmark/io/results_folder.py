@@ -299,7 +299,7 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
 
 def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike, *,
                             window: int = DEFAULT_WINDOW, rows: np.ndarray | None = None,
-                            extra: dict | None = None) -> list[Path]:
+                            extra: dict | None = None, map: Callable | None = None) -> list[Path]:
     """Write ``depressions.geojson`` into a folder :func:`sillmark.run.analyse` wrote tile by tile.
 
     ``run`` is that call's :class:`sillmark.run.Analysis` (its depressions,
@@ -308,7 +308,8 @@ def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike,
     The outlines are traced from the folder's ``depression_id.tif`` window by
     window (:func:`sillmark.io.geojson.write_depressions_geojson`); ``rows``
     (boolean per depression) picks those written, e.g. the significant ones,
-    and ``extra`` adds properties, as there. Then ``summary.json`` is written again, last, listing the outlines among the
+    and ``extra`` adds properties, as there; ``map(fn, calls)`` (e.g. the run's
+    executor) traces the windows, whose pieces are joined here. Then ``summary.json`` is written again, last, listing the outlines among the
     files (its ``engine`` member kept). Returns every file of the folder's run
     in the order of :data:`sillmark.io.summary.FILE_NAMES`.
     """
@@ -320,7 +321,7 @@ def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike,
         elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
     )
     outlines = write_depressions_geojson(source, out / name, window=window, rows=rows,
-                                         extra=extra)
+                                         extra=extra, map=map)
     by_name = {p.name: Path(p) for p in run.files}
     by_name[name] = outlines
     summary_path = out / "summary.json"

@@ -572,7 +572,7 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
     t0 = time.perf_counter()
     if progress is not None:
         progress("outlines", 0, 1)
-    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra)
+    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra, map=executor)
     if progress is not None:
         progress("outlines", 1, 1)
     steps["outlines"] = time.perf_counter() - t0
