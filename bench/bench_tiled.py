@@ -2,7 +2,9 @@
 
 1. Writes a SIZE x SIZE float32 terrain (default 20 000 x 20 000, 1.6 GB, an
    uncompressed tiled GeoTIFF) window by window: the generator never holds more
-   than one band of rows, so the DEM may be larger than memory.
+   than one band of rows, so the DEM may be larger than memory. With
+   ``--noise SD`` every cell also gets independent Gaussian noise of SD metres
+   (issue 15 is about survey DEMs, whose noise makes a pit almost everywhere).
 2. Analyses it with :func:`sillmark.run.analyse` (tiles in scratch files) on a LocalCluster of
    WORKERS worker processes (1 thread each, MEMORY per worker, on 127.0.0.1),
    tiles of TILE cells, as ``sillmark analyse DEM --tiles N`` runs it: every
