@@ -5,7 +5,7 @@ per line.
 from __future__ import annotations
 
 import os
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -85,7 +85,8 @@ def write_feature_collection(path: str | os.PathLike, members: dict, features) -
 
 def write_depressions_geojson(source: "ResultSource", path: str | os.PathLike, *,
                               window: int | None = None, rows: np.ndarray | None = None,
-                              extra: dict[str, np.ndarray] | None = None) -> Path:
+                              extra: dict[str, np.ndarray] | None = None,
+                              map: Callable | None = None) -> Path:
     """Write ``depressions.geojson``: one Feature per depression, WGS84 lon/lat.
 
     Follows RFC 7946: no ``crs`` member (section 4), positions are longitude,
@@ -104,13 +105,15 @@ def write_depressions_geojson(source: "ResultSource", path: str | os.PathLike, *
     A site crossing the antimeridian is not split (section 3.1.9).
 
     ``rows`` (boolean per depression, None for all) picks the depressions
-    written; ``extra`` adds properties (one value per depression).
+    written; ``extra`` adds properties (one value per depression); ``map``
+    traces the windows elsewhere, as for
+    :func:`~sillmark.products.outlines.depression_outlines`.
     """
     grid = source.grid
     unit = unit_of(grid)
     transformer = wgs84_transformer(grid)  # fails before reading if there is no CRS
     keep = None if rows is None else np.asarray(rows, dtype=bool)
-    outlines = depression_outlines(source, window=window, only=keep)
+    outlines = depression_outlines(source, window=window, only=keep, map=map)
     columns = {name: np.asarray(values)
                for name, values in {**source.depression_columns, **(extra or {})}.items()}
 

@@ -299,7 +299,7 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
 
 def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike, *,
                             window: int = DEFAULT_WINDOW, rows: np.ndarray | None = None,
-                            extra: dict | None = None) -> list[Path]:
+                            extra: dict | None = None, map: Callable | None = None) -> list[Path]:
     """Write ``depressions.geojson`` into a folder :func:`sillmark.run.analyse` wrote tile by tile.
 
     ``run`` is that call's :class:`sillmark.run.Analysis` (its depressions,
@@ -308,7 +308,8 @@ def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike,
     The outlines are traced from the folder's ``depression_id.tif`` window by
     window (:func:`sillmark.io.geojson.write_depressions_geojson`); ``rows``
     (boolean per depression) picks those written, e.g. the significant ones,
-    and ``extra`` adds properties, as there. Then ``summary.json`` is written again, last, listing the outlines among the
+    and ``extra`` adds properties, as there; ``map(fn, calls)`` (e.g. the run's
+    executor) traces the windows, whose pieces are joined here. Then ``summary.json`` is written again, last, listing the outlines among the
     files (its ``engine`` member kept). Returns every file of the folder's run
     in the order of :data:`sillmark.io.summary.FILE_NAMES`.
     """
@@ -320,7 +321,7 @@ def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike,
         elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
     )
     outlines = write_depressions_geojson(source, out / name, window=window, rows=rows,
-                                         extra=extra)
+                                         extra=extra, map=map)
     by_name = {p.name: Path(p) for p in run.files}
     by_name[name] = outlines
     summary_path = out / "summary.json"
@@ -339,7 +340,8 @@ def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = No
                         band: int | None = None, map: Callable | None = None,
                         progress: Callable[[str, int, int], None] | None = None,
                         window_cells: int = DEFAULT_WINDOW_CELLS,
-                        minimum: Any = None, full_inventory: bool = False) -> HierarchyFiles:
+                        minimum: Any = None, full_inventory: bool = False,
+                        depressions: dict[str, np.ndarray] | None = None) -> HierarchyFiles:
     """Write the three depression-hierarchy files into a folder ``sillmark analyse`` wrote.
 
     The files come from :func:`sillmark.io.hierarchy_writer.write_hierarchy_files`
@@ -365,7 +367,13 @@ def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = No
         a significance ``minimum`` each window of depressions decides its own
         significant nodes, and the result says which depressions are listed
         as a whole (``whole``). ``depressions.csv`` must still hold every
-        depression (as the engine wrote it).
+        depression (as the engine wrote it), unless ``depressions`` is given.
+    depressions : dict of arrays, optional, keyword-only
+        With ``grid``: the columns of the run's whole depression table, as
+        :func:`sillmark.products.inventory.table_columns` gives them (the
+        numbers ``depressions.csv`` is written from), when the caller holds
+        the table (right after the analysis); then ``depressions.csv`` is
+        not read, and need not be written yet.
 
     Returns
     -------
@@ -379,11 +387,15 @@ def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = No
         The DEM is missing or changed since the analysis.
     """
     out = Path(out_dir)
+    if grid is None and depressions is not None:
+        raise InvalidParameter("give the depression table's columns with the DEM's grid")
     if grid is None:
         source = open_result_folder(out, band=band)
     else:
         summary = read_summary(out)
-        for name in (LAYER_FILES["depression_id"], "depressions.csv"):
+        needed = (LAYER_FILES["depression_id"],) + (("depressions.csv",) if depressions is None
+                                                    else ())
+        for name in needed:
             if not (out / name).is_file():
                 raise InvalidParameter(
                     f"the folder {out} lacks {name}; give a folder written by 'sillmark analyse' "
@@ -394,7 +406,8 @@ def add_hierarchy_files(out_dir: str | os.PathLike, *, grid: DEMGrid | None = No
         source = ResultFolder(
             folder=out, grid=grid, connectivity=summary.connectivity,
             outlet_sources=summary.outlet_sources, outlet_count=summary.outlet_cells,
-            depressions=read_depression_columns(out / "depressions.csv"),
+            depressions=(read_depression_columns(out / "depressions.csv") if depressions is None
+                         else depressions),
             elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
         )
     written = write_hierarchy_files(source, out, map=map, progress=progress,

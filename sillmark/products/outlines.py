@@ -122,9 +122,34 @@ def _cell_to_crs(transform: Affine):
 #: ``read(r0, r1, c0, c1)``: a window of the label raster.
 ReadWindow = Callable[[int, int, int, int], np.ndarray]
 
+#: ``map(fn, calls)``: runs ``fn(*call)`` for each call, e.g. a
+#: :class:`sillmark.engine.executors.DaskExecutor`.
+MapCalls = Callable[[Callable, list], list]
+
+
+def _window_pieces(read: ReadWindow, select: Select, r0: int, r1: int, c0: int, c1: int,
+                   rows: int, cols: int) -> tuple[list, list]:
+    """The pieces of one window: ``(label, polygon)`` pairs of the regions inside it,
+    and of those touching an interior window edge (joined later), in cell coordinates."""
+    mask, values = select(read(r0, r1, c0, c1))
+    interior: list = []
+    edge: list = []
+    if not mask.any():
+        return interior, edge
+    values = np.ascontiguousarray(values, dtype=np.int32)
+    cells = Affine.translation(c0, r0)  # x = column, y = row: exact integers
+    pieces, labels = _pieces(rasterio.features.shapes(values, mask=mask, connectivity=4,
+                                                      transform=cells))
+    x0, y0, x1, y1 = shapely.bounds(pieces).T
+    touches = (((x0 == c0) & (c0 > 0)) | ((x1 == c1) & (c1 < cols))
+               | ((y0 == r0) & (r0 > 0)) | ((y1 == r1) & (r1 < rows)))
+    for piece, value, at_edge in zip(pieces.tolist(), labels.tolist(), touches.tolist()):
+        (edge if at_edge else interior).append((value, piece))
+    return interior, edge
+
 
 def label_outlines(read: ReadWindow, shape: tuple[int, int], transform: Affine, select: Select, *,
-                   window: int = DEFAULT_WINDOW) -> dict:
+                   window: int = DEFAULT_WINDOW, map: MapCalls | None = None) -> dict:
     """Outline every label of a raster, window by window.
 
     Parameters
@@ -139,6 +164,12 @@ def label_outlines(read: ReadWindow, shape: tuple[int, int], transform: Affine, 
         to outline and their int32 labels.
     window : int, keyword-only
         Side of the windows read at a time, in cells.
+    map : callable, optional, keyword-only
+        ``map(fn, calls)`` tracing the windows (one call each), e.g. on a
+        cluster; ``read`` and ``select`` must then pickle. The pieces come
+        back as shapely polygons on exact integer cell coordinates, and are
+        joined here in window order, so the outlines are the same bits as
+        with the windows traced in this process (the default).
 
     Returns
     -------
@@ -148,21 +179,19 @@ def label_outlines(read: ReadWindow, shape: tuple[int, int], transform: Affine, 
     """
     size = _window_size(window)
     rows, cols = shape
+    calls = [(read, select, r0, r1, c0, c1, rows, cols)
+             for r0, r1, c0, c1 in _windows(rows, cols, size)]
+    if map is None:
+        traced = (_window_pieces(*call) for call in calls)
+    else:
+        traced = map(_window_pieces, calls)
     interior: dict[int, list] = {}
     edge: dict[int, list] = {}
-    for r0, r1, c0, c1 in _windows(rows, cols, size):
-        mask, values = select(read(r0, r1, c0, c1))
-        if not mask.any():
-            continue
-        values = np.ascontiguousarray(values, dtype=np.int32)
-        cells = Affine.translation(c0, r0)  # x = column, y = row: exact integers
-        pieces, labels = _pieces(rasterio.features.shapes(values, mask=mask, connectivity=4,
-                                                          transform=cells))
-        x0, y0, x1, y1 = shapely.bounds(pieces).T
-        touches = (((x0 == c0) & (c0 > 0)) | ((x1 == c1) & (c1 < cols))
-                   | ((y0 == r0) & (r0 > 0)) | ((y1 == r1) & (r1 < rows)))
-        for piece, value, at_edge in zip(pieces.tolist(), labels.tolist(), touches.tolist()):
-            (edge if at_edge else interior).setdefault(value, []).append(piece)
+    for inside, touching in traced:
+        for value, piece in inside:
+            interior.setdefault(value, []).append(piece)
+        for value, piece in touching:
+            edge.setdefault(value, []).append(piece)
     to_crs = _cell_to_crs(transform)
     out = {}
     for label in sorted(set(interior) | set(edge)):
@@ -171,8 +200,47 @@ def label_outlines(read: ReadWindow, shape: tuple[int, int], transform: Affine, 
     return out
 
 
+class _LayerReader:
+    """``read(r0, r1, c0, c1)`` of one layer through a source's small window reader
+    (it pickles, for tracing windows on other processes)."""
+
+    def __init__(self, layers, layer: str) -> None:
+        self.layers = layers
+        self.layer = layer
+
+    def __call__(self, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        return self.layers.window(self.layer, r0, r1, c0, c1)
+
+
+class _DepressionCells:
+    """``select(block)``: the cells of the wanted depressions (all with ``wanted`` None).
+
+    ``wanted`` is boolean per id, entry 0 False; it is kept as bits (one byte
+    per 8 depressions), as it travels with every window traced elsewhere.
+    """
+
+    def __init__(self, wanted: np.ndarray | None) -> None:
+        self.count = None if wanted is None else int(wanted.shape[0])
+        self.bits = None if wanted is None else np.packbits(wanted)
+        self._wanted = wanted
+
+    def __getstate__(self):
+        return {"count": self.count, "bits": self.bits}
+
+    def __setstate__(self, state) -> None:
+        self.count, self.bits, self._wanted = state["count"], state["bits"], None
+
+    def __call__(self, block: np.ndarray):
+        inside = block > 0
+        if self.bits is not None:
+            if self._wanted is None:
+                self._wanted = np.unpackbits(self.bits, count=self.count).astype(bool)
+            inside &= self._wanted[np.where(inside, block, 0)]
+        return inside, block
+
+
 def depression_outlines(source: ResultSource, *, window: int | None = None,
-                        only: np.ndarray | None = None) -> list:
+                        only: np.ndarray | None = None, map: MapCalls | None = None) -> list:
     """One outline per depression of ``source``; index ``k`` is id ``k+1``.
 
     ``window`` defaults to the whole grid for a result in memory
@@ -181,6 +249,9 @@ def depression_outlines(source: ResultSource, *, window: int | None = None,
     just those depressions, the others' entries being None: on a survey DEM
     with 10^5 noise-made pits and a few significant depressions, tracing the
     listed ones alone is what keeps the outlines' cost with what is written.
+    ``map`` traces the windows through ``map(fn, calls)`` (a source whose
+    windows other processes can read: one with ``layers``, such as a results
+    folder), as for :func:`label_outlines`.
 
     Raises
     ------
@@ -195,18 +266,15 @@ def depression_outlines(source: ResultSource, *, window: int | None = None,
     wanted = np.ones(count + 1, dtype=bool) if only is None else np.concatenate(
         [[False], np.asarray(only, dtype=bool)])
     wanted[0] = False
-
-    def select(block: np.ndarray):
-        inside = block > 0
-        if only is not None:
-            inside &= wanted[np.where(inside, block, 0)]
-        return inside, block
-
-    def read(r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
-        return source.window("depression_id", r0, r1, c0, c1)
+    select = _DepressionCells(None if only is None else wanted)
+    layers = getattr(source, "layers", None)
+    if map is not None and layers is None:
+        map = None  # a source held in this process is read in place
+    read = _LayerReader(source if map is None else layers, "depression_id")
 
     traced = count and wanted.any()
-    outlines = label_outlines(read, shape, source.grid.transform, select, window=window) if traced else {}
+    outlines = (label_outlines(read, shape, source.grid.transform, select, window=window, map=map)
+                if traced else {})
     missing = [k for k in range(1, count + 1) if wanted[k] and k not in outlines]
     if missing:
         raise InvalidParameter(

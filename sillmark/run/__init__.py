@@ -80,6 +80,7 @@ from sillmark.io.summary import (
     write_table_summary,
 )
 from sillmark.io.vector_layers import vector_suffix
+from sillmark.products.inventory import table_columns
 from sillmark.products.significance import SiteMinimum
 from sillmark.run.reach import (
     add_reach_layers,
@@ -510,12 +511,20 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
             progress(step, done, total)
 
     # The rasters and the spill points, one item each (the table with the ids).
+    # With a significance minimum, the table and the spill points are written
+    # once the hierarchy has decided which depressions are listed (_add_derived),
+    # not here with every depression first and then again.
     t0 = time.perf_counter()
-    order = ("depression_id", "onset_stage", "fill_depth", "spill_points", "flood_tree")
+    tables = minimum is None
+    order = ("depression_id", "onset_stage", "fill_depth", *(("spill_points",) if tables else ()),
+             "flood_tree")
     report("write", 0, len(order))
-    written = executor.map(functools.partial(_write_file, flood, grid, str(folder)), order)
+    written = executor.map(functools.partial(_write_file, flood, grid, str(folder),
+                                             tables=tables), order)
     report("write", len(order), len(order))
     by_name = {Path(p).name: Path(p) for paths in written for p in paths}
+    for name in ("depressions.csv", "spill_points.geojson"):  # written in _add_derived
+        by_name.setdefault(name, folder / name)
     files = [by_name[name] for name in TILED_FILE_NAMES[:-1]]
     engine = {"kind": "tiled", "tile_size": flood.tile_size, "tiles": flood.tiles}
     files.append(write_table_summary(
@@ -553,7 +562,10 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
     t0 = time.perf_counter()
     windows = {} if window_cells is None else {"window_cells": int(window_cells)}
     hierarchy = add_hierarchy_files(folder, map=executor, progress=progress, grid=grid,
-                                    minimum=minimum, full_inventory=full_inventory, **windows)
+                                    minimum=minimum, full_inventory=full_inventory,
+                                    depressions=table_columns(run.depressions, grid), **windows)
+    steps = {"hierarchy": time.perf_counter() - t0}
+    t0 = time.perf_counter()
     rows = extra = member = None
     if minimum is not None:
         member = significance_counts_member(
@@ -568,11 +580,15 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
                                    extra=extra)
         write_spill_points_table(run.depressions, grid, folder / "spill_points.geojson",
                                  rows=rows)
+    steps["listed_tables"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
     if progress is not None:
         progress("outlines", 0, 1)
-    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra)
+    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra, map=executor)
     if progress is not None:
         progress("outlines", 1, 1)
+    steps["outlines"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
     names = {p.name: p for p in [*files, *hierarchy.files]}
     ordered = [names[n] for n in FILE_NAMES if n in names]
     summary = folder / FILE_NAMES[-1]
@@ -583,14 +599,17 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
         files=[p.name for p in ordered if p.name != summary.name],
         engine={"kind": "tiled", "tile_size": run.tile_size, "tiles": run.tiles},
         significance=member, curves=curves_summary(hierarchy))
-    seconds = {**run.seconds, "outlines_hierarchy": time.perf_counter() - t0}
+    steps["summary"] = time.perf_counter() - t0
+    seconds = {**run.seconds, **steps,
+               **{f"hierarchy_{k}": v for k, v in hierarchy.seconds.items()}}
     return dataclasses.replace(run, files=ordered, hierarchy=hierarchy, seconds=seconds,
                                significance=member)
 
 
-def _write_file(flood: TiledFlood, grid, folder: str, what: str) -> list[str]:
-    """Write one raster block by block from the store (the id raster's table beside it),
-    or ``spill_points.geojson``; return the paths written."""
+def _write_file(flood: TiledFlood, grid, folder: str, what: str, *,
+                tables: bool = True) -> list[str]:
+    """Write one raster block by block from the store (the id raster's table beside it,
+    with ``tables``), or ``spill_points.geojson``; return the paths written."""
     out = Path(folder)
     if what == "spill_points":
         return [str(write_spill_points_table(flood.depressions, grid,
@@ -607,7 +626,7 @@ def _write_file(flood: TiledFlood, grid, folder: str, what: str) -> list[str]:
                                     connectivity=flood.connectivity,
                                     depression_count=(len(flood.depressions)
                                                       if what == "depression_id" else None)))]
-    if what == "depression_id":
+    if what == "depression_id" and tables:
         paths.append(str(write_depression_table_csv(flood.depressions, grid,
                                                     out / "depressions.csv")))
     return paths
