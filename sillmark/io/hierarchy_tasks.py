@@ -114,7 +114,8 @@ def batch_counts(hierarchy, job: BatchJob) -> dict:
 def curve_part(job: BatchJob, hierarchy, listed: np.ndarray | None) -> tuple[dict, dict]:
     """The batch's curve rows, thinned for the batch alone, and its thinning summary."""
     t = hierarchy.nodes
-    natural = hc.natural_counts(hierarchy, max_points=job.max_points, step_rows=job.step_rows)
+    natural = hc.natural_counts(hierarchy, max_points=job.max_points, step_rows=job.step_rows,
+                                listed=listed)
     stride, _ = hc.choose_strides(natural, t.volume_m3, listed, job.max_rows)
     rows = hc.curve_rows(hierarchy, natural, stride, max_points=job.max_points,
                          step_rows=job.step_rows)

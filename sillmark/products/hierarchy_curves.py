@@ -247,7 +247,7 @@ def _stepped_chunks(t, nodes: np.ndarray, steps: int):
 
 
 def natural_counts(hierarchy: DepressionHierarchy, *, max_points: int = 250,
-                   step_rows: int = 100) -> CurveCounts:
+                   step_rows: int = 100, listed: np.ndarray | None = None) -> CurveCounts:
     """Rows of every node's curve before thinning (step 1 of the module docstring).
 
     Parameters
@@ -257,6 +257,12 @@ def natural_counts(hierarchy: DepressionHierarchy, *, max_points: int = 250,
         A node with at most this many breakpoints gets them all.
     step_rows : int, keyword-only
         Most steps a node with more is sampled at.
+    listed : bool array, optional, keyword-only
+        The nodes that may get rows (one entry per node). A stepped node outside
+        it is not sampled: its ``rows`` is 0 and its ``merge_index`` -1, which
+        every later step reads as "no rows" (its stride is 0 anyway). On a survey
+        DEM most stepped nodes are noise pits below the significance minimum,
+        and sampling them cost most of this function's time. Default: every node.
 
     Returns
     -------
@@ -269,13 +275,18 @@ def natural_counts(hierarchy: DepressionHierarchy, *, max_points: int = 250,
     """
     _check_hierarchy(hierarchy)
     _check_limits(max_points, step_rows)
+    chosen = None if listed is None else _listed_mask(listed, len(hierarchy.nodes))
     empty_i = np.empty(0, dtype=np.int64)
     count, merge_index = _breakpoints(hierarchy, max_points, empty_i, empty_i,
                                       np.empty(0), empty_i)
     rows, merge_index = count[1:].copy(), merge_index[1:].copy()
     stepped = rows < 0
     t = hierarchy.nodes
-    for chunk, start, levels in _stepped_chunks(t, np.flatnonzero(stepped), step_rows):
+    sampled = stepped if chosen is None else stepped & chosen
+    if chosen is not None:
+        rows[stepped & ~chosen] = 0
+        merge_index[stepped & ~chosen] = -1
+    for chunk, start, levels in _stepped_chunks(t, np.flatnonzero(sampled), step_rows):
         rows[chunk] = np.diff(start)
         merge = t.merge_elevation[chunk].astype(np.float64)
         owner = np.repeat(np.arange(chunk.shape[0]), np.diff(start))

@@ -226,6 +226,36 @@ def test_only_listed_nodes_get_rows():
     assert plan.natural_rows == int(counts.rows[listed].sum()) == len(rows)
 
 
+@pytest.mark.parametrize("cap", [10**9, 60])
+def test_counting_the_listed_nodes_alone_gives_their_rows_unchanged(cap):
+    # Stepped nodes outside `listed` are not sampled; the listed nodes' counts,
+    # strides and rows (thinned or not) must be the same bits as when every node
+    # is counted. max_points=5 makes many nodes stepped on this site.
+    h = noisy_site()
+    t = h.nodes
+    full = hc.natural_counts(h, max_points=5, step_rows=4)
+    stepped = np.flatnonzero(full.stepped)
+    listed = np.zeros(len(h), bool)
+    listed[h.tops - 1] = True
+    listed[stepped[::3]] = True
+    assert (full.stepped & ~listed).any() and (full.stepped & listed).any()
+    some = hc.natural_counts(h, max_points=5, step_rows=4, listed=listed)
+    assert np.array_equal(some.rows[listed], full.rows[listed])
+    assert np.array_equal(some.merge_index[listed], full.merge_index[listed])
+    assert np.array_equal(some.stepped, full.stepped)
+    assert np.all(some.rows[full.stepped & ~listed] == 0)
+    results = []
+    for counts in (full, some):
+        stride, plan = hc.choose_strides(counts, t.volume_m3, listed, cap)
+        results.append((stride, plan, hc.curve_rows(h, counts, stride, max_points=5,
+                                                    step_rows=4)))
+    (s1, p1, r1), (s2, p2, r2) = results
+    assert p1 == p2 and np.array_equal(s1, s2)
+    assert len(r1) > 0 and (p1.thinned == (cap == 60))
+    for name in ("node", "index", "level", "area_m2", "storage_m3", "code"):
+        assert np.array_equal(getattr(r1, name), getattr(r2, name), equal_nan=True)
+
+
 def test_bad_inputs_get_clear_errors():
     h = noisy_site()
     counts, _ = all_rows(h)
