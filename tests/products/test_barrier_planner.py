@@ -16,16 +16,25 @@ from sillmark.products.barrier_planner import plan_barrier
 from tests.textbook_flood import EIGHT, FOUR
 
 
-def networkx_cut_size(z, outlets, place, level, connectivity):
-    """Size of a minimum node cut between the outlets and the place (None: none exists)."""
+def networkx_cut_size(z, outlets, place, level, connectivity, culverts=()):
+    """Size of a minimum node cut between the outlets and the place (None: none exists).
+
+    The graph joins the cells below ``level``: neighbours both ways, and each
+    open culvert (invert below the level) from its first end to its last, and
+    back unless it is a flap valve. With culverts it is a DiGraph (networkx 3.6.1
+    ``minimum_node_cut`` splits the nodes of a directed graph)."""
     rows, cols = z.shape
     steps = EIGHT if connectivity == 8 else FOUR
     below = ~np.isnan(z) & (z < level)
-    g = nx.Graph()
+    g = nx.DiGraph() if culverts else nx.Graph()
     g.add_nodes_from(["S", "T"])
 
     def node(r, c):
         return "S" if outlets[r, c] else "T" if place[r, c] else (r, c)
+
+    def join(a, b):
+        if a != b and a != "T" and b != "S":  # edges out of T or into S carry no water to T
+            g.add_edge(a, b)
 
     for r in range(rows):
         for c in range(cols):
@@ -34,9 +43,12 @@ def networkx_cut_size(z, outlets, place, level, connectivity):
             for dr, dc in steps:
                 rr, cc = r + dr, c + dc
                 if 0 <= rr < rows and 0 <= cc < cols and below[rr, cc]:
-                    a, b = node(r, c), node(rr, cc)
-                    if a != b:
-                        g.add_edge(a, b)
+                    join(node(r, c), node(rr, cc))
+    for (ar, ac), (br, bc), invert, one_way in culverts:
+        if invert < level and below[ar, ac] and below[br, bc]:
+            join(node(ar, ac), node(br, bc))
+            if not one_way:
+                join(node(br, bc), node(ar, ac))
     if g.has_edge("S", "T") or (outlets & place & below).any():
         return None
     if not nx.has_path(g, "S", "T"):
@@ -161,44 +173,6 @@ def test_an_l_shaped_wall_round_a_corner_place_walks_its_side_steps():
     assert plan.length == pytest.approx(9.0)
 
 
-def networkx_cut_size_with_culverts(z, outlets, place, level, connectivity, culverts):
-    """As :func:`networkx_cut_size`, on the directed graph with the open culverts:
-    neighbours both ways, a culvert from its first end to its last (and back
-    unless it is a flap valve). networkx 3.6.1 ``minimum_node_cut`` takes a
-    DiGraph (node splitting on the directed graph)."""
-    rows, cols = z.shape
-    steps = EIGHT if connectivity == 8 else FOUR
-    below = ~np.isnan(z) & (z < level)
-    g = nx.DiGraph()
-    g.add_nodes_from(["S", "T"])
-
-    def node(r, c):
-        return "S" if outlets[r, c] else "T" if place[r, c] else (r, c)
-
-    def join(a, b):
-        if a != b and a != "T" and b != "S":  # edges out of T or into S carry no water to T
-            g.add_edge(a, b)
-
-    for r in range(rows):
-        for c in range(cols):
-            if not below[r, c]:
-                continue
-            for dr, dc in steps:
-                rr, cc = r + dr, c + dc
-                if 0 <= rr < rows and 0 <= cc < cols and below[rr, cc]:
-                    join(node(r, c), node(rr, cc))
-    for (ar, ac), (br, bc), invert, one_way in culverts:
-        if invert < level and below[ar, ac] and below[br, bc]:
-            join(node(ar, ac), node(br, bc))
-            if not one_way:
-                join(node(br, bc), node(ar, ac))
-    if g.has_edge("S", "T") or (outlets & place & below).any():
-        return None
-    if not nx.has_path(g, "S", "T"):
-        return 0
-    return len(nx.minimum_node_cut(g, "S", "T"))
-
-
 def edges_of(shape, culverts):
     from sillmark.engine.culverts import culvert_edges
 
@@ -253,7 +227,7 @@ def test_a_culvert_through_the_levee_is_closed_by_the_wall_unless_it_only_drains
     edges = edges_of(z.shape, [culvert])
     plan = plan_barrier(z, outlets, place, 2.0, culverts=edges)
     assert plan.possible and plan.cells == cells
-    assert networkx_cut_size_with_culverts(z, outlets, place, 2.0, 8, [culvert]) == cells
+    assert networkx_cut_size(z, outlets, place, 2.0, 8, [culvert]) == cells
     chosen = set(zip(plan.rows.tolist(), plan.cols.tolist()))
     assert {(3, 8), (4, 8)} <= chosen
     if cells == 3:
@@ -277,7 +251,7 @@ def test_a_culvert_from_an_outlet_into_the_place_cannot_be_walled_off():
     culvert = ((4, 0), (4, 5), 0.5, False)  # from an edge outlet straight into P
     plan = plan_barrier(z, outlets, place, 2.0, culverts=edges_of(z.shape, [culvert]))
     assert not plan.possible and "culvert" in plan.reason
-    assert networkx_cut_size_with_culverts(z, outlets, place, 2.0, 8, [culvert]) is None
+    assert networkx_cut_size(z, outlets, place, 2.0, 8, [culvert]) is None
 
 
 @pytest.mark.parametrize("seed", range(10))
@@ -303,7 +277,7 @@ def test_with_random_culverts_the_cut_has_the_size_networkx_finds(seed):
     connectivity = int(rng.choice([4, 8]))
     edges = edges_of(z.shape, culverts)
     plan = plan_barrier(z, outlets, place, level, connectivity=connectivity, culverts=edges)
-    expected = networkx_cut_size_with_culverts(z, outlets, place, level, connectivity, culverts)
+    expected = networkx_cut_size(z, outlets, place, level, connectivity, culverts)
     if expected is None:
         assert not plan.possible and plan.cells == 0
         return
