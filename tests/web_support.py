@@ -134,8 +134,12 @@ def confirm(client: Client, site_id: int, *, unit: str = "m", outlets=("edge",),
                        content_type="multipart/form-data", headers={"Accept": "application/json"})
 
 
-def analysed_site(client: Client, dem_path: Path, *, assets: bool = True,
+def analysed_site(client: Client, dem_path: Path, *, assets: bool | str = True,
                   vertical_accuracy: str | None = None) -> int:
+    """Upload, confirm (analysed inline) and give assets to a site; its id.
+
+    ``assets``: True for Lowbank's :data:`ASSETS_CSV`, a CSV text of a site's
+    own, or False for none."""
     r = upload_dem(client, dem_path)
     assert r.status_code == 201, r.get_data(as_text=True)
     site_id = r.get_json()["site_id"]
@@ -144,8 +148,9 @@ def analysed_site(client: Client, dem_path: Path, *, assets: bool = True,
     status = client.get(f"/api/sites/{site_id}/status").get_json()
     assert status["state"] == "ready", status
     if assets:
+        csv = ASSETS_CSV if assets is True else assets
         r = client.post(f"/uploads/sites/{site_id}/assets",
-                        data={"assets": (io.BytesIO(ASSETS_CSV.encode()), "assets.csv")},
+                        data={"assets": (io.BytesIO(csv.encode()), "assets.csv")},
                         content_type="multipart/form-data")
         assert r.status_code == 201, r.get_data(as_text=True)
     return site_id

@@ -26,8 +26,6 @@ Working, by hand:
 
 from __future__ import annotations
 
-import io
-
 import numpy as np
 import pytest
 from affine import Affine
@@ -38,7 +36,7 @@ from sillmark.grid.edits import read_edits
 from sillmark.grid.outlets import build_outlets
 from sillmark.products.barrier_planner import plan_barrier
 from tests.rasters import write_raster
-from tests.web_support import Client, confirm, lonlat, make_app, upload_dem
+from tests.web_support import Client, analysed_site, lonlat, make_app
 
 WEST, NORTH, CELL = 510_000.0, 5_010_000.0, 2.0
 GAP = [(4, 9), (5, 9), (6, 9)]
@@ -64,17 +62,10 @@ def polder_site(folder):
                        transform=Affine(CELL, 0, WEST, 0, -CELL, NORTH), nodata=-9999.0)
     app = make_app(folder / "data")
     client = Client(app)
-    r = upload_dem(client, tif)
-    assert r.status_code == 201, r.get_data(as_text=True)
-    site_id = r.get_json()["site_id"]
-    assert confirm(client, site_id).status_code == 202
-    csv = ("name,kind,x,y\n"
-           f"Polder barn,barn,{centre(*BARN)[0]},{centre(*BARN)[1]}\n"
-           f"Bank hut,hut,{centre(*HUT)[0]},{centre(*HUT)[1]}\n")
-    r = client.post(f"/uploads/sites/{site_id}/assets",
-                    data={"assets": (io.BytesIO(csv.encode()), "assets.csv")},
-                    content_type="multipart/form-data")
-    assert r.status_code == 201, r.get_data(as_text=True)
+    site_id = analysed_site(client, tif, assets=(
+        "name,kind,x,y\n"
+        f"Polder barn,barn,{centre(*BARN)[0]},{centre(*BARN)[1]}\n"
+        f"Bank hut,hut,{centre(*HUT)[0]},{centre(*HUT)[1]}\n"))
     return app, client, site_id, tif
 
 

@@ -39,7 +39,7 @@ from sillmark import SCREENING_CAUTION
 from sillmark.products.scenario_compare import compare_at_level
 from sillmark.web import layout
 from tests.rasters import write_raster
-from tests.web_support import Client, confirm, make_app, upload_dem
+from tests.web_support import Client, analysed_site, make_app
 
 WEST, NORTH, CELL = 520_000.0, 5_020_000.0, 2.0
 BARN = (2, 5)
@@ -74,15 +74,8 @@ def site(tmp_path_factory):
                        transform=Affine(CELL, 0, WEST, 0, -CELL, NORTH), nodata=-9999.0)
     app = make_app(folder / "data")
     client = Client(app)
-    r = upload_dem(client, tif)
-    assert r.status_code == 201, r.get_data(as_text=True)
-    site_id = r.get_json()["site_id"]
-    assert confirm(client, site_id).status_code == 202
-    csv = f"name,kind,x,y\nMeadow barn,barn,{centre(*BARN)[0]},{centre(*BARN)[1]}\n"
-    r = client.post(f"/uploads/sites/{site_id}/assets",
-                    data={"assets": (io.BytesIO(csv.encode()), "assets.csv")},
-                    content_type="multipart/form-data")
-    assert r.status_code == 201, r.get_data(as_text=True)
+    site_id = analysed_site(
+        client, tif, assets=f"name,kind,x,y\nMeadow barn,barn,{centre(*BARN)[0]},{centre(*BARN)[1]}\n")
     # An uploaded edits file; the inline job runner analyses it before the answer.
     r = client.post(f"/api/sites/{site_id}/scenarios",
                     data={"name": "Brookend culvert",
