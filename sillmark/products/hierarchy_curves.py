@@ -282,10 +282,11 @@ def natural_counts(hierarchy: DepressionHierarchy, *, max_points: int = 250,
     rows, merge_index = count[1:].copy(), merge_index[1:].copy()
     stepped = rows < 0
     t = hierarchy.nodes
-    sampled = stepped if chosen is None else stepped & chosen
+    sampled = stepped
     if chosen is not None:
-        rows[stepped & ~chosen] = 0
-        merge_index[stepped & ~chosen] = -1
+        skipped = stepped & ~chosen
+        rows[skipped], merge_index[skipped] = 0, -1
+        sampled = stepped & chosen
     for chunk, start, levels in _stepped_chunks(t, np.flatnonzero(sampled), step_rows):
         rows[chunk] = np.diff(start)
         merge = t.merge_elevation[chunk].astype(np.float64)
