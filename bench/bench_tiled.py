@@ -311,7 +311,8 @@ def main(argv=None) -> int:
             # default significance minimum (from the default vertical accuracy).
             run = analyse(dem, ("edge",), work / "out", executor=run_map, store="files",
                           tile_size=args.tile, derived=not args.engine_only,
-                          minimum=None if args.engine_only else minimum)
+                          minimum=None if args.engine_only else minimum,
+                          vector_format="auto")  # the command's default
             wall = time.perf_counter() - t0
             engine = sum(run.seconds[k] for k in ENGINE_STEPS if k in run.seconds)
             report.update({

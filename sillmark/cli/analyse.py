@@ -265,7 +265,7 @@ def tiled_engine(args: argparse.Namespace, dem_path: str, out_dir: Path, progres
     ``derived``: also write the depression outlines and the hierarchy files (on
     the same cluster); ``listing``: the significance options of
     :func:`sillmark.run.analyse` (``minimum``, ``accuracy_stated``,
-    ``full_inventory``) for them."""
+    ``full_inventory``) for them, and ``vector_format`` for the vector layers."""
     from sillmark.engine.executors import dask_executor
     from sillmark.errors import InvalidParameter
     from sillmark.run import analyse
@@ -319,7 +319,7 @@ def _run_analyse_tiled(args: argparse.Namespace) -> int:
                          crs=args.crs).vertical_unit
     listing = {"minimum": site_minimum(vertical_accuracy=args.vertical_accuracy, unit=unit),
                "accuracy_stated": args.vertical_accuracy is not None,
-               "full_inventory": args.full_inventory}
+               "full_inventory": args.full_inventory, "vector_format": args.vector_format}
     try:
         run, grid, engine = tiled_engine(args, args.dem, out_dir, progress, derived=True,
                                          listing=listing)

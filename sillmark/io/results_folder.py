@@ -31,7 +31,6 @@ import rasterio.windows
 from sillmark.errors import InvalidDEM, InvalidParameter
 from sillmark.grid.dem_grid import DEMGrid, read_dem_grid
 from sillmark.grid.edits import edited_grid, read_edits
-from sillmark.io.geojson import write_depressions_geojson
 from sillmark.io.geotiff import BLOCK_ROWS
 from sillmark.io.hierarchy_files import HIERARCHY_FILE_NAMES
 from sillmark.io.hierarchy_writer import (
@@ -41,7 +40,8 @@ from sillmark.io.hierarchy_writer import (
 )
 from sillmark.io.json_values import write_json
 from sillmark.io.reach_files import INPUT_COPIES
-from sillmark.io.summary import FILE_NAMES, read_summary, write_table_summary
+from sillmark.io.summary import file_rank, read_summary, write_table_summary
+from sillmark.io.vector_layers import write_depression_layer
 from sillmark.products.inventory import table_columns
 from sillmark.products.outlines import DEFAULT_WINDOW
 from sillmark.products.source import LAYERS
@@ -299,34 +299,38 @@ def open_result_folder(folder: str | os.PathLike, *, band: int | None = None) ->
 
 def add_depression_outlines(run: Any, grid: DEMGrid, out_dir: str | os.PathLike, *,
                             window: int = DEFAULT_WINDOW, rows: np.ndarray | None = None,
-                            extra: dict | None = None, map: Callable | None = None) -> list[Path]:
-    """Write ``depressions.geojson`` into a folder :func:`sillmark.run.analyse` wrote tile by tile.
+                            extra: dict | None = None, map: Callable | None = None,
+                            vector_format: str = "geojson") -> list[Path]:
+    """Write the depression outlines into a folder :func:`sillmark.run.analyse` wrote tile by tile.
 
     ``run`` is that call's :class:`sillmark.run.Analysis` (its depressions,
     connectivity, cell counts, outlets and files).
 
     The outlines are traced from the folder's ``depression_id.tif`` window by
-    window (:func:`sillmark.io.geojson.write_depressions_geojson`); ``rows``
-    (boolean per depression) picks those written, e.g. the significant ones,
-    and ``extra`` adds properties, as there; ``map(fn, calls)`` (e.g. the run's
-    executor) traces the windows, whose pieces are joined here. Then ``summary.json`` is written again, last, listing the outlines among the
+    window and written as ``depressions.geojson`` or ``depressions.gpkg`` by
+    ``vector_format`` (:func:`sillmark.io.vector_layers.write_depression_layer`);
+    ``rows`` (boolean per depression) picks those written, e.g. the significant
+    ones, and ``extra`` adds properties, as there; ``map(fn, calls)`` (e.g. the
+    run's executor) traces the windows, whose pieces are joined here. Then
+    ``summary.json`` is written again, last, listing the outlines among the
     files (its ``engine`` member kept). Returns every file of the folder's run
     in the order of :data:`sillmark.io.summary.FILE_NAMES`.
     """
     out = Path(out_dir)
-    name = "depressions.geojson"
     source = ResultFolder(
         folder=out, grid=grid, connectivity=run.connectivity, outlet_sources=run.outlet_sources,
         outlet_count=run.outlet_cells, depressions=table_columns(run.depressions, grid),
         elevation_min=math.nan, elevation_max=math.nan, onset_min=math.nan, onset_max=math.nan,
     )
-    outlines = write_depressions_geojson(source, out / name, window=window, rows=rows,
-                                         extra=extra, map=map)
-    by_name = {p.name: Path(p) for p in run.files}
-    by_name[name] = outlines
+    outlines = write_depression_layer(source, out, window=window, rows=rows, extra=extra,
+                                      map=map, vector_format=vector_format)
     summary_path = out / "summary.json"
+    layer_names = {f"{outlines.stem}{suffix}" for suffix in (".geojson", ".gpkg")}
+    by_name = {p.name: Path(p) for p in run.files
+               if p.name not in layer_names and p.name != summary_path.name}
+    by_name[outlines.name] = outlines
+    files = sorted(by_name.values(), key=lambda p: file_rank(p.name))
     engine = json.loads(summary_path.read_text(encoding="utf-8")).get("engine")
-    files = [by_name[n] for n in FILE_NAMES if n in by_name and n != summary_path.name]
     summary = write_table_summary(
         run.depressions, grid, summary_path, connectivity=run.connectivity,
         unreached_cells=run.unreached_cells, valid_cells=run.valid_cells,
@@ -423,7 +427,5 @@ def _list_in_summary(out: Path, names: list[str]) -> None:
     path = out / "summary.json"
     summary = json.loads(path.read_text(encoding="utf-8"))
     listed = set(summary.get("files", [])) | set(names)
-    order = {name: k for k, name in enumerate(FILE_NAMES)}
-    last = order[FILE_NAMES[-1]]  # summary.json stays last; other names just before it
-    summary["files"] = sorted(listed, key=lambda n: (order.get(n, last - 0.5), n))
+    summary["files"] = sorted(listed, key=lambda n: (file_rank(n), n))
     write_json(path, summary)

@@ -74,11 +74,13 @@ def _rows(rows: np.ndarray | None, count: int) -> np.ndarray:
 def write_depression_layer(source: "ResultSource", folder: str | os.PathLike, *,
                            rows: np.ndarray | None = None, vector_format: str = "geojson",
                            extra: dict[str, np.ndarray] | None = None,
-                           window: int | None = None) -> Path:
+                           window: int | None = None, map: Any = None) -> Path:
     """Write ``depressions.geojson`` or ``depressions.gpkg``: the outline of each depression
     picked by ``rows`` (boolean per depression; None = all), with its table row.
 
-    ``extra`` adds columns (one value per depression of the table).
+    ``extra`` adds columns (one value per depression of the table); ``window``
+    and ``map`` trace the outlines window by window, elsewhere, as for
+    :func:`~sillmark.products.outlines.depression_outlines`.
     """
     table = source.depression_columns
     count = len(table["id"])
@@ -86,8 +88,9 @@ def write_depression_layer(source: "ResultSource", folder: str | os.PathLike, *,
     suffix = vector_suffix(vector_format, int(np.count_nonzero(keep)))
     path = Path(folder) / f"depressions{suffix}"
     if suffix == ".geojson":
-        return write_depressions_geojson(source, path, window=window, rows=keep, extra=extra)
-    outlines = depression_outlines(source, window=window, only=keep)
+        return write_depressions_geojson(source, path, window=window, rows=keep, extra=extra,
+                                         map=map)
+    outlines = depression_outlines(source, window=window, only=keep, map=map)
     columns = {**table, **(extra or {})}
     picked = np.flatnonzero(keep)
     return write_geopackage_layer(

@@ -66,7 +66,6 @@ from sillmark.grid.outlets import Outlets, build_outlets, outlet_specs
 from sillmark.grid.profiles import read_profile
 from sillmark.io.csv_tables import write_depression_table_csv
 from sillmark.io.export import write_result_files
-from sillmark.io.geojson import write_spill_points_table
 from sillmark.io.geotiff import DEPRESSION_ID_NODATA, RESULT_LAYERS, write_result_layer
 from sillmark.io.hierarchy_writer import curves_summary
 from sillmark.io.reach_files import INPUT_COPIES, add_to_summary, keep_input
@@ -76,10 +75,11 @@ from sillmark.io.styles import write_styles
 from sillmark.io.summary import (
     FILE_NAMES,
     RUN_FOLDER_PREFIX,
+    file_rank,
     significance_counts_member,
     write_table_summary,
 )
-from sillmark.io.vector_layers import vector_suffix
+from sillmark.io.vector_layers import vector_suffix, write_spill_point_layer
 from sillmark.products.inventory import table_columns
 from sillmark.products.significance import SiteMinimum
 from sillmark.run.reach import (
@@ -322,11 +322,13 @@ def analyse(
             else:
                 run = _analyse_by_tiles(dem, outlets, temporary, executor, tiles, tile_size,
                                         connectivity, band, vertical_unit, crs, progress,
-                                        profile=profile, edits=edits, minimum=minimum)
+                                        profile=profile, edits=edits, minimum=minimum,
+                                        vector_format=vector_format)
                 if derived:
                     run = _add_derived(run, temporary, executor, progress, window_cells,
                                        dict(minimum=minimum, accuracy_stated=accuracy_stated,
-                                            full_inventory=full_inventory))
+                                            full_inventory=full_inventory,
+                                            vector_format=vector_format))
                 if profile is not None:
                     run = add_tiled_offset(run, profile, temporary, executor, store,
                                             tile_size, connectivity, progress)
@@ -476,7 +478,7 @@ def _analyse_in_memory(dem, outlets, folder, executor, tiles, tile_size, connect
 
 def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, connectivity, band,
                       vertical_unit, crs, progress, *, profile=None, edits=None,
-                      minimum=None) -> Analysis:
+                      minimum=None, vector_format: str = "geojson") -> Analysis:
     tile = TILED_TILE_SIZE if tile_size is None else tile_size
     TilePlan(rows=1, cols=1, tile=tile)  # refuse a bad tile size and connectivity first
     directions(connectivity)
@@ -520,12 +522,9 @@ def _analyse_by_tiles(dem_path, outlets, folder, executor, tiles, tile_size, con
              "flood_tree")
     report("write", 0, len(order))
     written = executor.map(functools.partial(_write_file, flood, grid, str(folder),
-                                             tables=tables), order)
+                                             tables=tables, vector_format=vector_format), order)
     report("write", len(order), len(order))
-    by_name = {Path(p).name: Path(p) for paths in written for p in paths}
-    for name in ("depressions.csv", "spill_points.geojson"):  # written in _add_derived
-        by_name.setdefault(name, folder / name)
-    files = [by_name[name] for name in TILED_FILE_NAMES[:-1]]
+    files = sorted((Path(p) for paths in written for p in paths), key=lambda p: file_rank(p.name))
     engine = {"kind": "tiled", "tile_size": flood.tile_size, "tiles": flood.tiles}
     files.append(write_table_summary(
         flood.depressions, grid, folder / "summary.json", connectivity=connectivity,
@@ -558,6 +557,7 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
     listing = listing or {}
     minimum = listing.get("minimum")
     full_inventory = bool(listing.get("full_inventory"))
+    vector_format = listing.get("vector_format", "geojson")
     grid = run.grid
     t0 = time.perf_counter()
     windows = {} if window_cells is None else {"window_cells": int(window_cells)}
@@ -578,19 +578,24 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
             rows = hierarchy.whole
         write_depression_table_csv(run.depressions, grid, folder / "depressions.csv", rows=rows,
                                    extra=extra)
-        write_spill_points_table(run.depressions, grid, folder / "spill_points.geojson",
-                                 rows=rows)
+        spill_points = write_spill_point_layer(run.depressions, grid, folder, rows=rows,
+                                               vector_format=vector_format)
+        replaced = {"depressions.csv", "spill_points.geojson", "spill_points.gpkg"}
+        run = dataclasses.replace(run, files=[
+            *(p for p in run.files if p.name not in replaced),
+            folder / "depressions.csv", spill_points])
     steps["listed_tables"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     if progress is not None:
         progress("outlines", 0, 1)
-    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra, map=executor)
+    files = add_depression_outlines(run, grid, folder, rows=rows, extra=extra, map=executor,
+                                    vector_format=vector_format)
     if progress is not None:
         progress("outlines", 1, 1)
     steps["outlines"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     names = {p.name: p for p in [*files, *hierarchy.files]}
-    ordered = [names[n] for n in FILE_NAMES if n in names]
+    ordered = sorted(names.values(), key=lambda p: file_rank(p.name))
     summary = folder / FILE_NAMES[-1]
     write_table_summary(
         run.depressions, grid, summary, connectivity=run.connectivity,
@@ -607,13 +612,13 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
 
 
 def _write_file(flood: TiledFlood, grid, folder: str, what: str, *,
-                tables: bool = True) -> list[str]:
+                tables: bool = True, vector_format: str = "geojson") -> list[str]:
     """Write one raster block by block from the store (the id raster's table beside it,
     with ``tables``), or ``spill_points.geojson``; return the paths written."""
     out = Path(folder)
     if what == "spill_points":
-        return [str(write_spill_points_table(flood.depressions, grid,
-                                             out / "spill_points.geojson"))]
+        return [str(write_spill_point_layer(flood.depressions, grid, out,
+                                            vector_format=vector_format))]
     if what == "depression_id":
         def block(r0: int, r1: int) -> np.ndarray:
             ids = flood.read("depression_id", r0, r1)

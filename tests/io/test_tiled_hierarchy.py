@@ -341,6 +341,34 @@ def test_cli_tiled_analyse_on_a_cluster_writes_the_in_memory_files(cluster_addre
     assert not [p for p in tiled.iterdir() if p.name.startswith(".")]
 
 
+def test_cli_tiled_geopackage_layers_hold_the_in_memory_features(cluster_address, terrain_tif,
+                                                                 tmp_path, capsys):
+    # --vector-format reaches the tiled run too (it used to write GeoJSON whatever
+    # was asked, and so ignored the "auto" default's GeoPackage for large layers).
+    import pyogrio
+    import shapely
+
+    from sillmark.cli import main
+
+    tiled, whole = tmp_path / "tiled", tmp_path / "whole"
+    assert main(["analyse", str(terrain_tif), "--tiles", "40", "--scheduler", cluster_address,
+                 "--vector-format", "gpkg", "--out", str(tiled), "-q"]) == 0
+    assert main(["analyse", str(terrain_tif), "--vector-format", "gpkg", "--out", str(whole),
+                 "-q"]) == 0
+    capsys.readouterr()
+    files = json.loads((tiled / "summary.json").read_text())["files"]
+    assert files == json.loads((whole / "summary.json").read_text())["files"]
+    assert files.index("depressions.gpkg") == files.index("depressions.csv") + 1
+    assert not list(tiled.glob("*.geojson"))
+    for name in ("depressions.gpkg", "spill_points.gpkg"):
+        mine, ref = pyogrio.raw.read(tiled / name), pyogrio.raw.read(whole / name)
+        assert mine[0]["crs"] == ref[0]["crs"] == "EPSG:32633"
+        ids = list(mine[0]["fields"]).index("id")
+        assert mine[3][ids].tolist() == ref[3][ids].tolist() and len(mine[3][ids]) > 1, name
+        a, b = shapely.from_wkb(mine[2]), shapely.from_wkb(ref[2])
+        assert shapely.equals(shapely.normalize(a), shapely.normalize(b)).all(), name
+
+
 def test_a_folder_in_small_windows_on_a_cluster_gives_the_in_memory_files(cluster_address,
                                                                           terrain_tif, tmp_path):
     # The tiled engine and the hierarchy batches on a two-worker cluster, with a
