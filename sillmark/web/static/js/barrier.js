@@ -10,9 +10,7 @@
 (function () {
   "use strict";
   var S = window.Sillmark;
-  var config = JSON.parse(document.getElementById("site-config").textContent);
-  var map = window[config.names.map];
-  var $ = function (id) { return document.getElementById(id); };
+  var page = S.page(), config = page.config, map = page.map, $ = page.byId;
   var unit = config.unit_symbol;
   var datum = config.datum || "";
   var base = "/api/sites/" + config.site_id;

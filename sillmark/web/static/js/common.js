@@ -246,8 +246,16 @@
     return out;
   }
 
+  /* What every script of the site page opens with: the page's configuration (the
+   * JSON in #site-config), the Leaflet map it names, and a lookup by element id. */
+  function page() {
+    var config = JSON.parse(document.getElementById("site-config").textContent);
+    return { config: config, map: window[config.names.map],
+             byId: function (id) { return document.getElementById(id); } };
+  }
+
   window.Sillmark = {
-    token: token, getJSON: getJSON, fixed: fixed, level: level, levelAt: levelAt, area: area, volume: volume,
+    page: page, token: token, getJSON: getJSON, fixed: fixed, level: level, levelAt: levelAt, area: area, volume: volume,
     symbol: symbol, symbolMarker: symbolMarker, areaLarge: areaLarge, inLargeArea: inLargeArea, inVolume: inVolume, length: length,
     el: el, show: show, legend: legend, outlets: outlets,
   };

@@ -12,9 +12,7 @@
 (function () {
   "use strict";
   var S = window.Sillmark;
-  var config = JSON.parse(document.getElementById("site-config").textContent);
-  var map = window[config.names.map];
-  var $ = function (id) { return document.getElementById(id); };
+  var page = S.page(), config = page.config, map = page.map, $ = page.byId;
   if (!$("edit-draw") || !map) { return; }
   var unit = config.unit_symbol;
   var datum = config.datum || "";

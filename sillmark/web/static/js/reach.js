@@ -4,8 +4,7 @@
 (function () {
   "use strict";
   var S = window.Sillmark;
-  var config = JSON.parse(document.getElementById("site-config").textContent);
-  var map = window[config.names.map];
+  var page = S.page(), config = page.config, map = page.map;
   var waterGroup = window[config.names.water];
   var unit = config.unit_symbol;
   var base = "/api/sites/" + config.site_id;

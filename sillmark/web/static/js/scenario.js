@@ -8,9 +8,7 @@
 (function () {
   "use strict";
   var S = window.Sillmark;
-  var config = JSON.parse(document.getElementById("site-config").textContent);
-  var map = window[config.names.map];
-  var $ = function (id) { return document.getElementById(id); };
+  var page = S.page(), config = page.config, map = page.map, $ = page.byId;
   var unit = config.unit_symbol;
   var base = "/api/sites/" + config.site_id + "/scenarios";
   var level = config.level, chosen = null, page = 1, layer = null, timer = null, seq = 0;
