@@ -270,30 +270,90 @@ def _group_stable(group, n_groups):
     return order
 
 
+def _ordered_bits(bits):
+    """The float32 bits ``bits`` (with -0.0 made +0.0) as an unsigned integer of the
+    same order as the float: negative values flipped whole, positive ones given the
+    top bit."""
+    if bits & np.uint32(0x80000000):
+        return bits ^ np.uint32(0xFFFFFFFF)
+    return bits | np.uint32(0x80000000)
+
+
+#: Groups of at least this many cells are sorted by radix (:func:`_radix_group`);
+#: smaller ones by comparison, in parallel.
+RADIX_GROUP_CELLS = 1 << 15
+
+
+def _radix_group(zbits, group_order, a, b, out):
+    """Positions ``group_order[a:b]`` (ascending) into ``out[a:b]`` by elevation, ties in
+    position order: a stable least-significant-digit radix sort (11-bit digits) of
+    the elevations' ordered bits less the group's lowest, so a group spanning a few
+    metres of relief takes two passes. One group of a survey DEM can hold half its
+    depression cells, and the comparison sort took it on one thread alone.
+    """
+    n = b - a
+    keys = np.empty(n, dtype=np.uint32)
+    items = np.empty(n, dtype=np.int64)
+    low = np.uint32(0xFFFFFFFF)
+    high = np.uint32(0)
+    for k in range(n):
+        p = group_order[a + k]
+        key = _ordered_bits(zbits[p])
+        keys[k] = key
+        items[k] = p
+        low = min(low, key)
+        high = max(high, key)
+    for k in range(n):
+        keys[k] -= low
+    span = high - low
+    spare_keys = np.empty(n, dtype=np.uint32)
+    spare_items = np.empty(n, dtype=np.int64)
+    count = np.empty(2049, dtype=np.int64)
+    shift = np.uint32(0)
+    while shift < np.uint32(32) and (span >> shift) > np.uint32(0):
+        count[:] = 0
+        for k in range(n):
+            count[((keys[k] >> shift) & np.uint32(2047)) + 1] += 1
+        for d in range(1, 2049):
+            count[d] += count[d - 1]
+        for k in range(n):
+            d = (keys[k] >> shift) & np.uint32(2047)
+            at = count[d]
+            spare_keys[at] = keys[k]
+            spare_items[at] = items[k]
+            count[d] = at + 1
+        keys, spare_keys = spare_keys, keys
+        items, spare_items = spare_items, items
+        shift += np.uint32(11)
+    for k in range(n):
+        out[a + k] = items[k]
+
+
 def _sort_within_groups(zbits, group_order, group_start):
     """Within each group of ``group_order``, sort positions by (elevation, position).
 
-    ``zbits`` are the float32 elevations' bits (with -0.0 made +0.0). Each
-    group is sorted on its own, groups in parallel: one 64-bit key per cell,
-    the order-preserving integer image of the elevation above the position.
+    ``zbits`` are the float32 elevations' bits (with -0.0 made +0.0);
+    ``group_order`` holds each group's positions in ascending order. Groups of
+    fewer than :data:`RADIX_GROUP_CELLS` cells are sorted on their own, in
+    parallel: one 64-bit key per cell, the order-preserving integer image of the
+    elevation above the position. Larger groups are sorted one after another by
+    :func:`_radix_group` (the same order).
     """
     n = group_order.shape[0]
     out = np.empty(n, dtype=np.int64)
     n_groups = group_start.shape[0] - 1
+    for g in range(n_groups):
+        if group_start[g + 1] - group_start[g] >= RADIX_GROUP_CELLS:
+            _radix_group(zbits, group_order, group_start[g], group_start[g + 1], out)
     for g in prange(n_groups):
         a = group_start[g]
         b = group_start[g + 1]
-        if b <= a:
+        if b <= a or b - a >= RADIX_GROUP_CELLS:
             continue
         keys = np.empty(b - a, dtype=np.uint64)
         for k in range(a, b):
             p = group_order[k]
-            bits = zbits[p]
-            if bits & np.uint32(0x80000000):
-                ordered = bits ^ np.uint32(0xFFFFFFFF)
-            else:
-                ordered = bits | np.uint32(0x80000000)
-            keys[k - a] = (np.uint64(ordered) << np.uint64(32)) | np.uint64(p)
+            keys[k - a] = (np.uint64(_ordered_bits(zbits[p])) << np.uint64(32)) | np.uint64(p)
         keys.sort()
         for k in range(a, b):
             out[k] = np.int64(keys[k - a] & np.uint64(0xFFFFFFFF))
@@ -533,6 +593,8 @@ sweep = njit(nogil=True, cache=True)(_sweep)
 postorder = njit(nogil=True, cache=True)(_postorder)
 bucket = njit(nogil=True, cache=True)(_bucket)
 group_stable = njit(nogil=True, cache=True)(_group_stable)
+_ordered_bits = njit(inline="always", cache=True)(_ordered_bits)
+_radix_group = njit(nogil=True, cache=True)(_radix_group)
 sort_within_groups = njit(parallel=True, nogil=True, cache=True)(_sort_within_groups)
 segments = njit(nogil=True, cache=True)(_segments)
 totals = njit(nogil=True, cache=True)(_totals)

@@ -825,3 +825,26 @@ def test_the_sweep_cut_into_parts_gives_the_same_hierarchy(monkeypatch, connecti
                               equal_nan=True), field
     assert np.array_equal(whole.regions.cells, cut.regions.cells)
     assert np.array_equal(whole.regions.positions, cut.regions.positions)
+
+
+@pytest.mark.parametrize("spread", [0.0, 1e-3, 4.0, 1e30])
+def test_large_groups_sort_by_radix_into_the_comparison_order(spread):
+    # Groups of RADIX_GROUP_CELLS cells or more take the radix path, the others the
+    # comparison sort; both must give numpy's lexsort by (group, elevation, position),
+    # with ties (every seventh cell shares one height), -0.0 beside +0.0, and
+    # heights of both signs.
+    rng = np.random.default_rng(7)
+    big = kernels.RADIX_GROUP_CELLS
+    sizes = np.array([3, big + 5, 1, 0, 2 * big, 40])
+    group = np.repeat(np.arange(sizes.size), sizes)
+    n = group.size
+    z = (rng.standard_normal(n) * spread).astype(np.float32)
+    z[::7] = z[1]
+    z[2::11] = np.float32(-0.0)
+    z[3::13] = np.float32(0.0)
+    position = np.arange(n, dtype=np.int64)
+    start = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    bits = (z + np.float32(0.0)).view(np.uint32)
+    got = kernels.sort_within_groups(bits, position, start)
+    assert np.array_equal(got, np.lexsort((position, z + np.float32(0.0), group)))
+    assert np.array_equal(kernels.sort_within_groups.py_func(bits, position, start), got)
