@@ -68,6 +68,9 @@ FILE_NAMES = (
 )
 
 
+_FILE_ORDER = {name: k for k, name in enumerate(FILE_NAMES)}
+
+
 def file_rank(name: str) -> float:
     """Where ``name`` stands in :data:`FILE_NAMES`: a vector layer written as GeoPackage
     (``depressions.gpkg``) where its GeoJSON name does; any other file just before
@@ -77,10 +80,9 @@ def file_rank(name: str) -> float:
     [0, 5, 9.5, 10]
     """
     stem = name[: -len(".gpkg")] if name.endswith(".gpkg") else None
-    order = {n: k for k, n in enumerate(FILE_NAMES)}
-    if stem is not None and f"{stem}.geojson" in order:
-        return order[f"{stem}.geojson"]
-    return order.get(name, len(FILE_NAMES) - 1.5)
+    if stem is not None and f"{stem}.geojson" in _FILE_ORDER:
+        return _FILE_ORDER[f"{stem}.geojson"]
+    return _FILE_ORDER.get(name, len(FILE_NAMES) - 1.5)
 
 
 def _summary(result: "SpillResult", dem: "DEM", outlets: "Outlets", files: list[str],

@@ -614,7 +614,8 @@ def _add_derived(run: Analysis, folder: Path, executor, progress,
 def _write_file(flood: TiledFlood, grid, folder: str, what: str, *,
                 tables: bool = True, vector_format: str = "geojson") -> list[str]:
     """Write one raster block by block from the store (the id raster's table beside it,
-    with ``tables``), or ``spill_points.geojson``; return the paths written."""
+    with ``tables``), or the spill points (``.geojson`` or ``.gpkg`` by ``vector_format``);
+    return the paths written."""
     out = Path(folder)
     if what == "spill_points":
         return [str(write_spill_point_layer(flood.depressions, grid, out,
