@@ -122,13 +122,33 @@ def nodata_mask(raw: np.ndarray, nodata: float | None) -> np.ndarray:
         if value.is_integer() and info.min <= value <= info.max:
             invalid |= raw == raw.dtype.type(int(value))
     else:
-        top = float(np.finfo(raw.dtype).max)
-        if top < abs(value) <= top * (1.0 + 1e-7):
-            # "-3.4028235e+38" written as text lands just past the float32 limit.
-            value = math.copysign(top, value)
-        if math.isinf(value) or abs(value) <= top:
-            invalid |= raw == raw.dtype.type(value)
+        stored = float_nodata(raw.dtype, value)
+        if stored is not None:
+            invalid |= raw == stored
     return invalid
+
+
+def float_nodata(dtype: np.dtype, nodata: float | None):
+    """The declared ``nodata`` as a value of the float ``dtype`` that cells can hold, or
+    None when no cell can equal it (none declared, NaN, or beyond the type's range).
+
+    >>> bool(float_nodata(np.dtype("float32"), -3.4028235e+38) == np.finfo(np.float32).min)
+    True
+    >>> float_nodata(np.dtype("float32"), None), float_nodata(np.dtype("float32"), 1e300)
+    (None, None)
+    """
+    if nodata is None:
+        return None
+    value = float(nodata)
+    if math.isnan(value):
+        return None
+    top = float(np.finfo(dtype).max)
+    if top < abs(value) <= top * (1.0 + 1e-7):
+        # "-3.4028235e+38" written as text lands just past the float32 limit.
+        value = math.copysign(top, value)
+    if math.isinf(value) or abs(value) <= top:
+        return np.dtype(dtype).type(value)
+    return None
 
 
 def check_plausible_heights(z: np.ndarray, label: str) -> None:

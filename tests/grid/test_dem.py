@@ -646,3 +646,42 @@ def test_rowcol_inverts_xy(row, col, dx):
 def test_horizontal_crs_drops_the_vertical_part():
     dem = dem_from_array(np.ones((2, 2)), crs="EPSG:32633+5773")
     assert dem.horizontal_crs.equals(pyproj.CRS("EPSG:32633"))
+
+
+@pytest.mark.parametrize("dtype, nodata, masked", [
+    ("float32", None, False), ("float32", -9999.0, False), ("float32", -3.4028235e+38, False),
+    ("float32", None, True), ("float64", -9999.0, False), ("int16", -32768, False),
+])
+def test_dem_windows_hold_the_cells_of_the_whole_dem_read(tmp_path, dtype, nodata, masked):
+    # DEMGrid.read_window (one compiled pass for a plain float32 band, whole-array
+    # steps otherwise) against read_dem of the whole file: missing cells NaN
+    # (non-finite, the declared nodata, or masked off), -0.0 made +0.0, and the
+    # parts of a window outside the grid NaN.
+    from sillmark.grid.dem_grid import read_dem_grid
+    from tests.rasters import write_raster
+
+    rng = np.random.default_rng(3)
+    z = np.round(rng.normal(100, 5, (23, 31)), 1).astype(dtype)
+    if z.dtype.kind == "f":
+        z[1, 1], z[2, 2], z[3, 3] = np.nan, np.inf, -0.0
+    if nodata is not None:
+        z[4:6, 7:9] = nodata
+    path = tmp_path / "dem.tif"
+    write_raster(path, z, nodata=nodata, dtype=dtype)
+    if masked:
+        with rasterio.open(path, "r+") as ds:
+            mask = np.full(z.shape, 255, np.uint8)
+            mask[10:12, 0:5] = 0
+            ds.write_mask(mask)
+    whole = read_dem(path).elevation
+    assert np.isnan(whole).sum() >= (0 if z.dtype.kind in "iu" and nodata is None else 2)
+    g = read_dem_grid(path)
+    for window in [(0, 23, 0, 31), (2, 14, 3, 20), (-3, 5, -2, 4), (20, 26, 28, 35)]:
+        r0, r1, c0, c1 = window
+        got = g.read_window(r0, r1, c0, c1)
+        want = np.full((r1 - r0, c1 - c0), np.nan, np.float32)
+        a0, a1, b0, b1 = max(r0, 0), min(r1, 23), max(c0, 0), min(c1, 31)
+        want[a0 - r0:a1 - r0, b0 - c0:b1 - c0] = whole[a0:a1, b0:b1]
+        assert got.dtype == np.float32
+        assert np.array_equal(got, want, equal_nan=True), window
+        assert not np.signbit(got[got == 0.0]).any()
