@@ -13,22 +13,18 @@ def _clean_float32(raw, nodata, has_nodata, hidden, has_hidden, out):
     """``out`` = ``raw`` with every missing cell NaN and -0.0 made +0.0, in one pass.
 
     Missing: not finite, equal to ``nodata`` (when ``has_nodata``), or
-    ``hidden`` (when ``has_hidden``; the band's mask says no data). Returns the
-    count of missing cells.
+    ``hidden`` (when ``has_hidden``; the band's mask says no data).
     """
     rows, cols = raw.shape
-    missing = 0
     for i in range(rows):
         for j in range(cols):
             v = raw[i, j]
             if (not np.isfinite(v)) or (has_nodata and v == nodata) or (has_hidden and hidden[i, j]):
                 out[i, j] = np.float32(np.nan)
-                missing += 1
             elif v == 0.0:
                 out[i, j] = np.float32(0.0)
             else:
                 out[i, j] = v
-    return missing
 
 
 clean_float32 = njit(nogil=True, cache=True)(_clean_float32)
